@@ -1,0 +1,110 @@
+# clef: plain GNU make.  Dependencies come from Debian packages, found with
+# pkg-config; `make deps` (run by demo and check) installs what is missing.
+
+BUILD    ?= build
+CC       ?= cc
+# -march=native lets the compiler use the machine's widest vectors (the
+# transform and coupling kernels depend on it); set ARCH= for a portable build.
+ARCH     ?= -march=native
+CFLAGS   ?= -O3 -g
+WERROR   ?=
+PREFIX   ?= /usr/local
+
+PKGS     := chealpix cfitsio fftw3 lapacke openblas gsl libcjson cairo
+TESTPKGS := cmocka
+
+PKGCFLAGS := $(shell pkg-config --cflags $(PKGS) 2>/dev/null)
+PKGLIBS   := $(shell pkg-config --libs $(PKGS) 2>/dev/null) -lfftw3_omp
+TESTCFLAGS := $(shell pkg-config --cflags $(TESTPKGS) 2>/dev/null)
+TESTLIBS   := $(shell pkg-config --libs $(TESTPKGS) 2>/dev/null)
+
+ALL_CFLAGS  = -std=c11 $(ARCH) -fPIC -fopenmp -Wall -Wextra -Wshadow $(WERROR) $(CFLAGS) -MMD -MP
+ALL_CPPFLAGS = -Iinclude -Isrc $(PKGCFLAGS) $(CPPFLAGS)
+ALL_LDFLAGS = -fopenmp $(LDFLAGS)
+ALL_LDLIBS  = $(PKGLIBS) -lm $(LDLIBS)
+
+LIB_SRC   := $(wildcard src/*.c)
+CLI_SRC   := $(wildcard src/cli/*.c)
+TEST_SRC  := $(wildcard tests/test_*.c)
+BENCH_SRC := $(wildcard bench/bench_*.c)
+BENCH_COMMON := $(filter-out $(BENCH_SRC),$(wildcard bench/*.c))
+
+LIB_OBJ   := $(LIB_SRC:%.c=$(BUILD)/%.o)
+CLI_OBJ   := $(CLI_SRC:%.c=$(BUILD)/%.o)
+TEST_BIN  := $(TEST_SRC:tests/%.c=$(BUILD)/tests/%)
+BENCH_BIN := $(BENCH_SRC:bench/%.c=$(BUILD)/bench/%)
+BENCH_COMMON_OBJ := $(BENCH_COMMON:%.c=$(BUILD)/%.o)
+
+LIBA  := $(BUILD)/libclef.a
+LIBSO := $(BUILD)/libclef.so
+CLEF  := $(BUILD)/clef
+
+.PHONY: all deps check check-long tests bench demo sanitize clean install
+.DEFAULT_GOAL := all
+
+all: $(LIBA) $(LIBSO) $(CLEF)
+
+deps:
+	@sh scripts/install-deps.sh
+
+$(BUILD)/%.o: %.c
+	@mkdir -p $(dir $@)
+	$(CC) $(ALL_CPPFLAGS) $(ALL_CFLAGS) -c $< -o $@
+
+$(LIBA): $(LIB_OBJ)
+	@mkdir -p $(dir $@)
+	rm -f $@ && ar rcs $@ $^
+
+$(LIBSO): $(LIB_OBJ)
+	$(CC) -shared $(ALL_LDFLAGS) -o $@ $^ $(ALL_LDLIBS)
+
+$(CLEF): $(CLI_OBJ) $(LIBA)
+	$(CC) $(ALL_LDFLAGS) -o $@ $(CLI_OBJ) $(LIBA) $(ALL_LDLIBS)
+
+$(BUILD)/tests/%: tests/%.c tests/check.h $(LIBA)
+	@mkdir -p $(dir $@)
+	$(CC) $(ALL_CPPFLAGS) $(TESTCFLAGS) $(ALL_CFLAGS) -Itests $< -o $@ $(ALL_LDFLAGS) $(LIBA) $(TESTLIBS) $(ALL_LDLIBS)
+
+$(BUILD)/bench/%: bench/%.c $(BENCH_COMMON_OBJ) $(LIBA)
+	@mkdir -p $(dir $@)
+	$(CC) $(ALL_CPPFLAGS) $(ALL_CFLAGS) -Ibench $< $(BENCH_COMMON_OBJ) -o $@ $(ALL_LDFLAGS) $(LIBA) $(ALL_LDLIBS)
+
+tests: all $(TEST_BIN)
+
+# The test suite: every tests/test_*.c program (cmocka) and every
+# tests/cli/*.sh script; tests/run.sh prints "N passed, N failed".
+check: deps
+	@$(MAKE) --no-print-directory tests
+	@sh tests/run.sh $(BUILD)
+
+check-long: deps
+	@$(MAKE) --no-print-directory tests
+	@CLEF_LONG=1 sh tests/run.sh $(BUILD)
+
+# AddressSanitizer + UndefinedBehaviorSanitizer build of the same suite.
+sanitize: deps
+	@$(MAKE) --no-print-directory BUILD=build-san \
+	    CFLAGS="-O1 -g -fsanitize=address,undefined -fno-omit-frame-pointer -fno-sanitize-recover=undefined" \
+	    LDFLAGS="-fsanitize=address,undefined" tests
+	@CLEF_SANITIZE=1 ASAN_OPTIONS=detect_leaks=1 sh tests/run.sh build-san
+
+bench: deps
+	@$(MAKE) --no-print-directory all $(BENCH_BIN)
+	@sh bench/run.sh $(BUILD)
+
+demo: deps
+	@$(MAKE) --no-print-directory all
+	@sh scripts/demo.sh $(BUILD)
+
+install: all
+	install -d $(DESTDIR)$(PREFIX)/bin $(DESTDIR)$(PREFIX)/lib $(DESTDIR)$(PREFIX)/include/clef $(DESTDIR)$(PREFIX)/lib/pkgconfig
+	install -m 755 $(CLEF) $(DESTDIR)$(PREFIX)/bin/clef
+	install -m 644 $(LIBA) $(LIBSO) $(DESTDIR)$(PREFIX)/lib/
+	install -m 644 include/clef/*.h $(DESTDIR)$(PREFIX)/include/clef/
+	sed -e 's|@PREFIX@|$(PREFIX)|' -e 's|@VERSION@|$(shell sed -n 's/^#define CLEF_VERSION "\(.*\)"/\1/p' include/clef/clef.h)|' \
+	    -e 's|@PKGS@|$(PKGS)|' clef.pc.in > $(DESTDIR)$(PREFIX)/lib/pkgconfig/clef.pc
+
+clean:
+	rm -rf build build-san
+
+-include $(LIB_OBJ:.o=.d) $(CLI_OBJ:.o=.d) $(BENCH_COMMON_OBJ:.o=.d)

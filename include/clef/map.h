@@ -1,0 +1,116 @@
+/* HEALPix maps in memory and in FITS files.
+ *
+ * A clef_map always holds its pixels in RING order (converted on reading
+ * if the file is NESTED; the file's ordering is remembered), as doubles,
+ * with a per-pixel validity flag: pixels that are missing from the file
+ * (partial-sky tables), flagged with the bad-pixel value -1.6375e30, or NaN
+ * are invalid, hold 0.0 in `pix`, and are excluded through the mask by
+ * every estimator.
+ *
+ * File conventions read and written (Gorski et al. 2005, ApJ 622, 759; the
+ * HEALPix FITS format specification): an empty primary HDU followed by a
+ * BINTABLE with PIXTYPE='HEALPIX', ORDERING, NSIDE, INDXSCHM (IMPLICIT or
+ * EXPLICIT), FIRSTPIX/LASTPIX, COORDSYS, BAD_DATA; implicit tables with one
+ * pixel per row or vector rows (TFORM '1024E'); explicit-index tables with a
+ * PIXEL column.  Reading and writing are streamed in row chunks.
+ *
+ * Thread safety: functions on distinct maps may run concurrently.
+ */
+#ifndef CLEF_MAP_H
+#define CLEF_MAP_H
+
+#include <stdint.h>
+
+#include "clef/clef.h"
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
+#define CLEF_NSIDE_MAX 8192
+/* The HEALPix bad-pixel sentinel; values within 1e-5 relative are bad too
+ * (float32 storage does not hold it exactly). */
+#define CLEF_BAD_VALUE (-1.6375e30)
+
+enum clef_ordering { CLEF_RING = 0, CLEF_NESTED = 1 };
+
+typedef struct clef_map {
+    int64_t nside;
+    int64_t npix;           /* 12 nside^2 */
+    double *pix;            /* npix values in RING order; 0.0 where invalid */
+    unsigned char *valid;   /* npix flags: 1 valid, 0 missing */
+    int64_t nmissing;       /* number of invalid pixels */
+    int64_t nbad;           /* of which flagged by BAD_DATA or NaN in the file */
+    int file_ordering;      /* clef_ordering of the file it was read from (RING if made in memory) */
+    char coordsys[16];      /* "G", "E", "C" or "" when unknown */
+    char unit[64];          /* TUNIT of the column read, or "" */
+    char column[72];        /* name of the column read, or "" */
+} clef_map;
+
+/* Which table and column to read.  All fields may be 0/NULL for defaults. */
+typedef struct clef_map_read_opts {
+    /* HDU: NULL = the first binary-table extension; a decimal number N =
+     * the Nth extension (1 = first extension after the primary); any other
+     * text = the extension with that EXTNAME (case-insensitive). */
+    const char *hdu;
+    /* Column: NULL = the first value column (for explicit-index tables, the
+     * first column that is not PIXEL); a decimal number N = the Nth column
+     * (1-based, as in FITS); any other text = the column with that TTYPE
+     * (case-insensitive). */
+    const char *column;
+} clef_map_read_opts;
+
+/* Read one map.  On failure *out is NULL and the message names the file,
+ * HDU, keyword, column or value at fault.  Returns CLEF_EIO (cannot open or
+ * read), CLEF_EFORMAT (not a HEALPix table, NSIDE missing or not a power of
+ * two, NSIDE inconsistent with the data length, index out of range or
+ * repeated, ...), CLEF_EINVAL (unknown HDU or column), CLEF_ENOMEM.
+ * gzip-compressed files are read transparently. */
+int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *opts);
+
+/* A new map of the given nside, all pixels valid and zero, RING, no
+ * coordinate system. */
+int clef_map_alloc(clef_map **out, int64_t nside);
+int clef_map_copy(clef_map **out, const clef_map *m);
+void clef_map_free(clef_map *m); /* NULL is a no-op */
+
+/* How to write.  All fields may be 0/NULL for defaults. */
+typedef struct clef_map_write_opts {
+    int row_length;          /* values per row: 0 or 1 = one pixel per row; e.g. 1024 (must divide npix) */
+    int single_precision;    /* 1: TFORM E (float32), 0: D (float64) */
+    const char *column;      /* TTYPE of the value column, default "TEMPERATURE" */
+    const char *unit;        /* TUNIT, default the map's unit, else none */
+    const char *extname;     /* EXTNAME, default "SKYMAP" */
+    const char *history;     /* optional HISTORY line (e.g. the command that made the map) */
+} clef_map_write_opts;
+
+/* Write a full-sky RING map (implicit index); invalid pixels are written as
+ * the bad-pixel value.  A clef provenance keyword (CLEFVERS) is added.  The
+ * file is written to a temporary name and renamed on success, so a failure
+ * leaves nothing.  An existing file is replaced. */
+int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opts *opts);
+
+/* Summary of the valid pixels of a map. */
+typedef struct clef_map_stats {
+    int64_t nvalid, nmissing;
+    double fsky;             /* nvalid / npix */
+    double min, max, mean, rms, stddev;
+} clef_map_stats;
+int clef_map_stats_compute(const clef_map *m, clef_map_stats *st);
+
+/* Check that a mask suits a map: same nside (CLEF_EINVAL, message names both
+ * files and both nsides), compatible COORDSYS (refused unless
+ * allow_coord_mismatch, or one of them is unknown), values in [0, 1]
+ * (values outside are refused: CLEF_EINVAL naming the value and pixel).
+ * Names are used only in messages and may be NULL. */
+int clef_map_check_mask(const clef_map *map, const char *map_name, const clef_map *mask,
+                        const char *mask_name, int allow_coord_mismatch);
+
+/* Pixel geometry helpers (RING scheme, 64-bit indices). */
+int64_t clef_nside_npix(int64_t nside);
+int clef_nside_valid(int64_t nside); /* 1 if a power of two in [1, CLEF_NSIDE_MAX] */
+
+#ifdef __cplusplus
+}
+#endif
+#endif

@@ -1,0 +1,95 @@
+/* Spherical harmonic transforms on HEALPix rings: analysis (map -> a_lm)
+ * and synthesis (a_lm -> map), plus power spectra from a_lm.
+ *
+ * Conventions (Gorski et al. 2005): Y_lm are Edmonds' with the
+ * Condon-Shortley phase, Y_lm = lambda_lm(cos theta) e^{i m phi}; maps are
+ * real, so only m >= 0 is stored and a_{l,-m} = (-1)^m conj(a_lm).
+ *
+ * a_lm storage: m-major, complex double, index(l, m) = m (2 lmax + 1 - m)/2 + l
+ * for 0 <= m <= mmax, m <= l <= lmax; clef_alm_size() entries.
+ *
+ * Plan then execute: clef_sht_create() is slow (ring geometry, FFTW plans,
+ * quadrature weights, per-thread scratch) and must be called from one
+ * thread; analysis and synthesis allocate nothing, take a const plan, and
+ * may NOT be called concurrently on the same plan (they share its
+ * scratch); use one plan per concurrent caller.  Work is parallelised
+ * inside each call with OpenMP (threads as set by omp_set_num_threads);
+ * results do not depend on the thread count.
+ */
+#ifndef CLEF_SHT_H
+#define CLEF_SHT_H
+
+#include <complex.h>
+#include <stddef.h>
+#include <stdint.h>
+
+#include "clef/clef.h"
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
+typedef struct clef_sht clef_sht;
+
+typedef struct clef_sht_opts {
+    int mmax;                /* 0 or negative: mmax = lmax */
+    int nmaps;               /* maximum maps per call (scratch is sized for it); 0 = 1 */
+    int no_ring_weights;     /* 1: plain pixel sums in analysis (weights all 1) */
+    unsigned fftw_flags;     /* 0 = FFTW_ESTIMATE (reproducible, fast to plan) */
+    const char *wisdom_file; /* optional FFTW wisdom file, read if present and updated */
+} clef_sht_opts;
+
+/* Make a plan for maps of `nside` (power of two, <= CLEF_NSIDE_MAX) and
+ * multipoles up to lmax (1 <= lmax; values above 3 nside - 1 are allowed
+ * but the transform is then not invertible).  opts may be NULL. */
+int clef_sht_create(clef_sht **out, int64_t nside, int lmax, const clef_sht_opts *opts);
+void clef_sht_destroy(clef_sht *p); /* NULL is a no-op */
+
+int64_t clef_sht_nside(const clef_sht *p);
+int clef_sht_lmax(const clef_sht *p);
+int clef_sht_mmax(const clef_sht *p);
+
+static inline size_t clef_alm_size(int lmax, int mmax)
+{
+    return (size_t)(mmax + 1) * (size_t)(lmax + 1) - (size_t)mmax * (size_t)(mmax + 1) / 2;
+}
+static inline size_t clef_alm_index(int lmax, int l, int m)
+{
+    return (size_t)m * (size_t)(2 * lmax + 1 - m) / 2 + (size_t)l;
+}
+
+/* Synthesis: nmaps a_lm sets -> nmaps RING maps of npix doubles.  The
+ * Legendre recurrence is shared between the maps. */
+int clef_sht_synthesis(const clef_sht *p, int nmaps, const double complex *const *alm,
+                       double *const *map);
+
+/* Analysis: nmaps RING maps -> a_lm, with ring quadrature weights and
+ * `iterations` Jacobi refinement steps (a <- a + A(m - S a)); 3 is the
+ * usual compromise, 0 is a single pass.  Maps are read only; pixels to
+ * exclude must already be zero (multiply by the mask first). */
+int clef_sht_analysis(const clef_sht *p, int nmaps, const double *const *map,
+                      double complex *const *alm, int iterations);
+
+/* Normalised associated Legendre functions lambda_lm(z) = Y_lm(theta, 0),
+ * z = cos theta, for fixed m and l = m..lmax into out[l - m], using the
+ * same scaled recurrence as the transform (no underflow for lmax up to
+ * 3 * 8192).  Values below ~1e-300 come out as 0. */
+int clef_legendre_lambda(int lmax, int m, double z, double *out);
+
+/* Angular power spectrum from a_lm: cl[l] = (Re(a_l0 b_l0*) + 2 sum_{m>0}
+ * Re(a_lm b_lm*)) / (2l+1), l = 0..lmax; b = a (or NULL) gives the auto
+ * spectrum.  Assumes mmax = lmax. */
+int clef_alm_cl(int lmax, int mmax, const double complex *a, const double complex *b,
+                double *cl);
+
+/* a_lm in a FITS binary table of clef's own design (docs/formats.md):
+ * columns L (int32), M (int32), RE, IM (float64), one row per stored (l,m),
+ * m-major; header LMAX, MMAX, CLEFVERS.  Written atomically. */
+int clef_alm_write(const char *path, int lmax, int mmax, const double complex *alm);
+/* Reads into a newly malloc'ed array (caller frees). */
+int clef_alm_read(const char *path, int *lmax, int *mmax, double complex **alm);
+
+#ifdef __cplusplus
+}
+#endif
+#endif

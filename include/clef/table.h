@@ -1,0 +1,75 @@
+/* Band-power tables: the binned spectrum clef produces, in memory and in
+ * files of clef's own design (docs/formats.md): a FITS binary table (HDU 1
+ * "BANDPOWER", one row per bin, units in TUNIT, inputs and options as header
+ * keywords; HDU 2 "BANDCOV", the binned covariance of D as an nbins x nbins
+ * image), a CSV with '#' comment lines carrying the same keywords, and the
+ * covariance as a second CSV if asked.  Also read back (FITS or CSV, chosen
+ * by content) by `clef peak` and `clef plot`, and accepts a few simple
+ * foreign layouts (see clef_bandpowers_read).
+ *
+ * Thread safety: functions on distinct tables may run concurrently.
+ */
+#ifndef CLEF_TABLE_H
+#define CLEF_TABLE_H
+
+#include "clef/clef.h"
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
+/* One header keyword / metadata item (recorded in FITS headers and CSV
+ * comments).  key: at most 8 upper-case FITS characters; text values are
+ * strings, numeric ones are formatted with full precision. */
+typedef struct clef_meta {
+    char key[9];
+    char value[256];   /* text form of the value */
+    int is_number;     /* 1: written as a number (FITS) */
+    char comment[72];
+} clef_meta;
+
+typedef struct clef_bandpowers {
+    int nbins;
+    int *l_lo;         /* first multipole of each bin (inclusive) */
+    int *l_hi;         /* last multipole of each bin (inclusive) */
+    double *l_eff;     /* effective multipole */
+    double *cl;        /* C_b in uK^2 (= 2 pi D_b / (l_eff (l_eff + 1))) */
+    double *dl;        /* D_b = l(l+1) C / 2pi in uK^2 */
+    double *dl_err;    /* 1-sigma error of D_b in uK^2 (sqrt of the covariance diagonal) */
+    double *cov;       /* nbins x nbins covariance of D_b in uK^4, row-major, or NULL */
+    int nmeta;
+    clef_meta *meta;   /* malloc'ed array of nmeta items, or NULL */
+} clef_bandpowers;
+
+/* Allocate a table of nbins rows (arrays zeroed; cov allocated iff with_cov). */
+int clef_bandpowers_alloc(clef_bandpowers **out, int nbins, int with_cov);
+void clef_bandpowers_free(clef_bandpowers *bp); /* NULL is a no-op */
+
+/* Append a metadata item (copied). */
+int clef_bandpowers_meta_text(clef_bandpowers *bp, const char *key, const char *value,
+                              const char *comment);
+int clef_bandpowers_meta_number(clef_bandpowers *bp, const char *key, double value,
+                                const char *comment);
+/* Value of a metadata item, or NULL. */
+const char *clef_bandpowers_meta_get(const clef_bandpowers *bp, const char *key);
+
+/* Write atomically (temporary file + rename).  FITS output passes fitsverify. */
+int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path);
+int clef_bandpowers_write_csv(const clef_bandpowers *bp, const char *path);
+/* Covariance as CSV: one row per bin, nbins comma-separated values. */
+int clef_bandpowers_write_cov_csv(const clef_bandpowers *bp, const char *path);
+
+/* Read a band-power table written by clef (FITS or CSV, detected from the
+ * content), or a plain text table with whitespace/comma-separated columns
+ * "l_eff D [err]" or "l_lo l_hi l_eff C D err" (see docs/formats.md).
+ * Errors name the file, line or column at fault. */
+int clef_bandpowers_read(clef_bandpowers **out, const char *path);
+
+/* SHA-256 of a file's bytes as 64 lower-case hex characters (for run
+ * summaries).  hex must hold 65 bytes. */
+int clef_sha256_file(const char *path, char hex[65]);
+
+#ifdef __cplusplus
+}
+#endif
+#endif

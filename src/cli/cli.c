@@ -1,0 +1,162 @@
+/* Shared command-line helpers: logging and progress on stderr, exit codes,
+ * strict option parsing. */
+#define _POSIX_C_SOURCE 200809L
+#include "cli.h"
+
+#include <errno.h>
+#include <math.h>
+#include <omp.h>
+#include <stdarg.h>
+#include <stdlib.h>
+#include <string.h>
+#include <unistd.h>
+
+#include "clef/clef.h"
+
+int cli_verbosity = 1;
+
+#define MAX_WARNINGS 64
+static char *warnings[MAX_WARNINGS];
+static int nwarnings;
+static int progress_shown;
+
+static void log_hook(void *user, int level, const char *msg)
+{
+    (void)user;
+    if (level == CLEF_LOG_WARN && nwarnings < MAX_WARNINGS)
+        warnings[nwarnings++] = strdup(msg);
+    /* Errors are printed once by cli_fail(), not here. */
+    if (level == CLEF_LOG_ERROR)
+        return;
+    if ((level == CLEF_LOG_WARN && cli_verbosity >= 1) ||
+        (level == CLEF_LOG_INFO && cli_verbosity >= 2) ||
+        (level == CLEF_LOG_DEBUG && cli_verbosity >= 3)) {
+        if (progress_shown) {
+            fputs("\r\033[K", stderr);
+            progress_shown = 0;
+        }
+        fprintf(stderr, "clef: %s%s\n", level == CLEF_LOG_WARN ? "warning: " : "", msg);
+    }
+}
+
+/* A progress line only when stderr is a terminal: batch logs stay clean. */
+static void progress_hook(void *user, const char *stage, double fraction)
+{
+    (void)user;
+    if (fraction >= 1.0) {
+        if (progress_shown)
+            fputs("\r\033[K", stderr);
+        progress_shown = 0;
+        return;
+    }
+    fprintf(stderr, "\r\033[Kclef: %s %3.0f%%", stage, 100.0 * fraction);
+    fflush(stderr);
+    progress_shown = 1;
+}
+
+void cli_setup_logging(void)
+{
+    clef_set_log(log_hook, NULL);
+    if (cli_verbosity >= 1 && isatty(STDERR_FILENO))
+        clef_set_progress(progress_hook, NULL);
+    else
+        clef_set_progress(NULL, NULL);
+}
+
+int cli_nwarnings(void) { return nwarnings; }
+const char *cli_warning(int i) { return (i >= 0 && i < nwarnings) ? warnings[i] : ""; }
+
+int cli_fail(int status)
+{
+    if (progress_shown) {
+        fputs("\r\033[K", stderr);
+        progress_shown = 0;
+    }
+    const char *msg = clef_last_error();
+    fprintf(stderr, "clef: error: %s\n", *msg ? msg : clef_strerror(status));
+    switch (status) {
+    case CLEF_OK: return CLI_EXIT_OK;
+    case CLEF_EINVAL: return CLI_EXIT_INVALID;
+    case CLEF_EIO: return CLI_EXIT_IO;
+    case CLEF_EFORMAT: return CLI_EXIT_FORMAT;
+    case CLEF_ENUMERIC: return CLI_EXIT_NUMERIC;
+    case CLEF_EUNSUP: return CLI_EXIT_UNSUP;
+    case CLEF_ENOMEM: return CLI_EXIT_NOMEM;
+    default: return CLI_EXIT_INVALID;
+    }
+}
+
+int cli_usage_error(const char *cmd, const char *fmt, ...)
+{
+    va_list ap;
+    fprintf(stderr, "clef %s: ", cmd);
+    va_start(ap, fmt);
+    vfprintf(stderr, fmt, ap);
+    va_end(ap);
+    fprintf(stderr, "\nTry 'clef %s --help'.\n", cmd);
+    return CLI_EXIT_USAGE;
+}
+
+int cli_parse_long(const char *cmd, const char *opt, const char *s, long *out)
+{
+    char *end;
+    errno = 0;
+    long v = strtol(s, &end, 10);
+    if (errno || end == s || *end) {
+        cli_usage_error(cmd, "option %s expects an integer, got '%s'", opt, s);
+        return 1;
+    }
+    *out = v;
+    return 0;
+}
+
+int cli_parse_double(const char *cmd, const char *opt, const char *s, double *out)
+{
+    char *end;
+    errno = 0;
+    double v = strtod(s, &end);
+    if (errno || end == s || *end || !isfinite(v)) {
+        cli_usage_error(cmd, "option %s expects a number, got '%s'", opt, s);
+        return 1;
+    }
+    *out = v;
+    return 0;
+}
+
+int cli_set_threads(const char *cmd, const char *s)
+{
+    long n;
+    if (cli_parse_long(cmd, "--threads", s, &n))
+        return 1;
+    if (n < 0 || n > 1024) {
+        cli_usage_error(cmd, "--threads must be between 0 and 1024, got %ld", n);
+        return 1;
+    }
+    if (n > 0)
+        omp_set_num_threads((int)n);
+    return 0;
+}
+
+void cli_info(const char *fmt, ...)
+{
+    if (cli_verbosity < 1)
+        return;
+    va_list ap;
+    va_start(ap, fmt);
+    fputs("clef: ", stderr);
+    vfprintf(stderr, fmt, ap);
+    fputc('\n', stderr);
+    va_end(ap);
+}
+
+void cli_verbose(const char *fmt, ...)
+{
+    if (cli_verbosity < 2)
+        return;
+    va_list ap;
+    va_start(ap, fmt);
+    fputs("clef: ", stderr);
+    vfprintf(stderr, fmt, ap);
+    fputc('\n', stderr);
+    va_end(ap);
+}

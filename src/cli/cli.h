@@ -1,0 +1,68 @@
+/* The command-line layer: shared helpers for the subcommands.  Only this
+ * layer parses arguments, prints, and decides exit codes. */
+#ifndef CLEF_CLI_H
+#define CLEF_CLI_H
+
+#include <stdio.h>
+
+/* Documented exit codes (docs/exit-codes.md). */
+enum cli_exit {
+    CLI_EXIT_OK = 0,
+    CLI_EXIT_USAGE = 2,    /* bad command line */
+    CLI_EXIT_INVALID = 3,  /* CLEF_EINVAL: an input value is invalid */
+    CLI_EXIT_IO = 4,       /* CLEF_EIO: cannot read or write a file */
+    CLI_EXIT_FORMAT = 5,   /* CLEF_EFORMAT: a file's content is malformed */
+    CLI_EXIT_NUMERIC = 6,  /* CLEF_ENUMERIC: singular or ill-conditioned problem */
+    CLI_EXIT_UNSUP = 7,    /* CLEF_EUNSUP: a request clef does not support */
+    CLI_EXIT_NOMEM = 8,    /* CLEF_ENOMEM */
+    CLI_EXIT_NOPEAK = 9    /* clef peak --require: no peak found */
+};
+
+/* A subcommand: run() gets argv with argv[0] = the subcommand name. */
+typedef struct cli_command {
+    const char *name;
+    const char *summary;
+    int (*run)(int argc, char **argv);
+} cli_command;
+
+/* 0 = --quiet (errors only), 1 = normal (warnings too), 2 = --verbose. */
+extern int cli_verbosity;
+
+/* Install the log and progress hooks according to cli_verbosity.  Warnings
+ * are also collected for run summaries: cli_warnings(). */
+void cli_setup_logging(void);
+int cli_nwarnings(void);
+const char *cli_warning(int i);
+
+/* Map a library status to an exit code, printing clef_last_error(). */
+int cli_fail(int status);
+/* Print "clef <cmd>: <message>" and return CLI_EXIT_USAGE. */
+int cli_usage_error(const char *cmd, const char *fmt, ...)
+#if defined(__GNUC__)
+    __attribute__((format(printf, 2, 3)))
+#endif
+    ;
+
+/* Strict number parsing for option values; on error print a message naming
+ * the option and the value and return nonzero. */
+int cli_parse_long(const char *cmd, const char *opt, const char *s, long *out);
+int cli_parse_double(const char *cmd, const char *opt, const char *s, double *out);
+
+/* --threads N: set the OpenMP thread count (0 = leave the default). */
+int cli_set_threads(const char *cmd, const char *s);
+
+/* Message at info level (shown unless --quiet) and verbose level. */
+void cli_info(const char *fmt, ...)
+#if defined(__GNUC__)
+    __attribute__((format(printf, 1, 2)))
+#endif
+    ;
+void cli_verbose(const char *fmt, ...)
+#if defined(__GNUC__)
+    __attribute__((format(printf, 1, 2)))
+#endif
+    ;
+
+/* Subcommands, one file each under src/cli/ (one declaration per line). */
+
+#endif

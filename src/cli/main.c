@@ -1,0 +1,48 @@
+/* clef: entry point and subcommand dispatch. */
+#include <stdio.h>
+#include <string.h>
+
+#include "clef/clef.h"
+#include "cli.h"
+
+/* One line per subcommand; the table ends with an empty entry. */
+static const cli_command commands[] = {
+    {NULL, NULL, NULL},
+};
+
+static void usage(FILE *f)
+{
+    fprintf(f,
+            "Usage: clef [--version] [--help] COMMAND [OPTIONS] [ARGS]\n\n"
+            "clef turns HEALPix sky maps into angular power spectra.\n\n"
+            "Commands:\n");
+    for (int i = 0; commands[i].name; i++)
+        fprintf(f, "  %-10s %s\n", commands[i].name, commands[i].summary);
+    fprintf(f,
+            "\nEvery command takes --help, --quiet, --verbose.\n"
+            "Exit codes: 0 ok, 2 usage, 3 invalid input, 4 I/O error, 5 bad file format,\n"
+            "6 numerical failure, 7 unsupported, 8 out of memory, 9 no peak found (peak --require).\n");
+}
+
+int main(int argc, char **argv)
+{
+    if (argc < 2) {
+        usage(stderr);
+        return CLI_EXIT_USAGE;
+    }
+    const char *name = argv[1];
+    if (!strcmp(name, "--help") || !strcmp(name, "-h") || !strcmp(name, "help")) {
+        usage(stdout);
+        return CLI_EXIT_OK;
+    }
+    if (!strcmp(name, "--version") || !strcmp(name, "-V")) {
+        printf("clef %s\n", CLEF_VERSION);
+        return CLI_EXIT_OK;
+    }
+    for (int i = 0; commands[i].name; i++)
+        if (!strcmp(name, commands[i].name))
+            return commands[i].run(argc - 1, argv + 1);
+    fprintf(stderr, "clef: unknown command '%s'\n\n", name);
+    usage(stderr);
+    return CLI_EXIT_USAGE;
+}
