@@ -65,10 +65,6 @@ int clef_bandpowers_write_cov_csv(const clef_bandpowers *bp, const char *path);
  * Errors name the file, line or column at fault. */
 int clef_bandpowers_read(clef_bandpowers **out, const char *path);
 
-/* SHA-256 of a file's bytes as 64 lower-case hex characters (for run
- * summaries).  hex must hold 65 bytes. */
-int clef_sha256_file(const char *path, char hex[65]);
-
 #ifdef __cplusplus
 }
 #endif
