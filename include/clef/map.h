@@ -58,6 +58,11 @@ typedef struct clef_map_read_opts {
      * (1-based, as in FITS); any other text = the column with that TTYPE
      * (case-insensitive). */
     const char *column;
+    /* Ordering to assume when the table has no ORDERING keyword: NULL = none
+     * (a missing ORDERING is then CLEF_EFORMAT), "RING" or "NESTED"
+     * (case-insensitive).  A file whose ORDERING keyword differs from it is
+     * refused with CLEF_EINVAL. */
+    const char *ordering;
 } clef_map_read_opts;
 
 /* Read one map.  On failure *out is NULL and the message names the file,
