@@ -357,9 +357,339 @@ static void test_singular_and_errors(void **state)
     assert_int_equal(clef_coupling_width(NULL, 2 * L, 1e-2), 0);
 }
 
+
+/* ---- coupling cache ---- */
+
+static char warnings[8192];
+static void capture_log(void *user, int level, const char *msg)
+{
+    (void)user;
+    if (level == CLEF_LOG_WARN && strlen(warnings) + strlen(msg) + 2 < sizeof warnings) {
+        strcat(warnings, msg);
+        strcat(warnings, "\n");
+    }
+}
+
+/* Path of the single cache file of a kind ("M" or "K") in dir. */
+static void find_cache_file(const char *dir, const char *kind, char *out, size_t n)
+{
+    char cmd[2048];
+    snprintf(cmd, sizeof cmd, "ls %s/coupling-%s-*.bin", dir, kind);
+    FILE *p = popen(cmd, "r");
+    assert_non_null(p);
+    out[0] = '\0';
+    assert_non_null(fgets(out, (int)n, p));
+    out[strcspn(out, "\n")] = '\0';
+    pclose(p);
+}
+
+static size_t count_files(const char *dir)
+{
+    char cmd[2048], line[64];
+    snprintf(cmd, sizeof cmd, "ls -A %s | wc -l", dir);
+    FILE *p = popen(cmd, "r");
+    assert_non_null(p);
+    assert_non_null(fgets(line, sizeof line, p));
+    pclose(p);
+    return (size_t)atol(line);
+}
+
+static void assert_same_matrix(const clef_coupling *a, const clef_coupling *b)
+{
+    const size_t n = (size_t)clef_coupling_lmax(a) + 1;
+    assert_int_equal(clef_coupling_lmax(a), clef_coupling_lmax(b));
+    assert_memory_equal(clef_coupling_matrix(a), clef_coupling_matrix(b), n * n * sizeof(double));
+}
+
+static void test_cache_hit_and_keys(void **state)
+{
+    (void)state;
+    enum { L = 120 };
+    static double wl[2 * L + 1], wl2[2 * L + 1], tr[L + 1];
+    cap_wl(0.2, 2 * L, wl);
+    cap_wl(0.25, 2 * L, wl2);
+    const char *dir = test_path("cache-hit");
+    clef_coupling *c0, *c1, *c2;
+    int hit = -1;
+    assert_int_equal(clef_coupling_create(&c0, L, wl, 2 * L), CLEF_OK);
+    assert_int_equal(clef_coupling_create_cached(&c1, L, wl, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_int_equal(clef_coupling_create_cached(&c2, L, wl, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 1);
+    assert_same_matrix(c0, c1);
+    assert_same_matrix(c0, c2);
+    clef_coupling_destroy(c1);
+    clef_coupling_destroy(c2);
+    /* another lmax or W_l is another key */
+    assert_int_equal(clef_coupling_create_cached(&c1, L - 1, wl, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_destroy(c1);
+    assert_int_equal(clef_coupling_create_cached(&c1, L, wl2, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_destroy(c1);
+
+    /* binned: miss, then hit (which skips M), same operator */
+    clef_bins *bins, *bins2;
+    assert_int_equal(clef_bins_create_linear(&bins, 2, 10, L, CLEF_BINS_DL), CLEF_OK);
+    assert_int_equal(clef_bins_create_linear(&bins2, 2, 12, L, CLEF_BINS_DL), CLEF_OK);
+    for (int l = 0; l <= L; l++)
+        tr[l] = exp(-l / 300.0);
+    clef_coupling_binned *k0, *k1, *k2;
+    assert_int_equal(clef_coupling_binned_create(&k0, c0, bins, tr, NULL), CLEF_OK);
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins, tr, NULL, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k2, L, wl, 2 * L, bins, tr, NULL, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 1);
+    const int nb = clef_bins_count(bins);
+    assert_memory_equal(clef_coupling_binned_matrix(k0), clef_coupling_binned_matrix(k2),
+                        (size_t)nb * nb * sizeof(double));
+    assert_memory_equal(clef_coupling_binned_kinv_p(k0), clef_coupling_binned_kinv_p(k2),
+                        (size_t)nb * (L + 1) * sizeof(double));
+    clef_coupling_binned_destroy(k1);
+    clef_coupling_binned_destroy(k2);
+    /* other bins, other transfer, no transfer: misses */
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins2, tr, NULL, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_binned_destroy(k1);
+    tr[7] *= 1.0000001;
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins, tr, NULL, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_binned_destroy(k1);
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins, NULL, NULL, dir, &hit),
+        CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_binned_destroy(k1);
+    /* ill-conditioned through the cached path: the error, nothing cached */
+    clef_coupling_opts o;
+    clef_coupling_opts_default(&o);
+    o.rcond_min = 0.9999;
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins2, NULL, &o, dir, &hit),
+        CLEF_ENUMERIC);
+    assert_null(k1);
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins2, tr, NULL, dir, NULL),
+        CLEF_OK);
+    clef_coupling_binned_destroy(k1);
+    /* argument errors of the cached path */
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L - 20, wl, 2 * L, bins2, NULL, NULL, dir, NULL),
+        CLEF_EINVAL);
+    assert_non_null(strstr(clef_last_error(), "above the coupling matrix lmax"));
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, NULL, 2 * L, bins2, NULL, NULL, dir, NULL),
+        CLEF_EINVAL);
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, NULL, NULL, NULL, dir, NULL),
+        CLEF_EINVAL);
+    assert_int_equal(clef_coupling_create_cached(&c1, -3, wl, 2 * L, dir, NULL), CLEF_EINVAL);
+    clef_coupling_binned_destroy(k0);
+    clef_bins_destroy(bins);
+    clef_bins_destroy(bins2);
+    clef_coupling_destroy(c0);
+}
+
+static void test_cache_corrupt_and_mismatch(void **state)
+{
+    (void)state;
+    enum { L = 100 };
+    static double wla[2 * L + 1], wlb[2 * L + 1];
+    cap_wl(0.1, 2 * L, wla);
+    cap_wl(-0.3, 2 * L, wlb);
+    const char *dir = test_path("cache-bad");
+    char fa[2048], fb[2048];
+    clef_coupling *ca, *cb, *c;
+    int hit;
+    clef_set_log(capture_log, NULL);
+    assert_int_equal(clef_coupling_create(&ca, L, wla, 2 * L), CLEF_OK);
+    assert_int_equal(clef_coupling_create(&cb, L, wlb, 2 * L), CLEF_OK);
+
+    /* Corrupted payload: one flipped byte -> warning, recomputed, rewritten. */
+    assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, dir, &hit), CLEF_OK);
+    clef_coupling_destroy(c);
+    find_cache_file(dir, "M", fa, sizeof fa);
+    FILE *f = fopen(fa, "r+b");
+    assert_non_null(f);
+    fseek(f, 184 + 8 * 5000 + 3, SEEK_SET);
+    const int byte = fgetc(f);
+    fseek(f, 184 + 8 * 5000 + 3, SEEK_SET);
+    fputc(byte ^ 0x10, f);
+    fclose(f);
+    warnings[0] = '\0';
+    assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_non_null(strstr(warnings, "corrupted (payload checksum mismatch)"));
+    assert_same_matrix(c, ca);
+    clef_coupling_destroy(c);
+    assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 1);
+    clef_coupling_destroy(c);
+
+    /* Truncated file */
+    assert_int_equal(truncate(fa, 184 + 800), 0);
+    warnings[0] = '\0';
+    assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_non_null(strstr(warnings, "wrong length"));
+    assert_same_matrix(c, ca);
+    clef_coupling_destroy(c);
+    /* Header damage: bad magic, other format version */
+    const struct {
+        long off;
+        const char *want;
+    } dmg[] = {{0, "bad magic"}, {8, "format version"}, {16, "kind"}};
+    for (size_t i = 0; i < sizeof dmg / sizeof dmg[0]; i++) {
+        f = fopen(fa, "r+b");
+        assert_non_null(f);
+        fseek(f, dmg[i].off, SEEK_SET);
+        fputc('#', f);
+        fclose(f);
+        warnings[0] = '\0';
+        assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, dir, &hit), CLEF_OK);
+        assert_int_equal(hit, 0);
+        assert_non_null(strstr(warnings, dmg[i].want));
+        assert_same_matrix(c, ca);
+        clef_coupling_destroy(c);
+    }
+
+    /* Mismatched key: the file for W_a placed under W_b's name is not used. */
+    assert_int_equal(clef_coupling_create_cached(&c, L, wlb, 2 * L, dir, &hit), CLEF_OK);
+    clef_coupling_destroy(c);
+    char cmd[4200];
+    snprintf(cmd, sizeof cmd, "ls %s/coupling-M-*.bin | grep -v %s", dir, strrchr(fa, '/') + 1);
+    FILE *p = popen(cmd, "r");
+    assert_non_null(fgets(fb, sizeof fb, p));
+    pclose(p);
+    fb[strcspn(fb, "\n")] = '\0';
+    assert_int_equal(run_cmd("cp %s %s", fa, fb), 0);
+    warnings[0] = '\0';
+    assert_int_equal(clef_coupling_create_cached(&c, L, wlb, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_non_null(strstr(warnings, "key mismatch"));
+    assert_same_matrix(c, cb);
+    clef_coupling_destroy(c);
+
+    /* An unusable folder: a warning, the matrix is still computed. */
+    warnings[0] = '\0';
+    const char *blocker = test_path("cache-blocker");
+    f = fopen(blocker, "w");
+    fclose(f);
+    char bad_dir[1100];
+    snprintf(bad_dir, sizeof bad_dir, "%s/sub", blocker);
+    assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, bad_dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_non_null(strstr(warnings, "cannot create folder"));
+    assert_same_matrix(c, ca);
+    clef_coupling_destroy(c);
+    clef_set_log(NULL, NULL);
+    clef_coupling_destroy(ca);
+    clef_coupling_destroy(cb);
+}
+
+/* Two processes computing the same cache entry at once leave one valid
+ * file and no temporary files. */
+static void test_cache_concurrent_writers(void **state)
+{
+    (void)state;
+    enum { L = 400, NCHILD = 3, ROUNDS = 4 };
+    static double wl[2 * L + 1];
+    cap_wl(0.05, 2 * L, wl);
+    const char *dir = test_path("cache-race");
+    int go[2];
+    assert_int_equal(pipe(go), 0);
+    pid_t pid[NCHILD];
+    for (int i = 0; i < NCHILD; i++) {
+        pid[i] = fork();
+        assert_true(pid[i] >= 0);
+        if (pid[i] == 0) {
+            close(go[1]);
+            char x;
+            if (read(go[0], &x, 1) != 0)
+                _exit(3);
+            /* Each round removes the entry and recomputes it, so the
+             * writers overlap again and again. */
+            int bad = 0;
+            for (int r = 0; r < ROUNDS; r++) {
+                clef_coupling *c;
+                char cmd[1200];
+                snprintf(cmd, sizeof cmd, "rm -f %s/coupling-M-*.bin", dir);
+                if (r % 2 == i % 2 && system(cmd) != 0)
+                    bad = 1;
+                if (clef_coupling_create_cached(&c, L, wl, 2 * L, dir, NULL) != CLEF_OK)
+                    bad = 1;
+                clef_coupling_destroy(c);
+            }
+            _exit(bad);
+        }
+    }
+    close(go[0]);
+    close(go[1]); /* releases all children at once */
+    for (int i = 0; i < NCHILD; i++) {
+        int st;
+        assert_int_equal(waitpid(pid[i], &st, 0), pid[i]);
+        assert_true(WIFEXITED(st) && WEXITSTATUS(st) == 0);
+    }
+    /* Either the last writer's file or nothing (a child removed it last);
+     * never a temporary file, and a present file is valid. */
+    const size_t nfiles = count_files(dir);
+    assert_true(nfiles <= 1);
+    int hit;
+    clef_coupling *c, *ref;
+    warnings[0] = '\0';
+    clef_set_log(capture_log, NULL);
+    assert_int_equal(clef_coupling_create_cached(&c, L, wl, 2 * L, dir, &hit), CLEF_OK);
+    clef_set_log(NULL, NULL);
+    assert_string_equal(warnings, "");
+    assert_int_equal(hit, nfiles == 1);
+    assert_int_equal(clef_coupling_create(&ref, L, wl, 2 * L), CLEF_OK);
+    assert_same_matrix(c, ref);
+    assert_int_equal(count_files(dir), 1);
+    clef_coupling_destroy(c);
+    clef_coupling_destroy(ref);
+}
+
+static void test_cache_dir(void **state)
+{
+    (void)state;
+    char buf[4096];
+    char *saved[3];
+    const char *names[3] = {"CLEF_CACHE_DIR", "XDG_CACHE_HOME", "HOME"};
+    for (int i = 0; i < 3; i++) {
+        const char *v = getenv(names[i]);
+        saved[i] = v ? strdup(v) : NULL;
+    }
+    setenv("CLEF_CACHE_DIR", "/tmp/c1", 1);
+    setenv("XDG_CACHE_HOME", "/tmp/x", 1);
+    setenv("HOME", "/tmp/h", 1);
+    assert_int_equal(clef_coupling_cache_dir("/tmp/arg", buf, sizeof buf), CLEF_OK);
+    assert_string_equal(buf, "/tmp/arg");
+    assert_int_equal(clef_coupling_cache_dir(NULL, buf, sizeof buf), CLEF_OK);
+    assert_string_equal(buf, "/tmp/c1");
+    unsetenv("CLEF_CACHE_DIR");
+    assert_int_equal(clef_coupling_cache_dir("", buf, sizeof buf), CLEF_OK);
+    assert_string_equal(buf, "/tmp/x/clef");
+    unsetenv("XDG_CACHE_HOME");
+    assert_int_equal(clef_coupling_cache_dir(NULL, buf, sizeof buf), CLEF_OK);
+    assert_string_equal(buf, "/tmp/h/.cache/clef");
+    unsetenv("HOME");
+    assert_int_equal(clef_coupling_cache_dir(NULL, buf, sizeof buf), CLEF_EINVAL);
+    assert_non_null(strstr(clef_last_error(), "CLEF_CACHE_DIR"));
+    assert_int_equal(clef_coupling_cache_dir("/tmp/arg", buf, 4), CLEF_EINVAL);
+    for (int i = 0; i < 3; i++) {
+        if (saved[i])
+            setenv(names[i], saved[i], 1);
+        free(saved[i]);
+    }
+}
 int main(void)
 {
     const struct CMUnitTest tests[] = {
+        cmocka_unit_test(test_cache_concurrent_writers),
         cmocka_unit_test(test_full_sky_identity),
         cmocka_unit_test(test_hemisphere),
         cmocka_unit_test(test_row_sums_and_symmetry),
@@ -367,6 +697,9 @@ int main(void)
         cmocka_unit_test(test_binned_recovers_band_powers),
         cmocka_unit_test(test_ill_conditioned),
         cmocka_unit_test(test_singular_and_errors),
+        cmocka_unit_test(test_cache_hit_and_keys),
+        cmocka_unit_test(test_cache_corrupt_and_mismatch),
+        cmocka_unit_test(test_cache_dir),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

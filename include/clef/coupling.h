@@ -25,6 +25,10 @@
  * LU factors and K^-1 P.  Both are immutable after creation, so concurrent
  * reads are safe.  Creation runs OpenMP-parallel (threads as set by
  * omp_set_num_threads) and reports progress as stage "coupling".
+ *
+ * Cache (src/coupling_cache.c, docs/coupling.md): M and K can be stored
+ * in a cache folder, one file per key, the key being the SHA-256 of every
+ * input that changes them (W_l, lmax, bins, transfer array, clef version).
  */
 #ifndef CLEF_COUPLING_H
 #define CLEF_COUPLING_H
@@ -99,6 +103,30 @@ const double *clef_coupling_binned_kinv_p(const clef_coupling_binned *k);
  * bins, C_b for CLEF_BINS_FLAT. */
 void clef_coupling_binned_decouple(const clef_coupling_binned *k, const double *pcl,
                                    double *band);
+
+/* ---- cache (src/coupling_cache.c) ---- */
+
+/* The cache folder: cache_dir if non-NULL and non-empty, else
+ * $CLEF_CACHE_DIR, else $XDG_CACHE_HOME/clef, else $HOME/.cache/clef.
+ * Errors: CLEF_EINVAL when none is set or the name does not fit in n. */
+int clef_coupling_cache_dir(const char *cache_dir, char *buf, size_t n);
+
+/* Like clef_coupling_create, but first look for M in the cache folder
+ * (key: SHA-256 of lmax, wl_lmax, the W_l bytes and the clef version); on a
+ * miss compute it and store it.  *hit (may be NULL) is 1 on a hit.  Cache
+ * problems (unreadable, corrupt or mismatched file, unwritable folder) are
+ * logged as warnings and never fail the call: M is then recomputed. */
+int clef_coupling_create_cached(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
+                                const char *cache_dir, int *hit);
+
+/* Like clef_coupling_binned_create from W_l, with K cached under a key
+ * that adds the bins (edges and weighting) and the transfer array; a hit
+ * skips M entirely (only the small LU is redone).  A miss gets M through
+ * clef_coupling_create_cached.  Errors as clef_coupling_binned_create. */
+int clef_coupling_binned_create_cached(clef_coupling_binned **out, int lmax, const double *wl,
+                                       int wl_lmax, const clef_bins *bins,
+                                       const double *transfer, const clef_coupling_opts *opts,
+                                       const char *cache_dir, int *hit);
 
 #ifdef __cplusplus
 }
