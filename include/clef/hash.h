@@ -5,7 +5,12 @@
  * _final.  One-shot helpers hash a buffer or a whole file.  Digests are 32
  * bytes; the hex form is 64 lower-case characters plus a terminating NUL.
  *
- * Thread safety: no shared state; a context must not be used by two
+ * On x86-64 CPUs with the SHA extensions the block function uses them
+ * (several times faster); setting the environment variable CLEF_NO_SHA_NI
+ * before the first digest forces the portable code.
+ *
+ * Thread safety: no shared state (apart from a CPU-feature flag set once,
+ * benignly); a context must not be used by two
  * threads at once.
  */
 #ifndef CLEF_HASH_H
