@@ -6,7 +6,7 @@
  *
  * Both directions stream through a buffer of CHUNK values: one CFITSIO call
  * moves up to a million values, never one pixel. */
-#define _POSIX_C_SOURCE 200809L
+#define _GNU_SOURCE /* mkstemps */
 #include "clef/map.h"
 #include "core_impl.h"
 
@@ -19,6 +19,7 @@
 #include <string.h>
 #include <strings.h>
 #include <sys/stat.h>
+#include <unistd.h>
 
 /* Values moved per CFITSIO call (8 MiB of doubles). */
 #define CHUNK ((int64_t)1 << 20)
@@ -678,6 +679,26 @@ static void write_header(fitsfile *f, const clef_map *m, const clef_map_write_op
         fits_write_history(f, opts->history, st);
 }
 
+/* CFITSIO gzips its output when the first ".gz" in the name ends it (it
+ * searches for the first occurrence).  The temporary name from
+ * clef_outfile_begin holds the whole output name, so it cannot serve: make a
+ * second unique file "<folder>/.clef-XXXXXX.gz", which is moved onto the
+ * temporary name once complete. */
+static int gz_temp(const char *tmp_path, char *out, size_t n)
+{
+    const char *slash = strrchr(tmp_path, '/');
+    const int dirlen = slash ? (int)(slash - tmp_path) + 1 : 0;
+    snprintf(out, n, "%.*s.clef-XXXXXX.gz", dirlen, tmp_path);
+    if (strstr(out, ".gz") != out + strlen(out) - 3)
+        CLEF_FAIL(CLEF_EUNSUP, "cannot write gzip output into folder '%.*s': its name contains "
+                  "'.gz'", dirlen, tmp_path);
+    const int fd = mkstemps(out, 3);
+    if (fd < 0)
+        CLEF_FAIL(CLEF_EIO, "cannot create a temporary file '%s': %s", out, strerror(errno));
+    close(fd);
+    return CLEF_OK;
+}
+
 int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opts *opts)
 {
     if (!m || !m->pix || !m->valid)
@@ -706,8 +727,12 @@ int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opt
     int status = CLEF_OK, st = 0;
     fitsfile *f = NULL;
     double *buf = NULL;
-    char name[4200];
-    snprintf(name, sizeof name, "!%s", of.tmp_path);
+    const size_t plen = strlen(path);
+    const int gz = plen > 3 && !strcmp(path + plen - 3, ".gz");
+    char gz_path[4200] = "", name[4200];
+    if (gz)
+        CLEF_CHECK(gz_temp(of.tmp_path, gz_path, sizeof gz_path));
+    snprintf(name, sizeof name, "!%s", gz ? gz_path : of.tmp_path);
     fits_create_file(&f, name, &st);
     if (st) {
         f = NULL;
@@ -753,6 +778,12 @@ int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opt
         goto fail;
     }
     free(buf);
+    buf = NULL;
+    if (gz && rename(gz_path, of.tmp_path) != 0) {
+        status = clef_fail(CLEF_EIO, "cannot rename '%s' to '%s': %s", gz_path, of.tmp_path,
+                           strerror(errno));
+        goto fail;
+    }
     return clef_outfile_commit(&of);
 
 fail:
@@ -762,6 +793,8 @@ fail:
         fits_clear_errmsg();
     }
     free(buf);
+    if (gz_path[0])
+        unlink(gz_path);
     clef_outfile_abort(&of);
     return status;
 }
