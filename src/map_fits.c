@@ -320,6 +320,9 @@ static int read_header(reader *r, const clef_map_read_opts *opts, clef_map *m)
     char val[FLEN_VALUE];
     int found, st = 0;
 
+    CLEF_TRY(key_string(r, "PIXTYPE", val, &found));
+    if (found && strcasecmp(val, "HEALPIX"))
+        CLEF_FAIL(CLEF_EFORMAT, "%s: keyword PIXTYPE = '%s', not a HEALPix map", r->where, val);
     /* Parsed from the card text: CFITSIO would silently truncate 2.5 to 2. */
     CLEF_TRY(key_string(r, "NSIDE", val, &found));
     if (!found)

@@ -720,7 +720,7 @@ static void write_custom(const char *path, int ncol, char **ttype, char **tform,
 }
 
 /* Rarer format errors and header variants: a text column, a variable-length
- * column, an unknown INDXSCHM, PIXEL and value columns of different
+ * column, an unknown INDXSCHM, another PIXTYPE, PIXEL and value columns of different
  * widths, a non-integer NSIDE, long COORDSYS names, an unknown COORDSYS,
  * a file-specific BAD_DATA value, a wrong NPIX (ignored). */
 static void test_header_variants(void **state)
@@ -750,6 +750,11 @@ static void test_header_variants(void **state)
     expect_read_fail(path, NULL, CLEF_EFORMAT, "the PIXEL column has 2 values per row");
     const clef_map_read_opts pixsel = {.column = "PIXEL"};
     expect_read_fail(path, &pixsel, CLEF_EINVAL, "is the PIXEL index");
+
+    const char *grid[] = {"PIXTYPE = 'GLESP   '", "NSIDE   =                    1",
+                          "ORDERING= 'RING    '"};
+    write_custom(path, 1, tt3, tf3, grid, 3);
+    expect_read_fail(path, NULL, CLEF_EFORMAT, "PIXTYPE = 'GLESP', not a HEALPix map");
 
     const char *fl[] = {"NSIDE   =                  2.5", "ORDERING= 'RING    '"};
     write_custom(path, 1, tt3, tf3, fl, 2);
