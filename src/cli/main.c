@@ -7,6 +7,7 @@
 
 /* One line per subcommand; the table ends with an empty entry. */
 static const cli_command commands[] = {
+    {"peak", "locate the first acoustic peak in a band-power table", cmd_peak},
     {NULL, NULL, NULL},
 };
 
