@@ -65,5 +65,7 @@ void cli_verbose(const char *fmt, ...)
 
 /* Subcommands, one file each under src/cli/ (one declaration per line). */
 int cmd_peak(int argc, char **argv);
+int cmd_model(int argc, char **argv);
+int cmd_geometry(int argc, char **argv);
 
 #endif
