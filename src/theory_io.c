@@ -64,6 +64,16 @@ static int parse_columns(const char *path, long line_no, char *spec, layout *lay
     return CLEF_OK;
 }
 
+/* The "columns:" tag in a comment line, in any letter case, or NULL. */
+static char *find_columns_tag(char *s)
+{
+    static const char tag[] = "columns:";
+    for (; *s; s++)
+        if (!strncasecmp(s, tag, sizeof tag - 1))
+            return s;
+    return NULL;
+}
+
 /* Split a data line into numbers; returns the count or -1 on a bad token. */
 static int split_numbers(char *s, double *v, int nmax)
 {
@@ -99,9 +109,7 @@ static int read_body(FILE *f, const char *path, int lmax, double *cl, unsigned c
         if (!*s)
             continue;
         if (*s == '#') {
-            char *c = strstr(s, "columns:");
-            if (!c)
-                c = strstr(s, "COLUMNS:");
+            char *c = find_columns_tag(s);
             if (c)
                 CLEF_CHECK(parse_columns(path, line_no, c + 8, &lay));
             continue;
