@@ -88,6 +88,10 @@ int clef_cosmo_zstar(const clef_cosmo_params *p, double *zstar);
 /* Baryon loading R(z) = 3 rho_b / (4 rho_gamma) = 3 omega_b / (4 omega_gamma (1+z)). */
 int clef_cosmo_baryon_loading(const clef_cosmo_params *p, double z, double *r);
 
+/* Sound speed of the photon-baryon fluid in units of c:
+ * c_s / c = 1 / sqrt(3 (1 + R(z))). */
+int clef_cosmo_sound_speed(const clef_cosmo_params *p, double z, double *cs);
+
 /* Comoving sound horizon r_s(z) = int_z^inf c_s dz' / H(z'), with
  * c_s = c / sqrt(3 (1 + R)), in Mpc. */
 int clef_cosmo_sound_horizon(const clef_cosmo_params *p, double z, double *rs);
