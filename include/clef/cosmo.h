@@ -19,10 +19,10 @@
  * Errors: every function validates the parameters (clef_cosmo_check) and
  * returns CLEF_EINVAL for unphysical ones; CLEF_ENUMERIC if an integral
  * does not converge; CLEF_ENOMEM.
- * Thread safety: all functions are reentrant.  The first call switches
- * GSL's abort-on-error handler off (gsl_set_error_handler_off) because the
- * library must never abort; call any clef_cosmo function once before
- * starting threads, or switch it off yourself.
+ * Thread safety: all functions are reentrant.  The first integral switches
+ * GSL's abort-on-error handler off process-wide (gsl_set_error_handler_off,
+ * once, under pthread_once) because the library must never abort; a caller
+ * relying on GSL's default handler elsewhere should know this.
  */
 #ifndef CLEF_COSMO_H
 #define CLEF_COSMO_H
