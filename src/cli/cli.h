@@ -68,5 +68,7 @@ int cmd_inspect(int argc, char **argv);
 int cmd_convert(int argc, char **argv);
 int cmd_peak(int argc, char **argv);
 int cmd_spectrum(int argc, char **argv);
+int cmd_model(int argc, char **argv);
+int cmd_geometry(int argc, char **argv);
 
 #endif
