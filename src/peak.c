@@ -262,7 +262,7 @@ static void result_init(clef_peak_result *r, int model)
     memset(r, 0, sizeof *r);
     r->model = model;
     r->l_peak = r->l_peak_err = r->d_peak = r->d_peak_err = r->corr = NAN;
-    r->theta_deg = r->theta_deg_err = r->chi2 = r->p_value = NAN;
+    r->theta_deg = r->theta_deg_err = r->chi2 = r->p_value = r->curv_signif = NAN;
     r->bin_first = r->bin_last = -1;
 }
 
@@ -392,6 +392,7 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
      * compared with its error (the vertex -b/2c has no finite variance
      * otherwise); c / sigma_c does not depend on the scaling of x. */
     const double c_sig = pp[2] / sqrt(ppcov[8]);
+    r->curv_signif = c_sig;
     if (pp[2] >= 0) {
         not_found(r, "the parabola through bins %d-%d is not concave (curvature %+.3g uK^2 per "
                   "l^2)", b0, b1, pp[2] / (fd.s * fd.s));
@@ -466,6 +467,9 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
     r->chi2 = chi2;
     r->dof = fd.n - np;
     r->p_value = r->dof > 0 ? gsl_cdf_chisq_Q(chi2, r->dof) : NAN;
+    if (c_sig > -CLEF_PEAK_RELIABLE_SIGNIF)
+        clef_log(CLEF_LOG_WARN, "first peak: the curvature is only %.1f sigma below zero; the quoted "
+                 "errors may underestimate the scatter of l_peak (docs/peak.md)", -c_sig);
     clef_log(CLEF_LOG_INFO, "first peak: l = %.2f +- %.2f, D = %.1f +- %.1f uK^2 (%s, %d bins)",
              r->l_peak, r->l_peak_err, r->d_peak, r->d_peak_err,
              np == 3 ? "parabola" : "Gaussian", fd.n);
@@ -512,6 +516,9 @@ int clef_peak_to_meta(const clef_peak_result *r, clef_bandpowers *bp)
         {"PK_DOF", r->dof, "degrees of freedom of the peak fit"},
         {"PK_PVAL", r->p_value, "probability of a chi^2 at least PK_CHI2"},
     };
+    if (isfinite(r->curv_signif))
+        CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_CSIG", r->curv_signif,
+                                             "parabola curvature / its error"));
     if (r->found)
         for (size_t i = 0; i < sizeof items / sizeof items[0]; i++)
             if (isfinite(items[i].v))
@@ -561,6 +568,7 @@ int clef_peak_from_meta(const clef_bandpowers *bp, clef_peak_result *r)
     r->theta_deg_err = meta_double(bp, "PK_THERR");
     r->chi2 = meta_double(bp, "PK_CHI2");
     r->p_value = meta_double(bp, "PK_PVAL");
+    r->curv_signif = meta_double(bp, "PK_CSIG");
     const double dof = meta_double(bp, "PK_DOF"), nb = meta_double(bp, "PK_NBIN");
     const double b1 = meta_double(bp, "PK_BIN1"), b2 = meta_double(bp, "PK_BIN2");
     r->dof = isfinite(dof) ? (int)dof : 0;

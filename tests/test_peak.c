@@ -326,6 +326,7 @@ static void numpy_reference(void **state)
     check_abs(r.corr, v[4], 1e-8, "numpy delta method");
     check_rel(r.chi2, v[5], 1e-8, "numpy GLS chi^2");
     check_rel(r.p_value, v[6], 1e-7, "scipy.stats.chi2.sf");
+    check_rel(r.curv_signif, v[7], 1e-8, "numpy c / sigma_c");
     clef_bandpowers_free(bp);
 }
 
@@ -520,6 +521,7 @@ static void meta_round_trip(void **state)
         assert_int_equal(back.nbins_used, r.nbins_used);
         assert_int_equal(back.bin_first, r.bin_first);
         assert_int_equal(back.bin_last, r.bin_last);
+        check_abs(back.curv_signif, r.curv_signif, 0, "round trip");
         clef_bandpowers_free(rd);
     }
     /* A later "no peak" replaces every item of the earlier result. */

@@ -41,7 +41,14 @@ typedef struct clef_peak_result {
     int dof;
     double p_value;                  /* probability of a chi2 at least this large */
     int nbins_used, bin_first, bin_last;
+    double curv_signif;              /* c / sigma_c of the parabola fit (negative for a peak);
+                                        the quoted errors are reliable only well below
+                                        -CLEF_PEAK_RELIABLE_SIGNIF (docs/peak.md) */
 } clef_peak_result;
+
+/* Below this |c / sigma_c| a found peak comes with a warning that the
+ * delta-method errors may underestimate the scatter (docs/peak.md). */
+#define CLEF_PEAK_RELIABLE_SIGNIF 4.0
 
 /* Fit the first peak.  "No peak" is not an error: the call returns CLEF_OK
  * with found = 0 and a reason.  Errors (CLEF_EINVAL) are for unusable input
