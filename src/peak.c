@@ -55,11 +55,17 @@ static int whiten(const fit_data *fd, double *v, int ncols)
     return CLEF_OK;
 }
 
-/* Given whitened design W (n x np) and data z: the normal matrix A = W^T W
- * and its inverse in `pcov`, the solution p = A^-1 W^T z.  Returns
- * CLEF_ENUMERIC when A is singular (parameters not constrained). */
+/* Given whitened design W (n x np) and data z: the normal matrix A = W^T W,
+ * the solution p = A^-1 W^T z and the parameter covariance A^-1 in `pcov`.
+ * A is first scaled to unit diagonal (a correlation-like matrix, so the
+ * test does not depend on the parameters' units); when its reciprocal
+ * condition number (LAPACK dpocon) is below NORMAL_RCOND_MIN the parameters
+ * are not constrained by the data and CLEF_ENUMERIC is returned. */
+#define NORMAL_RCOND_MIN 1e-12
+
 static int normal_solve(const double *w, const double *z, int n, int np, double *p, double *pcov)
 {
+    double scale[4];
     for (int a = 0; a < np; a++) {
         p[a] = 0;
         for (int i = 0; i < n; i++)
@@ -71,7 +77,24 @@ static int normal_solve(const double *w, const double *z, int n, int np, double 
             pcov[a * np + b] = sum;
         }
     }
+    for (int a = 0; a < np; a++) {
+        if (!(pcov[a * np + a] > 0))
+            CLEF_FAIL(CLEF_ENUMERIC, "peak fit: parameter %d does not enter the model", a);
+        scale[a] = 1 / sqrt(pcov[a * np + a]);
+    }
+    for (int a = 0; a < np; a++) {
+        p[a] *= scale[a];
+        for (int b = 0; b < np; b++)
+            pcov[a * np + b] *= scale[a] * scale[b];
+    }
+    const double anorm = LAPACKE_dlansy(LAPACK_ROW_MAJOR, '1', 'L', np, pcov, np);
+    double rcond = 0;
     lapack_int info = LAPACKE_dpotrf(LAPACK_ROW_MAJOR, 'L', np, pcov, np);
+    if (info == 0)
+        info = LAPACKE_dpocon(LAPACK_ROW_MAJOR, 'L', np, pcov, np, anorm, &rcond);
+    if (info == 0 && !(rcond >= NORMAL_RCOND_MIN))
+        CLEF_FAIL(CLEF_ENUMERIC, "peak fit: the parameters are not constrained (normal matrix "
+                  "reciprocal condition %.3g)", rcond);
     if (info == 0)
         info = LAPACKE_dpotrs(LAPACK_ROW_MAJOR, 'L', np, 1, pcov, np, p, 1);
     if (info == 0)
@@ -79,9 +102,11 @@ static int normal_solve(const double *w, const double *z, int n, int np, double 
     if (info != 0)
         CLEF_FAIL(CLEF_ENUMERIC, "peak fit: normal matrix not positive definite (LAPACK info %d)",
                   (int)info);
-    for (int a = 0; a < np; a++)
-        for (int b = a + 1; b < np; b++)
-            pcov[a * np + b] = pcov[b * np + a];
+    for (int a = 0; a < np; a++) {
+        p[a] *= scale[a];
+        for (int b = 0; b <= a; b++)
+            pcov[a * np + b] = pcov[b * np + a] = pcov[a * np + b] * scale[a] * scale[b];
+    }
     return CLEF_OK;
 }
 
@@ -386,7 +411,14 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
     double pp[3], ppcov[9], chi2 = 0;
     int status = CLEF_OK;
     CLEF_CHECK(fit_data_make(&fd, bp, b0, b1, ltop, o->half_width));
-    CLEF_CHECK(fit_parabola(&fd, pp, ppcov, &chi2));
+    status = fit_parabola(&fd, pp, ppcov, &chi2);
+    if (status == CLEF_ENUMERIC) {
+        status = CLEF_OK;
+        not_found(r, "the parabola's parameters are not constrained by bins %d-%d (%s)", b0, b1,
+                  clef_last_error());
+        goto fail;
+    }
+    CLEF_CHECK(status);
     /* The peak is only defined when the curvature is negative, and its
      * delta-method error is only meaningful when c is well away from zero
      * compared with its error (the vertex -b/2c has no finite variance
@@ -418,8 +450,8 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
         status = fit_gaussian(&fd, pg, pcov, &chi2, &converged);
         if (status == CLEF_ENUMERIC) {
             status = CLEF_OK;
-            not_found(r, "the Gaussian fit does not constrain its parameters (singular normal "
-                      "matrix); try the parabola model");
+            not_found(r, "the Gaussian's parameters are not constrained by bins %d-%d (%s); try "
+                      "the parabola model", b0, b1, clef_last_error());
             goto fail;
         }
         CLEF_CHECK(status);

@@ -422,6 +422,24 @@ static void no_peak_cases(void **state)
         bp->dl_err[7 + b] = 1;
     }
     expect_none(bp, &o, "outside the fitted range");
+
+    /* Four bins placed symmetrically about the vertex of an exact parabola:
+     * 1, d^2 and d^4 take two values each, so the Gaussian's shape
+     * parameter cannot be told from the others (singular normal matrix),
+     * while the parabola is exact. */
+    o.l_min = 185;
+    o.l_max = 255;
+    for (int b = 0; b < NB; b++) {
+        const double l = bp->l_eff[b];
+        bp->dl[b] = 5600 - 0.12 * (l - 221.5) * (l - 221.5); /* midway between 211.5 and 231.5 */
+        bp->dl_err[b] = 10;
+    }
+    o.model = CLEF_PEAK_GAUSSIAN;
+    expect_none(bp, &o, "not constrained");
+    o.model = CLEF_PEAK_PARABOLA;
+    assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_OK);
+    assert_int_equal(r.found, 1);
+    check_rel(r.l_peak, 221.5, 1e-12, "vertex of the parabola");
     clef_bandpowers_free(bp);
 }
 
