@@ -471,9 +471,9 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
         if (pg[3] > 0)
             clef_log(CLEF_LOG_DEBUG, "first peak: Gaussian width w = %.4g", fd.s / sqrt(pg[3]));
         else
-            clef_log(CLEF_LOG_INFO, "first peak: the Gaussian fit prefers 1/w^2 = %.3g <= 0 (a top "
-                     "no rounder than a parabola); l_peak and D_peak are still its vertex",
-                     pg[3] / (fd.s * fd.s));
+            clef_log(CLEF_LOG_INFO, "first peak: the Gaussian fit prefers 1/w^2 = %.3g <= 0 (sides "
+                     "falling at least as fast as a parabola's); l_peak and D_peak are still its "
+                     "vertex", pg[3] / (fd.s * fd.s));
         np = 4;
         xp = pg[2];
         dpk = pg[0];
