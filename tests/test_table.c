@@ -324,6 +324,7 @@ static void read_errors(void **state)
         {"bad_lint.txt", "2.5 11 6.5 1 2 0.5\n", "line 1", "l_min"},
         {"bad_lrange.txt", "12 11 6.5 1 2 0.5\n", "line 1", "l_max"},
         {"bad_header2.txt", "a b c\nd e f\n", "line 2", "column 1"},
+        {"bad_first.txt", "# x\n1O0 3000 50\n120 3000 50\n", "line 2", "column 1"},
         {"bad_nodata.txt", "# only comments\n\n", "no data rows", NULL},
     };
     for (size_t i = 0; i < sizeof bad / sizeof bad[0]; i++) {
