@@ -9,6 +9,7 @@
 static const cli_command commands[] = {
     {"inspect", "summarise a HEALPix map file", cmd_inspect},
     {"convert", "rewrite a HEALPix map in clef's RING layout", cmd_convert},
+    {"simulate", "draw a Gaussian sky with beam, pixel window and noise", cmd_simulate},
     {NULL, NULL, NULL},
 };
 
