@@ -136,6 +136,11 @@ static int build_model(const clef_cosmo_params *p, clef_theory_info *in, model *
      * model's multipole l D_M(flat) / D_M. */
     clef_cosmo_params flat = *p;
     flat.omega_k = 0.0;
+    /* With Omega_m + Omega_r > 1 no flat model with Lambda >= 0 has this h;
+     * then take the flat one with the same physical densities and no Lambda
+     * (h^2 = omega_m + omega_r), which joins continuously at the boundary. */
+    if (d.Omega_m + d.Omega_r > 1.0)
+        flat.h = sqrt(d.omega_m + d.omega_r);
     double chi_flat;
     clef_cosmo_densities dflat;
     CLEF_CHECK(clef_cosmo_check(&flat, &dflat));
