@@ -268,6 +268,14 @@ int clef_cosmo_baryon_loading(const clef_cosmo_params *p, double z, double *r)
     return CLEF_OK;
 }
 
+int clef_cosmo_sound_speed(const clef_cosmo_params *p, double z, double *cs)
+{
+    double r;
+    CLEF_TRY(clef_cosmo_baryon_loading(p, z, &r));
+    *cs = 1.0 / sqrt(3.0 * (1.0 + r));
+    return CLEF_OK;
+}
+
 /* The work-space versions behind the public calls: p already checked. */
 int clef_cosmo_sound_horizon_w(const clef_cosmo_params *p, const clef_cosmo_densities *d,
                                double z, clef_cosmo_work *w, double *rs)

@@ -75,6 +75,9 @@ static double model_dl(const model *m, double l)
     const double q = l / m->l_join;
     const double w = 1.0 / (1.0 + q * q * q * q);
     const double d = w * sw + (1.0 - w) * ac;
+    /* The closed form is a truncated expansion and nothing forbids O < -N
+     * in principle; a power spectrum cannot be negative.  (Not reached for
+     * the tested parameter range up to l = 8000.) */
     return d > 0 ? d : 0.0;
 }
 
