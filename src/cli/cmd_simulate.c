@@ -100,11 +100,12 @@ static int ends_with_gz(const char *s)
     return n > 3 && !strcasecmp(s + n - 3, ".gz");
 }
 
-/* Rewrite the FITS file `path` gzip-compressed in place.  CFITSIO
- * compresses a new file whose name ends in .gz when it is closed, but only
- * if ".gz" occurs nowhere else in the name, so the compressed copy goes to
- * a temporary ".clef-gzip-XXXXXX.gz" in the same folder; the result is
- * checked for the gzip magic bytes. */
+/* Rewrite the FITS file `path` gzip-compressed in place (for the a_lm
+ * table; maps are compressed by clef_map_write).  CFITSIO compresses a new
+ * file whose name ends in .gz when it is closed, but only if ".gz" occurs
+ * nowhere else in the name, so the compressed copy goes to a temporary
+ * ".clef-gzip-XXXXXX.gz" in the same folder; the result is checked for the
+ * gzip magic bytes. */
 static int gzip_fits(const char *path)
 {
     char gz[4200], name[4300];
@@ -408,9 +409,14 @@ int cmd_simulate(int argc, char **argv)
             goto fail;
         nouts++;
         cli_verbose("writing %s", name);
-        if ((status = clef_map_write(maps[s], outs[nouts - 1].tmp_path, &wo)) != CLEF_OK)
+        /* clef_map_write compresses when the name ends in .gz. */
+        char tmp[4200];
+        snprintf(tmp, sizeof tmp, "%s%s", outs[nouts - 1].tmp_path, ends_with_gz(name) ? ".gz" : "");
+        if ((status = clef_map_write(maps[s], tmp, &wo)) != CLEF_OK)
             goto fail;
-        if (ends_with_gz(name) && gzip_fits(outs[nouts - 1].tmp_path) != CLEF_OK) {
+        if (strcmp(tmp, outs[nouts - 1].tmp_path) && rename(tmp, outs[nouts - 1].tmp_path) != 0) {
+            fprintf(stderr, "clef: error: cannot rename '%s': %s\n", tmp, strerror(errno));
+            unlink(tmp);
             exit_code = CLI_EXIT_IO;
             goto done;
         }
