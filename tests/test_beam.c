@@ -151,6 +151,11 @@ static void test_beam_file(void **state)
     check_abs(b[2], 0.5, 0, "file value");
     check_abs(b[3], 0.25, 0, "file value");
 
+    /* Comma-separated rows (CSV). */
+    write_text(p, "0,1.0\n1, 0.5,extra\n");
+    assert_int_equal(clef_beam_read(p, 1, b), CLEF_OK);
+    check_abs(b[1], 0.5, 0, "CSV value");
+
     /* A beam file that is the Gaussian of 10' reads back as the Gaussian. */
     const char *g = test_path("beam_gauss.txt");
     double ref[301], got[301];
