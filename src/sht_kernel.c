@@ -17,9 +17,19 @@
  * recurrence step, two FMAs per map and step for the accumulation.
  */
 #include <math.h>
+#include <stdint.h>
 #include <string.h>
 
 #include "sht_impl.h"
+
+#if defined(__AVX512F__)
+#include <immintrin.h>
+#endif
+
+/* ISO C mode (-std=c11) turns off floating-point contraction; the kernels
+ * are written for fused multiply-adds (one rounding instead of two, and
+ * half the instructions), so allow contraction in this file. */
+#pragma GCC optimize("fp-contract=fast")
 
 #define VL CLEF_SHT_VL
 #define BL CLEF_SHT_BLOCK
@@ -32,72 +42,129 @@ typedef long long clef_vl __attribute__((vector_size(VL * sizeof(long long))));
 /* State of one block: mu_{l-1}, mu_{l-2} for both vectors. */
 typedef struct blockstate {
     clef_vd x[2], mu1[2], mu2[2];
-    clef_vd live[2];  /* 1.0 where the lane's deficit is 0 */
+    clef_vd live[2];  /* 1.0 where the lane's deficit is 0, else 0.0 */
+    clef_vd thr[2];   /* 1.0 where the lane is in deficit, else +inf */
     int k[BL];        /* deficit per lane */
-    int kmax;
+    int kmax, nlive;
 } blockstate;
 
+/* frexp on vectors of positive normal doubles: v = result * 2^(added to *e). */
+ALWAYS_INLINE clef_vd vsplit(clef_vd v, clef_vl *e)
+{
+    clef_vl u;
+    memcpy(&u, &v, sizeof u);
+    *e += ((u >> 52) & 0x7ff) - 1022;
+    u = (u & ~(0x7ffLL << 52)) | (1022LL << 52);
+    memcpy(&v, &u, sizeof v);
+    return v;
+}
+
+/* 2^s for -1022 <= s <= 1023, exactly. */
+static inline double pow2i(int s)
+{
+    const uint64_t u = (uint64_t)(s + 1023) << 52;
+    double v;
+    memcpy(&v, &u, sizeof v);
+    return v;
+}
+
+/* lambda_mm for every lane as mant * 2^e (same binary powering as
+ * clef_sht_lambda_mm, all lanes at once: they share m), then the deficit
+ * representation mant * 2^(-RADIX k) with the mantissa exponent in
+ * (-RADIX, 0]. */
 static void block_start(blockstate *s, const clef_sht_mtab *t, const double *x, const double *sth)
 {
-    s->kmax = 0;
-    for (int i = 0; i < BL; i++) {
-        double mant;
-        int e, k = 0;
-        clef_sht_lambda_mm(t, sth[i], &mant, &e);
-        if (e < 0)
-            k = -e / CLEF_SHT_RADIX;
-        mant = ldexp(mant, e + CLEF_SHT_RADIX * k);
-        s->k[i] = k;
-        if (k > s->kmax)
-            s->kmax = k;
-        s->x[i / VL][i % VL] = x[i];
-        s->mu1[i / VL][i % VL] = mant;
-        s->mu2[i / VL][i % VL] = 0.0;
-        s->live[i / VL][i % VL] = k == 0 ? 1.0 : 0.0;
+    const int m = t->m;
+    clef_vd r[2], pw[2];
+    clef_vl er[2], ep[2], be[2];
+    for (int v = 0; v < 2; v++) {
+        clef_vd sv;
+        memcpy(&sv, sth + v * VL, sizeof sv);
+        be[v] = er[v] = ep[v] = (clef_vl){0};
+        pw[v] = vsplit(sv, &be[v]);
+        r[v] = pw[v] * 0.0 + 1.0;
     }
+    for (int n = m; n;) {
+        for (int v = 0; v < 2; v++) {
+            if (n & 1) {
+                r[v] = vsplit(r[v] * pw[v], &er[v]);
+                er[v] += ep[v];
+            }
+            if (n >> 1) {
+                ep[v] += ep[v];
+                pw[v] = vsplit(pw[v] * pw[v], &ep[v]);
+            }
+        }
+        n >>= 1;
+    }
+    const double pref = (m & 1) ? -t->pref : t->pref; /* Condon-Shortley (-1)^m */
+    s->kmax = 0;
+    s->nlive = 0;
+    for (int v = 0; v < 2; v++) {
+        clef_vl e = er[v] + be[v] * (long long)m;
+        const clef_vd mant = vsplit(r[v] * fabs(pref), &e);
+        for (int i = 0; i < VL; i++) {
+            const int li = v * VL + i;
+            const long long ex = e[i];
+            int k = 0;
+            if (ex < 0)
+                k = (int)(-ex / CLEF_SHT_RADIX);
+            const double val = (pref < 0 ? -mant[i] : mant[i]) * pow2i((int)(ex + CLEF_SHT_RADIX * (long long)k));
+            s->k[li] = k;
+            s->kmax = k > s->kmax ? k : s->kmax;
+            s->nlive += k == 0;
+            s->x[v][i] = x[li];
+            s->mu1[v][i] = val;
+            s->mu2[v][i] = 0.0;
+            s->live[v][i] = k == 0 ? 1.0 : 0.0;
+            s->thr[v][i] = k == 0 ? INFINITY : 1.0;
+        }
+    }
+}
+
+/* 1 if |mu| >= thr in any lane of either vector. */
+ALWAYS_INLINE int any_reached(const clef_vd mu[2], const clef_vd thr[2])
+{
+#if defined(__AVX512F__) && CLEF_SHT_VL == 8
+    /* One compare into a mask register per vector, no lane extraction. */
+    const __mmask8 a = _mm512_cmp_pd_mask(_mm512_abs_pd((__m512d)mu[0]), (__m512d)thr[0], _CMP_GE_OQ);
+    const __mmask8 b = _mm512_cmp_pd_mask(_mm512_abs_pd((__m512d)mu[1]), (__m512d)thr[1], _CMP_GE_OQ);
+    return (a | b) != 0;
+#else
+    const clef_vl m = (mu[0] >= thr[0]) | (mu[0] <= -thr[0]) | (mu[1] >= thr[1]) | (mu[1] <= -thr[1]);
+    long long acc = 0;
+    for (int i = 0; i < VL; i++)
+        acc |= m[i];
+    return acc != 0;
+#endif
 }
 
 /* After computing mu_l (in mu[]): renormalise lanes in deficit whose value
- * reached 1.  Returns 1 if any lane changed. */
-static int block_renorm(blockstate *s, clef_vd mu[2])
+ * reached 1 in magnitude (one vector compare per vector in the common case). */
+ALWAYS_INLINE void block_renorm(blockstate *s, clef_vd mu[2])
 {
+    if (__builtin_expect(!any_reached(mu, s->thr), 1))
+        return;
     static const double down = 0x1p-200;
     _Static_assert(CLEF_SHT_RADIX == 200, "down must be 2^-RADIX");
-    int changed = 0;
-    for (int v = 0; v < 2; v++) {
-        clef_vl big = (mu[v] >= 1.0) | (mu[v] <= -1.0);
-        long long anybig = 0;
-        for (int i = 0; i < VL; i++)
-            anybig |= big[i] & (long long)(s->k[v * VL + i] > 0);
-        if (!anybig)
-            continue;
-        for (int i = 0; i < VL; i++) {
-            const int li = v * VL + i;
-            if (s->k[li] > 0 && fabs(mu[v][i]) >= 1.0) {
-                mu[v][i] *= down;
-                s->mu1[v][i] *= down;
-                if (--s->k[li] == 0)
-                    s->live[v][i] = 1.0;
-                changed = 1;
+    int kmax = 0;
+    for (int li = 0; li < BL; li++) {
+        const int v = li / VL, i = li % VL;
+        if (s->k[li] > 0 && fabs(mu[v][i]) >= 1.0) {
+            mu[v][i] *= down;
+            s->mu1[v][i] *= down;
+            if (--s->k[li] == 0) {
+                s->live[v][i] = 1.0;
+                s->thr[v][i] = INFINITY;
+                s->nlive++;
             }
         }
+        kmax = s->k[li] > kmax ? s->k[li] : kmax;
     }
-    if (changed) {
-        int kmax = 0;
-        for (int i = 0; i < BL; i++)
-            kmax = s->k[i] > kmax ? s->k[i] : kmax;
-        s->kmax = kmax;
-    }
-    return changed;
+    s->kmax = kmax;
 }
 
-ALWAYS_INLINE int any_live(const blockstate *s)
-{
-    for (int i = 0; i < BL; i++)
-        if (s->k[i] == 0)
-            return 1;
-    return 0;
-}
+ALWAYS_INLINE int any_live(const blockstate *s) { return s->nlive > 0; }
 
 /* Scale mu_{l-1}, mu_{l-2} by 2^SIGSTEP where sigma was renormalised. */
 ALWAYS_INLINE void block_rescale(blockstate *s)
