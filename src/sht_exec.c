@@ -14,8 +14,10 @@
  * in a fixed order by one thread, so results do not depend on the number of
  * threads.
  */
+#define _POSIX_C_SOURCE 200809L
 #include <math.h>
 #include <string.h>
+#include <time.h>
 
 #include <omp.h>
 
@@ -23,6 +25,25 @@
 #include "sht_impl.h"
 
 #define BL CLEF_SHT_BLOCK
+
+/* Stage timer: wall and process CPU seconds. */
+typedef struct stamp {
+    double w, c;
+} stamp;
+
+static stamp now(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &ts);
+    return (stamp){clef_wtime(), (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec};
+}
+
+static void add_since(stamp t0, double *w, double *c)
+{
+    const stamp t1 = now();
+    *w += t1.w - t0.w;
+    *c += t1.c - t0.c;
+}
 
 static int nthreads_for(const clef_sht *p)
 {
@@ -236,17 +257,18 @@ static void analysis_pass(const clef_sht *p, int nmaps, const double *const *map
         memset(acc[j], 0, nalm * sizeof(double complex));
     for (int b0 = 0; b0 < p->nblocks; b0 += p->chunk_blocks) {
         const int nb = p->nblocks - b0 < p->chunk_blocks ? p->nblocks - b0 : p->chunk_blocks;
-        double t0 = clef_wtime();
+        clef_sht_state *st = p->state;
+        stamp t0 = now();
         if (prev) {
             legendre_synthesis(p, b0, nb, nmaps, prev);
-            p->state->t_leg += clef_wtime() - t0;
-            t0 = clef_wtime();
+            add_since(t0, &st->t_leg, &st->c_leg);
+            t0 = now();
         }
         fft_stage(p, prev ? FFT_RESIDUAL : FFT_ANALYSIS, b0, nb, nmaps, map, NULL);
-        const double t1 = clef_wtime();
-        p->state->t_fft += t1 - t0;
+        add_since(t0, &st->t_fft, &st->c_fft);
+        t0 = now();
         legendre_analysis(p, b0, nb, nmaps, acc);
-        p->state->t_leg += clef_wtime() - t1;
+        add_since(t0, &st->t_leg, &st->c_leg);
     }
 }
 
@@ -259,7 +281,7 @@ int clef_sht_analysis(const clef_sht *p, int nmaps, const double *const *map,
     for (int j = 0; j < nmaps; j++)
         if (!map[j] || !alm[j])
             CLEF_FAIL(CLEF_EINVAL, "sht analysis: map or a_lm array %d is NULL", j);
-    p->state->t_fft = p->state->t_leg = 0.0;
+    memset(p->state, 0, sizeof *p->state);
     analysis_pass(p, nmaps, map, NULL, alm);
     const size_t nalm = clef_alm_size(p->lmax, p->mmax);
     double complex *delta[64];
@@ -285,15 +307,15 @@ int clef_sht_synthesis(const clef_sht *p, int nmaps, const double complex *const
     for (int j = 0; j < nmaps; j++)
         if (!map[j] || !alm[j])
             CLEF_FAIL(CLEF_EINVAL, "sht synthesis: map or a_lm array %d is NULL", j);
-    p->state->t_fft = p->state->t_leg = 0.0;
+    memset(p->state, 0, sizeof *p->state);
     for (int b0 = 0; b0 < p->nblocks; b0 += p->chunk_blocks) {
         const int nb = p->nblocks - b0 < p->chunk_blocks ? p->nblocks - b0 : p->chunk_blocks;
-        const double t0 = clef_wtime();
+        stamp t0 = now();
         legendre_synthesis(p, b0, nb, nmaps, alm);
-        const double t1 = clef_wtime();
+        add_since(t0, &p->state->t_leg, &p->state->c_leg);
+        t0 = now();
         fft_stage(p, FFT_SYNTHESIS, b0, nb, nmaps, NULL, map);
-        p->state->t_leg += t1 - t0;
-        p->state->t_fft += clef_wtime() - t1;
+        add_since(t0, &p->state->t_fft, &p->state->c_fft);
     }
     return CLEF_OK;
 }

@@ -74,7 +74,8 @@ typedef struct clef_sht_thread {
 
 /* Mutable state reached through the const plan: timings of the last call. */
 typedef struct clef_sht_state {
-    double t_fft, t_leg;
+    double t_fft, t_leg; /* wall seconds */
+    double c_fft, c_leg; /* process CPU seconds (all threads) */
 } clef_sht_state;
 
 struct clef_sht {
