@@ -30,7 +30,7 @@
 #define CLEF_SHT_VL 8
 /* Vectors in flight per block: enough independent recurrence chains to
  * cover the FMA latency (PERFORMANCE.md section 2 item 3). */
-#define CLEF_SHT_NV 2
+#define CLEF_SHT_NV 4
 #define CLEF_SHT_BLOCK (CLEF_SHT_VL * CLEF_SHT_NV)
 /* Doubles per (m, block, map) in the phase array: 2 parities x re/im x lanes. */
 #define CLEF_SHT_BLOCKDBL (4 * CLEF_SHT_BLOCK)
