@@ -17,9 +17,9 @@ double bench_cputime(void);
  * best of `reps`. */
 #define BENCH_FMA_ACC 12
 double bench_fma_peak(int nthreads, double seconds, int reps);
-/* The same loop rated per CPU second (GFLOP per process-CPU second summed
- * over threads): the per-core rate, insensitive to time slicing when other
- * programs share the cores. */
+/* The same loop rated per CPU second of the working threads (their own
+ * CPU clocks, summed): the per-core rate, insensitive to time slicing when
+ * other programs share the cores. */
 double bench_fma_peak_cpu(int nthreads, double seconds, int reps);
 
 /* OpenBLAS cblas_dgemm on n x n matrices with `nthreads` BLAS threads:

@@ -60,9 +60,10 @@ int clef_sht_ring_info(const clef_sht *p, int ring, double *z, double *phi0, int
                        int64_t *first, double *weight);
 
 /* Seconds spent in the FFT stage and in the Legendre stage by the last
- * analysis or synthesis call on this plan, as wall-clock time and as
- * process CPU time (summed over threads; less sensitive to other load on
- * the machine).  For benchmarks; any pointer may be NULL. */
+ * analysis or synthesis call on this plan, as wall-clock time and as CPU
+ * time of the working threads (summed over threads, waits excluded; not
+ * inflated when other programs share the cores).  For benchmarks; any
+ * pointer may be NULL. */
 void clef_sht_timings(const clef_sht *p, double *fft_wall, double *legendre_wall,
                       double *fft_cpu, double *legendre_cpu);
 
