@@ -56,6 +56,14 @@ static void test_full_sky_identity(void **state)
             check_abs(m[l * (L + 1) + lp], l == lp ? 1.0 : 0.0, 1e-12,
                       "full sky M = I (METHODS.md 4)");
     clef_coupling_destroy(c);
+    /* the smallest sizes (rows shorter than one kernel block) */
+    for (int lmax = 0; lmax <= 2; lmax++) {
+        m = make_coupling(&c, lmax, wl, 2 * lmax);
+        for (int l = 0; l <= lmax; l++)
+            for (int lp = 0; lp <= lmax; lp++)
+                check_abs(m[l * (lmax + 1) + lp], l == lp ? 1.0 : 0.0, 1e-15, "full sky, tiny lmax");
+        clef_coupling_destroy(c);
+    }
     /* w = f: W_0 = 4 pi f^2 -> M = f^2 I */
     const double f = 0.37;
     wl[0] = 4 * M_PI * f * f;
