@@ -8,6 +8,7 @@
 #include <omp.h>
 
 #include <chealpix.h>
+#include <fitsio.h>
 #include <gsl/gsl_randist.h>
 #include <gsl/gsl_rng.h>
 #include <gsl/gsl_sf_gamma.h>
@@ -319,6 +320,298 @@ static void test_analysis_accuracy(void **state)
     assert_true(e[0][1] < e[0][0] && e[1][1] < e[1][0]);
 }
 
+
+/* Parseval: Omega_pix sum_p f_p^2 = sum_l (2l+1) C_l for a band-limited
+ * map, to the accuracy of the pixel quadrature (ring weights help). */
+static void test_parseval(void **state)
+{
+    (void)state;
+    const int64_t ns = 32;
+    const int lmax = 32;
+    const int64_t npix = 12 * ns * ns;
+    double complex *alm = random_alm(lmax, lmax, 77);
+    double *map = malloc(npix * sizeof *map), cl[33];
+    clef_sht *p;
+    assert_int_equal(clef_sht_create(&p, ns, lmax, NULL), CLEF_OK);
+    assert_int_equal(clef_sht_synthesis(p, 1, (const double complex *const *)&alm, &map), CLEF_OK);
+    assert_int_equal(clef_alm_cl(lmax, lmax, alm, NULL, cl), CLEF_OK);
+    double power = 0.0, sum = 0.0, sumw = 0.0;
+    for (int l = 0; l <= lmax; l++)
+        power += (2 * l + 1) * cl[l];
+    for (int r = 1; r <= clef_sht_nrings(p); r++) {
+        int64_t n, first;
+        double w;
+        assert_int_equal(clef_sht_ring_info(p, r, NULL, NULL, &n, &first, &w), CLEF_OK);
+        double s = 0.0;
+        for (int64_t i = first; i < first + n; i++)
+            s += map[i] * map[i];
+        sum += s;
+        sumw += w * s;
+    }
+    const double domega = 4 * PI / npix;
+    printf("Parseval nside 32 lmax 32: plain %.3g, ring-weighted %.3g relative\n",
+           sum * domega / power - 1, sumw * domega / power - 1);
+    /* f^2 has band limit 64 = 2 nside: the ring weights integrate its zonal
+     * part exactly; the remaining error is azimuthal aliasing near the poles. */
+    check_rel(sumw * domega, power, 1e-5, "Parseval (common practice)");
+    assert_true(fabs(sumw * domega - power) <= fabs(sum * domega - power));
+    clef_sht_destroy(p);
+    free(alm);
+    free(map);
+}
+
+/* clef_alm_cl against the full sum over -l <= m <= l with
+ * a_{l,-m} = (-1)^m conj(a_lm) (METHODS.md section 2). */
+static void test_alm_cl(void **state)
+{
+    (void)state;
+    const int lmax = 40, mmax = 40;
+    double complex *a = random_alm(lmax, mmax, 5), *b = random_alm(lmax, mmax, 6);
+    double caa[41], cab[41], cba[41], cnull[41];
+    assert_int_equal(clef_alm_cl(lmax, mmax, a, a, caa), CLEF_OK);
+    assert_int_equal(clef_alm_cl(lmax, mmax, a, NULL, cnull), CLEF_OK);
+    assert_int_equal(clef_alm_cl(lmax, mmax, a, b, cab), CLEF_OK);
+    assert_int_equal(clef_alm_cl(lmax, mmax, b, a, cba), CLEF_OK);
+    for (int l = 0; l <= lmax; l++) {
+        double complex sa = 0, sab = 0;
+        for (int m = -l; m <= l; m++) {
+            const int am = abs(m);
+            const double sg = (m < 0 && (am & 1)) ? -1.0 : 1.0;
+            double complex x = a[clef_alm_index(lmax, l, am)], y = b[clef_alm_index(lmax, l, am)];
+            if (m < 0) {
+                x = sg * conj(x);
+                y = sg * conj(y);
+            }
+            sa += x * conj(x);
+            sab += x * conj(y);
+        }
+        check_rel(caa[l], creal(sa) / (2 * l + 1), 1e-14, "sum over m of |a_lm|^2");
+        check_rel(cab[l], creal(sab) / (2 * l + 1), 1e-12, "sum over m of a_lm b_lm*");
+        check_abs(cimag(sab), 0.0, 1e-12, "cross spectrum of real maps is real");
+        assert_true(caa[l] == cnull[l]);
+        assert_true(cab[l] == cba[l]);
+    }
+    /* mmax < lmax: the spectrum of the truncated a_lm. */
+    double ct[41];
+    const int mt = 10;
+    double complex *t = random_alm(lmax, mt, 9);
+    assert_int_equal(clef_alm_cl(lmax, mt, t, NULL, ct), CLEF_OK);
+    for (int l = 0; l <= lmax; l++) {
+        double s = 0;
+        for (int m = 0; m <= (l < mt ? l : mt); m++)
+            s += (m ? 2 : 1) * creal(t[clef_alm_index(lmax, l, m)] * conj(t[clef_alm_index(lmax, l, m)]));
+        check_rel(ct[l], s / (2 * l + 1), 1e-14, "truncated sum over m");
+    }
+    assert_int_equal(clef_alm_cl(lmax, lmax + 1, a, NULL, ct), CLEF_EINVAL);
+    assert_int_equal(clef_alm_cl(-1, 0, a, NULL, ct), CLEF_EINVAL);
+    assert_int_equal(clef_alm_cl(lmax, mmax, NULL, NULL, ct), CLEF_EINVAL);
+    free(a);
+    free(b);
+    free(t);
+}
+
+/* Same results for 1 and 2 threads (no thread-dependent reductions). */
+static void test_threads(void **state)
+{
+    (void)state;
+    const int64_t ns = 64;
+    const int lmax = 127;
+    const int64_t npix = 12 * ns * ns;
+    const size_t nalm = clef_alm_size(lmax, lmax);
+    const int saved = omp_get_max_threads();
+    omp_set_num_threads(2);
+    clef_sht *p;
+    assert_int_equal(clef_sht_create(&p, ns, lmax, NULL), CLEF_OK);
+    double complex *alm = random_alm(lmax, lmax, 21);
+    double complex *o1 = malloc(nalm * sizeof *o1), *o2 = malloc(nalm * sizeof *o2);
+    double *m1 = malloc(npix * sizeof *m1), *m2 = malloc(npix * sizeof *m2);
+    omp_set_num_threads(1);
+    assert_int_equal(clef_sht_synthesis(p, 1, (const double complex *const *)&alm, &m1), CLEF_OK);
+    assert_int_equal(clef_sht_analysis(p, 1, (const double *const *)&m1, &o1, 2), CLEF_OK);
+    omp_set_num_threads(2);
+    assert_int_equal(clef_sht_synthesis(p, 1, (const double complex *const *)&alm, &m2), CLEF_OK);
+    assert_int_equal(clef_sht_analysis(p, 1, (const double *const *)&m2, &o2, 2), CLEF_OK);
+    double dm = 0, da = 0, sm = 0, sa = 0;
+    for (int64_t i = 0; i < npix; i++) {
+        dm = fmax(dm, fabs(m1[i] - m2[i]));
+        sm = fmax(sm, fabs(m1[i]));
+    }
+    for (size_t i = 0; i < nalm; i++) {
+        da = fmax(da, cabs(o1[i] - o2[i]));
+        sa = fmax(sa, cabs(o1[i]));
+    }
+    check_abs(dm / sm, 0.0, 1e-14, "1 vs 2 threads, synthesis");
+    check_abs(da / sa, 0.0, 1e-14, "1 vs 2 threads, analysis");
+    omp_set_num_threads(saved);
+    clef_sht_destroy(p);
+    free(alm);
+    free(o1);
+    free(o2);
+    free(m1);
+    free(m2);
+}
+
+/* Several maps per call share the recurrence and give the single-map
+ * results (5 maps exercise the grouping of maps in the kernels); a plan
+ * with mmax < lmax equals the full plan on a_lm truncated at mmax. */
+static void test_nmaps_mmax(void **state)
+{
+    (void)state;
+    const int64_t ns = 16;
+    const int lmax = 40, nm = 5, mmax = 12;
+    const int64_t npix = 12 * ns * ns;
+    const size_t nalm = clef_alm_size(lmax, lmax);
+    clef_sht *p1, *p5, *pm;
+    clef_sht_opts o5 = {.nmaps = nm}, om = {.mmax = mmax};
+    assert_int_equal(clef_sht_create(&p1, ns, lmax, NULL), CLEF_OK);
+    assert_int_equal(clef_sht_create(&p5, ns, lmax, &o5), CLEF_OK);
+    assert_int_equal(clef_sht_create(&pm, ns, lmax, &om), CLEF_OK);
+    assert_int_equal(clef_sht_mmax(pm), mmax);
+    double complex *alm[5], *out[5], *ref = malloc(nalm * sizeof *ref);
+    double *map[5], *one = malloc(npix * sizeof *one);
+    for (int j = 0; j < nm; j++) {
+        alm[j] = random_alm(lmax, lmax, 100 + j);
+        out[j] = malloc(nalm * sizeof **out);
+        map[j] = malloc(npix * sizeof **map);
+    }
+    assert_int_equal(clef_sht_synthesis(p5, nm, (const double complex *const *)alm, map), CLEF_OK);
+    assert_int_equal(clef_sht_analysis(p5, nm, (const double *const *)map, out, 1), CLEF_OK);
+    for (int j = 0; j < nm; j++) {
+        assert_int_equal(clef_sht_synthesis(p1, 1, (const double complex *const *)&alm[j], &one),
+                         CLEF_OK);
+        for (int64_t i = 0; i < npix; i++)
+            check_abs(map[j][i], one[i], 1e-14 * (1 + fabs(one[i])), "nmaps = 5 vs single map");
+        assert_int_equal(clef_sht_analysis(p1, 1, (const double *const *)&one, &ref, 1), CLEF_OK);
+        for (size_t i = 0; i < nalm; i++)
+            check_abs(cabs(out[j][i] - ref[i]), 0.0, 1e-14, "nmaps = 5 vs single map, analysis");
+    }
+    /* mmax variant */
+    double complex *tr = malloc(clef_alm_size(lmax, mmax) * sizeof *tr);
+    for (int m = 0; m <= mmax; m++)
+        for (int l = m; l <= lmax; l++)
+            tr[clef_alm_index(lmax, l, m)] = alm[0][clef_alm_index(lmax, l, m)];
+    for (int m = mmax + 1; m <= lmax; m++)
+        for (int l = m; l <= lmax; l++)
+            alm[0][clef_alm_index(lmax, l, m)] = 0;
+    assert_int_equal(clef_sht_synthesis(p1, 1, (const double complex *const *)&alm[0], &one), CLEF_OK);
+    assert_int_equal(clef_sht_synthesis(pm, 1, (const double complex *const *)&tr, &map[0]), CLEF_OK);
+    for (int64_t i = 0; i < npix; i++)
+        check_abs(map[0][i], one[i], 1e-13 * (1 + fabs(one[i])), "mmax plan vs truncated a_lm");
+    /* Error paths of execute. */
+    assert_int_equal(clef_sht_synthesis(p1, 2, (const double complex *const *)alm, map), CLEF_EINVAL);
+    assert_int_equal(clef_sht_synthesis(p1, 0, (const double complex *const *)alm, map), CLEF_EINVAL);
+    assert_int_equal(clef_sht_analysis(p1, 1, (const double *const *)map, out, -1), CLEF_EINVAL);
+    assert_int_equal(clef_sht_analysis(p1, 1, NULL, out, 0), CLEF_EINVAL);
+    clef_sht_destroy(p1);
+    clef_sht_destroy(p5);
+    clef_sht_destroy(pm);
+    for (int j = 0; j < nm; j++) {
+        free(alm[j]);
+        free(out[j]);
+        free(map[j]);
+    }
+    free(ref);
+    free(one);
+    free(tr);
+}
+
+static void test_create_errors(void **state)
+{
+    (void)state;
+    clef_sht *p = (clef_sht *)&p;
+    assert_int_equal(clef_sht_create(&p, 3, 4, NULL), CLEF_EINVAL);
+    assert_null(p);
+    assert_non_null(strstr(clef_last_error(), "nside = 3"));
+    assert_int_equal(clef_sht_create(&p, 0, 4, NULL), CLEF_EINVAL);
+    assert_int_equal(clef_sht_create(&p, 16384, 4, NULL), CLEF_EINVAL);
+    assert_int_equal(clef_sht_create(&p, 4, 0, NULL), CLEF_EINVAL);
+    assert_non_null(strstr(clef_last_error(), "lmax = 0"));
+    clef_sht_opts o = {.mmax = 9};
+    assert_int_equal(clef_sht_create(&p, 4, 8, &o), CLEF_EINVAL);
+    assert_int_equal(clef_sht_create(NULL, 4, 8, NULL), CLEF_EINVAL);
+    clef_sht_destroy(NULL);
+}
+
+/* ------------------------------------------------------------- a_lm file */
+
+static void test_alm_file(void **state)
+{
+    (void)state;
+    const int lmax = 50, mmax = 30;
+    double complex *a = random_alm(lmax, mmax, 3);
+    const char *path = test_path("alm.fits");
+    assert_int_equal(clef_alm_write(path, lmax, mmax, a), CLEF_OK);
+    int l2, m2;
+    double complex *b;
+    assert_int_equal(clef_alm_read(path, &l2, &m2, &b), CLEF_OK);
+    assert_int_equal(l2, lmax);
+    assert_int_equal(m2, mmax);
+    for (size_t i = 0; i < clef_alm_size(lmax, mmax); i++)
+        assert_true(a[i] == b[i]);
+    free(b);
+    /* astropy reads it: header, columns and one value (a_{7,3}). */
+    const size_t i73 = clef_alm_index(lmax, 7, 3);
+    const int rc = run_cmd(
+        "%s -c \"import sys; from astropy.io import fits; h = fits.open('%s'); t = h['CLEF_ALM']; "
+        "d = t.data; hd = t.header; "
+        "ok = hd['LMAX'] == %d and hd['MMAX'] == %d and 'CLEFVERS' in hd and len(d) == %zu; "
+        "r = d[(d['L'] == 7) & (d['M'] == 3)]; "
+        "ok = ok and len(r) == 1 and r['RE'][0] == %.17g and r['IM'][0] == %.17g; "
+        "sys.exit(0 if ok else 1)\"",
+        ref_python(), path, lmax, mmax, clef_alm_size(lmax, mmax), creal(a[i73]), cimag(a[i73]));
+    assert_int_equal(rc, 0);
+    if (run_cmd("command -v fitsverify >/dev/null 2>&1") == 0)
+        assert_int_equal(run_cmd("fitsverify -q -e '%s' >/dev/null 2>&1", path), 0);
+
+    /* Error paths: missing file, text file, missing column, bad keyword,
+     * unwritable folder (no partial output). */
+    assert_int_equal(clef_alm_read(test_path("nonexistent.fits"), &l2, &m2, &b), CLEF_EIO);
+    assert_null(b);
+    const char *txt = test_path("text.fits");
+    FILE *f = fopen(txt, "w");
+    fputs("not a FITS file\n", f);
+    fclose(f);
+    assert_int_equal(clef_alm_read(txt, &l2, &m2, &b), CLEF_EIO);
+    assert_non_null(strstr(clef_last_error(), "text.fits"));
+
+    const char *nocol = test_path("nocol.fits");
+    assert_int_equal(run_cmd("%s -c \"from astropy.io import fits; import numpy as np; "
+                             "c = [fits.Column(name=n, format=f, array=np.zeros(3)) for n, f in "
+                             "[('L', 'J'), ('M', 'J'), ('RE', 'D')]]; "
+                             "t = fits.BinTableHDU.from_columns(c); t.header['LMAX'] = 1; "
+                             "t.header['MMAX'] = 1; t.writeto('%s')\"",
+                             ref_python(), nocol),
+                     0);
+    assert_int_equal(clef_alm_read(nocol, &l2, &m2, &b), CLEF_EFORMAT);
+    assert_non_null(strstr(clef_last_error(), "column IM"));
+    const char *nokey = test_path("nokey.fits");
+    assert_int_equal(run_cmd("%s -c \"from astropy.io import fits; import numpy as np; "
+                             "c = [fits.Column(name=n, format=f, array=np.zeros(3)) for n, f in "
+                             "[('L', 'J'), ('M', 'J'), ('RE', 'D'), ('IM', 'D')]]; "
+                             "t = fits.BinTableHDU.from_columns(c); t.header['MMAX'] = 1; "
+                             "t.writeto('%s')\"",
+                             ref_python(), nokey),
+                     0);
+    assert_int_equal(clef_alm_read(nokey, &l2, &m2, &b), CLEF_EFORMAT);
+    assert_non_null(strstr(clef_last_error(), "LMAX"));
+    const char *dup = test_path("dup.fits");
+    assert_int_equal(run_cmd("%s -c \"from astropy.io import fits; import numpy as np; "
+                             "c = [fits.Column(name='L', format='J', array=np.array([0, 1, 1])), "
+                             "fits.Column(name='M', format='J', array=np.array([0, 0, 0])), "
+                             "fits.Column(name='RE', format='D', array=np.zeros(3)), "
+                             "fits.Column(name='IM', format='D', array=np.zeros(3))]; "
+                             "t = fits.BinTableHDU.from_columns(c); t.header['LMAX'] = 1; "
+                             "t.header['MMAX'] = 1; t.writeto('%s')\"",
+                             ref_python(), dup),
+                     0);
+    assert_int_equal(clef_alm_read(dup, &l2, &m2, &b), CLEF_EFORMAT);
+    assert_non_null(strstr(clef_last_error(), "repeats"));
+    assert_int_not_equal(clef_alm_write(test_path("no/such/dir/alm.fits"), lmax, mmax, a), CLEF_OK);
+    assert_false(file_exists(test_path("no/such/dir/alm.fits")));
+    assert_int_equal(clef_alm_write(path, 3, 4, a), CLEF_EINVAL);
+    free(a);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -329,6 +622,12 @@ int main(void)
         cmocka_unit_test(test_geometry),
         cmocka_unit_test(test_synthesis_direct),
         cmocka_unit_test(test_analysis_accuracy),
+        cmocka_unit_test(test_parseval),
+        cmocka_unit_test(test_alm_cl),
+        cmocka_unit_test(test_threads),
+        cmocka_unit_test(test_nmaps_mmax),
+        cmocka_unit_test(test_create_errors),
+        cmocka_unit_test(test_alm_file),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
