@@ -56,9 +56,8 @@ static void ring_analysis(const clef_sht *p, clef_sht_thread *th, int r, const d
                           double complex *out, int nmaps)
 {
     const int n = p->ring_npix[r], shift = p->ring_shift[r];
-    memcpy(th->ring, pix, (size_t)n * sizeof(double));
-    fftw_execute_dft_r2c(p->plan_r2c[n / 4 - 1], th->ring, th->four);
-    const double complex *c = (const double complex *)th->four;
+    double complex *c = (double complex *)th->four;
+    clef_sht_ring_r2c(p, th, n, pix, c);
     const double wt = p->ring_w[r] * p->domega;
     int k = 0;
     for (int m = 0; m <= p->mmax; m++) {
@@ -93,9 +92,7 @@ static void ring_synthesis(const clef_sht *p, clef_sht_thread *th, int r,
         if (++k == n)
             k = 0;
     }
-    c[0] = creal(c[0]);
-    c[n / 2] = creal(c[n / 2]);
-    fftw_execute_dft_c2r(p->plan_c2r[n / 4 - 1], th->four, th->ring);
+    clef_sht_ring_c2r(p, th, n, c);
 }
 
 static inline double *phase_at_m(const clef_sht *p, int j, int m, int b)
