@@ -12,6 +12,7 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <time.h>
 #include <unistd.h>
 
 #include <cjson/cJSON.h>
@@ -22,7 +23,16 @@
 #include "clef/sht.h"
 
 #define NTHREADS 2
-#define REPS 3
+#define REPS 5
+
+/* CPU seconds of the whole process (all threads): on a shared machine
+ * wall times also measure the other users, CPU times much less so. */
+static double cpu_time(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &ts);
+    return (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec;
+}
 
 static double terms(int L) { return (L + 1.0) * (L + 2.0) * (L + 3.0) / 6.0; }
 
@@ -38,12 +48,13 @@ static double *mask_spectrum(int L)
     return wl;
 }
 
-static int time_coupling(int L, const double *wl, double *t)
+static int time_coupling(int L, const double *wl, double *t, double *cpu)
 {
     clef_coupling *c;
-    const double t0 = clef_wtime();
+    const double c0 = cpu_time(), t0 = clef_wtime();
     const int status = clef_coupling_create(&c, L, wl, 2 * L);
     *t = clef_wtime() - t0;
+    *cpu = cpu_time() - c0;
     clef_coupling_destroy(c);
     return status;
 }
@@ -54,13 +65,35 @@ static int cmp_double(const void *a, const void *b)
     return (x > y) - (x < y);
 }
 
-static void add_times(cJSON *o, const double *t, int n)
+/* Best and median of n wall and CPU times into o; returns the best of each. */
+static void add_times(cJSON *o, const double *t, const double *cpu, int n, double *best_t,
+                      double *best_cpu)
 {
-    double s[16];
+    double s[16], c[16];
     memcpy(s, t, (size_t)n * sizeof *t);
+    memcpy(c, cpu, (size_t)n * sizeof *cpu);
     qsort(s, (size_t)n, sizeof *s, cmp_double);
+    qsort(c, (size_t)n, sizeof *c, cmp_double);
     cJSON_AddNumberToObject(o, "best_s", s[0]);
     cJSON_AddNumberToObject(o, "median_s", s[n / 2]);
+    cJSON_AddNumberToObject(o, "best_cpu_s", c[0]);
+    cJSON_AddNumberToObject(o, "median_cpu_s", c[n / 2]);
+    *best_t = s[0];
+    *best_cpu = c[0];
+}
+
+/* Least-squares slope of log y on log x. */
+static double fit_exponent(const int *x, const double *y, int n)
+{
+    double sx = 0, sy = 0, sxx = 0, sxy = 0;
+    for (int i = 0; i < n; i++) {
+        const double u = log(x[i]), v = log(y[i]);
+        sx += u;
+        sy += v;
+        sxx += u * u;
+        sxy += u * v;
+    }
+    return (n * sxy - sx * sy) / (n * sxx - sx * sx);
 }
 
 int main(int argc, char **argv)
@@ -68,7 +101,7 @@ int main(int argc, char **argv)
     const char *out_path = argc > 1 ? argv[1] : "bench/results-coupling.json";
     const int sizes[] = {512, 1024, 2048, 3072};
     enum { NS = sizeof sizes / sizeof sizes[0] };
-    double best[NS];
+    double best[NS], best_cpu[NS];
     omp_set_num_threads(NTHREADS);
     cJSON *root = cJSON_CreateObject();
     cJSON_AddStringToObject(root, "benchmark", "coupling");
@@ -88,19 +121,16 @@ int main(int argc, char **argv)
     cJSON *arr = cJSON_AddArrayToObject(root, "coupling");
     for (int i = 0; i < NS - 1; i++) {
         double *wl = mask_spectrum(sizes[i]);
-        double t[REPS];
+        double t[REPS], cpu[REPS];
         for (int r = 0; r < REPS; r++)
-            if (!wl || time_coupling(sizes[i], wl, &t[r]) != CLEF_OK) {
+            if (!wl || time_coupling(sizes[i], wl, &t[r], &cpu[r]) != CLEF_OK) {
                 fprintf(stderr, "bench_coupling: %s\n", clef_last_error());
                 return 1;
             }
         free(wl);
         cJSON *o = cJSON_CreateObject();
         cJSON_AddNumberToObject(o, "lmax", sizes[i]);
-        add_times(o, t, REPS);
-        best[i] = t[0];
-        for (int r = 1; r < REPS; r++)
-            best[i] = fmin(best[i], t[r]);
+        add_times(o, t, cpu, REPS, &best[i], &best_cpu[i]);
         cJSON_AddItemToArray(arr, o);
     }
 
@@ -122,15 +152,16 @@ int main(int argc, char **argv)
     }
     for (int64_t i = 0; i < npix; i++)
         map[i] = sin(0.001 * (double)i) + cos(1e-6 * (double)i * (double)(i % 977));
-    double ta[REPS], tc[REPS];
+    double ta[REPS], tc[REPS], cpu_a[REPS], cc[REPS];
     for (int r = 0; r < REPS; r++) {
-        double t0 = clef_wtime();
+        const double c0 = cpu_time(), t0 = clef_wtime();
         if (clef_sht_analysis(plan, 1, (const double *const *)&map, &alm, 0) != CLEF_OK) {
             fprintf(stderr, "bench_coupling: %s\n", clef_last_error());
             return 1;
         }
         ta[r] = clef_wtime() - t0;
-        if (time_coupling(L, wl, &tc[r]) != CLEF_OK) {
+        cpu_a[r] = cpu_time() - c0;
+        if (time_coupling(L, wl, &tc[r], &cc[r]) != CLEF_OK) {
             fprintf(stderr, "bench_coupling: %s\n", clef_last_error());
             return 1;
         }
@@ -140,37 +171,29 @@ int main(int argc, char **argv)
     free(alm);
     cJSON *o = cJSON_CreateObject();
     cJSON_AddNumberToObject(o, "lmax", L);
-    add_times(o, tc, REPS);
+    add_times(o, tc, cc, REPS, &best[NS - 1], &best_cpu[NS - 1]);
     cJSON_AddItemToArray(arr, o);
-    best[NS - 1] = tc[0];
-    double best_a = ta[0];
-    for (int r = 1; r < REPS; r++) {
-        best[NS - 1] = fmin(best[NS - 1], tc[r]);
-        best_a = fmin(best_a, ta[r]);
-    }
+    double best_a, best_a_cpu;
     cJSON *an = cJSON_AddObjectToObject(root, "analysis_reference");
     cJSON_AddNumberToObject(an, "nside", (double)nside);
     cJSON_AddNumberToObject(an, "lmax", alm_lmax);
     cJSON_AddNumberToObject(an, "iterations", 0);
-    add_times(an, ta, REPS);
+    add_times(an, ta, cpu_a, REPS, &best_a, &best_a_cpu);
 
-    /* Rates and the exponent: least squares of log T on log L. */
-    double sx = 0, sy = 0, sxx = 0, sxy = 0;
+    /* Rates (wall clock) and the exponents. */
     for (int i = 0; i < NS; i++) {
-        const double x = log(sizes[i]), y = log(best[i]);
-        sx += x;
-        sy += y;
-        sxx += x * x;
-        sxy += x * y;
         cJSON *e = cJSON_GetArrayItem(arr, i);
         cJSON_AddNumberToObject(e, "terms", terms(sizes[i]));
         cJSON_AddNumberToObject(e, "terms_per_s", terms(sizes[i]) / best[i]);
         cJSON_AddNumberToObject(e, "gflops_model", 5 * terms(sizes[i]) / best[i] * 1e-9);
     }
-    const double alpha = (NS * sxy - sx * sy) / (NS * sxx - sx * sx);
+    const double alpha = fit_exponent(sizes, best, NS);
+    const double alpha_cpu = fit_exponent(sizes, best_cpu, NS);
     cJSON_AddNumberToObject(root, "fitted_exponent", alpha);
-    const double ratio = best[NS - 1] / best_a;
+    cJSON_AddNumberToObject(root, "fitted_exponent_cpu", alpha_cpu);
+    const double ratio = best[NS - 1] / best_a, ratio_cpu = best_cpu[NS - 1] / best_a_cpu;
     cJSON_AddNumberToObject(root, "ratio_coupling3072_to_analysis", ratio);
+    cJSON_AddNumberToObject(root, "ratio_coupling3072_to_analysis_cpu", ratio_cpu);
     cJSON_AddNumberToObject(root, "target_ratio", 2.0);
 
     /* Cache: compute-and-store, then hits of M and of the binned K. */
@@ -222,12 +245,14 @@ int main(int argc, char **argv)
     printf("coupling matrix, %d threads (load average %.1f on %ld cpus):\n", NTHREADS, load[0],
            sysconf(_SC_NPROCESSORS_ONLN));
     for (int i = 0; i < NS; i++)
-        printf("  lmax %4d: %8.3f s  %.3g 3j terms/s  %.2f GFLOP/s (model 5 S)\n", sizes[i],
-               best[i], terms(sizes[i]) / best[i], 5 * terms(sizes[i]) / best[i] * 1e-9);
-    printf("  fitted exponent %.2f (expect ~3)\n", alpha);
-    printf("  analysis nside %lld lmax %d: %.3f s; coupling lmax %d / analysis = %.2f "
-           "(target <= 2)\n", (long long)nside, alm_lmax, best_a, L, ratio);
-    printf("  cache at lmax %d: compute %.3f s, M hit %.3f s, binned K hit %.4f s\n", L,
+        printf("  lmax %4d: %8.4f s (%.4f CPU s)  %.3g 3j terms/s  %.2f GFLOP/s (model 5 S)\n",
+               sizes[i], best[i], best_cpu[i], terms(sizes[i]) / best[i],
+               5 * terms(sizes[i]) / best[i] * 1e-9);
+    printf("  fitted exponent %.2f wall, %.2f CPU (expect ~3)\n", alpha, alpha_cpu);
+    printf("  analysis nside %lld lmax %d: %.3f s (%.3f CPU s); coupling lmax %d / analysis = "
+           "%.2f wall, %.2f CPU (target <= 2)\n", (long long)nside, alm_lmax, best_a,
+           best_a_cpu, L, ratio, ratio_cpu);
+    printf("  cache at lmax %d: compute %.3f s, M hit %.3f s, binned K hit %.4f s (wall)\n", L,
            best[NS - 1], t_hit_m, t_hit_k);
 
     char *text = cJSON_Print(root);
