@@ -158,6 +158,7 @@ int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl
     const double inv4pi = 1.0 / (4.0 * M_PI);
     const double total = (double)(L + 1) * (L + 2) * (L + 3) / 6.0; /* kernel terms */
     double done = 0.0;
+    double reported = 0.0; /* touched by thread 0 only */
     int alloc_failed = 0;
 #pragma omp parallel
     {
@@ -183,8 +184,11 @@ int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl
                 done += w;
                 now = done;
             }
-            if (omp_get_thread_num() == 0)
-                clef_progress("coupling", now / total);
+            /* From the calling thread (thread 0), at most ~200 times. */
+            if (omp_get_thread_num() == 0 && now / total >= reported + 0.005) {
+                reported = now / total;
+                clef_progress("coupling", reported);
+            }
         }
         free(s);
         free(t);

@@ -372,6 +372,36 @@ static void test_singular_and_errors(void **state)
 }
 
 
+static int progress_calls, progress_bad;
+static double progress_last;
+static void record_progress(void *user, const char *stage, double fraction)
+{
+    (void)user;
+    if (strcmp(stage, "coupling") != 0 || fraction < progress_last || fraction > 1 ||
+        omp_get_thread_num() != 0)
+        progress_bad++;
+    progress_last = fraction;
+    progress_calls++;
+}
+
+/* Progress: stage "coupling", from the calling thread, increasing, ending
+ * at 1, at most a few hundred calls (include/clef/clef.h). */
+static void test_progress(void **state)
+{
+    (void)state;
+    enum { L = 1000 };
+    static double wl[2 * L + 1];
+    wl[0] = 4 * M_PI;
+    clef_set_progress(record_progress, NULL);
+    clef_coupling *c;
+    assert_int_equal(clef_coupling_create(&c, L, wl, 2 * L), CLEF_OK);
+    clef_set_progress(NULL, NULL);
+    clef_coupling_destroy(c);
+    assert_int_equal(progress_bad, 0);
+    assert_true(progress_calls >= 2 && progress_calls <= 300);
+    check_abs(progress_last, 1.0, 0.0, "progress ends at 1");
+}
+
 /* ---- coupling cache ---- */
 
 static char warnings[8192];
@@ -830,6 +860,7 @@ int main(void)
         cmocka_unit_test(test_binned_recovers_band_powers),
         cmocka_unit_test(test_ill_conditioned),
         cmocka_unit_test(test_singular_and_errors),
+        cmocka_unit_test(test_progress),
         cmocka_unit_test(test_cache_hit_and_keys),
         cmocka_unit_test(test_cache_corrupt_and_mismatch),
         cmocka_unit_test(test_cache_dir),
