@@ -196,6 +196,31 @@ int main(int argc, char **argv)
     cJSON_AddNumberToObject(root, "ratio_coupling3072_to_analysis_cpu", ratio_cpu);
     cJSON_AddNumberToObject(root, "target_ratio", 2.0);
 
+    /* One thread, CPU time: the kernel rate with no thread scheduling in
+     * the figure (on a loaded machine the 2-thread times of small sizes
+     * are mostly waiting at the closing barrier). */
+    omp_set_num_threads(1);
+    double best_1[NS];
+    cJSON *one = cJSON_AddArrayToObject(root, "coupling_1thread");
+    for (int i = 0; i < NS; i++) {
+        double *w1 = mask_spectrum(sizes[i]);
+        double t[REPS], cpu[REPS], bt;
+        for (int r = 0; r < REPS; r++)
+            if (!w1 || time_coupling(sizes[i], w1, &t[r], &cpu[r]) != CLEF_OK) {
+                fprintf(stderr, "bench_coupling: %s\n", clef_last_error());
+                return 1;
+            }
+        free(w1);
+        cJSON *e = cJSON_CreateObject();
+        cJSON_AddNumberToObject(e, "lmax", sizes[i]);
+        add_times(e, t, cpu, REPS, &bt, &best_1[i]);
+        cJSON_AddNumberToObject(e, "terms_per_cpu_s", terms(sizes[i]) / best_1[i]);
+        cJSON_AddItemToArray(one, e);
+    }
+    omp_set_num_threads(NTHREADS);
+    const double alpha_1 = fit_exponent(sizes, best_1, NS);
+    cJSON_AddNumberToObject(root, "fitted_exponent_1thread_cpu", alpha_1);
+
     /* Cache: compute-and-store, then hits of M and of the binned K. */
     char dir[] = "/tmp/clef-bench-cache-XXXXXX";
     if (!mkdtemp(dir)) {
@@ -249,6 +274,11 @@ int main(int argc, char **argv)
                sizes[i], best[i], best_cpu[i], terms(sizes[i]) / best[i],
                5 * terms(sizes[i]) / best[i] * 1e-9);
     printf("  fitted exponent %.2f wall, %.2f CPU (expect ~3)\n", alpha, alpha_cpu);
+    printf("  1 thread, CPU time:");
+    for (int i = 0; i < NS; i++)
+        printf(" %d: %.4f s (%.3g terms/s)%s", sizes[i], best_1[i], terms(sizes[i]) / best_1[i],
+               i + 1 < NS ? "," : "\n");
+    printf("  fitted exponent, 1 thread CPU: %.2f\n", alpha_1);
     printf("  analysis nside %lld lmax %d: %.3f s (%.3f CPU s); coupling lmax %d / analysis = "
            "%.2f wall, %.2f CPU (target <= 2)\n", (long long)nside, alm_lmax, best_a,
            best_a_cpu, L, ratio, ratio_cpu);
