@@ -371,10 +371,12 @@ int clef_coupling_binned_from_k(clef_coupling_binned **out, const double *k,
     int status;
     clef_coupling_binned *kb = NULL;
     clef_coupling_opts o;
-    if (opts)
-        o = *opts;
-    else
-        clef_coupling_opts_default(&o);
+    clef_coupling_opts_default(&o);
+    /* Fields <= 0 (e.g. a zero-initialised struct) keep their defaults. */
+    if (opts && opts->rcond_min > 0)
+        o.rcond_min = opts->rcond_min;
+    if (opts && opts->width_level > 0)
+        o.width_level = opts->width_level;
     if (!out)
         CLEF_FAIL(CLEF_EINVAL, "coupling: output pointer is NULL");
     *out = NULL;

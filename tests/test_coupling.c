@@ -297,6 +297,10 @@ static void test_ill_conditioned(void **state)
     clef_coupling_binned *kb = (void *)1;
     assert_int_equal(clef_coupling_binned_create(&kb, c, bins, NULL, NULL), CLEF_ENUMERIC);
     assert_null(kb);
+    /* a zero-initialised options struct means the defaults, same error */
+    const clef_coupling_opts zero = {0};
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, NULL, &zero), CLEF_ENUMERIC);
+    assert_null(kb);
     const char *msg = clef_last_error();
     assert_true(strstr(msg, "ill-conditioned") || strstr(msg, "singular"));
     assert_non_null(strstr(msg, "coupling width"));
