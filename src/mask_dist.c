@@ -1,0 +1,416 @@
+/* Distance of observed pixels to the masked region, and apodization
+ * (Grain, Tristram & Stompor 2009, PRD 79, 123515, arXiv:0903.2350).
+ *
+ * Distance search: only masked pixels with an observed neighbour ("edge"
+ * pixels) can be nearest to an observed pixel.  Edge pixels are bucketed by
+ * their parent pixel on a coarse grid of nside_c, chosen so that a coarse
+ * pixel is about as wide as the search radius R.  For a coarse cell C,
+ * an edge e within R of a fine pixel p of C satisfies
+ *   angle(centre C, centre B(e)) <= r_c + R + r_c
+ * (r_c bounds the distance from a coarse centre to any point of its pixel),
+ * so one disc query per coarse cell lists the buckets to search, a few
+ * dozen whatever nside is.  Each fine pixel then visits those buckets and
+ * skips a bucket when angle(p, centre B) - r_c exceeds the best distance so
+ * far.  Cells farther than R + 2 r_c from every edge cost one disc query. */
+#define _XOPEN_SOURCE 700
+#include <complex.h>
+#include <math.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include <chealpix.h>
+#include <omp.h>
+
+#include "clef/mask.h"
+#include "core_impl.h"
+#include "mask_impl.h"
+
+static inline int observed(const clef_map *m, int64_t p)
+{
+    return m->valid[p] && m->pix[p] > 0.0;
+}
+
+/* Great-circle angle between unit vectors from the squared chord:
+ * 2 asin(|u - v| / 2), accurate at small angles where acos(u.v) is not. */
+static inline double chord2(const double *u, const double *v)
+{
+    const double dx = u[0] - v[0], dy = u[1] - v[1], dz = u[2] - v[2];
+    return dx * dx + dy * dy + dz * dz;
+}
+static inline double chord2_angle(double c2)
+{
+    const double h = sqrt(c2) / 2.0;
+    return 2.0 * asin(h < 1.0 ? h : 1.0);
+}
+
+/* Mark edge pixels: masked pixels with an observed pixel in rings i-2..i+2
+ * within one pixel width (own ring's plus the other ring's) in phi.  The
+ * 8 HEALPix neighbours lie in those rings (the vertex neighbours N and S
+ * two rings away) within that phi window; next to the poles every pixel of
+ * the nearby rings is taken. */
+static void mark_edges(const clef_map *mask, unsigned char *edge)
+{
+    const int64_t nside = mask->nside, nring = 4 * nside - 1;
+#pragma omp parallel for schedule(dynamic, 4)
+    for (int64_t i = 1; i <= nring; i++) {
+        mask_ring ri;
+        mask_ring_info(nside, i, &ri);
+        const int polar = i <= 2 || i >= nring - 1;
+        for (int64_t j = 0; j < ri.n; j++) {
+            const int64_t p = ri.first + j;
+            edge[p] = 0;
+            if (observed(mask, p))
+                continue;
+            const double phi = 2.0 * M_PI / (double)ri.n * ((double)j + ri.shift);
+            int found = 0;
+            for (int64_t k = i - 2; k <= i + 2 && !found; k++) {
+                if (k < 1 || k > nring)
+                    continue;
+                mask_ring rk;
+                mask_ring_info(nside, k, &rk);
+                const double h = polar ? M_PI : 2.0 * M_PI / (double)ri.n + 2.0 * M_PI / (double)rk.n;
+                mask_range rg[2];
+                const int nr = mask_ring_phi_ranges(&rk, phi, h, rg);
+                for (int a = 0; a < nr && !found; a++)
+                    for (int64_t q = rg[a].lo; q <= rg[a].hi; q++)
+                        if (observed(mask, q)) {
+                            found = 1;
+                            break;
+                        }
+            }
+            edge[p] = (unsigned char)found;
+        }
+    }
+}
+
+int clef_mask_edges(const clef_map *mask, int64_t **edges, size_t *nedges)
+{
+    *edges = NULL;
+    *nedges = 0;
+    unsigned char *flag = malloc((size_t)mask->npix);
+    if (!flag)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for edge flags at nside %lld", (long long)mask->nside);
+    mark_edges(mask, flag);
+    size_t n = 0;
+    for (int64_t p = 0; p < mask->npix; p++)
+        n += flag[p];
+    if (n) {
+        int64_t *e = malloc(sizeof *e * n);
+        if (!e) {
+            free(flag);
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for %zu edge pixels", n);
+        }
+        size_t k = 0;
+        for (int64_t p = 0; p < mask->npix; p++)
+            if (flag[p])
+                e[k++] = p;
+        *edges = e;
+        *nedges = n;
+    }
+    free(flag);
+    return CLEF_OK;
+}
+
+/* Edge pixels bucketed by coarse RING pixel (compressed rows). */
+typedef struct edge_index {
+    int64_t nside_c, ncoarse;
+    size_t *start;  /* ncoarse + 1 offsets into vec */
+    double *vec;    /* 3 per edge, bucket by bucket */
+    double *centre; /* 3 per coarse pixel */
+} edge_index;
+
+static void edge_index_free(edge_index *ix)
+{
+    free(ix->start);
+    free(ix->vec);
+    free(ix->centre);
+}
+
+static int edge_index_build(edge_index *ix, const clef_map *mask, const int64_t *edges,
+                            size_t nedges, int64_t nside_c)
+{
+    memset(ix, 0, sizeof *ix);
+    const int64_t nside = mask->nside;
+    int shift = 0;
+    while ((nside_c << (shift / 2 + 1)) <= nside)
+        shift += 2;
+    ix->nside_c = nside_c;
+    ix->ncoarse = 12 * nside_c * nside_c;
+    int64_t *bucket = malloc(sizeof *bucket * nedges);
+    ix->start = calloc((size_t)ix->ncoarse + 1, sizeof *ix->start);
+    ix->vec = malloc(sizeof *ix->vec * 3 * nedges);
+    ix->centre = malloc(sizeof *ix->centre * 3 * (size_t)ix->ncoarse);
+    if (!bucket || !ix->start || !ix->vec || !ix->centre) {
+        free(bucket);
+        edge_index_free(ix);
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for the edge index (%zu edges, coarse nside %lld)",
+                  nedges, (long long)nside_c);
+    }
+    for (size_t k = 0; k < nedges; k++) {
+        int64_t nest, cring;
+        ring2nest64(nside, edges[k], &nest);
+        nest2ring64(nside_c, nest >> shift, &cring);
+        bucket[k] = cring;
+        ix->start[cring + 1]++;
+    }
+    for (int64_t c = 0; c < ix->ncoarse; c++)
+        ix->start[c + 1] += ix->start[c];
+    size_t *fill = malloc(sizeof *fill * (size_t)ix->ncoarse);
+    if (!fill) {
+        free(bucket);
+        edge_index_free(ix);
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for the edge index");
+    }
+    memcpy(fill, ix->start, sizeof *fill * (size_t)ix->ncoarse);
+    for (size_t k = 0; k < nedges; k++)
+        pix2vec_ring64(nside, edges[k], ix->vec + 3 * fill[bucket[k]]++);
+    for (int64_t c = 0; c < ix->ncoarse; c++)
+        pix2vec_ring64(nside_c, c, ix->centre + 3 * c);
+    free(fill);
+    free(bucket);
+    return CLEF_OK;
+}
+
+/* Per-thread scratch of the search. */
+typedef struct search_scratch {
+    mask_range *ranges;
+    int64_t *cand;
+    size_t cap;
+} search_scratch;
+
+/* Distances for the fine pixels of coarse RING cell c.  Returns 0, or -1
+ * when the candidate list could not grow. */
+static int search_cell(const clef_map *mask, const edge_index *ix, int64_t c, double max_dist,
+                       double search_r, double rc, search_scratch *s, double *dist)
+{
+    const int64_t nside = mask->nside;
+    double th, ph;
+    pix2ang_ring64(ix->nside_c, c, &th, &ph);
+    const size_t nr = mask_disc_ranges(ix->nside_c, th, ph, search_r, s->ranges);
+    size_t nc = 0;
+    for (size_t a = 0; a < nr; a++)
+        for (int64_t b = s->ranges[a].lo; b <= s->ranges[a].hi; b++) {
+            if (ix->start[b + 1] == ix->start[b])
+                continue;
+            if (nc == s->cap) {
+                const size_t cap = s->cap ? 2 * s->cap : 256;
+                int64_t *t = realloc(s->cand, sizeof *t * cap);
+                if (!t)
+                    return -1;
+                s->cand = t;
+                s->cap = cap;
+            }
+            s->cand[nc++] = b;
+        }
+    if (nc == 0)
+        return 0;
+    const int64_t k = nside / ix->nside_c;
+    int64_t cnest;
+    ring2nest64(ix->nside_c, c, &cnest);
+    for (int64_t f = cnest * k * k; f < (cnest + 1) * k * k; f++) {
+        int64_t p;
+        nest2ring64(nside, f, &p);
+        if (!observed(mask, p))
+            continue;
+        double v[3];
+        pix2vec_ring64(nside, p, v);
+        double best_c2 = INFINITY, best = max_dist;
+        for (size_t a = 0; a < nc; a++) {
+            const int64_t b = s->cand[a];
+            /* Every edge of bucket b is at least angle(p, centre b) - rc
+             * away; skip the bucket when that cannot beat `best`. */
+            if (chord2_angle(chord2(v, ix->centre + 3 * b)) - rc > best)
+                continue;
+            for (size_t e = ix->start[b]; e < ix->start[b + 1]; e++) {
+                const double c2 = chord2(v, ix->vec + 3 * e);
+                if (c2 < best_c2) {
+                    best_c2 = c2;
+                    const double d = chord2_angle(c2);
+                    if (d < best)
+                        best = d;
+                }
+            }
+        }
+        dist[p] = best;
+    }
+    return 0;
+}
+
+int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
+{
+    if (!(max_dist > 0.0 && max_dist <= M_PI))
+        CLEF_FAIL(CLEF_EINVAL, "distance search radius %g deg is not in (0, 180]",
+                  max_dist * 180.0 / M_PI);
+    const int64_t nside = mask->nside;
+    int64_t *edges;
+    size_t nedges;
+    CLEF_TRY(clef_mask_edges(mask, &edges, &nedges));
+    for (int64_t p = 0; p < mask->npix; p++)
+        dist[p] = observed(mask, p) ? max_dist : 0.0;
+    if (nedges == 0)
+        return CLEF_OK;
+
+    /* Coarse pixels about as wide as the radius (sqrt(Omega) = 1.02 /
+     * nside_c), but never finer than the map. */
+    int64_t nside_c = 1;
+    while (2 * nside_c <= nside && 1.02 / (double)(2 * nside_c) >= max_dist)
+        nside_c *= 2;
+    edge_index ix;
+    int status = edge_index_build(&ix, mask, edges, nedges, nside_c);
+    free(edges);
+    if (status != CLEF_OK)
+        return status;
+    /* The margins absorb rounding in the angles (~1e-15 rad). */
+    const double rc = mask_max_pixrad(nside_c) * (1.0 + 1e-9) + 1e-12;
+    const double search_r = fmin(M_PI, max_dist + 2.0 * rc);
+
+    const int nthreads = omp_get_max_threads();
+    search_scratch *scr = calloc((size_t)nthreads, sizeof *scr);
+    if (!scr) {
+        edge_index_free(&ix);
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for distance search scratch");
+    }
+    int oom = 0;
+    for (int t = 0; t < nthreads; t++) {
+        scr[t].ranges = malloc(sizeof *scr[t].ranges * (size_t)(2 * (4 * nside_c - 1)));
+        oom |= !scr[t].ranges;
+    }
+    const int64_t ncells = ix.ncoarse;
+    if (!oom) {
+#pragma omp parallel for schedule(dynamic, 8) num_threads(nthreads)
+        for (int64_t c = 0; c < ncells; c++) {
+            const int t = omp_get_thread_num();
+            if (search_cell(mask, &ix, c, max_dist, search_r, rc, &scr[t], dist)) {
+#pragma omp atomic write
+                oom = 1;
+            }
+            if (t == 0 && (c & 255) == 0)
+                clef_progress("distance", (double)c / (double)ncells);
+        }
+        clef_progress("distance", 1.0);
+    }
+    for (int t = 0; t < nthreads; t++) {
+        free(scr[t].ranges);
+        free(scr[t].cand);
+    }
+    free(scr);
+    edge_index_free(&ix);
+    if (oom)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory in the distance search at nside %lld", (long long)nside);
+    return CLEF_OK;
+}
+
+double clef_mask_apod_x(double delta, double delta_c)
+{
+    /* sqrt((1 - cos d) / (1 - cos d_c)) = sin(d/2) / sin(d_c/2), without
+     * the cancellation of 1 - cos at small angles. */
+    return sin(delta / 2.0) / sin(delta_c / 2.0);
+}
+
+/* Grain, Tristram & Stompor 2009 (PRD 79, 123515), C1 kernel. */
+double clef_mask_apod_c1(double x)
+{
+    if (x <= 0.0)
+        return 0.0;
+    if (x >= 1.0)
+        return 1.0;
+    return x - sin(2.0 * M_PI * x) / (2.0 * M_PI);
+}
+
+/* Grain, Tristram & Stompor 2009 (PRD 79, 123515), C2 kernel. */
+double clef_mask_apod_c2(double x)
+{
+    if (x <= 0.0)
+        return 0.0;
+    if (x >= 1.0)
+        return 1.0;
+    return 0.5 * (1.0 - cos(M_PI * x));
+}
+
+/* Gaussian smoothing of the binary mask b (Grain et al. 2009): w =
+ * b * clamp(S[B_l A b]), written into out->pix. */
+static int apodize_gauss(clef_map *out, double *b, double fwhm)
+{
+    const int64_t nside = out->nside;
+    const double sigma = fwhm / sqrt(8.0 * log(2.0));
+    /* B_l = exp(-l(l+1) sigma^2 / 2) < 1e-10 once l sigma > ~6.8. */
+    double lcut = ceil(7.0 / sigma);
+    int lmax = (int)fmin((double)(3 * nside - 1), lcut);
+    if (lmax < 1)
+        lmax = 1;
+    clef_sht *plan = NULL;
+    double complex *alm = NULL;
+    int status;
+    CLEF_CHECK(clef_sht_create(&plan, nside, lmax, NULL));
+    alm = malloc(sizeof *alm * clef_alm_size(lmax, lmax));
+    if (!alm) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for a_lm at lmax %d", lmax);
+        goto fail;
+    }
+    const double *maps[1] = {b};
+    double complex *alms[1] = {alm};
+    CLEF_CHECK(clef_sht_analysis(plan, 1, maps, alms, 3));
+    for (int m = 0; m <= lmax; m++)
+        for (int l = m; l <= lmax; l++)
+            alm[clef_alm_index(lmax, l, m)] *= exp(-0.5 * (double)l * (double)(l + 1) * sigma * sigma);
+    const double complex *calms[1] = {alm};
+    double *outs[1] = {out->pix};
+    CLEF_CHECK(clef_sht_synthesis(plan, 1, calms, outs));
+    /* The band limit leaves small ringing; a weight stays in [0, 1]. */
+    for (int64_t p = 0; p < out->npix; p++)
+        out->pix[p] = b[p] * fmin(1.0, fmax(0.0, out->pix[p]));
+    status = CLEF_OK;
+fail:
+    free(alm);
+    clef_sht_destroy(plan);
+    return status;
+}
+
+int clef_mask_apodize(clef_map **out, const clef_map *mask, const clef_mask_apod_opts *opts)
+{
+    *out = NULL;
+    const int kind = opts->kind;
+    const double scale = opts->scale;
+    if (kind != CLEF_MASK_APOD_C1 && kind != CLEF_MASK_APOD_C2 && kind != CLEF_MASK_APOD_GAUSS)
+        CLEF_FAIL(CLEF_EINVAL, "unknown apodization kind %d", kind);
+    if (!(scale > 0.0 && scale <= M_PI))
+        CLEF_FAIL(CLEF_EINVAL, "apodization scale %g deg is not in (0, 180]", scale * 180.0 / M_PI);
+    if (kind == CLEF_MASK_APOD_GAUSS && !(opts->erode >= 0.0 && opts->erode <= M_PI))
+        CLEF_FAIL(CLEF_EINVAL, "erosion radius %g deg is not in [0, 180]", opts->erode * 180.0 / M_PI);
+    int status;
+    clef_map *w = NULL;
+    double *dist = malloc(sizeof *dist * (size_t)mask->npix);
+    if (!dist)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for distances at nside %lld", (long long)mask->nside);
+    CLEF_CHECK(clef_map_alloc(&w, mask->nside));
+    memcpy(w->coordsys, mask->coordsys, sizeof w->coordsys);
+    if (kind == CLEF_MASK_APOD_GAUSS) {
+        /* dist doubles as the binary (eroded) mask handed to the transform. */
+        if (opts->erode > 0.0) {
+            CLEF_CHECK(clef_mask_distance(mask, opts->erode, dist));
+            for (int64_t p = 0; p < mask->npix; p++)
+                dist[p] = observed(mask, p) && dist[p] >= opts->erode ? 1.0 : 0.0;
+        } else {
+            for (int64_t p = 0; p < mask->npix; p++)
+                dist[p] = observed(mask, p) ? 1.0 : 0.0;
+        }
+        CLEF_CHECK(apodize_gauss(w, dist, scale));
+    } else {
+        CLEF_CHECK(clef_mask_distance(mask, scale, dist));
+        for (int64_t p = 0; p < mask->npix; p++) {
+            if (!observed(mask, p)) {
+                w->pix[p] = 0.0;
+                continue;
+            }
+            const double x = clef_mask_apod_x(dist[p], scale);
+            w->pix[p] = kind == CLEF_MASK_APOD_C1 ? clef_mask_apod_c1(x) : clef_mask_apod_c2(x);
+        }
+    }
+    free(dist);
+    *out = w;
+    return CLEF_OK;
+fail:
+    free(dist);
+    clef_map_free(w);
+    return status;
+}
