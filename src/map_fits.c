@@ -584,6 +584,7 @@ int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *op
         status = clef_fail(CLEF_ENOMEM, "cannot allocate a map header");
         goto fail;
     }
+    m->hdu = r.ext;
     CLEF_CHECK(read_header(&r, opts, m));
     int ncols = 0;
     long long nrows = 0;

@@ -45,6 +45,7 @@ typedef struct clef_map {
     char coordsys[16];      /* "G", "E", "C" or "" when unknown */
     char unit[64];          /* TUNIT of the column read, or "" */
     char column[72];        /* name of the column read, or "" */
+    int hdu;                /* extension read (1 = first after the primary), 0 if made in memory */
 } clef_map;
 
 /* Which table and column to read.  All fields may be 0/NULL for defaults. */

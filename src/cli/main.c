@@ -7,6 +7,8 @@
 
 /* One line per subcommand; the table ends with an empty entry. */
 static const cli_command commands[] = {
+    {"inspect", "summarise a HEALPix map file", cmd_inspect},
+    {"convert", "rewrite a HEALPix map in clef's RING layout", cmd_convert},
     {NULL, NULL, NULL},
 };
 
