@@ -51,6 +51,8 @@ int clef_mask_binarize(clef_map **out, const clef_map *in, double threshold, int
  * mask produced here is fully valid. */
 static void mask_normalise(clef_map *mask)
 {
+    if (mask->nmissing == 0)
+        return;
     for (int64_t p = 0; p < mask->npix; p++) {
         if (!mask->valid[p]) {
             mask->pix[p] = 0.0;

@@ -47,50 +47,76 @@ static inline double chord2_angle(double c2)
  * within one pixel width (own ring's plus the other ring's) in phi.  The
  * 8 HEALPix neighbours lie in those rings (the vertex neighbours N and S
  * two rings away) within that phi window; next to the poles every pixel of
- * the nearby rings is taken. */
-static void mark_edges(const clef_map *mask, unsigned char *edge)
+ * the nearby rings is taken.  obs[p] is 1 for observed pixels. */
+static void mark_edges(int64_t nside, const unsigned char *obs, unsigned char *edge)
 {
-    const int64_t nside = mask->nside, nring = 4 * nside - 1;
+    const int64_t nring = 4 * nside - 1;
 #pragma omp parallel for schedule(dynamic, 4)
     for (int64_t i = 1; i <= nring; i++) {
-        mask_ring ri;
+        mask_ring ri, rk[5];
+        double ratio[5], hk[5];
         mask_ring_info(nside, i, &ri);
         const int polar = i <= 2 || i >= nring - 1;
+        for (int d = 0; d < 5; d++) {
+            const int64_t k = i + d - 2;
+            hk[d] = -1.0; /* ring absent */
+            if (k < 1 || k > nring)
+                continue;
+            mask_ring_info(nside, k, &rk[d]);
+            /* In units of ring k's pixel width: pixel j of ring i sits at
+             * u = (j + s_i) n_k / n_i - s_k, and the window half-width
+             * (one pixel of each ring) is n_k / n_i + 1. */
+            ratio[d] = (double)rk[d].n / (double)ri.n;
+            hk[d] = polar ? (double)rk[d].n : ratio[d] + 1.0;
+        }
         for (int64_t j = 0; j < ri.n; j++) {
             const int64_t p = ri.first + j;
             edge[p] = 0;
-            if (observed(mask, p))
+            if (obs[p])
                 continue;
-            const double phi = 2.0 * M_PI / (double)ri.n * ((double)j + ri.shift);
             int found = 0;
-            for (int64_t k = i - 2; k <= i + 2 && !found; k++) {
-                if (k < 1 || k > nring)
+            for (int d = 0; d < 5 && !found; d++) {
+                if (hk[d] < 0.0)
                     continue;
-                mask_ring rk;
-                mask_ring_info(nside, k, &rk);
-                const double h = polar ? M_PI : 2.0 * M_PI / (double)ri.n + 2.0 * M_PI / (double)rk.n;
-                mask_range rg[2];
-                const int nr = mask_ring_phi_ranges(&rk, phi, h, rg);
-                for (int a = 0; a < nr && !found; a++)
-                    for (int64_t q = rg[a].lo; q <= rg[a].hi; q++)
-                        if (observed(mask, q)) {
-                            found = 1;
-                            break;
-                        }
+                const int64_t n = rk[d].n;
+                const double u = ((double)j + ri.shift) * ratio[d] - rk[d].shift;
+                int64_t lo = (int64_t)ceil(u - hk[d]), hi = (int64_t)floor(u + hk[d]);
+                if (hi - lo + 1 >= n) {
+                    lo = 0;
+                    hi = n - 1;
+                }
+                /* The window is shorter than the ring: one wrap at most. */
+                for (int64_t q = lo; q <= hi && !found; q++)
+                    found = obs[rk[d].first + (q < 0 ? q + n : (q >= n ? q - n : q))];
             }
             edge[p] = (unsigned char)found;
         }
     }
 }
 
+/* 1 for observed pixels (valid and > 0), else 0; NULL when out of memory. */
+static unsigned char *observed_flags(const clef_map *mask)
+{
+    unsigned char *obs = malloc((size_t)mask->npix);
+    if (obs)
+        for (int64_t p = 0; p < mask->npix; p++)
+            obs[p] = (unsigned char)observed(mask, p);
+    return obs;
+}
+
 int clef_mask_edges(const clef_map *mask, int64_t **edges, size_t *nedges)
 {
     *edges = NULL;
     *nedges = 0;
+    unsigned char *obs = observed_flags(mask);
     unsigned char *flag = malloc((size_t)mask->npix);
-    if (!flag)
+    if (!obs || !flag) {
+        free(obs);
+        free(flag);
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for edge flags at nside %lld", (long long)mask->nside);
-    mark_edges(mask, flag);
+    }
+    mark_edges(mask->nside, obs, flag);
+    free(obs);
     size_t n = 0;
     for (int64_t p = 0; p < mask->npix; p++)
         n += flag[p];
@@ -111,18 +137,21 @@ int clef_mask_edges(const clef_map *mask, int64_t **edges, size_t *nedges)
     return CLEF_OK;
 }
 
-/* Edge pixels bucketed by coarse RING pixel (compressed rows). */
+/* Edge pixels bucketed by coarse RING pixel (compressed rows); unit vectors
+ * stored as separate x, y, z arrays so the scan of a bucket vectorises. */
 typedef struct edge_index {
     int64_t nside_c, ncoarse;
-    size_t *start;  /* ncoarse + 1 offsets into vec */
-    double *vec;    /* 3 per edge, bucket by bucket */
+    size_t *start;  /* ncoarse + 1 offsets into x, y, z */
+    double *x, *y, *z;
     double *centre; /* 3 per coarse pixel */
 } edge_index;
 
 static void edge_index_free(edge_index *ix)
 {
     free(ix->start);
-    free(ix->vec);
+    free(ix->x);
+    free(ix->y);
+    free(ix->z);
     free(ix->centre);
 }
 
@@ -131,17 +160,21 @@ static int edge_index_build(edge_index *ix, const clef_map *mask, const int64_t 
 {
     memset(ix, 0, sizeof *ix);
     const int64_t nside = mask->nside;
-    int shift = 0;
+    int shift = 0; /* 2 log2(nside / nside_c): NESTED parent = index >> shift */
     while ((nside_c << (shift / 2 + 1)) <= nside)
         shift += 2;
     ix->nside_c = nside_c;
     ix->ncoarse = 12 * nside_c * nside_c;
     int64_t *bucket = malloc(sizeof *bucket * nedges);
+    size_t *fill = malloc(sizeof *fill * (size_t)ix->ncoarse);
     ix->start = calloc((size_t)ix->ncoarse + 1, sizeof *ix->start);
-    ix->vec = malloc(sizeof *ix->vec * 3 * nedges);
+    ix->x = malloc(sizeof *ix->x * nedges);
+    ix->y = malloc(sizeof *ix->y * nedges);
+    ix->z = malloc(sizeof *ix->z * nedges);
     ix->centre = malloc(sizeof *ix->centre * 3 * (size_t)ix->ncoarse);
-    if (!bucket || !ix->start || !ix->vec || !ix->centre) {
+    if (!bucket || !fill || !ix->start || !ix->x || !ix->y || !ix->z || !ix->centre) {
         free(bucket);
+        free(fill);
         edge_index_free(ix);
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for the edge index (%zu edges, coarse nside %lld)",
                   nedges, (long long)nside_c);
@@ -155,15 +188,15 @@ static int edge_index_build(edge_index *ix, const clef_map *mask, const int64_t 
     }
     for (int64_t c = 0; c < ix->ncoarse; c++)
         ix->start[c + 1] += ix->start[c];
-    size_t *fill = malloc(sizeof *fill * (size_t)ix->ncoarse);
-    if (!fill) {
-        free(bucket);
-        edge_index_free(ix);
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory for the edge index");
-    }
     memcpy(fill, ix->start, sizeof *fill * (size_t)ix->ncoarse);
-    for (size_t k = 0; k < nedges; k++)
-        pix2vec_ring64(nside, edges[k], ix->vec + 3 * fill[bucket[k]]++);
+    for (size_t k = 0; k < nedges; k++) {
+        double v[3];
+        pix2vec_ring64(nside, edges[k], v);
+        const size_t at = fill[bucket[k]]++;
+        ix->x[at] = v[0];
+        ix->y[at] = v[1];
+        ix->z[at] = v[2];
+    }
     for (int64_t c = 0; c < ix->ncoarse; c++)
         pix2vec_ring64(nside_c, c, ix->centre + 3 * c);
     free(fill);
@@ -171,21 +204,57 @@ static int edge_index_build(edge_index *ix, const clef_map *mask, const int64_t 
     return CLEF_OK;
 }
 
+/* A bucket to search from one coarse cell, with its squared chord to the
+ * cell's centre (for ordering). */
+typedef struct candidate {
+    int64_t bucket;
+    double c2;
+} candidate;
+
+static int candidate_cmp(const void *a, const void *b)
+{
+    const double x = ((const candidate *)a)->c2, y = ((const candidate *)b)->c2;
+    return (x > y) - (x < y);
+}
+
 /* Per-thread scratch of the search. */
 typedef struct search_scratch {
     mask_range *ranges;
-    int64_t *cand;
+    candidate *cand;
     size_t cap;
 } search_scratch;
 
+/* Squared chord of the angle t (t >= pi: the largest chord, 4). */
+static inline double angle_chord2(double t)
+{
+    if (t >= M_PI)
+        return INFINITY;
+    const double s = 2.0 * sin(t / 2.0);
+    return s * s;
+}
+
+/* Smallest squared chord from v to the edges [lo, hi) of the index. */
+static inline double bucket_min(const edge_index *ix, size_t lo, size_t hi, const double *v)
+{
+    double m = INFINITY;
+    for (size_t e = lo; e < hi; e++) {
+        const double dx = v[0] - ix->x[e], dy = v[1] - ix->y[e], dz = v[2] - ix->z[e];
+        const double c2 = dx * dx + dy * dy + dz * dz;
+        m = c2 < m ? c2 : m;
+    }
+    return m;
+}
+
 /* Distances for the fine pixels of coarse RING cell c.  Returns 0, or -1
  * when the candidate list could not grow. */
-static int search_cell(const clef_map *mask, const edge_index *ix, int64_t c, double max_dist,
-                       double search_r, double rc, search_scratch *s, double *dist)
+static int search_cell(const clef_map *mask, const unsigned char *obs, const edge_index *ix,
+                       int64_t c, double max_dist, double search_r, double rc,
+                       search_scratch *s, double *dist)
 {
     const int64_t nside = mask->nside;
     double th, ph;
     pix2ang_ring64(ix->nside_c, c, &th, &ph);
+    const double *cc = ix->centre + 3 * c;
     const size_t nr = mask_disc_ranges(ix->nside_c, th, ph, search_r, s->ranges);
     size_t nc = 0;
     for (size_t a = 0; a < nr; a++)
@@ -194,40 +263,45 @@ static int search_cell(const clef_map *mask, const edge_index *ix, int64_t c, do
                 continue;
             if (nc == s->cap) {
                 const size_t cap = s->cap ? 2 * s->cap : 256;
-                int64_t *t = realloc(s->cand, sizeof *t * cap);
+                candidate *t = realloc(s->cand, sizeof *t * cap);
                 if (!t)
                     return -1;
                 s->cand = t;
                 s->cap = cap;
             }
-            s->cand[nc++] = b;
+            s->cand[nc].bucket = b;
+            s->cand[nc++].c2 = chord2(cc, ix->centre + 3 * b);
         }
     if (nc == 0)
         return 0;
+    /* Nearest buckets first: a close edge found early prunes the rest. */
+    qsort(s->cand, nc, sizeof *s->cand, candidate_cmp);
     const int64_t k = nside / ix->nside_c;
     int64_t cnest;
     ring2nest64(ix->nside_c, c, &cnest);
     for (int64_t f = cnest * k * k; f < (cnest + 1) * k * k; f++) {
         int64_t p;
         nest2ring64(nside, f, &p);
-        if (!observed(mask, p))
+        if (!obs[p])
             continue;
         double v[3];
         pix2vec_ring64(nside, p, v);
+        /* Every edge of bucket b is at least angle(p, centre b) - rc away:
+         * skip b when angle(p, centre b) > best + rc, compared as squared
+         * chords (monotone in the angle). */
         double best_c2 = INFINITY, best = max_dist;
+        double skip_c2 = angle_chord2(best + rc);
         for (size_t a = 0; a < nc; a++) {
-            const int64_t b = s->cand[a];
-            /* Every edge of bucket b is at least angle(p, centre b) - rc
-             * away; skip the bucket when that cannot beat `best`. */
-            if (chord2_angle(chord2(v, ix->centre + 3 * b)) - rc > best)
+            const int64_t b = s->cand[a].bucket;
+            if (chord2(v, ix->centre + 3 * b) > skip_c2)
                 continue;
-            for (size_t e = ix->start[b]; e < ix->start[b + 1]; e++) {
-                const double c2 = chord2(v, ix->vec + 3 * e);
-                if (c2 < best_c2) {
-                    best_c2 = c2;
-                    const double d = chord2_angle(c2);
-                    if (d < best)
-                        best = d;
+            const double m = bucket_min(ix, ix->start[b], ix->start[b + 1], v);
+            if (m < best_c2) {
+                best_c2 = m;
+                const double d = chord2_angle(m);
+                if (d < best) {
+                    best = d;
+                    skip_c2 = angle_chord2(best + rc);
                 }
             }
         }
@@ -249,6 +323,11 @@ int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
         dist[p] = observed(mask, p) ? max_dist : 0.0;
     if (nedges == 0)
         return CLEF_OK;
+    unsigned char *obs = observed_flags(mask);
+    if (!obs) {
+        free(edges);
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for pixel flags at nside %lld", (long long)nside);
+    }
 
     /* Coarse pixels about as wide as the radius (sqrt(Omega) = 1.02 /
      * nside_c), but never finer than the map. */
@@ -258,8 +337,10 @@ int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
     edge_index ix;
     int status = edge_index_build(&ix, mask, edges, nedges, nside_c);
     free(edges);
-    if (status != CLEF_OK)
+    if (status != CLEF_OK) {
+        free(obs);
         return status;
+    }
     /* The margins absorb rounding in the angles (~1e-15 rad). */
     const double rc = mask_max_pixrad(nside_c) * (1.0 + 1e-9) + 1e-12;
     const double search_r = fmin(M_PI, max_dist + 2.0 * rc);
@@ -267,6 +348,7 @@ int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
     const int nthreads = omp_get_max_threads();
     search_scratch *scr = calloc((size_t)nthreads, sizeof *scr);
     if (!scr) {
+        free(obs);
         edge_index_free(&ix);
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for distance search scratch");
     }
@@ -280,7 +362,7 @@ int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
 #pragma omp parallel for schedule(dynamic, 8) num_threads(nthreads)
         for (int64_t c = 0; c < ncells; c++) {
             const int t = omp_get_thread_num();
-            if (search_cell(mask, &ix, c, max_dist, search_r, rc, &scr[t], dist)) {
+            if (search_cell(mask, obs, &ix, c, max_dist, search_r, rc, &scr[t], dist)) {
 #pragma omp atomic write
                 oom = 1;
             }
@@ -294,6 +376,7 @@ int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
         free(scr[t].cand);
     }
     free(scr);
+    free(obs);
     edge_index_free(&ix);
     if (oom)
         CLEF_FAIL(CLEF_ENOMEM, "out of memory in the distance search at nside %lld", (long long)nside);
