@@ -9,6 +9,7 @@
 static const cli_command commands[] = {
     {"inspect", "summarise a HEALPix map file", cmd_inspect},
     {"convert", "rewrite a HEALPix map in clef's RING layout", cmd_convert},
+    {"mask", "build, cut, apodize and report a mask", cmd_mask},
     {NULL, NULL, NULL},
 };
 
