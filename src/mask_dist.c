@@ -329,10 +329,12 @@ int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for pixel flags at nside %lld", (long long)nside);
     }
 
-    /* Coarse pixels about as wide as the radius (sqrt(Omega) = 1.02 /
-     * nside_c), but never finer than the map. */
+    /* Coarse pixels a quarter of the radius wide (sqrt(Omega) = 1.02 /
+     * nside_c): small enough that the bucket bound r_c prunes well, and at
+     * least 16 x 16 fine pixels per cell so that the one disc query per
+     * cell stays cheap (measured at nside 2048, docs/masks.md). */
     int64_t nside_c = 1;
-    while (2 * nside_c <= nside && 1.02 / (double)(2 * nside_c) >= max_dist)
+    while (2 * nside_c <= nside / 16 && 1.02 / (double)(2 * nside_c) >= max_dist / 4.0)
         nside_c *= 2;
     edge_index ix;
     int status = edge_index_build(&ix, mask, edges, nedges, nside_c);
