@@ -100,7 +100,12 @@ static int disc_ranges(int64_t nside, double lon, double lat, double radius,
     mask_range *r = malloc(sizeof *r * (size_t)(2 * (4 * nside - 1)));
     if (!r)
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for a disc query at nside %lld", (long long)nside);
-    *n = mask_disc_ranges(nside, M_PI / 2 - lat, lon, radius, r);
+    /* Any finite longitude: reduce it to [0, 2 pi) so index arithmetic
+     * on the ring stays small. */
+    double phi = fmod(lon, 2 * M_PI);
+    if (phi < 0)
+        phi += 2 * M_PI;
+    *n = mask_disc_ranges(nside, M_PI / 2 - lat, phi, radius, r);
     *ranges = r;
     return CLEF_OK;
 }

@@ -114,7 +114,8 @@ static void test_disc_query(void **state)
     const double radii[] = {0.0123, 0.0871, 0.3712, 1.1234, 2.0517, 3.0011, M_PI};
     const double centres[][2] = {{0, 90},     {123, -90},  {10, 89.3},    {200, -88.1},
                                  {0, 0},      {359.7, 12}, {0.2, -41.8},  {180, 45.5},
-                                 {271.3, 63}, {45, -66.5}, {90.01, 30.2}, {-30, 5}};
+                                 {271.3, 63}, {45, -66.5}, {90.01, 30.2}, {-30, 5},
+                                 {7200.5, -12}, {-1e6, 33}};
     for (int64_t nside = 1; nside <= 32; nside *= 2)
         for (size_t c = 0; c < sizeof centres / sizeof centres[0]; c++)
             for (size_t r = 0; r < sizeof radii / sizeof radii[0]; r++)
