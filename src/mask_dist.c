@@ -104,21 +104,18 @@ static unsigned char *observed_flags(const clef_map *mask)
     return obs;
 }
 
-int clef_mask_edges(const clef_map *mask, int64_t **edges, size_t *nedges)
+/* The edge pixels of a mask given its observed flags, in RING order. */
+static int collect_edges(int64_t nside, const unsigned char *obs, int64_t **edges, size_t *nedges)
 {
+    const int64_t npix = 12 * nside * nside;
     *edges = NULL;
     *nedges = 0;
-    unsigned char *obs = observed_flags(mask);
-    unsigned char *flag = malloc((size_t)mask->npix);
-    if (!obs || !flag) {
-        free(obs);
-        free(flag);
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory for edge flags at nside %lld", (long long)mask->nside);
-    }
-    mark_edges(mask->nside, obs, flag);
-    free(obs);
+    unsigned char *flag = malloc((size_t)npix);
+    if (!flag)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for edge flags at nside %lld", (long long)nside);
+    mark_edges(nside, obs, flag);
     size_t n = 0;
-    for (int64_t p = 0; p < mask->npix; p++)
+    for (int64_t p = 0; p < npix; p++)
         n += flag[p];
     if (n) {
         int64_t *e = malloc(sizeof *e * n);
@@ -127,7 +124,7 @@ int clef_mask_edges(const clef_map *mask, int64_t **edges, size_t *nedges)
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for %zu edge pixels", n);
         }
         size_t k = 0;
-        for (int64_t p = 0; p < mask->npix; p++)
+        for (int64_t p = 0; p < npix; p++)
             if (flag[p])
                 e[k++] = p;
         *edges = e;
@@ -135,6 +132,18 @@ int clef_mask_edges(const clef_map *mask, int64_t **edges, size_t *nedges)
     }
     free(flag);
     return CLEF_OK;
+}
+
+int clef_mask_edges(const clef_map *mask, int64_t **edges, size_t *nedges)
+{
+    *edges = NULL;
+    *nedges = 0;
+    unsigned char *obs = observed_flags(mask);
+    if (!obs)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for pixel flags at nside %lld", (long long)mask->nside);
+    const int status = collect_edges(mask->nside, obs, edges, nedges);
+    free(obs);
+    return status;
 }
 
 /* Edge pixels bucketed by coarse RING pixel (compressed rows); unit vectors
@@ -316,17 +325,17 @@ int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
         CLEF_FAIL(CLEF_EINVAL, "distance search radius %g deg is not in (0, 180]",
                   max_dist * 180.0 / M_PI);
     const int64_t nside = mask->nside;
+    unsigned char *obs = observed_flags(mask);
+    if (!obs)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for pixel flags at nside %lld", (long long)nside);
+    for (int64_t p = 0; p < mask->npix; p++)
+        dist[p] = obs[p] ? max_dist : 0.0;
     int64_t *edges;
     size_t nedges;
-    CLEF_TRY(clef_mask_edges(mask, &edges, &nedges));
-    for (int64_t p = 0; p < mask->npix; p++)
-        dist[p] = observed(mask, p) ? max_dist : 0.0;
-    if (nedges == 0)
-        return CLEF_OK;
-    unsigned char *obs = observed_flags(mask);
-    if (!obs) {
-        free(edges);
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory for pixel flags at nside %lld", (long long)nside);
+    int status = collect_edges(nside, obs, &edges, &nedges);
+    if (status != CLEF_OK || nedges == 0) {
+        free(obs);
+        return status;
     }
 
     /* Coarse pixels a quarter of the radius wide (sqrt(Omega) = 1.02 /
@@ -337,7 +346,7 @@ int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
     while (2 * nside_c <= nside / 16 && 1.02 / (double)(2 * nside_c) >= max_dist / 4.0)
         nside_c *= 2;
     edge_index ix;
-    int status = edge_index_build(&ix, mask, edges, nedges, nside_c);
+    status = edge_index_build(&ix, mask, edges, nedges, nside_c);
     free(edges);
     if (status != CLEF_OK) {
         free(obs);
