@@ -30,7 +30,7 @@
 #define CLEF_SHT_VL 8
 /* Vectors in flight per block: enough independent recurrence chains to
  * cover the FMA latency (PERFORMANCE.md section 2 item 3). */
-#define CLEF_SHT_NV 2
+#define CLEF_SHT_NV 4
 #define CLEF_SHT_BLOCK (CLEF_SHT_VL * CLEF_SHT_NV)
 /* Doubles per (m, block, map) in the phase array: 2 parities x re/im x lanes. */
 #define CLEF_SHT_BLOCKDBL (4 * CLEF_SHT_BLOCK)
@@ -74,7 +74,8 @@ typedef struct clef_sht_thread {
 
 /* Mutable state reached through the const plan: timings of the last call. */
 typedef struct clef_sht_state {
-    double t_fft, t_leg;
+    double t_fft, t_leg; /* wall seconds */
+    double c_fft, c_leg; /* process CPU seconds (all threads) */
 } clef_sht_state;
 
 struct clef_sht {

@@ -269,10 +269,15 @@ int clef_sht_ring_info(const clef_sht *p, int ring, double *z, double *phi0, int
     return CLEF_OK;
 }
 
-void clef_sht_timings(const clef_sht *p, double *fft_seconds, double *legendre_seconds)
+void clef_sht_timings(const clef_sht *p, double *fft_wall, double *legendre_wall,
+                      double *fft_cpu, double *legendre_cpu)
 {
-    if (fft_seconds)
-        *fft_seconds = p->state->t_fft;
-    if (legendre_seconds)
-        *legendre_seconds = p->state->t_leg;
+    if (fft_wall)
+        *fft_wall = p->state->t_fft;
+    if (legendre_wall)
+        *legendre_wall = p->state->t_leg;
+    if (fft_cpu)
+        *fft_cpu = p->state->c_fft;
+    if (legendre_cpu)
+        *legendre_cpu = p->state->c_leg;
 }
