@@ -14,6 +14,7 @@ static const cli_command commands[] = {
     {"spectrum", "band powers, errors and first peak of a map (or two) and a mask", cmd_spectrum},
     {"model", "analytic CMB temperature spectrum for cosmological parameters", cmd_model},
     {"geometry", "curvature and acoustic scale from the first peak", cmd_geometry},
+    {"mask", "build, cut, apodize and report a mask", cmd_mask},
     {NULL, NULL, NULL},
 };
 
