@@ -370,21 +370,43 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
     /* Analyses: the weighted maps to lmax (their spectra are only needed
      * there, and analysing them further, up to 3 nside - 1, would only add
      * quadrature error), the masks and the product mask to lmax_t.  When
-     * both limits agree, one call shares the Legendre recurrence. */
+     * both limits agree, one call shares the Legendre recurrence.  The mask
+     * spectra depend on the weights alone, so a nightly rerun with the same
+     * mask takes them from the cache and analyses the maps only. */
     const int nm = 1 + cross;                      /* weighted maps: alm[0..nm-1] */
     const int im = nm;                             /* mask 1 */
     const int im2 = two_masks ? im + 1 : im;       /* mask 2 */
     const int iw = im2 + 1;                        /* product mask */
+    for (int k = 0; k < 3; k++) {
+        pcl[k] = calloc((size_t)lmax + 1, sizeof(double));
+        if (!pcl[k]) {
+            status = clef_fail(CLEF_ENOMEM, "out of memory for spectra");
+            goto fail;
+        }
+    }
+    wl = calloc(2 * ((size_t)lmax_t + 1), sizeof *wl);
+    tl = malloc((size_t)(lmax + 1) * sizeof *tl);
+    pcl_dec = malloc((size_t)(lmax + 1) * sizeof *pcl_dec);
+    if (!wl || !tl || !pcl_dec) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for spectra");
+        goto fail;
+    }
+    wl2 = wl + lmax_t + 1; /* the two mask spectra are one cache entry */
+    int mask_hit = 0;
+    if (o.use_cache)
+        mask_hit = clef_spectrum_mask_cache(&o, nside, lmax_t, cross ? w[1] : NULL, w[0], wl, 0);
     {
         const double *in[5];
         int n = 0;
         in[n++] = tmap[0];
         if (cross)
             in[n++] = tmap[1];
-        in[n++] = w[0];
-        if (two_masks)
-            in[n++] = w[1];
-        in[n++] = wprod;
+        if (!mask_hit) {
+            in[n++] = w[0];
+            if (two_masks)
+                in[n++] = w[1];
+            in[n++] = wprod;
+        }
         for (int i = 0; i < n; i++) {
             int la = i < nm ? lmax : lmax_t;
             alm[i] = malloc(clef_alm_size(la, la) * sizeof(double complex));
@@ -395,14 +417,11 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
         }
         clef_progress("analysis", 0.0);
         clef_sht_opts so = {0};
-        if (lmax_t == lmax) {
-            so.nmaps = n;
-            CLEF_CHECK(clef_sht_create(&sht, nside, lmax, &so));
-            CLEF_CHECK(clef_sht_analysis(sht, n, in, (double complex *const *)alm, o.iterations));
-        } else {
-            so.nmaps = nm;
-            CLEF_CHECK(clef_sht_create(&sht, nside, lmax, &so));
-            CLEF_CHECK(clef_sht_analysis(sht, nm, in, (double complex *const *)alm, o.iterations));
+        const int shared = lmax_t == lmax ? n : nm;
+        so.nmaps = shared;
+        CLEF_CHECK(clef_sht_create(&sht, nside, lmax, &so));
+        CLEF_CHECK(clef_sht_analysis(sht, shared, in, (double complex *const *)alm, o.iterations));
+        if (shared < n) {
             clef_progress("analysis", 0.3);
             clef_sht_destroy(sht);
             sht = NULL;
@@ -416,33 +435,20 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
     stage_done(res, "transform", &t0);
 
     /* Pseudo-spectra: 0 = map1 x map(2), 1 = map1 auto, 2 = map2 auto. */
-    {
-        for (int k = 0; k < 3; k++) {
-            pcl[k] = calloc((size_t)lmax + 1, sizeof(double));
-            if (!pcl[k]) {
-                status = clef_fail(CLEF_ENOMEM, "out of memory for spectra");
-                goto fail;
-            }
-        }
-        wl = calloc((size_t)lmax_t + 1, sizeof *wl);
-        wl2 = calloc((size_t)lmax_t + 1, sizeof *wl2);
-        tl = malloc((size_t)(lmax + 1) * sizeof *tl);
-        pcl_dec = malloc((size_t)(lmax + 1) * sizeof *pcl_dec);
-        if (!wl || !wl2 || !tl || !pcl_dec) {
-            status = clef_fail(CLEF_ENOMEM, "out of memory for spectra");
-            goto fail;
-        }
-        CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[0], alm[cross ? 1 : 0], pcl[0]));
-        if (cross) {
-            CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[0], NULL, pcl[1]));
-            CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[1], NULL, pcl[2]));
-        }
+    CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[0], alm[cross ? 1 : 0], pcl[0]));
+    if (cross) {
+        CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[0], NULL, pcl[1]));
+        CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[1], NULL, pcl[2]));
+    }
+    if (!mask_hit) {
         /* W_l of the mask pair (a cross-spectrum for two masks). */
         CLEF_CHECK(clef_alm_cl(lmax_t, lmax_t, alm[im], alm[im2], wl));
         CLEF_CHECK(clef_alm_cl(lmax_t, lmax_t, alm[iw], NULL, wl2));
         for (int l = 0; l <= lmax_t; l++) /* a cross W_l can dip below 0 by round-off */
             if (wl[l] < 0)
                 wl[l] = 0;
+        if (o.use_cache)
+            clef_spectrum_mask_cache(&o, nside, lmax_t, cross ? w[1] : NULL, w[0], wl, 1);
     }
 
     /* Bins. */
@@ -579,7 +585,6 @@ fail:
         free(pcl[k]);
     free(pcl_dec);
     free(wl);
-    free(wl2);
     free(tl);
     free(wprod);
     free(tmap[0]);
