@@ -2,6 +2,7 @@
  * holes; moments and the mask power spectrum. */
 #define _XOPEN_SOURCE 700
 #include "clef/mask.h"
+#include "clef/sht.h"
 
 #include <complex.h>
 #include <errno.h>

@@ -22,6 +22,7 @@
 #include <omp.h>
 
 #include "clef/mask.h"
+#include "clef/sht.h"
 #include "core_impl.h"
 #include "mask_impl.h"
 

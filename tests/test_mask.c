@@ -11,6 +11,7 @@
 #include <gsl/gsl_rng.h>
 
 #include "clef/mask.h"
+#include "clef/sht.h"
 #include "mask_impl.h"
 
 #define DEG (M_PI / 180.0)
