@@ -196,12 +196,13 @@ static void test_distance_brute(void **state)
     const double radii[] = {0.03, 0.15, 0.6, M_PI};
     /* nside 64 gives a coarse grid of nside 4 at the smallest radius; the
      * brute force over every masked pixel is kept to nside <= 32. */
-    for (int64_t nside = 8; nside <= 64; nside *= 2) {
+    for (int64_t nside = 1; nside <= 64; nside *= 2) {
         clef_map *m = messy_mask(nside, (unsigned long)nside);
         int64_t *edges;
         size_t nedges;
         assert_int_equal(clef_mask_edges(m, &edges, &nedges), CLEF_OK);
-        assert_true(nedges > 0);
+        /* nside 1 and 2: the cuts may leave no observed pixel, hence no
+         * edge; the brute-force comparison below still applies. */
         /* Unit vectors of the edge and masked pixel centres (chealpix). */
         double *ev = malloc(sizeof *ev * 3 * nedges);
         double *mv = malloc(sizeof *mv * 3 * (size_t)m->npix);
