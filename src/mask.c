@@ -337,3 +337,14 @@ int clef_mask_spectrum(const clef_sht *plan, const clef_map *mask, int iteration
     free(alm);
     return status;
 }
+
+int clef_mask_spectrum_lmax(const clef_map *mask, int lmax, int iterations, double *wl)
+{
+    if (lmax < 1)
+        CLEF_FAIL(CLEF_EINVAL, "mask spectrum: lmax %d < 1", lmax);
+    clef_sht *plan;
+    CLEF_TRY(clef_sht_create(&plan, mask->nside, lmax, NULL));
+    const int status = clef_mask_spectrum(plan, mask, iterations, wl);
+    clef_sht_destroy(plan);
+    return status;
+}

@@ -493,6 +493,10 @@ static void test_spectrum_hemisphere(void **state)
     assert_int_equal(clef_sht_create(&plan, nside, lmax, NULL), CLEF_OK);
     double wl[9];
     assert_int_equal(clef_mask_spectrum(plan, m, 3, wl), CLEF_OK);
+    double wl2[9];
+    assert_int_equal(clef_mask_spectrum_lmax(m, lmax, 3, wl2), CLEF_OK);
+    assert_memory_equal(wl, wl2, sizeof wl);
+    assert_int_equal(clef_mask_spectrum_lmax(m, 0, 3, wl2), CLEF_EINVAL);
     const double il[9] = {1, 0.5, 0, -0.125, 0, 1.0 / 16, 0, -5.0 / 128, 0};
     for (int l = 0; l <= lmax; l++) {
         if (il[l] != 0)

@@ -153,6 +153,12 @@ int clef_mask_moments_compute(const clef_map *mask, clef_mask_moments *out);
  * CLEF_ENOMEM or the transform's errors. */
 int clef_mask_spectrum(const clef_sht *plan, const clef_map *mask, int iterations, double *wl);
 
+/* The same with a plan made for the call (nside of the mask, lmax and
+ * mmax = lmax, default options) and destroyed before returning: simpler
+ * for a single mask, slower when several masks share a geometry.
+ * Returns CLEF_EINVAL (lmax < 1), or the errors above. */
+int clef_mask_spectrum_lmax(const clef_map *mask, int lmax, int iterations, double *wl);
+
 #ifdef __cplusplus
 }
 #endif
