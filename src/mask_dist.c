@@ -474,38 +474,43 @@ int clef_mask_apodize(clef_map **out, const clef_map *mask, const clef_mask_apod
         CLEF_FAIL(CLEF_EINVAL, "erosion radius %g deg is not in [0, 180]", opts->erode * 180.0 / M_PI);
     int status;
     clef_map *w = NULL;
-    double *dist = malloc(sizeof *dist * (size_t)mask->npix);
-    if (!dist)
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory for distances at nside %lld", (long long)mask->nside);
+    double *bin = NULL;
     CLEF_CHECK(clef_map_alloc(&w, mask->nside));
     memcpy(w->coordsys, mask->coordsys, sizeof w->coordsys);
     if (kind == CLEF_MASK_APOD_GAUSS) {
-        /* dist doubles as the binary (eroded) mask handed to the transform. */
+        /* The binary (eroded) mask handed to the transform; the distances
+         * of the erosion go through the same array. */
+        bin = malloc(sizeof *bin * (size_t)mask->npix);
+        if (!bin) {
+            status = clef_fail(CLEF_ENOMEM, "out of memory for the binary mask at nside %lld",
+                               (long long)mask->nside);
+            goto fail;
+        }
         if (opts->erode > 0.0) {
-            CLEF_CHECK(clef_mask_distance(mask, opts->erode, dist));
+            CLEF_CHECK(clef_mask_distance(mask, opts->erode, bin));
             for (int64_t p = 0; p < mask->npix; p++)
-                dist[p] = observed(mask, p) && dist[p] >= opts->erode ? 1.0 : 0.0;
+                bin[p] = observed(mask, p) && bin[p] >= opts->erode ? 1.0 : 0.0;
         } else {
             for (int64_t p = 0; p < mask->npix; p++)
-                dist[p] = observed(mask, p) ? 1.0 : 0.0;
+                bin[p] = observed(mask, p) ? 1.0 : 0.0;
         }
-        CLEF_CHECK(apodize_gauss(w, dist, scale));
+        CLEF_CHECK(apodize_gauss(w, bin, scale));
     } else {
-        CLEF_CHECK(clef_mask_distance(mask, scale, dist));
+        /* Distances go straight into the output and become weights in
+         * place (masked pixels have distance 0 and stay 0). */
+        CLEF_CHECK(clef_mask_distance(mask, scale, w->pix));
         for (int64_t p = 0; p < mask->npix; p++) {
-            if (!observed(mask, p)) {
-                w->pix[p] = 0.0;
+            if (!observed(mask, p))
                 continue;
-            }
-            const double x = clef_mask_apod_x(dist[p], scale);
+            const double x = clef_mask_apod_x(w->pix[p], scale);
             w->pix[p] = kind == CLEF_MASK_APOD_C1 ? clef_mask_apod_c1(x) : clef_mask_apod_c2(x);
         }
     }
-    free(dist);
+    free(bin);
     *out = w;
     return CLEF_OK;
 fail:
-    free(dist);
+    free(bin);
     clef_map_free(w);
     return status;
 }
