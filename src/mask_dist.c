@@ -141,7 +141,8 @@ int clef_mask_edges(const clef_map *mask, int64_t **edges, size_t *nedges)
     *nedges = 0;
     unsigned char *obs = observed_flags(mask);
     if (!obs)
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory for pixel flags at nside %lld", (long long)mask->nside);
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for pixel flags at nside %lld",
+                  (long long)mask->nside);
     const int status = collect_edges(mask->nside, obs, edges, nedges);
     free(obs);
     return status;
@@ -391,7 +392,8 @@ int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
     free(obs);
     edge_index_free(&ix);
     if (oom)
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory in the distance search at nside %lld", (long long)nside);
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory in the distance search at nside %lld",
+                  (long long)nside);
     return CLEF_OK;
 }
 
@@ -447,7 +449,8 @@ static int apodize_gauss(clef_map *out, double *b, double fwhm)
     CLEF_CHECK(clef_sht_analysis(plan, 1, maps, alms, 3));
     for (int m = 0; m <= lmax; m++)
         for (int l = m; l <= lmax; l++)
-            alm[clef_alm_index(lmax, l, m)] *= exp(-0.5 * (double)l * (double)(l + 1) * sigma * sigma);
+            alm[clef_alm_index(lmax, l, m)] *=
+                exp(-0.5 * (double)l * (double)(l + 1) * sigma * sigma);
     const double complex *calms[1] = {alm};
     double *outs[1] = {out->pix};
     CLEF_CHECK(clef_sht_synthesis(plan, 1, calms, outs));
@@ -471,7 +474,8 @@ int clef_mask_apodize(clef_map **out, const clef_map *mask, const clef_mask_apod
     if (!(scale > 0.0 && scale <= M_PI))
         CLEF_FAIL(CLEF_EINVAL, "apodization scale %g deg is not in (0, 180]", scale * 180.0 / M_PI);
     if (kind == CLEF_MASK_APOD_GAUSS && !(opts->erode >= 0.0 && opts->erode <= M_PI))
-        CLEF_FAIL(CLEF_EINVAL, "erosion radius %g deg is not in [0, 180]", opts->erode * 180.0 / M_PI);
+        CLEF_FAIL(CLEF_EINVAL, "erosion radius %g deg is not in [0, 180]",
+                  opts->erode * 180.0 / M_PI);
     int status;
     clef_map *w = NULL;
     double *bin = NULL;

@@ -500,7 +500,8 @@ static void test_spectrum_hemisphere(void **state)
     const double il[9] = {1, 0.5, 0, -0.125, 0, 1.0 / 16, 0, -5.0 / 128, 0};
     for (int l = 0; l <= lmax; l++) {
         if (il[l] != 0)
-            check_rel(wl[l], M_PI * il[l] * il[l], 2e-3, "hemisphere W_l = pi I_l^2 (METHODS.md sec. 4)");
+            check_rel(wl[l], M_PI * il[l] * il[l], 2e-3,
+                      "hemisphere W_l = pi I_l^2 (METHODS.md sec. 4)");
         else
             check_abs(wl[l], 0.0, 1e-20, "hemisphere: even W_l>0 = 0 (METHODS.md sec. 4)");
     }
