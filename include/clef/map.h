@@ -45,6 +45,7 @@ typedef struct clef_map {
     char coordsys[16];      /* "G", "E", "C" or "" when unknown */
     char unit[64];          /* TUNIT of the column read, or "" */
     char column[72];        /* name of the column read, or "" */
+    int hdu;                /* extension read (1 = first after the primary), 0 if made in memory */
 } clef_map;
 
 /* Which table and column to read.  All fields may be 0/NULL for defaults. */
@@ -58,6 +59,11 @@ typedef struct clef_map_read_opts {
      * (1-based, as in FITS); any other text = the column with that TTYPE
      * (case-insensitive). */
     const char *column;
+    /* Ordering to assume when the table has no ORDERING keyword: NULL = none
+     * (a missing ORDERING is then CLEF_EFORMAT), "RING" or "NESTED"
+     * (case-insensitive).  A file whose ORDERING keyword differs from it is
+     * refused with CLEF_EINVAL. */
+    const char *ordering;
 } clef_map_read_opts;
 
 /* Read one map.  On failure *out is NULL and the message names the file,

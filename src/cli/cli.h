@@ -64,5 +64,6 @@ void cli_verbose(const char *fmt, ...)
     ;
 
 /* Subcommands, one file each under src/cli/ (one declaration per line). */
+int cmd_inspect(int argc, char **argv);
 
 #endif

@@ -7,6 +7,7 @@
 
 /* One line per subcommand; the table ends with an empty entry. */
 static const cli_command commands[] = {
+    {"inspect", "summarise a HEALPix map file", cmd_inspect},
     {NULL, NULL, NULL},
 };
 

@@ -1,0 +1,186 @@
+/* clef inspect FILE: a summary of one HEALPix map (geometry, ordering,
+ * coordinates, valid and missing pixels, statistics of the valid pixels),
+ * as text or as JSON. */
+#define _GNU_SOURCE
+#include <cJSON.h>
+#include <getopt.h>
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <strings.h>
+
+#include "clef/map.h"
+#include "cli.h"
+
+static void help(FILE *f)
+{
+    fprintf(f,
+            "Usage: clef inspect [OPTIONS] FILE\n\n"
+            "Summarise a HEALPix map stored in a FITS binary table (plain or gzip):\n"
+            "nside, pixel count, ordering in the file, coordinate system, unit, valid and\n"
+            "missing pixels, sky fraction, and min/max/mean/rms/stddev of the valid pixels.\n"
+            "Pixels equal to the bad-pixel value -1.6375e30 (to 1e-5 relative), NaN or\n"
+            "infinite, and pixels absent from a partial-sky table, count as missing.\n\n"
+            "Options:\n"
+            "  --hdu HDU        table to read: extension number (1 = first after the\n"
+            "                   primary) or EXTNAME; default: the first binary table\n"
+            "  --column COL     column to read: number (1-based) or name; default: the\n"
+            "                   first value column\n"
+            "  --ordering ORD   RING or NESTED, for files without an ORDERING keyword\n"
+            "                   (default: none; such files are refused)\n"
+            "  --json           print the summary as one JSON object on stdout\n"
+            "  --quiet          print errors only (the summary is still printed)\n"
+            "  --verbose        also print what is being read\n"
+            "  --help           show this help\n\n"
+            "rms is sqrt(mean(x^2)); stddev divides by the number of valid pixels.\n"
+            "Exit codes: 0 ok, 2 usage, 3 invalid option value (unknown HDU or column),\n"
+            "4 cannot read the file, 5 malformed file, 8 out of memory.\n"
+            "Example: clef inspect --json --column 1 map.fits.gz\n");
+}
+
+static const char *coord_name(const char *c)
+{
+    if (!strcmp(c, "G"))
+        return "galactic";
+    if (!strcmp(c, "E"))
+        return "ecliptic";
+    if (!strcmp(c, "C"))
+        return "celestial (equatorial)";
+    return "unknown";
+}
+
+/* sqrt(4 pi / npix) in arcmin: the side of a pixel (Gorski et al. 2005). */
+static double pixel_arcmin(int64_t npix)
+{
+    return sqrt(4.0 * M_PI / (double)npix) * 180.0 * 60.0 / M_PI;
+}
+
+static void add_number_or_null(cJSON *o, const char *key, double v)
+{
+    if (isfinite(v))
+        cJSON_AddNumberToObject(o, key, v);
+    else
+        cJSON_AddNullToObject(o, key);
+}
+
+static int print_json(const char *path, const clef_map *m, const clef_map_stats *st)
+{
+    cJSON *o = cJSON_CreateObject();
+    if (!o)
+        return 1;
+    cJSON_AddStringToObject(o, "file", path);
+    cJSON_AddNumberToObject(o, "hdu", m->hdu);
+    cJSON_AddStringToObject(o, "column", m->column);
+    cJSON_AddStringToObject(o, "unit", m->unit);
+    cJSON_AddNumberToObject(o, "nside", (double)m->nside);
+    cJSON_AddNumberToObject(o, "npix", (double)m->npix);
+    cJSON_AddNumberToObject(o, "pixel_size_arcmin", pixel_arcmin(m->npix));
+    cJSON_AddStringToObject(o, "file_ordering", m->file_ordering == CLEF_NESTED ? "NESTED"
+                                                                                : "RING");
+    if (m->coordsys[0])
+        cJSON_AddStringToObject(o, "coordsys", m->coordsys);
+    else
+        cJSON_AddNullToObject(o, "coordsys");
+    cJSON_AddNumberToObject(o, "valid_pixels", (double)st->nvalid);
+    cJSON_AddNumberToObject(o, "missing_pixels", (double)st->nmissing);
+    cJSON_AddNumberToObject(o, "bad_pixels", (double)m->nbad);
+    cJSON_AddNumberToObject(o, "absent_pixels", (double)(m->nmissing - m->nbad));
+    cJSON_AddNumberToObject(o, "sky_fraction", st->fsky);
+    add_number_or_null(o, "min", st->min);
+    add_number_or_null(o, "max", st->max);
+    add_number_or_null(o, "mean", st->mean);
+    add_number_or_null(o, "rms", st->rms);
+    add_number_or_null(o, "stddev", st->stddev);
+    char *text = cJSON_Print(o);
+    cJSON_Delete(o);
+    if (!text)
+        return 1;
+    puts(text);
+    cJSON_free(text);
+    return 0;
+}
+
+static void print_text(const char *path, const clef_map *m, const clef_map_stats *st)
+{
+    const char *unit = m->unit[0] ? m->unit : "no unit";
+    printf("map          %s\n", path);
+    printf("read from    extension %d, column '%s' (%s)\n", m->hdu, m->column, unit);
+    printf("nside        %lld: %lld pixels of %.4g arcmin\n", (long long)m->nside,
+           (long long)m->npix, pixel_arcmin(m->npix));
+    printf("ordering     %s in the file (held in RING)\n",
+           m->file_ordering == CLEF_NESTED ? "NESTED" : "RING");
+    printf("coordinates  %s%s%s\n", m->coordsys[0] ? m->coordsys : "",
+           m->coordsys[0] ? ", " : "", coord_name(m->coordsys));
+    printf("valid        %lld pixels, sky fraction %.6f\n", (long long)st->nvalid, st->fsky);
+    printf("missing      %lld pixels: %lld flagged bad or NaN, %lld absent from the table\n",
+           (long long)st->nmissing, (long long)m->nbad, (long long)(m->nmissing - m->nbad));
+    if (st->nvalid == 0) {
+        printf("values       none valid\n");
+        return;
+    }
+    printf("min          %.9g\n", st->min);
+    printf("max          %.9g\n", st->max);
+    printf("mean         %.9g\n", st->mean);
+    printf("rms          %.9g\n", st->rms);
+    printf("stddev       %.9g\n", st->stddev);
+}
+
+int cmd_inspect(int argc, char **argv)
+{
+    static const struct option longopts[] = {
+        {"hdu", required_argument, NULL, 'H'},      {"column", required_argument, NULL, 'c'},
+        {"ordering", required_argument, NULL, 'o'}, {"json", no_argument, NULL, 'j'},
+        {"quiet", no_argument, NULL, 'q'},          {"verbose", no_argument, NULL, 'v'},
+        {"help", no_argument, NULL, 'h'},           {NULL, 0, NULL, 0},
+    };
+    clef_map_read_opts ro = {0};
+    int json = 0, c;
+    opterr = 0;
+    optind = 1;
+    while ((c = getopt_long(argc, argv, "", longopts, NULL)) != -1) {
+        switch (c) {
+        case 'H': ro.hdu = optarg; break;
+        case 'c': ro.column = optarg; break;
+        case 'o': ro.ordering = optarg; break;
+        case 'j': json = 1; break;
+        case 'q': cli_verbosity = 0; break;
+        case 'v': cli_verbosity = 2; break;
+        case 'h': help(stdout); return CLI_EXIT_OK;
+        default:
+            return cli_usage_error("inspect", "unknown option or missing value: '%s'",
+                                   argv[optind - 1]);
+        }
+    }
+    if (optind != argc - 1)
+        return cli_usage_error("inspect", "expected one FITS file, got %d arguments",
+                               argc - optind);
+    if (ro.ordering && strcasecmp(ro.ordering, "RING") && strcasecmp(ro.ordering, "NESTED"))
+        return cli_usage_error("inspect", "--ordering expects RING or NESTED, got '%s'",
+                               ro.ordering);
+    cli_setup_logging();
+    const char *path = argv[optind];
+    cli_verbose("reading %s", path);
+
+    clef_map *m;
+    int status = clef_map_read(&m, path, &ro);
+    if (status != CLEF_OK)
+        return cli_fail(status);
+    clef_map_stats st;
+    status = clef_map_stats_compute(m, &st);
+    if (status != CLEF_OK) {
+        clef_map_free(m);
+        return cli_fail(status);
+    }
+    int rc = CLI_EXIT_OK;
+    if (json) {
+        if (print_json(path, m, &st)) {
+            fprintf(stderr, "clef: error: out of memory while building the JSON summary\n");
+            rc = CLI_EXIT_NOMEM;
+        }
+    } else {
+        print_text(path, m, &st);
+    }
+    clef_map_free(m);
+    return rc;
+}
