@@ -45,7 +45,12 @@ typedef struct clef_bandpowers {
 int clef_bandpowers_alloc(clef_bandpowers **out, int nbins, int with_cov);
 void clef_bandpowers_free(clef_bandpowers *bp); /* NULL is a no-op */
 
-/* Append a metadata item (copied). */
+/* Append a metadata item (copied); an item with the same key is replaced.
+ * Keys the file layer writes itself (FITS structural keywords, EXTNAME,
+ * CLEFVERS, DATE, BUNIT, ...) are refused with CLEF_EINVAL, as are invalid
+ * keys and non-finite numbers.  Characters outside printable ASCII in text
+ * values are replaced by '?' (FITS headers hold ASCII only) with a warning;
+ * values of 256 characters or more are refused. */
 int clef_bandpowers_meta_text(clef_bandpowers *bp, const char *key, const char *value,
                               const char *comment);
 int clef_bandpowers_meta_number(clef_bandpowers *bp, const char *key, double value,
@@ -64,6 +69,16 @@ int clef_bandpowers_write_cov_csv(const clef_bandpowers *bp, const char *path);
  * "l_eff D [err]" or "l_lo l_hi l_eff C D err" (see docs/formats.md).
  * Errors name the file, line or column at fault. */
 int clef_bandpowers_read(clef_bandpowers **out, const char *path);
+
+/* Read a covariance of D (uK^4) for the table's bins from a text file:
+ * nbins rows of nbins comma- or whitespace-separated numbers, '#' comment
+ * lines (the layout clef_bandpowers_write_cov_csv writes).  The matrix must
+ * have a positive diagonal and be symmetric to CLEF_TABLE_COV_SYM_TOL
+ * relative to sqrt(C_ii C_jj).  Replaces bp->cov (dl_err is left as read).
+ * Errors: CLEF_EIO (cannot open), CLEF_EFORMAT (shape, number, symmetry;
+ * the message names the line and column). */
+#define CLEF_TABLE_COV_SYM_TOL 1e-8
+int clef_bandpowers_read_cov(clef_bandpowers *bp, const char *path);
 
 #ifdef __cplusplus
 }

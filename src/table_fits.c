@@ -1,0 +1,278 @@
+/* Band-power tables as FITS (docs/formats.md, "band-power tables"): an empty
+ * primary HDU, HDU 1 a binary table EXTNAME 'BANDPOWER' with one row per bin
+ * and the metadata items as header keywords, HDU 2 an image EXTNAME
+ * 'BANDCOV' holding the nbins x nbins covariance of D when there is one. */
+#define _POSIX_C_SOURCE 200809L
+#include "table_impl.h"
+
+#include <fitsio.h>
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <unistd.h>
+
+#include "core_impl.h"
+
+static const char *const fits_units[CLEF_TABLE_NCOLS] = {"", "", "", "uK^2", "uK^2", "uK^2"};
+static const char *const fits_forms[CLEF_TABLE_NCOLS] = {"1J", "1J", "1D", "1D", "1D", "1D"};
+static const char *const fits_comments[CLEF_TABLE_NCOLS] = {
+    "first multipole of the bin (inclusive)", "last multipole of the bin (inclusive)",
+    "effective multipole of the bin", "band power C_b", "band power D_b = l(l+1)C_b/2pi",
+    "1-sigma error of D_b"};
+
+/* CFITSIO's status and text in our message; the error stack is cleared so a
+ * later call does not report stale messages. */
+static int fits_fail(int code, int st, const char *path, const char *what)
+{
+    char text[FLEN_STATUS];
+    fits_get_errstatus(st, text);
+    fits_clear_errmsg();
+    CLEF_FAIL(code, "'%s': %s (CFITSIO status %d: %s)", path, what, st, text);
+}
+
+/* One metadata item as a header card: integers as integers, other numbers
+ * with 17 significant digits, text as a (possibly long, CONTINUE'd) string. */
+static void write_meta_card(fitsfile *f, const clef_meta *m, int *st)
+{
+    if (m->is_number) {
+        char *end;
+        const long long iv = strtoll(m->value, &end, 10);
+        if (!*end && end != m->value)
+            fits_write_key_lng(f, m->key, iv, m->comment, st);
+        else
+            fits_write_key_dbl(f, m->key, strtod(m->value, NULL), -17, m->comment, st);
+    } else {
+        fits_write_key_longstr(f, m->key, m->value, m->comment, st);
+    }
+}
+
+static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
+{
+    const LONGLONG n = bp->nbins;
+    fits_create_img(f, BYTE_IMG, 0, NULL, st);
+    fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
+    fits_write_date(f, st);
+
+    char *ttype[CLEF_TABLE_NCOLS], *tform[CLEF_TABLE_NCOLS], *tunit[CLEF_TABLE_NCOLS];
+    for (int k = 0; k < CLEF_TABLE_NCOLS; k++) {
+        ttype[k] = (char *)clef_table_fits_names[k];
+        tform[k] = (char *)fits_forms[k];
+        tunit[k] = (char *)fits_units[k];
+    }
+    fits_create_tbl(f, BINARY_TBL, n, CLEF_TABLE_NCOLS, ttype, tform, tunit, "BANDPOWER", st);
+    for (int k = 0; k < CLEF_TABLE_NCOLS; k++) {
+        char key[FLEN_KEYWORD];
+        snprintf(key, sizeof key, "TTYPE%d", k + 1);
+        fits_modify_comment(f, key, fits_comments[k], st);
+    }
+    fits_write_col(f, TINT, 1, 1, 1, n, bp->l_lo, st);
+    fits_write_col(f, TINT, 2, 1, 1, n, bp->l_hi, st);
+    fits_write_col(f, TDOUBLE, 3, 1, 1, n, bp->l_eff, st);
+    fits_write_col(f, TDOUBLE, 4, 1, 1, n, bp->cl, st);
+    fits_write_col(f, TDOUBLE, 5, 1, 1, n, bp->dl, st);
+    fits_write_col(f, TDOUBLE, 6, 1, 1, n, bp->dl_err, st);
+    fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
+    /* The long-string convention is announced by LONGSTRN (HEASARC
+     * convention; fitsverify warns without it). */
+    int longstr = 0;
+    for (int i = 0; i < bp->nmeta; i++)
+        longstr |= !bp->meta[i].is_number && strlen(bp->meta[i].value) > 68;
+    if (longstr)
+        fits_write_key_longwarn(f, st);
+    for (int i = 0; i < bp->nmeta && !*st; i++)
+        write_meta_card(f, &bp->meta[i], st);
+
+    if (bp->cov) {
+        long naxes[2] = {bp->nbins, bp->nbins};
+        fits_create_img(f, DOUBLE_IMG, 2, naxes, st);
+        fits_write_key_str(f, "EXTNAME", "BANDCOV", "covariance of D_BAND between bins", st);
+        fits_write_key_str(f, "BUNIT", "uK^4", "unit of the covariance", st);
+        fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
+        fits_write_img(f, TDOUBLE, 1, n * n, bp->cov, st);
+    }
+}
+
+int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
+{
+    CLEF_TRY(clef_table_check(bp, path));
+    clef_outfile of;
+    CLEF_TRY(clef_outfile_begin(&of, path));
+    /* The disk-file entry point takes the name literally (no extended
+     * filename syntax), but cannot overwrite: remove the empty placeholder. */
+    unlink(of.tmp_path);
+    fitsfile *f = NULL;
+    int st = 0;
+    fits_create_diskfile(&f, of.tmp_path, &st);
+    if (st) {
+        clef_outfile_abort(&of);
+        return fits_fail(CLEF_EIO, st, path, "cannot create the FITS file");
+    }
+    write_hdus(f, bp, &st);
+    int st_close = 0;
+    fits_close_file(f, &st_close);
+    if (st || st_close) {
+        clef_outfile_abort(&of);
+        return fits_fail(CLEF_EIO, st ? st : st_close, path, "cannot write the band-power FITS file");
+    }
+    return clef_outfile_commit(&of);
+}
+
+/* ---- reading ----------------------------------------------------------- */
+
+/* Header keywords of the BANDPOWER HDU back into metadata items. */
+static int read_meta(fitsfile *f, clef_bandpowers *bp, const char *path)
+{
+    int nkeys = 0, st = 0;
+    fits_get_hdrspace(f, &nkeys, NULL, &st);
+    for (int i = 1; i <= nkeys && !st; i++) {
+        char name[FLEN_KEYWORD], value[FLEN_VALUE], comment[FLEN_COMMENT];
+        fits_read_keyn(f, i, name, value, comment, &st);
+        if (st)
+            break;
+        if (!*name || strlen(name) > 8 || clef_table_key_reserved(name) || !*value)
+            continue;
+        char dtype = 0;
+        fits_get_keytype(value, &dtype, &st);
+        if (st) {
+            st = 0;
+            fits_clear_errmsg();
+            continue;
+        }
+        char text[256];
+        int is_number = 0;
+        if (dtype == 'C') {
+            char *longstr = NULL;
+            fits_read_key_longstr(f, name, &longstr, comment, &st);
+            if (st)
+                break;
+            snprintf(text, sizeof text, "%s", longstr);
+            fits_free_memory(longstr, &st);
+        } else if (dtype == 'I' || dtype == 'F') {
+            /* FITS allows a 'D' exponent (FITS 4.0 4.2.4). */
+            for (char *c = value; *c; c++)
+                if (*c == 'D' || *c == 'd')
+                    *c = 'E';
+            clef_table_format_double(text, sizeof text, strtod(value, NULL));
+            is_number = 1;
+        } else {
+            snprintf(text, sizeof text, "%s", value);
+        }
+        CLEF_TRY(clef_table_meta_set(bp, name, text, is_number, comment + strspn(comment, " ")));
+    }
+    if (st)
+        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDPOWER header keywords");
+    return CLEF_OK;
+}
+
+static int read_columns(fitsfile *f, clef_bandpowers *bp, const char *path)
+{
+    const LONGLONG n = bp->nbins;
+    int col[CLEF_TABLE_NCOLS];
+    int st = 0, anynul = 0;
+    for (int k = 0; k < CLEF_TABLE_NCOLS; k++) {
+        fits_get_colnum(f, CASEINSEN, (char *)clef_table_fits_names[k], &col[k], &st);
+        if (st) {
+            char what[128];
+            snprintf(what, sizeof what, "HDU BANDPOWER has no column %s", clef_table_fits_names[k]);
+            return fits_fail(CLEF_EFORMAT, st, path, what);
+        }
+    }
+    fits_read_col(f, TINT, col[0], 1, 1, n, NULL, bp->l_lo, &anynul, &st);
+    fits_read_col(f, TINT, col[1], 1, 1, n, NULL, bp->l_hi, &anynul, &st);
+    double *const dcols[4] = {bp->l_eff, bp->cl, bp->dl, bp->dl_err};
+    for (int k = 0; k < 4; k++)
+        fits_read_col(f, TDOUBLE, col[k + 2], 1, 1, n, NULL, dcols[k], &anynul, &st);
+    if (st)
+        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDPOWER columns");
+    for (LONGLONG b = 0; b < n; b++) {
+        for (int k = 0; k < 4; k++)
+            if (!isfinite(dcols[k][b]))
+                CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDPOWER row %lld column %s: not a finite number",
+                          path, b + 1, clef_table_fits_names[k + 2]);
+        if (bp->l_lo[b] < 0 || bp->l_hi[b] < bp->l_lo[b])
+            CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDPOWER row %lld: l range [%d, %d] is invalid", path,
+                      b + 1, bp->l_lo[b], bp->l_hi[b]);
+        if (bp->dl_err[b] < 0)
+            CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDPOWER row %lld column D_SIGMA: %g is negative",
+                      path, b + 1, bp->dl_err[b]);
+    }
+    return CLEF_OK;
+}
+
+/* HDU 'BANDCOV', when present: an nbins x nbins double image. */
+static int read_cov(fitsfile *f, clef_bandpowers *bp, const char *path)
+{
+    int st = 0;
+    fits_movnam_hdu(f, IMAGE_HDU, "BANDCOV", 0, &st);
+    if (st == BAD_HDU_NUM) {
+        fits_clear_errmsg();
+        return CLEF_OK;
+    }
+    int naxis = 0;
+    long naxes[2] = {0, 0};
+    fits_get_img_dim(f, &naxis, &st);
+    if (!st && naxis == 2)
+        fits_get_img_size(f, 2, naxes, &st);
+    if (st)
+        return fits_fail(CLEF_EFORMAT, st, path, "cannot read HDU BANDCOV");
+    if (naxis != 2 || naxes[0] != bp->nbins || naxes[1] != bp->nbins)
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDCOV: image is %d-dimensional %ld x %ld, the table has "
+                  "%d bins", path, naxis, naxes[0], naxes[1], bp->nbins);
+    const size_t nn = (size_t)bp->nbins * (size_t)bp->nbins;
+    double *cov = malloc(nn * sizeof *cov);
+    if (!cov)
+        CLEF_FAIL(CLEF_ENOMEM, "'%s' HDU BANDCOV: out of memory", path);
+    int anynul = 0;
+    fits_read_img(f, TDOUBLE, 1, (LONGLONG)nn, NULL, cov, &anynul, &st);
+    if (st) {
+        free(cov);
+        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDCOV image");
+    }
+    const int status = clef_table_check_cov(cov, (size_t)bp->nbins, path);
+    if (status != CLEF_OK) {
+        free(cov);
+        return status;
+    }
+    bp->cov = cov;
+    return CLEF_OK;
+}
+
+int clef_table_read_fits(clef_bandpowers **out, const char *path)
+{
+    *out = NULL;
+    fitsfile *f = NULL;
+    int st = 0, status = CLEF_OK;
+    clef_bandpowers *bp = NULL;
+    fits_open_diskfile(&f, path, READONLY, &st);
+    if (st)
+        return fits_fail(st == FILE_NOT_OPENED ? CLEF_EIO : CLEF_EFORMAT, st, path,
+                         "cannot open the FITS file");
+    fits_movnam_hdu(f, BINARY_TBL, "BANDPOWER", 0, &st);
+    if (st) {
+        status = fits_fail(CLEF_EFORMAT, st, path, "no binary table HDU with EXTNAME 'BANDPOWER'");
+        goto fail;
+    }
+    LONGLONG nrows = 0;
+    fits_get_num_rowsll(f, &nrows, &st);
+    if (st) {
+        status = fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDPOWER row count");
+        goto fail;
+    }
+    if (nrows < 1 || nrows > ((LONGLONG)1 << 30)) {
+        status = clef_fail(CLEF_EFORMAT, "'%s' HDU BANDPOWER: %lld rows", path, nrows);
+        goto fail;
+    }
+    CLEF_CHECK(clef_bandpowers_alloc(&bp, (int)nrows, 0));
+    CLEF_CHECK(read_columns(f, bp, path));
+    CLEF_CHECK(read_meta(f, bp, path));
+    CLEF_CHECK(read_cov(f, bp, path));
+    *out = bp;
+    bp = NULL;
+fail:
+    clef_bandpowers_free(bp);
+    st = 0;
+    fits_close_file(f, &st);
+    fits_clear_errmsg();
+    return status;
+}
