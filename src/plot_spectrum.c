@@ -271,17 +271,6 @@ static void draw_legend(cairo_t *cr, const clef_plot_frame *f, const legend_item
     }
 }
 
-/* Metadata lookup on the table's public fields (the table module's getter
- * does the same; reading the array keeps this module's dependencies to the
- * header). */
-static const char *meta_get(const clef_bandpowers *bp, const char *key)
-{
-    for (int i = 0; i < bp->nmeta; i++)
-        if (!strcmp(bp->meta[i].key, key))
-            return bp->meta[i].value;
-    return NULL;
-}
-
 static const char *base_name(const char *path)
 {
     const char *s = strrchr(path, '/');
@@ -298,13 +287,13 @@ static void make_title(const clef_bandpowers *bp, const clef_plot_spectrum_opts 
         return;
     }
     static const char *map_keys[] = {"MAP", "MAP1", "MAPFILE", "INMAP"};
-    const char *map = NULL, *map2 = meta_get(bp, "MAP2");
+    const char *map = NULL, *map2 = clef_bandpowers_meta_get(bp, "MAP2");
     for (size_t i = 0; i < sizeof map_keys / sizeof *map_keys && !map; i++)
-        map = meta_get(bp, map_keys[i]);
-    const char *mask = meta_get(bp, "MASK");
+        map = clef_bandpowers_meta_get(bp, map_keys[i]);
+    const char *mask = clef_bandpowers_meta_get(bp, "MASK");
     if (!mask)
-        mask = meta_get(bp, "MASKFILE");
-    const char *nside = meta_get(bp, "NSIDE");
+        mask = clef_bandpowers_meta_get(bp, "MASKFILE");
+    const char *nside = clef_bandpowers_meta_get(bp, "NSIDE");
     size_t k = 0;
     buf[0] = '\0';
     if (map) {
