@@ -770,6 +770,15 @@ static void test_curvature_errors(void **state)
     assert_false(leftover_tmp());
 }
 
+/* Under the leak checker (make sanitize): fontconfig, which cairo's text
+ * calls use, keeps a few hundred bytes from parsing its configuration that
+ * it never frees; that is not ours to fix.  Hook read by LeakSanitizer. */
+const char *__lsan_default_suppressions(void);
+const char *__lsan_default_suppressions(void)
+{
+    return "leak:libfontconfig.so\n";
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -788,5 +797,9 @@ int main(void)
         cmocka_unit_test(test_curvature),
         cmocka_unit_test(test_curvature_errors),
     };
-    return cmocka_run_group_tests(tests, NULL, NULL);
+    const int failed = cmocka_run_group_tests(tests, NULL, NULL);
+    /* Release cairo's font caches so that the leak checker sees only what
+     * is really lost. */
+    cairo_debug_reset_static_data();
+    return failed;
 }
