@@ -1,0 +1,344 @@
+/* Spectrum files: the text format of docs/formats-spectrum.md (read and
+ * write) and a FITS binary table (write). */
+#define _POSIX_C_SOURCE 200809L
+#define _DEFAULT_SOURCE
+#include "clef/theory.h"
+
+#include <ctype.h>
+#include <errno.h>
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <strings.h>
+
+#include <fitsio.h>
+
+#include "core_impl.h"
+
+/* Column roles named on the "# columns:" line. */
+enum { COL_OTHER, COL_L, COL_CL, COL_DL };
+
+static int column_role(const char *name)
+{
+    if (!strcasecmp(name, "l") || !strcasecmp(name, "ell"))
+        return COL_L;
+    if (!strcasecmp(name, "C_l") || !strcasecmp(name, "Cl") || !strcasecmp(name, "C_ell"))
+        return COL_CL;
+    if (!strcasecmp(name, "D_l") || !strcasecmp(name, "Dl") || !strcasecmp(name, "D_ell"))
+        return COL_DL;
+    return COL_OTHER;
+}
+
+typedef struct layout {
+    int have;     /* a columns line was seen */
+    int col_l;    /* index of the l column */
+    int col_v;    /* index of the value column */
+    int is_dl;    /* the value column holds D_l */
+} layout;
+
+/* Parse the text after "columns:"; CLEF_EFORMAT unless it names l and C_l
+ * or D_l. */
+static int parse_columns(const char *path, long line_no, char *spec, layout *lay)
+{
+    int idx = 0, col_l = -1, col_cl = -1, col_dl = -1;
+    for (char *save = NULL, *tok = strtok_r(spec, " \t,\r\n", &save); tok;
+         tok = strtok_r(NULL, " \t,\r\n", &save), idx++) {
+        const int role = column_role(tok);
+        if (role == COL_L && col_l < 0)
+            col_l = idx;
+        else if (role == COL_CL && col_cl < 0)
+            col_cl = idx;
+        else if (role == COL_DL && col_dl < 0)
+            col_dl = idx;
+    }
+    if (col_l < 0 || (col_cl < 0 && col_dl < 0))
+        CLEF_FAIL(CLEF_EFORMAT,
+                  "%s line %ld: the columns line must name 'l' and 'C_l' or 'D_l' (e.g. "
+                  "'# columns: l D_l')",
+                  path, line_no);
+    lay->have = 1;
+    lay->col_l = col_l;
+    lay->col_v = col_cl >= 0 ? col_cl : col_dl;
+    lay->is_dl = col_cl < 0;
+    return CLEF_OK;
+}
+
+/* Split a data line into numbers; returns the count or -1 on a bad token. */
+static int split_numbers(char *s, double *v, int nmax)
+{
+    int n = 0;
+    for (char *save = NULL, *tok = strtok_r(s, " \t,\r\n", &save); tok;
+         tok = strtok_r(NULL, " \t,\r\n", &save)) {
+        char *end;
+        errno = 0;
+        const double x = strtod(tok, &end);
+        if (*end || errno == ERANGE || !isfinite(x))
+            return -1;
+        if (n < nmax)
+            v[n] = x;
+        n++;
+    }
+    return n;
+}
+
+static int read_body(FILE *f, const char *path, int lmax, double *cl, unsigned char *seen,
+                     int *file_lmax)
+{
+    char *line = NULL;
+    size_t cap = 0;
+    long line_no = 0;
+    int status = CLEF_OK;
+    layout lay = {0};
+    *file_lmax = -1;
+    while (getline(&line, &cap, f) >= 0) {
+        line_no++;
+        char *s = line;
+        while (isspace((unsigned char)*s))
+            s++;
+        if (!*s)
+            continue;
+        if (*s == '#') {
+            char *c = strstr(s, "columns:");
+            if (!c)
+                c = strstr(s, "COLUMNS:");
+            if (c)
+                CLEF_CHECK(parse_columns(path, line_no, c + 8, &lay));
+            continue;
+        }
+        if (!lay.have) {
+            status = clef_fail(CLEF_EFORMAT,
+                               "%s line %ld: data before a '# columns: l C_l' or '# columns: l "
+                               "D_l' line; the file must say which quantity it holds",
+                               path, line_no);
+            goto fail;
+        }
+        double v[64];
+        const int need = (lay.col_l > lay.col_v ? lay.col_l : lay.col_v) + 1;
+        const int n = split_numbers(s, v, 64);
+        if (n < 0) {
+            status = clef_fail(CLEF_EFORMAT, "%s line %ld: not a number", path, line_no);
+            goto fail;
+        }
+        if (n < need || need > 64) {
+            status = clef_fail(CLEF_EFORMAT, "%s line %ld: %d columns, need at least %d", path,
+                               line_no, n, need);
+            goto fail;
+        }
+        const double lv = v[lay.col_l], val = v[lay.col_v];
+        if (lv < 0 || lv != floor(lv) || lv > 1e9) {
+            status = clef_fail(CLEF_EFORMAT, "%s line %ld: multipole l = %g is not a whole number >= 0",
+                               path, line_no, lv);
+            goto fail;
+        }
+        if (val < 0) {
+            status = clef_fail(CLEF_EFORMAT, "%s line %ld: negative %s = %g at l = %g", path,
+                               line_no, lay.is_dl ? "D_l" : "C_l", val, lv);
+            goto fail;
+        }
+        const int l = (int)lv;
+        if (l > *file_lmax)
+            *file_lmax = l;
+        if (l > lmax)
+            continue;
+        if (seen[l]) {
+            status = clef_fail(CLEF_EFORMAT, "%s line %ld: multipole l = %d appears twice", path,
+                               line_no, l);
+            goto fail;
+        }
+        seen[l] = 1;
+        /* C_l = 2 pi D_l / (l (l + 1)); C_0 cannot be recovered from D_0. */
+        cl[l] = lay.is_dl ? (l > 0 ? 2.0 * M_PI * val / ((double)l * (l + 1.0)) : 0.0) : val;
+    }
+    if (ferror(f)) {
+        status = clef_fail(CLEF_EIO, "%s: read error after line %ld", path, line_no);
+        goto fail;
+    }
+    if (!lay.have) {
+        status = clef_fail(CLEF_EFORMAT, "%s: no '# columns:' line and no data", path);
+        goto fail;
+    }
+fail:
+    free(line);
+    return status;
+}
+
+int clef_theory_read_cl(const char *path, int lmax, double *cl, int *lmax_file)
+{
+    if (!path || !cl)
+        CLEF_FAIL(CLEF_EINVAL, "spectrum reader: NULL path or output array");
+    if (lmax < 2 || lmax > CLEF_THEORY_LMAX_MAX)
+        CLEF_FAIL(CLEF_EINVAL, "spectrum reader: lmax = %d must be in [2, %d]", lmax,
+                  CLEF_THEORY_LMAX_MAX);
+    FILE *f = fopen(path, "r");
+    if (!f)
+        CLEF_FAIL(CLEF_EIO, "cannot open spectrum file '%s': %s", path, strerror(errno));
+    unsigned char *seen = calloc((size_t)lmax + 1, 1);
+    if (!seen) {
+        fclose(f);
+        CLEF_FAIL(CLEF_ENOMEM, "spectrum reader: out of memory for lmax = %d", lmax);
+    }
+    for (int l = 0; l <= lmax; l++)
+        cl[l] = 0.0;
+    int flmax;
+    int status = read_body(f, path, lmax, cl, seen, &flmax);
+    fclose(f);
+    if (status == CLEF_OK && flmax < 2)
+        status = clef_fail(CLEF_EFORMAT, "%s: no multipole l >= 2 in the file", path);
+    if (status == CLEF_OK) {
+        const int top = flmax < lmax ? flmax : lmax;
+        for (int l = 2; l <= top; l++)
+            if (!seen[l]) {
+                status = clef_fail(CLEF_EFORMAT, "%s: multipole l = %d is missing (the file goes up to l = %d)",
+                                   path, l, flmax);
+                break;
+            }
+        if (status == CLEF_OK && flmax < lmax)
+            clef_log(CLEF_LOG_WARN, "%s ends at l = %d; C_l set to 0 for %d < l <= %d", path,
+                     flmax, flmax, lmax);
+    }
+    free(seen);
+    if (status != CLEF_OK) {
+        for (int l = 0; l <= lmax; l++)
+            cl[l] = 0.0;
+        return status;
+    }
+    if (lmax_file)
+        *lmax_file = flmax;
+    return CLEF_OK;
+}
+
+static int has_suffix(const char *s, const char *suf)
+{
+    const size_t n = strlen(s), m = strlen(suf);
+    return n >= m && !strcasecmp(s + n - m, suf);
+}
+
+static double dl_of(const double *cl, int l) { return (double)l * (l + 1.0) * cl[l] / (2.0 * M_PI); }
+
+static int write_text(const char *tmp, const char *path, int lmax, const double *cl,
+                      const clef_cosmo_params *p)
+{
+    FILE *f = fopen(tmp, "w");
+    if (!f)
+        CLEF_FAIL(CLEF_EIO, "cannot write '%s' (temporary for '%s'): %s", tmp, path, strerror(errno));
+    fprintf(f, "# CMB temperature power spectrum written by clef %s\n", CLEF_VERSION);
+    if (p)
+        fprintf(f,
+                "# model: analytic (docs/theory.md); omega_b=%.17g omega_c=%.17g h=%.17g "
+                "Omega_k=%.17g n_s=%.17g ln10^10A_s=%.17g tau=%.17g T_cmb=%.17g N_eff=%.17g "
+                "m_nu=%.17g Y_He=%.17g\n",
+                p->omega_b, p->omega_c, p->h, p->omega_k, p->n_s, p->ln10_as, p->tau, p->t_cmb,
+                p->n_eff, p->m_nu, p->y_he);
+    fprintf(f, "# units: uK^2 (thermodynamic); D_l = l(l+1) C_l / 2pi\n");
+    fprintf(f, "# columns: l C_l D_l\n");
+    for (int l = 0; l <= lmax; l++)
+        fprintf(f, "%d %.10e %.10e\n", l, cl[l], dl_of(cl, l));
+    if (fclose(f) != 0)
+        CLEF_FAIL(CLEF_EIO, "error writing '%s' (temporary for '%s')", tmp, path);
+    return CLEF_OK;
+}
+
+/* Record the first CFITSIO failure as a clef error naming the step. */
+static int fits_status(const char *path, const char *what, int fst)
+{
+    char msg[FLEN_STATUS];
+    fits_get_errstatus(fst, msg);
+    return clef_fail(CLEF_EIO, "writing FITS spectrum '%s': %s: CFITSIO status %d (%s)", path,
+                     what, fst, msg);
+}
+
+static int write_fits(const char *tmp, const char *path, int lmax, const double *cl,
+                      const clef_cosmo_params *p)
+{
+    fitsfile *ff = NULL;
+    int fst = 0, status = CLEF_OK;
+    const char *what = "create";
+    const long n = (long)lmax + 1;
+    double *dcol = malloc((size_t)n * sizeof *dcol);
+    int *lcol = malloc((size_t)n * sizeof *lcol);
+    if (!dcol || !lcol) {
+        status = clef_fail(CLEF_ENOMEM, "writing '%s': out of memory", path);
+        goto fail;
+    }
+    for (long i = 0; i < n; i++) {
+        lcol[i] = (int)i;
+        dcol[i] = dl_of(cl, (int)i);
+    }
+    char fname[4200];
+    snprintf(fname, sizeof fname, "!%s", tmp);
+    char *ttype[] = {"L", "CL", "DL"};
+    char *tform[] = {"1J", "1D", "1D"};
+    char *tunit[] = {"", "uK^2", "uK^2"};
+    if (fits_create_file(&ff, fname, &fst))
+        goto fits_fail;
+    what = "table";
+    fits_create_tbl(ff, BINARY_TBL, n, 3, ttype, tform, tunit, "SPECTRUM", &fst);
+    fits_modify_comment(ff, "TTYPE1", "multipole l", &fst);
+    fits_modify_comment(ff, "TTYPE2", "C_l, thermodynamic temperature", &fst);
+    fits_modify_comment(ff, "TTYPE3", "D_l = l(l+1) C_l / 2pi", &fst);
+    fits_write_key_str(ff, "CREATOR", "clef " CLEF_VERSION, "software", &fst);
+    if (fst)
+        goto fits_fail;
+    if (p) {
+        what = "header keywords";
+        fits_write_key_str(ff, "MODEL", "analytic", "docs/theory.md", &fst);
+        fits_write_key_dbl(ff, "OMEGA_B", p->omega_b, 15, "Omega_b h^2", &fst);
+        fits_write_key_dbl(ff, "OMEGA_C", p->omega_c, 15, "Omega_c h^2", &fst);
+        fits_write_key_dbl(ff, "HUBBLE_H", p->h, 15, "H_0 / (100 km/s/Mpc)", &fst);
+        fits_write_key_dbl(ff, "OMEGA_K", p->omega_k, 15, "curvature Omega_k", &fst);
+        fits_write_key_dbl(ff, "N_S", p->n_s, 15, "scalar spectral index", &fst);
+        fits_write_key_dbl(ff, "LN10AS", p->ln10_as, 15, "ln(10^10 A_s)", &fst);
+        fits_write_key_dbl(ff, "TAU", p->tau, 15, "reionisation optical depth", &fst);
+        fits_write_key_dbl(ff, "T_CMB", p->t_cmb, 15, "[K] CMB temperature", &fst);
+        fits_write_key_dbl(ff, "N_EFF", p->n_eff, 15, "massless neutrino species", &fst);
+        fits_write_key_dbl(ff, "M_NU", p->m_nu, 15, "[eV] sum of neutrino masses", &fst);
+        fits_write_key_dbl(ff, "Y_HE", p->y_he, 15, "helium mass fraction", &fst);
+        if (fst)
+            goto fits_fail;
+    }
+    what = "columns";
+    fits_write_col(ff, TINT, 1, 1, 1, n, lcol, &fst);
+    fits_write_col(ff, TDOUBLE, 2, 1, 1, n, (void *)cl, &fst);
+    fits_write_col(ff, TDOUBLE, 3, 1, 1, n, dcol, &fst);
+    fits_write_chksum(ff, &fst);
+    if (fst)
+        goto fits_fail;
+    what = "close";
+    fits_close_file(ff, &fst);
+    ff = NULL;
+    if (fst)
+        goto fits_fail;
+    free(dcol);
+    free(lcol);
+    return CLEF_OK;
+fits_fail:
+    status = fits_status(path, what, fst);
+fail:
+    if (ff) {
+        int close_st = 0;
+        fits_close_file(ff, &close_st);
+    }
+    free(dcol);
+    free(lcol);
+    return status;
+}
+
+int clef_theory_write_cl(const char *path, int lmax, const double *cl, const clef_cosmo_params *p)
+{
+    if (!path || !cl)
+        CLEF_FAIL(CLEF_EINVAL, "spectrum writer: NULL path or array");
+    if (lmax < 0 || lmax > CLEF_THEORY_LMAX_MAX)
+        CLEF_FAIL(CLEF_EINVAL, "spectrum writer: lmax = %d must be in [0, %d]", lmax,
+                  CLEF_THEORY_LMAX_MAX);
+    clef_outfile o;
+    CLEF_TRY(clef_outfile_begin(&o, path));
+    const int fits = has_suffix(path, ".fits") || has_suffix(path, ".fit");
+    const int status = fits ? write_fits(o.tmp_path, path, lmax, cl, p)
+                            : write_text(o.tmp_path, path, lmax, cl, p);
+    if (status != CLEF_OK) {
+        clef_outfile_abort(&o);
+        return status;
+    }
+    return clef_outfile_commit(&o);
+}
