@@ -23,6 +23,8 @@ typedef struct clef_peak_opts {
     double l_min, l_max;    /* search window (default 100 <= l <= 400) */
     int model;              /* enum clef_peak_model (default parabola) */
     double half_width;      /* bins within this many multipoles of the highest bin enter the fit (default 80) */
+    double curv_nsigma;     /* the fitted curvature must lie at least this many standard
+                               errors below zero, else "no peak" (default 2; docs/peak.md) */
 } clef_peak_opts;
 
 void clef_peak_opts_default(clef_peak_opts *o);
