@@ -65,5 +65,6 @@ void cli_verbose(const char *fmt, ...)
 
 /* Subcommands, one file each under src/cli/ (one declaration per line). */
 int cmd_inspect(int argc, char **argv);
+int cmd_plot(int argc, char **argv);
 
 #endif

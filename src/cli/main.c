@@ -8,6 +8,7 @@
 /* One line per subcommand; the table ends with an empty entry. */
 static const cli_command commands[] = {
     {"inspect", "summarise a HEALPix map file", cmd_inspect},
+    {"plot", "draw band powers, a map view or the curvature posterior", cmd_plot},
     {NULL, NULL, NULL},
 };
 
