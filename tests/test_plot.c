@@ -10,7 +10,9 @@
 #include <dirent.h>
 #include <gsl/gsl_rng.h>
 
+#include "clef/peak.h"
 #include "clef/plot.h"
+#include "clef/table.h"
 
 static const double pi = 3.14159265358979323846;
 
@@ -358,6 +360,56 @@ static void test_spectrum_errors(void **state)
     assert_false(file_exists(png));
     assert_false(leftover_tmp());
     free_table(bp);
+}
+
+/* Through the command line: the marker of `clef plot spectrum` sits at the
+ * peak recorded in the table's header (clef_peak_to_meta), or, with none
+ * recorded, at the peak clef_peak_find fits with its defaults. */
+static void cli_marker(const char *table, const char *svg, double l_peak)
+{
+    assert_int_equal(run_cmd("%s plot spectrum %s -o %s --quiet", clef_bin(), table, svg), 0);
+    clef_bandpowers *back;
+    assert_int_equal(clef_bandpowers_read(&back, table), CLEF_OK);
+    clef_plot_frame f;
+    assert_int_equal(clef_plot_spectrum_layout(back, NULL, &f), CLEF_OK);
+    double x[8], y0[8], y1[8];
+    assert_int_equal(svg_markers(svg, x, y0, y1), 1);
+    check_abs(x[0], clef_plot_frame_x(&f, l_peak), 1.0 / 256, "CLI peak marker");
+    clef_bandpowers_free(back);
+}
+
+static void test_spectrum_cli_peak(void **state)
+{
+    (void)state;
+    clef_bandpowers *src = make_table(20, 2, 40), *bp;
+    assert_int_equal(clef_bandpowers_alloc(&bp, src->nbins, 0), CLEF_OK);
+    for (int b = 0; b < bp->nbins; b++) {
+        bp->l_lo[b] = src->l_lo[b];
+        bp->l_hi[b] = src->l_hi[b];
+        bp->l_eff[b] = src->l_eff[b];
+        bp->dl[b] = src->dl[b];
+        bp->dl_err[b] = src->dl_err[b];
+        bp->cl[b] = 2 * pi * bp->dl[b] / (bp->l_eff[b] * (bp->l_eff[b] + 1));
+    }
+    clef_peak_opts po;
+    clef_peak_opts_default(&po);
+    clef_peak_result fit;
+    assert_int_equal(clef_peak_find(bp, &po, &fit), CLEF_OK);
+    assert_true(fit.found);
+    const char *plain = test_path("nopeak.csv");
+    assert_int_equal(clef_bandpowers_write_csv(bp, plain), CLEF_OK);
+    cli_marker(plain, test_path("cli_fit.svg"), fit.l_peak);
+
+    /* A recorded peak away from the fitted one, to tell the two apart. */
+    clef_peak_result rec = fit;
+    rec.l_peak = fit.l_peak + 13.7;
+    rec.l_peak_err = 4.4;
+    assert_int_equal(clef_peak_to_meta(&rec, bp), CLEF_OK);
+    const char *fits = test_path("withpeak.fits");
+    assert_int_equal(clef_bandpowers_write_fits(bp, fits), CLEF_OK);
+    cli_marker(fits, test_path("cli_meta.svg"), rec.l_peak);
+    clef_bandpowers_free(bp);
+    free_table(src);
 }
 
 /* ----------------------------------------------------------------- map */
@@ -781,6 +833,19 @@ const char *__lsan_default_suppressions(void)
 
 int main(void)
 {
+    /* The clef binary run by test_spectrum_cli_peak has the same fontconfig
+     * leak; its leak checker reads suppressions from a file. */
+    const char *supp = test_path("lsan.supp");
+    FILE *f = fopen(supp, "w");
+    if (f) {
+        fputs("leak:libfontconfig.so\n", f);
+        fclose(f);
+        char opt[1200];
+        const char *old = getenv("LSAN_OPTIONS");
+        snprintf(opt, sizeof opt, "suppressions=%s%s%s", supp, old && *old ? ":" : "",
+                 old ? old : "");
+        setenv("LSAN_OPTIONS", opt, 1);
+    }
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_format_from_path),
         cmocka_unit_test(test_spectrum_png_size),
@@ -788,6 +853,7 @@ int main(void)
         cmocka_unit_test(test_spectrum_marker_log),
         cmocka_unit_test(test_spectrum_pdf),
         cmocka_unit_test(test_spectrum_errors),
+        cmocka_unit_test(test_spectrum_cli_peak),
         cmocka_unit_test(test_map_unproject_roundtrip),
         cmocka_unit_test(test_map_hemispheres),
         cmocka_unit_test(test_map_hot_pixel),

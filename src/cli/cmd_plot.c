@@ -254,8 +254,11 @@ static int parse_args(int argc, char **argv, args *a, int *done)
 static int table_peak(const clef_bandpowers *bp, const char *path, clef_peak_result *r)
 {
     if (clef_peak_from_meta(bp, r) == CLEF_OK) {
-        cli_verbose("first peak from the header of %s: l = %.1f +- %.1f", path, r->l_peak,
-                    r->l_peak_err);
+        if (r->found)
+            cli_verbose("first peak from the header of %s: l = %.1f +- %.1f", path, r->l_peak,
+                        r->l_peak_err);
+        else
+            cli_info("warning: %s records no first peak: %s", path, r->reason);
         return r->found;
     }
     clef_peak_opts po;
