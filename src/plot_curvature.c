@@ -162,7 +162,7 @@ void clef_plot_geometry_free(clef_plot_geometry *g)
 static double font_size(const clef_plot_frame *f)
 {
     const double s = 0.024 * (f->height < f->width ? f->height : f->width * 0.75);
-    return s < 5 ? 5 : s;
+    return s < 7 ? 7 : s;
 }
 
 int clef_plot_curvature_layout(const clef_plot_geometry *g, const clef_plot_curvature_opts *o,

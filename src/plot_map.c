@@ -24,7 +24,7 @@
 static double map_font(int width)
 {
     const double s = 0.018 * width;
-    return s < 5 ? 5 : s;
+    return s < 7 ? 7 : s;
 }
 
 int clef_plot_map_layout(const clef_plot_map_opts *o, clef_plot_map_frame *f)

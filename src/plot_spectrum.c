@@ -19,7 +19,7 @@ static const plot_rgb colour_peak = {0.80, 0.10, 0.45};
 static double font_size(const clef_plot_frame *f)
 {
     const double s = 0.022 * (f->height < f->width ? f->height : f->width * 0.75);
-    return s < 5 ? 5 : s;
+    return s < 7 ? 7 : s;
 }
 
 static int check_table(const clef_bandpowers *bp, const char *what, int log_l)
@@ -286,10 +286,15 @@ static void make_title(const clef_bandpowers *bp, const clef_plot_spectrum_opts 
         snprintf(buf, n, "%s", o->title);
         return;
     }
-    static const char *map_keys[] = {"MAP", "MAP1", "MAPFILE", "INMAP"};
-    const char *map = NULL, *map2 = clef_bandpowers_meta_get(bp, "MAP2");
+    /* docs/formats.md names the input map MAPFILE; the others are accepted
+     * for tables assembled by hand. */
+    static const char *map_keys[] = {"MAPFILE", "MAPFILE1", "MAP", "MAP1"};
+    static const char *map2_keys[] = {"MAPFILE2", "MAP2"};
+    const char *map = NULL, *map2 = NULL;
     for (size_t i = 0; i < sizeof map_keys / sizeof *map_keys && !map; i++)
         map = clef_bandpowers_meta_get(bp, map_keys[i]);
+    for (size_t i = 0; i < sizeof map2_keys / sizeof *map2_keys && !map2; i++)
+        map2 = clef_bandpowers_meta_get(bp, map2_keys[i]);
     const char *mask = clef_bandpowers_meta_get(bp, "MASK");
     if (!mask)
         mask = clef_bandpowers_meta_get(bp, "MASKFILE");
