@@ -319,18 +319,15 @@ static int read_header(reader *r, const clef_map_read_opts *opts, clef_map *m)
     char val[FLEN_VALUE];
     int found, st = 0;
 
-    long long nside;
-    fits_read_key(r->f, TLONGLONG, "NSIDE", &nside, NULL, &st);
-    if (st == KEY_NO_EXIST) {
-        fits_clear_errmsg();
+    /* Parsed from the card text: CFITSIO would silently truncate 2.5 to 2. */
+    CLEF_TRY(key_string(r, "NSIDE", val, &found));
+    if (!found)
         CLEF_FAIL(CLEF_EFORMAT, "%s: keyword NSIDE is missing", r->where);
-    }
-    if (st) {
-        st = 0;
-        fits_clear_errmsg();
-        CLEF_TRY(key_string(r, "NSIDE", val, &found));
+    char *end;
+    errno = 0;
+    const long long nside = strtoll(val, &end, 10);
+    if (errno || end == val || *end)
         CLEF_FAIL(CLEF_EFORMAT, "%s: keyword NSIDE = '%s' is not an integer", r->where, val);
-    }
     if (!clef_nside_valid(nside)) {
         if (nside >= 1 && nside <= CLEF_NSIDE_MAX)
             CLEF_FAIL(CLEF_EFORMAT, "%s: keyword NSIDE = %lld is not a power of two", r->where,

@@ -676,6 +676,100 @@ static void test_bad_explicit(void **state)
     expect_read_fail(path, NULL, CLEF_EFORMAT, "has no PIXEL column");
 }
 
+/* A table made by hand with CFITSIO: columns given as TTYPE/TFORM pairs,
+ * keywords as KEY=VALUE strings (value parsed by CFITSIO as a card). */
+static void write_custom(const char *path, int ncol, char **ttype, char **tform,
+                         const char **cards, int ncards)
+{
+    fitsfile *f;
+    int st = 0;
+    char name[1100];
+    snprintf(name, sizeof name, "!%s", path);
+    fits_create_file(&f, name, &st);
+    fits_create_img(f, BYTE_IMG, 0, NULL, &st);
+    fits_create_tbl(f, BINARY_TBL, 0, ncol, ttype, tform, NULL, "CUSTOM", &st);
+    for (int i = 0; i < ncards; i++)
+        fits_write_record(f, cards[i], &st);
+    fits_close_file(f, &st);
+    assert_int_equal(st, 0);
+}
+
+/* Rarer format errors and header variants: a text column, a variable-length
+ * column, an unknown INDXSCHM, PIXEL and value columns of different
+ * widths, a non-integer NSIDE, long COORDSYS names, an unknown COORDSYS,
+ * a file-specific BAD_DATA value, a wrong NPIX (ignored). */
+static void test_header_variants(void **state)
+{
+    (void)state;
+    char path[1024];
+    snprintf(path, sizeof path, "%s", test_path("custom.fits"));
+    char *tt1[] = {"NAME"}, *tf1[] = {"8A"};
+    const char *ring[] = {"NSIDE   =                    1", "ORDERING= 'RING    '"};
+    write_custom(path, 1, tt1, tf1, ring, 2);
+    expect_read_fail(path, NULL, CLEF_EFORMAT, "column 1 (NAME) is not numeric");
+
+    char *tf2[] = {"1PE(12)"};
+    write_custom(path, 1, tt1, tf2, ring, 2);
+    expect_read_fail(path, NULL, CLEF_EUNSUP, "variable-length");
+
+    const char *odd[] = {"NSIDE   =                    1", "ORDERING= 'RING    '",
+                         "INDXSCHM= 'SPARSE  '"};
+    char *tt3[] = {"T"}, *tf3[] = {"D"};
+    write_custom(path, 1, tt3, tf3, odd, 3);
+    expect_read_fail(path, NULL, CLEF_EFORMAT, "INDXSCHM = 'SPARSE'");
+
+    const char *expl[] = {"NSIDE   =                    1", "ORDERING= 'RING    '",
+                          "INDXSCHM= 'EXPLICIT'"};
+    char *tt4[] = {"PIXEL", "T"}, *tf4[] = {"2K", "4D"};
+    write_custom(path, 2, tt4, tf4, expl, 3);
+    expect_read_fail(path, NULL, CLEF_EFORMAT, "the PIXEL column has 2 values per row");
+    const clef_map_read_opts pixsel = {.column = "PIXEL"};
+    expect_read_fail(path, &pixsel, CLEF_EINVAL, "is the PIXEL index");
+
+    const char *fl[] = {"NSIDE   =                  2.5", "ORDERING= 'RING    '"};
+    write_custom(path, 1, tt3, tf3, fl, 2);
+    expect_read_fail(path, NULL, CLEF_EFORMAT, "NSIDE = '2.5' is not an integer");
+
+    /* Header variants that are accepted. */
+    const double vals[] = {1, 2, -99, 4, 5, 6, 7, 8, 9, 10, 11, 12};
+    const char *coords[][2] = {{"GALACTIC", "G"}, {"ECLIPTIC", "E"}, {"EQUATORIAL", "C"},
+                               {"Q", "C"}, {"HORIZON", ""}};
+    for (int i = 0; i < 5; i++) {
+        char c1[81], c2[81];
+        snprintf(c1, sizeof c1, "COORDSYS= '%s'", coords[i][0]);
+        snprintf(c2, sizeof c2, "NPIX    =                   %d", 13);
+        const char *cards[] = {"NSIDE   =                    1", "ORDERING= 'NESTED'", c1, c2,
+                               "BAD_DATA=                  -99"};
+        write_custom(path, 1, tt3, tf3, cards, 5);
+        fitsfile *f;
+        int st = 0;
+        fits_open_file(&f, path, READWRITE, &st);
+        fits_movabs_hdu(f, 2, NULL, &st);
+        fits_write_col(f, TDOUBLE, 1, 1, 1, 12, (void *)vals, &st);
+        fits_close_file(f, &st);
+        assert_int_equal(st, 0);
+        clef_map *m;
+        assert_int_equal(clef_map_read(&m, path, NULL), CLEF_OK);
+        assert_string_equal(m->coordsys, coords[i][1]);
+        assert_int_equal(m->nbad, 1);
+        assert_int_equal(m->nside, 1);
+        clef_map_free(m);
+    }
+
+    clef_map_stats stt;
+    assert_int_equal(clef_map_stats_compute(NULL, &stt), CLEF_EINVAL);
+    clef_map *c = (clef_map *)1;
+    assert_int_equal(clef_map_copy(&c, NULL), CLEF_EINVAL);
+    assert_null(c);
+    assert_int_equal(clef_map_read(&c, NULL, NULL), CLEF_EINVAL);
+    assert_int_equal(clef_map_write(NULL, path, NULL), CLEF_EINVAL);
+    assert_int_equal(clef_nside_valid(8192), 1);
+    assert_int_equal(clef_nside_valid(16384), 0);
+    assert_int_equal(clef_nside_valid(0), 0);
+    assert_int_equal(clef_nside_valid(6), 0);
+    assert_true(clef_nside_npix(8192) == 805306368LL); /* 12 * 8192^2 > 2^31 */
+}
+
 /* ------------------------------------------------------------------------
  * Writing failures and the mask check
  * ------------------------------------------------------------------------ */
@@ -762,6 +856,7 @@ int main(void)
         cmocka_unit_test(test_bad_files),
         cmocka_unit_test(test_bad_nside),
         cmocka_unit_test(test_bad_explicit),
+        cmocka_unit_test(test_header_variants),
         cmocka_unit_test(test_write_errors),
         cmocka_unit_test(test_check_mask),
     };

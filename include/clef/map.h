@@ -93,10 +93,16 @@ typedef struct clef_map_write_opts {
 /* Write a full-sky RING map (implicit index); invalid pixels are written as
  * the bad-pixel value.  A clef provenance keyword (CLEFVERS) is added.  The
  * file is written to a temporary name and renamed on success, so a failure
- * leaves nothing.  An existing file is replaced. */
+ * leaves nothing.  An existing file is replaced.  Returns CLEF_EINVAL (NULL
+ * map, inconsistent nside, row length that does not divide npix), CLEF_EIO
+ * (cannot create, write or rename; the message has CFITSIO's status) or
+ * CLEF_ENOMEM.  Written in chunks of 2^20 values; no other allocation. */
 int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opts *opts);
 
-/* Summary of the valid pixels of a map. */
+/* Summary of the valid pixels of a map: rms = sqrt(mean(x^2)), stddev
+ * divides by nvalid (population convention, as numpy's default); min, max,
+ * mean, rms and stddev are NaN when no pixel is valid.  Returns CLEF_EINVAL
+ * for NULL arguments. */
 typedef struct clef_map_stats {
     int64_t nvalid, nmissing;
     double fsky;             /* nvalid / npix */
@@ -106,9 +112,11 @@ int clef_map_stats_compute(const clef_map *m, clef_map_stats *st);
 
 /* Check that a mask suits a map: same nside (CLEF_EINVAL, message names both
  * files and both nsides), compatible COORDSYS (refused unless
- * allow_coord_mismatch, or one of them is unknown), values in [0, 1]
- * (values outside are refused: CLEF_EINVAL naming the value and pixel).
- * Names are used only in messages and may be NULL. */
+ * allow_coord_mismatch, which logs a warning instead, or one of them is
+ * unknown), values in [0, 1] (values outside are refused, not clipped:
+ * CLEF_EINVAL naming the value and its RING pixel; invalid mask pixels count
+ * as unobserved and are not checked).  Names are used only in messages and
+ * may be NULL. */
 int clef_map_check_mask(const clef_map *map, const char *map_name, const clef_map *mask,
                         const char *mask_name, int allow_coord_mismatch);
 

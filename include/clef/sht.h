@@ -48,6 +48,20 @@ void clef_sht_destroy(clef_sht *p); /* NULL is a no-op */
 int64_t clef_sht_nside(const clef_sht *p);
 int clef_sht_lmax(const clef_sht *p);
 int clef_sht_mmax(const clef_sht *p);
+int clef_sht_nrings(const clef_sht *p); /* 4 nside - 1 */
+
+/* Geometry and quadrature weight of ring `ring` (1 .. 4 nside - 1, north
+ * to south, as numbered by the HEALPix RING scheme): z = cos theta of its
+ * pixel centres, phi0 of its first pixel (radians), pixel count, RING
+ * index of its first pixel, and the analysis weight w_r (1 when the plan
+ * was made with no_ring_weights; docs/transforms.md gives the method).
+ * Any output pointer may be NULL.  Returns CLEF_EINVAL for a bad ring. */
+int clef_sht_ring_info(const clef_sht *p, int ring, double *z, double *phi0, int64_t *npix,
+                       int64_t *first, double *weight);
+
+/* Wall-clock seconds spent in the FFT stage and in the Legendre stage by
+ * the last analysis or synthesis call on this plan (for benchmarks). */
+void clef_sht_timings(const clef_sht *p, double *fft_seconds, double *legendre_seconds);
 
 static inline size_t clef_alm_size(int lmax, int mmax)
 {
@@ -71,18 +85,22 @@ int clef_sht_analysis(const clef_sht *p, int nmaps, const double *const *map,
                       double complex *const *alm, int iterations);
 
 /* Normalised associated Legendre functions lambda_lm(z) = Y_lm(theta, 0),
- * z = cos theta, for fixed m and l = m..lmax into out[l - m], using the
- * same scaled recurrence as the transform (no underflow for lmax up to
- * 3 * 8192).  Values below ~1e-300 come out as 0. */
+ * z = cos theta, for fixed m and l = m..lmax into out[l - m] (lmax - m + 1
+ * doubles), using the same scaled recurrence as the transform (no
+ * underflow for lmax up to 3 * 8192 and beyond).  Values below the double
+ * range (~1e-308) come out as 0 or subnormal.  (The transform itself drops
+ * terms with |lambda_lm| < 2^-128, see docs/transforms.md.)  Allocates a
+ * small table; thread-safe.  CLEF_EINVAL for m < 0, lmax < m, |z| > 1. */
 int clef_legendre_lambda(int lmax, int m, double z, double *out);
 
 /* Angular power spectrum from a_lm: cl[l] = (Re(a_l0 b_l0*) + 2 sum_{m>0}
  * Re(a_lm b_lm*)) / (2l+1), l = 0..lmax; b = a (or NULL) gives the auto
- * spectrum.  Assumes mmax = lmax. */
+ * spectrum.  With mmax < lmax the sum stops at m = min(l, mmax) (the
+ * spectrum is then that of the truncated a_lm). */
 int clef_alm_cl(int lmax, int mmax, const double complex *a, const double complex *b,
                 double *cl);
 
-/* a_lm in a FITS binary table of clef's own design (docs/formats.md):
+/* a_lm in a FITS binary table of clef's own design (docs/formats-alm.md):
  * columns L (int32), M (int32), RE, IM (float64), one row per stored (l,m),
  * m-major; header LMAX, MMAX, CLEFVERS.  Written atomically. */
 int clef_alm_write(const char *path, int lmax, int mmax, const double complex *alm);

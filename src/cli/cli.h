@@ -65,6 +65,8 @@ void cli_verbose(const char *fmt, ...)
 
 /* Subcommands, one file each under src/cli/ (one declaration per line). */
 int cmd_inspect(int argc, char **argv);
+int cmd_convert(int argc, char **argv);
+int cmd_peak(int argc, char **argv);
 int cmd_plot(int argc, char **argv);
 
 #endif

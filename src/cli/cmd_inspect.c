@@ -29,6 +29,10 @@ static void help(FILE *f)
             "                   first value column\n"
             "  --ordering ORD   RING or NESTED, for files without an ORDERING keyword\n"
             "                   (default: none; such files are refused)\n"
+            "  --mask FILE      also check that the mask in FILE suits this map: same nside,\n"
+            "                   same COORDSYS (when both are known), values in [0, 1]; a\n"
+            "                   mismatch is an error (exit 3)\n"
+            "  --allow-coord-mismatch  accept a mask whose COORDSYS differs (a warning)\n"
             "  --json           print the summary as one JSON object on stdout\n"
             "  --quiet          print errors only (the summary is still printed)\n"
             "  --verbose        also print what is being read\n"
@@ -64,7 +68,15 @@ static void add_number_or_null(cJSON *o, const char *key, double v)
         cJSON_AddNullToObject(o, key);
 }
 
-static int print_json(const char *path, const clef_map *m, const clef_map_stats *st)
+/* What is known about the checked mask (mask == NULL: none given). */
+typedef struct mask_info {
+    const char *path;
+    const clef_map *mask;
+    clef_map_stats st;
+} mask_info;
+
+static int print_json(const char *path, const clef_map *m, const clef_map_stats *st,
+                      const mask_info *mi)
 {
     cJSON *o = cJSON_CreateObject();
     if (!o)
@@ -92,6 +104,17 @@ static int print_json(const char *path, const clef_map *m, const clef_map_stats 
     add_number_or_null(o, "mean", st->mean);
     add_number_or_null(o, "rms", st->rms);
     add_number_or_null(o, "stddev", st->stddev);
+    if (mi->mask) {
+        cJSON *k = cJSON_AddObjectToObject(o, "mask");
+        if (!k) {
+            cJSON_Delete(o);
+            return 1;
+        }
+        cJSON_AddStringToObject(k, "file", mi->path);
+        cJSON_AddBoolToObject(k, "suits_map", 1);
+        cJSON_AddNumberToObject(k, "valid_pixels", (double)mi->st.nvalid);
+        add_number_or_null(k, "mean_weight", mi->st.mean * mi->st.fsky);
+    }
     char *text = cJSON_Print(o);
     cJSON_Delete(o);
     if (!text)
@@ -101,8 +124,10 @@ static int print_json(const char *path, const clef_map *m, const clef_map_stats 
     return 0;
 }
 
-static void print_text(const char *path, const clef_map *m, const clef_map_stats *st)
+static void print_text(const char *path, const clef_map *m, const clef_map_stats *st,
+                       const mask_info *mi)
 {
+
     const char *unit = m->unit[0] ? m->unit : "no unit";
     printf("map          %s\n", path);
     printf("read from    extension %d, column '%s' (%s)\n", m->hdu, m->column, unit);
@@ -117,13 +142,16 @@ static void print_text(const char *path, const clef_map *m, const clef_map_stats
            (long long)st->nmissing, (long long)m->nbad, (long long)(m->nmissing - m->nbad));
     if (st->nvalid == 0) {
         printf("values       none valid\n");
-        return;
+    } else {
+        printf("min          %.9g\n", st->min);
+        printf("max          %.9g\n", st->max);
+        printf("mean         %.9g\n", st->mean);
+        printf("rms          %.9g\n", st->rms);
+        printf("stddev       %.9g\n", st->stddev);
     }
-    printf("min          %.9g\n", st->min);
-    printf("max          %.9g\n", st->max);
-    printf("mean         %.9g\n", st->mean);
-    printf("rms          %.9g\n", st->rms);
-    printf("stddev       %.9g\n", st->stddev);
+    if (mi->mask)
+        printf("mask         %s suits this map (mean weight over the sky %.6f)\n", mi->path,
+               mi->st.nvalid ? mi->st.mean * mi->st.fsky : 0.0);
 }
 
 int cmd_inspect(int argc, char **argv)
@@ -132,10 +160,12 @@ int cmd_inspect(int argc, char **argv)
         {"hdu", required_argument, NULL, 'H'},      {"column", required_argument, NULL, 'c'},
         {"ordering", required_argument, NULL, 'o'}, {"json", no_argument, NULL, 'j'},
         {"quiet", no_argument, NULL, 'q'},          {"verbose", no_argument, NULL, 'v'},
-        {"help", no_argument, NULL, 'h'},           {NULL, 0, NULL, 0},
+        {"help", no_argument, NULL, 'h'},           {"mask", required_argument, NULL, 'm'},
+        {"allow-coord-mismatch", no_argument, NULL, 'a'}, {NULL, 0, NULL, 0},
     };
     clef_map_read_opts ro = {0};
-    int json = 0, c;
+    mask_info mi = {0};
+    int json = 0, allow_coord = 0, c;
     opterr = 0;
     optind = 1;
     while ((c = getopt_long(argc, argv, "", longopts, NULL)) != -1) {
@@ -144,6 +174,8 @@ int cmd_inspect(int argc, char **argv)
         case 'c': ro.column = optarg; break;
         case 'o': ro.ordering = optarg; break;
         case 'j': json = 1; break;
+        case 'm': mi.path = optarg; break;
+        case 'a': allow_coord = 1; break;
         case 'q': cli_verbosity = 0; break;
         case 'v': cli_verbosity = 2; break;
         case 'h': help(stdout); return CLI_EXIT_OK;
@@ -162,25 +194,35 @@ int cmd_inspect(int argc, char **argv)
     const char *path = argv[optind];
     cli_verbose("reading %s", path);
 
-    clef_map *m;
-    int status = clef_map_read(&m, path, &ro);
-    if (status != CLEF_OK)
-        return cli_fail(status);
+    clef_map *m = NULL, *mask = NULL;
     clef_map_stats st;
-    status = clef_map_stats_compute(m, &st);
+    int status = clef_map_read(&m, path, &ro);
+    if (status == CLEF_OK)
+        status = clef_map_stats_compute(m, &st);
+    if (status == CLEF_OK && mi.path) {
+        cli_verbose("reading mask %s", mi.path);
+        status = clef_map_read(&mask, mi.path, NULL);
+        if (status == CLEF_OK)
+            status = clef_map_check_mask(m, path, mask, mi.path, allow_coord);
+        if (status == CLEF_OK)
+            status = clef_map_stats_compute(mask, &mi.st);
+        mi.mask = mask;
+    }
     if (status != CLEF_OK) {
         clef_map_free(m);
+        clef_map_free(mask);
         return cli_fail(status);
     }
     int rc = CLI_EXIT_OK;
     if (json) {
-        if (print_json(path, m, &st)) {
+        if (print_json(path, m, &st, &mi)) {
             fprintf(stderr, "clef: error: out of memory while building the JSON summary\n");
             rc = CLI_EXIT_NOMEM;
         }
     } else {
-        print_text(path, m, &st);
+        print_text(path, m, &st, &mi);
     }
     clef_map_free(m);
+    clef_map_free(mask);
     return rc;
 }

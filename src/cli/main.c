@@ -8,6 +8,8 @@
 /* One line per subcommand; the table ends with an empty entry. */
 static const cli_command commands[] = {
     {"inspect", "summarise a HEALPix map file", cmd_inspect},
+    {"convert", "rewrite a HEALPix map in clef's RING layout", cmd_convert},
+    {"peak", "locate the first acoustic peak in a band-power table", cmd_peak},
     {"plot", "draw band powers, a map view or the curvature posterior", cmd_plot},
     {NULL, NULL, NULL},
 };

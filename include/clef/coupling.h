@@ -1,0 +1,134 @@
+/* The mode-coupling matrix of a mask and the binned decoupling operator
+ * (Hivon et al. 2002, ApJ 567, 2, "MASTER"; METHODS.md section 4).
+ *
+ * For a weighted map w T, the pseudo-spectrum obeys
+ *   <C~_l> = sum_l' M_ll' F_l' B_l'^2 p_l'^2 <C_l'> + <N~_l>,
+ *   M_ll' = (2l'+1)/(4 pi) sum_l'' (2l''+1) W_l'' (l l' l''; 0 0 0)^2,
+ * with W_l the power spectrum of the mask w (caller-supplied, normally to
+ * l = 2 lmax), F_l the transfer function, B_l the beam, p_l the pixel
+ * window.  The binned operator is
+ *   K_bb' = sum_ll' P_bl M_ll' T_l' Q_l'b',  T_l = F_l B_l^2 p_l^2,
+ * and the decoupled band powers are K^-1 P (C~ - N~).
+ *
+ * Monopole and dipole: M covers every 0 <= l, l' <= lmax (so its exact
+ * properties can be checked), but bins start at l >= 2 (clef_bins) and
+ * K only sums over multipoles inside bins: the spectrum code removes the
+ * monopole and dipole from the map before the pseudo-spectrum, and any
+ * remaining power there is neither binned nor decoupled.
+ *
+ * The same builder serves any W_l: the mask spectrum for the estimator,
+ * and the spectrum of w^2 for the Gaussian pseudo-C_l covariance
+ * (METHODS.md section 5).
+ *
+ * Objects: clef_coupling holds M ((lmax+1)^2 doubles, row-major
+ * M[l (lmax+1) + l']) and a copy of W_l; clef_coupling_binned holds K, its
+ * LU factors and K^-1 P.  Both are immutable after creation, so concurrent
+ * reads are safe.  Creation runs OpenMP-parallel (threads as set by
+ * omp_set_num_threads) and reports progress as stage "coupling".
+ *
+ * Cache (src/coupling_cache.c, docs/coupling.md): M and K can be stored
+ * in a cache folder, one file per key, the key being the SHA-256 of every
+ * input that changes them (W_l, lmax, bins, transfer array, clef version).
+ */
+#ifndef CLEF_COUPLING_H
+#define CLEF_COUPLING_H
+
+#include "clef/bins.h"
+#include "clef/clef.h"
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
+typedef struct clef_coupling clef_coupling;
+typedef struct clef_coupling_binned clef_coupling_binned;
+
+/* Default smallest acceptable reciprocal condition number (1-norm, LAPACK
+ * dgecon) of K: below it the decoupling amplifies errors by more than 1e6. */
+#define CLEF_COUPLING_RCOND_MIN 1e-6
+/* Default level defining the mask's coupling width: the highest l with
+ * W_l >= level * W_0. */
+#define CLEF_COUPLING_WIDTH_LEVEL 1e-2
+
+typedef struct clef_coupling_opts {
+    double rcond_min;   /* CLEF_ENUMERIC below this rcond (default CLEF_COUPLING_RCOND_MIN) */
+    double width_level; /* for suggested bin widths (default CLEF_COUPLING_WIDTH_LEVEL) */
+} clef_coupling_opts;
+
+void clef_coupling_opts_default(clef_coupling_opts *o);
+
+/* Compute M for 0 <= l, l' <= lmax from wl[0..wl_lmax] (W_l is taken as 0
+ * above wl_lmax: pass wl_lmax >= 2 lmax for the exact matrix).  The W_l
+ * array is copied.  Cost ~ (lmax+1)^3/6 kernel terms.  Errors: CLEF_EINVAL
+ * (lmax < 0, wl_lmax < 0, negative or non-finite W_l, naming l),
+ * CLEF_ENOMEM. */
+int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl_lmax);
+void clef_coupling_destroy(clef_coupling *c); /* NULL is a no-op */
+
+int clef_coupling_lmax(const clef_coupling *c);
+/* M, row-major, (lmax+1) x (lmax+1); valid until destroy. */
+const double *clef_coupling_matrix(const clef_coupling *c);
+/* out[l] = sum_l' M_ll' cl[l'], l = 0..lmax. */
+void clef_coupling_apply(const clef_coupling *c, const double *cl, double *out);
+
+/* Coupling width of a mask spectrum: the highest l <= wl_lmax with
+ * W_l >= level W_0, plus one (0 if W_0 <= 0).  A bin should be at least
+ * this wide for K to be well conditioned. */
+int clef_coupling_width(const double *wl, int wl_lmax, double level);
+
+/* Build K = P M T Q for the bins (all bins must end at or below lmax of M),
+ * T = transfer[0..lmax] (NULL: T_l = 1), factor it by LU (LAPACK dgetrf),
+ * estimate its reciprocal condition number (dgecon) and form K^-1 P
+ * (dgetrs).  opts may be NULL (defaults).
+ * Errors: CLEF_EINVAL (bins beyond lmax, negative/non-finite transfer),
+ * CLEF_ENUMERIC when a bin row or column of K is zero (empty mask, tiny sky
+ * fraction, transfer zero over a bin) or rcond < opts->rcond_min; the
+ * message names the cause, the rcond and a suggested bin width. */
+int clef_coupling_binned_create(clef_coupling_binned **out, const clef_coupling *m,
+                                const clef_bins *bins, const double *transfer,
+                                const clef_coupling_opts *opts);
+void clef_coupling_binned_destroy(clef_coupling_binned *k); /* NULL is a no-op */
+
+int clef_coupling_binned_nbins(const clef_coupling_binned *k);
+int clef_coupling_binned_lmax(const clef_coupling_binned *k);
+/* Reciprocal condition number of K in the 1-norm (LAPACK dgecon). */
+double clef_coupling_binned_rcond(const clef_coupling_binned *k);
+/* K, row-major nbins x nbins. */
+const double *clef_coupling_binned_matrix(const clef_coupling_binned *k);
+/* K^-1 P, row-major nbins x (lmax+1), for covariance propagation:
+ * Cov(band) = (K^-1 P) Cov(C~) (K^-1 P)^T. */
+const double *clef_coupling_binned_kinv_p(const clef_coupling_binned *k);
+/* Decoupled band powers band[b] = sum_l (K^-1 P)_bl pcl[l], pcl[0..lmax]
+ * (noise bias already subtracted by the caller).  D_b for CLEF_BINS_DL
+ * bins, C_b for CLEF_BINS_FLAT. */
+void clef_coupling_binned_decouple(const clef_coupling_binned *k, const double *pcl,
+                                   double *band);
+
+/* ---- cache (src/coupling_cache.c) ---- */
+
+/* The cache folder: cache_dir if non-NULL and non-empty, else
+ * $CLEF_CACHE_DIR, else $XDG_CACHE_HOME/clef, else $HOME/.cache/clef.
+ * Errors: CLEF_EINVAL when none is set or the name does not fit in n. */
+int clef_coupling_cache_dir(const char *cache_dir, char *buf, size_t n);
+
+/* Like clef_coupling_create, but first look for M in the cache folder
+ * (key: SHA-256 of lmax, wl_lmax, the W_l bytes and the clef version); on a
+ * miss compute it and store it.  *hit (may be NULL) is 1 on a hit.  Cache
+ * problems (unreadable, corrupt or mismatched file, unwritable folder) are
+ * logged as warnings and never fail the call: M is then recomputed. */
+int clef_coupling_create_cached(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
+                                const char *cache_dir, int *hit);
+
+/* Like clef_coupling_binned_create from W_l, with K cached under a key
+ * that adds the bins (edges and weighting) and the transfer array; a hit
+ * skips M entirely (only the small LU is redone).  A miss gets M through
+ * clef_coupling_create_cached.  Errors as clef_coupling_binned_create. */
+int clef_coupling_binned_create_cached(clef_coupling_binned **out, int lmax, const double *wl,
+                                       int wl_lmax, const clef_bins *bins,
+                                       const double *transfer, const clef_coupling_opts *opts,
+                                       const char *cache_dir, int *hit);
+
+#ifdef __cplusplus
+}
+#endif
+#endif

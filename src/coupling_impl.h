@@ -1,0 +1,43 @@
+/* Private parts of the coupling module shared by src/coupling.c and
+ * src/coupling_cache.c.  Not installed. */
+#ifndef CLEF_COUPLING_IMPL_H
+#define CLEF_COUPLING_IMPL_H
+
+#include <lapacke.h>
+
+#include "clef/coupling.h"
+
+struct clef_coupling {
+    int lmax;
+    int wl_lmax;
+    double *wl; /* copy of W_l, wl_lmax + 1 entries */
+    double *m;  /* (lmax+1)^2, row-major */
+};
+
+struct clef_coupling_binned {
+    int nbins;
+    int lmax;
+    double rcond;
+    double *k;      /* nbins^2, row-major */
+    double *lu;     /* LU factors of k (LAPACK dgetrf, row-major) */
+    lapack_int *ipiv;
+    double *kinv_p; /* nbins x (lmax+1), row-major */
+};
+
+/* An M object with W_l copied and M allocated but not filled. */
+int clef_coupling_alloc_empty(clef_coupling **out, int lmax, const double *wl, int wl_lmax);
+
+/* Fill k (nbins^2) with K = P M T Q. */
+int clef_coupling_build_k(const clef_coupling *m, const clef_bins *bins,
+                          const double *transfer, double *k);
+
+/* Factor a given K (copied), check it, form K^-1 P.  wl is used only for
+ * the suggested bin width in error messages. */
+int clef_coupling_binned_from_k(clef_coupling_binned **out, const double *k,
+                                const clef_bins *bins, int lmax, const double *wl,
+                                int wl_lmax, const clef_coupling_opts *opts);
+
+/* Validate the transfer array (NULL allowed) for 0..lmax. */
+int clef_coupling_check_transfer(const double *transfer, int lmax);
+
+#endif

@@ -1,0 +1,302 @@
+/* Executing a transform plan: the ring FFT stage, the Legendre stage
+ * driver, analysis with Jacobi iterations, synthesis.
+ *
+ * Analysis (METHODS.md section 2; Gorski et al. 2005):
+ *   F_m(r) = sum_j f_j e^{-i m phi_j} = e^{-i m phi0_r} FFT(f)[m mod n_r],
+ *   a_lm   = Omega_pix sum_r w_r lambda_lm(z_r) F_m(r).
+ * Synthesis:
+ *   G_m(r) = sum_l a_lm lambda_lm(z_r),
+ *   f_j    = sum_{|m| <= mmax} G_m(r) e^{i m phi_j}, with G_{-m} = conj(G_m),
+ * folded onto the n_r frequencies and done with one inverse real FFT.
+ * Rings are processed chunk by chunk (a bounded block of ring pairs): the
+ * FFT stage runs in parallel over pairs, the Legendre stage in parallel over
+ * m with a dynamic schedule (work per m falls with m).  Every sum is done
+ * in a fixed order by one thread, so results do not depend on the number of
+ * threads.
+ */
+#include <math.h>
+#include <string.h>
+
+#include <omp.h>
+
+#include "core_impl.h"
+#include "sht_impl.h"
+
+#define BL CLEF_SHT_BLOCK
+
+static int nthreads_for(const clef_sht *p)
+{
+    const int n = omp_get_max_threads();
+    return n < p->nthreads ? n : p->nthreads;
+}
+
+/* Phase factors e^{-i m phi0} for m = 0..mmax as ph1[m % 64] * ph2[m / 64].
+ * phi0 = shift pi / n, so m phi0 is reduced exactly: angle = pi k / n with
+ * k = (m shift) mod 2n. */
+static void phase_tables(const clef_sht *p, clef_sht_thread *th, int r)
+{
+    const int n = p->ring_npix[r];
+    for (int m = 0; m < 64; m++) {
+        const long k = (long)m % (2L * n);
+        th->ph1[m] = cexp(-I * CLEF_PI * (double)k / n);
+    }
+    for (int q = 0; q <= p->mmax / 64; q++) {
+        const long k = (64L * q) % (2L * n);
+        th->ph2[q] = cexp(-I * CLEF_PI * (double)k / n);
+    }
+}
+
+static inline double complex phase_at(const clef_sht_thread *th, int shift, int m)
+{
+    return shift ? th->ph1[m & 63] * th->ph2[m >> 6] : 1.0;
+}
+
+/* F_m for one ring of a map (already scaled by w_r Omega_pix) into out[m * nmaps]. */
+static void ring_analysis(const clef_sht *p, clef_sht_thread *th, int r, const double *pix,
+                          double complex *out, int nmaps)
+{
+    const int n = p->ring_npix[r], shift = p->ring_shift[r];
+    memcpy(th->ring, pix, (size_t)n * sizeof(double));
+    fftw_execute_dft_r2c(p->plan_r2c[n / 4 - 1], th->ring, th->four);
+    const double complex *c = (const double complex *)th->four;
+    const double wt = p->ring_w[r] * p->domega;
+    int k = 0;
+    for (int m = 0; m <= p->mmax; m++) {
+        const double complex v = k <= n / 2 ? c[k] : conj(c[n - k]);
+        out[(size_t)m * nmaps] = wt * v * phase_at(th, shift, m);
+        if (++k == n)
+            k = 0;
+    }
+}
+
+/* Ring values from G_m (in g[m * nmaps]) into th->ring. */
+static void ring_synthesis(const clef_sht *p, clef_sht_thread *th, int r,
+                           const double complex *g, int nmaps)
+{
+    const int n = p->ring_npix[r], shift = p->ring_shift[r];
+    double complex *c = (double complex *)th->four;
+    for (int k = 0; k <= n / 2; k++)
+        c[k] = 0.0;
+    int k = 0;
+    for (int m = 0; m <= p->mmax; m++) {
+        const double complex v = g[(size_t)m * nmaps] * conj(phase_at(th, shift, m));
+        if (m == 0) {
+            c[0] += v;
+        } else {
+            /* +m lands on k = m mod n, -m on n - k (mod n). */
+            const int kk = k == 0 ? 0 : n - k;
+            if (k <= n / 2)
+                c[k] += v;
+            if (kk <= n / 2)
+                c[kk] += conj(v);
+        }
+        if (++k == n)
+            k = 0;
+    }
+    c[0] = creal(c[0]);
+    c[n / 2] = creal(c[n / 2]);
+    fftw_execute_dft_c2r(p->plan_c2r[n / 4 - 1], th->four, th->ring);
+}
+
+static inline double *phase_at_m(const clef_sht *p, int j, int m, int b)
+{
+    return p->phase + (size_t)j * p->phase_stride +
+           ((size_t)m * p->chunk_blocks + (size_t)b) * CLEF_SHT_BLOCKDBL;
+}
+
+enum fft_mode { FFT_ANALYSIS, FFT_SYNTHESIS, FFT_RESIDUAL };
+
+/* FFT stage over the pairs of chunk [b0, b0 + nb) blocks. */
+static void fft_stage(const clef_sht *p, enum fft_mode mode, int b0, int nb, int nmaps,
+                      const double *const *map, double *const *out)
+{
+    const int q0 = b0 * BL, q1 = (b0 + nb) * BL;
+#pragma omp parallel for schedule(dynamic, 4) num_threads(nthreads_for(p))
+    for (int q = q0; q < q1; q++) {
+        clef_sht_thread *th = &p->thr[omp_get_thread_num()];
+        const int b = q / BL - b0, lane = q % BL;
+        if (q >= p->npairs) {
+            if (mode != FFT_SYNTHESIS)
+                for (int j = 0; j < nmaps; j++)
+                    for (int m = 0; m <= p->mmax; m++) {
+                        double *ph = phase_at_m(p, j, m, b);
+                        for (int s = 0; s < 4; s++)
+                            ph[s * BL + lane] = 0.0;
+                    }
+            continue;
+        }
+        const int rn = q, rs = p->nrings - 1 - q, eq = rn == rs;
+        const int nring = eq ? 1 : 2;
+        for (int h = 0; h < nring; h++) {
+            const int r = h ? rs : rn;
+            double complex *f = h ? th->fs : th->fn;
+            phase_tables(p, th, r);
+            const int64_t first = p->ring_first[r];
+            const int n = p->ring_npix[r];
+            for (int j = 0; j < nmaps; j++) {
+                if (mode != FFT_ANALYSIS) {
+                    /* G_m for this ring from the Legendre stage: E + O north, E - O south. */
+                    for (int m = 0; m <= p->mmax; m++) {
+                        const double *ph = phase_at_m(p, j, m, b);
+                        const double sg = h ? -1.0 : 1.0;
+                        f[(size_t)m * nmaps + j] =
+                            (ph[0 * BL + lane] + sg * ph[2 * BL + lane]) +
+                            I * (ph[1 * BL + lane] + sg * ph[3 * BL + lane]);
+                    }
+                    ring_synthesis(p, th, r, f + j, nmaps);
+                    if (mode == FFT_SYNTHESIS) {
+                        memcpy(out[j] + first, th->ring, (size_t)n * sizeof(double));
+                        continue;
+                    }
+                    for (int i = 0; i < n; i++)
+                        th->ring[i] = map[j][first + i] - th->ring[i];
+                    ring_analysis(p, th, r, th->ring, f + j, nmaps);
+                } else {
+                    ring_analysis(p, th, r, map[j] + first, f + j, nmaps);
+                }
+            }
+        }
+        if (mode == FFT_SYNTHESIS)
+            continue;
+        for (int j = 0; j < nmaps; j++)
+            for (int m = 0; m <= p->mmax; m++) {
+                const double complex fn = th->fn[(size_t)m * nmaps + j];
+                const double complex fs = eq ? 0.0 : th->fs[(size_t)m * nmaps + j];
+                double *ph = phase_at_m(p, j, m, b);
+                ph[0 * BL + lane] = creal(fn + fs);
+                ph[1 * BL + lane] = cimag(fn + fs);
+                ph[2 * BL + lane] = creal(fn - fs);
+                ph[3 * BL + lane] = cimag(fn - fs);
+            }
+    }
+}
+
+/* Legendre stage, analysis: alm[j] += contributions of the chunk's pairs. */
+static void legendre_analysis(const clef_sht *p, int b0, int nb, int nmaps,
+                              double complex *const *alm)
+{
+    const int lmax = p->lmax;
+#pragma omp parallel for schedule(dynamic, 1) num_threads(nthreads_for(p))
+    for (int m = 0; m <= p->mmax; m++) {
+        clef_sht_thread *th = &p->thr[omp_get_thread_num()];
+        clef_sht_mtab *t = &th->tab;
+        clef_sht_mtab_fill(t, m, lmax);
+        const size_t row = (size_t)nmaps * 2 * CLEF_SHT_VL;
+        memset(th->abuf + (size_t)m * row, 0, (size_t)(lmax - m + 1) * row * sizeof(double));
+        clef_sht_kernel_analysis(t, nb, p->pair_x + (size_t)b0 * BL, p->pair_sth + (size_t)b0 * BL,
+                                 phase_at_m(p, 0, m, 0), p->phase_stride, nmaps, th->abuf);
+        for (int l = m; l <= lmax; l++)
+            for (int j = 0; j < nmaps; j++) {
+                const double *ab = th->abuf + ((size_t)l * nmaps + j) * 2 * CLEF_SHT_VL;
+                double re = 0.0, im = 0.0;
+                for (int i = 0; i < CLEF_SHT_VL; i++) {
+                    re += ab[i];
+                    im += ab[CLEF_SHT_VL + i];
+                }
+                alm[j][clef_alm_index(lmax, l, m)] += t->sigma[l] * (re + I * im);
+            }
+    }
+}
+
+/* Legendre stage, synthesis: the chunk's phase array from alm. */
+static void legendre_synthesis(const clef_sht *p, int b0, int nb, int nmaps,
+                               const double complex *const *alm)
+{
+    const int lmax = p->lmax;
+#pragma omp parallel for schedule(dynamic, 1) num_threads(nthreads_for(p))
+    for (int m = 0; m <= p->mmax; m++) {
+        clef_sht_thread *th = &p->thr[omp_get_thread_num()];
+        clef_sht_mtab *t = &th->tab;
+        clef_sht_mtab_fill(t, m, lmax);
+        for (int l = m; l <= lmax; l++)
+            for (int j = 0; j < nmaps; j++)
+                th->bl[(size_t)l * nmaps + j] = t->sigma[l] * alm[j][clef_alm_index(lmax, l, m)];
+        clef_sht_kernel_synthesis(t, nb, p->pair_x + (size_t)b0 * BL, p->pair_sth + (size_t)b0 * BL,
+                                  phase_at_m(p, 0, m, 0), p->phase_stride, nmaps, th->bl);
+    }
+}
+
+static int check_args(const clef_sht *p, int nmaps, const void *in, const void *out,
+                      const char *what)
+{
+    if (!p)
+        CLEF_FAIL(CLEF_EINVAL, "sht %s: plan is NULL", what);
+    if (nmaps < 1 || nmaps > p->nmaps)
+        CLEF_FAIL(CLEF_EINVAL, "sht %s: nmaps = %d outside 1..%d (the plan's nmaps)", what, nmaps,
+                  p->nmaps);
+    if (!in || !out)
+        CLEF_FAIL(CLEF_EINVAL, "sht %s: input or output array list is NULL", what);
+    return CLEF_OK;
+}
+
+/* One analysis pass over all chunks into acc (zeroed first).  With a
+ * non-NULL `prev`, analyses the residual map - S prev instead. */
+static void analysis_pass(const clef_sht *p, int nmaps, const double *const *map,
+                          const double complex *const *prev, double complex *const *acc)
+{
+    const size_t nalm = clef_alm_size(p->lmax, p->mmax);
+    for (int j = 0; j < nmaps; j++)
+        memset(acc[j], 0, nalm * sizeof(double complex));
+    for (int b0 = 0; b0 < p->nblocks; b0 += p->chunk_blocks) {
+        const int nb = p->nblocks - b0 < p->chunk_blocks ? p->nblocks - b0 : p->chunk_blocks;
+        double t0 = clef_wtime();
+        if (prev) {
+            legendre_synthesis(p, b0, nb, nmaps, prev);
+            p->state->t_leg += clef_wtime() - t0;
+            t0 = clef_wtime();
+        }
+        fft_stage(p, prev ? FFT_RESIDUAL : FFT_ANALYSIS, b0, nb, nmaps, map, NULL);
+        const double t1 = clef_wtime();
+        p->state->t_fft += t1 - t0;
+        legendre_analysis(p, b0, nb, nmaps, acc);
+        p->state->t_leg += clef_wtime() - t1;
+    }
+}
+
+int clef_sht_analysis(const clef_sht *p, int nmaps, const double *const *map,
+                      double complex *const *alm, int iterations)
+{
+    CLEF_TRY(check_args(p, nmaps, map, alm, "analysis"));
+    if (iterations < 0 || iterations > 1000)
+        CLEF_FAIL(CLEF_EINVAL, "sht analysis: iterations = %d outside 0..1000", iterations);
+    for (int j = 0; j < nmaps; j++)
+        if (!map[j] || !alm[j])
+            CLEF_FAIL(CLEF_EINVAL, "sht analysis: map or a_lm array %d is NULL", j);
+    p->state->t_fft = p->state->t_leg = 0.0;
+    analysis_pass(p, nmaps, map, NULL, alm);
+    const size_t nalm = clef_alm_size(p->lmax, p->mmax);
+    double complex *delta[64];
+    for (int j = 0; j < nmaps; j++)
+        delta[j] = p->delta + (size_t)j * nalm;
+    /* Jacobi iteration a <- a + A (m - S a) (METHODS.md section 2). */
+    for (int it = 0; it < iterations; it++) {
+        clef_progress("sht-iterations", (double)it / iterations);
+        analysis_pass(p, nmaps, map, (const double complex *const *)alm, delta);
+        for (int j = 0; j < nmaps; j++)
+            for (size_t i = 0; i < nalm; i++)
+                alm[j][i] += delta[j][i];
+    }
+    if (iterations)
+        clef_progress("sht-iterations", 1.0);
+    return CLEF_OK;
+}
+
+int clef_sht_synthesis(const clef_sht *p, int nmaps, const double complex *const *alm,
+                       double *const *map)
+{
+    CLEF_TRY(check_args(p, nmaps, alm, map, "synthesis"));
+    for (int j = 0; j < nmaps; j++)
+        if (!map[j] || !alm[j])
+            CLEF_FAIL(CLEF_EINVAL, "sht synthesis: map or a_lm array %d is NULL", j);
+    p->state->t_fft = p->state->t_leg = 0.0;
+    for (int b0 = 0; b0 < p->nblocks; b0 += p->chunk_blocks) {
+        const int nb = p->nblocks - b0 < p->chunk_blocks ? p->nblocks - b0 : p->chunk_blocks;
+        const double t0 = clef_wtime();
+        legendre_synthesis(p, b0, nb, nmaps, alm);
+        const double t1 = clef_wtime();
+        fft_stage(p, FFT_SYNTHESIS, b0, nb, nmaps, NULL, map);
+        p->state->t_leg += t1 - t0;
+        p->state->t_fft += clef_wtime() - t1;
+    }
+    return CLEF_OK;
+}

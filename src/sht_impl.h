@@ -1,0 +1,118 @@
+/* Private parts of the spherical harmonic transform (include/clef/sht.h):
+ * the plan structure, per-thread scratch, and the functions the stages of
+ * the transform share.  Not installed.
+ *
+ * Layout of the work (Gorski et al. 2005; Reinecke 2011):
+ *  - rings come in north/south pairs p = 0 .. 2 nside - 1 (north ring
+ *    p + 1, south ring 4 nside - 1 - p; the equator pairs with itself);
+ *  - pairs are grouped in blocks of CLEF_SHT_BLOCK, processed as
+ *    CLEF_SHT_NV vectors of CLEF_SHT_VL lanes by the Legendre kernels;
+ *  - blocks are grouped in chunks, so the Fourier-coefficient array
+ *    ("phase" array, [m][block][parity][re/im][lane]) stays bounded;
+ *  - a transform runs chunk by chunk: FFT stage (parallel over pairs) and
+ *    Legendre stage (parallel over m).
+ */
+#ifndef CLEF_SHT_IMPL_H
+#define CLEF_SHT_IMPL_H
+
+#include <complex.h>
+#include <stddef.h>
+#include <stdint.h>
+
+#include <fftw3.h>
+
+#include "clef/sht.h"
+
+/* Doubles per vector (8 = one AVX-512 register; on narrower machines GCC
+ * splits the vector type into several registers). */
+#define CLEF_PI 3.14159265358979323846
+
+#define CLEF_SHT_VL 8
+/* Vectors in flight per block: enough independent recurrence chains to
+ * cover the FMA latency (PERFORMANCE.md section 2 item 3). */
+#define CLEF_SHT_NV 2
+#define CLEF_SHT_BLOCK (CLEF_SHT_VL * CLEF_SHT_NV)
+/* Doubles per (m, block, map) in the phase array: 2 parities x re/im x lanes. */
+#define CLEF_SHT_BLOCKDBL (4 * CLEF_SHT_BLOCK)
+
+/* Extended-exponent radix for the start of the recurrence: a lane whose
+ * value is mant * 2^(-CLEF_SHT_RADIX * k) with k >= 1 is below 2^-200 in
+ * scaled units and contributes nothing (see sht_legendre.c). */
+#define CLEF_SHT_RADIX 200
+/* The per-m scale factor sigma_l is renormalised by 2^-CLEF_SHT_SIGSTEP
+ * whenever it exceeds 2^CLEF_SHT_SIGSTEP. */
+#define CLEF_SHT_SIGSTEP 64
+
+typedef double clef_vd __attribute__((vector_size(CLEF_SHT_VL * sizeof(double))));
+
+/* Per-m recurrence tables (sht_legendre.c), filled in thread scratch. */
+typedef struct clef_sht_mtab {
+    int m, lmax;
+    double *c;      /* c[l], l = m+2..lmax: ((l-1)^2 - m^2) / (4 (l-1)^2 - 1) */
+    double *sigma;  /* sigma[l], l = m..lmax: lambda_l = sigma_l mu_l */
+    int *rescale;   /* increasing l at which mu_{l-1}, mu_{l-2} are scaled by 2^SIGSTEP */
+    int nrescale;
+    double pref;    /* |lambda_mm| / sin^m theta = sqrt((2m+1)/(4 pi) prod (2k-1)/(2k)) */
+} clef_sht_mtab;
+
+typedef struct clef_sht_thread {
+    double *ring;           /* fftw_malloc: 4 nside doubles (FFT input/output) */
+    fftw_complex *four;     /* fftw_malloc: 2 nside + 1 */
+    double complex *ph1, *ph2; /* phase factors e^{-i m phi0}: m mod 64, 64 (m / 64) */
+    double complex *fn;     /* (mmax+1) x nmaps: north-ring coefficients */
+    double complex *fs;     /* (mmax+1) x nmaps: south-ring coefficients */
+    clef_sht_mtab tab;
+    double *abuf;           /* analysis partial sums [l][map][re/im][VL lanes] */
+    double complex *bl;     /* synthesis sigma_l a_lm, [l][map] */
+} clef_sht_thread;
+
+/* Mutable state reached through the const plan: timings of the last call. */
+typedef struct clef_sht_state {
+    double t_fft, t_leg;
+} clef_sht_state;
+
+struct clef_sht {
+    int64_t nside, npix;
+    int lmax, mmax, nmaps;
+    int nrings, npairs;       /* 4 nside - 1 rings, 2 nside pairs */
+    int nblocks;              /* ceil(npairs / BLOCK) */
+    int chunk_blocks;         /* blocks per chunk */
+    /* Per ring r = 0 .. nrings-1 (ring index i = r + 1). */
+    double *ring_z, *ring_sth, *ring_phi0, *ring_w;
+    int64_t *ring_first;
+    int *ring_npix;
+    int *ring_shift;          /* phi0 = ring_shift * pi / npix_r (0 or 1) */
+    /* Per pair, padded to nblocks * BLOCK (pads: x = 0, sin theta = 1). */
+    double *pair_x, *pair_sth;
+    /* FFTW plans per ring length n = 4 i, i = 1..nside (index i - 1). */
+    fftw_plan *plan_r2c, *plan_c2r;
+    double domega;            /* pixel solid angle 4 pi / npix */
+    double *phase;            /* nmaps x (mmax+1) x chunk_blocks x BLOCKDBL */
+    size_t phase_stride;      /* doubles per map in phase */
+    double complex *delta;    /* nmaps x alm: Jacobi increments */
+    int nthreads;
+    clef_sht_thread *thr;
+    clef_sht_state *state;
+};
+
+/* sht_weights.c: quadrature weights per ring (nrings values). */
+int clef_sht_ring_weights_compute(const clef_sht *p, double *w);
+
+/* sht_legendre.c */
+int clef_sht_mtab_alloc(clef_sht_mtab *t, int lmax);
+void clef_sht_mtab_free(clef_sht_mtab *t);
+void clef_sht_mtab_fill(clef_sht_mtab *t, int m, int lmax);
+/* lambda_mm(theta) = mant * 2^exp2 with |mant| in [0.5, 1) (exact exponent). */
+void clef_sht_lambda_mm(const clef_sht_mtab *t, double sth, double *mant, int *exp2);
+
+/* sht_kernel.c: Legendre stage over one chunk for one m.  `ph` points at
+ * the chunk's phase data for m (map j at ph + j * map_stride), block b at
+ * b * BLOCKDBL; x, sth are the chunk's pair tables. */
+void clef_sht_kernel_analysis(const clef_sht_mtab *t, int nblocks, const double *x,
+                              const double *sth, const double *ph, size_t map_stride,
+                              int nmaps, double *abuf);
+void clef_sht_kernel_synthesis(const clef_sht_mtab *t, int nblocks, const double *x,
+                               const double *sth, double *ph, size_t map_stride, int nmaps,
+                               const double complex *bl);
+
+#endif

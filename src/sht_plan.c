@@ -1,0 +1,307 @@
+/* Transform plan: ring geometry from the HEALPix C library, ring FFT
+ * plans, quadrature weights and per-thread scratch (include/clef/sht.h). */
+#include <math.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include <chealpix.h>
+#include <omp.h>
+
+#include "clef/map.h"
+#include "core_impl.h"
+#include "sht_impl.h"
+
+/* Budget for the Fourier-coefficient array of one chunk of ring pairs:
+ * large enough that each m sees many blocks (parallel and cache
+ * efficiency), small enough to keep the plan's memory a fraction of the
+ * maps' (PERFORMANCE.md section 2 item 8). */
+#define PHASE_BYTES_MAX ((size_t)64 << 20)
+
+static int nside_ok(int64_t nside)
+{
+    return nside >= 1 && nside <= CLEF_NSIDE_MAX && (nside & (nside - 1)) == 0;
+}
+
+/* Ring geometry.  z and sin theta from pix2vec_ring64 (the library's own
+ * z, no acos/cos round trip), phi0 from pix2ang_ring64 on the first pixel
+ * of each ring.  Ring sizes and first indices follow from the library's
+ * RING numbering (the first pixel of ring r + 1 is first_r + npix_r). */
+static int make_geometry(clef_sht *p)
+{
+    const int64_t ns = p->nside;
+    int64_t first = 0;
+    for (int r = 0; r < p->nrings; r++) {
+        const int64_t i = r + 1;
+        const int64_t n = i < ns ? 4 * i : (i <= 3 * ns ? 4 * ns : 4 * (4 * ns - i));
+        double v[3], theta, phi;
+        pix2vec_ring64(ns, first, v);
+        pix2ang_ring64(ns, first, &theta, &phi);
+        p->ring_first[r] = first;
+        p->ring_npix[r] = (int)n;
+        p->ring_z[r] = v[2];
+        p->ring_sth[r] = sqrt(v[0] * v[0] + v[1] * v[1]);
+        p->ring_phi0[r] = phi;
+        /* HEALPix rings start at phi0 = 0 or half a pixel spacing, pi / n:
+         * recognise which, so phase factors use exact angle reduction. */
+        const double t = phi * (double)n / CLEF_PI;
+        const int shift = (int)lround(t);
+        if ((shift != 0 && shift != 1) || fabs(t - shift) > 1e-9)
+            CLEF_FAIL(CLEF_EUNSUP, "sht: ring %d of nside %lld starts at phi = %.17g, not 0 or pi/%lld",
+                      r + 1, (long long)ns, phi, (long long)n);
+        p->ring_shift[r] = shift;
+        first += n;
+    }
+    if (first != p->npix)
+        CLEF_FAIL(CLEF_ENUMERIC, "sht: ring sizes of nside %lld sum to %lld, not %lld pixels",
+                  (long long)ns, (long long)first, (long long)p->npix);
+    const int npad = p->nblocks * CLEF_SHT_BLOCK;
+    for (int q = 0; q < npad; q++) {
+        p->pair_x[q] = q < p->npairs ? p->ring_z[q] : 0.0;
+        p->pair_sth[q] = q < p->npairs ? p->ring_sth[q] : 1.0;
+    }
+    return CLEF_OK;
+}
+
+static int make_fft_plans(clef_sht *p, unsigned flags)
+{
+    const int64_t ns = p->nside;
+    double *in = fftw_malloc(sizeof(double) * 4 * (size_t)ns);
+    fftw_complex *out = fftw_malloc(sizeof(fftw_complex) * (2 * (size_t)ns + 1));
+    if (!in || !out) {
+        fftw_free(in);
+        fftw_free(out);
+        CLEF_FAIL(CLEF_ENOMEM, "sht: no memory for FFT planning at nside %lld", (long long)ns);
+    }
+    int status = CLEF_OK;
+    for (int64_t i = 1; i <= ns; i++) {
+        const int n = (int)(4 * i);
+        p->plan_r2c[i - 1] = fftw_plan_dft_r2c_1d(n, in, out, flags);
+        p->plan_c2r[i - 1] = fftw_plan_dft_c2r_1d(n, out, in, flags);
+        if (!p->plan_r2c[i - 1] || !p->plan_c2r[i - 1]) {
+            status = clef_fail(CLEF_ENOMEM, "sht: FFTW could not plan a ring FFT of length %d", n);
+            break;
+        }
+    }
+    fftw_free(in);
+    fftw_free(out);
+    return status;
+}
+
+static int alloc_threads(clef_sht *p)
+{
+    const size_t ns = (size_t)p->nside, nm = (size_t)p->nmaps;
+    const size_t lm = (size_t)p->lmax + 2, mm = (size_t)p->mmax + 1;
+    p->thr = calloc((size_t)p->nthreads, sizeof *p->thr);
+    if (!p->thr)
+        return CLEF_ENOMEM;
+    for (int t = 0; t < p->nthreads; t++) {
+        clef_sht_thread *th = &p->thr[t];
+        th->ring = fftw_malloc(sizeof(double) * 4 * ns);
+        th->four = fftw_malloc(sizeof(fftw_complex) * (2 * ns + 1));
+        th->fn = malloc(sizeof *th->fn * mm * nm);
+        th->fs = malloc(sizeof *th->fs * mm * nm);
+        th->ph1 = malloc(sizeof *th->ph1 * 64);
+        th->ph2 = malloc(sizeof *th->ph2 * (mm / 64 + 1));
+        th->abuf = malloc(sizeof *th->abuf * lm * nm * 2 * CLEF_SHT_VL);
+        th->bl = malloc(sizeof *th->bl * lm * nm);
+        if (!th->ring || !th->four || !th->fn || !th->fs || !th->ph1 || !th->ph2 || !th->abuf ||
+            !th->bl)
+            return CLEF_ENOMEM;
+        if (clef_sht_mtab_alloc(&th->tab, p->lmax) != CLEF_OK)
+            return CLEF_ENOMEM;
+    }
+    return CLEF_OK;
+}
+
+static void wisdom_import(const char *file)
+{
+    if (file && fftw_import_wisdom_from_filename(file))
+        clef_log(CLEF_LOG_DEBUG, "sht: FFTW wisdom read from %s", file);
+}
+
+static void wisdom_export(const char *file)
+{
+    if (!file)
+        return;
+    clef_outfile o;
+    if (clef_outfile_begin(&o, file) != CLEF_OK) {
+        clef_log(CLEF_LOG_WARN, "sht: cannot write FFTW wisdom file %s", file);
+        return;
+    }
+    if (!fftw_export_wisdom_to_filename(o.tmp_path) || clef_outfile_commit(&o) != CLEF_OK) {
+        clef_outfile_abort(&o);
+        clef_log(CLEF_LOG_WARN, "sht: cannot write FFTW wisdom file %s", file);
+    }
+}
+
+int clef_sht_create(clef_sht **out, int64_t nside, int lmax, const clef_sht_opts *opts)
+{
+    int status = CLEF_OK;
+    clef_sht *p = NULL;
+    if (!out)
+        CLEF_FAIL(CLEF_EINVAL, "clef_sht_create: output pointer is NULL");
+    *out = NULL;
+    if (!nside_ok(nside))
+        CLEF_FAIL(CLEF_EINVAL, "sht: nside = %lld is not a power of two in [1, %d]",
+                  (long long)nside, CLEF_NSIDE_MAX);
+    if (lmax < 1 || lmax > 65535)
+        CLEF_FAIL(CLEF_EINVAL, "sht: lmax = %d outside [1, 65535]", lmax);
+    const int mmax = opts && opts->mmax > 0 ? opts->mmax : lmax;
+    if (mmax > lmax)
+        CLEF_FAIL(CLEF_EINVAL, "sht: mmax = %d above lmax = %d", mmax, lmax);
+    const int nmaps = opts && opts->nmaps > 0 ? opts->nmaps : 1;
+    if (nmaps > 64)
+        CLEF_FAIL(CLEF_EINVAL, "sht: nmaps = %d above the supported 64", nmaps);
+    if (lmax > 3 * nside - 1)
+        clef_log(CLEF_LOG_WARN, "sht: lmax = %d above 3 nside - 1 = %lld: analysis is not invertible",
+                 lmax, (long long)(3 * nside - 1));
+
+    p = calloc(1, sizeof *p);
+    if (!p)
+        CLEF_FAIL(CLEF_ENOMEM, "sht: no memory for the plan");
+    p->nside = nside;
+    p->npix = 12 * nside * nside;
+    p->lmax = lmax;
+    p->mmax = mmax;
+    p->nmaps = nmaps;
+    p->nrings = (int)(4 * nside - 1);
+    p->npairs = (int)(2 * nside);
+    p->nblocks = (p->npairs + CLEF_SHT_BLOCK - 1) / CLEF_SHT_BLOCK;
+    p->domega = 4.0 * CLEF_PI / (double)p->npix;
+    p->nthreads = omp_get_max_threads();
+    const size_t nr = (size_t)p->nrings, npad = (size_t)p->nblocks * CLEF_SHT_BLOCK;
+    p->ring_z = malloc(nr * sizeof(double));
+    p->ring_sth = malloc(nr * sizeof(double));
+    p->ring_phi0 = malloc(nr * sizeof(double));
+    p->ring_w = malloc(nr * sizeof(double));
+    p->ring_first = malloc(nr * sizeof(int64_t));
+    p->ring_npix = malloc(nr * sizeof(int));
+    p->ring_shift = malloc(nr * sizeof(int));
+    p->pair_x = malloc(npad * sizeof(double));
+    p->pair_sth = malloc(npad * sizeof(double));
+    p->plan_r2c = calloc((size_t)nside, sizeof(fftw_plan));
+    p->plan_c2r = calloc((size_t)nside, sizeof(fftw_plan));
+    p->state = calloc(1, sizeof *p->state);
+    if (!p->ring_z || !p->ring_sth || !p->ring_phi0 || !p->ring_w || !p->ring_first ||
+        !p->ring_npix || !p->ring_shift || !p->pair_x || !p->pair_sth || !p->plan_r2c ||
+        !p->plan_c2r || !p->state) {
+        status = clef_fail(CLEF_ENOMEM, "sht: no memory for the ring tables of nside %lld",
+                           (long long)nside);
+        goto fail;
+    }
+    CLEF_CHECK(make_geometry(p));
+
+    if (opts && opts->no_ring_weights) {
+        for (size_t r = 0; r < nr; r++)
+            p->ring_w[r] = 1.0;
+    } else {
+        CLEF_CHECK(clef_sht_ring_weights_compute(p, p->ring_w));
+    }
+
+    const unsigned flags = opts && opts->fftw_flags ? opts->fftw_flags : FFTW_ESTIMATE;
+    wisdom_import(opts ? opts->wisdom_file : NULL);
+    CLEF_CHECK(make_fft_plans(p, flags));
+    wisdom_export(opts ? opts->wisdom_file : NULL);
+
+    /* Chunk of ring-pair blocks whose phase array fits the budget. */
+    const size_t per_block = (size_t)(mmax + 1) * CLEF_SHT_BLOCKDBL * sizeof(double) * (size_t)nmaps;
+    size_t cb = PHASE_BYTES_MAX / per_block;
+    if (cb < 1)
+        cb = 1;
+    if (cb > (size_t)p->nblocks)
+        cb = (size_t)p->nblocks;
+    p->chunk_blocks = (int)cb;
+    p->phase_stride = (size_t)(mmax + 1) * cb * CLEF_SHT_BLOCKDBL;
+    p->phase = malloc(p->phase_stride * (size_t)nmaps * sizeof(double));
+    /* Touched only when analysis iterates (untouched pages cost no memory). */
+    p->delta = malloc(clef_alm_size(lmax, mmax) * (size_t)nmaps * sizeof(double complex));
+    if (!p->phase || !p->delta) {
+        status = clef_fail(CLEF_ENOMEM, "sht: no memory for transform scratch (nside %lld, lmax %d)",
+                           (long long)nside, lmax);
+        goto fail;
+    }
+    if (alloc_threads(p) != CLEF_OK) {
+        status = clef_fail(CLEF_ENOMEM, "sht: no memory for per-thread scratch (%d threads)",
+                           p->nthreads);
+        goto fail;
+    }
+    *out = p;
+    return CLEF_OK;
+fail:
+    clef_sht_destroy(p);
+    return status;
+}
+
+void clef_sht_destroy(clef_sht *p)
+{
+    if (!p)
+        return;
+    if (p->plan_r2c)
+        for (int64_t i = 0; i < p->nside; i++) {
+            if (p->plan_r2c[i])
+                fftw_destroy_plan(p->plan_r2c[i]);
+            if (p->plan_c2r[i])
+                fftw_destroy_plan(p->plan_c2r[i]);
+        }
+    if (p->thr)
+        for (int t = 0; t < p->nthreads; t++) {
+            clef_sht_thread *th = &p->thr[t];
+            fftw_free(th->ring);
+            fftw_free(th->four);
+            free(th->fn);
+            free(th->fs);
+            free(th->ph1);
+            free(th->ph2);
+            free(th->abuf);
+            free(th->bl);
+            clef_sht_mtab_free(&th->tab);
+        }
+    free(p->thr);
+    free(p->plan_r2c);
+    free(p->plan_c2r);
+    free(p->ring_z);
+    free(p->ring_sth);
+    free(p->ring_phi0);
+    free(p->ring_w);
+    free(p->ring_first);
+    free(p->ring_npix);
+    free(p->ring_shift);
+    free(p->pair_x);
+    free(p->pair_sth);
+    free(p->phase);
+    free(p->delta);
+    free(p->state);
+    free(p);
+}
+
+int64_t clef_sht_nside(const clef_sht *p) { return p->nside; }
+int clef_sht_lmax(const clef_sht *p) { return p->lmax; }
+int clef_sht_mmax(const clef_sht *p) { return p->mmax; }
+int clef_sht_nrings(const clef_sht *p) { return p->nrings; }
+
+int clef_sht_ring_info(const clef_sht *p, int ring, double *z, double *phi0, int64_t *npix,
+                       int64_t *first, double *weight)
+{
+    if (ring < 1 || ring > p->nrings)
+        CLEF_FAIL(CLEF_EINVAL, "sht: ring %d outside 1..%d", ring, p->nrings);
+    const int r = ring - 1;
+    if (z)
+        *z = p->ring_z[r];
+    if (phi0)
+        *phi0 = p->ring_phi0[r];
+    if (npix)
+        *npix = p->ring_npix[r];
+    if (first)
+        *first = p->ring_first[r];
+    if (weight)
+        *weight = p->ring_w[r];
+    return CLEF_OK;
+}
+
+void clef_sht_timings(const clef_sht *p, double *fft_seconds, double *legendre_seconds)
+{
+    if (fft_seconds)
+        *fft_seconds = p->state->t_fft;
+    if (legendre_seconds)
+        *legendre_seconds = p->state->t_leg;
+}

@@ -1,0 +1,705 @@
+/* Mode-coupling matrix and binned operator (Hivon et al. 2002, ApJ 567, 2;
+ * METHODS.md section 4), the coupling cache, and the pseudo-spectrum of
+ * masked Gaussian skies. */
+#include "check.h"
+
+#include <gsl/gsl_errno.h>
+#include <gsl/gsl_rng.h>
+#include <gsl/gsl_sf_coupling.h>
+#include <gsl/gsl_sf_legendre.h>
+
+#include "clef/coupling.h"
+#include "clef/wigner.h"
+
+/* Analytic W_l of the cap z >= z0 (w = 1 inside): w_l0 = 2 pi
+ * sqrt((2l+1)/4pi) I_l, I_l = int_z0^1 P_l dz = (P_{l-1}(z0) - P_{l+1}(z0))
+ * / (2l+1) (from (2l+1) P_l = P'_{l+1} - P'_{l-1}, DLMF 14.10.5), so
+ * W_l = |w_l0|^2/(2l+1) = pi I_l^2 (METHODS.md section 4, hemisphere). */
+static void cap_wl(double z0, int lmax, double *wl)
+{
+    double *p = malloc((size_t)(lmax + 2) * sizeof *p);
+    assert_non_null(p);
+    /* GSL gsl_sf_legendre_Pl_array */
+    assert_int_equal(gsl_sf_legendre_Pl_array(lmax + 1, z0, p), GSL_SUCCESS);
+    wl[0] = M_PI * (1 - z0) * (1 - z0);
+    for (int l = 1; l <= lmax; l++) {
+        const double il = (p[l - 1] - p[l + 1]) / (2.0 * l + 1.0);
+        wl[l] = M_PI * il * il;
+    }
+    free(p);
+}
+
+static double *make_coupling(clef_coupling **c, int lmax, const double *wl, int wl_lmax)
+{
+    assert_int_equal(clef_coupling_create(c, lmax, wl, wl_lmax), CLEF_OK);
+    assert_int_equal(clef_coupling_lmax(*c), lmax);
+    return (double *)clef_coupling_matrix(*c);
+}
+
+static void test_full_sky_identity(void **state)
+{
+    (void)state;
+    enum { L = 300 };
+    static double wl[2 * L + 1];
+    /* w = 1: W_0 = 4 pi, others 0 -> M = I (METHODS.md section 4 exact check) */
+    wl[0] = 4 * M_PI;
+    clef_coupling *c;
+    const double *m = make_coupling(&c, L, wl, 2 * L);
+    for (int l = 0; l <= L; l++)
+        for (int lp = 0; lp <= L; lp++)
+            check_abs(m[l * (L + 1) + lp], l == lp ? 1.0 : 0.0, 1e-12,
+                      "full sky M = I (METHODS.md 4)");
+    clef_coupling_destroy(c);
+    /* w = f: W_0 = 4 pi f^2 -> M = f^2 I */
+    const double f = 0.37;
+    wl[0] = 4 * M_PI * f * f;
+    m = make_coupling(&c, L, wl, 2 * L);
+    for (int l = 0; l <= L; l += 7)
+        for (int lp = 0; lp <= L; lp++)
+            check_abs(m[l * (L + 1) + lp], l == lp ? f * f : 0.0, 1e-12,
+                      "constant mask M = f^2 I (METHODS.md 4)");
+    clef_coupling_destroy(c);
+}
+
+static void test_hemisphere(void **state)
+{
+    (void)state;
+    enum { L = 50 };
+    static double wl[2 * L + 1];
+    cap_wl(0.0, 2 * L, wl);
+    /* I_1 = 1/2, I_3 = -1/8: W_1 = pi/4, W_3 = pi/64 (METHODS.md section 4) */
+    check_rel(wl[1], M_PI / 4, 1e-15, "hemisphere W_1 = pi I_1^2");
+    check_rel(wl[3], M_PI / 64, 1e-15, "hemisphere W_3 = pi I_3^2");
+    check_abs(wl[2], 0.0, 1e-17, "hemisphere W_2 = 0");
+    clef_coupling *c;
+    const double *m = make_coupling(&c, L, wl, 2 * L);
+#define M_(l, lp) m[(l) * (L + 1) + (lp)]
+    /* Exact fractions from METHODS.md section 4 [D] */
+    const struct {
+        int l, lp;
+        double v;
+    } ex[] = {{0, 0, 1.0 / 4},      {0, 1, 3.0 / 16},   {0, 2, 0.0},        {0, 3, 7.0 / 256},
+              {1, 0, 1.0 / 16},     {1, 1, 1.0 / 4},    {1, 2, 35.0 / 256}, {1, 4, 21.0 / 1024},
+              {2, 1, 21.0 / 256},   {2, 2, 1.0 / 4},    {2, 3, 63.0 / 512}, {3, 2, 45.0 / 512},
+              {3, 4, 7659.0 / 65536}};
+    for (size_t i = 0; i < sizeof ex / sizeof ex[0]; i++)
+        check_abs(M_(ex[i].l, ex[i].lp), ex[i].v, 1e-14, "hemisphere, METHODS.md section 4");
+    for (int l = 0; l <= L; l++)
+        check_rel(M_(l, l), 0.25, 1e-12, "hemisphere M_ll = 1/4 (METHODS.md 4)");
+#undef M_
+    clef_coupling_destroy(c);
+
+    /* Row 0 summed to l' = 200 reaches only 0.4992 of w2 = 1/2 (sharp edge;
+     * METHODS.md section 4) */
+    enum { L2 = 200 };
+    static double wl2[2 * L2 + 1];
+    cap_wl(0.0, 2 * L2, wl2);
+    m = make_coupling(&c, L2, wl2, 2 * L2);
+    double s = 0;
+    for (int lp = 0; lp <= L2; lp++)
+        s += m[lp];
+    check_abs(s, 0.4992, 5e-5, "hemisphere row sum to 200 (METHODS.md 4)");
+    clef_coupling_destroy(c);
+}
+
+/* Random smooth positive W_l, band-limited to lw. */
+static void random_wl(gsl_rng *r, int lw, int n, double *wl)
+{
+    for (int l = 0; l < n; l++)
+        wl[l] = l <= lw ? (0.2 + gsl_rng_uniform(r)) * exp(-l / 8.0) : 0.0;
+}
+
+static void test_row_sums_and_symmetry(void **state)
+{
+    (void)state;
+    enum { L = 200, LW = 20 };
+    static double wl[2 * L + 1];
+    gsl_rng *r = gsl_rng_alloc(gsl_rng_mt19937);
+    gsl_rng_set(r, 42);
+    random_wl(r, LW, 2 * L + 1, wl);
+    double w2 = 0;
+    for (int l = 0; l <= LW; l++)
+        w2 += (2 * l + 1) * wl[l] / (4 * M_PI);
+    clef_coupling *c;
+    const double *m = make_coupling(&c, L, wl, 2 * L);
+    /* sum_l' M_ll' = w2 when no coupled l' is truncated (l + LW <= L):
+     * 3j orthogonality plus sum_l (2l+1) W_l = 4 pi w2 (METHODS.md 4) */
+    for (int l = 0; l + LW <= L; l++) {
+        double s = 0;
+        for (int lp = 0; lp <= L; lp++)
+            s += m[l * (L + 1) + lp];
+        check_rel(s, w2, 1e-12, "row sums = w2 (METHODS.md 4)");
+    }
+    /* M_ll'/(2l'+1) symmetric (METHODS.md 4) */
+    for (int l = 0; l <= L; l += 3)
+        for (int lp = 0; lp <= L; lp += 5)
+            check_abs(m[l * (L + 1) + lp] / (2 * lp + 1), m[lp * (L + 1) + l] / (2 * l + 1),
+                      1e-15, "symmetry of M/(2l'+1)");
+    clef_coupling_destroy(c);
+    gsl_rng_free(r);
+}
+
+/* Independent evaluations of the defining sum: GSL's 3j at small l (where
+ * GSL holds 1e-12, see test_wigner.c) and the signed 3j rows elsewhere. */
+static void test_vs_direct_sum(void **state)
+{
+    (void)state;
+    enum { L = 60 };
+    static double wl[2 * L + 1], row[2 * L + 2];
+    gsl_rng *r = gsl_rng_alloc(gsl_rng_mt19937);
+    gsl_rng_set(r, 7);
+    for (int l = 0; l <= 2 * L; l++)
+        wl[l] = gsl_rng_uniform(r) / (1.0 + l);
+    clef_coupling *c;
+    const double *m = make_coupling(&c, L, wl, 2 * L);
+    for (int l = 0; l <= L; l++)
+        for (int lp = 0; lp <= L; lp++) {
+            int lo, hi;
+            assert_int_equal(clef_wigner_3j000_row(l, lp, row, &lo, &hi), CLEF_OK);
+            double s = 0;
+            for (int l3 = lo; l3 <= hi; l3++)
+                s += (2 * l3 + 1) * wl[l3] * row[l3 - lo] * row[l3 - lo];
+            const double want = (2 * lp + 1) / (4 * M_PI) * s;
+            check_rel(m[l * (L + 1) + lp], want, 1e-12, "Hivon 2002 sum with 3j rows");
+            if (l <= 7 && lp <= 7) {
+                double g = 0;
+                for (int l3 = lo; l3 <= hi; l3++) {
+                    /* GSL gsl_sf_coupling_3j */
+                    const double f = gsl_sf_coupling_3j(2 * l, 2 * lp, 2 * l3, 0, 0, 0);
+                    g += (2 * l3 + 1) * wl[l3] * f * f;
+                }
+                check_rel(m[l * (L + 1) + lp], (2 * lp + 1) / (4 * M_PI) * g, 1e-12,
+                          "Hivon 2002 sum with GSL gsl_sf_coupling_3j");
+            }
+        }
+    /* W_l truncated: terms above wl_lmax count as zero */
+    clef_coupling *ct;
+    const double *mt = make_coupling(&ct, L, wl, 30);
+    for (int l = 0; l <= L; l += 4)
+        for (int lp = 0; lp <= L; lp += 3) {
+            int lo, hi;
+            clef_wigner_3j000_row(l, lp, row, &lo, &hi);
+            double s = 0;
+            for (int l3 = lo; l3 <= hi && l3 <= 30; l3++)
+                s += (2 * l3 + 1) * wl[l3] * row[l3 - lo] * row[l3 - lo];
+            check_abs(mt[l * (L + 1) + lp], (2 * lp + 1) / (4 * M_PI) * s, 1e-14,
+                      "truncated W_l");
+        }
+    clef_coupling_destroy(ct);
+    /* apply() is M times a vector */
+    double cl[L + 1], out[L + 1];
+    for (int l = 0; l <= L; l++)
+        cl[l] = 1.0 / (1 + l);
+    clef_coupling_apply(c, cl, out);
+    for (int l = 0; l <= L; l += 10) {
+        double s = 0;
+        for (int lp = 0; lp <= L; lp++)
+            s += m[l * (L + 1) + lp] * cl[lp];
+        check_rel(out[l], s, 1e-14, "M C");
+    }
+    clef_coupling_destroy(c);
+    gsl_rng_free(r);
+}
+
+static void test_binned_recovers_band_powers(void **state)
+{
+    (void)state;
+    enum { L = 256 };
+    static double wl[2 * L + 1], tr[L + 1], cl[L + 1], tcl[L + 1], pcl[L + 1];
+    cap_wl(0.3, 2 * L, wl); /* cap with f_sky = 0.35 */
+    clef_coupling *c;
+    make_coupling(&c, L, wl, 2 * L);
+    clef_bins *bins;
+    assert_int_equal(clef_bins_create_linear(&bins, 2, 16, L, CLEF_BINS_DL), CLEF_OK);
+    const int nb = clef_bins_count(bins);
+    /* transfer F B^2 p^2: a Gaussian beam squared (sigma_l = 150) */
+    for (int l = 0; l <= L; l++)
+        tr[l] = exp(-l * (l + 1.0) / (150.0 * 150.0));
+    clef_coupling_binned *kb;
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, tr, NULL), CLEF_OK);
+    assert_int_equal(clef_coupling_binned_nbins(kb), nb);
+    assert_int_equal(clef_coupling_binned_lmax(kb), L);
+    assert_true(clef_coupling_binned_rcond(kb) > 1e-3 && clef_coupling_binned_rcond(kb) <= 1);
+    /* A piecewise-constant D_b fed through C = Q D, pseudo-C = M T C, is
+     * recovered exactly by K^-1 P (Hivon et al. 2002, METHODS.md 4). */
+    double *d = malloc((size_t)nb * sizeof *d), *got = malloc((size_t)nb * sizeof *got);
+    for (int b = 0; b < nb; b++)
+        d[b] = 1000.0 + 500.0 * sin(0.3 * b);
+    assert_int_equal(clef_bins_expand(bins, d, L, cl), CLEF_OK);
+    for (int l = 0; l <= L; l++)
+        tcl[l] = tr[l] * cl[l];
+    clef_coupling_apply(c, tcl, pcl);
+    clef_coupling_binned_decouple(kb, pcl, got);
+    for (int b = 0; b < nb; b++)
+        check_rel(got[b], d[b], 1e-10, "K^-1 P M T Q D = D (Hivon 2002)");
+    /* K (K^-1 P) = P */
+    const double *k = clef_coupling_binned_matrix(kb), *kp = clef_coupling_binned_kinv_p(kb);
+    for (int b = 0; b < nb; b += 3)
+        for (int l = 0; l <= L; l += 5) {
+            double s = 0;
+            for (int j = 0; j < nb; j++)
+                s += k[b * nb + j] * kp[(size_t)j * (L + 1) + l];
+            check_abs(s, clef_bins_p(bins, b, l), 1e-9 * (1 + clef_bins_p(bins, b, l)),
+                      "K (K^-1 P) = P");
+        }
+    clef_coupling_binned_destroy(kb);
+    /* Full sky, no transfer: K = I (P Q = I) */
+    static double w1[2 * L + 1];
+    w1[0] = 4 * M_PI;
+    clef_coupling *c1;
+    make_coupling(&c1, L, w1, 2 * L);
+    assert_int_equal(clef_coupling_binned_create(&kb, c1, bins, NULL, NULL), CLEF_OK);
+    k = clef_coupling_binned_matrix(kb);
+    for (int b = 0; b < nb; b++)
+        for (int j = 0; j < nb; j++)
+            check_abs(k[b * nb + j], b == j, 1e-12, "full sky K = I");
+    check_rel(clef_coupling_binned_rcond(kb), 1.0, 1e-12, "rcond of I (LAPACK dgecon)");
+    clef_coupling_binned_destroy(kb);
+    clef_coupling_destroy(c1);
+    free(d);
+    free(got);
+    clef_bins_destroy(bins);
+    clef_coupling_destroy(c);
+}
+
+/* Read "use bins of at least N multipoles" from an error message. */
+static int suggested_width(const char *msg)
+{
+    const char *p = strstr(msg, "use bins of at least ");
+    return p ? atoi(p + strlen("use bins of at least ")) : -1;
+}
+
+static void test_ill_conditioned(void **state)
+{
+    (void)state;
+    enum { L = 256 };
+    static double wl[2 * L + 1];
+    /* A cap of f_sky = 0.002 (radius ~5 deg) with single-multipole bins */
+    cap_wl(1 - 2 * 0.002, 2 * L, wl);
+    clef_coupling *c;
+    make_coupling(&c, L, wl, 2 * L);
+    clef_bins *bins;
+    assert_int_equal(clef_bins_create_linear(&bins, 2, 1, L, CLEF_BINS_DL), CLEF_OK);
+    clef_coupling_binned *kb = (void *)1;
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, NULL, NULL), CLEF_ENUMERIC);
+    assert_null(kb);
+    const char *msg = clef_last_error();
+    assert_true(strstr(msg, "ill-conditioned") || strstr(msg, "singular"));
+    assert_non_null(strstr(msg, "coupling width"));
+    const int w = suggested_width(msg);
+    assert_true(w > 1);
+    clef_bins_destroy(bins);
+    /* The suggested width works. */
+    assert_int_equal(clef_bins_create_linear(&bins, 2, w, L, CLEF_BINS_DL), CLEF_OK);
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, NULL, NULL), CLEF_OK);
+    assert_true(clef_coupling_binned_rcond(kb) >= CLEF_COUPLING_RCOND_MIN);
+    clef_coupling_binned_destroy(kb);
+    /* A stricter threshold rejects the same bins, naming both numbers. */
+    clef_coupling_opts o;
+    clef_coupling_opts_default(&o);
+    o.rcond_min = 0.999;
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, NULL, &o), CLEF_ENUMERIC);
+    assert_non_null(strstr(clef_last_error(), "< 0.999"));
+    clef_bins_destroy(bins);
+    clef_coupling_destroy(c);
+}
+
+static void test_singular_and_errors(void **state)
+{
+    (void)state;
+    enum { L = 64 };
+    static double wl[2 * L + 1], tr[L + 1];
+    clef_bins *bins;
+    assert_int_equal(clef_bins_create_linear(&bins, 2, 8, L, CLEF_BINS_DL), CLEF_OK);
+    clef_coupling *c;
+    clef_coupling_binned *kb;
+    /* Empty mask: W = 0 */
+    make_coupling(&c, L, wl, 2 * L);
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, NULL, NULL), CLEF_ENUMERIC);
+    assert_non_null(strstr(clef_last_error(), "mask is empty"));
+    clef_coupling_destroy(c);
+    /* Transfer zero over bin 3 */
+    cap_wl(0.0, 2 * L, wl);
+    make_coupling(&c, L, wl, 2 * L);
+    for (int l = 0; l <= L; l++)
+        tr[l] = (l >= 26 && l <= 33) ? 0.0 : 1.0;
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, tr, NULL), CLEF_ENUMERIC);
+    assert_non_null(strstr(clef_last_error(), "bin 3 (l = 26..33) has a zero column"));
+    tr[30] = -1;
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, tr, NULL), CLEF_EINVAL);
+    assert_non_null(strstr(clef_last_error(), "l = 30"));
+    tr[30] = NAN;
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, tr, NULL), CLEF_EINVAL);
+    clef_bins_destroy(bins);
+    /* Bins beyond lmax */
+    assert_int_equal(clef_bins_create_linear(&bins, 2, 8, L + 10, CLEF_BINS_DL), CLEF_OK);
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, NULL, NULL), CLEF_EINVAL);
+    assert_non_null(strstr(clef_last_error(), "above the coupling matrix lmax"));
+    assert_int_equal(clef_coupling_binned_create(&kb, NULL, bins, NULL, NULL), CLEF_EINVAL);
+    assert_int_equal(clef_coupling_binned_create(&kb, c, NULL, NULL, NULL), CLEF_EINVAL);
+    clef_bins_destroy(bins);
+    clef_coupling_destroy(c);
+    /* Bad W_l and lmax */
+    wl[5] = -1;
+    assert_int_equal(clef_coupling_create(&c, L, wl, 2 * L), CLEF_EINVAL);
+    assert_non_null(strstr(clef_last_error(), "l = 5"));
+    assert_null(c);
+    wl[5] = INFINITY;
+    assert_int_equal(clef_coupling_create(&c, L, wl, 2 * L), CLEF_EINVAL);
+    assert_int_equal(clef_coupling_create(&c, -1, wl, 2 * L), CLEF_EINVAL);
+    assert_int_equal(clef_coupling_create(&c, L, NULL, 2 * L), CLEF_EINVAL);
+    assert_int_equal(clef_coupling_create(&c, L, wl, -1), CLEF_EINVAL);
+    clef_coupling_destroy(NULL);
+    clef_coupling_binned_destroy(NULL);
+    /* Coupling width: the hemisphere's W_l falls below 1e-2 W_0 after l = 3 */
+    cap_wl(0.0, 2 * L, wl);
+    assert_int_equal(clef_coupling_width(wl, 2 * L, 1e-2), 4);
+    assert_int_equal(clef_coupling_width(NULL, 2 * L, 1e-2), 0);
+}
+
+
+/* ---- coupling cache ---- */
+
+static char warnings[8192];
+static void capture_log(void *user, int level, const char *msg)
+{
+    (void)user;
+    if (level == CLEF_LOG_WARN && strlen(warnings) + strlen(msg) + 2 < sizeof warnings) {
+        strcat(warnings, msg);
+        strcat(warnings, "\n");
+    }
+}
+
+/* Path of the single cache file of a kind ("M" or "K") in dir. */
+static void find_cache_file(const char *dir, const char *kind, char *out, size_t n)
+{
+    char cmd[2048];
+    snprintf(cmd, sizeof cmd, "ls %s/coupling-%s-*.bin", dir, kind);
+    FILE *p = popen(cmd, "r");
+    assert_non_null(p);
+    out[0] = '\0';
+    assert_non_null(fgets(out, (int)n, p));
+    out[strcspn(out, "\n")] = '\0';
+    pclose(p);
+}
+
+static size_t count_files(const char *dir)
+{
+    char cmd[2048], line[64];
+    snprintf(cmd, sizeof cmd, "ls -A %s | wc -l", dir);
+    FILE *p = popen(cmd, "r");
+    assert_non_null(p);
+    assert_non_null(fgets(line, sizeof line, p));
+    pclose(p);
+    return (size_t)atol(line);
+}
+
+static void assert_same_matrix(const clef_coupling *a, const clef_coupling *b)
+{
+    const size_t n = (size_t)clef_coupling_lmax(a) + 1;
+    assert_int_equal(clef_coupling_lmax(a), clef_coupling_lmax(b));
+    assert_memory_equal(clef_coupling_matrix(a), clef_coupling_matrix(b), n * n * sizeof(double));
+}
+
+static void test_cache_hit_and_keys(void **state)
+{
+    (void)state;
+    enum { L = 120 };
+    static double wl[2 * L + 1], wl2[2 * L + 1], tr[L + 1];
+    cap_wl(0.2, 2 * L, wl);
+    cap_wl(0.25, 2 * L, wl2);
+    const char *dir = test_path("cache-hit");
+    clef_coupling *c0, *c1, *c2;
+    int hit = -1;
+    assert_int_equal(clef_coupling_create(&c0, L, wl, 2 * L), CLEF_OK);
+    assert_int_equal(clef_coupling_create_cached(&c1, L, wl, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_int_equal(clef_coupling_create_cached(&c2, L, wl, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 1);
+    assert_same_matrix(c0, c1);
+    assert_same_matrix(c0, c2);
+    clef_coupling_destroy(c1);
+    clef_coupling_destroy(c2);
+    /* another lmax or W_l is another key */
+    assert_int_equal(clef_coupling_create_cached(&c1, L - 1, wl, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_destroy(c1);
+    assert_int_equal(clef_coupling_create_cached(&c1, L, wl2, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_destroy(c1);
+
+    /* binned: miss, then hit (which skips M), same operator */
+    clef_bins *bins, *bins2;
+    assert_int_equal(clef_bins_create_linear(&bins, 2, 10, L, CLEF_BINS_DL), CLEF_OK);
+    assert_int_equal(clef_bins_create_linear(&bins2, 2, 12, L, CLEF_BINS_DL), CLEF_OK);
+    for (int l = 0; l <= L; l++)
+        tr[l] = exp(-l / 300.0);
+    clef_coupling_binned *k0, *k1, *k2;
+    assert_int_equal(clef_coupling_binned_create(&k0, c0, bins, tr, NULL), CLEF_OK);
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins, tr, NULL, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k2, L, wl, 2 * L, bins, tr, NULL, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 1);
+    const int nb = clef_bins_count(bins);
+    assert_memory_equal(clef_coupling_binned_matrix(k0), clef_coupling_binned_matrix(k2),
+                        (size_t)nb * nb * sizeof(double));
+    assert_memory_equal(clef_coupling_binned_kinv_p(k0), clef_coupling_binned_kinv_p(k2),
+                        (size_t)nb * (L + 1) * sizeof(double));
+    clef_coupling_binned_destroy(k1);
+    clef_coupling_binned_destroy(k2);
+    /* other bins, other transfer, no transfer: misses */
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins2, tr, NULL, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_binned_destroy(k1);
+    tr[7] *= 1.0000001;
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins, tr, NULL, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_binned_destroy(k1);
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins, NULL, NULL, dir, &hit),
+        CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_binned_destroy(k1);
+    /* ill-conditioned through the cached path: the error, nothing cached */
+    clef_coupling_opts o;
+    clef_coupling_opts_default(&o);
+    o.rcond_min = 0.9999;
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins2, NULL, &o, dir, &hit),
+        CLEF_ENUMERIC);
+    assert_null(k1);
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, bins2, tr, NULL, dir, NULL),
+        CLEF_OK);
+    clef_coupling_binned_destroy(k1);
+    /* argument errors of the cached path */
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L - 20, wl, 2 * L, bins2, NULL, NULL, dir, NULL),
+        CLEF_EINVAL);
+    assert_non_null(strstr(clef_last_error(), "above the coupling matrix lmax"));
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, NULL, 2 * L, bins2, NULL, NULL, dir, NULL),
+        CLEF_EINVAL);
+    assert_int_equal(
+        clef_coupling_binned_create_cached(&k1, L, wl, 2 * L, NULL, NULL, NULL, dir, NULL),
+        CLEF_EINVAL);
+    assert_int_equal(clef_coupling_create_cached(&c1, -3, wl, 2 * L, dir, NULL), CLEF_EINVAL);
+    clef_coupling_binned_destroy(k0);
+    clef_bins_destroy(bins);
+    clef_bins_destroy(bins2);
+    clef_coupling_destroy(c0);
+}
+
+static void test_cache_corrupt_and_mismatch(void **state)
+{
+    (void)state;
+    enum { L = 100 };
+    static double wla[2 * L + 1], wlb[2 * L + 1];
+    cap_wl(0.1, 2 * L, wla);
+    cap_wl(-0.3, 2 * L, wlb);
+    const char *dir = test_path("cache-bad");
+    char fa[2048], fb[2048];
+    clef_coupling *ca, *cb, *c;
+    int hit;
+    clef_set_log(capture_log, NULL);
+    assert_int_equal(clef_coupling_create(&ca, L, wla, 2 * L), CLEF_OK);
+    assert_int_equal(clef_coupling_create(&cb, L, wlb, 2 * L), CLEF_OK);
+
+    /* Corrupted payload: one flipped byte -> warning, recomputed, rewritten. */
+    assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, dir, &hit), CLEF_OK);
+    clef_coupling_destroy(c);
+    find_cache_file(dir, "M", fa, sizeof fa);
+    FILE *f = fopen(fa, "r+b");
+    assert_non_null(f);
+    fseek(f, 184 + 8 * 5000 + 3, SEEK_SET);
+    const int byte = fgetc(f);
+    fseek(f, 184 + 8 * 5000 + 3, SEEK_SET);
+    fputc(byte ^ 0x10, f);
+    fclose(f);
+    warnings[0] = '\0';
+    assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_non_null(strstr(warnings, "corrupted (payload checksum mismatch)"));
+    assert_same_matrix(c, ca);
+    clef_coupling_destroy(c);
+    assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 1);
+    clef_coupling_destroy(c);
+
+    /* Truncated file */
+    assert_int_equal(truncate(fa, 184 + 800), 0);
+    warnings[0] = '\0';
+    assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_non_null(strstr(warnings, "wrong length"));
+    assert_same_matrix(c, ca);
+    clef_coupling_destroy(c);
+    /* Header damage: bad magic, other format version */
+    const struct {
+        long off;
+        const char *want;
+    } dmg[] = {{0, "bad magic"}, {8, "format version"}, {16, "kind"}};
+    for (size_t i = 0; i < sizeof dmg / sizeof dmg[0]; i++) {
+        f = fopen(fa, "r+b");
+        assert_non_null(f);
+        fseek(f, dmg[i].off, SEEK_SET);
+        fputc('#', f);
+        fclose(f);
+        warnings[0] = '\0';
+        assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, dir, &hit), CLEF_OK);
+        assert_int_equal(hit, 0);
+        assert_non_null(strstr(warnings, dmg[i].want));
+        assert_same_matrix(c, ca);
+        clef_coupling_destroy(c);
+    }
+
+    /* Mismatched key: the file for W_a placed under W_b's name is not used. */
+    assert_int_equal(clef_coupling_create_cached(&c, L, wlb, 2 * L, dir, &hit), CLEF_OK);
+    clef_coupling_destroy(c);
+    char cmd[4200];
+    snprintf(cmd, sizeof cmd, "ls %s/coupling-M-*.bin | grep -v %s", dir, strrchr(fa, '/') + 1);
+    FILE *p = popen(cmd, "r");
+    assert_non_null(fgets(fb, sizeof fb, p));
+    pclose(p);
+    fb[strcspn(fb, "\n")] = '\0';
+    assert_int_equal(run_cmd("cp %s %s", fa, fb), 0);
+    warnings[0] = '\0';
+    assert_int_equal(clef_coupling_create_cached(&c, L, wlb, 2 * L, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_non_null(strstr(warnings, "key mismatch"));
+    assert_same_matrix(c, cb);
+    clef_coupling_destroy(c);
+
+    /* An unusable folder: a warning, the matrix is still computed. */
+    warnings[0] = '\0';
+    const char *blocker = test_path("cache-blocker");
+    f = fopen(blocker, "w");
+    fclose(f);
+    char bad_dir[1100];
+    snprintf(bad_dir, sizeof bad_dir, "%s/sub", blocker);
+    assert_int_equal(clef_coupling_create_cached(&c, L, wla, 2 * L, bad_dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_non_null(strstr(warnings, "cannot create folder"));
+    assert_same_matrix(c, ca);
+    clef_coupling_destroy(c);
+    clef_set_log(NULL, NULL);
+    clef_coupling_destroy(ca);
+    clef_coupling_destroy(cb);
+}
+
+/* Two processes computing the same cache entry at once leave one valid
+ * file and no temporary files. */
+static void test_cache_concurrent_writers(void **state)
+{
+    (void)state;
+    enum { L = 400, NCHILD = 3, ROUNDS = 4 };
+    static double wl[2 * L + 1];
+    cap_wl(0.05, 2 * L, wl);
+    const char *dir = test_path("cache-race");
+    int go[2];
+    assert_int_equal(pipe(go), 0);
+    pid_t pid[NCHILD];
+    for (int i = 0; i < NCHILD; i++) {
+        pid[i] = fork();
+        assert_true(pid[i] >= 0);
+        if (pid[i] == 0) {
+            close(go[1]);
+            char x;
+            if (read(go[0], &x, 1) != 0)
+                _exit(3);
+            /* Each round removes the entry and recomputes it, so the
+             * writers overlap again and again. */
+            int bad = 0;
+            for (int r = 0; r < ROUNDS; r++) {
+                clef_coupling *c;
+                char cmd[1200];
+                snprintf(cmd, sizeof cmd, "rm -f %s/coupling-M-*.bin", dir);
+                if (r % 2 == i % 2 && system(cmd) != 0)
+                    bad = 1;
+                if (clef_coupling_create_cached(&c, L, wl, 2 * L, dir, NULL) != CLEF_OK)
+                    bad = 1;
+                clef_coupling_destroy(c);
+            }
+            _exit(bad);
+        }
+    }
+    close(go[0]);
+    close(go[1]); /* releases all children at once */
+    for (int i = 0; i < NCHILD; i++) {
+        int st;
+        assert_int_equal(waitpid(pid[i], &st, 0), pid[i]);
+        assert_true(WIFEXITED(st) && WEXITSTATUS(st) == 0);
+    }
+    /* Either the last writer's file or nothing (a child removed it last);
+     * never a temporary file, and a present file is valid. */
+    const size_t nfiles = count_files(dir);
+    assert_true(nfiles <= 1);
+    int hit;
+    clef_coupling *c, *ref;
+    warnings[0] = '\0';
+    clef_set_log(capture_log, NULL);
+    assert_int_equal(clef_coupling_create_cached(&c, L, wl, 2 * L, dir, &hit), CLEF_OK);
+    clef_set_log(NULL, NULL);
+    assert_string_equal(warnings, "");
+    assert_int_equal(hit, nfiles == 1);
+    assert_int_equal(clef_coupling_create(&ref, L, wl, 2 * L), CLEF_OK);
+    assert_same_matrix(c, ref);
+    assert_int_equal(count_files(dir), 1);
+    clef_coupling_destroy(c);
+    clef_coupling_destroy(ref);
+}
+
+static void test_cache_dir(void **state)
+{
+    (void)state;
+    char buf[4096];
+    char *saved[3];
+    const char *names[3] = {"CLEF_CACHE_DIR", "XDG_CACHE_HOME", "HOME"};
+    for (int i = 0; i < 3; i++) {
+        const char *v = getenv(names[i]);
+        saved[i] = v ? strdup(v) : NULL;
+    }
+    setenv("CLEF_CACHE_DIR", "/tmp/c1", 1);
+    setenv("XDG_CACHE_HOME", "/tmp/x", 1);
+    setenv("HOME", "/tmp/h", 1);
+    assert_int_equal(clef_coupling_cache_dir("/tmp/arg", buf, sizeof buf), CLEF_OK);
+    assert_string_equal(buf, "/tmp/arg");
+    assert_int_equal(clef_coupling_cache_dir(NULL, buf, sizeof buf), CLEF_OK);
+    assert_string_equal(buf, "/tmp/c1");
+    unsetenv("CLEF_CACHE_DIR");
+    assert_int_equal(clef_coupling_cache_dir("", buf, sizeof buf), CLEF_OK);
+    assert_string_equal(buf, "/tmp/x/clef");
+    unsetenv("XDG_CACHE_HOME");
+    assert_int_equal(clef_coupling_cache_dir(NULL, buf, sizeof buf), CLEF_OK);
+    assert_string_equal(buf, "/tmp/h/.cache/clef");
+    unsetenv("HOME");
+    assert_int_equal(clef_coupling_cache_dir(NULL, buf, sizeof buf), CLEF_EINVAL);
+    assert_non_null(strstr(clef_last_error(), "CLEF_CACHE_DIR"));
+    assert_int_equal(clef_coupling_cache_dir("/tmp/arg", buf, 4), CLEF_EINVAL);
+    for (int i = 0; i < 3; i++) {
+        if (saved[i])
+            setenv(names[i], saved[i], 1);
+        free(saved[i]);
+    }
+}
+int main(void)
+{
+    const struct CMUnitTest tests[] = {
+        cmocka_unit_test(test_cache_concurrent_writers),
+        cmocka_unit_test(test_full_sky_identity),
+        cmocka_unit_test(test_hemisphere),
+        cmocka_unit_test(test_row_sums_and_symmetry),
+        cmocka_unit_test(test_vs_direct_sum),
+        cmocka_unit_test(test_binned_recovers_band_powers),
+        cmocka_unit_test(test_ill_conditioned),
+        cmocka_unit_test(test_singular_and_errors),
+        cmocka_unit_test(test_cache_hit_and_keys),
+        cmocka_unit_test(test_cache_corrupt_and_mismatch),
+        cmocka_unit_test(test_cache_dir),
+    };
+    return cmocka_run_group_tests(tests, NULL, NULL);
+}
