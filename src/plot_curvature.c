@@ -308,8 +308,6 @@ int clef_plot_curvature(const clef_plot_geometry *g, const clef_plot_curvature_o
         o = &d;
     clef_plot_frame f;
     CLEF_TRY(clef_plot_curvature_layout(g, o, &f));
-    int format;
-    CLEF_TRY(clef_plot_format_from_path(path, &format));
     plot_canvas c;
     CLEF_TRY(plot_canvas_open(&c, path, f.width, f.height, 0));
     cairo_t *cr = c.cr;

@@ -380,6 +380,7 @@ int clef_plot_map(const clef_map *map, const clef_map *mask, const clef_plot_map
     clef_plot_map_frame f;
     CLEF_TRY(check_maps(map, mask));
     CLEF_TRY(clef_plot_map_layout(o, &f));
+    /* Refuse an unknown extension before the sky is sampled. */
     int format;
     CLEF_TRY(clef_plot_format_from_path(path, &format));
 

@@ -324,8 +324,6 @@ int clef_plot_spectrum(const clef_bandpowers *bp, const clef_plot_spectrum_opts 
         o = &d;
     clef_plot_frame f;
     CLEF_TRY(clef_plot_spectrum_layout(bp, o, &f));
-    int format;
-    CLEF_TRY(clef_plot_format_from_path(path, &format));
     plot_canvas c;
     CLEF_TRY(plot_canvas_open(&c, path, f.width, f.height, 0));
     cairo_t *cr = c.cr;
