@@ -706,6 +706,70 @@ static void test_map_errors(void **state)
     free_map(mask);
 }
 
+/* Text of a PDF page by pdftotext (poppler-utils); cairo embeds fonts with
+ * a Unicode map, so the drawn labels come back as text. */
+static char *pdf_text(const char *pdf)
+{
+    const char *txt = test_path("pdftext.txt");
+    if (run_cmd("pdftotext %s %s", pdf, txt) != 0)
+        return NULL;
+    FILE *f = fopen(txt, "r");
+    if (!f)
+        return NULL;
+    char *buf = calloc(1, 65536);
+    const size_t n = fread(buf, 1, 65535, f);
+    buf[n] = '\0';
+    fclose(f);
+    return buf;
+}
+
+static void test_titles_and_captions(void **state)
+{
+    (void)state;
+    /* Band powers: title from the table's metadata (docs/formats.md keys). */
+    clef_bandpowers *bp;
+    assert_int_equal(clef_bandpowers_alloc(&bp, 4, 0), CLEF_OK);
+    for (int b = 0; b < 4; b++) {
+        bp->l_lo[b] = 2 + 50 * b;
+        bp->l_hi[b] = 51 + 50 * b;
+        bp->l_eff[b] = 26.5 + 50 * b;
+        bp->dl[b] = 1000 + 100 * b;
+        bp->dl_err[b] = 50;
+    }
+    assert_int_equal(clef_bandpowers_meta_text(bp, "MAPFILE", "maps/sky.fits", NULL), CLEF_OK);
+    assert_int_equal(clef_bandpowers_meta_number(bp, "NSIDE", 512, NULL), CLEF_OK);
+    const char *pdf = test_path("titles.pdf");
+    clef_plot_spectrum_opts so = {0};
+    so.source = "tables/bp.fits";
+    assert_int_equal(clef_plot_spectrum(bp, &so, pdf), CLEF_OK);
+    char *t = pdf_text(pdf);
+    assert_non_null(t);
+    assert_non_null(strstr(t, "sky.fits"));
+    assert_non_null(strstr(t, "nside 512"));
+    assert_null(strstr(t, "bp.fits"));
+    free(t);
+    clef_bandpowers_free(bp);
+    /* Without metadata: the file name. */
+    clef_bandpowers *plain = make_table(4, 2, 50);
+    assert_int_equal(clef_plot_spectrum(plain, &so, pdf), CLEF_OK);
+    t = pdf_text(pdf);
+    assert_non_null(t);
+    assert_non_null(strstr(t, "bp.fits"));
+    free(t);
+    free_table(plain);
+
+    /* Map: the coordinate system and the longitude direction in the caption. */
+    clef_map *m = make_map(4);
+    strcpy(m->coordsys, "E");
+    assert_int_equal(clef_plot_map(m, NULL, NULL, pdf), CLEF_OK);
+    t = pdf_text(pdf);
+    assert_non_null(t);
+    assert_non_null(strstr(t, "Ecliptic"));
+    assert_non_null(strstr(t, "increasing to the left"));
+    free(t);
+    free_map(m);
+}
+
 /* ----------------------------------------------------------- curvature */
 
 static const char *write_text(const char *name, const char *text)
@@ -773,6 +837,10 @@ static void test_curvature(void **state)
     assert_true(f.xmin <= 0 && f.xmax >= 0);
     assert_int_equal(clef_plot_curvature(g, NULL, pdf), CLEF_OK);
     check_pdf(pdf, 800, 500);
+    char *t = pdf_text(pdf);
+    assert_non_null(t);
+    assert_non_null(strstr(t, "Curvature: flat"));
+    free(t);
     clef_plot_geometry_free(g);
 }
 
@@ -860,6 +928,7 @@ int main(void)
         cmocka_unit_test(test_map_missing_and_mask),
         cmocka_unit_test(test_map_svg_pdf),
         cmocka_unit_test(test_map_errors),
+        cmocka_unit_test(test_titles_and_captions),
         cmocka_unit_test(test_curvature),
         cmocka_unit_test(test_curvature_errors),
     };
