@@ -87,6 +87,22 @@ static int finite_all(const clef_cosmo_params *p)
            isfinite(p->m_nu) && isfinite(p->y_he);
 }
 
+/* E^2(x) = Omega_r x^4 + Omega_m x^3 + Omega_k x^2 + Omega_L, x = 1 + z,
+ * equals 1 at x = 1 and grows without bound; it can dip below zero only at
+ * its minimum, the positive root of 4 Omega_r x^2 + 3 Omega_m x + 2 Omega_k
+ * = 0 (written in the cancellation-free form).  Returns 1 if H^2 <= 0 at
+ * some z >= 0 and sets *z_at. */
+static int bounces(const clef_cosmo_densities *d, double *z_at)
+{
+    if (d->Omega_k >= 0)
+        return 0;
+    const double x = -4.0 * d->Omega_k /
+                     (3.0 * d->Omega_m + sqrt(9.0 * d->Omega_m * d->Omega_m - 32.0 * d->Omega_r * d->Omega_k));
+    const double e2 = ((d->Omega_r * x + d->Omega_m) * x + d->Omega_k) * x * x + d->Omega_lambda;
+    *z_at = x - 1;
+    return x > 1 && !(e2 > 0);
+}
+
 int clef_cosmo_check(const clef_cosmo_params *p, clef_cosmo_densities *dout)
 {
     if (!p)
@@ -116,20 +132,12 @@ int clef_cosmo_check(const clef_cosmo_params *p, clef_cosmo_densities *dout)
                   "Omega_k = %g with Omega_m = %g gives Omega_Lambda = %g < 0 "
                   "(negative dark-energy density)",
                   p->omega_k, d.Omega_m, d.Omega_lambda);
-    /* E^2(x) = Omega_r x^4 + Omega_m x^3 + Omega_k x^2 + Omega_L, x = 1 + z,
-     * equals 1 at x = 1 and grows without bound; it can dip below zero only
-     * at its minimum, the positive root of 4 Omega_r x^2 + 3 Omega_m x +
-     * 2 Omega_k = 0 (written in the cancellation-free form). */
-    if (d.Omega_k < 0) {
-        const double x = -4.0 * d.Omega_k /
-                         (3.0 * d.Omega_m + sqrt(9.0 * d.Omega_m * d.Omega_m - 32.0 * d.Omega_r * d.Omega_k));
-        const double e2 = ((d.Omega_r * x + d.Omega_m) * x + d.Omega_k) * x * x + d.Omega_lambda;
-        if (x > 1 && !(e2 > 0))
-            CLEF_FAIL(CLEF_EINVAL,
-                      "Omega_k = %g, Omega_Lambda = %g: H^2 <= 0 at z = %g (a bouncing "
-                      "universe, no big bang)",
-                      d.Omega_k, d.Omega_lambda, x - 1);
-    }
+    double z_bounce;
+    if (bounces(&d, &z_bounce))
+        CLEF_FAIL(CLEF_EINVAL,
+                  "Omega_k = %g, Omega_Lambda = %g: H^2 <= 0 at z = %g (a bouncing "
+                  "universe, no big bang)",
+                  d.Omega_k, d.Omega_lambda, z_bounce);
     if (dout)
         *dout = d;
     return CLEF_OK;
@@ -176,8 +184,9 @@ static double f_diffusion(double a, void *data)
     return a * a * g / a2e(q->d, a);
 }
 
-static int cosmo_integrate(const clef_cosmo_densities *d, double r0, int kind, double a_lo,
-                           double a_hi, clef_cosmo_work *w, double *out)
+/* The integral itself: returns GSL's status, records nothing. */
+static int integrate_raw(const clef_cosmo_densities *d, double r0, int kind, double a_lo,
+                         double a_hi, clef_cosmo_work *w, double *out)
 {
     /* GSL's default handler aborts; the library must return errors. */
     static pthread_once_t once = PTHREAD_ONCE_INIT;
@@ -185,8 +194,14 @@ static int cosmo_integrate(const clef_cosmo_densities *d, double r0, int kind, d
     integrand_data q = {d, r0};
     gsl_function f = {kind == SOUND ? f_sound : kind == DIFFUSION ? f_diffusion : f_light, &q};
     double err;
-    const int gs = gsl_integration_qag(&f, a_lo, a_hi, 0.0, CLEF_COSMO_EPSREL, WS_INTERVALS,
-                                       GSL_INTEG_GAUSS21, w->ws, out, &err);
+    return gsl_integration_qag(&f, a_lo, a_hi, 0.0, CLEF_COSMO_EPSREL, WS_INTERVALS,
+                               GSL_INTEG_GAUSS21, w->ws, out, &err);
+}
+
+static int cosmo_integrate(const clef_cosmo_densities *d, double r0, int kind, double a_lo,
+                           double a_hi, clef_cosmo_work *w, double *out)
+{
+    const int gs = integrate_raw(d, r0, kind, a_lo, a_hi, w, out);
     if (gs != GSL_SUCCESS)
         CLEF_FAIL(CLEF_ENUMERIC, "distance integral over a in [%g, %g] did not converge: %s",
                   a_lo, a_hi, gsl_strerror(gs));
@@ -250,6 +265,14 @@ int clef_cosmo_baryon_loading(const clef_cosmo_params *p, double z, double *r)
     CLEF_TRY(clef_cosmo_check(p, &d));
     CLEF_TRY(check_z(z));
     *r = 3.0 * p->omega_b / (4.0 * d.omega_gamma * (1.0 + z));
+    return CLEF_OK;
+}
+
+int clef_cosmo_sound_speed(const clef_cosmo_params *p, double z, double *cs)
+{
+    double r;
+    CLEF_TRY(clef_cosmo_baryon_loading(p, z, &r));
+    *cs = 1.0 / sqrt(3.0 * (1.0 + r));
     return CLEF_OK;
 }
 
@@ -373,6 +396,42 @@ int clef_cosmo_conformal_time(const clef_cosmo_params *p, double z, double *eta)
     return CLEF_OK;
 }
 
+/* First-peak phase shift of Doran & Lilley 2002, MNRAS 330, 965, in the
+ * one-parameter power-law form phi_1 = 0.267 (r_* / 0.3)^0.1 with
+ * r_* = rho_r / rho_m at z_* (METHODS.md section 8; from memory there). */
+static double phase_shift(double r_star) { return 0.267 * pow(r_star / 0.3, 0.1); }
+
+int clef_cosmo_peak_quiet(const clef_cosmo_params *p, clef_cosmo_work *w, double *l1,
+                          double *phi1)
+{
+    clef_cosmo_densities d;
+    densities_of(p, &d);
+    double zb;
+    if (d.Omega_lambda < 0 || bounces(&d, &zb))
+        return 1;
+    const double zs = zstar_hs96(p->omega_b, d.omega_m);
+    const double as = 1.0 / (1.0 + zs);
+    const double r0 = 3.0 * p->omega_b / (4.0 * d.omega_gamma);
+    double rs, chi;
+    if (integrate_raw(&d, r0, SOUND, 0.0, as, w, &rs) != GSL_SUCCESS ||
+        integrate_raw(&d, 0.0, LIGHT, as, 1.0, w, &chi) != GSL_SUCCESS)
+        return -1;
+    double dm = chi; /* in units of c/H_0, as rs */
+    if (d.Omega_k > 0) {
+        dm = sinh(sqrt(d.Omega_k) * chi) / sqrt(d.Omega_k);
+    } else if (d.Omega_k < 0) {
+        const double arg = sqrt(-d.Omega_k) * chi;
+        if (arg >= M_PI)
+            return 1;
+        dm = sin(arg) / sqrt(-d.Omega_k);
+    }
+    const double phi = phase_shift(d.omega_r * (1.0 + zs) / d.omega_m);
+    *l1 = M_PI * dm / rs * (1.0 - phi);
+    if (phi1)
+        *phi1 = phi;
+    return 0;
+}
+
 int clef_cosmo_acoustic_w(const clef_cosmo_params *p, clef_cosmo_work *w, clef_cosmo_acoustic *a)
 {
     clef_cosmo_densities d;
@@ -390,10 +449,7 @@ int clef_cosmo_acoustic_w(const clef_cosmo_params *p, clef_cosmo_work *w, clef_c
     a->l_a = M_PI / a->theta_star;
     a->r_star = d.omega_r * x / d.omega_m;
     a->baryon_r = 3.0 * p->omega_b / (4.0 * d.omega_gamma * x);
-    /* First-peak phase shift of Doran & Lilley 2002, MNRAS 330, 965, in the
-     * one-parameter power-law form phi_1 = 0.267 (r_* / 0.3)^0.1 with
-     * r_* = rho_r / rho_m at z_* (METHODS.md section 8; from memory there). */
-    a->phi_1 = 0.267 * pow(a->r_star / 0.3, 0.1);
+    a->phi_1 = phase_shift(a->r_star);
     a->l_1 = a->l_a * (1.0 - a->phi_1);
     return CLEF_OK;
 }

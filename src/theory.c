@@ -75,6 +75,9 @@ static double model_dl(const model *m, double l)
     const double q = l / m->l_join;
     const double w = 1.0 / (1.0 + q * q * q * q);
     const double d = w * sw + (1.0 - w) * ac;
+    /* The closed form is a truncated expansion and nothing forbids O < -N
+     * in principle; a power spectrum cannot be negative.  (Not reached for
+     * the tested parameter range up to l = 8000.) */
     return d > 0 ? d : 0.0;
 }
 
@@ -136,6 +139,11 @@ static int build_model(const clef_cosmo_params *p, clef_theory_info *in, model *
      * model's multipole l D_M(flat) / D_M. */
     clef_cosmo_params flat = *p;
     flat.omega_k = 0.0;
+    /* With Omega_m + Omega_r > 1 no flat model with Lambda >= 0 has this h;
+     * then take the flat one with the same physical densities and no Lambda
+     * (h^2 = omega_m + omega_r), which joins continuously at the boundary. */
+    if (d.Omega_m + d.Omega_r > 1.0)
+        flat.h = sqrt(d.omega_m + d.omega_r);
     double chi_flat;
     clef_cosmo_densities dflat;
     CLEF_CHECK(clef_cosmo_check(&flat, &dflat));

@@ -64,6 +64,16 @@ static int parse_columns(const char *path, long line_no, char *spec, layout *lay
     return CLEF_OK;
 }
 
+/* The "columns:" tag in a comment line, in any letter case, or NULL. */
+static char *find_columns_tag(char *s)
+{
+    static const char tag[] = "columns:";
+    for (; *s; s++)
+        if (!strncasecmp(s, tag, sizeof tag - 1))
+            return s;
+    return NULL;
+}
+
 /* Split a data line into numbers; returns the count or -1 on a bad token. */
 static int split_numbers(char *s, double *v, int nmax)
 {
@@ -99,9 +109,7 @@ static int read_body(FILE *f, const char *path, int lmax, double *cl, unsigned c
         if (!*s)
             continue;
         if (*s == '#') {
-            char *c = strstr(s, "columns:");
-            if (!c)
-                c = strstr(s, "COLUMNS:");
+            char *c = find_columns_tag(s);
             if (c)
                 CLEF_CHECK(parse_columns(path, line_no, c + 8, &lay));
             continue;
@@ -225,9 +233,9 @@ static int write_text(const char *tmp, const char *path, int lmax, const double 
     fprintf(f, "# CMB temperature power spectrum written by clef %s\n", CLEF_VERSION);
     if (p)
         fprintf(f,
-                "# model: analytic (docs/theory.md); omega_b=%.17g omega_c=%.17g h=%.17g "
-                "Omega_k=%.17g n_s=%.17g ln10^10A_s=%.17g tau=%.17g T_cmb=%.17g N_eff=%.17g "
-                "m_nu=%.17g Y_He=%.17g\n",
+                "# model: analytic (docs/theory.md); omega_b=%.10g omega_c=%.10g h=%.10g "
+                "Omega_k=%.10g n_s=%.10g ln10^10A_s=%.10g tau=%.10g T_cmb=%.10g N_eff=%.10g "
+                "m_nu=%.10g Y_He=%.10g\n",
                 p->omega_b, p->omega_c, p->h, p->omega_k, p->n_s, p->ln10_as, p->tau, p->t_cmb,
                 p->n_eff, p->m_nu, p->y_he);
     fprintf(f, "# units: uK^2 (thermodynamic); D_l = l(l+1) C_l / 2pi\n");

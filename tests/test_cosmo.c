@@ -105,6 +105,14 @@ static void test_acoustic_planck(void **state)
     check_rel(a.l_a, 301.76, 3e-3, "l_A from Planck theta_*");
     /* Baryon loading R ~ 0.62 at z_* (METHODS.md s.10 [D]). */
     check_abs(a.baryon_r, 0.62, 0.01, "METHODS.md s.10 R(z_*)");
+    /* c_s = c / sqrt(3 (1 + R)) ~ 0.45 c at z_* (R ~ 0.62), METHODS.md s.10 [D]. */
+    double cs;
+    assert_int_equal(clef_cosmo_sound_speed(&p, a.z_star, &cs), CLEF_OK);
+    check_abs(cs, 0.45, 0.005, "METHODS.md s.10 sound speed at z_*");
+    check_rel(cs, 1.0 / sqrt(3.0 * (1.0 + a.baryon_r)), 1e-15, "c_s from R");
+    /* Without baryons c_s -> c / sqrt(3) = 0.577 c (METHODS.md s.10 [D]). */
+    assert_int_equal(clef_cosmo_sound_speed(&p, 1e12, &cs), CLEF_OK);
+    check_rel(cs, 1.0 / sqrt(3.0), 1e-9, "radiation-fluid sound speed");
     /* r_* = rho_r / rho_m ~ 0.32 and phi_1 ~ 0.269 (METHODS.md s.8 [D]). */
     check_abs(a.r_star, 0.32, 0.01, "METHODS.md s.8 r_*");
     check_abs(a.phi_1, 0.269, 0.002, "METHODS.md s.8 phi_1");
@@ -269,6 +277,7 @@ static void test_errors(void **state)
     assert_int_equal(clef_cosmo_sound_horizon(&p, -1.0, &v), CLEF_EINVAL);
     assert_int_equal(clef_cosmo_comoving_distance(&p, INFINITY, &v), CLEF_EINVAL);
     assert_int_equal(clef_cosmo_baryon_loading(&p, -2.0, &v), CLEF_EINVAL);
+    assert_int_equal(clef_cosmo_sound_speed(&p, -2.0, &v), CLEF_EINVAL);
     assert_int_equal(clef_cosmo_damping_scale(&p, NAN, &v), CLEF_EINVAL);
     assert_int_equal(clef_cosmo_conformal_time(&p, -3.0, &v), CLEF_EINVAL);
 }

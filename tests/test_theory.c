@@ -123,6 +123,44 @@ static void test_curvature(void **state)
     }
 }
 
+/* Over the documented range of validity (docs/theory.md) the model exists,
+ * is finite and non-negative, and its first peak is the Doran & Lilley l_1
+ * (the calibration target, here checked to converge). */
+static void test_parameter_range(void **state)
+{
+    (void)state;
+    const double ob[] = {0.015, 0.035}, oc[] = {0.05, 0.25}, hh[] = {0.5, 0.9};
+    const double ok[] = {-0.2, 0.0, 0.2};
+    double cl[1501];
+    for (int a = 0; a < 2; a++)
+        for (int b = 0; b < 2; b++)
+            for (int c = 0; c < 2; c++)
+                for (int k = 0; k < 3; k++) {
+                    clef_cosmo_params p = planck();
+                    p.omega_b = ob[a];
+                    p.omega_c = oc[b];
+                    p.h = hh[c];
+                    p.omega_k = ok[k];
+                    if (clef_cosmo_check(&p, NULL) != CLEF_OK)
+                        continue; /* Omega_Lambda < 0: not a model */
+                    assert_int_equal(clef_theory_cl(&p, 1500, cl), CLEF_OK);
+                    for (int l = 2; l <= 1500; l++)
+                        assert_true(isfinite(cl[l]) && cl[l] >= 0);
+                    double lpk;
+                    clef_cosmo_acoustic ac;
+                    assert_int_equal(clef_theory_first_peak(&p, &lpk, NULL), CLEF_OK);
+                    assert_int_equal(clef_cosmo_acoustic_scale(&p, &ac), CLEF_OK);
+                    check_rel(lpk, ac.l_1, 1e-5, "model peak at the Doran & Lilley l_1");
+                }
+    /* A closed model with Omega_m > 1 (its flat counterpart has no
+     * Lambda >= 0): still a model, peak below the flat one. */
+    clef_cosmo_params p = planck();
+    p.h = 0.35;
+    p.omega_k = -0.3;
+    assert_int_equal(clef_cosmo_check(&p, NULL), CLEF_OK);
+    assert_int_equal(clef_theory_cl(&p, 1500, cl), CLEF_OK);
+}
+
 static void write_file(const char *path, const char *text)
 {
     FILE *f = fopen(path, "w");
@@ -157,7 +195,7 @@ static void test_file_roundtrip(void **state)
     /* A user's D_l file with comma separators and extra columns:
      * C_l = 2 pi D_l / (l (l+1)). */
     const char *dpath = test_path("user_dl.csv");
-    write_file(dpath, "# my spectrum\n# columns: l, D_l, err\n2, 1000, 5\n3, 900, 5\n\n4, 800.5, 5\n");
+    write_file(dpath, "# my spectrum\n# Columns: L, D_L, err\n2, 1000, 5\n3, 900, 5\n\n4, 800.5, 5\n");
     double c4[5];
     assert_int_equal(clef_theory_read_cl(dpath, 4, c4, NULL), CLEF_OK);
     check_rel(c4[2], 2 * M_PI * 1000 / 6.0, 1e-15, "D_l -> C_l");
@@ -240,6 +278,7 @@ int main(void)
         cmocka_unit_test(test_planck_spectrum),
         cmocka_unit_test(test_first_peak),
         cmocka_unit_test(test_curvature),
+        cmocka_unit_test(test_parameter_range),
         cmocka_unit_test(test_file_roundtrip),
         cmocka_unit_test(test_file_errors),
         cmocka_unit_test(test_model_errors),

@@ -19,10 +19,10 @@
  * Errors: every function validates the parameters (clef_cosmo_check) and
  * returns CLEF_EINVAL for unphysical ones; CLEF_ENUMERIC if an integral
  * does not converge; CLEF_ENOMEM.
- * Thread safety: all functions are reentrant.  The first call switches
- * GSL's abort-on-error handler off (gsl_set_error_handler_off) because the
- * library must never abort; call any clef_cosmo function once before
- * starting threads, or switch it off yourself.
+ * Thread safety: all functions are reentrant.  The first integral switches
+ * GSL's abort-on-error handler off process-wide (gsl_set_error_handler_off,
+ * once, under pthread_once) because the library must never abort; a caller
+ * relying on GSL's default handler elsewhere should know this.
  */
 #ifndef CLEF_COSMO_H
 #define CLEF_COSMO_H
@@ -87,6 +87,10 @@ int clef_cosmo_zstar(const clef_cosmo_params *p, double *zstar);
 
 /* Baryon loading R(z) = 3 rho_b / (4 rho_gamma) = 3 omega_b / (4 omega_gamma (1+z)). */
 int clef_cosmo_baryon_loading(const clef_cosmo_params *p, double z, double *r);
+
+/* Sound speed of the photon-baryon fluid in units of c:
+ * c_s / c = 1 / sqrt(3 (1 + R(z))). */
+int clef_cosmo_sound_speed(const clef_cosmo_params *p, double z, double *cs);
 
 /* Comoving sound horizon r_s(z) = int_z^inf c_s dz' / H(z'), with
  * c_s = c / sqrt(3 (1 + R)), in Mpc. */

@@ -1,0 +1,424 @@
+/* Curvature from the first acoustic peak: grid posterior of Omega_k,
+ * marginalised over Gaussian priors on omega_b, omega_c and h by seeded
+ * Monte Carlo (include/clef/geometry.h, docs/geometry.md). */
+#define _POSIX_C_SOURCE 200809L
+#define _DEFAULT_SOURCE
+#include "clef/geometry.h"
+
+#include <math.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include <gsl/gsl_randist.h>
+#include <gsl/gsl_rng.h>
+#include <gsl/gsl_spline.h>
+
+#include "core_impl.h"
+#include "cosmo_impl.h"
+
+/* A posterior above this fraction of its peak at a grid edge means the
+ * grid cuts it off. */
+#define EDGE_FRACTION 1e-3
+/* Draws allowed per sample to land in the physical region of the priors. */
+#define MAX_REDRAWS 1000
+
+void clef_geometry_opts_default(clef_geometry_opts *o)
+{
+    memset(o, 0, sizeof *o);
+    /* Planck 2018 VI (A&A 641, A6) abstract: omega_b = 0.0224 +- 0.0001,
+     * omega_c = 0.120 +- 0.001, H_0 = 67.4 +- 0.5; errors doubled because
+     * those fits assume a flat universe. */
+    o->omega_b = (clef_geometry_prior){0.0224, 0.0002};
+    o->omega_c = (clef_geometry_prior){0.120, 0.002};
+    o->h = (clef_geometry_prior){0.674, 0.010};
+    o->model_err = 0.005;
+    o->omega_k_min = -0.3;
+    o->omega_k_max = 0.3;
+    o->ngrid = 1201;
+    o->nsamples = 2000;
+    o->nnodes = 21;
+    o->seed = 1;
+    clef_cosmo_params_planck2018(&o->base);
+}
+
+const char *clef_geometry_class_name(int c)
+{
+    return c < 0 ? "closed" : c > 0 ? "open" : "flat";
+}
+
+void clef_geometry_result_free(clef_geometry_result *r)
+{
+    if (!r)
+        return;
+    free(r->omega_k);
+    free(r->posterior);
+    free(r);
+}
+
+static int check_prior(const char *name, const clef_geometry_prior *pr)
+{
+    if (!isfinite(pr->mean) || !isfinite(pr->sigma) || pr->sigma < 0)
+        CLEF_FAIL(CLEF_EINVAL, "prior on %s: mean %g, sigma %g (sigma must be finite and >= 0)",
+                  name, pr->mean, pr->sigma);
+    return CLEF_OK;
+}
+
+static int check_opts(const clef_geometry_opts *o)
+{
+    if (!(o->l_peak > 0 && isfinite(o->l_peak)))
+        CLEF_FAIL(CLEF_EINVAL, "l_peak = %g: must be a positive multipole", o->l_peak);
+    if (!(o->l_peak_err > 0 && isfinite(o->l_peak_err)))
+        CLEF_FAIL(CLEF_EINVAL, "l_peak error = %g: must be > 0", o->l_peak_err);
+    CLEF_TRY(check_prior("omega_b", &o->omega_b));
+    CLEF_TRY(check_prior("omega_c", &o->omega_c));
+    CLEF_TRY(check_prior("h", &o->h));
+    if (!(o->model_err >= 0 && o->model_err < 1))
+        CLEF_FAIL(CLEF_EINVAL, "model error = %g: must be in [0, 1)", o->model_err);
+    if (!(o->omega_k_min < o->omega_k_max) || !isfinite(o->omega_k_min) ||
+        !isfinite(o->omega_k_max) || o->omega_k_min < -5 || o->omega_k_max > 5)
+        CLEF_FAIL(CLEF_EINVAL, "Omega_k grid [%g, %g]: need min < max within [-5, 5]",
+                  o->omega_k_min, o->omega_k_max);
+    if (o->ngrid < 11 || o->ngrid > 1000000)
+        CLEF_FAIL(CLEF_EINVAL, "Omega_k grid points = %d: must be in [11, 1000000]", o->ngrid);
+    if (o->nsamples < 1 || o->nsamples > 10000000)
+        CLEF_FAIL(CLEF_EINVAL, "prior samples = %d: must be in [1, 10000000]", o->nsamples);
+    if (o->nnodes < 5 || o->nnodes > 100000)
+        CLEF_FAIL(CLEF_EINVAL, "spline nodes = %d: must be in [5, 100000]", o->nnodes);
+    /* The prior means must make a valid cosmology (ranges, not curvature). */
+    clef_cosmo_params p = o->base;
+    p.omega_b = o->omega_b.mean;
+    p.omega_c = o->omega_c.mean;
+    p.h = o->h.mean;
+    p.omega_k = 0.0;
+    CLEF_TRY(clef_cosmo_check(&p, NULL));
+    return CLEF_OK;
+}
+
+/* One Gaussian draw inside (lo, hi]; the prior is truncated there. */
+static double draw(gsl_rng *rng, const clef_geometry_prior *pr, double lo, double hi)
+{
+    if (pr->sigma == 0)
+        return pr->mean;
+    for (int i = 0; i < MAX_REDRAWS; i++) {
+        const double v = pr->mean + gsl_ran_gaussian_ziggurat(rng, pr->sigma);
+        if (v > lo && v <= hi)
+            return v;
+    }
+    return NAN;
+}
+
+/* Model l_1 at the coarse nodes for every sample, in parallel; node values
+ * are NAN where the model is unphysical. */
+static int node_table(const clef_geometry_opts *o, const double *samples, const double *nodes,
+                      double *table)
+{
+    const int ns = o->nsamples, nn = o->nnodes;
+    int fail = 0;
+#pragma omp parallel reduction(| : fail)
+    {
+        clef_cosmo_work w = {0};
+        if (clef_cosmo_work_alloc(&w) != CLEF_OK)
+            fail |= 1;
+#pragma omp for schedule(dynamic, 8)
+        for (int i = 0; i < ns; i++) {
+            clef_cosmo_params p = o->base;
+            p.omega_b = samples[3 * i];
+            p.omega_c = samples[3 * i + 1];
+            p.h = samples[3 * i + 2];
+            for (int j = 0; j < nn; j++) {
+                double l1 = NAN;
+                if (w.ws && !isnan(p.omega_b)) {
+                    p.omega_k = nodes[j];
+                    const int st = clef_cosmo_peak_quiet(&p, &w, &l1, NULL);
+                    if (st < 0)
+                        fail |= 2;
+                    if (st != 0)
+                        l1 = NAN;
+                }
+                table[(size_t)i * nn + j] = l1;
+            }
+        }
+        clef_cosmo_work_free(&w);
+    }
+    if (fail & 1)
+        CLEF_FAIL(CLEF_ENOMEM, "curvature inference: cannot allocate integration work spaces");
+    if (fail & 2)
+        CLEF_FAIL(CLEF_ENUMERIC, "curvature inference: a distance integral did not converge");
+    return CLEF_OK;
+}
+
+/* For one sample, the longest run of valid nodes [*j0, *j1]. */
+static void valid_run(const double *row, int nn, int *j0, int *j1)
+{
+    int best0 = 0, best1 = -1;
+    for (int j = 0; j < nn;) {
+        if (isnan(row[j])) {
+            j++;
+            continue;
+        }
+        int k = j;
+        while (k + 1 < nn && !isnan(row[k + 1]))
+            k++;
+        if (k - j > best1 - best0) {
+            best0 = j;
+            best1 = k;
+        }
+        j = k + 1;
+    }
+    *j0 = best0;
+    *j1 = best1;
+}
+
+/* Variance of the l_1 residual: measurement plus model error. */
+static double residual_var(const clef_geometry_opts *o, double l1)
+{
+    return o->l_peak_err * o->l_peak_err + o->model_err * o->model_err * l1 * l1;
+}
+
+/* Gaussian chi^2 of a model l_1; the log(var) term matters only when the
+ * model error (proportional to l_1) varies across the grid. */
+static double chi2_of(const clef_geometry_opts *o, double l1)
+{
+    const double var = residual_var(o, l1);
+    const double d = l1 - o->l_peak;
+    return d * d / var + log(var);
+}
+
+/* Marginal likelihood on the fine grid: one cubic spline through each
+ * sample's valid nodes, then for every grid point the sum over samples in
+ * sample order (parallel over grid points, so the result does not depend
+ * on the thread count).  The chi^2 is taken relative to the smallest node
+ * value, so a measurement far from every model does not underflow.
+ * *reachable is 0 when no sample comes within 5 sigma of l_peak. */
+static int accumulate(const clef_geometry_opts *o, const double *nodes, const double *table,
+                      const double *grid, double *post, int *nvalid, int *reachable)
+{
+    const int nn = o->nnodes, ng = o->ngrid, ns = o->nsamples;
+    int status = CLEF_OK;
+    gsl_spline **sp = calloc((size_t)ns, sizeof *sp);
+    int *run = malloc((size_t)ns * 2 * sizeof *run);
+    if (!sp || !run) {
+        status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory for the splines");
+        goto done;
+    }
+    double ref = INFINITY;
+    *nvalid = 0;
+    *reachable = 0;
+    for (int i = 0; i < ns; i++) {
+        const double *row = table + (size_t)i * nn;
+        int j0, j1;
+        valid_run(row, nn, &j0, &j1);
+        run[2 * i] = j0;
+        run[2 * i + 1] = j1;
+        if (j1 - j0 + 1 < 3)
+            continue;
+        (*nvalid)++;
+        double lmin = INFINITY, lmax = -INFINITY;
+        for (int j = j0; j <= j1; j++) {
+            ref = fmin(ref, chi2_of(o, row[j]));
+            lmin = fmin(lmin, row[j]);
+            lmax = fmax(lmax, row[j]);
+        }
+        if (o->l_peak >= lmin - 5.0 * sqrt(residual_var(o, lmin)) &&
+            o->l_peak <= lmax + 5.0 * sqrt(residual_var(o, lmax)))
+            *reachable = 1;
+        sp[i] = gsl_spline_alloc(gsl_interp_cspline, (size_t)(j1 - j0 + 1));
+        if (!sp[i]) {
+            status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory for the splines");
+            goto done;
+        }
+        gsl_spline_init(sp[i], nodes + j0, row + j0, (size_t)(j1 - j0 + 1));
+    }
+#pragma omp parallel for schedule(static)
+    for (int k = 0; k < ng; k++) {
+        double sum = 0;
+        for (int i = 0; i < ns; i++) {
+            if (!sp[i] || grid[k] < nodes[run[2 * i]] || grid[k] > nodes[run[2 * i + 1]])
+                continue;
+            const double l1 = gsl_spline_eval(sp[i], grid[k], NULL);
+            sum += exp(-0.5 * (chi2_of(o, l1) - ref));
+        }
+        post[k] = sum;
+    }
+done:
+    if (sp)
+        for (int i = 0; i < ns; i++)
+            gsl_spline_free(sp[i]);
+    free(sp);
+    free(run);
+    return status;
+}
+
+/* Quantile q of the posterior by the trapezoid-rule CDF, linear within a cell. */
+static double quantile(const double *x, const double *cdf, int n, double q)
+{
+    const double target = q * cdf[n - 1];
+    for (int k = 1; k < n; k++)
+        if (cdf[k] >= target) {
+            const double span = cdf[k] - cdf[k - 1];
+            const double t = span > 0 ? (target - cdf[k - 1]) / span : 0.0;
+            return x[k - 1] + t * (x[k] - x[k - 1]);
+        }
+    return x[n - 1];
+}
+
+static int summarise(clef_geometry_result *r)
+{
+    const int n = r->n;
+    const double *x = r->omega_k;
+    double *post = r->posterior;
+    int kmax = 0;
+    for (int k = 1; k < n; k++)
+        if (post[k] > post[kmax])
+            kmax = k;
+    const double peak = post[kmax];
+    for (int k = 0; k < n; k++)
+        post[k] /= peak;
+    /* Mode: vertex of the parabola through the top point and its neighbours. */
+    r->best = x[kmax];
+    if (kmax > 0 && kmax < n - 1) {
+        const double a = post[kmax - 1], b = post[kmax], c = post[kmax + 1];
+        const double den = a - 2 * b + c;
+        if (den < 0)
+            r->best = x[kmax] + 0.5 * (a - c) / den * (x[kmax + 1] - x[kmax]);
+    }
+    double *cdf = malloc((size_t)n * sizeof *cdf);
+    if (!cdf)
+        CLEF_FAIL(CLEF_ENOMEM, "curvature inference: out of memory (%d grid points)", n);
+    cdf[0] = 0;
+    double m1 = 0, m2 = 0, mass = 0;
+    for (int k = 1; k < n; k++) {
+        const double dx = x[k] - x[k - 1];
+        const double w = 0.5 * dx * (post[k] + post[k - 1]);
+        mass += w;
+        m1 += 0.5 * dx * (x[k] * post[k] + x[k - 1] * post[k - 1]);
+        m2 += 0.5 * dx * (x[k] * x[k] * post[k] + x[k - 1] * x[k - 1] * post[k - 1]);
+        cdf[k] = mass;
+    }
+    r->mean = m1 / mass;
+    r->sd = sqrt(fmax(m2 / mass - r->mean * r->mean, 0.0));
+    /* Central intervals of the Gaussian 1 and 2 sigma probabilities. */
+    r->lo68 = quantile(x, cdf, n, 0.5 * (1 - 0.682689492137086));
+    r->hi68 = quantile(x, cdf, n, 0.5 * (1 + 0.682689492137086));
+    r->lo95 = quantile(x, cdf, n, 0.5 * (1 - 0.954499736103642));
+    r->hi95 = quantile(x, cdf, n, 0.5 * (1 + 0.954499736103642));
+    free(cdf);
+    r->classification = r->hi95 < 0 ? CLEF_GEOMETRY_CLOSED : r->lo95 > 0 ? CLEF_GEOMETRY_OPEN
+                                                                      : CLEF_GEOMETRY_FLAT;
+    r->truncated = post[0] > EDGE_FRACTION || post[n - 1] > EDGE_FRACTION;
+    return CLEF_OK;
+}
+
+/* Reference numbers at the prior means: flat l_1, the l_1 range over the
+ * grid, and theta_* implied by the measured peak. */
+static int reference(const clef_geometry_opts *o, clef_geometry_result *r)
+{
+    clef_cosmo_params p = o->base;
+    p.omega_b = o->omega_b.mean;
+    p.omega_c = o->omega_c.mean;
+    p.h = o->h.mean;
+    clef_cosmo_work w = {0};
+    CLEF_TRY(clef_cosmo_work_alloc(&w));
+    double phi1 = 0, l1;
+    r->l1_min = INFINITY;
+    r->l1_max = -INFINITY;
+    for (int k = 0; k < r->n; k += (r->n - 1) / 10) {
+        p.omega_k = r->omega_k[k];
+        if (clef_cosmo_peak_quiet(&p, &w, &l1, NULL) == 0) {
+            r->l1_min = fmin(r->l1_min, l1);
+            r->l1_max = fmax(r->l1_max, l1);
+        }
+    }
+    p.omega_k = 0.0;
+    const int st = clef_cosmo_peak_quiet(&p, &w, &r->l1_flat, &phi1);
+    clef_cosmo_work_free(&w);
+    if (st != 0)
+        CLEF_FAIL(CLEF_ENUMERIC, "curvature inference: no flat model at the prior means");
+    r->acoustic_scale_deg = 180.0 / o->l_peak;
+    r->acoustic_scale_err_deg = 180.0 * o->l_peak_err / (o->l_peak * o->l_peak);
+    r->theta_star_deg = 180.0 * (1.0 - phi1) / o->l_peak;
+    return CLEF_OK;
+}
+
+int clef_geometry_infer(const clef_geometry_opts *o, clef_geometry_result **out)
+{
+    int status = CLEF_OK;
+    clef_geometry_result *r = NULL;
+    double *samples = NULL, *nodes = NULL, *table = NULL;
+    gsl_rng *rng = NULL;
+    *out = NULL;
+    if (!o)
+        CLEF_FAIL(CLEF_EINVAL, "curvature inference: NULL options");
+    CLEF_TRY(check_opts(o));
+    const int ng = o->ngrid, nn = o->nnodes, ns = o->nsamples;
+    r = calloc(1, sizeof *r);
+    samples = malloc((size_t)ns * 3 * sizeof *samples);
+    nodes = malloc((size_t)nn * sizeof *nodes);
+    table = malloc((size_t)ns * nn * sizeof *table);
+    rng = gsl_rng_alloc(gsl_rng_mt19937);
+    if (!r || !samples || !nodes || !table || !rng) {
+        status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory (%d samples)", ns);
+        goto fail;
+    }
+    r->n = ng;
+    r->omega_k = malloc((size_t)ng * sizeof *r->omega_k);
+    r->posterior = calloc((size_t)ng, sizeof *r->posterior);
+    if (!r->omega_k || !r->posterior) {
+        status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory (%d grid points)", ng);
+        goto fail;
+    }
+    const double lo = o->omega_k_min, hi = o->omega_k_max;
+    for (int k = 0; k < ng; k++)
+        r->omega_k[k] = lo + (hi - lo) * k / (ng - 1.0);
+    for (int j = 0; j < nn; j++)
+        nodes[j] = lo + (hi - lo) * j / (nn - 1.0);
+    /* Draw all samples serially from one seeded stream: the same seed gives
+     * the same samples whatever the thread count.  Priors are truncated to
+     * the physical region (omega_b > 0, omega_c > 0, 0 < h <= 2). */
+    gsl_rng_set(rng, o->seed);
+    for (int i = 0; i < ns; i++) {
+        samples[3 * i] = draw(rng, &o->omega_b, 0.0, INFINITY);
+        samples[3 * i + 1] = draw(rng, &o->omega_c, 0.0, INFINITY);
+        samples[3 * i + 2] = draw(rng, &o->h, 0.0, 2.0);
+        if (isnan(samples[3 * i + 1]) || isnan(samples[3 * i + 2]))
+            samples[3 * i] = NAN;
+    }
+    clef_progress("curvature", 0.0);
+    CLEF_CHECK(node_table(o, samples, nodes, table));
+    clef_progress("curvature", 0.8);
+    int reachable = 0;
+    CLEF_CHECK(accumulate(o, nodes, table, r->omega_k, r->posterior, &r->nsamples_valid, &reachable));
+    clef_progress("curvature", 1.0);
+    CLEF_CHECK(reference(o, r));
+    double top = 0;
+    for (int k = 0; k < ng; k++)
+        top = fmax(top, r->posterior[k]);
+    if (!reachable || r->nsamples_valid == 0 || !(top > 0) || !isfinite(top)) {
+        status = clef_fail(CLEF_ENUMERIC,
+                           "l_peak = %g +- %g is out of reach (more than 5 sigma from every model): for Omega_k in [%g, %g] the "
+                           "model gives l_1 in [%.1f, %.1f] at the prior means",
+                           o->l_peak, o->l_peak_err, lo, hi, r->l1_min, r->l1_max);
+        goto fail;
+    }
+    CLEF_CHECK(summarise(r));
+    if (r->truncated)
+        clef_log(CLEF_LOG_WARN,
+                 "the Omega_k posterior is cut off by the grid [%g, %g]; widen the grid",
+                 lo, hi);
+    if (r->hi68 - r->lo68 < 4.0 * (hi - lo) / (ng - 1.0))
+        clef_log(CLEF_LOG_WARN,
+                 "the 68%% interval spans fewer than 4 grid steps; use a finer grid");
+    gsl_rng_free(rng);
+    free(samples);
+    free(nodes);
+    free(table);
+    *out = r;
+    return CLEF_OK;
+fail:
+    gsl_rng_free(rng);
+    free(samples);
+    free(nodes);
+    free(table);
+    clef_geometry_result_free(r);
+    return status;
+}
