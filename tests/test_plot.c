@@ -783,7 +783,8 @@ static const char *write_text(const char *name, const char *text)
 }
 
 /* A geometry result as `clef geometry --json` writes it: a Gaussian
- * posterior of Omega_k, mean -0.01, sigma 0.02, on 201 points. */
+ * posterior of Omega_k, mean -0.01, sigma 0.02, on 201 points over
+ * [-0.3, 0.3]. */
 static const char *write_geometry(const char *name)
 {
     char *buf = malloc(1 << 16);
@@ -793,10 +794,10 @@ static const char *write_geometry(const char *name)
                           " \"acoustic_scale_deg\": 0.81, \"l_peak\": 221.7, \"l_peak_err\": 6.3,\n"
                           " \"curve\": {\"omega_k\": [");
     for (int i = 0; i <= 200; i++)
-        k += sprintf(buf + k, "%s%.6f", i ? ", " : "", -0.1 + 0.001 * i);
+        k += sprintf(buf + k, "%s%.6f", i ? ", " : "", -0.3 + 0.003 * i);
     k += sprintf(buf + k, "], \"posterior\": [");
     for (int i = 0; i <= 200; i++) {
-        const double x = -0.1 + 0.001 * i;
+        const double x = -0.3 + 0.003 * i;
         k += sprintf(buf + k, "%s%.9f", i ? ", " : "", exp(-0.5 * pow((x + 0.01) / 0.02, 2)));
     }
     sprintf(buf + k, "]}}\n");
@@ -814,7 +815,7 @@ static void test_curvature(void **state)
     check_abs(g->best, -0.01, 0, "file value");
     check_abs(g->hi95, 0.0292, 0, "file value");
     check_abs(g->l_peak, 221.7, 0, "file value");
-    check_abs(g->omega_k[200], 0.1, 1e-12, "file value");
+    check_abs(g->omega_k[200], 0.3, 1e-12, "file value");
     assert_string_equal(g->classification, "flat");
 
     clef_plot_curvature_opts o = {0};
@@ -835,6 +836,16 @@ static void test_curvature(void **state)
     assert_int_equal(svg_markers(svg, x, y0, y1), 1);
     check_abs(x[0], clef_plot_frame_x(&f, -0.01), 1.0 / 256, "best-value marker");
     assert_true(f.xmin <= 0 && f.xmax >= 0);
+    /* The x range is where the posterior lives (above 1e-3 of the peak:
+     * within 3.7 sigma = 0.074 of -0.01), not the whole grid [-0.3, 0.3]. */
+    assert_true(f.xmin <= -0.084 && f.xmax >= 0.064 && f.xmax - f.xmin <= 0.25);
+    /* Against Omega_total = 1 - Omega_k the best value sits at 1.01. */
+    o.omega_total = 1;
+    assert_int_equal(clef_plot_curvature_layout(g, &o, &f), CLEF_OK);
+    assert_true(f.xmin <= 1 && f.xmax >= 1.0292);
+    assert_int_equal(clef_plot_curvature(g, &o, svg), CLEF_OK);
+    assert_int_equal(svg_markers(svg, x, y0, y1), 1);
+    check_abs(x[0], clef_plot_frame_x(&f, 1.01), 1.0 / 256, "best-value marker, Omega_total");
     assert_int_equal(clef_plot_curvature(g, NULL, pdf), CLEF_OK);
     check_pdf(pdf, 800, 500);
     char *t = pdf_text(pdf);

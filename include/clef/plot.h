@@ -162,14 +162,18 @@ void clef_plot_geometry_free(clef_plot_geometry *g); /* NULL is a no-op */
 typedef struct clef_plot_curvature_opts {
     int width, height;          /* 0 = 800 x 500 */
     const char *title;          /* NULL: "Curvature: <classification>" with the best value */
+    int omega_total;            /* 1: x axis Omega_total = 1 - Omega_k (flat at 1) */
 } clef_plot_curvature_opts;
 
+/* Frame of the curvature figure: x covers the 95% interval, the flat value
+ * and the part of the grid where the posterior exceeds 1e-3 of its peak. */
 int clef_plot_curvature_layout(const clef_plot_geometry *g, const clef_plot_curvature_opts *o,
                                clef_plot_frame *f);
 
-/* Draw the posterior of Omega_k against Omega_k, the 95% and 68% intervals
- * shaded under the curve, the best value (solid line) and the flat value
- * Omega_k = 0 (dashed line) marked, the classification in the title.
+/* Draw the posterior of Omega_k against Omega_k (or Omega_total), the 95%
+ * and 68% intervals shaded under the curve, the best value (solid line, the
+ * one vertical stroke in the marker colour (0.80, 0.10, 0.45)) and the flat
+ * value (dashed line) marked, the classification in the title.
  * Errors: CLEF_EINVAL (grid not increasing, non-finite values, size out of
  * range), CLEF_EUNSUP, CLEF_EIO, CLEF_ENOMEM. */
 int clef_plot_curvature(const clef_plot_geometry *g, const clef_plot_curvature_opts *o,

@@ -61,6 +61,7 @@ static void help(FILE *f)
             "curvature: the posterior of Omega_k (peak 1) with the 68%% and 95%% intervals\n"
             "  shaded, the best value (solid) and the flat value 0 (dashed) marked, the\n"
             "  classification in the title.\n"
+            "  --omega-total        x axis Omega_total = 1 - Omega_k (flat at 1)\n"
             "  --width N, --height N  figure size (default 800 x 500)\n\n"
             "Common options:\n"
             "  -o, --output FILE    figure to write (required)\n"
@@ -77,7 +78,8 @@ static void help(FILE *f)
 enum {
     OPT_WIDTH = 256, OPT_HEIGHT, OPT_TITLE, OPT_LOG_L, OPT_THEORY, OPT_COMPARE, OPT_LABEL,
     OPT_COMPARE_LABEL, OPT_NO_PEAK, OPT_MASK, OPT_RANGE, OPT_PERCENTILE, OPT_SCALE, OPT_UNIT,
-    OPT_COLUMN, OPT_HDU, OPT_TRANSPARENT, OPT_NO_GRID, OPT_QUIET, OPT_VERBOSE, OPT_HELP
+    OPT_COLUMN, OPT_HDU, OPT_TRANSPARENT, OPT_NO_GRID, OPT_OMEGA_TOTAL, OPT_QUIET, OPT_VERBOSE,
+    OPT_HELP
 };
 
 enum kind { KIND_SPECTRUM, KIND_MAP, KIND_CURVATURE };
@@ -86,7 +88,7 @@ typedef struct args {
     int kind;
     const char *input, *output, *title;
     long width, height;
-    int log_l, no_peak, transparent, no_grid, have_range, scale;
+    int log_l, no_peak, transparent, no_grid, have_range, scale, omega_total;
     const char *theory, *compare, *label, *compare_label, *mask, *unit, *column, *hdu;
     double vmin, vmax, percentile;
 } args;
@@ -124,6 +126,8 @@ static int option_kind(int opt)
     case OPT_MASK: case OPT_RANGE: case OPT_PERCENTILE: case OPT_SCALE: case OPT_UNIT:
     case OPT_COLUMN: case OPT_HDU: case OPT_TRANSPARENT: case OPT_NO_GRID:
         return KIND_MAP;
+    case OPT_OMEGA_TOTAL:
+        return KIND_CURVATURE;
     default:
         return -1;
     }
@@ -151,6 +155,7 @@ static int parse_args(int argc, char **argv, args *a, int *done)
         {"hdu", required_argument, NULL, OPT_HDU},
         {"transparent", no_argument, NULL, OPT_TRANSPARENT},
         {"no-grid", no_argument, NULL, OPT_NO_GRID},
+        {"omega-total", no_argument, NULL, OPT_OMEGA_TOTAL},
         {"quiet", no_argument, NULL, OPT_QUIET},
         {"verbose", no_argument, NULL, OPT_VERBOSE},
         {"help", no_argument, NULL, OPT_HELP},
@@ -214,6 +219,7 @@ static int parse_args(int argc, char **argv, args *a, int *done)
         case OPT_HDU: a->hdu = optarg; break;
         case OPT_TRANSPARENT: a->transparent = 1; break;
         case OPT_NO_GRID: a->no_grid = 1; break;
+        case OPT_OMEGA_TOTAL: a->omega_total = 1; break;
         case OPT_QUIET: cli_verbosity = 0; break;
         case OPT_VERBOSE: cli_verbosity = 2; break;
         case OPT_HELP:
@@ -451,6 +457,7 @@ static int run_curvature(const args *a)
     o.width = (int)a->width;
     o.height = (int)a->height;
     o.title = a->title;
+    o.omega_total = a->omega_total;
     status = clef_plot_curvature(g, &o, a->output);
     clef_plot_geometry_free(g);
     return status;

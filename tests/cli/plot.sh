@@ -94,8 +94,12 @@ pdfinfo "$T/mk.pdf" >/dev/null 2>&1 || fail "map x mask PDF does not open"
 # curvature
 expect 0 "$BIN" plot curvature "$T/geo.json" -o "$T/c.png" --width 500 --height 320
 [ "$(png_size "$T/c.png")" = "500 320" ] || fail "curvature PNG size"
-expect 0 "$BIN" plot curvature "$T/geo.json" -o "$T/c.svg"
-svg_ok "$T/c.svg" || fail "curvature SVG not well-formed"
+expect 0 "$BIN" plot curvature "$T/geo.json" -o "$T/c.svg" --omega-total
+svg_ok "$T/c.svg" || fail "curvature SVG (Omega_total) not well-formed"
+# The JSON that clef geometry itself writes.
+expect 0 "$BIN" geometry --peak-l 220 --peak-l-err 3 --json "$T/geo_clef.json" --quiet
+expect 0 "$BIN" plot curvature "$T/geo_clef.json" -o "$T/c2.pdf"
+pdfinfo "$T/c2.pdf" >/dev/null 2>&1 || fail "curvature PDF from clef geometry does not open"
 
 # errors: usage 2, invalid 3, I/O 4, format 5, unsupported 7; no output left
 expect 2 "$BIN" plot
@@ -104,6 +108,7 @@ expect 2 "$BIN" plot spectrum "$T/bp.txt"
 expect 2 "$BIN" plot map "$T/map.fits" -o "$T/e2.png" --log-l
 expect 2 "$BIN" plot spectrum "$T/bp.txt" -o "$T/e3.png" --mask "$T/mask.fits"
 expect 2 "$BIN" plot map "$T/map.fits" -o "$T/e4.png" --height 300
+expect 2 "$BIN" plot map "$T/map.fits" -o "$T/e4.png" --omega-total
 expect 2 "$BIN" plot map "$T/map.fits" -o "$T/e5.png" --range 5,1
 expect 2 "$BIN" plot spectrum "$T/bp.txt" -o "$T/e6.png" --width ten
 expect 7 "$BIN" plot spectrum "$T/bp.txt" -o "$T/e7.jpg"
