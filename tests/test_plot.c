@@ -13,6 +13,7 @@
 #include "clef/peak.h"
 #include "clef/plot.h"
 #include "clef/table.h"
+#include "plot_impl.h"
 
 static const double pi = 3.14159265358979323846;
 
@@ -210,6 +211,43 @@ static void test_format_from_path(void **state)
     assert_non_null(strstr(clef_last_error(), "d.jpg"));
     assert_int_equal(clef_plot_format_from_path("dir.png/noext", &f), CLEF_EUNSUP);
     assert_int_equal(clef_plot_format_from_path("", &f), CLEF_EINVAL);
+}
+
+/* Tick placement: steps of 1, 2 or 5 times a power of ten (Heckbert,
+ * "Nice numbers for graph labels", Graphics Gems, 1990). */
+static void test_ticks(void **state)
+{
+    (void)state;
+    double t[PLOT_MAX_TICKS], step;
+    int n = plot_ticks_linear(0, 1000, 6, t, &step);
+    check_abs(step, 200, 0, "Heckbert 1990: 1000/6 -> 200");
+    assert_int_equal(n, 6);
+    check_abs(t[5], 1000, 1e-9, "last tick");
+    n = plot_ticks_linear(-0.1, 0.1, 5, t, &step);
+    check_abs(step, 0.05, 1e-15, "Heckbert 1990: 0.2/5 -> 0.05");
+    assert_int_equal(n, 5);
+    check_abs(t[2], 0, 0, "zero exactly");
+    char buf[32];
+    plot_format_tick(t[2], step, buf, sizeof buf);
+    assert_string_equal(buf, "0.00");
+    plot_format_tick(0.05, 0.05, buf, sizeof buf);
+    assert_string_equal(buf, "0.05");
+    plot_format_tick(6000, 2000, buf, sizeof buf);
+    assert_string_equal(buf, "6000");
+    double lo = 13, hi = 4870;
+    step = plot_nice_range(&lo, &hi, 5);
+    check_abs(step, 1000, 0, "nice range");
+    check_abs(lo, 0, 0, "nice range");
+    check_abs(hi, 5000, 0, "nice range");
+    /* Log axis over 2.6 decades: 1-2-5 sequence; over 5 decades: decades. */
+    n = plot_ticks_log(2, 900, t);
+    const double want[] = {2, 5, 10, 20, 50, 100, 200, 500};
+    assert_int_equal(n, 8);
+    for (int i = 0; i < n; i++)
+        check_rel(t[i], want[i], 1e-12, "1-2-5 log ticks (common practice)");
+    n = plot_ticks_log(1, 1e5, t);
+    assert_int_equal(n, 6);
+    check_rel(t[5], 1e5, 1e-12, "decade ticks");
 }
 
 /* ------------------------------------------------------------ spectrum */
@@ -927,6 +965,7 @@ int main(void)
     }
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_format_from_path),
+        cmocka_unit_test(test_ticks),
         cmocka_unit_test(test_spectrum_png_size),
         cmocka_unit_test(test_spectrum_marker_linear),
         cmocka_unit_test(test_spectrum_marker_log),
