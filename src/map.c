@@ -1,8 +1,7 @@
 /* HEALPix maps in memory: allocation, copies, statistics of the valid
  * pixels, and the map/mask compatibility check.  FITS reading and writing
- * are in map_fits.c. */
-#include "clef/map.h"
-#include "core_impl.h"
+ * are in map_fits.c and map_write.c. */
+#include "map_impl.h"
 
 #include <math.h>
 #include <stdlib.h>

@@ -1,14 +1,13 @@
-/* HEALPix maps in FITS binary tables: reading (every layout of the HEALPix
- * FITS convention: implicit or explicit index, one value per row or vector
- * rows, RING or NESTED, any numeric column type) and writing (RING,
- * implicit, full sky).  Conventions: Gorski et al. 2005, ApJ 622, 759, and
- * the HEALPix FITS format specification (Hivon et al. 2020, v0.6.0).
+/* Reading HEALPix maps from FITS binary tables, in every layout of the
+ * HEALPix FITS convention: implicit or explicit index, one value per row or
+ * vector rows, RING or NESTED, any numeric column type, plain or gzip.
+ * Conventions: Gorski et al. 2005, ApJ 622, 759, and the HEALPix FITS format
+ * specification (Hivon et al. 2020, v0.6.0).
  *
- * Both directions stream through a buffer of CHUNK values: one CFITSIO call
+ * Values stream through a buffer of CLEF_MAP_CHUNK values: one CFITSIO call
  * moves up to a million values, never one pixel. */
 #define _POSIX_C_SOURCE 200809L
-#include "clef/map.h"
-#include "core_impl.h"
+#include "map_impl.h"
 
 #include <chealpix.h>
 #include <errno.h>
@@ -20,8 +19,7 @@
 #include <strings.h>
 #include <sys/stat.h>
 
-/* Values moved per CFITSIO call (8 MiB of doubles). */
-#define CHUNK ((int64_t)1 << 20)
+#define CHUNK CLEF_MAP_CHUNK
 
 /* Bad-pixel tolerance: the sentinel stored as float32 reads back as
  * -1.63749999631e30 (METHODS.md section 1), so compare relatively. */
@@ -31,9 +29,7 @@
  * CFITSIO status handling
  * ------------------------------------------------------------------------ */
 
-/* "CFITSIO status N: text (first message of CFITSIO's stack)"; clears the
- * stack so later messages do not carry stale text. */
-static void fits_status_text(int fstatus, char *buf, size_t n)
+void clef_map_fits_status(int fstatus, char *buf, size_t n)
 {
     char text[FLEN_STATUS] = "", msg[FLEN_ERRMSG] = "";
     fits_get_errstatus(fstatus, text);
@@ -75,7 +71,7 @@ typedef struct reader {
 static int reader_fits_fail(reader *r, int fstatus, const char *what)
 {
     char text[256];
-    fits_status_text(fstatus, text, sizeof text);
+    clef_map_fits_status(fstatus, text, sizeof text);
     const int code = read_status_code(fstatus);
     if (fstatus == END_OF_FILE || fstatus == READ_ERROR)
         CLEF_FAIL(code, "%s: %s: the file ends early (truncated?): %s", r->where, what, text);
@@ -319,6 +315,9 @@ static int read_header(reader *r, const clef_map_read_opts *opts, clef_map *m)
     char val[FLEN_VALUE];
     int found, st = 0;
 
+    CLEF_TRY(key_string(r, "PIXTYPE", val, &found));
+    if (found && strcasecmp(val, "HEALPIX"))
+        CLEF_FAIL(CLEF_EFORMAT, "%s: keyword PIXTYPE = '%s', not a HEALPix map", r->where, val);
     /* Parsed from the card text: CFITSIO would silently truncate 2.5 to 2. */
     CLEF_TRY(key_string(r, "NSIDE", val, &found));
     if (!found)
@@ -569,7 +568,7 @@ int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *op
     fits_open_diskfile(&r.f, path, READONLY, &st);
     if (st) {
         char text[256];
-        fits_status_text(st, text, sizeof text);
+        clef_map_fits_status(st, text, sizeof text);
         r.f = NULL;
         status = clef_fail(read_status_code(st), "cannot read '%s' as FITS: %s", path, text);
         goto fail;
@@ -642,126 +641,5 @@ fail:
     }
     free(buf);
     clef_map_free(m);
-    return status;
-}
-
-/* ------------------------------------------------------------------------
- * Writing
- * ------------------------------------------------------------------------ */
-
-static int write_fail(int fstatus, const char *path, const char *what)
-{
-    char text[256];
-    fits_status_text(fstatus, text, sizeof text);
-    CLEF_FAIL(fstatus == MEMORY_ALLOCATION ? CLEF_ENOMEM : CLEF_EIO,
-              "cannot write '%s': %s: %s", path, what, text);
-}
-
-static void write_header(fitsfile *f, const clef_map *m, const clef_map_write_opts *opts,
-                         int *st)
-{
-    long long firstpix = 0, lastpix = m->npix - 1, nside = m->nside;
-    double bad = CLEF_BAD_VALUE;
-    fits_write_key(f, TSTRING, "PIXTYPE", "HEALPIX", "HEALPix pixelisation", st);
-    fits_write_key(f, TSTRING, "ORDERING", "RING", "pixel ordering scheme", st);
-    fits_write_key(f, TLONGLONG, "NSIDE", &nside, "resolution parameter", st);
-    fits_write_key(f, TLONGLONG, "FIRSTPIX", &firstpix, "first pixel index (0-based)", st);
-    fits_write_key(f, TLONGLONG, "LASTPIX", &lastpix, "last pixel index (0-based)", st);
-    fits_write_key(f, TSTRING, "INDXSCHM", "IMPLICIT", "row order is pixel order", st);
-    fits_write_key(f, TSTRING, "OBJECT", "FULLSKY", "every pixel is stored", st);
-    if (m->coordsys[0])
-        fits_write_key(f, TSTRING, "COORDSYS", (char *)m->coordsys,
-                       "G galactic, E ecliptic, C celestial", st);
-    fits_write_key(f, TDOUBLE, "BAD_DATA", &bad, "value of missing pixels", st);
-    fits_write_key(f, TSTRING, "CLEFVERS", CLEF_VERSION, "written by clef, this version", st);
-    if (opts && opts->history && *opts->history)
-        fits_write_history(f, opts->history, st);
-}
-
-int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opts *opts)
-{
-    if (!m || !m->pix || !m->valid)
-        CLEF_FAIL(CLEF_EINVAL, "clef_map_write: map is NULL or empty");
-    if (!path || !*path)
-        CLEF_FAIL(CLEF_EINVAL, "clef_map_write: no file name given");
-    if (!clef_nside_valid(m->nside) || m->npix != clef_nside_npix(m->nside))
-        CLEF_FAIL(CLEF_EINVAL, "cannot write '%s': map nside %lld / npix %lld is inconsistent",
-                  path, (long long)m->nside, (long long)m->npix);
-    const int64_t rowlen = opts && opts->row_length > 1 ? opts->row_length : 1;
-    if (opts && opts->row_length < 0)
-        CLEF_FAIL(CLEF_EINVAL, "cannot write '%s': row length %d is negative", path,
-                  opts->row_length);
-    if (m->npix % rowlen != 0)
-        CLEF_FAIL(CLEF_EINVAL,
-                  "cannot write '%s': row length %lld does not divide the %lld pixels of nside "
-                  "%lld",
-                  path, (long long)rowlen, (long long)m->npix, (long long)m->nside);
-    const int single = opts && opts->single_precision;
-    const char *colname = opts && opts->column && *opts->column ? opts->column : "TEMPERATURE";
-    const char *unit = opts && opts->unit ? opts->unit : m->unit;
-    const char *extname = opts && opts->extname && *opts->extname ? opts->extname : "SKYMAP";
-
-    clef_outfile of;
-    CLEF_TRY(clef_outfile_begin(&of, path));
-    int status = CLEF_OK, st = 0;
-    fitsfile *f = NULL;
-    double *buf = NULL;
-    char name[4200];
-    snprintf(name, sizeof name, "!%s", of.tmp_path);
-    fits_create_file(&f, name, &st);
-    if (st) {
-        f = NULL;
-        status = write_fail(st, path, "cannot create the file");
-        goto fail;
-    }
-    fits_create_img(f, BYTE_IMG, 0, NULL, &st);
-
-    char tform[32];
-    snprintf(tform, sizeof tform, "%lld%c", (long long)rowlen, single ? 'E' : 'D');
-    char *ttype[] = {(char *)colname};
-    char *tforms[] = {tform};
-    char *tunit[] = {(char *)(unit ? unit : "")};
-    fits_create_tbl(f, BINARY_TBL, 0, 1, ttype, tforms, tunit, extname, &st);
-    write_header(f, m, opts, &st);
-    if (st) {
-        status = write_fail(st, path, "cannot write the header");
-        goto fail;
-    }
-
-    const int64_t nbuf = m->npix < CHUNK ? m->npix : CHUNK;
-    buf = malloc((size_t)nbuf * sizeof *buf);
-    if (!buf) {
-        status = clef_fail(CLEF_ENOMEM, "cannot allocate a write buffer for '%s'", path);
-        goto fail;
-    }
-    for (int64_t e0 = 0; e0 < m->npix; e0 += CHUNK) {
-        const int64_t n = m->npix - e0 < CHUNK ? m->npix - e0 : CHUNK;
-        for (int64_t i = 0; i < n; i++)
-            buf[i] = m->valid[e0 + i] ? m->pix[e0 + i] : CLEF_BAD_VALUE;
-        fits_write_col(f, TDOUBLE, 1, e0 / rowlen + 1, e0 % rowlen + 1, n, buf, &st);
-        if (st) {
-            status = write_fail(st, path, "cannot write the map values");
-            goto fail;
-        }
-        clef_progress("writing map", (double)(e0 + n) / (double)m->npix);
-    }
-    fits_write_chksum(f, &st);
-    fits_close_file(f, &st);
-    f = NULL;
-    if (st) {
-        status = write_fail(st, path, "cannot finish the file");
-        goto fail;
-    }
-    free(buf);
-    return clef_outfile_commit(&of);
-
-fail:
-    if (f) {
-        int st2 = 0;
-        fits_close_file(f, &st2);
-        fits_clear_errmsg();
-    }
-    free(buf);
-    clef_outfile_abort(&of);
     return status;
 }

@@ -55,11 +55,17 @@ static int whiten(const fit_data *fd, double *v, int ncols)
     return CLEF_OK;
 }
 
-/* Given whitened design W (n x np) and data z: the normal matrix A = W^T W
- * and its inverse in `pcov`, the solution p = A^-1 W^T z.  Returns
- * CLEF_ENUMERIC when A is singular (parameters not constrained). */
+/* Given whitened design W (n x np) and data z: the normal matrix A = W^T W,
+ * the solution p = A^-1 W^T z and the parameter covariance A^-1 in `pcov`.
+ * A is first scaled to unit diagonal (a correlation-like matrix, so the
+ * test does not depend on the parameters' units); when its reciprocal
+ * condition number (LAPACK dpocon) is below NORMAL_RCOND_MIN the parameters
+ * are not constrained by the data and CLEF_ENUMERIC is returned. */
+#define NORMAL_RCOND_MIN 1e-12
+
 static int normal_solve(const double *w, const double *z, int n, int np, double *p, double *pcov)
 {
+    double scale[4];
     for (int a = 0; a < np; a++) {
         p[a] = 0;
         for (int i = 0; i < n; i++)
@@ -71,7 +77,24 @@ static int normal_solve(const double *w, const double *z, int n, int np, double 
             pcov[a * np + b] = sum;
         }
     }
+    for (int a = 0; a < np; a++) {
+        if (!(pcov[a * np + a] > 0))
+            CLEF_FAIL(CLEF_ENUMERIC, "peak fit: parameter %d does not enter the model", a);
+        scale[a] = 1 / sqrt(pcov[a * np + a]);
+    }
+    for (int a = 0; a < np; a++) {
+        p[a] *= scale[a];
+        for (int b = 0; b < np; b++)
+            pcov[a * np + b] *= scale[a] * scale[b];
+    }
+    const double anorm = LAPACKE_dlansy(LAPACK_ROW_MAJOR, '1', 'L', np, pcov, np);
+    double rcond = 0;
     lapack_int info = LAPACKE_dpotrf(LAPACK_ROW_MAJOR, 'L', np, pcov, np);
+    if (info == 0)
+        info = LAPACKE_dpocon(LAPACK_ROW_MAJOR, 'L', np, pcov, np, anorm, &rcond);
+    if (info == 0 && !(rcond >= NORMAL_RCOND_MIN))
+        CLEF_FAIL(CLEF_ENUMERIC, "peak fit: the parameters are not constrained (normal matrix "
+                  "reciprocal condition %.3g)", rcond);
     if (info == 0)
         info = LAPACKE_dpotrs(LAPACK_ROW_MAJOR, 'L', np, 1, pcov, np, p, 1);
     if (info == 0)
@@ -79,9 +102,11 @@ static int normal_solve(const double *w, const double *z, int n, int np, double 
     if (info != 0)
         CLEF_FAIL(CLEF_ENUMERIC, "peak fit: normal matrix not positive definite (LAPACK info %d)",
                   (int)info);
-    for (int a = 0; a < np; a++)
-        for (int b = a + 1; b < np; b++)
-            pcov[a * np + b] = pcov[b * np + a];
+    for (int a = 0; a < np; a++) {
+        p[a] *= scale[a];
+        for (int b = 0; b <= a; b++)
+            pcov[a * np + b] = pcov[b * np + a] = pcov[a * np + b] * scale[a] * scale[b];
+    }
     return CLEF_OK;
 }
 
@@ -262,7 +287,7 @@ static void result_init(clef_peak_result *r, int model)
     memset(r, 0, sizeof *r);
     r->model = model;
     r->l_peak = r->l_peak_err = r->d_peak = r->d_peak_err = r->corr = NAN;
-    r->theta_deg = r->theta_deg_err = r->chi2 = r->p_value = NAN;
+    r->theta_deg = r->theta_deg_err = r->chi2 = r->p_value = r->curv_signif = NAN;
     r->bin_first = r->bin_last = -1;
 }
 
@@ -386,12 +411,20 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
     double pp[3], ppcov[9], chi2 = 0;
     int status = CLEF_OK;
     CLEF_CHECK(fit_data_make(&fd, bp, b0, b1, ltop, o->half_width));
-    CLEF_CHECK(fit_parabola(&fd, pp, ppcov, &chi2));
+    status = fit_parabola(&fd, pp, ppcov, &chi2);
+    if (status == CLEF_ENUMERIC) {
+        status = CLEF_OK;
+        not_found(r, "the parabola's parameters are not constrained by bins %d-%d (%s)", b0, b1,
+                  clef_last_error());
+        goto fail;
+    }
+    CLEF_CHECK(status);
     /* The peak is only defined when the curvature is negative, and its
      * delta-method error is only meaningful when c is well away from zero
      * compared with its error (the vertex -b/2c has no finite variance
      * otherwise); c / sigma_c does not depend on the scaling of x. */
     const double c_sig = pp[2] / sqrt(ppcov[8]);
+    r->curv_signif = c_sig;
     if (pp[2] >= 0) {
         not_found(r, "the parabola through bins %d-%d is not concave (curvature %+.3g uK^2 per "
                   "l^2)", b0, b1, pp[2] / (fd.s * fd.s));
@@ -417,8 +450,8 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
         status = fit_gaussian(&fd, pg, pcov, &chi2, &converged);
         if (status == CLEF_ENUMERIC) {
             status = CLEF_OK;
-            not_found(r, "the Gaussian fit does not constrain its parameters (singular normal "
-                      "matrix); try the parabola model");
+            not_found(r, "the Gaussian's parameters are not constrained by bins %d-%d (%s); try "
+                      "the parabola model", b0, b1, clef_last_error());
             goto fail;
         }
         CLEF_CHECK(status);
@@ -438,9 +471,9 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
         if (pg[3] > 0)
             clef_log(CLEF_LOG_DEBUG, "first peak: Gaussian width w = %.4g", fd.s / sqrt(pg[3]));
         else
-            clef_log(CLEF_LOG_INFO, "first peak: the Gaussian fit prefers 1/w^2 = %.3g <= 0 (a top "
-                     "no rounder than a parabola); l_peak and D_peak are still its vertex",
-                     pg[3] / (fd.s * fd.s));
+            clef_log(CLEF_LOG_INFO, "first peak: the Gaussian fit prefers 1/w^2 = %.3g <= 0 (sides "
+                     "falling at least as fast as a parabola's); l_peak and D_peak are still its "
+                     "vertex", pg[3] / (fd.s * fd.s));
         np = 4;
         xp = pg[2];
         dpk = pg[0];
@@ -466,6 +499,9 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
     r->chi2 = chi2;
     r->dof = fd.n - np;
     r->p_value = r->dof > 0 ? gsl_cdf_chisq_Q(chi2, r->dof) : NAN;
+    if (c_sig > -CLEF_PEAK_RELIABLE_SIGNIF)
+        clef_log(CLEF_LOG_WARN, "first peak: the curvature is only %.1f sigma below zero; the quoted "
+                 "errors may underestimate the scatter of l_peak (docs/peak.md)", -c_sig);
     clef_log(CLEF_LOG_INFO, "first peak: l = %.2f +- %.2f, D = %.1f +- %.1f uK^2 (%s, %d bins)",
              r->l_peak, r->l_peak_err, r->d_peak, r->d_peak_err,
              np == 3 ? "parabola" : "Gaussian", fd.n);
@@ -512,6 +548,9 @@ int clef_peak_to_meta(const clef_peak_result *r, clef_bandpowers *bp)
         {"PK_DOF", r->dof, "degrees of freedom of the peak fit"},
         {"PK_PVAL", r->p_value, "probability of a chi^2 at least PK_CHI2"},
     };
+    if (isfinite(r->curv_signif))
+        CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_CSIG", r->curv_signif,
+                                             "parabola curvature / its error"));
     if (r->found)
         for (size_t i = 0; i < sizeof items / sizeof items[0]; i++)
             if (isfinite(items[i].v))
@@ -561,6 +600,7 @@ int clef_peak_from_meta(const clef_bandpowers *bp, clef_peak_result *r)
     r->theta_deg_err = meta_double(bp, "PK_THERR");
     r->chi2 = meta_double(bp, "PK_CHI2");
     r->p_value = meta_double(bp, "PK_PVAL");
+    r->curv_signif = meta_double(bp, "PK_CSIG");
     const double dof = meta_double(bp, "PK_DOF"), nb = meta_double(bp, "PK_NBIN");
     const double b1 = meta_double(bp, "PK_BIN1"), b2 = meta_double(bp, "PK_BIN2");
     r->dof = isfinite(dof) ? (int)dof : 0;

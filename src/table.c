@@ -85,8 +85,7 @@ int clef_table_key_reserved(const char *key)
     return 0;
 }
 
-/* FITS keyword names: 1-8 characters from A-Z, 0-9, '-', '_' (FITS 4.0 4.1.2.1). */
-static int key_valid(const char *key)
+int clef_table_key_valid(const char *key)
 {
     const size_t n = key ? strlen(key) : 0;
     return n >= 1 && n <= 8 && strspn(key, "ABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789-_") == n;
@@ -104,7 +103,7 @@ void clef_table_format_double(char *buf, size_t size, double v)
 int clef_table_meta_set(clef_bandpowers *bp, const char *key, const char *value, int is_number,
                         const char *comment)
 {
-    if (!bp || !key_valid(key))
+    if (!bp || !clef_table_key_valid(key))
         CLEF_FAIL(CLEF_EINVAL, "metadata key '%s' is not a FITS keyword name (1-8 of A-Z 0-9 - _)",
                   key ? key : "(null)");
     if (!value)
@@ -153,7 +152,7 @@ int clef_table_meta_set(clef_bandpowers *bp, const char *key, const char *value,
 int clef_bandpowers_meta_text(clef_bandpowers *bp, const char *key, const char *value,
                               const char *comment)
 {
-    if (key && key_valid(key) && clef_table_key_reserved(key))
+    if (key && clef_table_key_valid(key) && clef_table_key_reserved(key))
         CLEF_FAIL(CLEF_EINVAL, "metadata key '%s' is reserved for the file structure", key);
     return clef_table_meta_set(bp, key, value, 0, comment);
 }
@@ -161,7 +160,7 @@ int clef_bandpowers_meta_text(clef_bandpowers *bp, const char *key, const char *
 int clef_bandpowers_meta_number(clef_bandpowers *bp, const char *key, double value,
                                 const char *comment)
 {
-    if (key && key_valid(key) && clef_table_key_reserved(key))
+    if (key && clef_table_key_valid(key) && clef_table_key_reserved(key))
         CLEF_FAIL(CLEF_EINVAL, "metadata key '%s' is reserved for the file structure", key);
     if (!isfinite(value))
         CLEF_FAIL(CLEF_EINVAL, "metadata item %s: value %g is not finite (FITS headers hold finite numbers only)",

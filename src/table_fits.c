@@ -130,7 +130,8 @@ static int read_meta(fitsfile *f, clef_bandpowers *bp, const char *path)
         fits_read_keyn(f, i, name, value, comment, &st);
         if (st)
             break;
-        if (!*name || strlen(name) > 8 || clef_table_key_reserved(name) || !*value)
+        /* Names FITS does not allow (lower case, HIERARCH) are not ours to keep. */
+        if (!clef_table_key_valid(name) || clef_table_key_reserved(name) || !*value)
             continue;
         char dtype = 0;
         fits_get_keytype(value, &dtype, &st);

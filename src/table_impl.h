@@ -17,6 +17,10 @@ extern const char *const clef_table_fits_names[CLEF_TABLE_NCOLS];
  * keywords, EXTNAME, CLEFVERS, DATE, ...) and so cannot be a metadata item. */
 int clef_table_key_reserved(const char *key);
 
+/* 1 when `key` is a FITS keyword name: 1-8 characters from A-Z, 0-9, '-',
+ * '_' (FITS Standard 4.0, section 4.1.2.1). */
+int clef_table_key_valid(const char *key);
+
 /* Shortest "%.Ng" text (N = 15..17) that reads back as exactly `v`. */
 void clef_table_format_double(char *buf, size_t size, double v);
 

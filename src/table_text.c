@@ -219,9 +219,15 @@ int clef_table_read_text(clef_bandpowers **out, const char *path)
                                -n);
             goto fail;
         }
-        double dummy;
-        if (!nrows && !header_seen && !parse_number(fld[0], &dummy)) {
-            header_seen = 1; /* one header row of column names may precede the data */
+        /* One header row of column names may precede the data: a row with
+         * no number in it (a row with a mistyped number stays an error). */
+        int numbers = 0;
+        for (int k = 0; k < n; k++) {
+            double dummy;
+            numbers += parse_number(fld[k], &dummy);
+        }
+        if (!nrows && !header_seen && !numbers) {
+            header_seen = 1;
             continue;
         }
         if (!ncols) {

@@ -337,7 +337,8 @@ static void test_scaled_integer(void **state)
     clef_map_free(m);
 }
 
-/* gzip-compressed input is read transparently (CFITSIO decompresses). */
+/* gzip-compressed input is read transparently (CFITSIO decompresses);
+ * gzip output when the name ends in .gz. */
 static void test_gzip(void **state)
 {
     (void)state;
@@ -356,6 +357,30 @@ static void test_gzip(void **state)
     for (int64_t p = 0; p < m->npix; p++)
         assert_true(r->pix[p] == m->pix[p]);
     clef_map_free(r);
+
+    /* clef writes gzip itself when the name ends in .gz (RFC 1952 magic
+     * bytes 1f 8b), and reads it back. */
+    char outgz[1024];
+    snprintf(outgz, sizeof outgz, "%s", test_path("written.fits.gz"));
+    clef_map_write_opts wo = {.row_length = 64, .single_precision = 1};
+    assert_int_equal(clef_map_write(m, outgz, &wo), CLEF_OK);
+    FILE *f = fopen(outgz, "rb");
+    unsigned char magic[2] = {0};
+    assert_int_equal(fread(magic, 1, 2, f), 2);
+    fclose(f);
+    assert_true(magic[0] == 0x1f && magic[1] == 0x8b);
+    assert_int_equal(clef_map_read(&r, outgz, NULL), CLEF_OK);
+    for (int64_t p = 0; p < m->npix; p++)
+        check_rel(r->pix[p], m->pix[p], 6e-8, "float32 rounding (IEEE 754 binary32)");
+    clef_map_free(r);
+    assert_true(no_temporaries());
+    /* A folder whose name holds ".gz" would defeat CFITSIO's suffix test. */
+    char gzdir[1024], inside[1100];
+    snprintf(gzdir, sizeof gzdir, "%s", test_path("odd.gz"));
+    assert_int_equal(mkdir(gzdir, 0700), 0);
+    snprintf(inside, sizeof inside, "%s/m.fits.gz", gzdir);
+    assert_int_equal(clef_map_write(m, inside, NULL), CLEF_EUNSUP);
+    assert_int_equal(run_cmd("rmdir '%s'", gzdir), 0); /* fails if anything was left */
     clef_map_free(m);
     free(v);
 }
@@ -695,7 +720,7 @@ static void write_custom(const char *path, int ncol, char **ttype, char **tform,
 }
 
 /* Rarer format errors and header variants: a text column, a variable-length
- * column, an unknown INDXSCHM, PIXEL and value columns of different
+ * column, an unknown INDXSCHM, another PIXTYPE, PIXEL and value columns of different
  * widths, a non-integer NSIDE, long COORDSYS names, an unknown COORDSYS,
  * a file-specific BAD_DATA value, a wrong NPIX (ignored). */
 static void test_header_variants(void **state)
@@ -725,6 +750,11 @@ static void test_header_variants(void **state)
     expect_read_fail(path, NULL, CLEF_EFORMAT, "the PIXEL column has 2 values per row");
     const clef_map_read_opts pixsel = {.column = "PIXEL"};
     expect_read_fail(path, &pixsel, CLEF_EINVAL, "is the PIXEL index");
+
+    const char *grid[] = {"PIXTYPE = 'GLESP   '", "NSIDE   =                    1",
+                          "ORDERING= 'RING    '"};
+    write_custom(path, 1, tt3, tf3, grid, 3);
+    expect_read_fail(path, NULL, CLEF_EFORMAT, "PIXTYPE = 'GLESP', not a HEALPix map");
 
     const char *fl[] = {"NSIDE   =                  2.5", "ORDERING= 'RING    '"};
     write_custom(path, 1, tt3, tf3, fl, 2);

@@ -326,6 +326,7 @@ static void numpy_reference(void **state)
     check_abs(r.corr, v[4], 1e-8, "numpy delta method");
     check_rel(r.chi2, v[5], 1e-8, "numpy GLS chi^2");
     check_rel(r.p_value, v[6], 1e-7, "scipy.stats.chi2.sf");
+    check_rel(r.curv_signif, v[7], 1e-8, "numpy c / sigma_c");
     clef_bandpowers_free(bp);
 }
 
@@ -421,6 +422,24 @@ static void no_peak_cases(void **state)
         bp->dl_err[7 + b] = 1;
     }
     expect_none(bp, &o, "outside the fitted range");
+
+    /* Four bins placed symmetrically about the vertex of an exact parabola:
+     * 1, d^2 and d^4 take two values each, so the Gaussian's shape
+     * parameter cannot be told from the others (singular normal matrix),
+     * while the parabola is exact. */
+    o.l_min = 185;
+    o.l_max = 255;
+    for (int b = 0; b < NB; b++) {
+        const double l = bp->l_eff[b];
+        bp->dl[b] = 5600 - 0.12 * (l - 221.5) * (l - 221.5); /* midway between 211.5 and 231.5 */
+        bp->dl_err[b] = 10;
+    }
+    o.model = CLEF_PEAK_GAUSSIAN;
+    expect_none(bp, &o, "not constrained");
+    o.model = CLEF_PEAK_PARABOLA;
+    assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_OK);
+    assert_int_equal(r.found, 1);
+    check_rel(r.l_peak, 221.5, 1e-12, "vertex of the parabola");
     clef_bandpowers_free(bp);
 }
 
@@ -520,6 +539,7 @@ static void meta_round_trip(void **state)
         assert_int_equal(back.nbins_used, r.nbins_used);
         assert_int_equal(back.bin_first, r.bin_first);
         assert_int_equal(back.bin_last, r.bin_last);
+        check_abs(back.curv_signif, r.curv_signif, 0, "round trip");
         clef_bandpowers_free(rd);
     }
     /* A later "no peak" replaces every item of the earlier result. */

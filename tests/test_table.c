@@ -256,6 +256,42 @@ static void user_tables(void **state)
     clef_bandpowers_free(bp);
 }
 
+/* A BANDPOWER table written by astropy, with header cards clef does not
+ * write itself: HIERARCH, logical, COMMENT/HISTORY, an integer column type
+ * of another width, lower-case column names. */
+static void foreign_fits(void **state)
+{
+    (void)state;
+    const char *path = test_path("foreign.fits");
+    assert_int_equal(
+        run_cmd("%s -c \"from astropy.io import fits; import numpy as np\n"
+                "cols = [fits.Column(name=n, format=f, array=a) for n, f, a in ("
+                "('lmin', 'K', [2, 12]), ('lmax', 'I', [11, 21]), ('leff', 'E', [6.5, 16.5]), "
+                "('c_band', 'D', [1.0, 2.0]), ('d_band', 'D', [10.0, 20.0]), ('d_sigma', 'D', [1.0, 0.5]))]\n"
+                "t = fits.BinTableHDU.from_columns(cols, name='BANDPOWER')\n"
+                "t.header['HIERARCH a long key name'] = 5\n"
+                "t.header['FLAG'] = True\n"
+                "t.header['BIGNUM'] = 1.5e300\n"
+                "t.header['COMMENT'] = 'a comment'\n"
+                "t.header['HISTORY'] = 'made by a test'\n"
+                "fits.HDUList([fits.PrimaryHDU(), t]).writeto('%s', overwrite=True)\"",
+                ref_python(), path),
+        0);
+    clef_bandpowers *bp = NULL;
+    assert_int_equal(clef_bandpowers_read(&bp, path), CLEF_OK);
+    assert_int_equal(bp->nbins, 2);
+    assert_int_equal(bp->l_lo[1], 12);
+    assert_int_equal(bp->l_hi[1], 21);
+    check_abs(bp->l_eff[1], 16.5, 0, "astropy input");
+    check_abs(bp->dl[1], 20.0, 0, "astropy input");
+    check_abs(bp->dl_err[1], 0.5, 0, "astropy input");
+    assert_null(bp->cov);
+    assert_int_equal(bp->nmeta, 2);
+    assert_string_equal(clef_bandpowers_meta_get(bp, "FLAG"), "T");
+    assert_string_equal(clef_bandpowers_meta_get(bp, "BIGNUM"), "1.5e+300");
+    clef_bandpowers_free(bp);
+}
+
 /* The message of the last error contains every string given. */
 static void assert_msg(const char *a, const char *b)
 {
@@ -288,6 +324,7 @@ static void read_errors(void **state)
         {"bad_lint.txt", "2.5 11 6.5 1 2 0.5\n", "line 1", "l_min"},
         {"bad_lrange.txt", "12 11 6.5 1 2 0.5\n", "line 1", "l_max"},
         {"bad_header2.txt", "a b c\nd e f\n", "line 2", "column 1"},
+        {"bad_first.txt", "# x\n1O0 3000 50\n120 3000 50\n", "line 2", "column 1"},
         {"bad_nodata.txt", "# only comments\n\n", "no data rows", NULL},
     };
     for (size_t i = 0; i < sizeof bad / sizeof bad[0]; i++) {
@@ -450,6 +487,7 @@ int main(void)
         cmocka_unit_test(astropy_reads_fits), cmocka_unit_test(fitsverify_passes),
         cmocka_unit_test(user_tables),       cmocka_unit_test(read_errors),
         cmocka_unit_test(write_errors),      cmocka_unit_test(meta_rules),
+        cmocka_unit_test(foreign_fits),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

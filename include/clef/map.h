@@ -93,7 +93,9 @@ typedef struct clef_map_write_opts {
 /* Write a full-sky RING map (implicit index); invalid pixels are written as
  * the bad-pixel value.  A clef provenance keyword (CLEFVERS) is added.  The
  * file is written to a temporary name and renamed on success, so a failure
- * leaves nothing.  An existing file is replaced.  Returns CLEF_EINVAL (NULL
+ * leaves nothing.  An existing file is replaced.  A path ending in ".gz"
+ * gives a gzip-compressed file (built in memory by CFITSIO, then compressed;
+ * CLEF_EUNSUP if the folder's own name contains ".gz").  Returns CLEF_EINVAL (NULL
  * map, inconsistent nside, row length that does not divide npix), CLEF_EIO
  * (cannot create, write or rename; the message has CFITSIO's status) or
  * CLEF_ENOMEM.  Written in chunks of 2^20 values; no other allocation. */

@@ -41,15 +41,36 @@ typedef struct clef_peak_result {
     int dof;
     double p_value;                  /* probability of a chi2 at least this large */
     int nbins_used, bin_first, bin_last;
+    double curv_signif;              /* c / sigma_c of the parabola fit (negative for a peak;
+                                        NaN when no fit was made); the quoted errors match
+                                        the scatter of l_peak when it is below about
+                                        -CLEF_PEAK_RELIABLE_SIGNIF (docs/peak.md) */
 } clef_peak_result;
 
-/* Fit the first peak.  "No peak" is not an error: the call returns CLEF_OK
- * with found = 0 and a reason.  Errors (CLEF_EINVAL) are for unusable input
- * (no bins in the window, non-positive errors, a window that is empty). */
+/* Below this |c / sigma_c| a found peak comes with a warning that the
+ * delta-method errors may underestimate the scatter (docs/peak.md). */
+#define CLEF_PEAK_RELIABLE_SIGNIF 4.0
+
+/* Fit the first peak (docs/peak.md): the bins of the window within
+ * half_width of the highest one, by generalised least squares with the
+ * table's covariance block (or dl_err^2 on the diagonal when bp->cov is
+ * NULL); errors by first-order propagation of the parameter covariance.
+ * The Gaussian is fitted in a form that contains the parabola as its
+ * w -> infinity limit, by Levenberg-Marquardt started from the parabola.
+ * "No peak" is not an error: the call returns CLEF_OK with found = 0 and a
+ * reason (highest bin on the window edge, too few bins, curvature not
+ * negative or not significant, fit not converged, vertex outside the fitted
+ * range), and the numbers of `r` NaN.  Errors (CLEF_EINVAL) are for
+ * unusable input: no bin in the window, an empty window, non-positive or
+ * missing errors, a covariance that is not positive definite, bins not in
+ * increasing l_eff, bad options.  Allocates only scratch memory for the call;
+ * `bp` is only read. */
 int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak_result *r);
 
-/* Record the result as header keywords of a table (for its FITS/CSV files),
- * and read it back; from_meta returns CLEF_EINVAL when the table has none. */
+/* Record the result as header keywords PK_* of a table (for its FITS/CSV
+ * files; docs/formats.md "Peak keywords"), replacing any earlier PK_* items,
+ * and read it back; from_meta returns CLEF_EINVAL when the table has none
+ * or PK_FOUND / PK_MODEL are invalid. */
 int clef_peak_to_meta(const clef_peak_result *r, clef_bandpowers *bp);
 int clef_peak_from_meta(const clef_bandpowers *bp, clef_peak_result *r);
 

@@ -67,6 +67,7 @@ void cli_verbose(const char *fmt, ...)
 int cmd_inspect(int argc, char **argv);
 int cmd_convert(int argc, char **argv);
 int cmd_peak(int argc, char **argv);
+int cmd_spectrum(int argc, char **argv);
 int cmd_model(int argc, char **argv);
 int cmd_geometry(int argc, char **argv);
 int cmd_plot(int argc, char **argv);

@@ -64,6 +64,8 @@ static cJSON *result_json(const char *table, const clef_peak_opts *o, const clef
     cJSON_AddBoolToObject(j, "found", r->found);
     if (!r->found)
         cJSON_AddStringToObject(j, "reason", r->reason);
+    if (isfinite(r->curv_signif))
+        cJSON_AddNumberToObject(j, "curvature_signif", r->curv_signif);
     if (r->nbins_used > 0) {
         cJSON_AddNumberToObject(j, "bins_used", r->nbins_used);
         cJSON_AddNumberToObject(j, "bin_first", r->bin_first);
@@ -129,6 +131,7 @@ static void print_result(const char *table, const clef_bandpowers *bp, const cle
     printf("  fit            %s over %d bins (l_eff %g to %g), %s covariance\n",
            model_names[o->model], r->nbins_used, bp->l_eff[r->bin_first], bp->l_eff[r->bin_last],
            cov_source);
+    printf("  curvature      %.1f sigma below zero\n", -r->curv_signif);
     printf("  l_peak         %.2f +- %.2f\n", r->l_peak, r->l_peak_err);
     printf("  D_peak         %.1f +- %.1f uK^2\n", r->d_peak, r->d_peak_err);
     printf("  correlation    %.3f (l_peak with D_peak)\n", r->corr);

@@ -10,6 +10,7 @@ static const cli_command commands[] = {
     {"inspect", "summarise a HEALPix map file", cmd_inspect},
     {"convert", "rewrite a HEALPix map in clef's RING layout", cmd_convert},
     {"peak", "locate the first acoustic peak in a band-power table", cmd_peak},
+    {"spectrum", "band powers, errors and first peak of a map (or two) and a mask", cmd_spectrum},
     {"model", "analytic CMB temperature spectrum for cosmological parameters", cmd_model},
     {"geometry", "curvature and acoustic scale from the first peak", cmd_geometry},
     {"plot", "draw band powers, a map view or the curvature posterior", cmd_plot},

@@ -94,6 +94,7 @@ grep -q "NESTED in the file" inspect.txt || fail "text summary lacks the file or
 # ---------------------------------------------------------------------------
 "$CLEF_BIN" convert --float32 nested_f32.fits.gz ring_f32.fits || fail "convert nested"
 "$CLEF_BIN" convert --row-length 1 partial_ring.fits full_f64.fits || fail "convert partial"
+"$CLEF_BIN" convert partial_ring.fits full_f64.fits.gz || fail "convert to gzip"
 "$CLEF_PYTHON" - <<'EOF' || fail "astropy disagrees with clef's output"
 import sys
 import numpy as np
@@ -101,6 +102,13 @@ from astropy.io import fits
 errs = []
 # Partial RING map -> full-sky table: listed pixels keep their values, the
 # others hold BAD_DATA.
+with open("full_f64.fits.gz", "rb") as z:
+    if z.read(2) != b"\x1f\x8b":
+        errs.append("full_f64.fits.gz is not gzip")
+with fits.open("full_f64.fits.gz") as z, fits.open("full_f64.fits") as f:
+    if not np.array_equal(np.asarray(z[1].data["SIGNAL"]).ravel(),
+                          np.asarray(f[1].data["SIGNAL"]).ravel()):
+        errs.append("gzip output differs from plain output")
 with fits.open("full_f64.fits") as f:
     h = f[1].header
     for k, x in [("PIXTYPE", "HEALPIX"), ("ORDERING", "RING"), ("NSIDE", 8), ("FIRSTPIX", 0),
@@ -135,7 +143,7 @@ if errs:
     print("\n".join(errs))
     sys.exit(1)
 EOF
-for f in ring_f32.fits full_f64.fits; do
+for f in ring_f32.fits full_f64.fits full_f64.fits.gz; do
     fitsverify "$f" > "$f.verify" 2>&1 || true
     grep -q "Verification found 0 warning(s) and 0 error(s)" "$f.verify" ||
         { fail "fitsverify on $f"; cat "$f.verify"; }

@@ -28,7 +28,7 @@ from astropy.io import fits
 cols = [fits.Column(name=n, format=f, array=a) for n, f, a in
         (("LMIN", "J", lo), ("LMAX", "J", hi), ("LEFF", "D", le), ("C_BAND", "D", c),
          ("D_BAND", "D", d), ("D_SIGMA", "D", np.full(30, 40.0)))]
-fits.HDUList([fits.PrimaryHDU(), fits.BinTableHDU.from_columns(cols, name="BANDPOWER")]).writeto(t + "/para.fits")
+fits.HDUList([fits.PrimaryHDU(), fits.BinTableHDU.from_columns(cols, name="BANDPOWER")]).writeto(t + "/para.fits", overwrite=True)
 PY
 
 check_json() { # file, python expression over the parsed object j

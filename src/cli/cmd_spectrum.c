@@ -1,0 +1,654 @@
+/* clef spectrum: the main job.  One or two maps and a mask -> decoupled band
+ * powers with errors, the first acoustic peak, and pipeline outputs (FITS
+ * table, CSV, JSON run summary). */
+#define _POSIX_C_SOURCE 200809L
+#include <cjson/cJSON.h>
+#include <getopt.h>
+#include <math.h>
+#include <omp.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <time.h>
+
+#include "clef/beam.h"
+#include "clef/bins.h"
+#include "clef/hash.h"
+#include "clef/map.h"
+#include "clef/peak.h"
+#include "clef/spectrum.h"
+#include "clef/table.h"
+#include "clef/theory.h"
+#include "cli.h"
+
+static const char *CMD = "spectrum";
+
+static void help(void)
+{
+    printf(
+        "Usage: clef spectrum MAP [MAP2] --mask MASK [options]\n\n"
+        "Decoupled band powers of a HEALPix map (auto-spectrum) or of two maps\n"
+        "(cross-spectrum, e.g. two noise splits: no noise bias), corrected for the\n"
+        "mask's mode coupling, the beam, the pixel window and a transfer function,\n"
+        "with a Gaussian covariance and the first acoustic peak.\n\n"
+        "Inputs:\n"
+        "  --mask FILE            mask (weights in [0,1]) for MAP, and for MAP2 unless --mask2\n"
+        "  --mask2 FILE           separate mask for MAP2\n"
+        "  --hdu H, --column C    table and column of the maps (default: first table,\n"
+        "                         first value column)\n"
+        "  --allow-coord-mismatch accept map and mask with different COORDSYS\n\n"
+        "Multipoles and bins:\n"
+        "  --lmax L               highest multipole (default 3*nside-1, lowered where the\n"
+        "                         beam x pixel window drops below 0.01; at most 3*nside-1)\n"
+        "  --bin-width N          linear bins of N multipoles from l=2 (default: automatic,\n"
+        "                         max(20, the mask's coupling width))\n"
+        "  --log-bins N           N logarithmic bins from l=2 to lmax instead\n"
+        "  --bins FILE            bin edges from a text file (docs/coupling.md)\n\n"
+        "Instrument:\n"
+        "  --beam-fwhm ARCMIN     Gaussian beam full width at half maximum (default: none)\n"
+        "  --beam-file FILE       tabulated beam, columns 'l B_l'\n"
+        "  --no-pixel-window      do not correct for the pixel window (default: corrected)\n"
+        "  --transfer FILE        transfer function, columns 'l F_l'\n"
+        "  --noise-cl FILE        noise spectrum N_l [uK^2] to subtract (auto-spectra)\n"
+        "  --theory FILE          C_l [uK^2] used in the covariance instead of the measured one\n\n"
+        "Method:\n"
+        "  --iterations N         analysis iterations (default %d)\n"
+        "  --keep-multipoles      keep the monopole and dipole (default: fitted on the\n"
+        "                         observed sky and removed)\n"
+        "  --cache-dir DIR        coupling cache folder (default $CLEF_CACHE_DIR,\n"
+        "                         $XDG_CACHE_HOME/clef or ~/.cache/clef)\n"
+        "  --no-cache             neither read nor write the coupling cache\n\n"
+        "First peak:\n"
+        "  --peak-l-min L, --peak-l-max L   search window (default 100..400)\n"
+        "  --peak-model parabola|gaussian   fitted shape (default parabola)\n"
+        "  --no-peak              skip the peak fit\n\n"
+        "Output:\n"
+        "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv, PREFIX.json\n"
+        "                         (default: the first map's name without folder and extension)\n"
+        "  --format LIST          comma-separated subset of fits,csv,json (default all three)\n"
+        "  --threads N            OpenMP threads (default: OMP_NUM_THREADS or all cores)\n"
+        "  --quiet, --verbose, --help\n\n"
+        "Exit codes: 0 ok, 2 usage, 3 invalid input, 4 I/O, 5 bad file format,\n"
+        "6 numerical failure (e.g. singular coupling: widen the bins), 8 out of memory.\n",
+        CLEF_SPECTRUM_ITERATIONS);
+}
+
+enum {
+    OPT_MASK = 256, OPT_MASK2, OPT_HDU, OPT_COLUMN, OPT_COORD, OPT_LMAX, OPT_BINW, OPT_LOGB,
+    OPT_BINS, OPT_FWHM, OPT_BEAMF, OPT_NOPIX, OPT_TRANSFER, OPT_NOISE, OPT_THEORY, OPT_ITER,
+    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_PLMIN, OPT_PLMAX, OPT_PMODEL, OPT_NOPEAK, OPT_FORMAT,
+    OPT_THREADS, OPT_QUIET, OPT_VERBOSE, OPT_HELP
+};
+
+typedef struct args {
+    const char *map[2], *mask[2], *hdu, *column, *bins_file, *beam_file, *transfer_file;
+    const char *noise_file, *theory_file, *cache_dir, *output, *format, *threads;
+    long lmax, bin_width, log_bins, iterations;
+    double beam_fwhm, peak_lmin, peak_lmax;
+    int peak_model, no_peak, no_pixwin, keep, no_cache, coord;
+    int want_fits, want_csv, want_json;
+} args;
+
+static int parse_format(args *a, const char *s)
+{
+    a->want_fits = a->want_csv = a->want_json = 0;
+    char buf[256];
+    snprintf(buf, sizeof buf, "%s", s);
+    for (char *tok = strtok(buf, ","); tok; tok = strtok(NULL, ",")) {
+        if (!strcmp(tok, "fits"))
+            a->want_fits = 1;
+        else if (!strcmp(tok, "csv"))
+            a->want_csv = 1;
+        else if (!strcmp(tok, "json"))
+            a->want_json = 1;
+        else
+            return cli_usage_error(CMD, "--format: unknown format '%s' (fits, csv, json)", tok);
+    }
+    if (!a->want_fits && !a->want_csv && !a->want_json)
+        return cli_usage_error(CMD, "--format: no format given");
+    return 0;
+}
+
+static int parse_args(int argc, char **argv, args *a)
+{
+    static const struct option opts[] = {
+        {"mask", required_argument, 0, OPT_MASK},
+        {"mask2", required_argument, 0, OPT_MASK2},
+        {"hdu", required_argument, 0, OPT_HDU},
+        {"column", required_argument, 0, OPT_COLUMN},
+        {"allow-coord-mismatch", no_argument, 0, OPT_COORD},
+        {"lmax", required_argument, 0, OPT_LMAX},
+        {"bin-width", required_argument, 0, OPT_BINW},
+        {"log-bins", required_argument, 0, OPT_LOGB},
+        {"bins", required_argument, 0, OPT_BINS},
+        {"beam-fwhm", required_argument, 0, OPT_FWHM},
+        {"beam-file", required_argument, 0, OPT_BEAMF},
+        {"no-pixel-window", no_argument, 0, OPT_NOPIX},
+        {"transfer", required_argument, 0, OPT_TRANSFER},
+        {"noise-cl", required_argument, 0, OPT_NOISE},
+        {"theory", required_argument, 0, OPT_THEORY},
+        {"iterations", required_argument, 0, OPT_ITER},
+        {"keep-multipoles", no_argument, 0, OPT_KEEP},
+        {"cache-dir", required_argument, 0, OPT_CACHE},
+        {"no-cache", no_argument, 0, OPT_NOCACHE},
+        {"peak-l-min", required_argument, 0, OPT_PLMIN},
+        {"peak-l-max", required_argument, 0, OPT_PLMAX},
+        {"peak-model", required_argument, 0, OPT_PMODEL},
+        {"no-peak", no_argument, 0, OPT_NOPEAK},
+        {"output", required_argument, 0, 'o'},
+        {"format", required_argument, 0, OPT_FORMAT},
+        {"threads", required_argument, 0, OPT_THREADS},
+        {"quiet", no_argument, 0, OPT_QUIET},
+        {"verbose", no_argument, 0, OPT_VERBOSE},
+        {"help", no_argument, 0, OPT_HELP},
+        {0, 0, 0, 0}};
+    memset(a, 0, sizeof *a);
+    a->iterations = CLEF_SPECTRUM_ITERATIONS;
+    a->peak_lmin = -1;
+    a->peak_lmax = -1;
+    a->want_fits = a->want_csv = a->want_json = 1;
+    int c;
+    opterr = 0;
+    while ((c = getopt_long(argc, argv, "o:", opts, NULL)) != -1) {
+        switch (c) {
+        case OPT_MASK: a->mask[0] = optarg; break;
+        case OPT_MASK2: a->mask[1] = optarg; break;
+        case OPT_HDU: a->hdu = optarg; break;
+        case OPT_COLUMN: a->column = optarg; break;
+        case OPT_COORD: a->coord = 1; break;
+        case OPT_LMAX:
+            if (cli_parse_long(CMD, "--lmax", optarg, &a->lmax))
+                return CLI_EXIT_USAGE;
+            if (a->lmax < 2)
+                return cli_usage_error(CMD, "--lmax must be at least 2, got %ld", a->lmax);
+            break;
+        case OPT_BINW:
+            if (cli_parse_long(CMD, "--bin-width", optarg, &a->bin_width))
+                return CLI_EXIT_USAGE;
+            if (a->bin_width < 1)
+                return cli_usage_error(CMD, "--bin-width must be positive, got %ld",
+                                       a->bin_width);
+            break;
+        case OPT_LOGB:
+            if (cli_parse_long(CMD, "--log-bins", optarg, &a->log_bins))
+                return CLI_EXIT_USAGE;
+            if (a->log_bins < 1)
+                return cli_usage_error(CMD, "--log-bins must be positive, got %ld", a->log_bins);
+            break;
+        case OPT_BINS: a->bins_file = optarg; break;
+        case OPT_FWHM:
+            if (cli_parse_double(CMD, "--beam-fwhm", optarg, &a->beam_fwhm))
+                return CLI_EXIT_USAGE;
+            if (a->beam_fwhm < 0)
+                return cli_usage_error(CMD, "--beam-fwhm must not be negative, got %g",
+                                       a->beam_fwhm);
+            break;
+        case OPT_BEAMF: a->beam_file = optarg; break;
+        case OPT_NOPIX: a->no_pixwin = 1; break;
+        case OPT_TRANSFER: a->transfer_file = optarg; break;
+        case OPT_NOISE: a->noise_file = optarg; break;
+        case OPT_THEORY: a->theory_file = optarg; break;
+        case OPT_ITER:
+            if (cli_parse_long(CMD, "--iterations", optarg, &a->iterations))
+                return CLI_EXIT_USAGE;
+            if (a->iterations < 0 || a->iterations > 20)
+                return cli_usage_error(CMD, "--iterations must be in 0..20, got %ld",
+                                       a->iterations);
+            break;
+        case OPT_KEEP: a->keep = 1; break;
+        case OPT_CACHE: a->cache_dir = optarg; break;
+        case OPT_NOCACHE: a->no_cache = 1; break;
+        case OPT_PLMIN:
+            if (cli_parse_double(CMD, "--peak-l-min", optarg, &a->peak_lmin))
+                return CLI_EXIT_USAGE;
+            break;
+        case OPT_PLMAX:
+            if (cli_parse_double(CMD, "--peak-l-max", optarg, &a->peak_lmax))
+                return CLI_EXIT_USAGE;
+            break;
+        case OPT_PMODEL:
+            if (!strcmp(optarg, "parabola"))
+                a->peak_model = CLEF_PEAK_PARABOLA;
+            else if (!strcmp(optarg, "gaussian"))
+                a->peak_model = CLEF_PEAK_GAUSSIAN;
+            else
+                return cli_usage_error(CMD, "--peak-model must be parabola or gaussian, got '%s'",
+                                       optarg);
+            break;
+        case OPT_NOPEAK: a->no_peak = 1; break;
+        case 'o': a->output = optarg; break;
+        case OPT_FORMAT:
+            if (parse_format(a, optarg))
+                return CLI_EXIT_USAGE;
+            break;
+        case OPT_THREADS: a->threads = optarg; break;
+        case OPT_QUIET: cli_verbosity = 0; break;
+        case OPT_VERBOSE: cli_verbosity = 2; break;
+        case OPT_HELP: help(); return -1;
+        case '?':
+        default:
+            return cli_usage_error(CMD, "unknown or incomplete option '%s'", argv[optind - 1]);
+        }
+    }
+    int npos = argc - optind;
+    if (npos < 1 || npos > 2)
+        return cli_usage_error(CMD, "expected one or two map files, got %d", npos);
+    a->map[0] = argv[optind];
+    a->map[1] = npos == 2 ? argv[optind + 1] : NULL;
+    if (!a->mask[0])
+        return cli_usage_error(CMD, "--mask is required");
+    if (a->mask[1] && !a->map[1])
+        return cli_usage_error(CMD, "--mask2 needs a second map");
+    if ((a->bins_file != NULL) + (a->log_bins > 0) + (a->bin_width > 0) > 1)
+        return cli_usage_error(CMD, "choose one of --bins, --log-bins and --bin-width");
+    if (a->beam_file && a->beam_fwhm > 0)
+        return cli_usage_error(CMD, "choose one of --beam-fwhm and --beam-file");
+    if (a->threads && cli_set_threads(CMD, a->threads))
+        return CLI_EXIT_USAGE;
+    return 0;
+}
+
+/* The default output prefix: the first map's file name without folder and
+ * FITS extensions, in the current folder. */
+static void default_prefix(const char *map, char *buf, size_t n)
+{
+    const char *base = strrchr(map, '/');
+    base = base ? base + 1 : map;
+    snprintf(buf, n, "%s", base);
+    static const char *ext[] = {".gz", ".fits", ".fit", ".fts"};
+    for (int i = 0; i < 4; i++) {
+        size_t lb = strlen(buf), le = strlen(ext[i]);
+        if (lb > le && !strcmp(buf + lb - le, ext[i]))
+            buf[lb - le] = 0;
+    }
+    strncat(buf, "-bandpowers", n - strlen(buf) - 1);
+}
+
+static double *read_spectrum_file(const char *path, int lmax, int *status)
+{
+    double *cl = calloc((size_t)lmax + 1, sizeof *cl);
+    if (!cl) {
+        *status = CLEF_ENOMEM;
+        return NULL;
+    }
+    *status = clef_theory_read_cl(path, lmax, cl, NULL);
+    if (*status != CLEF_OK) {
+        free(cl);
+        return NULL;
+    }
+    return cl;
+}
+
+static double *read_profile_file(const char *path, int lmax, int *status)
+{
+    double *v = calloc((size_t)lmax + 1, sizeof *v);
+    if (!v) {
+        *status = CLEF_ENOMEM;
+        return NULL;
+    }
+    *status = clef_beam_read(path, lmax, v);
+    if (*status != CLEF_OK) {
+        free(v);
+        return NULL;
+    }
+    return v;
+}
+
+static cJSON *input_json(const char *role, const char *path, const clef_map *m)
+{
+    cJSON *o = cJSON_CreateObject();
+    char hex[65];
+    cJSON_AddStringToObject(o, "role", role);
+    cJSON_AddStringToObject(o, "path", path);
+    if (clef_sha256_file(path, hex) == CLEF_OK)
+        cJSON_AddStringToObject(o, "sha256", hex);
+    if (m) {
+        cJSON_AddNumberToObject(o, "nside", (double)m->nside);
+        cJSON_AddStringToObject(o, "ordering", m->file_ordering == CLEF_NESTED ? "NESTED" : "RING");
+        cJSON_AddStringToObject(o, "coordsys", m->coordsys);
+        cJSON_AddStringToObject(o, "column", m->column);
+        cJSON_AddNumberToObject(o, "missing_pixels", (double)m->nmissing);
+    }
+    return o;
+}
+
+static cJSON *peak_json(const clef_spectrum_result *r)
+{
+    cJSON *o = cJSON_CreateObject();
+    const clef_peak_result *p = &r->peak;
+    cJSON_AddBoolToObject(o, "found", p->found);
+    cJSON_AddStringToObject(o, "model", p->model == CLEF_PEAK_GAUSSIAN ? "gaussian" : "parabola");
+    if (!p->found) {
+        cJSON_AddStringToObject(o, "reason", p->reason);
+        return o;
+    }
+    cJSON_AddNumberToObject(o, "l_peak", p->l_peak);
+    cJSON_AddNumberToObject(o, "l_peak_err", p->l_peak_err);
+    cJSON_AddNumberToObject(o, "d_peak_uK2", p->d_peak);
+    cJSON_AddNumberToObject(o, "d_peak_err_uK2", p->d_peak_err);
+    cJSON_AddNumberToObject(o, "correlation", p->corr);
+    cJSON_AddNumberToObject(o, "angular_scale_deg", p->theta_deg);
+    cJSON_AddNumberToObject(o, "angular_scale_err_deg", p->theta_deg_err);
+    cJSON_AddNumberToObject(o, "chi2", p->chi2);
+    cJSON_AddNumberToObject(o, "dof", p->dof);
+    cJSON_AddNumberToObject(o, "p_value", p->p_value);
+    cJSON_AddNumberToObject(o, "bins_used", p->nbins_used);
+    return o;
+}
+
+static cJSON *array_json(const double *v, int n)
+{
+    cJSON *a = cJSON_CreateArray();
+    for (int i = 0; i < n; i++)
+        cJSON_AddItemToArray(a, cJSON_CreateNumber(isfinite(v[i]) ? v[i] : 0.0));
+    return a;
+}
+
+static cJSON *int_array_json(const int *v, int n)
+{
+    cJSON *a = cJSON_CreateArray();
+    for (int i = 0; i < n; i++)
+        cJSON_AddItemToArray(a, cJSON_CreateNumber(v[i]));
+    return a;
+}
+
+static char *summary_json(int argc, char **argv, const args *a, clef_map *const maps[4],
+                          const clef_spectrum_opts *so, const clef_spectrum_result *r,
+                          double t_read, double t_total, const char *const *outputs, int nout)
+{
+    cJSON *root = cJSON_CreateObject();
+    cJSON_AddStringToObject(root, "program", "clef");
+    cJSON_AddStringToObject(root, "version", CLEF_VERSION);
+    char cmd[4096] = "";
+    for (int i = 0; i < argc; i++) {
+        strncat(cmd, i ? " " : "clef ", sizeof cmd - strlen(cmd) - 1);
+        strncat(cmd, argv[i], sizeof cmd - strlen(cmd) - 1);
+    }
+    cJSON_AddStringToObject(root, "command", cmd);
+    char when[32];
+    time_t now = time(NULL);
+    strftime(when, sizeof when, "%Y-%m-%dT%H:%M:%SZ", gmtime(&now));
+    cJSON_AddStringToObject(root, "finished_utc", when);
+    cJSON_AddStringToObject(root, "spectrum", r->cross ? "cross" : "auto");
+
+    cJSON *in = cJSON_AddArrayToObject(root, "inputs");
+    cJSON_AddItemToArray(in, input_json("map1", a->map[0], maps[0]));
+    if (a->map[1])
+        cJSON_AddItemToArray(in, input_json("map2", a->map[1], maps[1]));
+    cJSON_AddItemToArray(in, input_json("mask1", a->mask[0], maps[2]));
+    if (a->mask[1])
+        cJSON_AddItemToArray(in, input_json("mask2", a->mask[1], maps[3]));
+    const char *files[][2] = {{"bins", a->bins_file}, {"beam", a->beam_file},
+                              {"transfer", a->transfer_file}, {"noise", a->noise_file},
+                              {"theory", a->theory_file}};
+    for (int i = 0; i < 5; i++)
+        if (files[i][1])
+            cJSON_AddItemToArray(in, input_json(files[i][0], files[i][1], NULL));
+
+    cJSON *op = cJSON_AddObjectToObject(root, "options");
+    cJSON_AddNumberToObject(op, "lmax", r->lmax);
+    cJSON_AddNumberToObject(op, "lmax_mask", r->lmax_mask);
+    cJSON_AddNumberToObject(op, "nbins", r->nbins);
+    if (r->bin_width)
+        cJSON_AddNumberToObject(op, "bin_width", r->bin_width);
+    cJSON_AddNumberToObject(op, "beam_fwhm_arcmin", so->beam_fwhm);
+    cJSON_AddBoolToObject(op, "pixel_window", so->pixel_window);
+    cJSON_AddNumberToObject(op, "iterations", so->iterations);
+    cJSON_AddBoolToObject(op, "multipoles_removed", !so->keep_multipoles);
+    cJSON_AddBoolToObject(op, "cache", so->use_cache);
+    cJSON_AddStringToObject(op, "covariance_spectrum", so->theory_cl ? "theory" : "measured");
+    cJSON_AddNumberToObject(op, "peak_l_min", so->peak.l_min);
+    cJSON_AddNumberToObject(op, "peak_l_max", so->peak.l_max);
+    cJSON_AddNumberToObject(op, "threads", omp_get_max_threads());
+
+    cJSON *sky = cJSON_AddObjectToObject(root, "sky");
+    cJSON_AddNumberToObject(sky, "nside", (double)r->nside);
+    cJSON_AddNumberToObject(sky, "fsky", r->fsky);
+    cJSON_AddNumberToObject(sky, "w1", r->w1);
+    cJSON_AddNumberToObject(sky, "w2", r->w2);
+    cJSON_AddNumberToObject(sky, "w4", r->w4);
+    cJSON_AddNumberToObject(sky, "fsky_eff", r->fsky_eff);
+    cJSON *mp = cJSON_AddArrayToObject(sky, "removed_multipoles_uK");
+    for (int i = 0; i <= r->cross; i++)
+        cJSON_AddItemToArray(mp, array_json(r->multipoles[i], 4));
+
+    cJSON *cp = cJSON_AddObjectToObject(root, "coupling");
+    cJSON_AddNumberToObject(cp, "rcond", r->rcond);
+    cJSON_AddBoolToObject(cp, "cache_hit", r->cache_hit);
+
+    cJSON *tm = cJSON_AddObjectToObject(root, "timings_s");
+    cJSON_AddNumberToObject(tm, "read", t_read);
+    for (int i = 0; i < r->nstages; i++)
+        cJSON_AddNumberToObject(tm, r->stage[i].name, r->stage[i].seconds);
+    cJSON_AddNumberToObject(tm, "total", t_total);
+
+    const clef_bandpowers *bp = r->bp;
+    cJSON *b = cJSON_AddObjectToObject(root, "bandpowers");
+    cJSON_AddItemToObject(b, "l_min", int_array_json(bp->l_lo, bp->nbins));
+    cJSON_AddItemToObject(b, "l_max", int_array_json(bp->l_hi, bp->nbins));
+    cJSON_AddItemToObject(b, "l_eff", array_json(bp->l_eff, bp->nbins));
+    cJSON_AddItemToObject(b, "d_uK2", array_json(bp->dl, bp->nbins));
+    cJSON_AddItemToObject(b, "d_err_uK2", array_json(bp->dl_err, bp->nbins));
+    cJSON_AddItemToObject(b, "c_uK2", array_json(bp->cl, bp->nbins));
+    if (r->peak_done)
+        cJSON_AddItemToObject(root, "peak", peak_json(r));
+    cJSON *w = cJSON_AddArrayToObject(root, "warnings");
+    for (int i = 0; i < cli_nwarnings(); i++)
+        cJSON_AddItemToArray(w, cJSON_CreateString(cli_warning(i)));
+    cJSON *o = cJSON_AddArrayToObject(root, "outputs");
+    for (int i = 0; i < nout; i++)
+        cJSON_AddItemToArray(o, cJSON_CreateString(outputs[i]));
+    char *text = cJSON_Print(root);
+    cJSON_Delete(root);
+    return text;
+}
+
+static int write_text(const char *path, const char *text)
+{
+    clef_outfile of;
+    int st = clef_outfile_begin(&of, path);
+    if (st != CLEF_OK)
+        return st;
+    FILE *f = fopen(of.tmp_path, "w");
+    if (!f || fputs(text, f) < 0 || fputc('\n', f) == EOF || fclose(f) != 0) {
+        clef_outfile_abort(&of);
+        fprintf(stderr, "clef: error: cannot write '%s'\n", path);
+        return CLEF_EIO;
+    }
+    return clef_outfile_commit(&of);
+}
+
+static void print_result(const args *a, const clef_spectrum_result *r)
+{
+    const clef_bandpowers *bp = r->bp;
+    printf("%s-spectrum of %s%s%s with mask %s\n", r->cross ? "cross" : "auto", a->map[0],
+           r->cross ? " x " : "", r->cross ? a->map[1] : "", a->mask[0]);
+    printf("nside %lld, lmax %d, %d bins, sky fraction %.4f (effective %.4f), "
+           "coupling 1/cond %.3g%s\n",
+           (long long)r->nside, r->lmax, r->nbins, r->fsky, r->fsky_eff, r->rcond,
+           r->cache_hit ? " (cached)" : "");
+    printf("%5s %11s %9s %14s %13s\n", "bin", "l range", "l_eff", "D_b [uK^2]", "sigma [uK^2]");
+    for (int b = 0; b < bp->nbins; b++) {
+        char range[32];
+        snprintf(range, sizeof range, "%d-%d", bp->l_lo[b], bp->l_hi[b]);
+        printf("%5d %11s %9.1f %14.3f %13.3f\n", b, range, bp->l_eff[b], bp->dl[b], bp->dl_err[b]);
+    }
+    if (r->peak_done) {
+        const clef_peak_result *p = &r->peak;
+        if (p->found)
+            printf("first peak: l = %.1f +/- %.1f, D = %.0f +/- %.0f uK^2, angular scale "
+                   "%.3f +/- %.3f deg, chi2 %.2f for %d dof\n",
+                   p->l_peak, p->l_peak_err, p->d_peak, p->d_peak_err, p->theta_deg,
+                   p->theta_deg_err, p->chi2, p->dof);
+        else
+            printf("first peak: none found (%s)\n", p->reason);
+    }
+}
+
+int cmd_spectrum(int argc, char **argv)
+{
+    args a;
+    int rc = parse_args(argc, argv, &a);
+    if (rc)
+        return rc < 0 ? CLI_EXIT_OK : rc;
+    cli_setup_logging();
+
+    double t_begin = clef_wtime();
+    int status = CLEF_OK;
+    clef_map *maps[4] = {NULL, NULL, NULL, NULL};
+    clef_bins *bins = NULL;
+    double *beam = NULL, *transfer = NULL, *noise = NULL, *theory = NULL;
+    clef_spectrum_result res;
+    memset(&res, 0, sizeof res);
+    char *json = NULL;
+    char paths[4][4096];
+    const char *written[4];
+    int nwritten = 0;
+
+    clef_map_read_opts ro = {0};
+    ro.hdu = a.hdu;
+    ro.column = a.column;
+    const char *files[4] = {a.map[0], a.map[1], a.mask[0], a.mask[1]};
+    for (int i = 0; i < 4; i++) {
+        if (!files[i])
+            continue;
+        status = clef_map_read(&maps[i], files[i], i < 2 ? &ro : NULL);
+        if (status != CLEF_OK)
+            goto fail;
+        cli_verbose("read %s: nside %lld, %lld missing pixels", files[i],
+                    (long long)maps[i]->nside, (long long)maps[i]->nmissing);
+    }
+    double t_read = clef_wtime() - t_begin;
+
+    const int64_t nside = maps[0]->nside;
+    const int lmax_pix = (int)(3 * nside - 1);
+    /* Files indexed by l are read up to the largest lmax the run may use. */
+    const int lread = a.lmax ? (int)a.lmax : lmax_pix;
+
+    clef_spectrum_opts so;
+    clef_spectrum_opts_default(&so);
+    so.lmax = (int)a.lmax;
+    so.iterations = (int)a.iterations;
+    so.keep_multipoles = a.keep;
+    so.use_cache = !a.no_cache;
+    so.cache_dir = a.cache_dir;
+    so.pixel_window = !a.no_pixwin;
+    so.beam_fwhm = a.beam_fwhm;
+    so.allow_coord_mismatch = a.coord;
+    so.find_peak = !a.no_peak;
+    so.peak.model = a.peak_model;
+    if (a.peak_lmin >= 0)
+        so.peak.l_min = a.peak_lmin;
+    if (a.peak_lmax >= 0)
+        so.peak.l_max = a.peak_lmax;
+    so.names[0] = a.map[0];
+    so.names[1] = a.map[1];
+    so.names[2] = a.mask[0];
+    so.names[3] = a.mask[1];
+    so.bin_width = (int)a.bin_width;
+    if (a.beam_file) {
+        if (!(beam = read_profile_file(a.beam_file, lread, &status)))
+            goto fail;
+        so.beam = beam;
+        so.beam_lmax = lread;
+    }
+    if (a.transfer_file) {
+        if (!(transfer = read_profile_file(a.transfer_file, lread, &status)))
+            goto fail;
+        so.transfer = transfer;
+        so.transfer_lmax = lread;
+    }
+    if (a.noise_file) {
+        if (!(noise = read_spectrum_file(a.noise_file, lread, &status)))
+            goto fail;
+        so.noise_cl = noise;
+        so.noise_lmax = lread;
+    }
+    if (a.theory_file) {
+        if (!(theory = read_spectrum_file(a.theory_file, lread, &status)))
+            goto fail;
+        so.theory_cl = theory;
+        so.theory_lmax = lread;
+    }
+    if (a.bins_file || a.log_bins > 0) {
+        /* Explicit bins need the lmax they end at: the given one or 3 nside - 1. */
+        if (a.bins_file)
+            status = clef_bins_read(&bins, a.bins_file, lread, CLEF_BINS_DL);
+        else
+            status = clef_bins_create_log(&bins, 2, lread, (int)a.log_bins, CLEF_BINS_DL);
+        if (status != CLEF_OK)
+            goto fail;
+        if (!a.lmax)
+            so.lmax = clef_bins_lmax(bins);
+        so.bins = bins;
+    }
+
+    status = clef_spectrum_compute(maps[0], maps[1], maps[2], maps[3], &so, &res);
+    if (status != CLEF_OK)
+        goto fail;
+
+    /* Outputs: each file is written atomically; if one fails, the ones
+     * already written by this run are removed, so a run leaves all or none. */
+    char prefix[4096];
+    if (a.output)
+        snprintf(prefix, sizeof prefix, "%s", a.output);
+    else
+        default_prefix(a.map[0], prefix, sizeof prefix);
+    if (a.want_fits) {
+        snprintf(paths[nwritten], sizeof paths[0], "%s.fits", prefix);
+        if ((status = clef_bandpowers_write_fits(res.bp, paths[nwritten])) != CLEF_OK)
+            goto fail;
+        written[nwritten] = paths[nwritten];
+        nwritten++;
+    }
+    if (a.want_csv) {
+        snprintf(paths[nwritten], sizeof paths[0], "%s.csv", prefix);
+        if ((status = clef_bandpowers_write_csv(res.bp, paths[nwritten])) != CLEF_OK)
+            goto fail;
+        written[nwritten] = paths[nwritten];
+        nwritten++;
+        snprintf(paths[nwritten], sizeof paths[0], "%s-cov.csv", prefix);
+        if ((status = clef_bandpowers_write_cov_csv(res.bp, paths[nwritten])) != CLEF_OK)
+            goto fail;
+        written[nwritten] = paths[nwritten];
+        nwritten++;
+    }
+    if (a.want_json) {
+        snprintf(paths[nwritten], sizeof paths[0], "%s.json", prefix);
+        const char *all[5];
+        for (int i = 0; i < nwritten; i++)
+            all[i] = written[i];
+        all[nwritten] = paths[nwritten];
+        json = summary_json(argc, argv, &a, maps, &so, &res, t_read, clef_wtime() - t_begin,
+                            all, nwritten + 1);
+        if (!json || (status = write_text(paths[nwritten], json)) != CLEF_OK) {
+            if (status == CLEF_OK)
+                status = CLEF_ENOMEM;
+            goto fail;
+        }
+        written[nwritten] = paths[nwritten];
+        nwritten++;
+    }
+    if (cli_verbosity >= 1)
+        print_result(&a, &res);
+    for (int i = 0; i < nwritten; i++)
+        cli_verbose("wrote %s", written[i]);
+    for (int i = 0; i < res.nstages; i++)
+        cli_verbose("time %-10s %8.3f s", res.stage[i].name, res.stage[i].seconds);
+    cli_verbose("time %-10s %8.3f s", "total", clef_wtime() - t_begin);
+
+fail:
+    if (status != CLEF_OK)
+        for (int i = 0; i < nwritten; i++)
+            remove(written[i]);
+    free(json);
+    clef_spectrum_result_free(&res);
+    clef_bins_destroy(bins);
+    free(beam);
+    free(transfer);
+    free(noise);
+    free(theory);
+    for (int i = 0; i < 4; i++)
+        clef_map_free(maps[i]);
+    return status == CLEF_OK ? CLI_EXIT_OK : cli_fail(status);
+}

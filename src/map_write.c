@@ -1,0 +1,165 @@
+/* Writing HEALPix maps as FITS binary tables: RING, implicit index, full
+ * sky, one value per row or vector rows, float32 or float64, plain or gzip,
+ * atomically (clef_outfile_*).  Keywords follow the HEALPix FITS format
+ * specification (Hivon et al. 2020, v0.6.0).  Values stream through a buffer
+ * of CLEF_MAP_CHUNK values. */
+#define _GNU_SOURCE /* mkstemps */
+#include "map_impl.h"
+
+#include <errno.h>
+#include <fitsio.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <unistd.h>
+
+#define CHUNK CLEF_MAP_CHUNK
+
+static int write_fail(int fstatus, const char *path, const char *what)
+{
+    char text[256];
+    clef_map_fits_status(fstatus, text, sizeof text);
+    CLEF_FAIL(fstatus == MEMORY_ALLOCATION ? CLEF_ENOMEM : CLEF_EIO,
+              "cannot write '%s': %s: %s", path, what, text);
+}
+
+static void write_header(fitsfile *f, const clef_map *m, const clef_map_write_opts *opts,
+                         int *st)
+{
+    long long firstpix = 0, lastpix = m->npix - 1, nside = m->nside;
+    double bad = CLEF_BAD_VALUE;
+    fits_write_key(f, TSTRING, "PIXTYPE", "HEALPIX", "HEALPix pixelisation", st);
+    fits_write_key(f, TSTRING, "ORDERING", "RING", "pixel ordering scheme", st);
+    fits_write_key(f, TLONGLONG, "NSIDE", &nside, "resolution parameter", st);
+    fits_write_key(f, TLONGLONG, "FIRSTPIX", &firstpix, "first pixel index (0-based)", st);
+    fits_write_key(f, TLONGLONG, "LASTPIX", &lastpix, "last pixel index (0-based)", st);
+    fits_write_key(f, TSTRING, "INDXSCHM", "IMPLICIT", "row order is pixel order", st);
+    fits_write_key(f, TSTRING, "OBJECT", "FULLSKY", "every pixel is stored", st);
+    if (m->coordsys[0])
+        fits_write_key(f, TSTRING, "COORDSYS", (char *)m->coordsys,
+                       "G galactic, E ecliptic, C celestial", st);
+    fits_write_key(f, TDOUBLE, "BAD_DATA", &bad, "value of missing pixels", st);
+    fits_write_key(f, TSTRING, "CLEFVERS", CLEF_VERSION, "written by clef, this version", st);
+    if (opts && opts->history && *opts->history)
+        fits_write_history(f, opts->history, st);
+}
+
+/* CFITSIO gzips its output when the first ".gz" in the name ends it (it
+ * searches for the first occurrence).  The temporary name from
+ * clef_outfile_begin holds the whole output name, so it cannot serve: make a
+ * second unique file "<folder>/.clef-XXXXXX.gz", which is moved onto the
+ * temporary name once complete. */
+static int gz_temp(const char *tmp_path, char *out, size_t n)
+{
+    const char *slash = strrchr(tmp_path, '/');
+    const int dirlen = slash ? (int)(slash - tmp_path) + 1 : 0;
+    snprintf(out, n, "%.*s.clef-XXXXXX.gz", dirlen, tmp_path);
+    if (strstr(out, ".gz") != out + strlen(out) - 3)
+        CLEF_FAIL(CLEF_EUNSUP, "cannot write gzip output into folder '%.*s': its name contains "
+                  "'.gz'", dirlen, tmp_path);
+    const int fd = mkstemps(out, 3);
+    if (fd < 0)
+        CLEF_FAIL(CLEF_EIO, "cannot create a temporary file '%s': %s", out, strerror(errno));
+    close(fd);
+    return CLEF_OK;
+}
+
+int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opts *opts)
+{
+    if (!m || !m->pix || !m->valid)
+        CLEF_FAIL(CLEF_EINVAL, "clef_map_write: map is NULL or empty");
+    if (!path || !*path)
+        CLEF_FAIL(CLEF_EINVAL, "clef_map_write: no file name given");
+    if (!clef_nside_valid(m->nside) || m->npix != clef_nside_npix(m->nside))
+        CLEF_FAIL(CLEF_EINVAL, "cannot write '%s': map nside %lld / npix %lld is inconsistent",
+                  path, (long long)m->nside, (long long)m->npix);
+    const int64_t rowlen = opts && opts->row_length > 1 ? opts->row_length : 1;
+    if (opts && opts->row_length < 0)
+        CLEF_FAIL(CLEF_EINVAL, "cannot write '%s': row length %d is negative", path,
+                  opts->row_length);
+    if (m->npix % rowlen != 0)
+        CLEF_FAIL(CLEF_EINVAL,
+                  "cannot write '%s': row length %lld does not divide the %lld pixels of nside "
+                  "%lld",
+                  path, (long long)rowlen, (long long)m->npix, (long long)m->nside);
+    const int single = opts && opts->single_precision;
+    const char *colname = opts && opts->column && *opts->column ? opts->column : "TEMPERATURE";
+    const char *unit = opts && opts->unit ? opts->unit : m->unit;
+    const char *extname = opts && opts->extname && *opts->extname ? opts->extname : "SKYMAP";
+
+    clef_outfile of;
+    CLEF_TRY(clef_outfile_begin(&of, path));
+    int status = CLEF_OK, st = 0;
+    fitsfile *f = NULL;
+    double *buf = NULL;
+    const size_t plen = strlen(path);
+    const int gz = plen > 3 && !strcmp(path + plen - 3, ".gz");
+    char gz_path[4200] = "", name[4200];
+    if (gz)
+        CLEF_CHECK(gz_temp(of.tmp_path, gz_path, sizeof gz_path));
+    snprintf(name, sizeof name, "!%s", gz ? gz_path : of.tmp_path);
+    fits_create_file(&f, name, &st);
+    if (st) {
+        f = NULL;
+        status = write_fail(st, path, "cannot create the file");
+        goto fail;
+    }
+    fits_create_img(f, BYTE_IMG, 0, NULL, &st);
+
+    char tform[32];
+    snprintf(tform, sizeof tform, "%lld%c", (long long)rowlen, single ? 'E' : 'D');
+    char *ttype[] = {(char *)colname};
+    char *tforms[] = {tform};
+    char *tunit[] = {(char *)(unit ? unit : "")};
+    fits_create_tbl(f, BINARY_TBL, 0, 1, ttype, tforms, tunit, extname, &st);
+    write_header(f, m, opts, &st);
+    if (st) {
+        status = write_fail(st, path, "cannot write the header");
+        goto fail;
+    }
+
+    const int64_t nbuf = m->npix < CHUNK ? m->npix : CHUNK;
+    buf = malloc((size_t)nbuf * sizeof *buf);
+    if (!buf) {
+        status = clef_fail(CLEF_ENOMEM, "cannot allocate a write buffer for '%s'", path);
+        goto fail;
+    }
+    for (int64_t e0 = 0; e0 < m->npix; e0 += CHUNK) {
+        const int64_t n = m->npix - e0 < CHUNK ? m->npix - e0 : CHUNK;
+        for (int64_t i = 0; i < n; i++)
+            buf[i] = m->valid[e0 + i] ? m->pix[e0 + i] : CLEF_BAD_VALUE;
+        fits_write_col(f, TDOUBLE, 1, e0 / rowlen + 1, e0 % rowlen + 1, n, buf, &st);
+        if (st) {
+            status = write_fail(st, path, "cannot write the map values");
+            goto fail;
+        }
+        clef_progress("writing map", (double)(e0 + n) / (double)m->npix);
+    }
+    fits_write_chksum(f, &st);
+    fits_close_file(f, &st);
+    f = NULL;
+    if (st) {
+        status = write_fail(st, path, "cannot finish the file");
+        goto fail;
+    }
+    free(buf);
+    buf = NULL;
+    if (gz && rename(gz_path, of.tmp_path) != 0) {
+        status = clef_fail(CLEF_EIO, "cannot rename '%s' to '%s': %s", gz_path, of.tmp_path,
+                           strerror(errno));
+        goto fail;
+    }
+    return clef_outfile_commit(&of);
+
+fail:
+    if (f) {
+        int st2 = 0;
+        fits_close_file(f, &st2);
+        fits_clear_errmsg();
+    }
+    free(buf);
+    if (gz_path[0])
+        unlink(gz_path);
+    clef_outfile_abort(&of);
+    return status;
+}

@@ -1,0 +1,32 @@
+/* Private pieces of the spectrum estimator. */
+#ifndef CLEF_SPECTRUM_IMPL_H
+#define CLEF_SPECTRUM_IMPL_H
+
+#include "clef/bins.h"
+#include "clef/coupling.h"
+#include "clef/spectrum.h"
+
+/* Inputs of the band-power covariance (spectrum_cov.c). */
+typedef struct clef_spectrum_cov_in {
+    int lmax;                   /* multipoles decoupled */
+    int lmax_t;                 /* multipoles of the mask spectra */
+    int cross;                  /* 1: cross-spectrum of two maps */
+    const clef_bins *bins;
+    const clef_coupling_binned *kb;
+    double *const *pcl;         /* pseudo-spectra before noise subtraction:
+                                   [0] map1 x map2 (or auto), [1] map1 auto, [2] map2 auto */
+    double w2[3];               /* mean of w_a w_b for the pairs of pcl[0..2] */
+    const double *tl;           /* signal filter F B^2 p^2, l = 0..lmax */
+    const double *wl2;          /* spectrum of the product mask w_a w_b, l = 0..lmax_t */
+    const clef_spectrum_opts *opts;
+} clef_spectrum_cov_in;
+
+/* Covariance of the decoupled band powers (nbins x nbins, row-major). */
+int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov);
+
+/* Unbinned coupling matrix of a mask spectrum, through the cache when the
+ * options allow it. */
+int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
+                           const clef_spectrum_opts *o);
+
+#endif
