@@ -279,6 +279,19 @@ static const char *base_name(const char *path)
 
 /* Title from the table's metadata: the input maps and mask and the nside,
  * when the table records them; else the table's file name. */
+/* First non-empty value among the keys, or NULL. */
+static const char *first_meta(const clef_bandpowers *bp, const char *const *keys, size_t nkeys)
+{
+    for (size_t i = 0; i < nkeys; i++) {
+        const char *v = clef_bandpowers_meta_get(bp, keys[i]);
+        if (v && *v)
+            return v;
+    }
+    return NULL;
+}
+
+#define FIRST_META(bp, keys) first_meta((bp), (keys), sizeof(keys) / sizeof *(keys))
+
 static void make_title(const clef_bandpowers *bp, const clef_plot_spectrum_opts *o, char *buf,
                        size_t n)
 {
@@ -286,32 +299,31 @@ static void make_title(const clef_bandpowers *bp, const clef_plot_spectrum_opts 
         snprintf(buf, n, "%s", o->title);
         return;
     }
-    /* docs/formats.md names the input map MAPFILE; the others are accepted
+    /* `clef spectrum` records MAP1, MAP2, MASK1, MASK2 and NSIDE; the
+     * MAPFILE spelling of docs/formats.md and plain MAP/MASK are accepted
      * for tables assembled by hand. */
-    static const char *map_keys[] = {"MAPFILE", "MAPFILE1", "MAP", "MAP1"};
-    static const char *map2_keys[] = {"MAPFILE2", "MAP2"};
-    const char *map = NULL, *map2 = NULL;
-    for (size_t i = 0; i < sizeof map_keys / sizeof *map_keys && !map; i++)
-        map = clef_bandpowers_meta_get(bp, map_keys[i]);
-    for (size_t i = 0; i < sizeof map2_keys / sizeof *map2_keys && !map2; i++)
-        map2 = clef_bandpowers_meta_get(bp, map2_keys[i]);
-    const char *mask = clef_bandpowers_meta_get(bp, "MASK");
-    if (!mask)
-        mask = clef_bandpowers_meta_get(bp, "MASKFILE");
+    static const char *const map_keys[] = {"MAP1", "MAPFILE", "MAPFILE1", "MAP"};
+    static const char *const map2_keys[] = {"MAP2", "MAPFILE2"};
+    static const char *const mask_keys[] = {"MASK1", "MASK", "MASKFILE"};
+    static const char *const mask2_keys[] = {"MASK2"};
+    const char *map = FIRST_META(bp, map_keys), *map2 = FIRST_META(bp, map2_keys);
+    const char *mask = FIRST_META(bp, mask_keys), *mask2 = FIRST_META(bp, mask2_keys);
     const char *nside = clef_bandpowers_meta_get(bp, "NSIDE");
+    if (mask && mask2 && !strcmp(mask, mask2))
+        mask2 = NULL;
     size_t k = 0;
     buf[0] = '\0';
     if (map) {
         k += snprintf(buf + k, n - k, "%s", base_name(map));
         if (map2 && k < n)
             k += snprintf(buf + k, n - k, " \xc3\x97 %s", base_name(map2));
-    } else if (o->source) {
-        k += snprintf(buf + k, n - k, "%s", base_name(o->source));
     } else {
-        k += snprintf(buf + k, n - k, "band powers");
+        k += snprintf(buf + k, n - k, "%s", o->source ? base_name(o->source) : "band powers");
     }
     if (mask && k < n)
         k += snprintf(buf + k, n - k, ", mask %s", base_name(mask));
+    if (mask2 && k < n)
+        k += snprintf(buf + k, n - k, " / %s", base_name(mask2));
     if (nside && k < n)
         snprintf(buf + k, n - k, ", nside %s", nside);
 }

@@ -774,7 +774,10 @@ static void test_titles_and_captions(void **state)
         bp->dl[b] = 1000 + 100 * b;
         bp->dl_err[b] = 50;
     }
-    assert_int_equal(clef_bandpowers_meta_text(bp, "MAPFILE", "maps/sky.fits", NULL), CLEF_OK);
+    /* The keys `clef spectrum` records (src/spectrum.c). */
+    assert_int_equal(clef_bandpowers_meta_text(bp, "MAP1", "maps/sky.fits", NULL), CLEF_OK);
+    assert_int_equal(clef_bandpowers_meta_text(bp, "MAP2", "maps/sky2.fits", NULL), CLEF_OK);
+    assert_int_equal(clef_bandpowers_meta_text(bp, "MASK1", "masks/gal20.fits", NULL), CLEF_OK);
     assert_int_equal(clef_bandpowers_meta_number(bp, "NSIDE", 512, NULL), CLEF_OK);
     const char *pdf = test_path("titles.pdf");
     clef_plot_spectrum_opts so = {0};
@@ -783,6 +786,8 @@ static void test_titles_and_captions(void **state)
     char *t = pdf_text(pdf);
     assert_non_null(t);
     assert_non_null(strstr(t, "sky.fits"));
+    assert_non_null(strstr(t, "sky2.fits"));
+    assert_non_null(strstr(t, "mask gal20.fits"));
     assert_non_null(strstr(t, "nside 512"));
     assert_null(strstr(t, "bp.fits"));
     free(t);
