@@ -64,6 +64,11 @@ write_map(t + "/map.fits", 16, rng.normal(0, 70, npix), "uK")
 mask = np.ones(npix); mask[: npix // 3] = 0
 write_map(t + "/mask.fits", 16, mask)
 write_map(t + "/mask8.fits", 8, np.ones(12 * 64))
+# nside 64 white noise and a band mask, for a table made by clef spectrum
+npix = 12 * 64 ** 2
+write_map(t + "/noise64.fits", 64, rng.normal(0, 50, npix), "uK")
+band = np.ones(npix); band[npix // 2 - npix // 10: npix // 2 + npix // 10] = 0
+write_map(t + "/band64.fits", 64, band)
 x = np.linspace(-0.1, 0.1, 101)
 json.dump({"omega_k": {"best": -0.01, "lo68": -0.03, "hi68": 0.01, "lo95": -0.05, "hi95": 0.03},
            "classification": "flat", "acoustic_scale_deg": 0.81, "l_peak": 221.0, "l_peak_err": 6.0,
@@ -80,6 +85,13 @@ expect 0 "$BIN" plot spectrum "$T/bp.txt" -o "$T/s.svg" --log-l --quiet --theory
 svg_ok "$T/s.svg" || fail "spectrum SVG not well-formed"
 expect 0 "$BIN" plot spectrum "$T/bp.txt" -o "$T/s.pdf" --no-peak --title "T"
 pdfinfo "$T/s.pdf" >/dev/null 2>&1 || fail "spectrum PDF does not open"
+
+# a table written by clef spectrum itself (header keys for the title, a
+# recorded "no peak" for white noise: drawn without a marker)
+expect 0 "$BIN" spectrum "$T/noise64.fits" --mask "$T/band64.fits" -o "$T/sp" --quiet
+expect 0 "$BIN" plot spectrum "$T/sp.fits" -o "$T/sp.svg"
+svg_ok "$T/sp.svg" || fail "SVG of a clef spectrum table not well-formed"
+expect 0 "$BIN" plot spectrum "$T/sp.csv" -o "$T/sp.png" --log-l
 
 # map, mask, map x mask
 expect 0 "$BIN" plot map "$T/map.fits" -o "$T/m.png" --width 400
