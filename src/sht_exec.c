@@ -14,8 +14,10 @@
  * in a fixed order by one thread, so results do not depend on the number of
  * threads.
  */
+#define _POSIX_C_SOURCE 200809L
 #include <math.h>
 #include <string.h>
+#include <time.h>
 
 #include <omp.h>
 
@@ -23,6 +25,28 @@
 #include "sht_impl.h"
 
 #define BL CLEF_SHT_BLOCK
+
+/* Stage timer: wall and process CPU seconds. */
+typedef struct stamp {
+    double w;
+} stamp;
+
+static stamp now(void) { return (stamp){clef_wtime()}; }
+
+static void add_since(stamp t0, double *w)
+{
+    *w += now().w - t0.w;
+}
+
+/* CPU seconds of the calling thread: summed over the threads of a stage,
+ * excluding waits at its end, it measures the work itself even when other
+ * programs time-share the cores. */
+static double thread_cpu(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_THREAD_CPUTIME_ID, &ts);
+    return (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec;
+}
 
 static int nthreads_for(const clef_sht *p)
 {
@@ -56,9 +80,8 @@ static void ring_analysis(const clef_sht *p, clef_sht_thread *th, int r, const d
                           double complex *out, int nmaps)
 {
     const int n = p->ring_npix[r], shift = p->ring_shift[r];
-    memcpy(th->ring, pix, (size_t)n * sizeof(double));
-    fftw_execute_dft_r2c(p->plan_r2c[n / 4 - 1], th->ring, th->four);
-    const double complex *c = (const double complex *)th->four;
+    double complex *c = (double complex *)th->four;
+    clef_sht_ring_r2c(p, th, n, pix, c);
     const double wt = p->ring_w[r] * p->domega;
     int k = 0;
     for (int m = 0; m <= p->mmax; m++) {
@@ -93,9 +116,7 @@ static void ring_synthesis(const clef_sht *p, clef_sht_thread *th, int r,
         if (++k == n)
             k = 0;
     }
-    c[0] = creal(c[0]);
-    c[n / 2] = creal(c[n / 2]);
-    fftw_execute_dft_c2r(p->plan_c2r[n / 4 - 1], th->four, th->ring);
+    clef_sht_ring_c2r(p, th, n, c);
 }
 
 static inline double *phase_at_m(const clef_sht *p, int j, int m, int b)
@@ -111,7 +132,10 @@ static void fft_stage(const clef_sht *p, enum fft_mode mode, int b0, int nb, int
                       const double *const *map, double *const *out)
 {
     const int q0 = b0 * BL, q1 = (b0 + nb) * BL;
-#pragma omp parallel for schedule(dynamic, 4) num_threads(nthreads_for(p))
+#pragma omp parallel num_threads(nthreads_for(p))
+    {
+    const double c0 = thread_cpu();
+#pragma omp for schedule(dynamic, 4) nowait
     for (int q = q0; q < q1; q++) {
         clef_sht_thread *th = &p->thr[omp_get_thread_num()];
         const int b = q / BL - b0, lane = q % BL;
@@ -169,6 +193,10 @@ static void fft_stage(const clef_sht *p, enum fft_mode mode, int b0, int nb, int
                 ph[3 * BL + lane] = cimag(fn - fs);
             }
     }
+    const double dc = thread_cpu() - c0;
+#pragma omp atomic
+    p->state->c_fft += dc;
+    }
 }
 
 /* Legendre stage, analysis: alm[j] += contributions of the chunk's pairs. */
@@ -176,7 +204,10 @@ static void legendre_analysis(const clef_sht *p, int b0, int nb, int nmaps,
                               double complex *const *alm)
 {
     const int lmax = p->lmax;
-#pragma omp parallel for schedule(dynamic, 1) num_threads(nthreads_for(p))
+#pragma omp parallel num_threads(nthreads_for(p))
+    {
+    const double c0 = thread_cpu();
+#pragma omp for schedule(dynamic, 1) nowait
     for (int m = 0; m <= p->mmax; m++) {
         clef_sht_thread *th = &p->thr[omp_get_thread_num()];
         clef_sht_mtab *t = &th->tab;
@@ -196,6 +227,10 @@ static void legendre_analysis(const clef_sht *p, int b0, int nb, int nmaps,
                 alm[j][clef_alm_index(lmax, l, m)] += t->sigma[l] * (re + I * im);
             }
     }
+    const double dc = thread_cpu() - c0;
+#pragma omp atomic
+    p->state->c_leg += dc;
+    }
 }
 
 /* Legendre stage, synthesis: the chunk's phase array from alm. */
@@ -203,7 +238,10 @@ static void legendre_synthesis(const clef_sht *p, int b0, int nb, int nmaps,
                                const double complex *const *alm)
 {
     const int lmax = p->lmax;
-#pragma omp parallel for schedule(dynamic, 1) num_threads(nthreads_for(p))
+#pragma omp parallel num_threads(nthreads_for(p))
+    {
+    const double c0 = thread_cpu();
+#pragma omp for schedule(dynamic, 1) nowait
     for (int m = 0; m <= p->mmax; m++) {
         clef_sht_thread *th = &p->thr[omp_get_thread_num()];
         clef_sht_mtab *t = &th->tab;
@@ -213,6 +251,10 @@ static void legendre_synthesis(const clef_sht *p, int b0, int nb, int nmaps,
                 th->bl[(size_t)l * nmaps + j] = t->sigma[l] * alm[j][clef_alm_index(lmax, l, m)];
         clef_sht_kernel_synthesis(t, nb, p->pair_x + (size_t)b0 * BL, p->pair_sth + (size_t)b0 * BL,
                                   phase_at_m(p, 0, m, 0), p->phase_stride, nmaps, th->bl);
+    }
+    const double dc = thread_cpu() - c0;
+#pragma omp atomic
+    p->state->c_leg += dc;
     }
 }
 
@@ -239,17 +281,18 @@ static void analysis_pass(const clef_sht *p, int nmaps, const double *const *map
         memset(acc[j], 0, nalm * sizeof(double complex));
     for (int b0 = 0; b0 < p->nblocks; b0 += p->chunk_blocks) {
         const int nb = p->nblocks - b0 < p->chunk_blocks ? p->nblocks - b0 : p->chunk_blocks;
-        double t0 = clef_wtime();
+        clef_sht_state *st = p->state;
+        stamp t0 = now();
         if (prev) {
             legendre_synthesis(p, b0, nb, nmaps, prev);
-            p->state->t_leg += clef_wtime() - t0;
-            t0 = clef_wtime();
+            add_since(t0, &st->t_leg);
+            t0 = now();
         }
         fft_stage(p, prev ? FFT_RESIDUAL : FFT_ANALYSIS, b0, nb, nmaps, map, NULL);
-        const double t1 = clef_wtime();
-        p->state->t_fft += t1 - t0;
+        add_since(t0, &st->t_fft);
+        t0 = now();
         legendre_analysis(p, b0, nb, nmaps, acc);
-        p->state->t_leg += clef_wtime() - t1;
+        add_since(t0, &st->t_leg);
     }
 }
 
@@ -262,7 +305,7 @@ int clef_sht_analysis(const clef_sht *p, int nmaps, const double *const *map,
     for (int j = 0; j < nmaps; j++)
         if (!map[j] || !alm[j])
             CLEF_FAIL(CLEF_EINVAL, "sht analysis: map or a_lm array %d is NULL", j);
-    p->state->t_fft = p->state->t_leg = 0.0;
+    memset(p->state, 0, sizeof *p->state);
     analysis_pass(p, nmaps, map, NULL, alm);
     const size_t nalm = clef_alm_size(p->lmax, p->mmax);
     double complex *delta[64];
@@ -288,15 +331,15 @@ int clef_sht_synthesis(const clef_sht *p, int nmaps, const double complex *const
     for (int j = 0; j < nmaps; j++)
         if (!map[j] || !alm[j])
             CLEF_FAIL(CLEF_EINVAL, "sht synthesis: map or a_lm array %d is NULL", j);
-    p->state->t_fft = p->state->t_leg = 0.0;
+    memset(p->state, 0, sizeof *p->state);
     for (int b0 = 0; b0 < p->nblocks; b0 += p->chunk_blocks) {
         const int nb = p->nblocks - b0 < p->chunk_blocks ? p->nblocks - b0 : p->chunk_blocks;
-        const double t0 = clef_wtime();
+        stamp t0 = now();
         legendre_synthesis(p, b0, nb, nmaps, alm);
-        const double t1 = clef_wtime();
+        add_since(t0, &p->state->t_leg);
+        t0 = now();
         fft_stage(p, FFT_SYNTHESIS, b0, nb, nmaps, NULL, map);
-        p->state->t_leg += t1 - t0;
-        p->state->t_fft += clef_wtime() - t1;
+        add_since(t0, &p->state->t_fft);
     }
     return CLEF_OK;
 }

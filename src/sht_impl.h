@@ -30,7 +30,7 @@
 #define CLEF_SHT_VL 8
 /* Vectors in flight per block: enough independent recurrence chains to
  * cover the FMA latency (PERFORMANCE.md section 2 item 3). */
-#define CLEF_SHT_NV 2
+#define CLEF_SHT_NV 4
 #define CLEF_SHT_BLOCK (CLEF_SHT_VL * CLEF_SHT_NV)
 /* Doubles per (m, block, map) in the phase array: 2 parities x re/im x lanes. */
 #define CLEF_SHT_BLOCKDBL (4 * CLEF_SHT_BLOCK)
@@ -59,6 +59,12 @@ typedef struct clef_sht_thread {
     double *ring;           /* fftw_malloc: 4 nside doubles (FFT input/output) */
     fftw_complex *four;     /* fftw_malloc: 2 nside + 1 */
     double complex *ph1, *ph2; /* phase factors e^{-i m phi0}: m mod 64, 64 (m / 64) */
+    /* Bluestein ring DFT (sht_fft.c): chirp and filter spectrum for ring
+     * length blu_n (cached: north and south rings share it), work arrays. */
+    int blu_n;
+    double complex *chirp;  /* fftw_malloc, 4 nside */
+    fftw_complex *bspec, *bw1, *bw2; /* fftw_malloc, blu_nmax each */
+    fftw_complex *four2;    /* fftw_malloc, 4 nside: full-length ring spectrum */
     double complex *fn;     /* (mmax+1) x nmaps: north-ring coefficients */
     double complex *fs;     /* (mmax+1) x nmaps: south-ring coefficients */
     clef_sht_mtab tab;
@@ -68,7 +74,8 @@ typedef struct clef_sht_thread {
 
 /* Mutable state reached through the const plan: timings of the last call. */
 typedef struct clef_sht_state {
-    double t_fft, t_leg;
+    double t_fft, t_leg; /* wall seconds */
+    double c_fft, c_leg; /* process CPU seconds (all threads) */
 } clef_sht_state;
 
 struct clef_sht {
@@ -84,8 +91,13 @@ struct clef_sht {
     int *ring_shift;          /* phi0 = ring_shift * pi / npix_r (0 or 1) */
     /* Per pair, padded to nblocks * BLOCK (pads: x = 0, sin theta = 1). */
     double *pair_x, *pair_sth;
-    /* FFTW plans per ring length n = 4 i, i = 1..nside (index i - 1). */
+    /* FFTW plans per ring length n = 4 i, i = 1..nside (index i - 1), for
+     * the belt length and short cap rings; NULL where the ring DFT goes
+     * through Bluestein's algorithm on power-of-two plans (sht_fft.c). */
     fftw_plan *plan_r2c, *plan_c2r;
+    fftw_plan *pow2_fwd, *pow2_bwd; /* complex FFTs of length 2^k, k = 0..blu_log2 */
+    int blu_log2;
+    size_t blu_nmax;
     double domega;            /* pixel solid angle 4 pi / npix */
     double *phase;            /* nmaps x (mmax+1) x chunk_blocks x BLOCKDBL */
     size_t phase_stride;      /* doubles per map in phase */
@@ -94,6 +106,18 @@ struct clef_sht {
     clef_sht_thread *thr;
     clef_sht_state *state;
 };
+
+/* sht_fft.c: ring DFTs.  r2c: n real values -> n/2 + 1 coefficients
+ * (FFTW convention e^{-2 pi i j k / n}, unnormalised); c2r: the inverse
+ * direction (e^{+2 pi i j k / n}), imaginary parts of k = 0 and n/2 ignored. */
+int clef_sht_fft_plan(clef_sht *p, unsigned flags);
+void clef_sht_fft_destroy(clef_sht *p);
+int clef_sht_fft_thread_alloc(const clef_sht *p, clef_sht_thread *th);
+void clef_sht_fft_thread_free(clef_sht_thread *th);
+void clef_sht_ring_r2c(const clef_sht *p, clef_sht_thread *th, int n, const double *in,
+                       double complex *out);
+/* Result in th->ring; `in` (n/2 + 1 values) is overwritten. */
+void clef_sht_ring_c2r(const clef_sht *p, clef_sht_thread *th, int n, double complex *in);
 
 /* sht_weights.c: quadrature weights per ring (nrings values). */
 int clef_sht_ring_weights_compute(const clef_sht *p, double *w);

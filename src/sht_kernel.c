@@ -7,96 +7,174 @@
  *    even (l - m even) and odd sums, so the north ring gets E + O and the
  *    south ring E - O (lambda_lm(-z) = (-1)^(l+m) lambda_lm(z); Schaeffer
  *    2013, G-cubed 14, 751).
- * A block holds CLEF_SHT_NV vectors of CLEF_SHT_VL pairs: two independent
- * recurrence chains cover the FMA latency (PERFORMANCE.md section 2).
+ * A block holds NV = CLEF_SHT_NV vectors of VL pairs: NV independent
+ * recurrence chains cover the FMA latency (4 cycles, 2 pipes: one
+ * recurrence step per chain costs a multiply and an FMA, so 4 chains keep
+ * both pipes busy; PERFORMANCE.md section 2 items 3-5).
  *
  * Each block starts in the scaled phase: lanes whose value is still below
- * 2^-RADIX (in mu units, i.e. |lambda| < 2^(SIGSTEP + 8 - RADIX) = 2^-128)
- * carry an integer deficit and contribute nothing.  Once every lane is in
- * range the block switches to the plain loop: one multiply and one FMA per
- * recurrence step, two FMAs per map and step for the accumulation.
+ * 2^-RADIX (in mu units) carry an integer deficit and contribute nothing.
+ * While no lane is in range the recurrence runs SKIP steps between checks
+ * (|mu| grows at most by |x| + 1/3 <= 4/3 per step, since c_l <= 1/3), so
+ * a lane may enter late by < SKIP steps: terms with |lambda_lm| < 2^-124
+ * (mu < 2^-200 (4/3)^8, sigma < 2^72) can be dropped, never larger ones.
+ * Once every lane is in range the block switches to the plain loop: one
+ * multiply and one FMA per recurrence step, two FMAs per map and step for
+ * the accumulation (PERFORMANCE.md section 2 item 4).
  */
 #include <math.h>
+#include <stdint.h>
 #include <string.h>
 
 #include "sht_impl.h"
 
+#if defined(__AVX512F__)
+#include <immintrin.h>
+#endif
+
+/* ISO C mode (-std=c11) turns off floating-point contraction; the kernels
+ * are written for fused multiply-adds (one rounding instead of two, and
+ * half the instructions), so allow contraction in this file. */
+#pragma GCC optimize("fp-contract=fast")
+
 #define VL CLEF_SHT_VL
+#define NV CLEF_SHT_NV
 #define BL CLEF_SHT_BLOCK
-#define NMGROUP 4 /* maps sharing one pass of the recurrence */
+#define NMGROUP 2 /* maps sharing one pass of the recurrence */
+#define SKIP 8    /* steps between checks while no lane is in range */
 
 typedef long long clef_vl __attribute__((vector_size(VL * sizeof(long long))));
 
 #define ALWAYS_INLINE static inline __attribute__((always_inline))
+#define UNROLL _Pragma("GCC unroll 8")
 
-/* State of one block: mu_{l-1}, mu_{l-2} for both vectors. */
+/* State of one block: mu_{l-1}, mu_{l-2} per vector. */
 typedef struct blockstate {
-    clef_vd x[2], mu1[2], mu2[2];
-    clef_vd live[2];  /* 1.0 where the lane's deficit is 0 */
+    clef_vd x[NV], mu1[NV], mu2[NV];
+    clef_vd live[NV]; /* 1.0 where the lane's deficit is 0, else 0.0 */
+    clef_vd thr[NV];  /* 1.0 where the lane is in deficit, else +inf */
     int k[BL];        /* deficit per lane */
-    int kmax;
+    int kmax, nlive;
 } blockstate;
 
+/* frexp on vectors of positive normal doubles: v = result * 2^(added to *e). */
+ALWAYS_INLINE clef_vd vsplit(clef_vd v, clef_vl *e)
+{
+    clef_vl u;
+    memcpy(&u, &v, sizeof u);
+    *e += ((u >> 52) & 0x7ff) - 1022;
+    u = (u & ~(0x7ffLL << 52)) | (1022LL << 52);
+    memcpy(&v, &u, sizeof v);
+    return v;
+}
+
+/* 2^s for -1022 <= s <= 1023, exactly. */
+static inline double pow2i(int s)
+{
+    const uint64_t u = (uint64_t)(s + 1023) << 52;
+    double v;
+    memcpy(&v, &u, sizeof v);
+    return v;
+}
+
+/* lambda_mm for every lane as mant * 2^e (same binary powering as
+ * clef_sht_lambda_mm, all lanes at once: they share m), then the deficit
+ * representation mant * 2^(-RADIX k) with the mantissa exponent in
+ * (-RADIX, 0]. */
 static void block_start(blockstate *s, const clef_sht_mtab *t, const double *x, const double *sth)
 {
-    s->kmax = 0;
-    for (int i = 0; i < BL; i++) {
-        double mant;
-        int e, k = 0;
-        clef_sht_lambda_mm(t, sth[i], &mant, &e);
-        if (e < 0)
-            k = -e / CLEF_SHT_RADIX;
-        mant = ldexp(mant, e + CLEF_SHT_RADIX * k);
-        s->k[i] = k;
-        if (k > s->kmax)
-            s->kmax = k;
-        s->x[i / VL][i % VL] = x[i];
-        s->mu1[i / VL][i % VL] = mant;
-        s->mu2[i / VL][i % VL] = 0.0;
-        s->live[i / VL][i % VL] = k == 0 ? 1.0 : 0.0;
+    const int m = t->m;
+    clef_vd r[NV], pw[NV];
+    clef_vl er[NV], ep[NV], be[NV];
+    for (int v = 0; v < NV; v++) {
+        clef_vd sv;
+        memcpy(&sv, sth + v * VL, sizeof sv);
+        be[v] = er[v] = ep[v] = (clef_vl){0};
+        pw[v] = vsplit(sv, &be[v]);
+        r[v] = pw[v] * 0.0 + 1.0;
     }
+    for (int n = m; n;) {
+        for (int v = 0; v < NV; v++) {
+            if (n & 1) {
+                r[v] = vsplit(r[v] * pw[v], &er[v]);
+                er[v] += ep[v];
+            }
+            if (n >> 1) {
+                ep[v] += ep[v];
+                pw[v] = vsplit(pw[v] * pw[v], &ep[v]);
+            }
+        }
+        n >>= 1;
+    }
+    const double pref = (m & 1) ? -t->pref : t->pref; /* Condon-Shortley (-1)^m */
+    s->kmax = 0;
+    s->nlive = 0;
+    for (int v = 0; v < NV; v++) {
+        clef_vl e = er[v] + be[v] * (long long)m;
+        const clef_vd mant = vsplit(r[v] * fabs(pref), &e);
+        for (int i = 0; i < VL; i++) {
+            const int li = v * VL + i;
+            const long long ex = e[i];
+            int k = 0;
+            if (ex < 0)
+                k = (int)(-ex / CLEF_SHT_RADIX);
+            const double val =
+                (pref < 0 ? -mant[i] : mant[i]) * pow2i((int)(ex + CLEF_SHT_RADIX * (long long)k));
+            s->k[li] = k;
+            s->kmax = k > s->kmax ? k : s->kmax;
+            s->nlive += k == 0;
+            s->x[v][i] = x[li];
+            s->mu1[v][i] = val;
+            s->mu2[v][i] = 0.0;
+            s->live[v][i] = k == 0 ? 1.0 : 0.0;
+            s->thr[v][i] = k == 0 ? INFINITY : 1.0;
+        }
+    }
+}
+
+/* 1 if |mu| >= thr in any lane of any vector. */
+ALWAYS_INLINE int any_reached(const clef_vd *mu, const clef_vd *thr)
+{
+#if defined(__AVX512F__) && CLEF_SHT_VL == 8
+    /* One compare into a mask register per vector, no lane extraction. */
+    __mmask8 a = 0;
+    for (int v = 0; v < NV; v++)
+        a |= _mm512_cmp_pd_mask(_mm512_abs_pd((__m512d)mu[v]), (__m512d)thr[v], _CMP_GE_OQ);
+    return a != 0;
+#else
+    clef_vl m = (clef_vl){0};
+    for (int v = 0; v < NV; v++)
+        m |= (mu[v] >= thr[v]) | (mu[v] <= -thr[v]);
+    long long acc = 0;
+    for (int i = 0; i < VL; i++)
+        acc |= m[i];
+    return acc != 0;
+#endif
 }
 
 /* After computing mu_l (in mu[]): renormalise lanes in deficit whose value
- * reached 1.  Returns 1 if any lane changed. */
-static int block_renorm(blockstate *s, clef_vd mu[2])
+ * reached 1 in magnitude. */
+static void block_renorm(blockstate *s, clef_vd *mu)
 {
+    if (__builtin_expect(!any_reached(mu, s->thr), 1))
+        return;
     static const double down = 0x1p-200;
     _Static_assert(CLEF_SHT_RADIX == 200, "down must be 2^-RADIX");
-    int changed = 0;
-    for (int v = 0; v < 2; v++) {
-        clef_vl big = (mu[v] >= 1.0) | (mu[v] <= -1.0);
-        long long anybig = 0;
-        for (int i = 0; i < VL; i++)
-            anybig |= big[i] & (long long)(s->k[v * VL + i] > 0);
-        if (!anybig)
-            continue;
-        for (int i = 0; i < VL; i++) {
-            const int li = v * VL + i;
-            if (s->k[li] > 0 && fabs(mu[v][i]) >= 1.0) {
-                mu[v][i] *= down;
-                s->mu1[v][i] *= down;
-                if (--s->k[li] == 0)
-                    s->live[v][i] = 1.0;
-                changed = 1;
+    int kmax = 0;
+    for (int li = 0; li < BL; li++) {
+        const int v = li / VL, i = li % VL;
+        if (s->k[li] > 0 && fabs(mu[v][i]) >= 1.0) {
+            mu[v][i] *= down;
+            s->mu1[v][i] *= down;
+            if (--s->k[li] == 0) {
+                s->live[v][i] = 1.0;
+                s->thr[v][i] = INFINITY;
+                s->nlive++;
             }
         }
+        kmax = s->k[li] > kmax ? s->k[li] : kmax;
     }
-    if (changed) {
-        int kmax = 0;
-        for (int i = 0; i < BL; i++)
-            kmax = s->k[i] > kmax ? s->k[i] : kmax;
-        s->kmax = kmax;
-    }
-    return changed;
-}
-
-ALWAYS_INLINE int any_live(const blockstate *s)
-{
-    for (int i = 0; i < BL; i++)
-        if (s->k[i] == 0)
-            return 1;
-    return 0;
+    s->kmax = kmax;
 }
 
 /* Scale mu_{l-1}, mu_{l-2} by 2^SIGSTEP where sigma was renormalised. */
@@ -104,16 +182,79 @@ ALWAYS_INLINE void block_rescale(blockstate *s)
 {
     static const double up = 0x1p64;
     _Static_assert(CLEF_SHT_SIGSTEP == 64, "up must be 2^SIGSTEP");
-    for (int v = 0; v < 2; v++) {
+    for (int v = 0; v < NV; v++) {
         s->mu1[v] *= up;
         s->mu2[v] *= up;
     }
 }
 
+/* Recurrence only, SKIP steps from l (no rescale point inside), while no
+ * lane is in range; then one renormalisation check. */
+static void block_skip(blockstate *s, const double *c, int l)
+{
+    clef_vd a[NV], b[NV];
+    for (int v = 0; v < NV; v++) {
+        a[v] = s->mu1[v];
+        b[v] = s->mu2[v];
+    }
+    UNROLL
+    for (int q = 0; q < SKIP; q++) {
+        const double cl = c[l + q];
+        for (int v = 0; v < NV; v++) {
+            const clef_vd n = s->x[v] * a[v] - cl * b[v];
+            b[v] = a[v];
+            a[v] = n;
+        }
+    }
+    /* a = mu_{l+SKIP-1}, b = mu_{l+SKIP-2}: block_renorm scales the current
+     * value and s->mu1 (its predecessor) together. */
+    for (int v = 0; v < NV; v++)
+        s->mu1[v] = b[v];
+    block_renorm(s, a);
+    for (int v = 0; v < NV; v++) {
+        s->mu2[v] = s->mu1[v];
+        s->mu1[v] = a[v];
+    }
+}
+
+/* The scaled phase up to the first l at which every lane is in range (or
+ * lmax + 1); `acc` is called for each l with mu times the live mask when
+ * some lane is live.  Returns the next l; *ir is the next rescale index. */
+#define SCALED_PHASE(ACC)                                                                    \
+    do {                                                                                     \
+        for (; l <= lmax && s.kmax > 0;) {                                                   \
+            const int next_rs = ir < t->nrescale ? t->rescale[ir] : lmax + 1;                \
+            if (s.nlive == 0 && l + SKIP <= next_rs && l + SKIP <= lmax + 1) {               \
+                block_skip(&s, t->c, l);                                                     \
+                l += SKIP;                                                                   \
+                continue;                                                                    \
+            }                                                                                \
+            if (l == next_rs) {                                                              \
+                block_rescale(&s);                                                           \
+                ir++;                                                                        \
+            }                                                                                \
+            clef_vd mu[NV];                                                                  \
+            for (int v = 0; v < NV; v++)                                                     \
+                mu[v] = s.x[v] * s.mu1[v] - t->c[l] * s.mu2[v];                              \
+            block_renorm(&s, mu);                                                            \
+            if (s.nlive) {                                                                   \
+                clef_vd mul[NV];                                                             \
+                for (int v = 0; v < NV; v++)                                                 \
+                    mul[v] = mu[v] * s.live[v];                                              \
+                ACC;                                                                         \
+            }                                                                                \
+            for (int v = 0; v < NV; v++) {                                                   \
+                s.mu2[v] = s.mu1[v];                                                         \
+                s.mu1[v] = mu[v];                                                            \
+            }                                                                                \
+            l++;                                                                             \
+        }                                                                                    \
+    } while (0)
+
 /* ---------------------------------------------------------------- analysis */
 
 /* Accumulate mu (times live in the scaled phase) into abuf at l. */
-ALWAYS_INLINE void ana_acc(int nm, const double *const *pb, int par, const clef_vd mu[2],
+ALWAYS_INLINE void ana_acc(int nm, const double *const *pb, int par, const clef_vd *mu,
                            double *abuf, int l, int nmaps, int j0)
 {
     for (int j = 0; j < nm; j++) {
@@ -121,80 +262,73 @@ ALWAYS_INLINE void ana_acc(int nm, const double *const *pb, int par, const clef_
         clef_vd re, im;
         memcpy(&re, ab, sizeof re);
         memcpy(&im, ab + VL, sizeof im);
-        for (int v = 0; v < 2; v++) {
+        for (int v = 0; v < NV; v++) {
             clef_vd fre, fim;
             memcpy(&fre, pb[j] + (par * 2 + 0) * BL + v * VL, sizeof fre);
             memcpy(&fim, pb[j] + (par * 2 + 1) * BL + v * VL, sizeof fim);
-            re += mu[v] * fre;
-            im += mu[v] * fim;
+            re = re + mu[v] * fre;
+            im = im + mu[v] * fim;
         }
         memcpy(ab, &re, sizeof re);
         memcpy(ab + VL, &im, sizeof im);
     }
 }
 
+/* One plain step at l with parity slot q of F; updates a (mu_{l-1}) and
+ * b (mu_{l-2}) in place. */
+#define ANA_STEP(q, L)                                                                       \
+    do {                                                                                     \
+        const double cl_ = c[L];                                                             \
+        clef_vd mu_[NV];                                                                     \
+        for (int v = 0; v < NV; v++) {                                                       \
+            mu_[v] = x[v] * a[v] - cl_ * b[v];                                               \
+            b[v] = a[v];                                                                     \
+            a[v] = mu_[v];                                                                   \
+        }                                                                                    \
+        for (int j = 0; j < nm; j++) {                                                       \
+            double *ab_ = abuf + ((size_t)(L) * nmaps + j0 + j) * 2 * VL;                    \
+            clef_vd re_, im_;                                                                \
+            memcpy(&re_, ab_, sizeof re_);                                                   \
+            memcpy(&im_, ab_ + VL, sizeof im_);                                              \
+            for (int v = 0; v < NV; v++) {                                                   \
+                re_ = re_ + mu_[v] * F[j][q][0][v];                                          \
+                im_ = im_ + mu_[v] * F[j][q][1][v];                                          \
+            }                                                                                \
+            memcpy(ab_, &re_, sizeof re_);                                                   \
+            memcpy(ab_ + VL, &im_, sizeof im_);                                              \
+        }                                                                                    \
+    } while (0)
+
 /* Plain loop over [l0, l1) with no sigma rescale inside; F held in registers. */
 ALWAYS_INLINE void ana_fast(int nm, blockstate *s, const clef_sht_mtab *t, int l0, int l1,
                             const double *const *pb, double *abuf, int nmaps, int j0)
 {
-    clef_vd F[NMGROUP][2][2][2]; /* [map][first/second parity][re/im][vector] */
+    clef_vd F[NMGROUP][2][2][NV]; /* [map][first/second parity][re/im][vector] */
     const int par0 = (l0 - t->m) & 1;
     for (int j = 0; j < nm; j++)
         for (int q = 0; q < 2; q++)
             for (int r = 0; r < 2; r++)
-                for (int v = 0; v < 2; v++)
+                for (int v = 0; v < NV; v++)
                     memcpy(&F[j][q][r][v], pb[j] + (((par0 ^ q) * 2 + r) * BL + v * VL),
                            sizeof(clef_vd));
-    clef_vd x0 = s->x[0], x1 = s->x[1];
-    clef_vd a0 = s->mu1[0], a1 = s->mu1[1], b0 = s->mu2[0], b1 = s->mu2[1];
+    clef_vd x[NV], a[NV], b[NV];
+    for (int v = 0; v < NV; v++) {
+        x[v] = s->x[v];
+        a[v] = s->mu1[v];
+        b[v] = s->mu2[v];
+    }
     const double *c = t->c;
     int l = l0;
     for (; l + 1 < l1; l += 2) {
-        const clef_vd m0 = x0 * a0 - c[l] * b0, m1 = x1 * a1 - c[l] * b1;
-        const clef_vd n0 = x0 * m0 - c[l + 1] * a0, n1 = x1 * m1 - c[l + 1] * a1;
-        for (int j = 0; j < nm; j++) {
-            double *ab = abuf + ((size_t)l * nmaps + j0 + j) * 2 * VL;
-            double *ab2 = ab + (size_t)nmaps * 2 * VL;
-            clef_vd re, im, re2, im2;
-            memcpy(&re, ab, sizeof re);
-            memcpy(&im, ab + VL, sizeof im);
-            memcpy(&re2, ab2, sizeof re2);
-            memcpy(&im2, ab2 + VL, sizeof im2);
-            re += m0 * F[j][0][0][0] + m1 * F[j][0][0][1];
-            im += m0 * F[j][0][1][0] + m1 * F[j][0][1][1];
-            re2 += n0 * F[j][1][0][0] + n1 * F[j][1][0][1];
-            im2 += n0 * F[j][1][1][0] + n1 * F[j][1][1][1];
-            memcpy(ab, &re, sizeof re);
-            memcpy(ab + VL, &im, sizeof im);
-            memcpy(ab2, &re2, sizeof re2);
-            memcpy(ab2 + VL, &im2, sizeof im2);
-        }
-        b0 = m0;
-        b1 = m1;
-        a0 = n0;
-        a1 = n1;
+        ANA_STEP(0, l);
+        ANA_STEP(1, l + 1);
     }
-    if (l < l1) {
-        const clef_vd m0 = x0 * a0 - c[l] * b0, m1 = x1 * a1 - c[l] * b1;
-        for (int j = 0; j < nm; j++) {
-            double *ab = abuf + ((size_t)l * nmaps + j0 + j) * 2 * VL;
-            clef_vd re, im;
-            memcpy(&re, ab, sizeof re);
-            memcpy(&im, ab + VL, sizeof im);
-            re += m0 * F[j][0][0][0] + m1 * F[j][0][0][1];
-            im += m0 * F[j][0][1][0] + m1 * F[j][0][1][1];
-            memcpy(ab, &re, sizeof re);
-            memcpy(ab + VL, &im, sizeof im);
-        }
-        b0 = a0;
-        b1 = a1;
-        a0 = m0;
-        a1 = m1;
+    if (l < l1)
+        ANA_STEP(0, l);
+    for (int v = 0; v < NV; v++) {
+        s->mu1[v] = a[v];
+        s->mu2[v] = b[v];
     }
-    s->mu1[0] = a0;
-    s->mu1[1] = a1;
-    s->mu2[0] = b0;
-    s->mu2[1] = b1;
 }
 
 ALWAYS_INLINE void ana_block(int nm, const clef_sht_mtab *t, const double *x, const double *sth,
@@ -203,34 +337,16 @@ ALWAYS_INLINE void ana_block(int nm, const clef_sht_mtab *t, const double *x, co
     blockstate s;
     const int m = t->m, lmax = t->lmax;
     block_start(&s, t, x, sth);
-    if (any_live(&s)) {
-        const clef_vd mu[2] = {s.mu1[0] * s.live[0], s.mu1[1] * s.live[1]};
+    if (s.nlive) {
+        clef_vd mu[NV];
+        for (int v = 0; v < NV; v++)
+            mu[v] = s.mu1[v] * s.live[v];
         ana_acc(nm, pb, 0, mu, abuf, m, nmaps, j0);
     }
     int l = m + 1, ir = 0;
-    /* Scaled phase: until every lane is in range. */
-    for (; l <= lmax && s.kmax > 0; l++) {
-        if (ir < t->nrescale && t->rescale[ir] == l) {
-            block_rescale(&s);
-            ir++;
-        }
-        clef_vd mu[2];
-        for (int v = 0; v < 2; v++)
-            mu[v] = s.x[v] * s.mu1[v] - t->c[l] * s.mu2[v];
-        block_renorm(&s, mu);
-        if (any_live(&s)) {
-            const clef_vd mul[2] = {mu[0] * s.live[0], mu[1] * s.live[1]};
-            ana_acc(nm, pb, (l - m) & 1, mul, abuf, l, nmaps, j0);
-        }
-        for (int v = 0; v < 2; v++) {
-            s.mu2[v] = s.mu1[v];
-            s.mu1[v] = mu[v];
-        }
-    }
+    SCALED_PHASE(ana_acc(nm, pb, (l - m) & 1, mul, abuf, l, nmaps, j0));
     /* Plain phase, segment by segment between sigma rescale points. */
     while (l <= lmax) {
-        while (ir < t->nrescale && t->rescale[ir] < l)
-            ir++;
         if (ir < t->nrescale && t->rescale[ir] == l) {
             block_rescale(&s);
             ir++;
@@ -252,12 +368,10 @@ void clef_sht_kernel_analysis(const clef_sht_mtab *t, int nblocks, const double 
             for (int j = 0; j < nm; j++)
                 pb[j] = ph + (size_t)(j0 + j) * map_stride + (size_t)b * CLEF_SHT_BLOCKDBL;
             const double *xb = x + (size_t)b * BL, *sb = sth + (size_t)b * BL;
-            switch (nm) {
-            case 1: ana_block(1, t, xb, sb, pb, abuf, nmaps, j0); break;
-            case 2: ana_block(2, t, xb, sb, pb, abuf, nmaps, j0); break;
-            case 3: ana_block(3, t, xb, sb, pb, abuf, nmaps, j0); break;
-            default: ana_block(4, t, xb, sb, pb, abuf, nmaps, j0); break;
-            }
+            if (nm == 1)
+                ana_block(1, t, xb, sb, pb, abuf, nmaps, j0);
+            else
+                ana_block(2, t, xb, sb, pb, abuf, nmaps, j0);
         }
     }
 }
@@ -265,79 +379,74 @@ void clef_sht_kernel_analysis(const clef_sht_mtab *t, int nblocks, const double 
 /* --------------------------------------------------------------- synthesis */
 
 typedef struct synacc {
-    clef_vd a[NMGROUP][2][2][2]; /* [map][parity][re/im][vector] */
+    clef_vd a[NMGROUP][2][2][NV]; /* [map][parity][re/im][vector] */
 } synacc;
 
-ALWAYS_INLINE void syn_acc(int nm, synacc *A, int par, const clef_vd mu[2],
+ALWAYS_INLINE void syn_acc(int nm, synacc *A, int par, const clef_vd *mu,
                            const double complex *bl, int l, int nmaps, int j0)
 {
     for (int j = 0; j < nm; j++) {
-        const double complex b = bl[(size_t)l * nmaps + j0 + j];
-        const double br = creal(b), bi = cimag(b);
-        for (int v = 0; v < 2; v++) {
+        const double complex bv = bl[(size_t)l * nmaps + j0 + j];
+        const double br = creal(bv), bi = cimag(bv);
+        for (int v = 0; v < NV; v++) {
             A->a[j][par][0][v] += mu[v] * br;
             A->a[j][par][1][v] += mu[v] * bi;
         }
     }
 }
 
+#define SYN_STEP(q, L)                                                                       \
+    do {                                                                                     \
+        const double cl_ = c[L];                                                             \
+        clef_vd mu_[NV];                                                                     \
+        for (int v = 0; v < NV; v++) {                                                       \
+            mu_[v] = x[v] * a[v] - cl_ * b[v];                                               \
+            b[v] = a[v];                                                                     \
+            a[v] = mu_[v];                                                                   \
+        }                                                                                    \
+        for (int j = 0; j < nm; j++) {                                                       \
+            const double *bp_ = (const double *)(bl + (size_t)(L) * nmaps + j0 + j);         \
+            const double br_ = bp_[0], bi_ = bp_[1];                                         \
+            for (int v = 0; v < NV; v++) {                                                   \
+                acc[j][q][0][v] += mu_[v] * br_;                                             \
+                acc[j][q][1][v] += mu_[v] * bi_;                                             \
+            }                                                                                \
+        }                                                                                    \
+    } while (0)
+
 ALWAYS_INLINE void syn_fast(int nm, blockstate *s, const clef_sht_mtab *t, int l0, int l1,
                             synacc *A, const double complex *bl, int nmaps, int j0)
 {
     const int par0 = (l0 - t->m) & 1;
-    clef_vd acc[NMGROUP][2][2][2]; /* [map][first/second][re/im][vector] */
+    clef_vd acc[NMGROUP][2][2][NV]; /* [map][first/second][re/im][vector] */
     for (int j = 0; j < nm; j++)
         for (int q = 0; q < 2; q++)
             for (int r = 0; r < 2; r++)
-                for (int v = 0; v < 2; v++)
+                for (int v = 0; v < NV; v++)
                     acc[j][q][r][v] = A->a[j][par0 ^ q][r][v];
-    clef_vd x0 = s->x[0], x1 = s->x[1];
-    clef_vd a0 = s->mu1[0], a1 = s->mu1[1], b0 = s->mu2[0], b1 = s->mu2[1];
+    clef_vd x[NV], a[NV], b[NV];
+    for (int v = 0; v < NV; v++) {
+        x[v] = s->x[v];
+        a[v] = s->mu1[v];
+        b[v] = s->mu2[v];
+    }
     const double *c = t->c;
     int l = l0;
     for (; l + 1 < l1; l += 2) {
-        const clef_vd m0 = x0 * a0 - c[l] * b0, m1 = x1 * a1 - c[l] * b1;
-        const clef_vd n0 = x0 * m0 - c[l + 1] * a0, n1 = x1 * m1 - c[l + 1] * a1;
-        for (int j = 0; j < nm; j++) {
-            const double *bp = (const double *)(bl + (size_t)l * nmaps + j0 + j);
-            const double *bq = (const double *)(bl + (size_t)(l + 1) * nmaps + j0 + j);
-            acc[j][0][0][0] += m0 * bp[0];
-            acc[j][0][0][1] += m1 * bp[0];
-            acc[j][0][1][0] += m0 * bp[1];
-            acc[j][0][1][1] += m1 * bp[1];
-            acc[j][1][0][0] += n0 * bq[0];
-            acc[j][1][0][1] += n1 * bq[0];
-            acc[j][1][1][0] += n0 * bq[1];
-            acc[j][1][1][1] += n1 * bq[1];
-        }
-        b0 = m0;
-        b1 = m1;
-        a0 = n0;
-        a1 = n1;
+        SYN_STEP(0, l);
+        SYN_STEP(1, l + 1);
     }
-    if (l < l1) {
-        const clef_vd m0 = x0 * a0 - c[l] * b0, m1 = x1 * a1 - c[l] * b1;
-        for (int j = 0; j < nm; j++) {
-            const double *bp = (const double *)(bl + (size_t)l * nmaps + j0 + j);
-            acc[j][0][0][0] += m0 * bp[0];
-            acc[j][0][0][1] += m1 * bp[0];
-            acc[j][0][1][0] += m0 * bp[1];
-            acc[j][0][1][1] += m1 * bp[1];
-        }
-        b0 = a0;
-        b1 = a1;
-        a0 = m0;
-        a1 = m1;
-    }
+    if (l < l1)
+        SYN_STEP(0, l);
     for (int j = 0; j < nm; j++)
         for (int q = 0; q < 2; q++)
             for (int r = 0; r < 2; r++)
-                for (int v = 0; v < 2; v++)
+                for (int v = 0; v < NV; v++)
                     A->a[j][par0 ^ q][r][v] = acc[j][q][r][v];
-    s->mu1[0] = a0;
-    s->mu1[1] = a1;
-    s->mu2[0] = b0;
-    s->mu2[1] = b1;
+    for (int v = 0; v < NV; v++) {
+        s->mu1[v] = a[v];
+        s->mu2[v] = b[v];
+    }
 }
 
 ALWAYS_INLINE void syn_block(int nm, const clef_sht_mtab *t, const double *x, const double *sth,
@@ -348,32 +457,15 @@ ALWAYS_INLINE void syn_block(int nm, const clef_sht_mtab *t, const double *x, co
     memset(&A, 0, sizeof A);
     const int m = t->m, lmax = t->lmax;
     block_start(&s, t, x, sth);
-    if (any_live(&s)) {
-        const clef_vd mu[2] = {s.mu1[0] * s.live[0], s.mu1[1] * s.live[1]};
+    if (s.nlive) {
+        clef_vd mu[NV];
+        for (int v = 0; v < NV; v++)
+            mu[v] = s.mu1[v] * s.live[v];
         syn_acc(nm, &A, 0, mu, bl, m, nmaps, j0);
     }
     int l = m + 1, ir = 0;
-    for (; l <= lmax && s.kmax > 0; l++) {
-        if (ir < t->nrescale && t->rescale[ir] == l) {
-            block_rescale(&s);
-            ir++;
-        }
-        clef_vd mu[2];
-        for (int v = 0; v < 2; v++)
-            mu[v] = s.x[v] * s.mu1[v] - t->c[l] * s.mu2[v];
-        block_renorm(&s, mu);
-        if (any_live(&s)) {
-            const clef_vd mul[2] = {mu[0] * s.live[0], mu[1] * s.live[1]};
-            syn_acc(nm, &A, (l - m) & 1, mul, bl, l, nmaps, j0);
-        }
-        for (int v = 0; v < 2; v++) {
-            s.mu2[v] = s.mu1[v];
-            s.mu1[v] = mu[v];
-        }
-    }
+    SCALED_PHASE(syn_acc(nm, &A, (l - m) & 1, mul, bl, l, nmaps, j0));
     while (l <= lmax) {
-        while (ir < t->nrescale && t->rescale[ir] < l)
-            ir++;
         if (ir < t->nrescale && t->rescale[ir] == l) {
             block_rescale(&s);
             ir++;
@@ -385,9 +477,8 @@ ALWAYS_INLINE void syn_block(int nm, const clef_sht_mtab *t, const double *x, co
     for (int j = 0; j < nm; j++)
         for (int q = 0; q < 2; q++)
             for (int r = 0; r < 2; r++)
-                for (int v = 0; v < 2; v++)
-                    memcpy(pb[j] + (q * 2 + r) * BL + v * VL, &A.a[j][q][r][v],
-                           sizeof(clef_vd));
+                for (int v = 0; v < NV; v++)
+                    memcpy(pb[j] + (q * 2 + r) * BL + v * VL, &A.a[j][q][r][v], sizeof(clef_vd));
 }
 
 void clef_sht_kernel_synthesis(const clef_sht_mtab *t, int nblocks, const double *x,
@@ -401,12 +492,10 @@ void clef_sht_kernel_synthesis(const clef_sht_mtab *t, int nblocks, const double
             for (int j = 0; j < nm; j++)
                 pb[j] = ph + (size_t)(j0 + j) * map_stride + (size_t)b * CLEF_SHT_BLOCKDBL;
             const double *xb = x + (size_t)b * BL, *sb = sth + (size_t)b * BL;
-            switch (nm) {
-            case 1: syn_block(1, t, xb, sb, pb, bl, nmaps, j0); break;
-            case 2: syn_block(2, t, xb, sb, pb, bl, nmaps, j0); break;
-            case 3: syn_block(3, t, xb, sb, pb, bl, nmaps, j0); break;
-            default: syn_block(4, t, xb, sb, pb, bl, nmaps, j0); break;
-            }
+            if (nm == 1)
+                syn_block(1, t, xb, sb, pb, bl, nmaps, j0);
+            else
+                syn_block(2, t, xb, sb, pb, bl, nmaps, j0);
         }
     }
 }

@@ -62,31 +62,6 @@ static int make_geometry(clef_sht *p)
     return CLEF_OK;
 }
 
-static int make_fft_plans(clef_sht *p, unsigned flags)
-{
-    const int64_t ns = p->nside;
-    double *in = fftw_malloc(sizeof(double) * 4 * (size_t)ns);
-    fftw_complex *out = fftw_malloc(sizeof(fftw_complex) * (2 * (size_t)ns + 1));
-    if (!in || !out) {
-        fftw_free(in);
-        fftw_free(out);
-        CLEF_FAIL(CLEF_ENOMEM, "sht: no memory for FFT planning at nside %lld", (long long)ns);
-    }
-    int status = CLEF_OK;
-    for (int64_t i = 1; i <= ns; i++) {
-        const int n = (int)(4 * i);
-        p->plan_r2c[i - 1] = fftw_plan_dft_r2c_1d(n, in, out, flags);
-        p->plan_c2r[i - 1] = fftw_plan_dft_c2r_1d(n, out, in, flags);
-        if (!p->plan_r2c[i - 1] || !p->plan_c2r[i - 1]) {
-            status = clef_fail(CLEF_ENOMEM, "sht: FFTW could not plan a ring FFT of length %d", n);
-            break;
-        }
-    }
-    fftw_free(in);
-    fftw_free(out);
-    return status;
-}
-
 static int alloc_threads(clef_sht *p)
 {
     const size_t ns = (size_t)p->nside, nm = (size_t)p->nmaps;
@@ -107,7 +82,8 @@ static int alloc_threads(clef_sht *p)
         if (!th->ring || !th->four || !th->fn || !th->fs || !th->ph1 || !th->ph2 || !th->abuf ||
             !th->bl)
             return CLEF_ENOMEM;
-        if (clef_sht_mtab_alloc(&th->tab, p->lmax) != CLEF_OK)
+        if (clef_sht_mtab_alloc(&th->tab, p->lmax) != CLEF_OK ||
+            clef_sht_fft_thread_alloc(p, th) != CLEF_OK)
             return CLEF_ENOMEM;
     }
     return CLEF_OK;
@@ -200,7 +176,7 @@ int clef_sht_create(clef_sht **out, int64_t nside, int lmax, const clef_sht_opts
 
     const unsigned flags = opts && opts->fftw_flags ? opts->fftw_flags : FFTW_ESTIMATE;
     wisdom_import(opts ? opts->wisdom_file : NULL);
-    CLEF_CHECK(make_fft_plans(p, flags));
+    CLEF_CHECK(clef_sht_fft_plan(p, flags));
     wisdom_export(opts ? opts->wisdom_file : NULL);
 
     /* Chunk of ring-pair blocks whose phase array fits the budget. */
@@ -236,13 +212,7 @@ void clef_sht_destroy(clef_sht *p)
 {
     if (!p)
         return;
-    if (p->plan_r2c)
-        for (int64_t i = 0; i < p->nside; i++) {
-            if (p->plan_r2c[i])
-                fftw_destroy_plan(p->plan_r2c[i]);
-            if (p->plan_c2r[i])
-                fftw_destroy_plan(p->plan_c2r[i]);
-        }
+    clef_sht_fft_destroy(p);
     if (p->thr)
         for (int t = 0; t < p->nthreads; t++) {
             clef_sht_thread *th = &p->thr[t];
@@ -255,6 +225,7 @@ void clef_sht_destroy(clef_sht *p)
             free(th->abuf);
             free(th->bl);
             clef_sht_mtab_free(&th->tab);
+            clef_sht_fft_thread_free(th);
         }
     free(p->thr);
     free(p->plan_r2c);
@@ -298,10 +269,15 @@ int clef_sht_ring_info(const clef_sht *p, int ring, double *z, double *phi0, int
     return CLEF_OK;
 }
 
-void clef_sht_timings(const clef_sht *p, double *fft_seconds, double *legendre_seconds)
+void clef_sht_timings(const clef_sht *p, double *fft_wall, double *legendre_wall,
+                      double *fft_cpu, double *legendre_cpu)
 {
-    if (fft_seconds)
-        *fft_seconds = p->state->t_fft;
-    if (legendre_seconds)
-        *legendre_seconds = p->state->t_leg;
+    if (fft_wall)
+        *fft_wall = p->state->t_fft;
+    if (legendre_wall)
+        *legendre_wall = p->state->t_leg;
+    if (fft_cpu)
+        *fft_cpu = p->state->c_fft;
+    if (legendre_cpu)
+        *legendre_cpu = p->state->c_leg;
 }

@@ -59,9 +59,13 @@ int clef_sht_nrings(const clef_sht *p); /* 4 nside - 1 */
 int clef_sht_ring_info(const clef_sht *p, int ring, double *z, double *phi0, int64_t *npix,
                        int64_t *first, double *weight);
 
-/* Wall-clock seconds spent in the FFT stage and in the Legendre stage by
- * the last analysis or synthesis call on this plan (for benchmarks). */
-void clef_sht_timings(const clef_sht *p, double *fft_seconds, double *legendre_seconds);
+/* Seconds spent in the FFT stage and in the Legendre stage by the last
+ * analysis or synthesis call on this plan, as wall-clock time and as CPU
+ * time of the working threads (summed over threads, waits excluded; not
+ * inflated when other programs share the cores).  For benchmarks; any
+ * pointer may be NULL. */
+void clef_sht_timings(const clef_sht *p, double *fft_wall, double *legendre_wall,
+                      double *fft_cpu, double *legendre_cpu);
 
 static inline size_t clef_alm_size(int lmax, int mmax)
 {
