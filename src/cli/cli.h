@@ -72,5 +72,6 @@ int cmd_spectrum(int argc, char **argv);
 int cmd_model(int argc, char **argv);
 int cmd_geometry(int argc, char **argv);
 int cmd_mask(int argc, char **argv);
+int cmd_plot(int argc, char **argv);
 
 #endif
