@@ -563,7 +563,18 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
         clef_peak_opts po = o.peak;
         if (!(po.half_width > 0))
             po.half_width = peak_half_width(bins, &po);
-        CLEF_CHECK(clef_peak_find(bp, &po, &res->peak));
+        status = clef_peak_find(bp, &po, &res->peak);
+        if (status == CLEF_EINVAL) {
+            /* Unusable for a peak fit (e.g. lmax below the window): the band
+             * powers still stand; the run records why there is no peak. */
+            clef_log(CLEF_LOG_WARN, "first peak not fitted: %s", clef_last_error());
+            memset(&res->peak, 0, sizeof res->peak);
+            res->peak.model = po.model;
+            snprintf(res->peak.reason, sizeof res->peak.reason, "%s", clef_last_error());
+            status = CLEF_OK;
+        }
+        if (status != CLEF_OK)
+            goto fail;
         res->peak_done = 1;
         CLEF_CHECK(clef_peak_to_meta(&res->peak, bp));
         stage_done(res, "peak", &t0);
