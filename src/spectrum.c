@@ -88,7 +88,7 @@ static int signal_filter(const clef_spectrum_opts *o, int64_t nside, int lmax, d
             tl[l] *= tmp[l] * tmp[l];
     }
     if (o->pixel_window) {
-        CLEF_CHECK(clef_beam_pixwin(nside, lmax, tmp));
+        CLEF_CHECK(clef_beam_pixel_window(nside, lmax, tmp));
         for (int l = 0; l <= lmax; l++)
             tl[l] *= tmp[l] * tmp[l];
     }
@@ -201,7 +201,7 @@ static int record_meta(clef_bandpowers *bp, const clef_spectrum_opts *o,
                                          "Gaussian beam FWHM [arcmin] (0: none)"));
     CLEF_TRY(clef_bandpowers_meta_text(bp, "BEAMTAB", o->beam ? "yes" : "no",
                                        "tabulated beam used"));
-    CLEF_TRY(clef_bandpowers_meta_text(bp, "PIXWIN", o->pixel_window ? "yes" : "no",
+    CLEF_TRY(clef_bandpowers_meta_text(bp, "PIXELWIN", o->pixel_window ? "yes" : "no",
                                        "pixel window corrected"));
     CLEF_TRY(clef_bandpowers_meta_text(bp, "TRANSFER", o->transfer ? "yes" : "no",
                                        "transfer function applied"));

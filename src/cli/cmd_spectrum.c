@@ -87,7 +87,7 @@ typedef struct args {
     const char *noise_file, *theory_file, *cache_dir, *output, *format, *threads;
     long lmax, bin_width, log_bins, iterations;
     double beam_fwhm, peak_lmin, peak_lmax, peak_hw;
-    int peak_model, no_peak, no_pixwin, keep, no_cache, coord;
+    int peak_model, no_peak, no_pixel_window, keep, no_cache, coord;
     int want_fits, want_csv, want_json;
 } args;
 
@@ -188,7 +188,7 @@ static int parse_args(int argc, char **argv, args *a)
                                        a->beam_fwhm);
             break;
         case OPT_BEAMF: a->beam_file = optarg; break;
-        case OPT_NOPIX: a->no_pixwin = 1; break;
+        case OPT_NOPIX: a->no_pixel_window = 1; break;
         case OPT_TRANSFER: a->transfer_file = optarg; break;
         case OPT_NOISE: a->noise_file = optarg; break;
         case OPT_THEORY: a->theory_file = optarg; break;
@@ -543,7 +543,7 @@ int cmd_spectrum(int argc, char **argv)
     so.keep_multipoles = a.keep;
     so.use_cache = !a.no_cache;
     so.cache_dir = a.cache_dir;
-    so.pixel_window = !a.no_pixwin;
+    so.pixel_window = !a.no_pixel_window;
     so.beam_fwhm = a.beam_fwhm;
     so.allow_coord_mismatch = a.coord;
     so.find_peak = !a.no_peak;
