@@ -94,7 +94,7 @@ int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opt
     double *buf = NULL;
     const size_t plen = strlen(path);
     const int gz = plen > 3 && !strcmp(path + plen - 3, ".gz");
-    char gz_path[4200] = "", name[4200];
+    char gz_path[4200] = "", name[4208];
     if (gz)
         CLEF_CHECK(gz_temp(of.tmp_path, gz_path, sizeof gz_path));
     snprintf(name, sizeof name, "!%s", gz ? gz_path : of.tmp_path);

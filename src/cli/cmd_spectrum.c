@@ -227,7 +227,11 @@ static int parse_args(int argc, char **argv, args *a)
                                        a->peak_hw);
             break;
         case OPT_NOPEAK: a->no_peak = 1; break;
-        case 'o': a->output = optarg; break;
+        case 'o':
+            a->output = optarg;
+            if (strlen(optarg) > 3000)
+                return cli_usage_error(CMD, "--output: prefix longer than 3000 characters");
+            break;
         case OPT_FORMAT:
             if (parse_format(a, optarg))
                 return CLI_EXIT_USAGE;
@@ -587,7 +591,7 @@ int cmd_spectrum(int argc, char **argv)
 
     /* Outputs: each file is written atomically; if one fails, the ones
      * already written by this run are removed, so a run leaves all or none. */
-    char prefix[4096];
+    char prefix[4000];
     if (a.output)
         snprintf(prefix, sizeof prefix, "%s", a.output);
     else
