@@ -74,7 +74,7 @@ static timing time_call(const clef_sht *p, int analysis, const double *map, doub
     return t;
 }
 
-static int run_case(result *r, int64_t ns, int lmax, int nthreads, double budget)
+static int run_case(result *r, int64_t ns, int lmax, int nthreads, double budget, double peak0)
 {
     memset(r, 0, sizeof *r);
     r->nside = ns;
@@ -141,7 +141,10 @@ static int run_case(result *r, int64_t ns, int lmax, int nthreads, double budget
     bench_stats(ts, k, &r->syn_best, &r->syn_med);
     double pmin;
     bench_stats(pk, k, &pmin, &r->peak_med);
-    r->peak_best = pk[k - 1];
+    /* The wall-clock reference is the best FMA rate seen (interleaved runs
+     * and the start-up reference): a conservative ratio when the machine's
+     * load fluctuates. */
+    r->peak_best = pk[k - 1] > peak0 ? pk[k - 1] : peak0;
 
     /* Speed-up 1 -> nthreads (best of 2 single-thread runs), up to nside 1024. */
     if (nthreads > 1 && ns <= 1024) {
@@ -246,7 +249,7 @@ int main(int argc, char **argv)
         for (int w = 0; w < 2; w++) {
             const int lmax = w ? 3 * (int)ns - 1 : 2 * (int)ns;
             result *r = &res[nres];
-            if (run_case(r, ns, lmax, nt, ns >= 2048 ? 20.0 : 10.0) != 0)
+            if (run_case(r, ns, lmax, nt, ns >= 2048 ? 20.0 : 10.0, fman) != 0)
                 return 1;
             nres++;
             printf("%6lld %5d %8.2f | %8.3f %8.3f %7.1f %7.3f %7.3f | %8.3f %8.3f %7.1f %7.3f %7.3f "
