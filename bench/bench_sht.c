@@ -268,22 +268,28 @@ int main(int argc, char **argv)
     const char *fam[2] = {"lmax_2nside", "lmax_3nside_minus_1"};
     printf("\nfitted exponent of time vs lmax (nside 512..%lld):", (long long)max_ns);
     for (int w = 0; w < 2; w++) {
-        double x[4], ya[4], ys[4];
+        double x[4], ya[4], ys[4], ca[4], cs[4];
         int n = 0;
         for (int i = 0; i < nres; i++)
             if (res[i].nside >= 512 && (res[i].lmax == 2 * res[i].nside) == (w == 0)) {
                 x[n] = res[i].lmax;
                 ya[n] = res[i].ana_best;
                 ys[n] = res[i].syn_best;
+                ca[n] = res[i].ana_leg_cpu;
+                cs[n] = res[i].syn_leg_cpu;
                 n++;
             }
         cJSON *o = cJSON_AddObjectToObject(fits, fam[w]);
         if (n >= 2) {
             const double aa = bench_fit_exponent(x, ya, n), as = bench_fit_exponent(x, ys, n);
+            const double la = bench_fit_exponent(x, ca, n), ls = bench_fit_exponent(x, cs, n);
             cJSON_AddNumberToObject(o, "analysis", aa);
             cJSON_AddNumberToObject(o, "synthesis", as);
+            cJSON_AddNumberToObject(o, "analysis_legendre_cpu", la);
+            cJSON_AddNumberToObject(o, "synthesis_legendre_cpu", ls);
             cJSON_AddNumberToObject(o, "points", n);
-            printf("  %s: analysis %.2f, synthesis %.2f (%d points)", fam[w], aa, as, n);
+            printf("\n  %s: wall analysis %.2f, synthesis %.2f; Legendre CPU time analysis %.2f, "
+                   "synthesis %.2f (%d points)", fam[w], aa, as, la, ls, n);
         }
     }
     printf("\n");
