@@ -49,6 +49,10 @@ static int parse_beam_row(char *line, double *l, double *b)
     if (end == p || errno)
         return -1;
     p = end;
+    while (*p == ' ' || *p == '\t' || *p == ',')
+        p++;
+    if (*p == '\0' || *p == '\n' || *p == '\r')
+        return -1;
     *b = strtod(p, &end);
     if (end == p || errno)
         return -1;

@@ -266,6 +266,8 @@ int clef_bins_read(clef_bins **out, const char *path, int lmax, int weighting)
         hi[n] = k == 2 ? (int)v[1] : (int)v[0];
         /* Check each line as it comes, so the message can name it. */
         const char *what = NULL;
+        char lmax_msg[64];
+        snprintf(lmax_msg, sizeof lmax_msg, "bin extends beyond lmax %d", lmax);
         if (k == 2 && hi[n] < lo[n])
             what = "l_hi is below l_lo";
         else if (n > 0 && k == 2 && lo[n] <= hi[n - 1])
@@ -275,10 +277,9 @@ int clef_bins_read(clef_bins **out, const char *path, int lmax, int weighting)
         else if (lo[n] < 2 && (k == 2 || n == 0))
             what = "bins must start at l >= 2 (monopole and dipole are not binned)";
         else if (lmax > 0 && ((k == 2 && hi[n] > lmax) || (k == 1 && lo[n] > lmax + 1)))
-            what = "bin extends beyond lmax";
+            what = lmax_msg;
         if (what) {
-            status = clef_fail(CLEF_EFORMAT, "bins: '%s' line %d: %s (lmax %d)", path, lineno,
-                               what, lmax);
+            status = clef_fail(CLEF_EFORMAT, "bins: '%s' line %d: %s", path, lineno, what);
             goto fail;
         }
         n++;
@@ -300,8 +301,12 @@ int clef_bins_read(clef_bins **out, const char *path, int lmax, int weighting)
         goto fail;
     }
     status = clef_bins_create_ranges(out, n, lo, hi, weighting);
-    if (status != CLEF_OK)
-        status = clef_fail(CLEF_EFORMAT, "bins: '%s': %s", path, clef_last_error());
+    if (status != CLEF_OK) {
+        char why[1024]; /* the message is rewritten into the same buffer */
+        snprintf(why, sizeof why, "%s", clef_last_error());
+        status = clef_fail(status == CLEF_ENOMEM ? status : CLEF_EFORMAT, "bins: '%s': %s",
+                           path, why);
+    }
 fail:
     free(line);
     free(lo);

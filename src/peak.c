@@ -22,6 +22,8 @@
 /* Levenberg-Marquardt limits for the Gaussian model (Marquardt 1963, SIAM
  * J. Appl. Math. 11, 431): iteration cap, step tolerance relative to the
  * parameters, and the damping at which no step can lower chi^2 any more. */
+/* At most this many re-centring passes of the fit window. */
+#define CLEF_PEAK_RECENTER 3
 #define LM_MAX_ITER 500
 #define LM_STEP_TOL 1e-12
 #define LM_LAMBDA_MAX 1e16
@@ -30,8 +32,8 @@ void clef_peak_opts_default(clef_peak_opts *o)
 {
     o->l_min = 100;
     o->l_max = 400;
-    o->model = CLEF_PEAK_PARABOLA;
-    o->half_width = 80;
+    o->model = CLEF_PEAK_GAUSSIAN;
+    o->half_width = 60;
     o->curv_nsigma = 2;
 }
 
@@ -372,29 +374,18 @@ static void parabola_peak(const double *p, double *xp, double *dp, double *gx, d
     gd[2] = p[1] * p[1] / (4 * p[2] * p[2]);
 }
 
-int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak_result *r)
+/* Fit the model to the bins within half_width of bin `top` (inside the
+ * window w0..w1) and fill r. */
+static int fit_at(const clef_bandpowers *bp, const clef_peak_opts *o, int top, int w0, int w1,
+                  clef_peak_result *r)
 {
-    if (!o || !r)
-        CLEF_FAIL(CLEF_EINVAL, "peak: NULL options or result");
     result_init(r, o->model);
-    int w0 = -1, w1 = -2;
-    CLEF_TRY(check_input(bp, o, &w0, &w1));
-
-    int top = w0;
-    for (int b = w0; b <= w1; b++)
-        if (bp->dl[b] > bp->dl[top])
-            top = b;
     const double ltop = bp->l_eff[top];
-    if (top == w0 || top == w1) {
-        not_found(r, "the highest band power in the window [%g, %g] is at its %s edge (l_eff %g): "
-                  "D does not turn over inside the window", o->l_min, o->l_max,
-                  top == w0 ? "lower" : "upper", ltop);
-        return CLEF_OK;
-    }
+    const double hw = o->half_width;
     int b0 = top, b1 = top;
-    while (b0 > w0 && ltop - bp->l_eff[b0 - 1] <= o->half_width)
+    while (b0 > w0 && ltop - bp->l_eff[b0 - 1] <= hw)
         b0--;
-    while (b1 < w1 && bp->l_eff[b1 + 1] - ltop <= o->half_width)
+    while (b1 < w1 && bp->l_eff[b1 + 1] - ltop <= hw)
         b1++;
     r->bin_first = b0;
     r->bin_last = b1;
@@ -402,7 +393,7 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
     const int need = o->model == CLEF_PEAK_GAUSSIAN ? 4 : 3;
     if (r->nbins_used < need) {
         not_found(r, "too few bins: %d within %g of the highest bin (l_eff %g); the %s fit "
-                  "needs at least %d", r->nbins_used, o->half_width, ltop,
+                  "needs at least %d", r->nbins_used, hw, ltop,
                   o->model == CLEF_PEAK_GAUSSIAN ? "Gaussian" : "parabola", need);
         return CLEF_OK;
     }
@@ -410,7 +401,7 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
     fit_data fd = {0};
     double pp[3], ppcov[9], chi2 = 0;
     int status = CLEF_OK;
-    CLEF_CHECK(fit_data_make(&fd, bp, b0, b1, ltop, o->half_width));
+    CLEF_CHECK(fit_data_make(&fd, bp, b0, b1, ltop, hw));
     status = fit_parabola(&fd, pp, ppcov, &chi2);
     if (status == CLEF_ENUMERIC) {
         status = CLEF_OK;
@@ -499,17 +490,69 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
     r->chi2 = chi2;
     r->dof = fd.n - np;
     r->p_value = r->dof > 0 ? gsl_cdf_chisq_Q(chi2, r->dof) : NAN;
-    if (c_sig > -CLEF_PEAK_RELIABLE_SIGNIF)
-        clef_log(CLEF_LOG_WARN, "first peak: the curvature is only %.1f sigma below zero; the quoted "
-                 "errors may underestimate the scatter of l_peak (docs/peak.md)", -c_sig);
-    clef_log(CLEF_LOG_INFO, "first peak: l = %.2f +- %.2f, D = %.1f +- %.1f uK^2 (%s, %d bins)",
-             r->l_peak, r->l_peak_err, r->d_peak, r->d_peak_err,
-             np == 3 ? "parabola" : "Gaussian", fd.n);
 fail:
     free(fd.x);
     free(fd.y);
     free(fd.chol);
     return status;
+}
+
+int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak_result *r)
+{
+    if (!o || !r)
+        CLEF_FAIL(CLEF_EINVAL, "peak: NULL options or result");
+    result_init(r, o->model);
+    int w0 = -1, w1 = -2;
+    CLEF_TRY(check_input(bp, o, &w0, &w1));
+
+    int top = w0;
+    for (int b = w0; b <= w1; b++)
+        if (bp->dl[b] > bp->dl[top])
+            top = b;
+    const double ltop = bp->l_eff[top];
+    if (top == w0 || top == w1) {
+        not_found(r, "the highest band power in the window [%g, %g] is at its %s edge (l_eff %g): "
+                  "D does not turn over inside the window", o->l_min, o->l_max,
+                  top == w0 ? "lower" : "upper", ltop);
+        return CLEF_OK;
+    }
+    /* The fit window is centred on the highest bin, then re-centred on the
+     * bin nearest the fitted peak until it stops moving (at most a few
+     * passes): a single noisy highest bin then no longer decides which
+     * bins enter the fit, which would add scatter the fit's own error does
+     * not know about. */
+    int center = top, visited[CLEF_PEAK_RECENTER + 1], nvisited = 0;
+    clef_peak_result best;
+    int have = 0;
+    for (int pass = 0; pass <= CLEF_PEAK_RECENTER; pass++) {
+        visited[nvisited++] = center;
+        CLEF_TRY(fit_at(bp, o, center, w0, w1, r));
+        if (!r->found)
+            break;
+        best = *r;
+        have = 1;
+        int near = w0;
+        for (int b = w0; b <= w1; b++)
+            if (fabs(bp->l_eff[b] - r->l_peak) < fabs(bp->l_eff[near] - r->l_peak))
+                near = b;
+        int seen = 0;
+        for (int i = 0; i < nvisited; i++)
+            seen |= visited[i] == near;
+        if (seen || near == w0 || near == w1)
+            break;
+        center = near;
+    }
+    if (have)
+        *r = best;
+    else
+        return CLEF_OK;
+    if (r->curv_signif > -CLEF_PEAK_RELIABLE_SIGNIF)
+        clef_log(CLEF_LOG_WARN, "first peak: the curvature is only %.1f sigma below zero; the quoted "
+                 "errors may underestimate the scatter of l_peak (docs/peak.md)", -r->curv_signif);
+    clef_log(CLEF_LOG_INFO, "first peak: l = %.2f +- %.2f, D = %.1f +- %.1f uK^2 (%s, %d bins)",
+             r->l_peak, r->l_peak_err, r->d_peak, r->d_peak_err,
+             r->model == CLEF_PEAK_GAUSSIAN ? "Gaussian" : "parabola", r->nbins_used);
+    return CLEF_OK;
 }
 
 /* ---- the result as metadata items (docs/formats.md, "Peak keywords") --- */

@@ -24,6 +24,7 @@ void clef_spectrum_opts_default(clef_spectrum_opts *o)
     o->use_cache = 1;
     o->find_peak = 1;
     clef_peak_opts_default(&o->peak);
+    o->peak.half_width = 0; /* automatic: see peak_half_width() */
 }
 
 void clef_spectrum_result_free(clef_spectrum_result *res)
@@ -159,6 +160,22 @@ static int check_inputs(const clef_map *map1, const clef_map *map2, const clef_m
         CLEF_FAIL(CLEF_EINVAL, "a second mask was given for a single map");
     }
     return CLEF_OK;
+}
+
+/* The automatic half-width of the peak fit: the library's default (60),
+ * widened to three bin widths so wide bins still give about seven points. */
+static double peak_half_width(const clef_bins *bins, const clef_peak_opts *po)
+{
+    clef_peak_opts d;
+    clef_peak_opts_default(&d);
+    double hw = d.half_width;
+    for (int b = 0; b < clef_bins_count(bins); b++) {
+        double c = 0.5 * (clef_bins_l_lo(bins, b) + clef_bins_l_hi(bins, b));
+        double w = clef_bins_l_hi(bins, b) - clef_bins_l_lo(bins, b) + 1;
+        if (c >= po->l_min && c <= po->l_max && 3 * w > hw)
+            hw = 3 * w;
+    }
+    return hw;
 }
 
 /* Record every input and option as table metadata (FITS keywords). */
@@ -324,9 +341,19 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
             goto fail;
         }
         memcpy(tmap[i], m->pix, (size_t)npix * sizeof(double));
-        if (!o.keep_multipoles)
-            CLEF_CHECK(clef_spectrum_remove_multipoles(tmap[i], w[i], nside, 1,
-                                                       res->multipoles[i]));
+        if (!o.keep_multipoles) {
+            status = clef_spectrum_remove_multipoles(tmap[i], w[i], nside, 1, res->multipoles[i]);
+            if (status == CLEF_ENUMERIC) {
+                /* A small or thin patch may not constrain a dipole: remove the
+                 * monopole alone rather than fail. */
+                clef_log(CLEF_LOG_WARN, "map '%s': %s; only the monopole is removed",
+                         name_or(&o, i, "map"), clef_last_error());
+                status = clef_spectrum_remove_multipoles(tmap[i], w[i], nside, 0,
+                                                         res->multipoles[i]);
+            }
+            if (status != CLEF_OK)
+                goto fail;
+        }
         for (int64_t p = 0; p < npix; p++)
             tmap[i][p] *= w[i][p];
     }
@@ -340,9 +367,15 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
         wprod[p] = w[0][p] * w[cross][p];
     stage_done(res, "prepare", &t0);
 
-    /* One shared analysis: weighted maps, masks, product mask. */
+    /* Analyses: the weighted maps to lmax (their spectra are only needed
+     * there, and analysing them further, up to 3 nside - 1, would only add
+     * quadrature error), the masks and the product mask to lmax_t.  When
+     * both limits agree, one call shares the Legendre recurrence. */
+    const int nm = 1 + cross;                      /* weighted maps: alm[0..nm-1] */
+    const int im = nm;                             /* mask 1 */
+    const int im2 = two_masks ? im + 1 : im;       /* mask 2 */
+    const int iw = im2 + 1;                        /* product mask */
     {
-        clef_sht_opts so = {0};
         const double *in[5];
         int n = 0;
         in[n++] = tmap[0];
@@ -352,29 +385,40 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
         if (two_masks)
             in[n++] = w[1];
         in[n++] = wprod;
-        so.nmaps = n;
-        CLEF_CHECK(clef_sht_create(&sht, nside, lmax_t, &so));
-        const size_t nalm = clef_alm_size(lmax_t, lmax_t);
         for (int i = 0; i < n; i++) {
-            alm[i] = malloc(nalm * sizeof(double complex));
+            int la = i < nm ? lmax : lmax_t;
+            alm[i] = malloc(clef_alm_size(la, la) * sizeof(double complex));
             if (!alm[i]) {
-                status = clef_fail(CLEF_ENOMEM, "out of memory for a_lm (lmax %d)", lmax_t);
+                status = clef_fail(CLEF_ENOMEM, "out of memory for a_lm (lmax %d)", la);
                 goto fail;
             }
         }
         clef_progress("analysis", 0.0);
-        CLEF_CHECK(clef_sht_analysis(sht, n, in, (double complex *const *)alm, o.iterations));
+        clef_sht_opts so = {0};
+        if (lmax_t == lmax) {
+            so.nmaps = n;
+            CLEF_CHECK(clef_sht_create(&sht, nside, lmax, &so));
+            CLEF_CHECK(clef_sht_analysis(sht, n, in, (double complex *const *)alm, o.iterations));
+        } else {
+            so.nmaps = nm;
+            CLEF_CHECK(clef_sht_create(&sht, nside, lmax, &so));
+            CLEF_CHECK(clef_sht_analysis(sht, nm, in, (double complex *const *)alm, o.iterations));
+            clef_progress("analysis", 0.3);
+            clef_sht_destroy(sht);
+            sht = NULL;
+            so.nmaps = n - nm;
+            CLEF_CHECK(clef_sht_create(&sht, nside, lmax_t, &so));
+            CLEF_CHECK(clef_sht_analysis(sht, n - nm, in + nm,
+                                         (double complex *const *)alm + nm, o.iterations));
+        }
         clef_progress("analysis", 1.0);
     }
     stage_done(res, "transform", &t0);
 
     /* Pseudo-spectra: 0 = map1 x map(2), 1 = map1 auto, 2 = map2 auto. */
     {
-        const int im = cross ? 2 : 1;                /* index of mask 1 a_lm */
-        const int im2 = two_masks ? im + 1 : im;      /* mask 2 a_lm */
-        const int iw = im2 + 1;                       /* product mask a_lm */
         for (int k = 0; k < 3; k++) {
-            pcl[k] = calloc((size_t)lmax_t + 1, sizeof(double));
+            pcl[k] = calloc((size_t)lmax + 1, sizeof(double));
             if (!pcl[k]) {
                 status = clef_fail(CLEF_ENOMEM, "out of memory for spectra");
                 goto fail;
@@ -388,10 +432,10 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
             status = clef_fail(CLEF_ENOMEM, "out of memory for spectra");
             goto fail;
         }
-        CLEF_CHECK(clef_alm_cl(lmax_t, lmax_t, alm[0], alm[cross ? 1 : 0], pcl[0]));
+        CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[0], alm[cross ? 1 : 0], pcl[0]));
         if (cross) {
-            CLEF_CHECK(clef_alm_cl(lmax_t, lmax_t, alm[0], NULL, pcl[1]));
-            CLEF_CHECK(clef_alm_cl(lmax_t, lmax_t, alm[1], NULL, pcl[2]));
+            CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[0], NULL, pcl[1]));
+            CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[1], NULL, pcl[2]));
         }
         /* W_l of the mask pair (a cross-spectrum for two masks). */
         CLEF_CHECK(clef_alm_cl(lmax_t, lmax_t, alm[im], alm[im2], wl));
@@ -428,8 +472,9 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
     /* Coupling operator. */
     CLEF_CHECK(signal_filter(&o, nside, lmax, tl));
     {
-        clef_coupling_opts co = {0};
-        co.rcond_min = o.rcond_min;
+        clef_coupling_opts co;
+        co.rcond_min = o.rcond_min > 0 ? o.rcond_min : CLEF_COUPLING_RCOND_MIN;
+        co.width_level = CLEF_COUPLING_WIDTH_LEVEL;
         clef_progress("coupling", 0.0);
         if (o.use_cache) {
             status = clef_coupling_binned_create_cached(&kb, lmax, wl, lmax_t, bins, tl, &co,
@@ -509,7 +554,10 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
 
     CLEF_CHECK(record_meta(bp, &o, res));
     if (o.find_peak) {
-        CLEF_CHECK(clef_peak_find(bp, &o.peak, &res->peak));
+        clef_peak_opts po = o.peak;
+        if (!(po.half_width > 0))
+            po.half_width = peak_half_width(bins, &po);
+        CLEF_CHECK(clef_peak_find(bp, &po, &res->peak));
         res->peak_done = 1;
         CLEF_CHECK(clef_peak_to_meta(&res->peak, bp));
         stage_done(res, "peak", &t0);

@@ -3,12 +3,18 @@
  * masked Gaussian skies. */
 #include "check.h"
 
+#include <complex.h>
+
+#include <chealpix.h>
+#include <omp.h>
 #include <gsl/gsl_errno.h>
+#include <gsl/gsl_randist.h>
 #include <gsl/gsl_rng.h>
 #include <gsl/gsl_sf_coupling.h>
 #include <gsl/gsl_sf_legendre.h>
 
 #include "clef/coupling.h"
+#include "clef/sht.h"
 #include "clef/wigner.h"
 
 /* Analytic W_l of the cap z >= z0 (w = 1 inside): w_l0 = 2 pi
@@ -50,6 +56,14 @@ static void test_full_sky_identity(void **state)
             check_abs(m[l * (L + 1) + lp], l == lp ? 1.0 : 0.0, 1e-12,
                       "full sky M = I (METHODS.md 4)");
     clef_coupling_destroy(c);
+    /* the smallest sizes (rows shorter than one kernel block) */
+    for (int lmax = 0; lmax <= 2; lmax++) {
+        m = make_coupling(&c, lmax, wl, 2 * lmax);
+        for (int l = 0; l <= lmax; l++)
+            for (int lp = 0; lp <= lmax; lp++)
+                check_abs(m[l * (lmax + 1) + lp], l == lp ? 1.0 : 0.0, 1e-15, "full sky, tiny lmax");
+        clef_coupling_destroy(c);
+    }
     /* w = f: W_0 = 4 pi f^2 -> M = f^2 I */
     const double f = 0.37;
     wl[0] = 4 * M_PI * f * f;
@@ -283,6 +297,10 @@ static void test_ill_conditioned(void **state)
     clef_coupling_binned *kb = (void *)1;
     assert_int_equal(clef_coupling_binned_create(&kb, c, bins, NULL, NULL), CLEF_ENUMERIC);
     assert_null(kb);
+    /* a zero-initialised options struct means the defaults, same error */
+    const clef_coupling_opts zero = {0};
+    assert_int_equal(clef_coupling_binned_create(&kb, c, bins, NULL, &zero), CLEF_ENUMERIC);
+    assert_null(kb);
     const char *msg = clef_last_error();
     assert_true(strstr(msg, "ill-conditioned") || strstr(msg, "singular"));
     assert_non_null(strstr(msg, "coupling width"));
@@ -357,6 +375,36 @@ static void test_singular_and_errors(void **state)
     assert_int_equal(clef_coupling_width(NULL, 2 * L, 1e-2), 0);
 }
 
+
+static int progress_calls, progress_bad;
+static double progress_last;
+static void record_progress(void *user, const char *stage, double fraction)
+{
+    (void)user;
+    if (strcmp(stage, "coupling") != 0 || fraction < progress_last || fraction > 1 ||
+        omp_get_thread_num() != 0)
+        progress_bad++;
+    progress_last = fraction;
+    progress_calls++;
+}
+
+/* Progress: stage "coupling", from the calling thread, increasing, ending
+ * at 1, at most a few hundred calls (include/clef/clef.h). */
+static void test_progress(void **state)
+{
+    (void)state;
+    enum { L = 1000 };
+    static double wl[2 * L + 1];
+    wl[0] = 4 * M_PI;
+    clef_set_progress(record_progress, NULL);
+    clef_coupling *c;
+    assert_int_equal(clef_coupling_create(&c, L, wl, 2 * L), CLEF_OK);
+    clef_set_progress(NULL, NULL);
+    clef_coupling_destroy(c);
+    assert_int_equal(progress_bad, 0);
+    assert_true(progress_calls >= 2 && progress_calls <= 300);
+    check_abs(progress_last, 1.0, 0.0, "progress ends at 1");
+}
 
 /* ---- coupling cache ---- */
 
@@ -686,6 +734,125 @@ static void test_cache_dir(void **state)
         free(saved[i]);
     }
 }
+
+/* ---- masked Gaussian skies ---- */
+
+/* Cosine-tapered polar cap: 1 for theta < t1, 0 for theta > t2,
+ * (1 + cos(pi (theta - t1)/(t2 - t1)))/2 between (common practice). */
+static double taper(double theta, double t1, double t2)
+{
+    if (theta <= t1)
+        return 1.0;
+    if (theta >= t2)
+        return 0.0;
+    return 0.5 * (1.0 + cos(M_PI * (theta - t1) / (t2 - t1)));
+}
+
+/* The mean pseudo-spectrum of masked Gaussian realisations equals M C_l
+ * (Hivon et al. 2002 eq. for <C~_l>, METHODS.md section 4).  C_l is 1 on
+ * even l and 0 on odd l up to lin, so the coupling visibly moves power
+ * into odd l: the naive w2 C_l prediction must fail the same test. */
+static void test_masked_gaussian_skies(void **state)
+{
+    (void)state;
+    const int nside = 32, lin = 40, lmax = 2 * lin, iters = 1;
+    const int nreal = test_sanitize() ? 60 : 400;
+    /* one plan for the mask (W_l to 2 lin), a cheaper one for the skies */
+    clef_sht *pw, *p;
+    assert_int_equal(clef_sht_create(&pw, nside, lmax, NULL), CLEF_OK);
+    assert_int_equal(clef_sht_create(&p, nside, lin, NULL), CLEF_OK);
+    const int64_t npix = 12 * (int64_t)nside * nside;
+    const size_t nalm = clef_alm_size(lmax, lmax), nin = clef_alm_size(lin, lin);
+    double *mask = malloc((size_t)npix * sizeof *mask), *map = malloc((size_t)npix * sizeof *map);
+    double complex *alm = malloc(nin * sizeof *alm), *out = malloc(nalm * sizeof *out);
+    double *cl_in = calloc((size_t)lmax + 1, sizeof *cl_in), *pcl = malloc((lmax + 1) * sizeof *pcl);
+    double *sum = calloc((size_t)lmax + 1, sizeof *sum), *sum2 = calloc((size_t)lmax + 1, sizeof *sum2);
+    double *wl = malloc(((size_t)lmax + 1) * sizeof *wl), *pred = malloc((lmax + 1) * sizeof *pred);
+    assert_true(mask && map && alm && out && cl_in && pcl && sum && sum2 && wl && pred);
+    double w2 = 0;
+    for (int64_t i = 0; i < npix; i++) {
+        double theta, phi;
+        pix2ang_ring(nside, i, &theta, &phi);
+        mask[i] = taper(theta, 50 * M_PI / 180, 90 * M_PI / 180);
+        w2 += mask[i] * mask[i] / (double)npix;
+    }
+    /* W_l from the transform of the mask, to 2 lin (METHODS.md section 4) */
+    assert_int_equal(clef_sht_analysis(pw, 1, (const double *const *)&mask, &out, 3), CLEF_OK);
+    assert_int_equal(clef_alm_cl(lmax, lmax, out, NULL, wl), CLEF_OK);
+    clef_sht_destroy(pw);
+    for (int l = 2; l <= lin; l += 2)
+        cl_in[l] = 1.0;
+    clef_coupling *c;
+    assert_int_equal(clef_coupling_create(&c, lin, wl, lmax), CLEF_OK);
+    clef_coupling_apply(c, cl_in, pred);
+
+    gsl_rng *r = gsl_rng_alloc(gsl_rng_mt19937);
+    gsl_rng_set(r, 2002);
+    /* Transforms this small gain nothing from threads, and on a shared,
+     * busy machine every parallel region waits for a descheduled thread. */
+    const int nthreads = omp_get_max_threads();
+    omp_set_num_threads(1);
+    for (int k = 0; k < nreal; k++) {
+        /* a_l0 ~ N(0, C_l); Re, Im a_lm ~ N(0, C_l/2) for m > 0 */
+        for (int m = 0; m <= lin; m++)
+            for (int l = m; l <= lin; l++) {
+                const double s = sqrt(cl_in[l]);
+                const size_t i = clef_alm_index(lin, l, m);
+                if (m == 0)
+                    alm[i] = s * gsl_ran_gaussian(r, 1.0);
+                else
+                    alm[i] = s * M_SQRT1_2 *
+                             (gsl_ran_gaussian(r, 1.0) + I * gsl_ran_gaussian(r, 1.0));
+            }
+        assert_int_equal(clef_sht_synthesis(p, 1, (const double complex *const *)&alm, &map),
+                         CLEF_OK);
+        for (int64_t i = 0; i < npix; i++)
+            map[i] *= mask[i];
+        assert_int_equal(clef_sht_analysis(p, 1, (const double *const *)&map, &out, iters),
+                         CLEF_OK);
+        assert_int_equal(clef_alm_cl(lin, lin, out, NULL, pcl), CLEF_OK);
+        for (int l = 0; l <= lin; l++) {
+            sum[l] += pcl[l];
+            sum2[l] += pcl[l] * pcl[l];
+        }
+    }
+    omp_set_num_threads(nthreads);
+    /* Per l: |mean - (M C)_l| within 4 standard errors of the ensemble;
+     * the naive w2 C_l must be rejected at many odd l. */
+    int naive_bad = 0;
+    double chi2 = 0;
+    for (int l = 2; l <= lin; l++) {
+        const double mean = sum[l] / nreal;
+        const double var = (sum2[l] - nreal * mean * mean) / (nreal - 1);
+        const double se = sqrt(var / nreal);
+        const double z = (mean - pred[l]) / se;
+        chi2 += z * z;
+        if (fabs(z) > 4)
+            fail_msg("l = %d: mean pseudo-C_l %.6g, M C %.6g, %.1f standard errors apart "
+                     "(Hivon et al. 2002)", l, mean, pred[l], z);
+        if (fabs(mean - w2 * cl_in[l]) > 4 * se)
+            naive_bad++;
+    }
+    /* chi^2 over lin - 1 multipoles (correlated, so only a loose bound) */
+    if (getenv("CLEF_TEST_VERBOSE"))
+        printf("masked skies: chi2 %.1f over %d l, naive rejected at %d l\n", chi2, lin - 1,
+               naive_bad);
+    assert_true(chi2 < 3 * (lin - 1));
+    assert_true(naive_bad > (lin - 1) / 3);
+    gsl_rng_free(r);
+    clef_coupling_destroy(c);
+    clef_sht_destroy(p);
+    free(mask);
+    free(map);
+    free(alm);
+    free(out);
+    free(cl_in);
+    free(pcl);
+    free(sum);
+    free(sum2);
+    free(wl);
+    free(pred);
+}
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -697,9 +864,11 @@ int main(void)
         cmocka_unit_test(test_binned_recovers_band_powers),
         cmocka_unit_test(test_ill_conditioned),
         cmocka_unit_test(test_singular_and_errors),
+        cmocka_unit_test(test_progress),
         cmocka_unit_test(test_cache_hit_and_keys),
         cmocka_unit_test(test_cache_corrupt_and_mismatch),
         cmocka_unit_test(test_cache_dir),
+        cmocka_unit_test(test_masked_gaussian_skies),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

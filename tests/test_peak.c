@@ -34,6 +34,28 @@ static double toy_gauss(double l)
     return G_D0 + G_A * exp(-0.5 * (l - G_LP) * (l - G_LP) / (G_W * G_W));
 }
 
+/* The options these tests were designed around: the parabola over +-80
+ * multipoles.  The library's defaults (Gaussian, +-60) are checked in
+ * defaults_documented. */
+static void test_opts(clef_peak_opts *o)
+{
+    clef_peak_opts_default(o);
+    o->model = CLEF_PEAK_PARABOLA;
+    o->half_width = 80;
+}
+
+/* The defaults documented in include/clef/peak.h and docs/peak.md. */
+static void defaults_documented(void **state)
+{
+    (void)state;
+    clef_peak_opts o;
+    clef_peak_opts_default(&o);
+    assert_int_equal(o.model, CLEF_PEAK_GAUSSIAN);
+    check_abs(o.half_width, 60, 0, "peak.h default");
+    check_abs(o.l_min, 100, 0, "issue 6 default window");
+    check_abs(o.l_max, 400, 0, "issue 6 default window");
+}
+
 static void fill_gauss_binned(clef_bandpowers *bp)
 {
     for (int b = 0; b < bp->nbins; b++) {
@@ -67,7 +89,7 @@ static void exact_parabola(void **state)
         bp->dl[b] = dp + c * (bp->l_eff[b] - lp) * (bp->l_eff[b] - lp);
     set_cov(bp, 0.02, 30, 0.3);
     clef_peak_opts o;
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     clef_peak_result r;
     assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_OK);
     assert_int_equal(r.found, 1);
@@ -103,7 +125,7 @@ static void toy_gaussian_noiseless(void **state)
     fill_gauss_binned(bp);
     set_cov(bp, 0.02, 30, 0.2);
     clef_peak_opts o;
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     o.model = CLEF_PEAK_GAUSSIAN;
     clef_peak_result r;
     assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_OK);
@@ -210,7 +232,7 @@ static void mc_parabola(void **state)
         truth->dl[b] = dp + c * (truth->l_eff[b] - lp) * (truth->l_eff[b] - lp);
     set_cov(truth, 0.01, 120, 0.3);
     clef_peak_opts o;
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     const mc_stats st = run_mc(truth, &o, NREAL, 42);
     print_message("parabola MC: found %d/%d, mean l %.3f, sd %.3f, rms sigma %.3f, chi2 %.3f dof %.3f\n",
                   st.nfound, NREAL, st.mean_l, st.sd_l, st.rms_sigma, st.mean_chi2, st.mean_dof);
@@ -227,7 +249,7 @@ static void mc_gaussian(void **state)
     fill_gauss_binned(truth);
     set_cov(truth, 0.01, 120, 0.3);
     clef_peak_opts o;
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     o.model = CLEF_PEAK_GAUSSIAN;
     const mc_stats st = run_mc(truth, &o, NREAL, 4242);
     print_message("Gaussian MC: found %d/%d, mean l %.3f, sd %.3f, rms sigma %.3f, chi2 %.3f dof %.3f\n",
@@ -257,7 +279,7 @@ static void mc_flat(void **state)
         truth->dl[b] = 3000;
     set_cov(truth, 0.0, 100, 0.3);
     clef_peak_opts o;
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     const mc_stats s2 = run_mc(truth, &o, NREAL, 7);
     o.model = CLEF_PEAK_GAUSSIAN;
     const mc_stats g2 = run_mc(truth, &o, NREAL, 7);
@@ -288,7 +310,7 @@ static void numpy_reference(void **state)
         bp->dl[b] += gsl_ran_gaussian(rng, bp->dl_err[b]);
     gsl_rng_free(rng);
     clef_peak_opts o;
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     clef_peak_result r;
     assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_OK);
     assert_int_equal(r.found, 1);
@@ -354,7 +376,7 @@ static void no_peak_cases(void **state)
 {
     (void)state;
     clef_peak_opts o;
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     double d[NB];
     /* Monotonic rising / falling spectra: the maximum sits on the window edge. */
     for (int b = 0; b < NB; b++)
@@ -370,7 +392,7 @@ static void no_peak_cases(void **state)
 
     /* Too few bins: a half width below the bin spacing, or 3 bins for the
      * Gaussian's four parameters. */
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     for (int b = 0; b < NB; b++)
         d[b] = 5600 - 0.12 * (20 * b + 11.5 - 231.7) * (20 * b + 11.5 - 231.7);
     bp = table_from(d, NB, 5);
@@ -389,7 +411,7 @@ static void no_peak_cases(void **state)
     check_abs(r.chi2, 0, 1e-20, "three points on a parabola");
 
     /* Shallow curvature with large errors: not significant. */
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     for (int b = 0; b < NB; b++)
         bp->dl[b] = 3000 - 0.001 * (20 * b + 11.5 - 250) * (20 * b + 11.5 - 250);
     for (int b = 0; b < NB; b++)
@@ -401,7 +423,7 @@ static void no_peak_cases(void **state)
 
     /* A spike on a convex background: the highest bin is inside the window
      * but the parabola opens upwards. */
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     o.l_min = 170;
     o.l_max = 330;
     for (int b = 0; b < NB; b++) {
@@ -451,7 +473,7 @@ static void input_errors(void **state)
     set_cov(bp, 0.01, 100, 0.3);
     clef_peak_opts o;
     clef_peak_result r;
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     o.l_min = 1000;
     o.l_max = 2000;
     assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_EINVAL);
@@ -459,13 +481,13 @@ static void input_errors(void **state)
     o.l_min = 300;
     o.l_max = 300;
     assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_EINVAL);
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     o.half_width = 0;
     assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_EINVAL);
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     o.curv_nsigma = -1;
     assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_EINVAL);
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     o.model = 7;
     assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_EINVAL);
     assert_int_equal(clef_peak_find(bp, NULL, &r), CLEF_EINVAL);
@@ -510,7 +532,7 @@ static void meta_round_trip(void **state)
     fill_gauss_binned(bp);
     set_cov(bp, 0.01, 100, 0.3);
     clef_peak_opts o;
-    clef_peak_opts_default(&o);
+    test_opts(&o);
     o.model = CLEF_PEAK_GAUSSIAN;
     clef_peak_result r, back;
     assert_int_equal(clef_peak_find(bp, &o, &r), CLEF_OK);
@@ -568,6 +590,7 @@ static void meta_round_trip(void **state)
 int main(void)
 {
     const struct CMUnitTest tests[] = {
+        cmocka_unit_test(defaults_documented),
         cmocka_unit_test(exact_parabola),
         cmocka_unit_test(toy_gaussian_noiseless),
         cmocka_unit_test(mc_parabola),

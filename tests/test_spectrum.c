@@ -255,7 +255,7 @@ static void test_peak_recovery(void **state)
     assert_int_equal(clef_theory_first_peak(&cp, &l_true, &d_true), CLEF_OK);
     assert_true(fabs(l_true - 220.1) < 0.05 * 220.1); /* within the model's stated ~few % */
 
-    clef_map *mask = cut_mask(nside, 12.0, 8.0);
+    clef_map *mask = cut_mask(nside, 17.0, 8.0);
     clef_sht *sht = NULL;
     clef_sht_opts so_sht = {0};
     assert_int_equal(clef_sht_create(&sht, nside, lsim, &so_sht), CLEF_OK);
@@ -291,7 +291,7 @@ static void test_peak_recovery(void **state)
     print_message("peak: model %.2f, mean recovered %.2f, scatter %.2f, mean quoted %.2f, "
                   "%d/%d within 2 sigma, f_sky %.2f\n",
                   l_true, mean, sd, sum_err / nsim, inside, nsim, fsky);
-    assert_true(fsky > 0.65 && fsky < 0.85);
+    assert_true(fsky > 0.65 && fsky < 0.75); /* ~70% of the sky (issue 6) */
     assert_true(inside >= (int)ceil(0.9 * nsim));
     clef_map_free(m);
     clef_map_free(mask);
@@ -433,11 +433,15 @@ static void test_errors(void **state)
         patch->pix[p] = 1.0; /* the four pixels around the north pole */
     o.lmax = 90;
     o.bin_width = 1;
-    assert_int_equal(clef_spectrum_compute(sky, NULL, patch, NULL, &o, &r), CLEF_ENUMERIC);
+    o.keep_multipoles = 1;
+    int st = clef_spectrum_compute(sky, NULL, patch, NULL, &o, &r);
+
+    assert_int_equal(st, CLEF_ENUMERIC);
     assert_non_null(strstr(clef_last_error(), "bin"));
 
     o.lmax = 0;
     o.bin_width = 0;
+    o.keep_multipoles = 0;
     assert_int_equal(clef_spectrum_compute(m32, NULL, mask32, mask32, &o, &r), CLEF_EINVAL);
     clef_map_free(m16);
     clef_map_free(m32);

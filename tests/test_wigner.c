@@ -178,6 +178,114 @@ static void test_squared_form(void **state)
     gsl_rng_free(r);
 }
 
+/* General m (Schulten & Gordon 1975 recurrence). */
+static double row_m(int j, int l2, int l3, int m2, int m3)
+{
+    static double buf[2 * 4000 + 2];
+    int lo, hi;
+    assert_int_equal(clef_wigner_3j_row(l2, l3, m2, m3, buf, &lo, &hi), CLEF_OK);
+    return j < lo || j > hi ? 0.0 : buf[j - lo];
+}
+
+static void test_general_m_exact(void **state)
+{
+    (void)state;
+    const double tol = 16 * DBL_EPSILON;
+    /* METHODS.md section 3 [D, checked against the Racah formula] */
+    check_rel(row_m(1, 1, 0, -1, 0), sqrt(1.0 / 3), tol, "(1 1 0; 1 -1 0)");
+    check_rel(row_m(1, 1, 2, -1, 0), sqrt(1.0 / 30), tol, "(1 1 2; 1 -1 0)");
+    check_rel(row_m(2, 2, 2, -1, 0), sqrt(1.0 / 70), tol, "(2 2 2; 1 -1 0)");
+    check_rel(row_m(3, 2, 1, -1, 0), sqrt(8.0 / 105), tol, "(3 2 1; 1 -1 0)");
+    /* m = 0 reduces to the DLMF 34.3.5 values */
+    check_rel(row_m(10, 10, 10, 0, 0), -sqrt(111132.0 / 33393355), tol, "DLMF 34.3.5");
+    check_rel(row_m(0, 1, 1, 0, 0), -sqrt(1.0 / 3), tol, "DLMF 34.3.5");
+    assert_true(row_m(2, 2, 1, 0, 0) == 0.0);
+    /* no allowed j: |m2| > l2 */
+    double buf[8];
+    int lo, hi;
+    assert_int_equal(clef_wigner_3j_row(1, 3, 2, 0, buf, &lo, &hi), CLEF_OK);
+    assert_true(lo > hi);
+    assert_int_equal(clef_wigner_3j_row(-1, 3, 0, 0, buf, &lo, &hi), CLEF_EINVAL);
+    assert_int_equal(clef_wigner_3j_row(1, 3, 0, 0, NULL, &lo, &hi), CLEF_EINVAL);
+}
+
+static void test_general_m_vs_gsl(void **state)
+{
+    (void)state;
+    gsl_rng *r = gsl_rng_alloc(gsl_rng_mt19937);
+    gsl_rng_set(r, 1975);
+    gsl_set_error_handler_off();
+    static double buf[2 * 200 + 2];
+    int checked = 0;
+    for (int i = 0; i < 1500; i++) {
+        const int lmax = i < 1000 ? 15 : 60;
+        const int l2 = (int)gsl_rng_uniform_int(r, (unsigned long)lmax + 1);
+        const int l3 = (int)gsl_rng_uniform_int(r, (unsigned long)lmax + 1);
+        const int m2 = (int)gsl_rng_uniform_int(r, 2 * (unsigned long)l2 + 1) - l2;
+        const int m3 = (int)gsl_rng_uniform_int(r, 2 * (unsigned long)l3 + 1) - l3;
+        int lo, hi;
+        assert_int_equal(clef_wigner_3j_row(l2, l3, m2, m3, buf, &lo, &hi), CLEF_OK);
+        for (int j = lo; j <= hi; j++) {
+            /* GSL gsl_sf_coupling_3j (arguments are 2j) */
+            gsl_sf_result ref;
+            assert_int_equal(gsl_sf_coupling_3j_e(2 * j, 2 * l2, 2 * l3, 2 * (-m2 - m3), 2 * m2,
+                                                  2 * m3, &ref),
+                             GSL_SUCCESS);
+            const double tol = fmax(1e-12 * fabs(ref.val), ref.err) + 1e-15;
+            check_abs(buf[j - lo], ref.val, tol, "GSL gsl_sf_coupling_3j");
+            checked++;
+        }
+    }
+    assert_true(checked > 10000);
+    gsl_rng_free(r);
+}
+
+static void test_general_m_large(void **state)
+{
+    (void)state;
+    static double a[2 * 4000 + 2], b[2 * 4000 + 2], z[2 * 4000 + 2];
+    /* m = 0 against the closed-form row (Edmonds 1957) at large l */
+    const int pairs[][2] = {{3000, 1000}, {2500, 2500}, {1, 4000}, {1234, 567}};
+    for (size_t i = 0; i < sizeof pairs / sizeof pairs[0]; i++) {
+        int lo, hi, zlo, zhi;
+        assert_int_equal(clef_wigner_3j_row(pairs[i][0], pairs[i][1], 0, 0, a, &lo, &hi), CLEF_OK);
+        assert_int_equal(clef_wigner_3j000_row(pairs[i][0], pairs[i][1], z, &zlo, &zhi), CLEF_OK);
+        assert_int_equal(lo, zlo);
+        assert_int_equal(hi, zhi);
+        for (int j = lo; j <= hi; j++)
+            check_abs(a[j - lo], z[j - lo], 1e-12 * fmax(fabs(z[j - lo]), 1e-3),
+                      "m = 0 vs Edmonds 1957 closed form");
+    }
+    /* DLMF 34.3.18 (orthogonality in the first column): for fixed l2, l3
+     * and m1, sum_j (2j+1) (j l2 l3; m1 m2 m3)(j l2 l3; m1 m2' m3') = 0
+     * when (m2, m3) != (m2', m3'), with large m (forbidden regions, rescaling) */
+    const int cases[][6] = {{700, 900, 650, -50, 640, -40},
+                            {2000, 1500, -1200, 300, -1190, 290},
+                            {60, 70, 2, -2, 0, 0},
+                            {1000, 1000, 1000, -1000, 999, -999}};
+    for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
+        int lo1, hi1, lo2, hi2;
+        assert_int_equal(clef_wigner_3j_row(cases[i][0], cases[i][1], cases[i][2], cases[i][3],
+                                            a, &lo1, &hi1),
+                         CLEF_OK);
+        assert_int_equal(clef_wigner_3j_row(cases[i][0], cases[i][1], cases[i][4], cases[i][5],
+                                            b, &lo2, &hi2),
+                         CLEF_OK);
+        long double s = 0, n1 = 0;
+        for (int j = lo1 > lo2 ? lo1 : lo2; j <= hi1; j++)
+            s += (2.0L * j + 1) * a[j - lo1] * b[j - lo2];
+        for (int j = lo1; j <= hi1; j++)
+            n1 += (2.0L * j + 1) * a[j - lo1] * a[j - lo1];
+        check_abs((double)s, 0.0, 1e-12, "DLMF 34.3.18 orthogonality");
+        check_rel((double)n1, 1.0, 1e-13, "normalisation");
+        /* sign convention at jmax: (-1)^(l2 - l3 - m1) (METHODS.md section 3) */
+        const int m1 = -cases[i][2] - cases[i][3];
+        const int neg = (cases[i][0] - cases[i][1] - m1) % 2 != 0;
+        assert_true((a[hi1 - lo1] < 0) == neg);
+        assert_true(isfinite(a[0]) && isfinite(a[hi1 - lo1]));
+    }
+}
+
 static void test_errors(void **state)
 {
     (void)state;
@@ -193,6 +301,8 @@ int main(void)
         cmocka_unit_test(test_exact_values), cmocka_unit_test(test_vs_gsl),
         cmocka_unit_test(test_vs_edmonds),   cmocka_unit_test(test_orthogonality),
         cmocka_unit_test(test_squared_form), cmocka_unit_test(test_errors),
+        cmocka_unit_test(test_general_m_exact), cmocka_unit_test(test_general_m_vs_gsl),
+        cmocka_unit_test(test_general_m_large),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

@@ -50,6 +50,8 @@ typedef struct clef_coupling_binned clef_coupling_binned;
  * W_l >= level * W_0. */
 #define CLEF_COUPLING_WIDTH_LEVEL 1e-2
 
+/* Options; a field <= 0 (so also a zero-initialised struct) means its
+ * default. */
 typedef struct clef_coupling_opts {
     double rcond_min;   /* CLEF_ENUMERIC below this rcond (default CLEF_COUPLING_RCOND_MIN) */
     double width_level; /* for suggested bin widths (default CLEF_COUPLING_WIDTH_LEVEL) */

@@ -21,8 +21,9 @@ enum clef_peak_model {
 
 typedef struct clef_peak_opts {
     double l_min, l_max;    /* search window (default 100 <= l <= 400) */
-    int model;              /* enum clef_peak_model (default parabola) */
-    double half_width;      /* bins within this many multipoles of the highest bin enter the fit (default 80) */
+    int model;              /* enum clef_peak_model (default Gaussian) */
+    double half_width;      /* bins within this many multipoles (at least 3 bin widths) of the
+                               highest bin enter the fit (default 60) */
     double curv_nsigma;     /* the fitted curvature must lie at least this many standard
                                errors below zero, else "no peak" (default 2; docs/peak.md) */
 } clef_peak_opts;

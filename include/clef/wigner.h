@@ -10,7 +10,9 @@
  *    (Edmonds 1957; DLMF 34.3.5), accurate to l ~ 20000 without overflow;
  *  - clef_wigner_3j000_sq: the squared symbol from a table of
  *    A(n) = (2n-1)!!/(2n)!!, square-root free and branch free, for the
- *    coupling kernel (PERFORMANCE.md section 3).
+ *    coupling kernel (PERFORMANCE.md section 3);
+ *  - clef_wigner_3j_row: general m, for all values of the first column
+ *    (Schulten & Gordon 1975), e.g. for spin-2 coupling kernels.
  *
  * Thread safety: no shared state; tables are read only after they are
  * filled.
@@ -48,6 +50,17 @@ static inline double clef_wigner_3j000_sq(const double *a, int l1, int l2, int l
     const int g = (l1 + l2 + l3) / 2;
     return a[g - l1] * a[g - l2] * a[g - l3] / ((2.0 * g + 1.0) * a[g]);
 }
+
+/* General (j l2 l3; m1 m2 m3) with m1 = -m2 - m3, for every j at once:
+ * out[j - jmin] for jmin = max(|l2 - l3|, |m1|) <= j <= jmax = l2 + l3,
+ * by the three-term recurrence in j of Schulten & Gordon 1975 (J. Math.
+ * Phys. 16, 1961), run upward from jmin and downward from jmax and matched
+ * inside the classically allowed region, normalised by
+ * sum_j (2j+1) f^2 = 1 with the sign (-1)^(l2 - l3 - m1) at j = jmax.
+ * `out` must hold l2 + l3 + 1 doubles.  *jmin > *jmax (no allowed j) when
+ * |m2| > l2 or |m3| > l3 or |m1| > l2 + l3; then nothing is written.
+ * Errors: CLEF_EINVAL for negative l2, l3 or NULL pointers. */
+int clef_wigner_3j_row(int l2, int l3, int m2, int m3, double *out, int *jmin, int *jmax);
 
 #ifdef __cplusplus
 }

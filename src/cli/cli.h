@@ -66,9 +66,11 @@ void cli_verbose(const char *fmt, ...)
 /* Subcommands, one file each under src/cli/ (one declaration per line). */
 int cmd_inspect(int argc, char **argv);
 int cmd_convert(int argc, char **argv);
+int cmd_simulate(int argc, char **argv);
 int cmd_peak(int argc, char **argv);
 int cmd_spectrum(int argc, char **argv);
 int cmd_model(int argc, char **argv);
 int cmd_geometry(int argc, char **argv);
+int cmd_mask(int argc, char **argv);
 
 #endif

@@ -28,7 +28,7 @@ static void help(void)
            "  --l-min L           lower end of the search window, multipole (default %g)\n"
            "  --l-max L           upper end of the search window, multipole (default %g)\n"
            "  --model M           'parabola' (D = a + b l + c l^2) or 'gaussian'\n"
-           "                      (D = D0 + A exp(-(l - lp)^2 / 2w^2)) (default parabola)\n"
+           "                      (D = D0 + A exp(-(l - lp)^2 / 2w^2)) (default gaussian)\n"
            "  --half-width DL     fit the bins within DL multipoles of the highest one\n"
            "                      (default %g)\n"
            "  --curv-sigma N      report no peak unless the fitted curvature is at least\n"

@@ -60,7 +60,9 @@ static void help(void)
         "  --no-cache             neither read nor write the coupling cache\n\n"
         "First peak:\n"
         "  --peak-l-min L, --peak-l-max L   search window (default 100..400)\n"
-        "  --peak-model parabola|gaussian   fitted shape (default parabola)\n"
+        "  --peak-model parabola|gaussian   fitted shape (default gaussian)\n"
+        "  --peak-half-width L    multipoles each side of the top bin used in the fit\n"
+        "                         (default: max(60, three bin widths))\n"
         "  --no-peak              skip the peak fit\n\n"
         "Output:\n"
         "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv, PREFIX.json\n"
@@ -76,7 +78,7 @@ static void help(void)
 enum {
     OPT_MASK = 256, OPT_MASK2, OPT_HDU, OPT_COLUMN, OPT_COORD, OPT_LMAX, OPT_BINW, OPT_LOGB,
     OPT_BINS, OPT_FWHM, OPT_BEAMF, OPT_NOPIX, OPT_TRANSFER, OPT_NOISE, OPT_THEORY, OPT_ITER,
-    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_PLMIN, OPT_PLMAX, OPT_PMODEL, OPT_NOPEAK, OPT_FORMAT,
+    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_PLMIN, OPT_PLMAX, OPT_PMODEL, OPT_PHW, OPT_NOPEAK, OPT_FORMAT,
     OPT_THREADS, OPT_QUIET, OPT_VERBOSE, OPT_HELP
 };
 
@@ -84,7 +86,7 @@ typedef struct args {
     const char *map[2], *mask[2], *hdu, *column, *bins_file, *beam_file, *transfer_file;
     const char *noise_file, *theory_file, *cache_dir, *output, *format, *threads;
     long lmax, bin_width, log_bins, iterations;
-    double beam_fwhm, peak_lmin, peak_lmax;
+    double beam_fwhm, peak_lmin, peak_lmax, peak_hw;
     int peak_model, no_peak, no_pixwin, keep, no_cache, coord;
     int want_fits, want_csv, want_json;
 } args;
@@ -134,6 +136,7 @@ static int parse_args(int argc, char **argv, args *a)
         {"peak-l-min", required_argument, 0, OPT_PLMIN},
         {"peak-l-max", required_argument, 0, OPT_PLMAX},
         {"peak-model", required_argument, 0, OPT_PMODEL},
+        {"peak-half-width", required_argument, 0, OPT_PHW},
         {"no-peak", no_argument, 0, OPT_NOPEAK},
         {"output", required_argument, 0, 'o'},
         {"format", required_argument, 0, OPT_FORMAT},
@@ -144,6 +147,7 @@ static int parse_args(int argc, char **argv, args *a)
         {0, 0, 0, 0}};
     memset(a, 0, sizeof *a);
     a->iterations = CLEF_SPECTRUM_ITERATIONS;
+    a->peak_model = -1;
     a->peak_lmin = -1;
     a->peak_lmax = -1;
     a->want_fits = a->want_csv = a->want_json = 1;
@@ -214,6 +218,13 @@ static int parse_args(int argc, char **argv, args *a)
             else
                 return cli_usage_error(CMD, "--peak-model must be parabola or gaussian, got '%s'",
                                        optarg);
+            break;
+        case OPT_PHW:
+            if (cli_parse_double(CMD, "--peak-half-width", optarg, &a->peak_hw))
+                return CLI_EXIT_USAGE;
+            if (!(a->peak_hw > 0))
+                return cli_usage_error(CMD, "--peak-half-width must be positive, got %g",
+                                       a->peak_hw);
             break;
         case OPT_NOPEAK: a->no_peak = 1; break;
         case 'o': a->output = optarg; break;
@@ -536,11 +547,14 @@ int cmd_spectrum(int argc, char **argv)
     so.beam_fwhm = a.beam_fwhm;
     so.allow_coord_mismatch = a.coord;
     so.find_peak = !a.no_peak;
-    so.peak.model = a.peak_model;
+    if (a.peak_model >= 0)
+        so.peak.model = a.peak_model;
     if (a.peak_lmin >= 0)
         so.peak.l_min = a.peak_lmin;
     if (a.peak_lmax >= 0)
         so.peak.l_max = a.peak_lmax;
+    if (a.peak_hw > 0)
+        so.peak.half_width = a.peak_hw;
     so.names[0] = a.map[0];
     so.names[1] = a.map[1];
     so.names[2] = a.mask[0];

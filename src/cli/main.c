@@ -9,10 +9,12 @@
 static const cli_command commands[] = {
     {"inspect", "summarise a HEALPix map file", cmd_inspect},
     {"convert", "rewrite a HEALPix map in clef's RING layout", cmd_convert},
+    {"simulate", "draw a Gaussian sky with beam, pixel window and noise", cmd_simulate},
     {"peak", "locate the first acoustic peak in a band-power table", cmd_peak},
     {"spectrum", "band powers, errors and first peak of a map (or two) and a mask", cmd_spectrum},
     {"model", "analytic CMB temperature spectrum for cosmological parameters", cmd_model},
     {"geometry", "curvature and acoustic scale from the first peak", cmd_geometry},
+    {"mask", "build, cut, apodize and report a mask", cmd_mask},
     {NULL, NULL, NULL},
 };
 

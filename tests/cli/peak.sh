@@ -36,7 +36,7 @@ check_json() { # file, python expression over the parsed object j
         || fail "JSON check '$2' on $1: $(cat "$1")"
 }
 
-"$CLEF_BIN" peak --json "$T/para.json" "$T/para.csv" > "$T/out.txt" || fail "peak on para.csv exit $?"
+"$CLEF_BIN" peak --model parabola --json "$T/para.json" "$T/para.csv" > "$T/out.txt" || fail "peak on para.csv exit $?"
 grep -q "l_peak  *231.70" "$T/out.txt" || fail "printed l_peak: $(cat "$T/out.txt")"
 check_json "$T/para.json" "j['found'] is True and abs(j['l_peak'] - 231.7) < 1e-6 and j['model'] == 'parabola' and j['covariance'] == 'diagonal'"
 check_json "$T/para.json" "abs(j['theta_deg'] - 180 / j['l_peak']) < 1e-12 and j['dof'] == j['bins_used'] - 3 and j['l_peak_err'] > 0"

@@ -1,0 +1,96 @@
+#!/bin/sh
+# clef spectrum end to end: outputs read back by outside readers (Python's
+# json, astropy), fitsverify on the FITS table, agreement of FITS, CSV and
+# JSON, the coupling cache on a second run, and the documented exit codes
+# for bad input with nothing written (docs/exit-codes.md).
+set -u
+T="$CLEF_TEST_TMP/spectrum-cli"
+mkdir -p "$T" || exit 1
+fail() { echo "FAIL: $*"; exit 1; }
+C="$CLEF_BIN"
+
+# A small sky: two noise splits at nside 64 with a 30-arcmin beam, and a
+# latitude-cut mask.
+"$C" simulate --quiet --nside 64 --model --seed 3 --beam-fwhm 30 --noise-depth 30 --splits 2 \
+    --coordsys G --output "$T/sky.fits" || fail "simulate"
+"$C" mask --quiet --nside 64 --latitude-cut 15 --apodize c2 --apod-scale 5 --coordsys G \
+    --output "$T/mask.fits" || fail "mask"
+"$C" mask --quiet --nside 32 --output "$T/mask32.fits" || fail "mask32"
+"$C" mask --quiet --nside 64 --patch 0,90,0.1 --output "$T/empty.fits" || fail "empty mask"
+"$C" mask --quiet --nside 64 --patch 0,90,4 --output "$T/tiny.fits" || fail "tiny mask"
+
+"$C" spectrum "$T/sky_split1.fits" "$T/sky_split2.fits" --mask "$T/mask.fits" --beam-fwhm 30 \
+    --output "$T/run" > "$T/out.txt" 2> "$T/err.txt" || fail "spectrum exit $?: $(cat "$T/err.txt")"
+for f in run.fits run.csv run-cov.csv run.json; do
+    [ -s "$T/$f" ] || fail "missing output $f"
+done
+grep -q "first peak" "$T/out.txt" || fail "no peak line: $(cat "$T/out.txt")"
+fitsverify -q "$T/run.fits" | grep -q "verification OK" || fail "fitsverify: $(fitsverify "$T/run.fits")"
+
+# FITS (astropy), CSV (numpy) and JSON (json) say the same thing.
+"$CLEF_PYTHON" - "$T" <<'PY' || fail "outputs disagree"
+import json, sys
+import numpy as np
+from astropy.io import fits
+t = sys.argv[1]
+j = json.load(open(t + "/run.json"))
+assert j["program"] == "clef" and j["spectrum"] == "cross", j["spectrum"]
+assert len(j["inputs"]) == 3 and all(len(i["sha256"]) == 64 for i in j["inputs"])
+import hashlib
+assert j["inputs"][0]["sha256"] == hashlib.sha256(open(t + "/sky_split1.fits", "rb").read()).hexdigest()
+assert 0.6 < j["sky"]["fsky"] < 0.8, j["sky"]
+assert j["options"]["lmax"] <= 191 and j["options"]["beam_fwhm_arcmin"] == 30
+assert "total" in j["timings_s"] and "coupling" in j["timings_s"]
+with fits.open(t + "/run.fits") as h:
+    b = h["BANDPOWER"]
+    d = b.data["D_BAND"]; e = b.data["D_SIGMA"]
+    assert b.columns["D_BAND"].unit == "uK^2"
+    assert b.header["NSIDE"] == 64 and b.header["SPECTYPE"] == "cross"
+    cov = h["BANDCOV"].data
+    assert cov.shape == (len(d), len(d))
+    assert np.allclose(np.sqrt(np.diag(cov)), e, rtol=1e-12)
+    assert np.allclose(cov, cov.T)
+assert np.allclose(d, j["bandpowers"]["d_uK2"], rtol=1e-12)
+import csv
+rows = list(csv.DictReader(l for l in open(t + "/run.csv") if not l.startswith("#")))
+assert np.allclose([float(r["d_band_uK2"]) for r in rows], d, rtol=1e-12)
+assert np.allclose(np.loadtxt(t + "/run-cov.csv", delimiter=","), cov, rtol=1e-12)
+assert "peak" in j and "found" in j["peak"]
+PY
+
+# Second run: the coupling comes from the cache.
+"$C" spectrum "$T/sky_split1.fits" "$T/sky_split2.fits" --mask "$T/mask.fits" --beam-fwhm 30 \
+    --format json --output "$T/again" > /dev/null 2>&1 || fail "second run"
+"$CLEF_PYTHON" -c "import json,sys; j=json.load(open(sys.argv[1])); sys.exit(0 if j['coupling']['cache_hit'] else 1)" \
+    "$T/again.json" || fail "second run did not use the coupling cache"
+[ ! -e "$T/again.fits" ] || fail "--format json wrote a FITS file"
+
+# Bad input: the documented exit code, a message, and no output.
+expect() { # code, description, command...
+    code=$1; what=$2; shift 2
+    rm -f "$T"/bad*
+    "$@" > "$T/o.txt" 2> "$T/e.txt"
+    rc=$?
+    [ "$rc" -eq "$code" ] || fail "$what: exit $rc, expected $code ($(cat "$T/e.txt"))"
+    [ -s "$T/e.txt" ] || [ "$code" -eq 0 ] || fail "$what: no message"
+    ls "$T"/bad* > /dev/null 2>&1 && fail "$what: wrote $(ls "$T"/bad*)"
+    return 0
+}
+S1="$T/sky_split1.fits"
+expect 3 "lmax above 3 nside - 1" "$C" spectrum "$S1" --mask "$T/mask.fits" --lmax 192 -o "$T/bad"
+grep -q "3\*nside-1" "$T/e.txt" || fail "lmax message: $(cat "$T/e.txt")"
+expect 3 "map and mask of different nside" "$C" spectrum "$S1" --mask "$T/mask32.fits" -o "$T/bad"
+grep -q "nside" "$T/e.txt" || fail "nside message: $(cat "$T/e.txt")"
+expect 3 "mask with no sky" "$C" spectrum "$S1" --mask "$T/empty.fits" -o "$T/bad"
+expect 6 "bins leaving the coupling singular" "$C" spectrum "$S1" --mask "$T/tiny.fits" \
+    --bin-width 1 --lmax 191 --keep-multipoles -o "$T/bad"
+grep -q "bin" "$T/e.txt" || fail "singular message: $(cat "$T/e.txt")"
+expect 2 "no mask" "$C" spectrum "$S1" -o "$T/bad"
+expect 2 "three maps" "$C" spectrum "$S1" "$S1" "$S1" --mask "$T/mask.fits" -o "$T/bad"
+expect 2 "unknown format" "$C" spectrum "$S1" --mask "$T/mask.fits" --format xml -o "$T/bad"
+expect 4 "missing map" "$C" spectrum "$T/none.fits" --mask "$T/mask.fits" -o "$T/bad"
+printf 'not a fits file\n' > "$T/text.fits"
+expect 5 "text file as map" "$C" spectrum "$T/text.fits" --mask "$T/mask.fits" -o "$T/bad"
+expect 4 "output folder missing" "$C" spectrum "$S1" --mask "$T/mask.fits" -o "$T/no/dir/bad"
+"$C" spectrum --help | grep -q -- "--beam-fwhm" || fail "--help"
+exit 0
