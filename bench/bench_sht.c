@@ -266,7 +266,7 @@ int main(int argc, char **argv)
     /* Scaling: log T = alpha log lmax + c over nside 512..2048, per family. */
     cJSON *fits = cJSON_AddObjectToObject(root, "time_exponent_vs_lmax");
     const char *fam[2] = {"lmax_2nside", "lmax_3nside_minus_1"};
-    printf("\nfitted exponent of time vs lmax (nside 512..%lld):", (long long)max_ns);
+    printf("\nfitted exponent of time vs lmax (nside 512..%lld):", (long long)(max_ns < 512 ? 512 : max_ns));
     for (int w = 0; w < 2; w++) {
         double x[4], ya[4], ys[4], ca[4], cs[4];
         int n = 0;
@@ -290,6 +290,8 @@ int main(int argc, char **argv)
             cJSON_AddNumberToObject(o, "points", n);
             printf("\n  %s: wall analysis %.2f, synthesis %.2f; Legendre CPU time analysis %.2f, "
                    "synthesis %.2f (%d points)", fam[w], aa, as, la, ls, n);
+        } else {
+            printf("\n  %s: fewer than 2 sizes, no fit", fam[w]);
         }
     }
     printf("\n");
