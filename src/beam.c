@@ -1,5 +1,5 @@
 /* Beam transfer functions: Gaussian and tabulated beams.  The pixel window
- * lives in beam_pixwin.c. */
+ * lives in beam_window.c. */
 #define _GNU_SOURCE
 #include "clef/beam.h"
 

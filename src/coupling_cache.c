@@ -5,7 +5,7 @@
  *   0   char[8]  magic "CLEFCPLC"
  *   8   u32      format version (CACHE_FORMAT)
  *   12  u32      byte-order mark 0x01020304 (as written by this machine)
- *   16  u32      kind: 1 = unbinned M, 2 = binned K
+ *   16  u32      kind: 1 = unbinned M, 2 = binned K, 3 = mask spectra (spectrum module)
  *   20  u32      reserved, 0
  *   24  u64      rows
  *   32  u64      columns
@@ -28,17 +28,18 @@
 #include <unistd.h>
 
 #include "clef/hash.h"
+#include "cache_impl.h"
 #include "core_impl.h"
 
 #define CACHE_MAGIC "CLEFCPLC"
 #define CACHE_FORMAT 1u
 #define CACHE_BOM 0x01020304u
 #define CACHE_HEADER 184
-enum { KIND_M = 1, KIND_K = 2 };
+enum { KIND_M = CLEF_CACHE_M, KIND_K = CLEF_CACHE_K };
 
 /* The folder by the documented precedence, without reporting: the cached
  * calls treat a missing folder as a warning, not an error. */
-static const char *resolve_dir(const char *cache_dir, char *buf, size_t n)
+const char *clef_cache_resolve_dir(const char *cache_dir, char *buf, size_t n)
 {
     const char *env;
     int len;
@@ -59,7 +60,7 @@ static const char *resolve_dir(const char *cache_dir, char *buf, size_t n)
 
 int clef_coupling_cache_dir(const char *cache_dir, char *buf, size_t n)
 {
-    const char *why = resolve_dir(cache_dir, buf, n);
+    const char *why = clef_cache_resolve_dir(cache_dir, buf, n);
     if (why)
         CLEF_FAIL(CLEF_EINVAL, "coupling cache: %s", why);
     return CLEF_OK;
@@ -134,10 +135,12 @@ static void key_k(const char *mkey, int lmax, const clef_bins *bins, const doubl
     clef_sha256_hex(d, hex);
 }
 
-static int cache_path(char *buf, size_t n, const char *dir, int kind, const char *key)
+int clef_cache_path(char *buf, size_t n, const char *dir, int kind, const char *key)
 {
     const int len =
-        snprintf(buf, n, "%s/coupling-%s-%s.bin", dir, kind == KIND_M ? "M" : "K", key);
+        snprintf(buf, n, "%s/%s-%s.bin", dir,
+                 kind == KIND_M ? "coupling-M" : kind == KIND_K ? "coupling-K" : "mask-spectra",
+                 key);
     return len >= 0 && (size_t)len < n;
 }
 
@@ -149,7 +152,7 @@ static void payload_hex(const double *p, size_t count, char hex[65])
 /* Read a cached matrix into `out` (rows x cols).  Returns 1 on a valid hit,
  * 0 otherwise; every problem except an absent file is logged as a warning
  * and treated as a miss. */
-static int cache_load(const char *path, int kind, const char *key, size_t rows, size_t cols,
+int clef_cache_load(const char *path, int kind, const char *key, size_t rows, size_t cols,
                       double *out)
 {
     FILE *f = fopen(path, "rb");
@@ -214,7 +217,7 @@ bad:
 }
 
 /* Write atomically; failures are warnings (the result is still good). */
-static void cache_store(const char *dir, const char *path, int kind, const char *key,
+void clef_cache_store(const char *dir, const char *path, int kind, const char *key,
                         size_t rows, size_t cols, const double *data)
 {
     if (!make_dirs(dir))
@@ -264,16 +267,16 @@ int clef_coupling_create_cached(clef_coupling **out, int lmax, const double *wl,
         *hit = 0;
     CLEF_TRY(clef_coupling_alloc_empty(&c, lmax, wl, wl_lmax));
     const size_t n = (size_t)lmax + 1;
-    const char *why = resolve_dir(cache_dir, dir, sizeof dir);
+    const char *why = clef_cache_resolve_dir(cache_dir, dir, sizeof dir);
     if (!why) {
         key_m(lmax, wl, wl_lmax, key);
-        if (!cache_path(path, sizeof path, dir, KIND_M, key))
+        if (!clef_cache_path(path, sizeof path, dir, KIND_M, key))
             why = "path too long";
     }
     const int have_path = why == NULL;
     if (why)
         clef_log(CLEF_LOG_WARN, "coupling cache: disabled: %s", why);
-    if (have_path && cache_load(path, KIND_M, key, n, n, c->m)) {
+    if (have_path && clef_cache_load(path, KIND_M, key, n, n, c->m)) {
         if (hit)
             *hit = 1;
         *out = c;
@@ -282,7 +285,7 @@ int clef_coupling_create_cached(clef_coupling **out, int lmax, const double *wl,
     clef_coupling_destroy(c);
     CLEF_TRY(clef_coupling_create(out, lmax, wl, wl_lmax));
     if (have_path)
-        cache_store(dir, path, KIND_M, key, n, n, (*out)->m);
+        clef_cache_store(dir, path, KIND_M, key, n, n, (*out)->m);
     return CLEF_OK;
 }
 
@@ -312,18 +315,18 @@ int clef_coupling_binned_create_cached(clef_coupling_binned **out, int lmax, con
     double *k = malloc((size_t)nb * nb * sizeof *k);
     if (!k)
         CLEF_FAIL(CLEF_ENOMEM, "coupling: out of memory for %d bins", nb);
-    const char *why = resolve_dir(cache_dir, dir, sizeof dir);
+    const char *why = clef_cache_resolve_dir(cache_dir, dir, sizeof dir);
     if (!why) {
         key_m(lmax, wl, wl_lmax, mkey);
         key_k(mkey, lmax, bins, transfer, key);
-        if (!cache_path(path, sizeof path, dir, KIND_K, key))
+        if (!clef_cache_path(path, sizeof path, dir, KIND_K, key))
             why = "path too long";
     }
     const int have_path = why == NULL;
     if (why)
         clef_log(CLEF_LOG_WARN, "coupling cache: disabled: %s", why);
     int status, loaded = 0;
-    if (have_path && cache_load(path, KIND_K, key, (size_t)nb, (size_t)nb, k)) {
+    if (have_path && clef_cache_load(path, KIND_K, key, (size_t)nb, (size_t)nb, k)) {
         loaded = 1;
     } else {
         clef_coupling *m = NULL;
@@ -340,7 +343,7 @@ int clef_coupling_binned_create_cached(clef_coupling_binned **out, int lmax, con
      * caller's conditioning threshold. */
     status = clef_coupling_binned_from_k(out, k, bins, lmax, wl, wl_lmax, opts);
     if (status == CLEF_OK && !loaded && have_path)
-        cache_store(dir, path, KIND_K, key, (size_t)nb, (size_t)nb, k);
+        clef_cache_store(dir, path, KIND_K, key, (size_t)nb, (size_t)nb, k);
     if (status == CLEF_OK && hit)
         *hit = loaded;
     free(k);

@@ -2,6 +2,7 @@
  * holes; moments and the mask power spectrum. */
 #define _XOPEN_SOURCE 700
 #include "clef/mask.h"
+#include "clef/sht.h"
 
 #include <complex.h>
 #include <errno.h>
@@ -180,7 +181,8 @@ static int parse_hole_line(char *line, double v[3], char **bad)
 {
     int nf = 0;
     char *save = NULL;
-    for (char *tok = strtok_r(line, " \t\r\n", &save); tok; tok = strtok_r(NULL, " \t\r\n", &save)) {
+    for (char *tok = strtok_r(line, " \t\r\n", &save); tok;
+         tok = strtok_r(NULL, " \t\r\n", &save)) {
         if (nf < 3) {
             char *end;
             errno = 0;
@@ -223,13 +225,15 @@ int clef_mask_holes_read(const char *path, clef_mask_hole **holes, size_t *nhole
         if (nf == 0)
             continue;
         if (nf < 0) {
-            status = clef_fail(CLEF_EFORMAT, "%s line %ld: '%s' is not a number", path, lineno, bad);
+            status =
+                clef_fail(CLEF_EFORMAT, "%s line %ld: '%s' is not a number", path, lineno, bad);
             goto fail;
         }
         if (nf != 3) {
-            status = clef_fail(CLEF_EFORMAT,
-                               "%s line %ld: expected 3 columns (lon [deg] lat [deg] radius [arcmin]), found %d",
-                               path, lineno, nf);
+            status = clef_fail(
+                CLEF_EFORMAT,
+                "%s line %ld: expected 3 columns (lon [deg] lat [deg] radius [arcmin]), found %d",
+                path, lineno, nf);
             goto fail;
         }
         if (!(v[1] >= -90.0 && v[1] <= 90.0)) {
@@ -316,7 +320,8 @@ int clef_mask_spectrum(const clef_sht *plan, const clef_map *mask, int iteration
 {
     const int lmax = clef_sht_lmax(plan);
     if (clef_sht_nside(plan) != mask->nside)
-        CLEF_FAIL(CLEF_EINVAL, "mask spectrum: mask nside %lld differs from the transform plan's %lld",
+        CLEF_FAIL(CLEF_EINVAL,
+                  "mask spectrum: mask nside %lld differs from the transform plan's %lld",
                   (long long)mask->nside, (long long)clef_sht_nside(plan));
     if (clef_sht_mmax(plan) != lmax)
         CLEF_FAIL(CLEF_EINVAL, "mask spectrum: plan mmax %d differs from its lmax %d",
@@ -334,5 +339,16 @@ int clef_mask_spectrum(const clef_sht *plan, const clef_map *mask, int iteration
     if (status == CLEF_OK)
         status = clef_alm_cl(lmax, lmax, alm, NULL, wl);
     free(alm);
+    return status;
+}
+
+int clef_mask_spectrum_lmax(const clef_map *mask, int lmax, int iterations, double *wl)
+{
+    if (lmax < 1)
+        CLEF_FAIL(CLEF_EINVAL, "mask spectrum: lmax %d < 1", lmax);
+    clef_sht *plan;
+    CLEF_TRY(clef_sht_create(&plan, mask->nside, lmax, NULL));
+    const int status = clef_mask_spectrum(plan, mask, iterations, wl);
+    clef_sht_destroy(plan);
     return status;
 }

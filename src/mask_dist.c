@@ -22,6 +22,7 @@
 #include <omp.h>
 
 #include "clef/mask.h"
+#include "clef/sht.h"
 #include "core_impl.h"
 #include "mask_impl.h"
 
@@ -140,7 +141,8 @@ int clef_mask_edges(const clef_map *mask, int64_t **edges, size_t *nedges)
     *nedges = 0;
     unsigned char *obs = observed_flags(mask);
     if (!obs)
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory for pixel flags at nside %lld", (long long)mask->nside);
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for pixel flags at nside %lld",
+                  (long long)mask->nside);
     const int status = collect_edges(mask->nside, obs, edges, nedges);
     free(obs);
     return status;
@@ -390,7 +392,8 @@ int clef_mask_distance(const clef_map *mask, double max_dist, double *dist)
     free(obs);
     edge_index_free(&ix);
     if (oom)
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory in the distance search at nside %lld", (long long)nside);
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory in the distance search at nside %lld",
+                  (long long)nside);
     return CLEF_OK;
 }
 
@@ -446,7 +449,8 @@ static int apodize_gauss(clef_map *out, double *b, double fwhm)
     CLEF_CHECK(clef_sht_analysis(plan, 1, maps, alms, 3));
     for (int m = 0; m <= lmax; m++)
         for (int l = m; l <= lmax; l++)
-            alm[clef_alm_index(lmax, l, m)] *= exp(-0.5 * (double)l * (double)(l + 1) * sigma * sigma);
+            alm[clef_alm_index(lmax, l, m)] *=
+                exp(-0.5 * (double)l * (double)(l + 1) * sigma * sigma);
     const double complex *calms[1] = {alm};
     double *outs[1] = {out->pix};
     CLEF_CHECK(clef_sht_synthesis(plan, 1, calms, outs));
@@ -470,41 +474,47 @@ int clef_mask_apodize(clef_map **out, const clef_map *mask, const clef_mask_apod
     if (!(scale > 0.0 && scale <= M_PI))
         CLEF_FAIL(CLEF_EINVAL, "apodization scale %g deg is not in (0, 180]", scale * 180.0 / M_PI);
     if (kind == CLEF_MASK_APOD_GAUSS && !(opts->erode >= 0.0 && opts->erode <= M_PI))
-        CLEF_FAIL(CLEF_EINVAL, "erosion radius %g deg is not in [0, 180]", opts->erode * 180.0 / M_PI);
+        CLEF_FAIL(CLEF_EINVAL, "erosion radius %g deg is not in [0, 180]",
+                  opts->erode * 180.0 / M_PI);
     int status;
     clef_map *w = NULL;
-    double *dist = malloc(sizeof *dist * (size_t)mask->npix);
-    if (!dist)
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory for distances at nside %lld", (long long)mask->nside);
+    double *bin = NULL;
     CLEF_CHECK(clef_map_alloc(&w, mask->nside));
     memcpy(w->coordsys, mask->coordsys, sizeof w->coordsys);
     if (kind == CLEF_MASK_APOD_GAUSS) {
-        /* dist doubles as the binary (eroded) mask handed to the transform. */
+        /* The binary (eroded) mask handed to the transform; the distances
+         * of the erosion go through the same array. */
+        bin = malloc(sizeof *bin * (size_t)mask->npix);
+        if (!bin) {
+            status = clef_fail(CLEF_ENOMEM, "out of memory for the binary mask at nside %lld",
+                               (long long)mask->nside);
+            goto fail;
+        }
         if (opts->erode > 0.0) {
-            CLEF_CHECK(clef_mask_distance(mask, opts->erode, dist));
+            CLEF_CHECK(clef_mask_distance(mask, opts->erode, bin));
             for (int64_t p = 0; p < mask->npix; p++)
-                dist[p] = observed(mask, p) && dist[p] >= opts->erode ? 1.0 : 0.0;
+                bin[p] = observed(mask, p) && bin[p] >= opts->erode ? 1.0 : 0.0;
         } else {
             for (int64_t p = 0; p < mask->npix; p++)
-                dist[p] = observed(mask, p) ? 1.0 : 0.0;
+                bin[p] = observed(mask, p) ? 1.0 : 0.0;
         }
-        CLEF_CHECK(apodize_gauss(w, dist, scale));
+        CLEF_CHECK(apodize_gauss(w, bin, scale));
     } else {
-        CLEF_CHECK(clef_mask_distance(mask, scale, dist));
+        /* Distances go straight into the output and become weights in
+         * place (masked pixels have distance 0 and stay 0). */
+        CLEF_CHECK(clef_mask_distance(mask, scale, w->pix));
         for (int64_t p = 0; p < mask->npix; p++) {
-            if (!observed(mask, p)) {
-                w->pix[p] = 0.0;
+            if (!observed(mask, p))
                 continue;
-            }
-            const double x = clef_mask_apod_x(dist[p], scale);
+            const double x = clef_mask_apod_x(w->pix[p], scale);
             w->pix[p] = kind == CLEF_MASK_APOD_C1 ? clef_mask_apod_c1(x) : clef_mask_apod_c2(x);
         }
     }
-    free(dist);
+    free(bin);
     *out = w;
     return CLEF_OK;
 fail:
-    free(dist);
+    free(bin);
     clef_map_free(w);
     return status;
 }

@@ -214,7 +214,7 @@ int clef_sim_map(const clef_sht *sht, const double *cl, const clef_sim_opts *opt
     else
         CLEF_CHECK(clef_beam_gaussian(o->beam_fwhm, lmax, bl));
     if (o->pixel_window)
-        CLEF_CHECK(clef_beam_pixwin(nside, lmax, pl));
+        CLEF_CHECK(clef_beam_pixel_window(nside, lmax, pl));
     CLEF_CHECK(clef_sim_alm(lmax, cl, o->seed, alm));
     if (alm_out)
         memcpy(alm_out, alm, sizeof *alm * nalm);

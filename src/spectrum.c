@@ -88,7 +88,7 @@ static int signal_filter(const clef_spectrum_opts *o, int64_t nside, int lmax, d
             tl[l] *= tmp[l] * tmp[l];
     }
     if (o->pixel_window) {
-        CLEF_CHECK(clef_beam_pixwin(nside, lmax, tmp));
+        CLEF_CHECK(clef_beam_pixel_window(nside, lmax, tmp));
         for (int l = 0; l <= lmax; l++)
             tl[l] *= tmp[l] * tmp[l];
     }
@@ -201,7 +201,7 @@ static int record_meta(clef_bandpowers *bp, const clef_spectrum_opts *o,
                                          "Gaussian beam FWHM [arcmin] (0: none)"));
     CLEF_TRY(clef_bandpowers_meta_text(bp, "BEAMTAB", o->beam ? "yes" : "no",
                                        "tabulated beam used"));
-    CLEF_TRY(clef_bandpowers_meta_text(bp, "PIXWIN", o->pixel_window ? "yes" : "no",
+    CLEF_TRY(clef_bandpowers_meta_text(bp, "PIXELWIN", o->pixel_window ? "yes" : "no",
                                        "pixel window corrected"));
     CLEF_TRY(clef_bandpowers_meta_text(bp, "TRANSFER", o->transfer ? "yes" : "no",
                                        "transfer function applied"));
@@ -250,341 +250,384 @@ static void fill_table(clef_bandpowers *bp, const clef_bins *bins, const double 
     }
 }
 
-int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef_map *mask1,
-                          const clef_map *mask2, const clef_spectrum_opts *opts,
-                          clef_spectrum_result *res)
-{
+/* Everything one estimate carries from stage to stage. */
+typedef struct run {
     clef_spectrum_opts o;
-    if (opts)
-        o = *opts;
-    else
-        clef_spectrum_opts_default(&o);
-    memset(res, 0, sizeof *res);
-    CLEF_TRY(check_inputs(map1, map2, mask1, mask2, &o));
+    clef_spectrum_result *res;
+    int64_t nside, npix;
+    int cross, two_masks;
+    int lmax, lmax_t;              /* maps' and masks' multipole ranges */
+    double *w[2], *wprod;          /* weights of each map, their product */
+    double pair_w2[3];             /* mean(w_a w_b), mean(w_a^2), mean(w_b^2) */
+    double *tmap[2];               /* weighted maps, multipoles removed */
+    double complex *alm[5];
+    double *pcl[3], *pcl_dec;      /* pseudo-spectra; the one to decouple */
+    double *wl, *wl2;              /* mask spectrum and product-mask spectrum */
+    double *tl;                    /* signal filter F B^2 p^2 */
+    const clef_bins *bins;
+    clef_bins *own_bins;
+    clef_coupling_binned *kb;
+    double *band;
+    clef_bandpowers *bp;
+    double t0;
+} run;
 
-    const int64_t nside = map1->nside, npix = map1->npix;
-    const int cross = map2 != NULL;
-    const int two_masks = cross && mask2 && mask2 != mask1;
-    int status = CLEF_OK;
-    double t0 = clef_wtime(), t_start = t0;
-    double *w[2] = {NULL, NULL}, *wprod = NULL, *tmap[2] = {NULL, NULL}, *tl = NULL;
-    double complex *alm[5] = {NULL, NULL, NULL, NULL, NULL};
-    double *pcl[3] = {NULL, NULL, NULL}, *pcl_dec = NULL, *wl = NULL, *wl2 = NULL, *band = NULL;
-    clef_sht *sht = NULL;
-    clef_bins *own_bins = NULL;
-    clef_coupling_binned *kb = NULL;
-    clef_coupling *m_noise = NULL;
-    clef_bandpowers *bp = NULL;
-
-    res->cross = cross;
-    res->nside = nside;
-
-    /* lmax */
-    int lmax = o.lmax;
-    const int lmax_pix = (int)(3 * nside - 1);
-    if (lmax == 0) {
-        CLEF_CHECK(default_lmax(&o, nside, &lmax));
-    } else if (lmax < 2 || lmax > lmax_pix) {
-        status = clef_fail(CLEF_EINVAL,
-                           "lmax = %d is outside 2..3*nside-1 = %d for nside %lld: the "
-                           "pixelised map carries no independent information above 3*nside-1",
-                           lmax, lmax_pix, (long long)nside);
-        goto fail;
+static void run_free(run *r)
+{
+    clef_bandpowers_free(r->bp);
+    free(r->band);
+    clef_coupling_binned_destroy(r->kb);
+    clef_bins_destroy(r->own_bins);
+    for (int i = 0; i < 5; i++)
+        free(r->alm[i]);
+    for (int k = 0; k < 3; k++)
+        free(r->pcl[k]);
+    free(r->pcl_dec);
+    free(r->wl);
+    free(r->tl);
+    free(r->wprod);
+    for (int i = 0; i < 2; i++) {
+        free(r->tmap[i]);
+        free(r->w[i]);
     }
-    res->lmax = lmax;
+}
+
+/* lmax (default or checked) and the mask range lmax_t. */
+static int stage_lmax(run *r)
+{
+    const int lmax_pix = (int)(3 * r->nside - 1);
+    int lmax = r->o.lmax;
+    if (lmax == 0) {
+        CLEF_TRY(default_lmax(&r->o, r->nside, &lmax));
+    } else if (lmax < 2 || lmax > lmax_pix) {
+        CLEF_FAIL(CLEF_EINVAL,
+                  "lmax = %d is outside 2..3*nside-1 = %d for nside %lld: the pixelised map "
+                  "carries no independent information above 3*nside-1",
+                  lmax, lmax_pix, (long long)r->nside);
+    }
+    r->lmax = r->res->lmax = lmax;
     /* The coupling needs W_l to 2 lmax; the pixelised mask is only resolved to
      * 3 nside - 1, above which W_l is taken as zero (docs/method.md). */
-    const int lmax_t = 2 * lmax < lmax_pix ? 2 * lmax : lmax_pix;
-    res->lmax_mask = lmax_t;
+    r->lmax_t = r->res->lmax_mask = 2 * lmax < lmax_pix ? 2 * lmax : lmax_pix;
+    return CLEF_OK;
+}
 
-    /* Weights, moments, monopole/dipole. */
-    CLEF_CHECK(make_weights(map1, mask1, &w[0]));
-    if (cross)
-        CLEF_CHECK(make_weights(map2, two_masks ? mask2 : mask1, &w[1]));
-    {
-        double s1 = 0, s2 = 0, s4 = 0;
-        int64_t nobs = 0;
-        for (int64_t p = 0; p < npix; p++) {
-            double x = w[0][p], x2 = x * x;
-            s1 += x;
-            s2 += x2;
-            s4 += x2 * x2;
-            nobs += x > 0;
-        }
-        if (nobs == 0 || s2 <= 0) {
-            status = clef_fail(CLEF_EINVAL,
-                               "mask '%s' leaves no observed sky on map '%s' (every weight is 0)",
-                               name_or(&o, 2, "mask"), name_or(&o, 0, "map"));
-            goto fail;
-        }
-        res->fsky = (double)nobs / (double)npix;
-        res->w1 = s1 / (double)npix;
-        res->w2 = s2 / (double)npix;
-        res->w4 = s4 / (double)npix;
-        res->fsky_eff = res->w2 * res->w2 / res->w4;
-        if (cross) {
-            int64_t n2 = 0;
-            for (int64_t p = 0; p < npix; p++)
-                n2 += w[1][p] > 0;
-            if (n2 == 0) {
-                status = clef_fail(CLEF_EINVAL, "mask '%s' leaves no observed sky on map '%s'",
-                                   name_or(&o, two_masks ? 3 : 2, "mask"), name_or(&o, 1, "map 2"));
-                goto fail;
-            }
-        }
+/* Weights, moments, monopole and dipole, weighted maps, product mask. */
+static int stage_prepare(run *r, const clef_map *const map[2], const clef_map *const mask[2])
+{
+    const int64_t npix = r->npix;
+    clef_spectrum_result *res = r->res;
+    for (int i = 0; i <= r->cross; i++)
+        CLEF_TRY(make_weights(map[i], mask[i], &r->w[i]));
+    double s1 = 0, s2 = 0, s4 = 0, sab = 0, sbb = 0;
+    int64_t nobs[2] = {0, 0};
+    const double *wa = r->w[0], *wb = r->w[r->cross];
+    for (int64_t p = 0; p < npix; p++) {
+        const double x = wa[p], x2 = x * x;
+        s1 += x;
+        s2 += x2;
+        s4 += x2 * x2;
+        sab += x * wb[p];
+        sbb += wb[p] * wb[p];
+        nobs[0] += x > 0;
+        nobs[1] += wb[p] > 0;
     }
-    for (int i = 0; i <= cross; i++) {
-        const clef_map *m = i ? map2 : map1;
-        tmap[i] = malloc((size_t)npix * sizeof(double));
-        if (!tmap[i]) {
-            status = clef_fail(CLEF_ENOMEM, "out of memory for a weighted map");
-            goto fail;
-        }
-        memcpy(tmap[i], m->pix, (size_t)npix * sizeof(double));
-        if (!o.keep_multipoles) {
-            status = clef_spectrum_remove_multipoles(tmap[i], w[i], nside, 1, res->multipoles[i]);
+    for (int i = 0; i <= r->cross; i++)
+        if (nobs[i] == 0)
+            CLEF_FAIL(CLEF_EINVAL, "mask '%s' leaves no observed sky on map '%s' (every weight is 0)",
+                      name_or(&r->o, i && r->two_masks ? 3 : 2, "mask"),
+                      name_or(&r->o, i, "map"));
+    res->fsky = (double)nobs[0] / (double)npix;
+    res->w1 = s1 / (double)npix;
+    res->w2 = s2 / (double)npix;
+    res->w4 = s4 / (double)npix;
+    res->fsky_eff = res->w2 * res->w2 / res->w4;
+    r->pair_w2[0] = sab / (double)npix;
+    r->pair_w2[1] = res->w2;
+    r->pair_w2[2] = sbb / (double)npix;
+
+    for (int i = 0; i <= r->cross; i++) {
+        r->tmap[i] = malloc((size_t)npix * sizeof(double));
+        if (!r->tmap[i])
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for a weighted map");
+        memcpy(r->tmap[i], map[i]->pix, (size_t)npix * sizeof(double));
+        if (!r->o.keep_multipoles) {
+            int status = clef_spectrum_remove_multipoles(r->tmap[i], r->w[i], r->nside, 1,
+                                                         res->multipoles[i]);
             if (status == CLEF_ENUMERIC) {
                 /* A small or thin patch may not constrain a dipole: remove the
                  * monopole alone rather than fail. */
                 clef_log(CLEF_LOG_WARN, "map '%s': %s; only the monopole is removed",
-                         name_or(&o, i, "map"), clef_last_error());
-                status = clef_spectrum_remove_multipoles(tmap[i], w[i], nside, 0,
+                         name_or(&r->o, i, "map"), clef_last_error());
+                status = clef_spectrum_remove_multipoles(r->tmap[i], r->w[i], r->nside, 0,
                                                          res->multipoles[i]);
             }
-            if (status != CLEF_OK)
-                goto fail;
+            CLEF_TRY(status);
         }
         for (int64_t p = 0; p < npix; p++)
-            tmap[i][p] *= w[i][p];
+            r->tmap[i][p] *= r->w[i][p];
     }
     /* The product mask w_a w_b, whose spectrum drives the covariance. */
-    wprod = malloc((size_t)npix * sizeof *wprod);
-    if (!wprod) {
-        status = clef_fail(CLEF_ENOMEM, "out of memory for the product mask");
-        goto fail;
-    }
+    r->wprod = malloc((size_t)npix * sizeof *r->wprod);
+    if (!r->wprod)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for the product mask");
     for (int64_t p = 0; p < npix; p++)
-        wprod[p] = w[0][p] * w[cross][p];
-    stage_done(res, "prepare", &t0);
+        r->wprod[p] = wa[p] * wb[p];
+    stage_done(res, "prepare", &r->t0);
+    return CLEF_OK;
+}
 
-    /* Analyses: the weighted maps to lmax (their spectra are only needed
-     * there, and analysing them further, up to 3 nside - 1, would only add
-     * quadrature error), the masks and the product mask to lmax_t.  When
-     * both limits agree, one call shares the Legendre recurrence. */
-    const int nm = 1 + cross;                      /* weighted maps: alm[0..nm-1] */
-    const int im = nm;                             /* mask 1 */
-    const int im2 = two_masks ? im + 1 : im;       /* mask 2 */
-    const int iw = im2 + 1;                        /* product mask */
-    {
-        const double *in[5];
-        int n = 0;
-        in[n++] = tmap[0];
-        if (cross)
-            in[n++] = tmap[1];
-        in[n++] = w[0];
-        if (two_masks)
-            in[n++] = w[1];
-        in[n++] = wprod;
-        for (int i = 0; i < n; i++) {
-            int la = i < nm ? lmax : lmax_t;
-            alm[i] = malloc(clef_alm_size(la, la) * sizeof(double complex));
-            if (!alm[i]) {
-                status = clef_fail(CLEF_ENOMEM, "out of memory for a_lm (lmax %d)", la);
-                goto fail;
-            }
-        }
-        clef_progress("analysis", 0.0);
-        clef_sht_opts so = {0};
-        if (lmax_t == lmax) {
-            so.nmaps = n;
-            CLEF_CHECK(clef_sht_create(&sht, nside, lmax, &so));
-            CLEF_CHECK(clef_sht_analysis(sht, n, in, (double complex *const *)alm, o.iterations));
-        } else {
-            so.nmaps = nm;
-            CLEF_CHECK(clef_sht_create(&sht, nside, lmax, &so));
-            CLEF_CHECK(clef_sht_analysis(sht, nm, in, (double complex *const *)alm, o.iterations));
-            clef_progress("analysis", 0.3);
-            clef_sht_destroy(sht);
-            sht = NULL;
-            so.nmaps = n - nm;
-            CLEF_CHECK(clef_sht_create(&sht, nside, lmax_t, &so));
-            CLEF_CHECK(clef_sht_analysis(sht, n - nm, in + nm,
-                                         (double complex *const *)alm + nm, o.iterations));
-        }
-        clef_progress("analysis", 1.0);
+/* Analyses and pseudo-spectra.  The weighted maps are analysed to lmax
+ * (their spectra are only needed there, and analysing them further, up to
+ * 3 nside - 1, would only add quadrature error), the masks and the product
+ * mask to lmax_t; when both limits agree one call shares the Legendre
+ * recurrence.  The mask spectra depend on the weights alone, so a nightly
+ * rerun with the same mask takes them from the cache and analyses the maps
+ * only. */
+static int stage_transform(run *r)
+{
+    const int lmax = r->lmax, lmax_t = r->lmax_t, cross = r->cross;
+    const int nm = 1 + cross;                  /* weighted maps: alm[0..nm-1] */
+    const int im = nm;                         /* mask 1 */
+    const int im2 = r->two_masks ? im + 1 : im; /* mask 2 */
+    const int iw = im2 + 1;                    /* product mask */
+    for (int k = 0; k < 3; k++)
+        if (!(r->pcl[k] = calloc((size_t)lmax + 1, sizeof(double))))
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for spectra");
+    r->wl = calloc(2 * ((size_t)lmax_t + 1), sizeof *r->wl);
+    r->tl = malloc((size_t)(lmax + 1) * sizeof *r->tl);
+    r->pcl_dec = malloc((size_t)(lmax + 1) * sizeof *r->pcl_dec);
+    if (!r->wl || !r->tl || !r->pcl_dec)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for spectra");
+    r->wl2 = r->wl + lmax_t + 1; /* the two mask spectra are one cache entry */
+    const double *w2 = cross ? r->w[1] : NULL;
+    const int mask_hit =
+        r->o.use_cache && clef_spectrum_mask_cache(&r->o, r->nside, lmax_t, w2, r->w[0], r->wl, 0);
+
+    const double *in[5];
+    int n = 0;
+    in[n++] = r->tmap[0];
+    if (cross)
+        in[n++] = r->tmap[1];
+    if (!mask_hit) {
+        in[n++] = r->w[0];
+        if (r->two_masks)
+            in[n++] = r->w[1];
+        in[n++] = r->wprod;
     }
-    stage_done(res, "transform", &t0);
+    for (int i = 0; i < n; i++) {
+        const int la = i < nm ? lmax : lmax_t;
+        if (!(r->alm[i] = malloc(clef_alm_size(la, la) * sizeof(double complex))))
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for a_lm (lmax %d)", la);
+    }
+    double complex *const *out = (double complex *const *)r->alm;
+    clef_progress("analysis", 0.0);
+    clef_sht *sht = NULL;
+    clef_sht_opts so = {0};
+    const int shared = lmax_t == lmax ? n : nm;
+    so.nmaps = shared;
+    int status = clef_sht_create(&sht, r->nside, lmax, &so);
+    if (status == CLEF_OK)
+        status = clef_sht_analysis(sht, shared, in, out, r->o.iterations);
+    clef_sht_destroy(sht);
+    sht = NULL;
+    if (status == CLEF_OK && shared < n) {
+        clef_progress("analysis", 0.3);
+        so.nmaps = n - nm;
+        status = clef_sht_create(&sht, r->nside, lmax_t, &so);
+        if (status == CLEF_OK)
+            status = clef_sht_analysis(sht, n - nm, in + nm, out + nm, r->o.iterations);
+        clef_sht_destroy(sht);
+    }
+    CLEF_TRY(status);
+    clef_progress("analysis", 1.0);
+    stage_done(r->res, "transform", &r->t0);
 
     /* Pseudo-spectra: 0 = map1 x map(2), 1 = map1 auto, 2 = map2 auto. */
-    {
-        for (int k = 0; k < 3; k++) {
-            pcl[k] = calloc((size_t)lmax + 1, sizeof(double));
-            if (!pcl[k]) {
-                status = clef_fail(CLEF_ENOMEM, "out of memory for spectra");
-                goto fail;
-            }
-        }
-        wl = calloc((size_t)lmax_t + 1, sizeof *wl);
-        wl2 = calloc((size_t)lmax_t + 1, sizeof *wl2);
-        tl = malloc((size_t)(lmax + 1) * sizeof *tl);
-        pcl_dec = malloc((size_t)(lmax + 1) * sizeof *pcl_dec);
-        if (!wl || !wl2 || !tl || !pcl_dec) {
-            status = clef_fail(CLEF_ENOMEM, "out of memory for spectra");
-            goto fail;
-        }
-        CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[0], alm[cross ? 1 : 0], pcl[0]));
-        if (cross) {
-            CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[0], NULL, pcl[1]));
-            CLEF_CHECK(clef_alm_cl(lmax, lmax, alm[1], NULL, pcl[2]));
-        }
-        /* W_l of the mask pair (a cross-spectrum for two masks). */
-        CLEF_CHECK(clef_alm_cl(lmax_t, lmax_t, alm[im], alm[im2], wl));
-        CLEF_CHECK(clef_alm_cl(lmax_t, lmax_t, alm[iw], NULL, wl2));
-        for (int l = 0; l <= lmax_t; l++) /* a cross W_l can dip below 0 by round-off */
-            if (wl[l] < 0)
-                wl[l] = 0;
+    CLEF_TRY(clef_alm_cl(lmax, lmax, r->alm[0], r->alm[cross ? 1 : 0], r->pcl[0]));
+    if (cross) {
+        CLEF_TRY(clef_alm_cl(lmax, lmax, r->alm[0], NULL, r->pcl[1]));
+        CLEF_TRY(clef_alm_cl(lmax, lmax, r->alm[1], NULL, r->pcl[2]));
     }
+    if (!mask_hit) {
+        /* W_l of the mask pair (a cross-spectrum for two masks). */
+        CLEF_TRY(clef_alm_cl(lmax_t, lmax_t, r->alm[im], r->alm[im2], r->wl));
+        CLEF_TRY(clef_alm_cl(lmax_t, lmax_t, r->alm[iw], NULL, r->wl2));
+        for (int l = 0; l <= lmax_t; l++) /* a cross W_l can dip below 0 by round-off */
+            if (r->wl[l] < 0)
+                r->wl[l] = 0;
+        if (r->o.use_cache)
+            clef_spectrum_mask_cache(&r->o, r->nside, lmax_t, w2, r->w[0], r->wl, 1);
+    }
+    return CLEF_OK;
+}
 
-    /* Bins. */
-    const clef_bins *bins = o.bins;
-    if (!bins) {
-        int width = o.bin_width;
+/* The given bins, or linear bins as wide as the mask's coupling needs. */
+static int stage_bins(run *r)
+{
+    r->bins = r->o.bins;
+    if (r->bins) {
+        if (clef_bins_lmax(r->bins) > r->lmax)
+            CLEF_FAIL(CLEF_EINVAL, "the bins reach l = %d, above lmax = %d",
+                      clef_bins_lmax(r->bins), r->lmax);
+    } else {
+        int width = r->o.bin_width;
         if (width <= 0) {
-            int cw = clef_coupling_width(wl, lmax_t, CLEF_COUPLING_WIDTH_LEVEL);
+            const int cw = clef_coupling_width(r->wl, r->lmax_t, CLEF_COUPLING_WIDTH_LEVEL);
             width = cw > CLEF_SPECTRUM_BIN_WIDTH ? cw : CLEF_SPECTRUM_BIN_WIDTH;
         }
-        if (width > lmax - 1) {
-            status = clef_fail(CLEF_EINVAL,
-                               "bin width %d does not fit between l = 2 and lmax = %d", width,
-                               lmax);
-            goto fail;
-        }
-        CLEF_CHECK(clef_bins_create_linear(&own_bins, 2, width, lmax, CLEF_BINS_DL));
-        bins = own_bins;
-        res->bin_width = width;
-    } else if (clef_bins_lmax(bins) > lmax) {
-        status = clef_fail(CLEF_EINVAL, "the bins reach l = %d, above lmax = %d",
-                           clef_bins_lmax(bins), lmax);
-        goto fail;
+        if (width > r->lmax - 1)
+            CLEF_FAIL(CLEF_EINVAL, "bin width %d does not fit between l = 2 and lmax = %d",
+                      width, r->lmax);
+        CLEF_TRY(clef_bins_create_linear(&r->own_bins, 2, width, r->lmax, CLEF_BINS_DL));
+        r->bins = r->own_bins;
+        r->res->bin_width = width;
     }
-    res->nbins = clef_bins_count(bins);
+    r->res->nbins = clef_bins_count(r->bins);
+    return CLEF_OK;
+}
 
-    /* Coupling operator. */
-    CLEF_CHECK(signal_filter(&o, nside, lmax, tl));
-    {
-        clef_coupling_opts co;
-        co.rcond_min = o.rcond_min > 0 ? o.rcond_min : CLEF_COUPLING_RCOND_MIN;
-        co.width_level = CLEF_COUPLING_WIDTH_LEVEL;
-        clef_progress("coupling", 0.0);
-        if (o.use_cache) {
-            status = clef_coupling_binned_create_cached(&kb, lmax, wl, lmax_t, bins, tl, &co,
-                                                        o.cache_dir, &res->cache_hit);
-        } else {
-            clef_coupling *m = NULL;
-            status = clef_coupling_create(&m, lmax, wl, lmax_t);
-            if (status == CLEF_OK)
-                status = clef_coupling_binned_create(&kb, m, bins, tl, &co);
-            clef_coupling_destroy(m);
-        }
-        clef_progress("coupling", 1.0);
-        if (status != CLEF_OK)
-            goto fail;
-        res->rcond = clef_coupling_binned_rcond(kb);
+/* The binned coupling operator K (cached), the noise bias, the decoupled
+ * band powers. */
+static int stage_decouple(run *r)
+{
+    const int lmax = r->lmax;
+    const clef_spectrum_opts *o = &r->o;
+    CLEF_TRY(signal_filter(o, r->nside, lmax, r->tl));
+    clef_coupling_opts co;
+    co.rcond_min = o->rcond_min > 0 ? o->rcond_min : CLEF_COUPLING_RCOND_MIN;
+    co.width_level = CLEF_COUPLING_WIDTH_LEVEL;
+    clef_progress("coupling", 0.0);
+    int status;
+    if (o->use_cache) {
+        status = clef_coupling_binned_create_cached(&r->kb, lmax, r->wl, r->lmax_t, r->bins,
+                                                    r->tl, &co, o->cache_dir, &r->res->cache_hit);
+    } else {
+        clef_coupling *m = NULL;
+        status = clef_coupling_create(&m, lmax, r->wl, r->lmax_t);
+        if (status == CLEF_OK)
+            status = clef_coupling_binned_create(&r->kb, m, r->bins, r->tl, &co);
+        clef_coupling_destroy(m);
     }
-    stage_done(res, "coupling", &t0);
+    CLEF_TRY(status);
+    clef_progress("coupling", 1.0);
+    r->res->rcond = clef_coupling_binned_rcond(r->kb);
+    stage_done(r->res, "coupling", &r->t0);
 
     /* Noise bias of an auto-spectrum: <N~_l> = sum_l' M_ll' N_l'. */
-    if (o.noise_cl && !cross) {
-        if (o.noise_lmax < lmax) {
-            status = clef_fail(CLEF_EINVAL, "the noise spectrum stops at l = %d, below lmax = %d",
-                               o.noise_lmax, lmax);
-            goto fail;
-        }
-        CLEF_CHECK(clef_spectrum_coupling(&m_noise, lmax, wl, lmax_t, &o));
-        clef_coupling_apply(m_noise, o.noise_cl, pcl_dec);
-        for (int l = 0; l <= lmax; l++)
-            pcl_dec[l] = pcl[0][l] - pcl_dec[l];
-    } else if (o.noise_cl && cross) {
+    memcpy(r->pcl_dec, r->pcl[0], (size_t)(lmax + 1) * sizeof *r->pcl_dec);
+    if (o->noise_cl && r->cross) {
         clef_log(CLEF_LOG_WARN, "noise spectrum ignored: a cross-spectrum of maps with "
                                 "independent noise carries no noise bias");
-    }
-
-    if (!(o.noise_cl && !cross))
-        memcpy(pcl_dec, pcl[0], (size_t)(lmax + 1) * sizeof *pcl_dec);
-    const int nb = res->nbins;
-    band = malloc((size_t)nb * sizeof *band);
-    if (!band) {
-        status = clef_fail(CLEF_ENOMEM, "out of memory for band powers");
-        goto fail;
-    }
-    clef_coupling_binned_decouple(kb, pcl_dec, band);
-    stage_done(res, "decouple", &t0);
-
-    /* Covariance. */
-    CLEF_CHECK(clef_bandpowers_alloc(&bp, nb, 1));
-    {
-        double *cov = malloc((size_t)nb * nb * sizeof *cov);
-        if (!cov) {
-            status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
-            goto fail;
+    } else if (o->noise_cl) {
+        if (o->noise_lmax < lmax)
+            CLEF_FAIL(CLEF_EINVAL, "the noise spectrum stops at l = %d, below lmax = %d",
+                      o->noise_lmax, lmax);
+        clef_coupling *m = NULL;
+        CLEF_TRY(clef_spectrum_coupling(&m, lmax, r->wl, r->lmax_t, o));
+        double *bias = malloc((size_t)(lmax + 1) * sizeof *bias);
+        if (!bias) {
+            clef_coupling_destroy(m);
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for the noise bias");
         }
-        clef_spectrum_cov_in ci = {
-            .lmax = lmax, .lmax_t = lmax_t, .cross = cross, .bins = bins, .kb = kb,
-            .pcl = pcl, .w2 = {res->w2, 0, 0}, .tl = tl, .wl2 = wl2, .opts = &o};
-        {
-            /* Moments of each mask pair for pseudo-spectrum normalisation. */
-            double s11 = 0, s22 = 0, s12 = 0;
-            for (int64_t p = 0; p < npix; p++) {
-                s11 += w[0][p] * w[0][p];
-                s22 += w[cross][p] * w[cross][p];
-                s12 += w[0][p] * w[cross][p];
-            }
-            ci.w2[0] = s12 / (double)npix;
-            ci.w2[1] = s11 / (double)npix;
-            ci.w2[2] = s22 / (double)npix;
-        }
-        status = clef_spectrum_covariance(&ci, cov);
-        if (status == CLEF_OK)
-            fill_table(bp, bins, band, cov);
-        free(cov);
-        if (status != CLEF_OK)
-            goto fail;
+        clef_coupling_apply(m, o->noise_cl, bias);
+        for (int l = 0; l <= lmax; l++)
+            r->pcl_dec[l] -= bias[l];
+        free(bias);
+        clef_coupling_destroy(m);
     }
-    stage_done(res, "covariance", &t0);
+    if (!(r->band = malloc((size_t)r->res->nbins * sizeof *r->band)))
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for band powers");
+    clef_coupling_binned_decouple(r->kb, r->pcl_dec, r->band);
+    stage_done(r->res, "decouple", &r->t0);
+    return CLEF_OK;
+}
 
-    CLEF_CHECK(record_meta(bp, &o, res));
-    if (o.find_peak) {
-        clef_peak_opts po = o.peak;
-        if (!(po.half_width > 0))
-            po.half_width = peak_half_width(bins, &po);
-        CLEF_CHECK(clef_peak_find(bp, &po, &res->peak));
-        res->peak_done = 1;
-        CLEF_CHECK(clef_peak_to_meta(&res->peak, bp));
-        stage_done(res, "peak", &t0);
+/* The covariance and the table. */
+static int stage_covariance(run *r)
+{
+    const int nb = r->res->nbins;
+    CLEF_TRY(clef_bandpowers_alloc(&r->bp, nb, 1));
+    double *cov = malloc((size_t)nb * nb * sizeof *cov);
+    if (!cov)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for the covariance");
+    clef_spectrum_cov_in ci = {
+        .lmax = r->lmax, .lmax_t = r->lmax_t, .cross = r->cross, .bins = r->bins, .kb = r->kb,
+        .pcl = r->pcl, .w2 = {r->pair_w2[0], r->pair_w2[1], r->pair_w2[2]}, .tl = r->tl,
+        .wl2 = r->wl2, .opts = &r->o};
+    const int status = clef_spectrum_covariance(&ci, cov);
+    if (status == CLEF_OK)
+        fill_table(r->bp, r->bins, r->band, cov);
+    free(cov);
+    CLEF_TRY(status);
+    stage_done(r->res, "covariance", &r->t0);
+    return CLEF_OK;
+}
+
+/* The first peak, recorded in the table's keywords. */
+static int stage_peak(run *r)
+{
+    clef_spectrum_result *res = r->res;
+    clef_peak_opts po = r->o.peak;
+    if (!(po.half_width > 0))
+        po.half_width = peak_half_width(r->bins, &po);
+    int status = clef_peak_find(r->bp, &po, &res->peak);
+    if (status == CLEF_EINVAL) {
+        /* Unusable for a peak fit (e.g. lmax below the window): the band
+         * powers still stand; the run records why there is no peak. */
+        clef_log(CLEF_LOG_WARN, "first peak not fitted: %s", clef_last_error());
+        memset(&res->peak, 0, sizeof res->peak);
+        res->peak.model = po.model;
+        snprintf(res->peak.reason, sizeof res->peak.reason, "%s", clef_last_error());
+        status = CLEF_OK;
     }
-    (void)t_start;
-    res->bp = bp;
-    bp = NULL;
+    CLEF_TRY(status);
+    res->peak_done = 1;
+    CLEF_TRY(clef_peak_to_meta(&res->peak, r->bp));
+    stage_done(res, "peak", &r->t0);
+    return CLEF_OK;
+}
 
-fail:
-    clef_bandpowers_free(bp);
-    free(band);
-    clef_coupling_destroy(m_noise);
-    clef_coupling_binned_destroy(kb);
-    clef_bins_destroy(own_bins);
-    clef_sht_destroy(sht);
-    for (int i = 0; i < 5; i++)
-        free(alm[i]);
-    for (int k = 0; k < 3; k++)
-        free(pcl[k]);
-    free(pcl_dec);
-    free(wl);
-    free(wl2);
-    free(tl);
-    free(wprod);
-    free(tmap[0]);
-    free(tmap[1]);
-    free(w[0]);
-    free(w[1]);
+int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef_map *mask1,
+                          const clef_map *mask2, const clef_spectrum_opts *opts,
+                          clef_spectrum_result *res)
+{
+    run r;
+    memset(&r, 0, sizeof r);
+    if (opts)
+        r.o = *opts;
+    else
+        clef_spectrum_opts_default(&r.o);
+    memset(res, 0, sizeof *res);
+    CLEF_TRY(check_inputs(map1, map2, mask1, mask2, &r.o));
+    r.res = res;
+    r.nside = res->nside = map1->nside;
+    r.npix = map1->npix;
+    r.cross = res->cross = map2 != NULL;
+    r.two_masks = r.cross && mask2 && mask2 != mask1;
+    r.t0 = clef_wtime();
+    const clef_map *const map[2] = {map1, map2};
+    const clef_map *const mask[2] = {mask1, r.two_masks ? mask2 : mask1};
+
+    int status = stage_lmax(&r);
+    if (status == CLEF_OK)
+        status = stage_prepare(&r, map, mask);
+    if (status == CLEF_OK)
+        status = stage_transform(&r);
+    if (status == CLEF_OK)
+        status = stage_bins(&r);
+    if (status == CLEF_OK)
+        status = stage_decouple(&r);
+    if (status == CLEF_OK)
+        status = stage_covariance(&r);
+    if (status == CLEF_OK)
+        status = record_meta(r.bp, &r.o, res);
+    if (status == CLEF_OK && r.o.find_peak)
+        status = stage_peak(&r);
+    if (status == CLEF_OK) {
+        res->bp = r.bp;
+        r.bp = NULL;
+    }
+    run_free(&r);
     return status;
 }

@@ -227,24 +227,24 @@ static const double healpix_n8[24] = {
     0.89188395, 0.87482728, 0.85675449, 0.83772617, 0.81780550, 0.79705793,
     0.77555089, 0.75335344, 0.73053599, 0.70717000, 0.68332762, 0.65908145};
 
-static void test_pixwin_reference(void **state)
+static void test_pixel_window_reference(void **state)
 {
     (void)state;
     double p[24];
-    assert_int_equal(clef_beam_pixwin_compute(4, 11, NULL, p), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window_compute(4, 11, NULL, p), CLEF_OK);
     for (int l = 0; l <= 11; l++)
         check_abs(p[l], healpix_n4[l], 2e-5, "HEALPix pixel_window_n0004.fits");
-    assert_int_equal(clef_beam_pixwin_compute(8, 23, NULL, p), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window_compute(8, 23, NULL, p), CLEF_OK);
     for (int l = 0; l <= 23; l++)
         check_abs(p[l], healpix_n8[l], 2e-5, "HEALPix pixel_window_n0008.fits");
     /* nside 1: every pixel is a whole base pixel, still computable. */
     double p1[3];
-    assert_int_equal(clef_beam_pixwin_compute(1, 2, NULL, p1), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window_compute(1, 2, NULL, p1), CLEF_OK);
     check_abs(p1[0], 1.0, 1e-12, "p_0 = 1 (mean of a constant)");
     assert_true(p1[1] < 1 && p1[2] < p1[1] && p1[2] > 0);
 }
 
-static void test_pixwin_properties(void **state)
+static void test_pixel_window_properties(void **state)
 {
     (void)state;
     const int64_t nsides[3] = {4, 16, 64};
@@ -254,7 +254,7 @@ static void test_pixwin_properties(void **state)
             continue;
         const int lmax = 3 * (int)n - 1;
         double *p = malloc(sizeof(double) * (size_t)(lmax + 1));
-        assert_int_equal(clef_beam_pixwin_compute(n, lmax, NULL, p), CLEF_OK);
+        assert_int_equal(clef_beam_pixel_window_compute(n, lmax, NULL, p), CLEF_OK);
         /* p_0 = 1: the pixel mean of a constant is the constant; p_l -> 1
          * as l -> 0 like 1 - c l(l+1) (definition, common practice). */
         check_abs(p[0], 1.0, 1e-12, "p_0 = 1");
@@ -272,15 +272,15 @@ static void test_pixwin_properties(void **state)
 
 /* Two independent computations with different sub-sampling densities
  * (k = 8/16 and k = 16/32) agree to 1e-4 (issue 5). */
-static void test_pixwin_two_densities(void **state)
+static void test_pixel_window_two_densities(void **state)
 {
     (void)state;
     const int64_t n = test_sanitize() ? 4 : 16;
     const int lmax = 3 * (int)n - 1;
     double a[48], b[48];
-    const clef_beam_pixwin_opts o8 = {8, 0, 0}, o16 = {16, 0, 0};
-    assert_int_equal(clef_beam_pixwin_compute(n, lmax, &o8, a), CLEF_OK);
-    assert_int_equal(clef_beam_pixwin_compute(n, lmax, &o16, b), CLEF_OK);
+    const clef_beam_pixel_window_opts o8 = {8, 0, 0}, o16 = {16, 0, 0};
+    assert_int_equal(clef_beam_pixel_window_compute(n, lmax, &o8, a), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window_compute(n, lmax, &o16, b), CLEF_OK);
     for (int l = 0; l <= lmax; l++)
         check_abs(a[l], b[l], 1e-4, "k = 8 vs k = 16 sub-sampling");
 }
@@ -288,7 +288,7 @@ static void test_pixwin_two_densities(void **state)
 /* The ring/pixel subset used for large nside against the evaluation of
  * every distinct pixel, with deliberately coarse subsets (the defaults are
  * 4-8 times finer). */
-static void test_pixwin_subset(void **state)
+static void test_pixel_window_subset(void **state)
 {
     (void)state;
     if (test_sanitize())
@@ -296,9 +296,9 @@ static void test_pixwin_subset(void **state)
     const int64_t n = 64;
     const int lmax = 3 * (int)n - 1;
     double full[192], sub[192];
-    const clef_beam_pixwin_opts all = {4, 64, 32}, coarse = {4, 16, 4};
-    assert_int_equal(clef_beam_pixwin_compute(n, lmax, &all, full), CLEF_OK);
-    assert_int_equal(clef_beam_pixwin_compute(n, lmax, &coarse, sub), CLEF_OK);
+    const clef_beam_pixel_window_opts all = {4, 64, 32}, coarse = {4, 16, 4};
+    assert_int_equal(clef_beam_pixel_window_compute(n, lmax, &all, full), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window_compute(n, lmax, &coarse, sub), CLEF_OK);
     double worst = 0;
     for (int l = 0; l <= lmax; l++)
         worst = fmax(worst, fabs(full[l] - sub[l]));
@@ -307,80 +307,80 @@ static void test_pixwin_subset(void **state)
     assert_true(worst < 2e-4);
 }
 
-static void test_pixwin_threads(void **state)
+static void test_pixel_window_threads(void **state)
 {
     (void)state;
     double a[48], b[48];
     const int saved = omp_get_max_threads();
     omp_set_num_threads(1);
-    assert_int_equal(clef_beam_pixwin_compute(16, 47, NULL, a), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window_compute(16, 47, NULL, a), CLEF_OK);
     omp_set_num_threads(2);
-    assert_int_equal(clef_beam_pixwin_compute(16, 47, NULL, b), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window_compute(16, 47, NULL, b), CLEF_OK);
     omp_set_num_threads(saved);
     for (int l = 0; l <= 47; l++)
         check_abs(a[l], b[l], 0, "1 vs 2 threads");
 }
 
-static void test_pixwin_cache(void **state)
+static void test_pixel_window_cache(void **state)
 {
     (void)state;
     char dir[1024];
     snprintf(dir, sizeof dir, "%s", test_path("cache/sub"));
     setenv("CLEF_CACHE_DIR", dir, 1);
-    clef_beam_pixwin_cache_clear();
+    clef_beam_pixel_window_cache_clear();
     double ref[24], a[24], b[40];
-    assert_int_equal(clef_beam_pixwin_compute(8, 23, NULL, ref), CLEF_OK);
-    assert_int_equal(clef_beam_pixwin(8, 10, a), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window_compute(8, 23, NULL, ref), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window(8, 10, a), CLEF_OK);
     for (int l = 0; l <= 10; l++)
         check_abs(a[l], ref[l], 0, "cached = computed");
     char file[1200];
-    snprintf(file, sizeof file, "%s/pixwin/nside00008-lmax00023.txt", dir);
+    snprintf(file, sizeof file, "%s/pixel_window/nside00008-lmax00023.txt", dir);
     assert_true(file_exists(file));
     /* From the disk cache in a fresh process state. */
-    clef_beam_pixwin_cache_clear();
-    assert_int_equal(clef_beam_pixwin(8, 23, a), CLEF_OK);
+    clef_beam_pixel_window_cache_clear();
+    assert_int_equal(clef_beam_pixel_window(8, 23, a), CLEF_OK);
     for (int l = 0; l <= 23; l++)
         check_abs(a[l], ref[l], 0, "disk cache round trip (%.17g)");
     /* A damaged cache file is ignored and replaced. */
     write_text(file, "# clef pixel window v1 nside 8 lmax 23\n0 1\n1 7\n");
-    clef_beam_pixwin_cache_clear();
-    assert_int_equal(clef_beam_pixwin(8, 23, a), CLEF_OK);
+    clef_beam_pixel_window_cache_clear();
+    assert_int_equal(clef_beam_pixel_window(8, 23, a), CLEF_OK);
     for (int l = 0; l <= 23; l++)
         check_abs(a[l], ref[l], 0, "recomputed after a damaged cache");
     /* lmax above 3 nside - 1. */
-    assert_int_equal(clef_beam_pixwin(8, 39, b), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window(8, 39, b), CLEF_OK);
     check_abs(b[23], ref[23], 0, "larger lmax, same low l");
     assert_true(b[39] < b[23]);
     /* Disk cache off. */
     setenv("CLEF_CACHE_DIR", "", 1);
-    clef_beam_pixwin_cache_clear();
-    assert_int_equal(clef_beam_pixwin(4, 11, a), CLEF_OK);
-    snprintf(file, sizeof file, "%s/pixwin/nside00004-lmax00011.txt", dir);
+    clef_beam_pixel_window_cache_clear();
+    assert_int_equal(clef_beam_pixel_window(4, 11, a), CLEF_OK);
+    snprintf(file, sizeof file, "%s/pixel_window/nside00004-lmax00011.txt", dir);
     assert_false(file_exists(file));
     /* An unwritable cache folder is not an error. */
     setenv("CLEF_CACHE_DIR", "/proc/clef-no-such-folder", 1);
-    clef_beam_pixwin_cache_clear();
-    assert_int_equal(clef_beam_pixwin(4, 11, a), CLEF_OK);
+    clef_beam_pixel_window_cache_clear();
+    assert_int_equal(clef_beam_pixel_window(4, 11, a), CLEF_OK);
     check_abs(a[11], healpix_n4[11], 2e-5, "HEALPix pixel_window_n0004.fits");
-    clef_beam_pixwin_cache_clear();
+    clef_beam_pixel_window_cache_clear();
 }
 
-static void test_pixwin_errors(void **state)
+static void test_pixel_window_errors(void **state)
 {
     (void)state;
     double p[16];
-    assert_int_equal(clef_beam_pixwin_compute(3, 8, NULL, p), CLEF_EINVAL);
+    assert_int_equal(clef_beam_pixel_window_compute(3, 8, NULL, p), CLEF_EINVAL);
     assert_non_null(strstr(clef_last_error(), "nside 3"));
-    assert_int_equal(clef_beam_pixwin_compute(0, 8, NULL, p), CLEF_EINVAL);
-    assert_int_equal(clef_beam_pixwin_compute(16384, 8, NULL, p), CLEF_EINVAL);
-    assert_int_equal(clef_beam_pixwin_compute(4, -1, NULL, p), CLEF_EINVAL);
-    const clef_beam_pixwin_opts bad_k = {3, 0, 0}, bad_r = {8, 1, 0}, bad_u = {8, 4, -2};
-    assert_int_equal(clef_beam_pixwin_compute(4, 8, &bad_k, p), CLEF_EINVAL);
+    assert_int_equal(clef_beam_pixel_window_compute(0, 8, NULL, p), CLEF_EINVAL);
+    assert_int_equal(clef_beam_pixel_window_compute(16384, 8, NULL, p), CLEF_EINVAL);
+    assert_int_equal(clef_beam_pixel_window_compute(4, -1, NULL, p), CLEF_EINVAL);
+    const clef_beam_pixel_window_opts bad_k = {3, 0, 0}, bad_r = {8, 1, 0}, bad_u = {8, 4, -2};
+    assert_int_equal(clef_beam_pixel_window_compute(4, 8, &bad_k, p), CLEF_EINVAL);
     assert_non_null(strstr(clef_last_error(), "sub-sampling 3"));
-    assert_int_equal(clef_beam_pixwin_compute(4, 8, &bad_r, p), CLEF_EINVAL);
-    assert_int_equal(clef_beam_pixwin_compute(4, 8, &bad_u, p), CLEF_EINVAL);
-    assert_int_equal(clef_beam_pixwin(5, 8, p), CLEF_EINVAL);
-    assert_int_equal(clef_beam_pixwin(4, -3, p), CLEF_EINVAL);
+    assert_int_equal(clef_beam_pixel_window_compute(4, 8, &bad_r, p), CLEF_EINVAL);
+    assert_int_equal(clef_beam_pixel_window_compute(4, 8, &bad_u, p), CLEF_EINVAL);
+    assert_int_equal(clef_beam_pixel_window(5, 8, p), CLEF_EINVAL);
+    assert_int_equal(clef_beam_pixel_window(4, -3, p), CLEF_EINVAL);
 }
 
 int main(void)
@@ -391,13 +391,13 @@ int main(void)
         cmocka_unit_test(test_gaussian_beam_map),
         cmocka_unit_test(test_beam_file),
         cmocka_unit_test(test_beam_file_errors),
-        cmocka_unit_test(test_pixwin_reference),
-        cmocka_unit_test(test_pixwin_properties),
-        cmocka_unit_test(test_pixwin_two_densities),
-        cmocka_unit_test(test_pixwin_subset),
-        cmocka_unit_test(test_pixwin_threads),
-        cmocka_unit_test(test_pixwin_cache),
-        cmocka_unit_test(test_pixwin_errors),
+        cmocka_unit_test(test_pixel_window_reference),
+        cmocka_unit_test(test_pixel_window_properties),
+        cmocka_unit_test(test_pixel_window_two_densities),
+        cmocka_unit_test(test_pixel_window_subset),
+        cmocka_unit_test(test_pixel_window_threads),
+        cmocka_unit_test(test_pixel_window_cache),
+        cmocka_unit_test(test_pixel_window_errors),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

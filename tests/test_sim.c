@@ -235,7 +235,7 @@ static void test_reproducible(void **state)
 
 /* ---- beam and pixel window ---- */
 
-static void test_beam_pixwin_applied(void **state)
+static void test_beam_pixel_window_applied(void **state)
 {
     (void)state;
     /* clef_sim_map with a beam and the pixel window equals the synthesis of
@@ -255,7 +255,7 @@ static void test_beam_pixwin_applied(void **state)
     assert_int_equal(clef_sim_alm(lmax, cl, 5, alm), CLEF_OK);
     assert_memory_equal(alm, truth, sizeof *alm * clef_alm_size(lmax, lmax));
     assert_int_equal(clef_beam_gaussian(120, lmax, bl), CLEF_OK);
-    assert_int_equal(clef_beam_pixwin(nside, lmax, pl), CLEF_OK);
+    assert_int_equal(clef_beam_pixel_window(nside, lmax, pl), CLEF_OK);
     clef_sim_alm_scale(lmax, bl, pl, alm);
     const double complex *in[1] = {alm};
     double *out[1] = {m2};
@@ -483,7 +483,7 @@ int main(void)
         cmocka_unit_test(test_alm_moments),
         cmocka_unit_test(test_realisations),
         cmocka_unit_test(test_reproducible),
-        cmocka_unit_test(test_beam_pixwin_applied),
+        cmocka_unit_test(test_beam_pixel_window_applied),
         cmocka_unit_test(test_white_noise),
         cmocka_unit_test(test_splits_independent),
         cmocka_unit_test(test_hits_noise),

@@ -40,13 +40,13 @@ int clef_beam_read(const char *path, int lmax, double *bl);
 
 /* How the pixel window is computed (docs/simulation.md, "pixel window").
  * All fields may be 0 for the defaults. */
-typedef struct clef_beam_pixwin_opts {
+typedef struct clef_beam_pixel_window_opts {
     int subsample;     /* k: sub-samples per pixel side of the coarse pass (the fine pass
                           uses 2k); a power of two, default 8 */
     int rings;         /* rings evaluated per segment (polar cap / belt); segments with
                           fewer rings are evaluated in full; default 64 */
     int per_ring;      /* distinct pixels evaluated per cap ring; default 16 */
-} clef_beam_pixwin_opts;
+} clef_beam_pixel_window_opts;
 
 /* Pixel window p_l, l = 0..lmax, of HEALPix pixels at `nside`, into
  * pl[lmax + 1], computed from the definition (Gorski et al. 2005): the
@@ -59,7 +59,7 @@ typedef struct clef_beam_pixwin_opts {
  * and pixels.  No caching.  Uses OpenMP threads; the result does not
  * depend on the thread count.  CLEF_EINVAL (nside not a power of two in
  * [1, 8192], lmax < 0, bad options), CLEF_ENOMEM. */
-int clef_beam_pixwin_compute(int64_t nside, int lmax, const clef_beam_pixwin_opts *opts,
+int clef_beam_pixel_window_compute(int64_t nside, int lmax, const clef_beam_pixel_window_opts *opts,
                              double *pl);
 
 /* The same with the default options, cached: in memory for the life of
@@ -67,10 +67,10 @@ int clef_beam_pixwin_compute(int64_t nside, int lmax, const clef_beam_pixwin_opt
  * else $XDG_CACHE_HOME/clef, else ~/.cache/clef; an empty CLEF_CACHE_DIR
  * turns the disk cache off).  The cache holds lmax >= 3 nside - 1.  Disk
  * cache problems are logged, never fatal. */
-int clef_beam_pixwin(int64_t nside, int lmax, double *pl);
+int clef_beam_pixel_window(int64_t nside, int lmax, double *pl);
 
 /* Free the in-memory pixel-window cache (for leak checkers). */
-void clef_beam_pixwin_cache_clear(void);
+void clef_beam_pixel_window_cache_clear(void);
 
 #ifdef __cplusplus
 }

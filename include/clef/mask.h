@@ -21,11 +21,14 @@
 
 #include "clef/clef.h"
 #include "clef/map.h"
-#include "clef/sht.h"
 
 #ifdef __cplusplus
 extern "C" {
 #endif
+
+/* The transform plan of include/clef/sht.h (declared here so that this
+ * header does not need complex.h). */
+typedef struct clef_sht clef_sht;
 
 /* A new mask of the given nside with every pixel observed (value 1).
  * Returns CLEF_EINVAL (nside not a power of two in [1, CLEF_NSIDE_MAX]) or
@@ -87,9 +90,10 @@ int clef_mask_edges(const clef_map *mask, int64_t **edges, size_t *nedges);
  * two centres (chord form: accurate at small angles).  The nearest masked
  * pixel is always an edge pixel, so d is the distance to the masked region.
  * Edge pixels are bucketed by their parent pixel on a coarse grid whose
- * pixels are about max_dist wide; each coarse cell searches only the
- * buckets whose centres lie within max_dist + 2 coarse pixel radii, nearest
- * first, skipping buckets that cannot hold a closer edge (docs/masks.md).
+ * pixels are about max_dist / 4 wide (at most nside / 16); each coarse cell
+ * searches only the buckets whose centres lie within max_dist + 2 coarse
+ * pixel radii, nearest first, skipping buckets that cannot hold a closer
+ * edge (docs/masks.md).  Threads: OpenMP over coarse cells.
  * dist holds mask->npix doubles (caller-owned).  max_dist in (0, pi];
  * CLEF_EINVAL otherwise, CLEF_ENOMEM. */
 int clef_mask_distance(const clef_map *mask, double max_dist, double *dist);
@@ -148,6 +152,12 @@ int clef_mask_moments_compute(const clef_map *mask, clef_mask_moments *out);
  * Returns CLEF_EINVAL (nside or mmax mismatch, iterations < 0),
  * CLEF_ENOMEM or the transform's errors. */
 int clef_mask_spectrum(const clef_sht *plan, const clef_map *mask, int iterations, double *wl);
+
+/* The same with a plan made for the call (nside of the mask, lmax and
+ * mmax = lmax, default options) and destroyed before returning: simpler
+ * for a single mask, slower when several masks share a geometry.
+ * Returns CLEF_EINVAL (lmax < 1), or the errors above. */
+int clef_mask_spectrum_lmax(const clef_map *mask, int lmax, int iterations, double *wl);
 
 #ifdef __cplusplus
 }

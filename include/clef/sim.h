@@ -78,7 +78,7 @@ typedef struct clef_sim_opts {
     uint64_t seed;
     double beam_fwhm;      /* Gaussian beam FWHM in arcmin; 0 = none */
     const double *beam;    /* B_l, l = 0..lmax, instead of beam_fwhm; NULL = none */
-    int pixel_window;      /* 1: multiply by the pixel window p_l (clef_beam_pixwin) */
+    int pixel_window;      /* 1: multiply by the pixel window p_l (clef_beam_pixel_window) */
     double noise_depth;    /* uK-arcmin per split; 0 = no noise */
     const double *hits;    /* hit counts per RING pixel for inhomogeneous noise, or NULL */
     int nsplits;           /* 1 or 2 maps with the same sky and independent noise; 0 = 1 */

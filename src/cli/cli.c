@@ -3,6 +3,7 @@
 #define _POSIX_C_SOURCE 200809L
 #include "cli.h"
 
+#include <cjson/cJSON.h>
 #include <errno.h>
 #include <math.h>
 #include <omp.h>
@@ -159,4 +160,35 @@ void cli_verbose(const char *fmt, ...)
     vfprintf(stderr, fmt, ap);
     fputc('\n', stderr);
     va_end(ap);
+}
+
+/* Write the JSON text atomically (temporary file, then rename). */
+int cli_write_json(const char *path, const cJSON *j)
+{
+    char *text = cJSON_Print(j);
+    if (!text) {
+        fprintf(stderr, "clef: error: out of memory formatting JSON\n");
+        return CLI_EXIT_NOMEM;
+    }
+    clef_outfile of;
+    int status = clef_outfile_begin(&of, path);
+    if (status != CLEF_OK) {
+        free(text);
+        return cli_fail(status);
+    }
+    FILE *f = fopen(of.tmp_path, "w");
+    int bad = !f;
+    if (f) {
+        bad = fputs(text, f) < 0 || fputc('\n', f) == EOF;
+        bad |= fclose(f) != 0;
+    }
+    free(text);
+    if (bad) {
+        const int e = errno;
+        clef_outfile_abort(&of);
+        fprintf(stderr, "clef: error: cannot write '%s': %s\n", path, strerror(e));
+        return CLI_EXIT_IO;
+    }
+    status = clef_outfile_commit(&of);
+    return status == CLEF_OK ? CLI_EXIT_OK : cli_fail(status);
 }

@@ -48,6 +48,11 @@ int cli_usage_error(const char *cmd, const char *fmt, ...)
 int cli_parse_long(const char *cmd, const char *opt, const char *s, long *out);
 int cli_parse_double(const char *cmd, const char *opt, const char *s, double *out);
 
+/* Write a JSON document atomically (temporary file, then rename); returns
+ * an exit code, having printed the error. */
+struct cJSON;
+int cli_write_json(const char *path, const struct cJSON *j);
+
 /* --threads N: set the OpenMP thread count (0 = leave the default). */
 int cli_set_threads(const char *cmd, const char *s);
 
@@ -72,5 +77,6 @@ int cmd_spectrum(int argc, char **argv);
 int cmd_model(int argc, char **argv);
 int cmd_geometry(int argc, char **argv);
 int cmd_mask(int argc, char **argv);
+int cmd_plot(int argc, char **argv);
 
 #endif

@@ -178,36 +178,6 @@ static cJSON *result_json(const clef_geometry_opts *o, const clef_geometry_resul
     return j;
 }
 
-/* Write the JSON text atomically (temporary file, then rename). */
-static int write_json(const char *path, const cJSON *j)
-{
-    char *text = cJSON_Print(j);
-    if (!text) {
-        fprintf(stderr, "clef: error: out of memory formatting JSON\n");
-        return CLI_EXIT_NOMEM;
-    }
-    clef_outfile of;
-    int status = clef_outfile_begin(&of, path);
-    if (status != CLEF_OK) {
-        free(text);
-        return cli_fail(status);
-    }
-    FILE *f = fopen(of.tmp_path, "w");
-    int bad = !f;
-    if (f) {
-        bad = fputs(text, f) < 0 || fputc('\n', f) == EOF;
-        bad |= fclose(f) != 0;
-    }
-    free(text);
-    if (bad) {
-        const int e = errno;
-        clef_outfile_abort(&of);
-        fprintf(stderr, "clef: error: cannot write '%s': %s\n", path, strerror(e));
-        return CLI_EXIT_IO;
-    }
-    status = clef_outfile_commit(&of);
-    return status == CLEF_OK ? CLI_EXIT_OK : cli_fail(status);
-}
 
 static void print_result(const clef_geometry_opts *o, const clef_geometry_result *r,
                          const char *table, int fitted)
@@ -350,7 +320,7 @@ int cmd_geometry(int argc, char **argv)
     int rc = CLI_EXIT_OK;
     if (json) {
         cJSON *j = result_json(&o, r, table);
-        rc = j ? write_json(json, j) : CLI_EXIT_NOMEM;
+        rc = j ? cli_write_json(json, j) : CLI_EXIT_NOMEM;
         cJSON_Delete(j);
     }
     if (rc == CLI_EXIT_OK && cli_verbosity >= 1)

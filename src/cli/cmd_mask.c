@@ -147,8 +147,8 @@ static int parse_args(int argc, char **argv, mask_args *a)
         case 'o': a->holes = optarg; break;
         case 'p':
             if (parse_patch(optarg, a->patch))
-                return cli_usage_error("mask", "--patch expects LON,LAT,RADIUS in degrees, got '%s'",
-                                       optarg);
+                return cli_usage_error(
+                    "mask", "--patch expects LON,LAT,RADIUS in degrees, got '%s'", optarg);
             a->has_patch = 1;
             break;
         case 'C':
@@ -164,7 +164,8 @@ static int parse_args(int argc, char **argv, mask_args *a)
             else if (!strcasecmp(optarg, "gauss"))
                 a->apod_kind = CLEF_MASK_APOD_GAUSS;
             else
-                return cli_usage_error("mask", "--apodize expects c1, c2 or gauss, got '%s'", optarg);
+                return cli_usage_error("mask", "--apodize expects c1, c2 or gauss, got '%s'",
+                                       optarg);
             break;
         case 's':
             if (cli_parse_double("mask", "--apod-scale", optarg, &a->apod_scale))
@@ -187,7 +188,8 @@ static int parse_args(int argc, char **argv, mask_args *a)
         case 'v': cli_verbosity = 2; break;
         case 'h': help(stdout); return -1;
         default:
-            return cli_usage_error("mask", "unknown option or missing value: '%s'", argv[optind - 1]);
+            return cli_usage_error("mask", "unknown option or missing value: '%s'",
+                                   argv[optind - 1]);
         }
     }
     if (optind != argc)
@@ -241,7 +243,8 @@ static int build(const mask_args *a, clef_map **out)
         if ((status = clef_map_read(&in, a->from, &ro)) != CLEF_OK)
             return status;
         /* Default: observed where the value is > 0; --threshold T: >= T. */
-        status = clef_mask_binarize(&m, in, a->has_threshold ? a->threshold : 0.0, a->has_threshold);
+        status =
+            clef_mask_binarize(&m, in, a->has_threshold ? a->threshold : 0.0, a->has_threshold);
         clef_map_free(in);
     } else {
         status = clef_mask_full(&m, a->nside);
@@ -250,7 +253,9 @@ static int build(const mask_args *a, clef_map **out)
         return status;
     if (a->coordsys) {
         if (m->coordsys[0] && strcmp(m->coordsys, a->coordsys)) {
-            fprintf(stderr, "clef: error: --coordsys %s but %s has COORDSYS '%s' (clef does not rotate masks)\n",
+            fprintf(stderr,
+                    "clef: error: --coordsys %s but %s has COORDSYS '%s' (clef does not rotate "
+                    "masks)\n",
                     a->coordsys, a->from, m->coordsys);
             clef_map_free(m);
             return -1;
@@ -258,8 +263,10 @@ static int build(const mask_args *a, clef_map **out)
         snprintf(m->coordsys, sizeof m->coordsys, "%s", a->coordsys);
     }
     if (a->has_patch) {
-        cli_verbose("keeping the disc (%g, %g) deg of radius %g deg", a->patch[0], a->patch[1], a->patch[2]);
-        if ((status = clef_mask_keep_disc(m, a->patch[0] * DEG, a->patch[1] * DEG, a->patch[2] * DEG)))
+        cli_verbose("keeping the disc (%g, %g) deg of radius %g deg", a->patch[0], a->patch[1],
+                    a->patch[2]);
+        if ((status =
+                 clef_mask_keep_disc(m, a->patch[0] * DEG, a->patch[1] * DEG, a->patch[2] * DEG)))
             goto fail;
     }
     if (a->has_bcut) {

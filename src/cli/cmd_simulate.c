@@ -450,6 +450,6 @@ done:
     free(alm);
     free(cl);
     free(bl);
-    clef_beam_pixwin_cache_clear();
+    clef_beam_pixel_window_cache_clear();
     return exit_code;
 }

@@ -87,7 +87,7 @@ typedef struct args {
     const char *noise_file, *theory_file, *cache_dir, *output, *format, *threads;
     long lmax, bin_width, log_bins, iterations;
     double beam_fwhm, peak_lmin, peak_lmax, peak_hw;
-    int peak_model, no_peak, no_pixwin, keep, no_cache, coord;
+    int peak_model, no_peak, no_pixel_window, keep, no_cache, coord;
     int want_fits, want_csv, want_json;
 } args;
 
@@ -188,7 +188,7 @@ static int parse_args(int argc, char **argv, args *a)
                                        a->beam_fwhm);
             break;
         case OPT_BEAMF: a->beam_file = optarg; break;
-        case OPT_NOPIX: a->no_pixwin = 1; break;
+        case OPT_NOPIX: a->no_pixel_window = 1; break;
         case OPT_TRANSFER: a->transfer_file = optarg; break;
         case OPT_NOISE: a->noise_file = optarg; break;
         case OPT_THEORY: a->theory_file = optarg; break;
@@ -363,7 +363,7 @@ static cJSON *int_array_json(const int *v, int n)
     return a;
 }
 
-static char *summary_json(int argc, char **argv, const args *a, clef_map *const maps[4],
+static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const maps[4],
                           const clef_spectrum_opts *so, const clef_spectrum_result *r,
                           double t_read, double t_total, const char *const *outputs, int nout)
 {
@@ -449,25 +449,9 @@ static char *summary_json(int argc, char **argv, const args *a, clef_map *const 
     cJSON *o = cJSON_AddArrayToObject(root, "outputs");
     for (int i = 0; i < nout; i++)
         cJSON_AddItemToArray(o, cJSON_CreateString(outputs[i]));
-    char *text = cJSON_Print(root);
-    cJSON_Delete(root);
-    return text;
+    return root;
 }
 
-static int write_text(const char *path, const char *text)
-{
-    clef_outfile of;
-    int st = clef_outfile_begin(&of, path);
-    if (st != CLEF_OK)
-        return st;
-    FILE *f = fopen(of.tmp_path, "w");
-    if (!f || fputs(text, f) < 0 || fputc('\n', f) == EOF || fclose(f) != 0) {
-        clef_outfile_abort(&of);
-        fprintf(stderr, "clef: error: cannot write '%s'\n", path);
-        return CLEF_EIO;
-    }
-    return clef_outfile_commit(&of);
-}
 
 static void print_result(const args *a, const clef_spectrum_result *r)
 {
@@ -511,7 +495,7 @@ int cmd_spectrum(int argc, char **argv)
     double *beam = NULL, *transfer = NULL, *noise = NULL, *theory = NULL;
     clef_spectrum_result res;
     memset(&res, 0, sizeof res);
-    char *json = NULL;
+    cJSON *json = NULL;
     char paths[4][4096];
     const char *written[4];
     int nwritten = 0;
@@ -543,7 +527,7 @@ int cmd_spectrum(int argc, char **argv)
     so.keep_multipoles = a.keep;
     so.use_cache = !a.no_cache;
     so.cache_dir = a.cache_dir;
-    so.pixel_window = !a.no_pixwin;
+    so.pixel_window = !a.no_pixel_window;
     so.beam_fwhm = a.beam_fwhm;
     so.allow_coord_mismatch = a.coord;
     so.find_peak = !a.no_peak;
@@ -635,9 +619,9 @@ int cmd_spectrum(int argc, char **argv)
         all[nwritten] = paths[nwritten];
         json = summary_json(argc, argv, &a, maps, &so, &res, t_read, clef_wtime() - t_begin,
                             all, nwritten + 1);
-        if (!json || (status = write_text(paths[nwritten], json)) != CLEF_OK) {
-            if (status == CLEF_OK)
-                status = CLEF_ENOMEM;
+        const int rc_json = json ? cli_write_json(paths[nwritten], json) : CLI_EXIT_NOMEM;
+        if (rc_json != CLI_EXIT_OK) {
+            rc = rc_json; /* already reported */
             goto fail;
         }
         written[nwritten] = paths[nwritten];
@@ -652,10 +636,10 @@ int cmd_spectrum(int argc, char **argv)
     cli_verbose("time %-10s %8.3f s", "total", clef_wtime() - t_begin);
 
 fail:
-    if (status != CLEF_OK)
+    if (status != CLEF_OK || rc != CLI_EXIT_OK)
         for (int i = 0; i < nwritten; i++)
             remove(written[i]);
-    free(json);
+    cJSON_Delete(json);
     clef_spectrum_result_free(&res);
     clef_bins_destroy(bins);
     free(beam);
@@ -664,5 +648,5 @@ fail:
     free(theory);
     for (int i = 0; i < 4; i++)
         clef_map_free(maps[i]);
-    return status == CLEF_OK ? CLI_EXIT_OK : cli_fail(status);
+    return status == CLEF_OK ? rc : cli_fail(status);
 }

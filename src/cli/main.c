@@ -15,6 +15,7 @@ static const cli_command commands[] = {
     {"model", "analytic CMB temperature spectrum for cosmological parameters", cmd_model},
     {"geometry", "curvature and acoustic scale from the first peak", cmd_geometry},
     {"mask", "build, cut, apodize and report a mask", cmd_mask},
+    {"plot", "draw band powers, a map view or the curvature posterior", cmd_plot},
     {NULL, NULL, NULL},
 };
 

@@ -41,16 +41,16 @@
 #include "clef/beam.h"
 #include "core_impl.h"
 
-#define PIXWIN_NSIDE_MAX 8192
+#define PIXEL_WINDOW_NSIDE_MAX 8192
 #define PAIR_BLOCK 256
 
 /* One pixel to evaluate: its NESTED index, the ring node it belongs to,
  * and its weight within that ring's mean. */
-typedef struct pixwin_task {
+typedef struct pixel_window_task {
     int64_t nest;
     int node;
     double weight;
-} pixwin_task;
+} pixel_window_task;
 
 /* Per-thread scratch for pair sums. */
 typedef struct pair_scratch {
@@ -139,13 +139,13 @@ static int64_t ring_start(int64_t nside, int64_t i)
 
 /* Append the pixels representing ring i to tasks; the weights of one ring
  * sum to 1.  Returns the count, -1 when out of memory. */
-static int ring_tasks(int64_t nside, int64_t i, int node, int per_ring, pixwin_task *t)
+static int ring_tasks(int64_t nside, int64_t i, int node, int per_ring, pixel_window_task *t)
 {
     const int64_t start = ring_start(nside, i);
     if (i > nside) {
         int64_t nest;
         ring2nest64(nside, start, &nest);
-        t[0] = (pixwin_task){nest, node, 1.0};
+        t[0] = (pixel_window_task){nest, node, 1.0};
         return 1;
     }
     /* Cap ring (and ring nside): i pixels per quadrant; j and i-1-j mirror,
@@ -159,7 +159,7 @@ static int ring_tasks(int64_t nside, int64_t i, int node, int per_ring, pixwin_t
         return -1;
     const int nn = segment_nodes(0, d - 1, per_ring, jn);
     for (int a = 0; a < nn; a++)
-        t[a] = (pixwin_task){0, node, 0.0};
+        t[a] = (pixel_window_task){0, node, 0.0};
     int a = 0;
     for (int64_t j = 0; j < d; j++) {
         const double w = ((q % 2 == 1 && j == d - 1) ? 1.0 : 2.0) / (double)q;
@@ -200,7 +200,7 @@ static int scratch_alloc(pair_scratch *s, int k, int lmax)
 }
 
 /* Evaluate all tasks: res[t][l] = Richardson-extrapolated w_l^2. */
-static int run_tasks(int64_t nside, int lmax, int k, const pixwin_task *tasks, int ntasks,
+static int run_tasks(int64_t nside, int lmax, int k, const pixel_window_task *tasks, int ntasks,
                      double *res)
 {
     double *ca = calloc((size_t)lmax + 2, sizeof(double));
@@ -250,15 +250,15 @@ static int run_tasks(int64_t nside, int lmax, int k, const pixwin_task *tasks, i
 
 static int nside_ok(int64_t nside)
 {
-    return nside >= 1 && nside <= PIXWIN_NSIDE_MAX && (nside & (nside - 1)) == 0;
+    return nside >= 1 && nside <= PIXEL_WINDOW_NSIDE_MAX && (nside & (nside - 1)) == 0;
 }
 
-int clef_beam_pixwin_compute(int64_t nside, int lmax, const clef_beam_pixwin_opts *opts,
+int clef_beam_pixel_window_compute(int64_t nside, int lmax, const clef_beam_pixel_window_opts *opts,
                              double *pl)
 {
     if (!nside_ok(nside))
         CLEF_FAIL(CLEF_EINVAL, "pixel window: nside %lld is not a power of two in [1, %d]",
-                  (long long)nside, PIXWIN_NSIDE_MAX);
+                  (long long)nside, PIXEL_WINDOW_NSIDE_MAX);
     if (lmax < 0)
         CLEF_FAIL(CLEF_EINVAL, "pixel window: lmax must be >= 0, got %d", lmax);
     int k = opts && opts->subsample ? opts->subsample : 8;
@@ -275,13 +275,13 @@ int clef_beam_pixwin_compute(int64_t nside, int lmax, const clef_beam_pixwin_opt
 
     int status = CLEF_OK;
     int64_t *nodes = malloc(sizeof(int64_t) * 2 * (size_t)rings);
-    pixwin_task *tasks = NULL;
+    pixel_window_task *tasks = NULL;
     double *res = NULL, *ring_mean = NULL;
     if (!nodes)
         CLEF_FAIL(CLEF_ENOMEM, "no memory for pixel window rings");
     const int ncap = segment_nodes(1, nside, rings, nodes);
     const int nnodes = ncap + segment_nodes(nside + 1, 2 * nside, rings, nodes + ncap);
-    tasks = malloc(sizeof(pixwin_task) * (size_t)nnodes * (size_t)per_ring);
+    tasks = malloc(sizeof(pixel_window_task) * (size_t)nnodes * (size_t)per_ring);
     ring_mean = calloc((size_t)nnodes * ((size_t)lmax + 1), sizeof(double));
     if (!tasks || !ring_mean) {
         status = clef_fail(CLEF_ENOMEM, "no memory for pixel window tasks");
@@ -349,17 +349,17 @@ fail:
 
 /* ---- caches ---- */
 
-typedef struct pixwin_entry {
+typedef struct pixel_window_entry {
     int64_t nside;
     int lmax;
     double *pl;
-} pixwin_entry;
+} pixel_window_entry;
 
 static pthread_mutex_t cache_lock = PTHREAD_MUTEX_INITIALIZER;
-static pixwin_entry *cache;
+static pixel_window_entry *cache;
 static int ncache;
 
-void clef_beam_pixwin_cache_clear(void)
+void clef_beam_pixel_window_cache_clear(void)
 {
     pthread_mutex_lock(&cache_lock);
     for (int i = 0; i < ncache; i++)
@@ -400,14 +400,14 @@ static int make_dirs(char *path)
     return mkdir(path, 0777) != 0 && errno != EEXIST ? -1 : 0;
 }
 
-#define PIXWIN_CACHE_TAG "# clef pixel window v1"
+#define PIXEL_WINDOW_CACHE_TAG "# clef pixel window v1"
 
 static int cache_path(int64_t nside, int lmax, char *buf, size_t n)
 {
     char dir[4096];
     if (!cache_dir(dir, sizeof dir))
         return 0;
-    return snprintf(buf, n, "%s/pixwin/nside%05lld-lmax%05d.txt", dir, (long long)nside, lmax) <
+    return snprintf(buf, n, "%s/pixel_window/nside%05lld-lmax%05d.txt", dir, (long long)nside, lmax) <
            (int)n;
 }
 
@@ -421,7 +421,7 @@ static int disk_load(const char *path, int64_t nside, int lmax, double *pl)
     long long fn = -1;
     int fl = -1, ok = 0;
     if (fgets(head, sizeof head, f) &&
-        sscanf(head, PIXWIN_CACHE_TAG " nside %lld lmax %d", &fn, &fl) == 2 && fn == nside &&
+        sscanf(head, PIXEL_WINDOW_CACHE_TAG " nside %lld lmax %d", &fn, &fl) == 2 && fn == nside &&
         fl == lmax) {
         ok = 1;
         for (int l = 0; l <= lmax && ok; l++) {
@@ -455,7 +455,7 @@ static void disk_store(const char *path, int64_t nside, int lmax, const double *
     FILE *f = fopen(o.tmp_path, "w");
     int ok = f != NULL;
     if (ok) {
-        fprintf(f, PIXWIN_CACHE_TAG " nside %lld lmax %d\n", (long long)nside, lmax);
+        fprintf(f, PIXEL_WINDOW_CACHE_TAG " nside %lld lmax %d\n", (long long)nside, lmax);
         for (int l = 0; l <= lmax; l++)
             fprintf(f, "%d %.17g\n", l, pl[l]);
         ok = !ferror(f);
@@ -467,11 +467,11 @@ static void disk_store(const char *path, int64_t nside, int lmax, const double *
     }
 }
 
-int clef_beam_pixwin(int64_t nside, int lmax, double *pl)
+int clef_beam_pixel_window(int64_t nside, int lmax, double *pl)
 {
     if (!nside_ok(nside))
         CLEF_FAIL(CLEF_EINVAL, "pixel window: nside %lld is not a power of two in [1, %d]",
-                  (long long)nside, PIXWIN_NSIDE_MAX);
+                  (long long)nside, PIXEL_WINDOW_NSIDE_MAX);
     if (lmax < 0)
         CLEF_FAIL(CLEF_EINVAL, "pixel window: lmax must be >= 0, got %d", lmax);
     const int full = lmax > 3 * (int)nside - 1 ? lmax : 3 * (int)nside - 1;
@@ -487,7 +487,7 @@ int clef_beam_pixwin(int64_t nside, int lmax, double *pl)
         }
     }
     double *w = malloc(sizeof(double) * ((size_t)full + 1));
-    pixwin_entry *grown = w ? realloc(cache, sizeof *cache * ((size_t)ncache + 1)) : NULL;
+    pixel_window_entry *grown = w ? realloc(cache, sizeof *cache * ((size_t)ncache + 1)) : NULL;
     if (!grown) {
         free(w);
         pthread_mutex_unlock(&cache_lock);
@@ -497,12 +497,12 @@ int clef_beam_pixwin(int64_t nside, int lmax, double *pl)
     char path[4200];
     const int have_path = cache_path(nside, full, path, sizeof path);
     if (!have_path || disk_load(path, nside, full, w) != 0) {
-        status = clef_beam_pixwin_compute(nside, full, NULL, w);
+        status = clef_beam_pixel_window_compute(nside, full, NULL, w);
         if (status == CLEF_OK && have_path)
             disk_store(path, nside, full, w);
     }
     if (status == CLEF_OK) {
-        cache[ncache++] = (pixwin_entry){nside, full, w};
+        cache[ncache++] = (pixel_window_entry){nside, full, w};
         memcpy(pl, w, sizeof(double) * ((size_t)lmax + 1));
     } else {
         free(w);

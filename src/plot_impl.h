@@ -1,0 +1,72 @@
+/* Private helpers of the plot module: output canvases (PNG, SVG, PDF through
+ * cairo, written atomically), tick placement, text, colour scales, axes. */
+#ifndef CLEF_PLOT_IMPL_H
+#define CLEF_PLOT_IMPL_H
+
+#include <cairo.h>
+#include <stddef.h>
+
+#include "clef/plot.h"
+
+/* -std=c11 hides M_PI. */
+#define PLOT_PI 3.14159265358979323846
+
+/* A figure being drawn: the cairo surface writes into the temporary file of
+ * `out` (vector formats) or is written there by plot_canvas_close (PNG). */
+typedef struct plot_canvas {
+    int format;
+    int width, height;
+    clef_outfile out;
+    cairo_surface_t *surface;
+    cairo_t *cr;
+} plot_canvas;
+
+/* Open a canvas for `path` (format from the extension) and fill it white
+ * unless `transparent`.  On failure nothing is left behind. */
+int plot_canvas_open(plot_canvas *c, const char *path, int width, int height, int transparent);
+/* Finish drawing, write, rename onto the target.  On failure the temporary
+ * file is removed.  Always releases the canvas. */
+int plot_canvas_close(plot_canvas *c);
+/* Drop the canvas and its temporary file (after an error while drawing). */
+void plot_canvas_abort(plot_canvas *c);
+
+/* Figure sizes accepted by the public calls. */
+#define PLOT_SIZE_MIN 16
+#define PLOT_SIZE_MAX 20000
+int plot_check_size(const char *what, int width, int height);
+
+/* At most PLOT_MAX_TICKS tick values inside [lo, hi]. */
+#define PLOT_MAX_TICKS 64
+/* Widen [lo, hi] to multiples of a "nice" step giving about `target`
+ * intervals; returns the step. */
+double plot_nice_range(double *lo, double *hi, int target);
+/* Linear ticks: multiples of the nice step for `target` intervals. */
+int plot_ticks_linear(double lo, double hi, int target, double *ticks, double *step);
+/* Logarithmic ticks: decades, plus 2 and 5 times them when the range spans
+ * fewer than 3.5 decades.  lo > 0 required. */
+int plot_ticks_log(double lo, double hi, double *ticks);
+/* Tick label with as many decimals as the step needs. */
+void plot_format_tick(double v, double step, char *buf, size_t n);
+
+/* Text through cairo's toy API: sans-serif at `size` device units. */
+void plot_font(cairo_t *cr, double size, int bold);
+/* Draw `s` anchored at (x, y): ha 0 = left, 0.5 = centre, 1 = right;
+ * va 0 = top, 0.5 = middle, 1 = baseline. */
+void plot_text(cairo_t *cr, double x, double y, const char *s, double ha, double va);
+/* The same, rotated by -90 degrees (reading upwards), centred on (x, y). */
+void plot_text_vertical(cairo_t *cr, double x, double y, const char *s);
+double plot_text_width(cairo_t *cr, const char *s);
+
+/* Axes box, ticks, tick labels, light grid and axis labels for frame f. */
+void plot_draw_axes(cairo_t *cr, const clef_plot_frame *f, const char *xlabel,
+                    const char *ylabel, double font);
+
+/* Colour scales of our own: t in [0, 1] (clamped) to sRGB. */
+typedef struct plot_rgb {
+    double r, g, b;
+} plot_rgb;
+plot_rgb plot_scale_diverging(double t);
+plot_rgb plot_scale_sequential(double t);
+extern const plot_rgb plot_missing_grey;
+
+#endif
