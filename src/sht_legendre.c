@@ -14,8 +14,8 @@
  * with a rational c_l (one correctly rounded division).  s_l grows like 2^l,
  * so it is kept as sigma_l = s_l 2^-E_l: whenever sigma would exceed
  * 2^SIGSTEP it is divided by 2^SIGSTEP and the two mu values in flight are
- * multiplied by the same power of two (exact).  s_l is accumulated in long
- * double, so sigma_l carries ~1e-18 relative rounding per step.
+ * multiplied by the same power of two (exact).  s_l^2 is a product of
+ * rationals accumulated in long double; sigma_l is its double square root.
  *
  * Underflow: lambda_mm ~ sin^m theta is far below the double range near the
  * poles for large m (e.g. sin theta = 1e-3, m = 24575 gives 10^-73000).  The
@@ -64,20 +64,25 @@ void clef_sht_mtab_fill(clef_sht_mtab *t, int m, int lmax)
         pr *= (2.0L * k - 1.0L) / (2.0L * k);
     t->pref = (double)sqrtl(pr);
 
-    const long double big = ldexpl(1.0L, CLEF_SHT_SIGSTEP);
-    long double s = 1.0L;
+    /* s_l^2 = prod_{k=m+1..l} (4k^2 - 1)/((k - m)(k + m)) is a product of
+     * rationals: accumulate it in long double (exact integer factors, one
+     * rounding per division) and take one double sqrt per l, so sigma_l
+     * carries ~1e-16 relative error that does not grow with l (and costs
+     * no long-double sqrt; this table is rebuilt per m and chunk). */
+    const long double big2 = ldexpl(1.0L, 2 * CLEF_SHT_SIGSTEP);
+    long double s2 = 1.0L;
     t->sigma[m] = 1.0;
     t->nrescale = 0;
     if (m + 1 <= lmax)
         t->c[m + 1] = 0.0;
     for (int l = m + 1; l <= lmax; l++) {
         const long double ll = l;
-        s *= sqrtl((4.0L * ll * ll - 1.0L) / ((ll - m) * (ll + m)));
-        if (s > big) {
-            s = ldexpl(s, -CLEF_SHT_SIGSTEP);
+        s2 *= (4.0L * ll * ll - 1.0L) / ((ll - m) * (ll + m));
+        if (s2 > big2) {
+            s2 = ldexpl(s2, -2 * CLEF_SHT_SIGSTEP);
             t->rescale[t->nrescale++] = l;
         }
-        t->sigma[l] = (double)s;
+        t->sigma[l] = sqrt((double)s2);
         if (l >= m + 2) {
             /* Exact integers below 2^53 for l <= 3 * 8192: one rounding. */
             const double lm1 = l - 1;

@@ -15,7 +15,7 @@
  * large enough that each m sees many blocks (parallel and cache
  * efficiency), small enough to keep the plan's memory a fraction of the
  * maps' (PERFORMANCE.md section 2 item 8). */
-#define PHASE_BYTES_MAX ((size_t)64 << 20)
+#define PHASE_BYTES_MAX ((size_t)96 << 20)
 
 static int nside_ok(int64_t nside)
 {

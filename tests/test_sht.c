@@ -532,6 +532,21 @@ static void test_create_errors(void **state)
     clef_sht_destroy(NULL);
 }
 
+/* The optional FFTW wisdom file is written (atomically) and read back. */
+static void test_wisdom(void **state)
+{
+    (void)state;
+    const char *w = test_path("fftw.wisdom");
+    clef_sht_opts o = {.wisdom_file = w};
+    clef_sht *p;
+    assert_int_equal(clef_sht_create(&p, 64, 40, &o), CLEF_OK);
+    clef_sht_destroy(p);
+    assert_true(file_exists(w));
+    assert_int_equal(run_cmd("grep -q fftw '%s'", w), 0);
+    assert_int_equal(clef_sht_create(&p, 64, 40, &o), CLEF_OK);
+    clef_sht_destroy(p);
+}
+
 /* ------------------------------------------------------------- a_lm file */
 
 static void test_alm_file(void **state)
@@ -627,6 +642,7 @@ int main(void)
         cmocka_unit_test(test_threads),
         cmocka_unit_test(test_nmaps_mmax),
         cmocka_unit_test(test_create_errors),
+        cmocka_unit_test(test_wisdom),
         cmocka_unit_test(test_alm_file),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
