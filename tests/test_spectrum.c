@@ -245,7 +245,7 @@ static void test_peak_recovery(void **state)
 {
     (void)state;
     const int64_t nside = test_sanitize() ? 256 : 512;
-    const int nsim = test_sanitize() ? 10 : (test_long() ? 50 : 20);
+    const int nsim = test_sanitize() ? 10 : 50;
     const int lsim = 900, lmax = 600;
     clef_cosmo_params cp;
     clef_cosmo_params_planck2018(&cp);
