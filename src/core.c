@@ -1,6 +1,6 @@
 /* Status codes, last-error messages, log and progress hooks, atomic output
  * files, and the wall clock. */
-#define _POSIX_C_SOURCE 200809L
+#define _DEFAULT_SOURCE /* madvise */
 #include "core_impl.h"
 
 #include <errno.h>
@@ -9,6 +9,7 @@
 #include <stdlib.h>
 #include <string.h>
 #include <time.h>
+#include <sys/mman.h>
 #include <sys/stat.h>
 #include <unistd.h>
 
@@ -129,4 +130,24 @@ double clef_wtime(void)
     struct timespec ts;
     clock_gettime(CLOCK_MONOTONIC, &ts);
     return (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec;
+}
+
+/* Large arrays are written right after allocation: with 4 KiB pages the
+ * first-touch page faults cost about 0.3 s per 100 MB on a virtual
+ * machine (a fifth of the coupling time at lmax 2048, a third of the
+ * preparation of an nside 1024 spectrum).  Ask for transparent huge pages
+ * where the system offers them (Linux madvise; a hint, ignored elsewhere). */
+void *clef_alloc_large(size_t bytes)
+{
+#ifdef MADV_HUGEPAGE
+    const size_t huge = (size_t)2 << 20;
+    if (bytes >= 2 * huge) {
+        void *p = NULL;
+        if (posix_memalign(&p, huge, bytes) != 0)
+            return NULL;
+        madvise(p, bytes, MADV_HUGEPAGE);
+        return p;
+    }
+#endif
+    return malloc(bytes);
 }

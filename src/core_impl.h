@@ -17,6 +17,10 @@ int clef_fail(int status, const char *fmt, ...) CLEF_PRINTF(2, 3);
 void clef_log(int level, const char *fmt, ...) CLEF_PRINTF(2, 3);
 void clef_progress(const char *stage, double fraction);
 
+/* malloc for arrays of many MB (maps, matrices): huge pages where the
+ * system offers them.  Release with free(). */
+void *clef_alloc_large(size_t bytes);
+
 /* CLEF_FAIL(code, fmt, ...): format the message, log it, return the code. */
 #define CLEF_FAIL(code, ...) return clef_fail((code), __VA_ARGS__)
 

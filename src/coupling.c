@@ -23,25 +23,6 @@ void clef_coupling_opts_default(clef_coupling_opts *o)
     o->width_level = CLEF_COUPLING_WIDTH_LEVEL;
 }
 
-/* The matrix is written once, row by row, right after allocation: with
- * 4 KiB pages the first-touch page faults took about a fifth of the time
- * at lmax 2048 on a virtual machine.  Ask for transparent huge pages where
- * the system offers them (Linux madvise; a hint, ignored elsewhere). */
-static double *alloc_matrix(size_t bytes)
-{
-#ifdef MADV_HUGEPAGE
-    const size_t huge = (size_t)2 << 20;
-    if (bytes >= 2 * huge) {
-        void *p = NULL;
-        if (posix_memalign(&p, huge, bytes) != 0)
-            return NULL;
-        madvise(p, bytes, MADV_HUGEPAGE);
-        return p;
-    }
-#endif
-    return malloc(bytes);
-}
-
 int clef_coupling_alloc_empty(clef_coupling **out, int lmax, const double *wl, int wl_lmax)
 {
     int status;
@@ -65,7 +46,7 @@ int clef_coupling_alloc_empty(clef_coupling **out, int lmax, const double *wl, i
     c->lmax = lmax;
     c->wl_lmax = wl_lmax;
     c->wl = malloc(((size_t)wl_lmax + 1) * sizeof *c->wl);
-    c->m = alloc_matrix(n * n * sizeof *c->m);
+    c->m = clef_alloc_large(n * n * sizeof *c->m);
     if (!c->wl || !c->m) {
         status = clef_fail(CLEF_ENOMEM, "coupling: out of memory for the %zu x %zu matrix", n,
                            n);

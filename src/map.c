@@ -25,13 +25,14 @@ int clef_map_alloc(clef_map **out, int64_t nside)
         CLEF_FAIL(CLEF_ENOMEM, "cannot allocate a map header");
     m->nside = nside;
     m->npix = clef_nside_npix(nside);
-    m->pix = calloc((size_t)m->npix, sizeof *m->pix);
-    m->valid = malloc((size_t)m->npix);
+    m->pix = clef_alloc_large((size_t)m->npix * sizeof *m->pix);
+    m->valid = clef_alloc_large((size_t)m->npix);
     if (!m->pix || !m->valid) {
         clef_map_free(m);
         CLEF_FAIL(CLEF_ENOMEM, "cannot allocate a map of nside %lld (%lld pixels)",
                   (long long)nside, (long long)clef_nside_npix(nside));
     }
+    memset(m->pix, 0, (size_t)m->npix * sizeof *m->pix);
     memset(m->valid, 1, (size_t)m->npix);
     m->file_ordering = CLEF_RING;
     *out = m;

@@ -55,7 +55,7 @@ static const char *name_or(const clef_spectrum_opts *o, int i, const char *fallb
 /* Effective weights: the mask where the map is valid, 0 elsewhere. */
 static int make_weights(const clef_map *map, const clef_map *mask, double **w_out)
 {
-    double *w = malloc((size_t)map->npix * sizeof *w);
+    double *w = clef_alloc_large((size_t)map->npix * sizeof *w);
     if (!w)
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for %lld mask weights", (long long)map->npix);
     for (int64_t p = 0; p < map->npix; p++)
@@ -312,7 +312,7 @@ static int stage_lmax(run *r)
     return CLEF_OK;
 }
 
-/* Weights, moments, monopole and dipole, weighted maps, product mask. */
+/* Weights, moments, monopole and dipole, weighted maps. */
 static int stage_prepare(run *r, const clef_map *const map[2], const clef_map *const mask[2])
 {
     const int64_t npix = r->npix;
@@ -347,7 +347,7 @@ static int stage_prepare(run *r, const clef_map *const map[2], const clef_map *c
     r->pair_w2[2] = sbb / (double)npix;
 
     for (int i = 0; i <= r->cross; i++) {
-        r->tmap[i] = malloc((size_t)npix * sizeof(double));
+        r->tmap[i] = clef_alloc_large((size_t)npix * sizeof(double));
         if (!r->tmap[i])
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for a weighted map");
         memcpy(r->tmap[i], map[i]->pix, (size_t)npix * sizeof(double));
@@ -367,12 +367,6 @@ static int stage_prepare(run *r, const clef_map *const map[2], const clef_map *c
         for (int64_t p = 0; p < npix; p++)
             r->tmap[i][p] *= r->w[i][p];
     }
-    /* The product mask w_a w_b, whose spectrum drives the covariance. */
-    r->wprod = malloc((size_t)npix * sizeof *r->wprod);
-    if (!r->wprod)
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory for the product mask");
-    for (int64_t p = 0; p < npix; p++)
-        r->wprod[p] = wa[p] * wb[p];
     stage_done(res, "prepare", &r->t0);
     return CLEF_OK;
 }
@@ -410,6 +404,13 @@ static int stage_transform(run *r)
     if (cross)
         in[n++] = r->tmap[1];
     if (!mask_hit) {
+        /* The product mask w_a w_b, whose spectrum drives the covariance. */
+        r->wprod = clef_alloc_large((size_t)r->npix * sizeof *r->wprod);
+        if (!r->wprod)
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for the product mask");
+        const double *wa = r->w[0], *wb = r->w[cross];
+        for (int64_t p = 0; p < r->npix; p++)
+            r->wprod[p] = wa[p] * wb[p];
         in[n++] = r->w[0];
         if (r->two_masks)
             in[n++] = r->w[1];

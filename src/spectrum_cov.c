@@ -91,19 +91,25 @@ int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
 
     CLEF_CHECK(clef_spectrum_coupling(&m2, lmax, in->wl2, in->lmax_t, o));
     const double *m = clef_coupling_matrix(m2);
-    g = malloc((size_t)n * n * sizeof *g);
+    g = clef_alloc_large((size_t)n * n * sizeof *g);
     x = malloc((size_t)nb * n * sizeof *x);
     if (!g || !x) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", lmax);
         goto fail;
     }
+    /* sqrt(C^aa_l C^bb_l C^aa_l' C^bb_l') = s_l s_l', s_l = sqrt|C^aa_l C^bb_l|;
+     * c[1] is overwritten with s_l and c[2] with 1/(2l+1). */
+    for (int l = 0; l < n; l++) {
+        c[1][l] = sqrt(fabs(c[1][l] * c[2][l]));
+        c[2][l] = 1.0 / (2.0 * l + 1.0);
+    }
 #pragma omp parallel for schedule(static)
     for (int l = 0; l < n; l++) {
-        for (int lp = 0; lp < n; lp++) {
-            double ss = sqrt(fabs(c[1][l] * c[2][l] * c[1][lp] * c[2][lp]));
-            g[(size_t)l * n + lp] =
-                (ss + c[0][l] * c[0][lp]) * m[(size_t)l * n + lp] / (2.0 * lp + 1.0);
-        }
+        const double sl = c[1][l], cl = c[0][l];
+        const double *ml = m + (size_t)l * n;
+        double *gl = g + (size_t)l * n;
+        for (int lp = 0; lp < n; lp++)
+            gl[lp] = (sl * c[1][lp] + cl * c[0][lp]) * ml[lp] * c[2][lp];
     }
     const double *a = clef_coupling_binned_kinv_p(in->kb);
     /* x = A G, cov = x A^T. */
