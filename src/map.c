@@ -3,6 +3,7 @@
  * are in map_fits.c and map_write.c. */
 #include "map_impl.h"
 
+#include <ctype.h>
 #include <math.h>
 #include <stdlib.h>
 #include <string.h>
@@ -146,4 +147,33 @@ int clef_map_check_mask(const clef_map *map, const char *map_name, const clef_ma
                       kn, w, (long long)p);
     }
     return CLEF_OK;
+}
+
+double clef_unit_to_uk(const char *unit)
+{
+    if (!unit)
+        return 0;
+    char u[64];
+    size_t n = 0;
+    for (const char *c = unit; *c && n + 1 < sizeof u; c++)
+        if (*c != ' ' && *c != '\t')
+            u[n++] = (char)tolower((unsigned char)*c);
+    u[n] = '\0';
+    /* Drop a CMB qualifier: "K_CMB", "Kcmb", "uK_CMB" name thermodynamic
+     * temperature units, which is what band powers in uK^2 are in. */
+    const char *suffix[] = {"_cmb", "cmb", "-cmb"};
+    for (int i = 0; i < 3; i++) {
+        size_t ls = strlen(suffix[i]);
+        if (n > ls && !strcmp(u + n - ls, suffix[i])) {
+            u[n - ls] = '\0';
+            break;
+        }
+    }
+    if (!strcmp(u, "k"))
+        return 1e6;
+    if (!strcmp(u, "mk"))
+        return 1e3;
+    if (!strcmp(u, "uk") || !strcmp(u, "muk") || !strcmp(u, "microk") || !strcmp(u, "\xc2\xb5k"))
+        return 1;
+    return 0;
 }

@@ -259,7 +259,7 @@ typedef struct run {
     int lmax, lmax_t;              /* maps' and masks' multipole ranges */
     double *w[2], *wprod;          /* weights of each map, their product */
     double pair_w2[3];             /* mean(w_a w_b), mean(w_a^2), mean(w_b^2) */
-    double *tmap[2];               /* weighted maps, multipoles removed */
+    double *tmap[2];               /* weighted maps in uK, multipoles removed */
     double complex *alm[5];
     double *pcl[3], *pcl_dec;      /* pseudo-spectra; the one to decouple */
     double *wl, *wl2;              /* mask spectrum and product-mask spectrum */
@@ -350,7 +350,19 @@ static int stage_prepare(run *r, const clef_map *const map[2], const clef_map *c
         r->tmap[i] = clef_alloc_large((size_t)npix * sizeof(double));
         if (!r->tmap[i])
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for a weighted map");
-        memcpy(r->tmap[i], map[i]->pix, (size_t)npix * sizeof(double));
+        /* Band powers are in uK^2: maps in K or mK (their TUNIT) are scaled. */
+        double scale = clef_unit_to_uk(map[i]->unit);
+        if (scale == 0) {
+            if (map[i]->unit[0])
+                clef_log(CLEF_LOG_WARN, "map '%s': unit '%s' not recognised; values taken as uK",
+                         name_or(&r->o, i, "map"), map[i]->unit);
+            scale = 1;
+        } else if (scale != 1) {
+            clef_log(CLEF_LOG_INFO, "map '%s': unit '%s', values scaled by %g to uK",
+                     name_or(&r->o, i, "map"), map[i]->unit, scale);
+        }
+        for (int64_t p = 0; p < npix; p++)
+            r->tmap[i][p] = scale * map[i]->pix[p];
         if (!r->o.keep_multipoles) {
             int status = clef_spectrum_remove_multipoles(r->tmap[i], r->w[i], r->nside, 1,
                                                          res->multipoles[i]);

@@ -487,6 +487,44 @@ static void test_threads(void **state)
     clef_map_free(mask);
 }
 
+/* Units: a map in K (TUNIT 'K_CMB') gives the same band powers in uK^2 as
+ * the same sky in uK (1 K = 1e6 uK, SI prefixes). */
+static void test_units(void **state)
+{
+    (void)state;
+    check_abs(clef_unit_to_uk("K_CMB"), 1e6, 0, "SI prefix");
+    check_abs(clef_unit_to_uk(" mK "), 1e3, 0, "SI prefix");
+    check_abs(clef_unit_to_uk("uK"), 1, 0, "SI prefix");
+    check_abs(clef_unit_to_uk("muK_CMB"), 1, 0, "SI prefix");
+    check_abs(clef_unit_to_uk("Jy/sr"), 0, 0, "not a temperature");
+    const int64_t nside = 32;
+    clef_map *mask = cut_mask(nside, 20, 10), *uk = NULL, *k = NULL;
+    assert_int_equal(clef_map_alloc(&uk, nside), CLEF_OK);
+    assert_int_equal(clef_map_alloc(&k, nside), CLEF_OK);
+    gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+    for (int64_t p = 0; p < uk->npix; p++) {
+        uk->pix[p] = gsl_ran_gaussian(rng, 100.0);
+        k->pix[p] = uk->pix[p] * 1e-6;
+    }
+    gsl_rng_free(rng);
+    strcpy(uk->unit, "uK");
+    strcpy(k->unit, "K_CMB");
+    clef_spectrum_opts o;
+    clef_spectrum_opts_default(&o);
+    o.use_cache = 0;
+    o.find_peak = 0;
+    clef_spectrum_result r1, r2;
+    assert_int_equal(clef_spectrum_compute(uk, NULL, mask, NULL, &o, &r1), CLEF_OK);
+    assert_int_equal(clef_spectrum_compute(k, NULL, mask, NULL, &o, &r2), CLEF_OK);
+    for (int b = 0; b < r1.nbins; b++)
+        check_rel(r2.bp->dl[b], r1.bp->dl[b], 1e-9, "K map scaled to uK");
+    clef_spectrum_result_free(&r1);
+    clef_spectrum_result_free(&r2);
+    clef_map_free(uk);
+    clef_map_free(k);
+    clef_map_free(mask);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -494,6 +532,7 @@ int main(void)
         cmocka_unit_test(test_full_sky_exact),
         cmocka_unit_test(test_errors),
         cmocka_unit_test(test_threads),
+        cmocka_unit_test(test_units),
         cmocka_unit_test(test_noise_subtraction),
         cmocka_unit_test(test_masked_ensemble),
         cmocka_unit_test(test_peak_recovery),

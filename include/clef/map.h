@@ -122,6 +122,13 @@ int clef_map_stats_compute(const clef_map *m, clef_map_stats *st);
 int clef_map_check_mask(const clef_map *map, const char *map_name, const clef_map *mask,
                         const char *mask_name, int allow_coord_mismatch);
 
+/* Factor that converts values in `unit` (a TUNIT string) to micro-kelvin:
+ * "K", "K_CMB", "Kcmb", "KCMB" -> 1e6; "mK" (and _CMB forms) -> 1e3; "uK",
+ * "muK", "microK" (and _CMB forms) -> 1; case-insensitive, surrounding
+ * blanks ignored.  Returns 0 for an empty or unrecognised unit (the caller
+ * decides; clef's estimator then assumes uK and warns). */
+double clef_unit_to_uk(const char *unit);
+
 /* Pixel geometry helpers (RING scheme, 64-bit indices). */
 int64_t clef_nside_npix(int64_t nside);
 int clef_nside_valid(int64_t nside); /* 1 if a power of two in [1, CLEF_NSIDE_MAX] */
