@@ -118,15 +118,21 @@ fail:
 static int default_lmax(const clef_spectrum_opts *o, int64_t nside, int *lmax)
 {
     int l3 = (int)(3 * nside - 1);
+    /* Tabulated beam, transfer function and noise spectrum limit lmax by
+     * their own length. */
+    if (o->beam && o->beam_lmax < l3)
+        l3 = o->beam_lmax;
+    if (o->transfer && o->transfer_lmax < l3)
+        l3 = o->transfer_lmax;
+    if (o->noise_cl && o->noise_lmax < l3)
+        l3 = o->noise_lmax;
+    if (l3 < 2)
+        CLEF_FAIL(CLEF_EINVAL, "the beam, transfer or noise table stops at l = %d, below 2", l3);
     double *tl = malloc((size_t)(l3 + 1) * sizeof *tl);
     if (!tl)
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for the beam");
     clef_spectrum_opts tmp = *o;
     tmp.transfer = NULL; /* a filter's zeros are the user's business, not a reason to cut */
-    if (tmp.beam && tmp.beam_lmax < l3) {
-        /* A tabulated beam limits lmax by its own length. */
-        l3 = tmp.beam_lmax;
-    }
     int status = signal_filter(&tmp, nside, l3, tl);
     if (status == CLEF_OK) {
         const double floor2 = CLEF_SPECTRUM_BEAM_FLOOR * CLEF_SPECTRUM_BEAM_FLOOR;
@@ -134,8 +140,8 @@ static int default_lmax(const clef_spectrum_opts *o, int64_t nside, int *lmax)
         while (l > 2 && !(tl[l] >= floor2))
             l--;
         *lmax = l;
-        if (l < l3)
-            clef_log(CLEF_LOG_INFO, "lmax lowered to %d where the beam falls below %g", l,
+        if (l < (int)(3 * nside - 1))
+            clef_log(CLEF_LOG_INFO, "lmax lowered to %d (beam below %g or end of a table)", l,
                      CLEF_SPECTRUM_BEAM_FLOOR);
     }
     free(tl);

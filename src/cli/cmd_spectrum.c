@@ -279,6 +279,41 @@ static void default_prefix(const char *map, char *buf, size_t n)
     strncat(buf, "-bandpowers", n - strlen(buf) - 1);
 }
 
+/* The largest multipole in the first column of a text table ('#'
+ * comments), or -1 if none can be read; the table's own reader reports
+ * any error in detail. */
+static int text_last_l(const char *path)
+{
+    FILE *f = fopen(path, "r");
+    if (!f)
+        return -1;
+    char line[4096];
+    long best = -1;
+    while (fgets(line, sizeof line, f)) {
+        char *p = line;
+        while (*p == ' ' || *p == '\t')
+            p++;
+        if (*p == '#' || *p == '\n' || *p == '\0')
+            continue;
+        char *end;
+        long l = strtol(p, &end, 10);
+        if (end != p && l > best && l < 1000000)
+            best = l;
+    }
+    fclose(f);
+    return (int)best;
+}
+
+/* Tables indexed by l are read up to `lread`, or to their own end when that
+ * comes first and no --lmax was given (the default lmax then stops there). */
+static int table_lmax(const char *path, int lread, int lmax_given)
+{
+    if (lmax_given)
+        return lread;
+    int last = text_last_l(path);
+    return last >= 2 && last < lread ? last : lread;
+}
+
 static double *read_spectrum_file(const char *path, int lmax, int *status)
 {
     double *cl = calloc((size_t)lmax + 1, sizeof *cl);
@@ -549,22 +584,22 @@ int cmd_spectrum(int argc, char **argv)
     so.names[3] = a.mask[1];
     so.bin_width = (int)a.bin_width;
     if (a.beam_file) {
-        if (!(beam = read_profile_file(a.beam_file, lread, &status)))
+        so.beam_lmax = table_lmax(a.beam_file, lread, a.lmax > 0);
+        if (!(beam = read_profile_file(a.beam_file, so.beam_lmax, &status)))
             goto fail;
         so.beam = beam;
-        so.beam_lmax = lread;
     }
     if (a.transfer_file) {
-        if (!(transfer = read_profile_file(a.transfer_file, lread, &status)))
+        so.transfer_lmax = table_lmax(a.transfer_file, lread, a.lmax > 0);
+        if (!(transfer = read_profile_file(a.transfer_file, so.transfer_lmax, &status)))
             goto fail;
         so.transfer = transfer;
-        so.transfer_lmax = lread;
     }
     if (a.noise_file) {
-        if (!(noise = read_spectrum_file(a.noise_file, lread, &status)))
+        so.noise_lmax = table_lmax(a.noise_file, lread, a.lmax > 0);
+        if (!(noise = read_spectrum_file(a.noise_file, so.noise_lmax, &status)))
             goto fail;
         so.noise_cl = noise;
-        so.noise_lmax = lread;
     }
     if (a.theory_file) {
         if (!(theory = read_spectrum_file(a.theory_file, lread, &status)))

@@ -65,6 +65,18 @@ PY
     "$T/again.json" || fail "second run did not use the coupling cache"
 [ ! -e "$T/again.fits" ] || fail "--format json wrote a FITS file"
 
+# A beam table that stops below 3 nside - 1 caps the default lmax (Gaussian
+# beam B_l = exp(-l(l+1) sigma^2/2), sigma = FWHM/sqrt(8 ln 2): METHODS.md 6).
+"$CLEF_PYTHON" -c "
+import numpy as np
+l = np.arange(151); s = 30 / 60 * np.pi / 180 / np.sqrt(8 * np.log(2))
+np.savetxt('$T/beam.txt', np.c_[l, np.exp(-l * (l + 1) * s * s / 2)], fmt='%d %.12g', header='l B_l')
+" || fail "beam table"
+"$C" spectrum "$T/sky_split1.fits" --mask "$T/mask.fits" --beam-file "$T/beam.txt" --format json \
+    --output "$T/btab" > /dev/null 2>&1 || fail "spectrum with a beam table"
+"$CLEF_PYTHON" -c "import json,sys; j=json.load(open(sys.argv[1])); sys.exit(0 if j['options']['lmax'] == 150 else 1)" \
+    "$T/btab.json" || fail "lmax not capped by the beam table"
+
 # Bad input: the documented exit code, a message, and no output.
 expect() { # code, description, command...
     code=$1; what=$2; shift 2
