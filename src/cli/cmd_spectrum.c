@@ -605,7 +605,10 @@ int cmd_spectrum(int argc, char **argv)
         if (!(theory = read_spectrum_file(a.theory_file, lread, &status)))
             goto fail;
         so.theory_cl = theory;
-        so.theory_lmax = lread;
+        /* A theory table that stops below lmax is refused by the estimator
+         * rather than padded with zeros (zero errors above its end). */
+        const int last = text_last_l(a.theory_file);
+        so.theory_lmax = last >= 0 && last < lread ? last : lread;
     }
     if (a.bins_file || a.log_bins > 0) {
         /* Explicit bins need the lmax they end at: the given one or 3 nside - 1. */
