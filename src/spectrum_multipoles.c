@@ -12,50 +12,16 @@
 
 #include "clef/spectrum.h"
 #include "core_impl.h"
+#include "mask_impl.h"
 
-/* Geometry of RING ring i = 1 .. 4 nside - 1 (Gorski et al. 2005, ApJ 622,
- * 759, section 4; METHODS.md section 1): z of its centres, pixel count,
- * first pixel index, and the phase of its first pixel, phi_j = phi0 + j dphi. */
-typedef struct ring_geom {
-    double z, phi0, dphi;
-    int64_t n, first;
-} ring_geom;
-
-static ring_geom ring_at(int64_t nside, int64_t i)
-{
-    ring_geom g;
-    const double ns = (double)nside;
-    const int64_t npix = 12 * nside * nside;
-    if (i < nside) {
-        g.z = 1 - (double)(i * i) / (3 * ns * ns);
-        g.n = 4 * i;
-        g.first = 2 * i * (i - 1);
-        g.dphi = M_PI / (2.0 * (double)i);
-        g.phi0 = 0.5 * g.dphi;
-    } else if (i <= 3 * nside) {
-        g.z = 4.0 / 3.0 - 2.0 * (double)i / (3 * ns);
-        g.n = 4 * nside;
-        g.first = 2 * nside * (nside - 1) + 4 * nside * (i - nside);
-        g.dphi = M_PI / (2 * ns);
-        g.phi0 = ((i - nside + 1) % 2) * 0.5 * g.dphi;
-    } else {
-        const int64_t k = 4 * nside - i;
-        g.z = -(1 - (double)(k * k) / (3 * ns * ns));
-        g.n = 4 * k;
-        g.first = npix - 2 * k * (k + 1);
-        g.dphi = M_PI / (2.0 * (double)k);
-        g.phi0 = 0.5 * g.dphi;
-    }
-    return g;
-}
-
-/* Unit vector of pixel j of a ring. */
-static inline void ring_vec(const ring_geom *g, double st, int64_t j, double v[3])
+/* Unit vector of pixel j of a ring (ring geometry of the mask module,
+ * src/mask_geom.c: Gorski et al. 2005 section 4). */
+static inline void ring_vec(const mask_ring *g, int64_t j, double v[3])
 {
     double s, c;
-    sincos(g->phi0 + (double)j * g->dphi, &s, &c);
-    v[0] = st * c;
-    v[1] = st * s;
+    sincos(2.0 * M_PI / (double)g->n * ((double)j + g->shift), &s, &c);
+    v[0] = g->sth * c;
+    v[1] = g->sth * s;
     v[2] = g->z;
 }
 
@@ -74,15 +40,15 @@ int clef_spectrum_remove_multipoles(double *map, const double *w, int64_t nside,
     /* Normal equations: A_ij = sum w f_i f_j, b_i = sum w f_i T, f = (1, x, y, z). */
 #pragma omp parallel for schedule(dynamic, 16)
     for (int64_t r = 0; r < nrings; r++) {
-        const ring_geom g = ring_at(nside, r + 1);
-        const double st = sqrt((1 - g.z) * (1 + g.z));
+        mask_ring g;
+        mask_ring_info(nside, r + 1, &g);
         double *s = part[r];
         for (int64_t j = 0; j < g.n; j++) {
             const int64_t p = g.first + j;
             if (!(w[p] > 0))
                 continue;
             double v[3], f[4];
-            ring_vec(&g, st, j, v);
+            ring_vec(&g, j, v);
             f[0] = 1;
             f[1] = v[0];
             f[2] = v[1];
@@ -130,11 +96,11 @@ int clef_spectrum_remove_multipoles(double *map, const double *w, int64_t nside,
 
 #pragma omp parallel for schedule(dynamic, 16)
     for (int64_t r = 0; r < nrings; r++) {
-        const ring_geom g = ring_at(nside, r + 1);
-        const double st = sqrt((1 - g.z) * (1 + g.z));
+        mask_ring g;
+        mask_ring_info(nside, r + 1, &g);
         for (int64_t j = 0; j < g.n; j++) {
             double v[3];
-            ring_vec(&g, st, j, v);
+            ring_vec(&g, j, v);
             map[g.first + j] -= cf[0] + cf[1] * v[0] + cf[2] * v[1] + cf[3] * v[2];
         }
     }
