@@ -10,6 +10,7 @@
 #include <stdarg.h>
 #include <stdlib.h>
 #include <string.h>
+#include <strings.h>
 #include <unistd.h>
 
 #include "clef/clef.h"
@@ -121,6 +122,15 @@ int cli_parse_double(const char *cmd, const char *opt, const char *s, double *ou
         return 1;
     }
     *out = v;
+    return 0;
+}
+
+int cli_check_ordering(const char *cmd, const char *ordering)
+{
+    if (ordering && strcasecmp(ordering, "RING") && strcasecmp(ordering, "NESTED")) {
+        cli_usage_error(cmd, "--ordering expects RING or NESTED, got '%s'", ordering);
+        return 1;
+    }
     return 0;
 }
 

@@ -53,6 +53,10 @@ int cli_parse_double(const char *cmd, const char *opt, const char *s, double *ou
 struct cJSON;
 int cli_write_json(const char *path, const struct cJSON *j);
 
+/* --ordering RING|NESTED (NULL allowed); prints a usage error and returns
+ * nonzero otherwise. */
+int cli_check_ordering(const char *cmd, const char *ordering);
+
 /* --threads N: set the OpenMP thread count (0 = leave the default). */
 int cli_set_threads(const char *cmd, const char *s);
 

@@ -79,9 +79,8 @@ int cmd_convert(int argc, char **argv)
     if (optind != argc - 2)
         return cli_usage_error("convert", "expected INPUT and OUTPUT, got %d arguments",
                                argc - optind);
-    if (ro.ordering && strcasecmp(ro.ordering, "RING") && strcasecmp(ro.ordering, "NESTED"))
-        return cli_usage_error("convert", "--ordering expects RING or NESTED, got '%s'",
-                               ro.ordering);
+    if (cli_check_ordering("convert", ro.ordering))
+        return CLI_EXIT_USAGE;
     cli_setup_logging();
     const char *in = argv[optind], *out = argv[optind + 1];
 

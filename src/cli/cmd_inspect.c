@@ -187,9 +187,8 @@ int cmd_inspect(int argc, char **argv)
     if (optind != argc - 1)
         return cli_usage_error("inspect", "expected one FITS file, got %d arguments",
                                argc - optind);
-    if (ro.ordering && strcasecmp(ro.ordering, "RING") && strcasecmp(ro.ordering, "NESTED"))
-        return cli_usage_error("inspect", "--ordering expects RING or NESTED, got '%s'",
-                               ro.ordering);
+    if (cli_check_ordering("inspect", ro.ordering))
+        return CLI_EXIT_USAGE;
     cli_setup_logging();
     const char *path = argv[optind];
     cli_verbose("reading %s", path);
