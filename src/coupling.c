@@ -23,13 +23,8 @@ void clef_coupling_opts_default(clef_coupling_opts *o)
     o->width_level = CLEF_COUPLING_WIDTH_LEVEL;
 }
 
-int clef_coupling_alloc_empty(clef_coupling **out, int lmax, const double *wl, int wl_lmax)
+int clef_coupling_check_wl(int lmax, const double *wl, int wl_lmax)
 {
-    int status;
-    clef_coupling *c = NULL;
-    if (!out)
-        CLEF_FAIL(CLEF_EINVAL, "coupling: output pointer is NULL");
-    *out = NULL;
     if (lmax < 0)
         CLEF_FAIL(CLEF_EINVAL, "coupling: lmax %d must be >= 0", lmax);
     if (!wl || wl_lmax < 0)
@@ -39,6 +34,17 @@ int clef_coupling_alloc_empty(clef_coupling **out, int lmax, const double *wl, i
             CLEF_FAIL(CLEF_EINVAL,
                       "coupling: mask spectrum W_l at l = %d is %g (must be finite and >= 0)", l,
                       wl[l]);
+    return CLEF_OK;
+}
+
+int clef_coupling_alloc_empty(clef_coupling **out, int lmax, const double *wl, int wl_lmax)
+{
+    int status;
+    clef_coupling *c = NULL;
+    if (!out)
+        CLEF_FAIL(CLEF_EINVAL, "coupling: output pointer is NULL");
+    *out = NULL;
+    CLEF_TRY(clef_coupling_check_wl(lmax, wl, wl_lmax));
     c = calloc(1, sizeof *c);
     if (!c)
         CLEF_FAIL(CLEF_ENOMEM, "coupling: out of memory");

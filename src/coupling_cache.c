@@ -300,10 +300,7 @@ int clef_coupling_binned_create_cached(clef_coupling_binned **out, int lmax, con
     if (!out)
         CLEF_FAIL(CLEF_EINVAL, "coupling: output pointer is NULL");
     *out = NULL;
-    if (lmax < 0)
-        CLEF_FAIL(CLEF_EINVAL, "coupling: lmax %d must be >= 0", lmax);
-    if (!wl || wl_lmax < 0)
-        CLEF_FAIL(CLEF_EINVAL, "coupling: mask spectrum W_l missing (wl_lmax %d)", wl_lmax);
+    CLEF_TRY(clef_coupling_check_wl(lmax, wl, wl_lmax));
     if (!bins)
         CLEF_FAIL(CLEF_EINVAL, "coupling: bins are NULL");
     if (clef_bins_lmax(bins) > lmax)

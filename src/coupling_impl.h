@@ -24,6 +24,10 @@ struct clef_coupling_binned {
     double *kinv_p; /* nbins x (lmax+1), row-major */
 };
 
+/* lmax >= 0 and W_l[0..wl_lmax] present, finite and >= 0 (CLEF_EINVAL
+ * naming the first bad l). */
+int clef_coupling_check_wl(int lmax, const double *wl, int wl_lmax);
+
 /* An M object with W_l copied and M allocated but not filled. */
 int clef_coupling_alloc_empty(clef_coupling **out, int lmax, const double *wl, int wl_lmax);
 
