@@ -412,9 +412,11 @@ static int stage_transform(run *r)
     if (!r->wl || !r->tl || !r->pcl_dec)
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for spectra");
     r->wl2 = r->wl + lmax_t + 1; /* the two mask spectra are one cache entry */
-    const double *w2 = cross ? r->w[1] : NULL;
-    const int mask_hit =
-        r->o.use_cache && clef_spectrum_mask_cache(&r->o, r->nside, lmax_t, w2, r->w[0], r->wl, 0);
+    char key[65] = "";
+    if (r->o.use_cache) /* hashing the weights once serves the load and the store */
+        clef_spectrum_mask_key(r->nside, lmax_t, r->o.iterations, cross ? r->w[1] : NULL,
+                               r->w[0], key);
+    const int mask_hit = r->o.use_cache && clef_spectrum_mask_cache(&r->o, key, lmax_t, r->wl, 0);
 
     const double *in[5];
     int n = 0;
@@ -476,7 +478,7 @@ static int stage_transform(run *r)
             if (r->wl[l] < 0)
                 r->wl[l] = 0;
         if (r->o.use_cache)
-            clef_spectrum_mask_cache(&r->o, r->nside, lmax_t, w2, r->w[0], r->wl, 1);
+            clef_spectrum_mask_cache(&r->o, key, lmax_t, r->wl, 1);
     }
     return CLEF_OK;
 }

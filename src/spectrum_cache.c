@@ -10,8 +10,8 @@
 #include "core_impl.h"
 #include "spectrum_impl.h"
 
-static void key_of(int64_t nside, int lmax_t, int iterations, const double *w2,
-                   const double *w1, char hex[65])
+void clef_spectrum_mask_key(int64_t nside, int lmax_t, int iterations, const double *w2,
+                            const double *w1, char hex[65])
 {
     clef_sha256 h;
     unsigned char d[CLEF_SHA256_BYTES];
@@ -28,17 +28,16 @@ static void key_of(int64_t nside, int lmax_t, int iterations, const double *w2,
     clef_sha256_hex(d, hex);
 }
 
-int clef_spectrum_mask_cache(const clef_spectrum_opts *o, int64_t nside, int lmax_t,
-                             const double *w2, const double *w1, double *wl, int store)
+int clef_spectrum_mask_cache(const clef_spectrum_opts *o, const char *key, int lmax_t,
+                             double *wl, int store)
 {
-    char dir[4096], path[4096 + 160], key[65];
+    char dir[4096], path[4096 + 160];
     const char *why = clef_cache_resolve_dir(o->cache_dir, dir, sizeof dir);
     if (why) {
         if (store)
             clef_log(CLEF_LOG_WARN, "mask spectra not cached: %s", why);
         return 0;
     }
-    key_of(nside, lmax_t, o->iterations, w2, w1, key);
     if (!clef_cache_path(path, sizeof path, dir, CLEF_CACHE_MASK_SPECTRA, key))
         return 0;
     if (store) {

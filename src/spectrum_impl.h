@@ -29,11 +29,14 @@ int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov);
 int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
                            const clef_spectrum_opts *o);
 
+/* Cache key of the mask spectra: the weights, nside, lmax_t, iterations. */
+void clef_spectrum_mask_key(int64_t nside, int lmax_t, int iterations, const double *w2,
+                            const double *w1, char hex[65]);
+
 /* The mask spectra W_l and W_l[w_a w_b] (2 x (lmax_t + 1) doubles in wl)
- * in the cache folder, keyed by the weights, nside, lmax_t and iterations.
- * store = 0: load, returning 1 on a hit; store = 1: save (returns 0).
- * Cache problems are warnings, never errors. */
-int clef_spectrum_mask_cache(const clef_spectrum_opts *o, int64_t nside, int lmax_t,
-                             const double *w2, const double *w1, double *wl, int store);
+ * in the cache folder under `key`.  store = 0: load, returning 1 on a hit;
+ * store = 1: save (returns 0).  Cache problems are warnings, never errors. */
+int clef_spectrum_mask_cache(const clef_spectrum_opts *o, const char *key, int lmax_t,
+                             double *wl, int store);
 
 #endif
