@@ -57,8 +57,24 @@ void clef_bandpowers_free(clef_bandpowers *bp)
     free(bp->dl);
     free(bp->dl_err);
     free(bp->cov);
+    free(bp->win);
     free(bp->meta);
     free(bp);
+}
+
+int clef_bandpowers_alloc_windows(clef_bandpowers *bp, int win_lmax)
+{
+    if (!bp || win_lmax < 0 || win_lmax > (1 << 20))
+        CLEF_FAIL(CLEF_EINVAL, "band-power windows: lmax %d outside 0..%d", win_lmax, 1 << 20);
+    const size_t n = (size_t)bp->nbins * ((size_t)win_lmax + 1);
+    double *w = calloc(n, sizeof *w);
+    if (!w)
+        CLEF_FAIL(CLEF_ENOMEM, "band-power windows: out of memory for %d bins x %d multipoles",
+                  bp->nbins, win_lmax + 1);
+    free(bp->win);
+    bp->win = w;
+    bp->win_lmax = win_lmax;
+    return CLEF_OK;
 }
 
 /* ---- metadata items ---------------------------------------------------- */

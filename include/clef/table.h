@@ -37,6 +37,10 @@ typedef struct clef_bandpowers {
     double *dl;        /* D_b = l(l+1) C / 2pi in uK^2 */
     double *dl_err;    /* 1-sigma error of D_b in uK^2 (sqrt of the covariance diagonal) */
     double *cov;       /* nbins x nbins covariance of D_b in uK^4, row-major, or NULL */
+    int win_lmax;      /* the windows cover l = 0..win_lmax (meaningful when win != NULL) */
+    double *win;       /* band-power window functions, nbins x (win_lmax + 1), row-major:
+                          <D_b> = sum_l win[b (win_lmax + 1) + l] D_l (docs/formats-spectrum.md),
+                          or NULL when the table carries none */
     int nmeta;
     clef_meta *meta;   /* malloc'ed array of nmeta items, or NULL */
 } clef_bandpowers;
@@ -44,6 +48,11 @@ typedef struct clef_bandpowers {
 /* Allocate a table of nbins rows (arrays zeroed; cov allocated iff with_cov). */
 int clef_bandpowers_alloc(clef_bandpowers **out, int nbins, int with_cov);
 void clef_bandpowers_free(clef_bandpowers *bp); /* NULL is a no-op */
+
+/* Allocate (zeroed) the window functions of a table for l = 0..win_lmax,
+ * replacing any earlier ones.  Errors: CLEF_EINVAL (win_lmax < 0 or too
+ * large), CLEF_ENOMEM. */
+int clef_bandpowers_alloc_windows(clef_bandpowers *bp, int win_lmax);
 
 /* Append a metadata item (copied); an item with the same key is replaced.
  * Keys the file layer writes itself (FITS structural keywords, EXTNAME,
