@@ -14,6 +14,7 @@
 #include <gsl/gsl_spline.h>
 
 #include "core_impl.h"
+#include "clef/theory.h"
 #include "cosmo_impl.h"
 
 /* A posterior above this fraction of its peak at a grid edge means the
@@ -31,7 +32,7 @@ void clef_geometry_opts_default(clef_geometry_opts *o)
     o->omega_b = (clef_geometry_prior){0.0224, 0.0002};
     o->omega_c = (clef_geometry_prior){0.120, 0.002};
     o->h = (clef_geometry_prior){0.674, 0.010};
-    o->model_err = 0.005;
+    o->model_err = CLEF_GEOMETRY_MODEL_ERR;
     o->omega_k_min = -0.3;
     o->omega_k_max = 0.3;
     o->ngrid = 1201;
@@ -39,6 +40,8 @@ void clef_geometry_opts_default(clef_geometry_opts *o)
     o->nnodes = 21;
     o->seed = 1;
     clef_cosmo_params_planck2018(&o->base);
+    o->forward_table = NULL;
+    clef_peak_opts_default(&o->forward_peak);
 }
 
 const char *clef_geometry_class_name(int c)
@@ -107,10 +110,159 @@ static double draw(gsl_rng *rng, const clef_geometry_prior *pr, double lo, doubl
     return NAN;
 }
 
+
+/* ---- forward model of the peak estimator (docs/geometry.md) ---- */
+
+/* Work for one forward evaluation: the model's D_l, the band powers and a
+ * shallow copy of the table with those band powers. */
+typedef struct forward_work {
+    int lmax;          /* multipoles of the model spectrum */
+    double *cl, *pred;
+    clef_bandpowers bp;
+} forward_work;
+
+static int forward_work_init(forward_work *fw, const clef_bandpowers *t)
+{
+    memset(fw, 0, sizeof *fw);
+    int lmax = 2;
+    for (int b = 0; b < t->nbins; b++)
+        lmax = t->l_hi[b] > lmax ? t->l_hi[b] : lmax;
+    if (t->win && t->win_lmax > lmax)
+        lmax = t->win_lmax;
+    if (lmax > CLEF_THEORY_LMAX_MAX)
+        lmax = CLEF_THEORY_LMAX_MAX;
+    fw->lmax = lmax;
+    fw->cl = malloc(((size_t)lmax + 1) * sizeof *fw->cl);
+    fw->pred = malloc((size_t)t->nbins * sizeof *fw->pred);
+    if (!fw->cl || !fw->pred)
+        CLEF_FAIL(CLEF_ENOMEM, "forward model: out of memory for %d multipoles", lmax);
+    fw->bp = *t; /* only read by the estimator */
+    fw->bp.dl = fw->pred;
+    fw->bp.nmeta = 0;
+    fw->bp.meta = NULL;
+    return CLEF_OK;
+}
+
+static void forward_work_free(forward_work *fw)
+{
+    free(fw->cl);
+    free(fw->pred);
+}
+
+/* The estimator's l_peak on the model spectrum for p, minus the model's
+ * l_1 (the maximum of its D_l: clef_theory_cl places it there), in *off;
+ * NaN when the model is unphysical or the estimator finds no peak on it. */
+static int forward_offset(const clef_geometry_opts *o, forward_work *fw, const clef_cosmo_params *p,
+                          clef_cosmo_work *cw, double *off)
+{
+    *off = NAN;
+    double l1;
+    if (clef_cosmo_check(p, NULL) != CLEF_OK || clef_cosmo_peak_quiet(p, cw, &l1, NULL) != 0)
+        return CLEF_OK;
+    if (clef_theory_cl(p, fw->lmax, fw->cl) != CLEF_OK)
+        return CLEF_OK;
+    const clef_bandpowers *t = o->forward_table;
+    const size_t wl = (size_t)t->win_lmax + 1;
+    for (int l = 0; l <= fw->lmax; l++) /* D_l = l (l + 1) C_l / 2 pi */
+        fw->cl[l] *= l * (l + 1.0) / (2 * M_PI);
+    for (int b = 0; b < t->nbins; b++) {
+        double s = 0;
+        if (t->win) {
+            const int top = t->win_lmax < fw->lmax ? t->win_lmax : fw->lmax;
+            for (int l = 0; l <= top; l++)
+                s += t->win[(size_t)b * wl + (size_t)l] * fw->cl[l];
+        } else {
+            /* The estimator's fallback window: a uniform D average. */
+            for (int l = t->l_lo[b]; l <= t->l_hi[b]; l++)
+                s += fw->cl[l];
+            s /= t->l_hi[b] - t->l_lo[b] + 1;
+        }
+        fw->pred[b] = s;
+    }
+    clef_peak_result r;
+    const int st = clef_peak_find(&fw->bp, &o->forward_peak, &r);
+    if (st == CLEF_EINVAL)
+        return CLEF_OK; /* e.g. the model's bins carry no error in the window: no peak */
+    CLEF_TRY(st);
+    if (r.found)
+        *off = r.l_peak - l1;
+    return CLEF_OK;
+}
+
+/* Offsets at the Omega_k nodes for the prior means (off[4 j]) and their
+ * derivatives with respect to omega_b, omega_c and h (off[4 j + 1..3]),
+ * by central differences of one prior sigma (0 for a fixed parameter or
+ * when a side fails).  The offset is smooth and small (docs/geometry.md),
+ * so a linear dependence on the nuisance parameters is enough within the
+ * priors. */
+static int forward_nodes(const clef_geometry_opts *o, const double *nodes, double *off,
+                         clef_geometry_result *res)
+{
+    const int nn = o->nnodes;
+    forward_work fw;
+    clef_cosmo_work cw = {0};
+    int status = forward_work_init(&fw, o->forward_table);
+    if (status == CLEF_OK)
+        status = clef_cosmo_work_alloc(&cw);
+    const clef_geometry_prior *pri[3] = {&o->omega_b, &o->omega_c, &o->h};
+    res->forward_nodes_failed = 0;
+    res->forward_offset_min = INFINITY;
+    res->forward_offset_max = -INFINITY;
+    for (int j = 0; j < nn && status == CLEF_OK; j++) {
+        clef_cosmo_params p = o->base;
+        p.omega_b = o->omega_b.mean;
+        p.omega_c = o->omega_c.mean;
+        p.h = o->h.mean;
+        p.omega_k = nodes[j];
+        double *oj = off + 4 * (size_t)j;
+        CLEF_CHECK(forward_offset(o, &fw, &p, &cw, &oj[0]));
+        for (int i = 0; i < 3; i++) {
+            oj[1 + i] = 0;
+            if (isnan(oj[0]) || pri[i]->sigma == 0)
+                continue;
+            double side[2];
+            for (int k = 0; k < 2; k++) {
+                clef_cosmo_params q = p;
+                double *v = i == 0 ? &q.omega_b : i == 1 ? &q.omega_c : &q.h;
+                *v += (k ? 1 : -1) * pri[i]->sigma;
+                CLEF_CHECK(forward_offset(o, &fw, &q, &cw, &side[k]));
+            }
+            if (!isnan(side[0]) && !isnan(side[1]))
+                oj[1 + i] = (side[1] - side[0]) / (2 * pri[i]->sigma);
+        }
+        if (isnan(oj[0])) {
+            res->forward_nodes_failed++;
+        } else {
+            res->forward_offset_min = fmin(res->forward_offset_min, oj[0]);
+            res->forward_offset_max = fmax(res->forward_offset_max, oj[0]);
+        }
+    }
+    if (status == CLEF_OK) {
+        clef_cosmo_params p = o->base;
+        p.omega_b = o->omega_b.mean;
+        p.omega_c = o->omega_c.mean;
+        p.h = o->h.mean;
+        p.omega_k = 0;
+        status = forward_offset(o, &fw, &p, &cw, &res->forward_offset);
+    }
+fail:
+    forward_work_free(&fw);
+    clef_cosmo_work_free(&cw);
+    if (status == CLEF_OK && res->forward_nodes_failed == nn)
+        CLEF_FAIL(CLEF_ENUMERIC, "forward model: the peak estimator finds no peak on the model "
+                  "spectrum at any Omega_k node with these bins and settings");
+    if (status == CLEF_OK && res->forward_nodes_failed)
+        clef_log(CLEF_LOG_INFO, "forward model: no peak on the model at %d of %d Omega_k nodes "
+                 "(excluded)", res->forward_nodes_failed, nn);
+    return status;
+}
+
 /* Model l_1 at the coarse nodes for every sample, in parallel; node values
- * are NAN where the model is unphysical. */
+ * are NAN where the model is unphysical.  With the forward model (off not
+ * NULL) the estimator's offset at the node is added, linear in the sample's
+ * nuisance parameters. */
 static int node_table(const clef_geometry_opts *o, const double *samples, const double *nodes,
-                      double *table)
+                      const double *off, double *table)
 {
     const int ns = o->nsamples, nn = o->nnodes;
     int fail = 0;
@@ -134,6 +286,11 @@ static int node_table(const clef_geometry_opts *o, const double *samples, const 
                         fail |= 2;
                     if (st != 0)
                         l1 = NAN;
+                    if (off) {
+                        const double *oj = off + 4 * (size_t)j;
+                        l1 += oj[0] + oj[1] * (p.omega_b - o->omega_b.mean) +
+                              oj[2] * (p.omega_c - o->omega_c.mean) + oj[3] * (p.h - o->h.mean);
+                    }
                 }
                 table[(size_t)i * nn + j] = l1;
             }
@@ -344,7 +501,7 @@ int clef_geometry_infer(const clef_geometry_opts *o, clef_geometry_result **out)
 {
     int status = CLEF_OK;
     clef_geometry_result *r = NULL;
-    double *samples = NULL, *nodes = NULL, *table = NULL;
+    double *samples = NULL, *nodes = NULL, *table = NULL, *off = NULL;
     gsl_rng *rng = NULL;
     *out = NULL;
     if (!o)
@@ -384,12 +541,23 @@ int clef_geometry_infer(const clef_geometry_opts *o, clef_geometry_result **out)
             samples[3 * i] = NAN;
     }
     clef_progress("curvature", 0.0);
-    CLEF_CHECK(node_table(o, samples, nodes, table));
+    r->forward = o->forward_table != NULL;
+    r->forward_offset = r->forward_offset_min = r->forward_offset_max = NAN;
+    if (r->forward) {
+        if (!(off = malloc((size_t)nn * 4 * sizeof *off))) {
+            status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory");
+            goto fail;
+        }
+        CLEF_CHECK(forward_nodes(o, nodes, off, r));
+    }
+    clef_progress("curvature", 0.3);
+    CLEF_CHECK(node_table(o, samples, nodes, off, table));
     clef_progress("curvature", 0.8);
     int reachable = 0;
     CLEF_CHECK(accumulate(o, nodes, table, r->omega_k, r->posterior, &r->nsamples_valid, &reachable));
     clef_progress("curvature", 1.0);
     CLEF_CHECK(reference(o, r));
+    r->l1_flat_forward = r->l1_flat + r->forward_offset;
     double top = 0;
     for (int k = 0; k < ng; k++)
         top = fmax(top, r->posterior[k]);
@@ -412,6 +580,7 @@ int clef_geometry_infer(const clef_geometry_opts *o, clef_geometry_result **out)
     free(samples);
     free(nodes);
     free(table);
+    free(off);
     *out = r;
     return CLEF_OK;
 fail:
@@ -419,6 +588,7 @@ fail:
     free(samples);
     free(nodes);
     free(table);
+    free(off);
     clef_geometry_result_free(r);
     return status;
 }

@@ -1,11 +1,31 @@
-/* First acoustic peak: a generalised least-squares fit of a peaked model to
- * the band powers around the highest one in a window (docs/peak.md).
+/* First acoustic peak: a local model of ln D fitted through the band-power
+ * window functions (include/clef/peak.h, docs/peak.md).
  *
- * The practice of fitting a parabola (or a Gaussian) in l to the bins within
- * about 60-80 multipoles of the highest bin is common practice, used e.g. by
- * Page et al. 2003 (ApJS 148, 233) for WMAP's first peak.  Errors come from
- * the parameter covariance (X^T C^-1 X)^-1 of the fit, propagated to the
- * peak position and height to first order (delta method). */
+ * Why this model.  Fitting a parabola (or a Gaussian) to the bins around
+ * the highest one is common practice (Page et al. 2003, ApJS 148, 233),
+ * but the acoustic peak is not symmetric: the cubic term of its shape,
+ * read through a fit window that is not centred on the peak and bins that
+ * are averages over 10-50 multipoles, moves the vertex by 1-6 multipoles,
+ * depending on the bins and the window (docs/peak.md has the figures).  A
+ * local polynomial with free terms up to the cubic removes the asymmetry
+ * bias (Fan & Gijbels 1996, Local Polynomial Modelling and Its
+ * Applications, section 3.2: the bias of a degree-p fit comes from the
+ * degree p+1 and p+2 terms); in ln D a Gaussian peak is exactly a
+ * parabola, so the cubic in ln D is the Gaussian with a skewness term.
+ * The remaining terms (degree 4..7) are what a wider window or wider bins
+ * make the fit depend on; they are fitted too, under independent Gaussian
+ * priors with the variances of the Taylor coefficients of a squared-
+ * exponential Gaussian process of rms s and length the peak's Gaussian
+ * width w (Rasmussen & Williams 2006, eq. 4.3; the k-th derivative of the
+ * process at a point has variance s^2 (2k)! / (2^k k! w^(2k))), so the
+ * quoted error includes them instead of being biased by them.  Each bin's
+ * prediction is the model evaluated at every multipole and summed with the
+ * bin's window, so the bin width and the bins' placement enter exactly.
+ *
+ * Fit: Levenberg-Marquardt (Marquardt 1963, SIAM J. Appl. Math. 11, 431)
+ * on residuals whitened by the Cholesky factor of the band-power
+ * covariance, with the prior as extra residuals (a maximum a posteriori
+ * fit); errors by first-order propagation of the inverse Hessian. */
 #define _POSIX_C_SOURCE 200809L
 #include "clef/peak.h"
 
@@ -19,257 +39,244 @@
 
 #include "core_impl.h"
 
-/* Levenberg-Marquardt limits for the Gaussian model (Marquardt 1963, SIAM
- * J. Appl. Math. 11, 431): iteration cap, step tolerance relative to the
- * parameters, and the damping at which no step can lower chi^2 any more. */
-/* At most this many re-centring passes of the fit window. */
-#define CLEF_PEAK_RECENTER 3
-#define LM_MAX_ITER 500
-#define LM_STEP_TOL 1e-12
+#define NP (CLEF_PEAK_DEGREE + 1)
+#define NFREE 4            /* c0..c3 carry no prior */
+#define MAX_PASSES 8       /* re-centring passes of the fit window */
+#define LM_MAX_ITER 300
+#define LM_STEP_TOL 1e-11
 #define LM_LAMBDA_MAX 1e16
+#define NORMAL_RCOND_MIN 1e-13
+#define SCAN_POINTS 400    /* grid for the maximum of the fitted ln D before Newton */
 
 void clef_peak_opts_default(clef_peak_opts *o)
 {
+    memset(o, 0, sizeof *o);
     o->l_min = 100;
     o->l_max = 400;
-    o->model = CLEF_PEAK_GAUSSIAN;
-    o->half_width = 60;
+    o->half_width = 0;
     o->curv_nsigma = 2;
+    o->shape_prior = 0;
 }
 
-/* The bins of one fit, in scaled multipole x = (l - l0) / s so the normal
- * matrix stays well conditioned, and the Cholesky factor L of their
- * covariance (C = L L^T, row-major, lower). */
-typedef struct fit_data {
-    int n;
-    double l0, s;
-    double *x, *y, *chol;
-} fit_data;
-
-/* Solve L Z = V in place for `ncols` columns: whitening by the covariance. */
-static int whiten(const fit_data *fd, double *v, int ncols)
+static double shape_prior_of(const clef_peak_opts *o)
 {
-    const lapack_int info = LAPACKE_dtrtrs(LAPACK_ROW_MAJOR, 'L', 'N', 'N', fd->n, ncols,
-                                           fd->chol, fd->n, v, ncols);
+    return o->shape_prior > 0 ? o->shape_prior : CLEF_PEAK_SHAPE_PRIOR;
+}
+
+double clef_peak_half_width(const clef_bandpowers *bp, const clef_peak_opts *o)
+{
+    if (o->half_width > 0)
+        return o->half_width;
+    double widest = 1;
+    for (int b = 0; bp && b < bp->nbins; b++)
+        if (bp->l_eff[b] >= o->l_min && bp->l_eff[b] <= o->l_max &&
+            bp->l_hi[b] - bp->l_lo[b] + 1 > widest)
+            widest = bp->l_hi[b] - bp->l_lo[b] + 1;
+    const double hw = CLEF_PEAK_HALF_WIDTH_BINS * widest;
+    return hw > CLEF_PEAK_HALF_WIDTH_MIN ? hw : CLEF_PEAK_HALF_WIDTH_MIN;
+}
+
+/* Value and derivatives of the polynomial c in d. */
+static double poly(const double *c, double d, int der)
+{
+    double s = 0;
+    for (int k = CLEF_PEAK_DEGREE; k >= der; k--) {
+        double ck = c[k];
+        for (int j = 0; j < der; j++)
+            ck *= k - j;
+        s = s * d + ck;
+    }
+    return s;
+}
+
+/* One fit: bins b0..b1 (n of them) around centre lc, model on the
+ * multipoles L0..L1. */
+typedef struct fit {
+    int n, b0, L0, L1, nl;
+    double lc, hw;
+    double *wm;    /* n x nl window rows */
+    double *dpow;  /* nl x NP powers of d */
+    double *chol;  /* n x n Cholesky factor of the covariance block */
+    double *y;     /* n band powers */
+    double prec[NP]; /* prior precision of each term (0 for the free ones) */
+} fit;
+
+static void fit_free(fit *f)
+{
+    free(f->wm);
+    free(f->dpow);
+    free(f->chol);
+    free(f->y);
+}
+
+static int whiten(const fit *f, double *v, int ncols)
+{
+    const lapack_int info = LAPACKE_dtrtrs(LAPACK_ROW_MAJOR, 'L', 'N', 'N', f->n, ncols, f->chol,
+                                           f->n, v, ncols);
     if (info != 0)
         CLEF_FAIL(CLEF_ENUMERIC, "peak fit: triangular solve failed (LAPACK dtrtrs info %d)",
                   (int)info);
     return CLEF_OK;
 }
 
-/* Given whitened design W (n x np) and data z: the normal matrix A = W^T W,
- * the solution p = A^-1 W^T z and the parameter covariance A^-1 in `pcov`.
- * A is first scaled to unit diagonal (a correlation-like matrix, so the
- * test does not depend on the parameters' units); when its reciprocal
- * condition number (LAPACK dpocon) is below NORMAL_RCOND_MIN the parameters
- * are not constrained by the data and CLEF_ENUMERIC is returned. */
-#define NORMAL_RCOND_MIN 1e-12
-
-static int normal_solve(const double *w, const double *z, int n, int np, double *p, double *pcov)
+/* Whitened residuals r (n), whitened Jacobian jac (n x NP, may be NULL) and
+ * the objective chi^2 + prior at c; *chi2_data is the band-power part. */
+static int evaluate(const fit *f, const double *c, double *r, double *jac, double *obj,
+                    double *chi2_data, double *scratch)
 {
-    double scale[4];
-    for (int a = 0; a < np; a++) {
-        p[a] = 0;
-        for (int i = 0; i < n; i++)
-            p[a] += w[i * np + a] * z[i];
-        for (int b = 0; b < np; b++) {
-            double sum = 0;
-            for (int i = 0; i < n; i++)
-                sum += w[i * np + a] * w[i * np + b];
-            pcov[a * np + b] = sum;
+    double *m = scratch; /* nl model values */
+    for (int j = 0; j < f->nl; j++) {
+        const double *dp = f->dpow + (size_t)j * NP;
+        double s = 0;
+        for (int k = 0; k < NP; k++)
+            s += c[k] * dp[k];
+        m[j] = s < 700 ? exp(s) : INFINITY;
+    }
+    for (int i = 0; i < f->n; i++) {
+        const double *w = f->wm + (size_t)i * f->nl;
+        double pred = 0, jk[NP] = {0};
+        for (int j = 0; j < f->nl; j++) {
+            const double v = w[j] * m[j];
+            pred += v;
+            if (jac) {
+                const double *dp = f->dpow + (size_t)j * NP;
+                for (int k = 0; k < NP; k++)
+                    jk[k] += v * dp[k];
+            }
+        }
+        r[i] = f->y[i] - pred;
+        if (jac)
+            memcpy(jac + (size_t)i * NP, jk, sizeof jk);
+    }
+    CLEF_TRY(whiten(f, r, 1));
+    if (jac)
+        CLEF_TRY(whiten(f, jac, NP));
+    double s = 0;
+    for (int i = 0; i < f->n; i++)
+        s += r[i] * r[i];
+    *chi2_data = isfinite(s) ? s : INFINITY;
+    for (int k = 0; k < NP; k++)
+        s += f->prec[k] * c[k] * c[k];
+    *obj = isfinite(s) ? s : INFINITY;
+    return CLEF_OK;
+}
+
+/* A = J^T J + diag(prec), g = J^T r - prec c. */
+static void normal_eq(const fit *f, const double *jac, const double *r, const double *c,
+                      double *a, double *g)
+{
+    for (int p = 0; p < NP; p++) {
+        double sg = 0;
+        for (int i = 0; i < f->n; i++)
+            sg += jac[(size_t)i * NP + p] * r[i];
+        g[p] = sg - f->prec[p] * c[p];
+        for (int q = 0; q <= p; q++) {
+            double s = 0;
+            for (int i = 0; i < f->n; i++)
+                s += jac[(size_t)i * NP + p] * jac[(size_t)i * NP + q];
+            a[p * NP + q] = a[q * NP + p] = s + (p == q ? f->prec[p] : 0);
         }
     }
-    for (int a = 0; a < np; a++) {
-        if (!(pcov[a * np + a] > 0))
-            CLEF_FAIL(CLEF_ENUMERIC, "peak fit: parameter %d does not enter the model", a);
-        scale[a] = 1 / sqrt(pcov[a * np + a]);
+}
+
+/* Invert the symmetric positive definite m x m matrix a (scaled to unit
+ * diagonal first; CLEF_ENUMERIC when its reciprocal condition is below
+ * NORMAL_RCOND_MIN: the terms are not constrained). */
+static int spd_inverse(const double *a, int m, double *inv)
+{
+    double scale[NP];
+    for (int p = 0; p < m; p++) {
+        if (!(a[p * m + p] > 0))
+            CLEF_FAIL(CLEF_ENUMERIC, "peak fit: term %d does not enter the model", p);
+        scale[p] = 1 / sqrt(a[p * m + p]);
     }
-    for (int a = 0; a < np; a++) {
-        p[a] *= scale[a];
-        for (int b = 0; b < np; b++)
-            pcov[a * np + b] *= scale[a] * scale[b];
-    }
-    const double anorm = LAPACKE_dlansy(LAPACK_ROW_MAJOR, '1', 'L', np, pcov, np);
+    for (int p = 0; p < m; p++)
+        for (int q = 0; q < m; q++)
+            inv[p * m + q] = a[p * m + q] * scale[p] * scale[q];
+    const double anorm = LAPACKE_dlansy(LAPACK_ROW_MAJOR, '1', 'L', m, inv, m);
     double rcond = 0;
-    lapack_int info = LAPACKE_dpotrf(LAPACK_ROW_MAJOR, 'L', np, pcov, np);
+    lapack_int info = LAPACKE_dpotrf(LAPACK_ROW_MAJOR, 'L', m, inv, m);
     if (info == 0)
-        info = LAPACKE_dpocon(LAPACK_ROW_MAJOR, 'L', np, pcov, np, anorm, &rcond);
+        info = LAPACKE_dpocon(LAPACK_ROW_MAJOR, 'L', m, inv, m, anorm, &rcond);
     if (info == 0 && !(rcond >= NORMAL_RCOND_MIN))
-        CLEF_FAIL(CLEF_ENUMERIC, "peak fit: the parameters are not constrained (normal matrix "
-                  "reciprocal condition %.3g)", rcond);
+        CLEF_FAIL(CLEF_ENUMERIC, "peak fit: the terms are not constrained (reciprocal condition "
+                  "%.3g)", rcond);
     if (info == 0)
-        info = LAPACKE_dpotrs(LAPACK_ROW_MAJOR, 'L', np, 1, pcov, np, p, 1);
-    if (info == 0)
-        info = LAPACKE_dpotri(LAPACK_ROW_MAJOR, 'L', np, pcov, np);
+        info = LAPACKE_dpotri(LAPACK_ROW_MAJOR, 'L', m, inv, m);
     if (info != 0)
         CLEF_FAIL(CLEF_ENUMERIC, "peak fit: normal matrix not positive definite (LAPACK info %d)",
                   (int)info);
-    for (int a = 0; a < np; a++) {
-        p[a] *= scale[a];
-        for (int b = 0; b <= a; b++)
-            pcov[a * np + b] = pcov[b * np + a] = pcov[a * np + b] * scale[a] * scale[b];
-    }
+    for (int p = 0; p < m; p++)
+        for (int q = 0; q <= p; q++)
+            inv[p * m + q] = inv[q * m + p] = inv[p * m + q] * scale[p] * scale[q];
     return CLEF_OK;
 }
 
-/* sqrt(g^T S g) and g^T S h for a symmetric np x np matrix S. */
-static double quad(const double *g, const double *sm, const double *h, int np)
+/* Levenberg-Marquardt from c; on return cov = inverse Hessian, afree the
+ * free block of the Hessian, *converged whether it stopped on the step
+ * tolerance (or on a minimum to machine precision). */
+static int lm(const fit *f, double *c, double *cov, double *afree, double *chi2_data,
+              int *converged)
 {
-    double sum = 0;
-    for (int a = 0; a < np; a++)
-        for (int b = 0; b < np; b++)
-            sum += g[a] * sm[a * np + b] * h[b];
-    return sum;
-}
-
-/* Parabola D = a + b x + c x^2 by GLS (Aitken 1935; e.g. Press et al.,
- * Numerical Recipes 3rd ed., section 15.4, with C^-1 weights).  p = (a, b,
- * c), pcov their covariance, chi2 the whitened residual norm. */
-static int fit_parabola(const fit_data *fd, double *p, double *pcov, double *chi2)
-{
-    const int n = fd->n;
-    double *w = malloc((size_t)n * 3 * sizeof *w);
-    double *z = malloc((size_t)n * sizeof *z);
-    int status = CLEF_OK;
-    if (!w || !z) {
-        status = clef_fail(CLEF_ENOMEM, "peak fit: out of memory for %d bins", n);
-        goto fail;
-    }
-    for (int i = 0; i < n; i++) {
-        w[i * 3 + 0] = 1;
-        w[i * 3 + 1] = fd->x[i];
-        w[i * 3 + 2] = fd->x[i] * fd->x[i];
-        z[i] = fd->y[i];
-    }
-    CLEF_CHECK(whiten(fd, w, 3));
-    CLEF_CHECK(whiten(fd, z, 1));
-    CLEF_CHECK(normal_solve(w, z, n, 3, p, pcov));
-    *chi2 = 0;
-    for (int i = 0; i < n; i++) {
-        const double r = z[i] - (w[i * 3] * p[0] + w[i * 3 + 1] * p[1] + w[i * 3 + 2] * p[2]);
-        *chi2 += r * r;
-    }
-fail:
-    free(w);
-    free(z);
-    return status;
-}
-
-/* The Gaussian D = D0 + A exp(-d^2 / 2 w^2), d = x - xp, rewritten with
- * the peak height H = D0 + A, the curvature at the peak kappa = A / w^2 and
- * q = 1 / w^2:
- *     D = H - kappa f(d, q),   f = (1 - exp(-q d^2 / 2)) / q = (d^2 / 2) g(t),
- *     t = q d^2 / 2,           g(t) = (1 - e^-t) / t.
- * f is analytic in q through 0, where it is the parabola H - kappa d^2 / 2:
- * the family contains the parabola as its limit w -> infinity, so the fit
- * has a minimum even when the data are no more peaked than a parabola (with
- * (D0, A, w) it would run off to w -> infinity there), and l_peak = xp and
- * D_peak = H are fitted parameters with their errors read off directly. */
-static double gauss_g(double t) { return t == 0 ? 1 : -expm1(-t) / t; }
-
-/* k(t) = (e^-t - g(t)) / t = sum_{n>=1} (-1)^n n t^(n-1) / (n+1)!, so that
- * df/dq = (d^2 / 2)^2 k(t); the series avoids the cancellation at small t. */
-static double gauss_k(double t)
-{
-    if (fabs(t) < 1e-3)
-        return -0.5 + t * (1.0 / 3 + t * (-1.0 / 8 + t / 30));
-    return (exp(-t) - gauss_g(t)) / t;
-}
-
-/* Whitened residuals r = L^-1 (y - D) and Jacobian of D (whitened) at
- * p = (H, kappa, xp, q). */
-static int gauss_eval(const fit_data *fd, const double *p, double *r, double *jac, double *chi2)
-{
-    for (int i = 0; i < fd->n; i++) {
-        const double d = fd->x[i] - p[2], h = 0.5 * d * d, t = p[3] * h;
-        r[i] = fd->y[i] - (p[0] - p[1] * h * gauss_g(t));
-        if (jac) {
-            jac[i * 4 + 0] = 1;
-            jac[i * 4 + 1] = -h * gauss_g(t);
-            jac[i * 4 + 2] = p[1] * d * exp(-t);
-            jac[i * 4 + 3] = -p[1] * h * h * gauss_k(t);
-        }
-    }
-    CLEF_TRY(whiten(fd, r, 1));
-    if (jac)
-        CLEF_TRY(whiten(fd, jac, 4));
-    *chi2 = 0;
-    for (int i = 0; i < fd->n; i++)
-        *chi2 += r[i] * r[i];
-    if (!isfinite(*chi2))
-        *chi2 = INFINITY;
-    return CLEF_OK;
-}
-
-/* Levenberg-Marquardt from the start p: each step solves
- * (J^T J + lambda diag(J^T J)) dp = J^T r in whitened quantities (Marquardt
- * 1963).  On return pcov = (J^T J)^-1 at the minimum and *converged says
- * whether the step tolerance was met. */
-static int fit_gaussian(const fit_data *fd, double *p, double *pcov, double *chi2, int *converged)
-{
-    const int n = fd->n;
-    double *r = malloc((size_t)n * sizeof *r), *jac = malloc((size_t)n * 4 * sizeof *jac);
-    double *rt = malloc((size_t)n * sizeof *rt);
+    const int n = f->n;
+    double *r = malloc((size_t)n * sizeof *r), *rt = malloc((size_t)n * sizeof *rt);
+    double *jac = malloc((size_t)n * NP * sizeof *jac);
+    double *scratch = malloc((size_t)f->nl * sizeof *scratch);
     int status = CLEF_OK;
     *converged = 0;
-    if (!r || !jac || !rt) {
+    if (!r || !rt || !jac || !scratch) {
         status = clef_fail(CLEF_ENOMEM, "peak fit: out of memory for %d bins", n);
         goto fail;
     }
-    CLEF_CHECK(gauss_eval(fd, p, r, jac, chi2));
-    double lambda = 1e-3;
+    double obj, a[NP * NP], g[NP], lambda = 1e-3;
+    CLEF_CHECK(evaluate(f, c, r, jac, &obj, chi2_data, scratch));
+    if (!isfinite(obj)) {
+        status = clef_fail(CLEF_ENUMERIC, "peak fit: the starting model overflows");
+        goto fail;
+    }
     for (int it = 0; it < LM_MAX_ITER && !*converged; it++) {
-        double jtj[16], g[4], dp[4];
-        for (int a = 0; a < 4; a++) {
-            g[a] = 0;
-            for (int i = 0; i < n; i++)
-                g[a] += jac[i * 4 + a] * r[i];
-            for (int b = 0; b < 4; b++) {
-                double sum = 0;
-                for (int i = 0; i < n; i++)
-                    sum += jac[i * 4 + a] * jac[i * 4 + b];
-                jtj[a * 4 + b] = sum;
-            }
-        }
+        normal_eq(f, jac, r, c, a, g);
         for (;;) {
-            double m[16];
-            memcpy(m, jtj, sizeof m);
-            for (int a = 0; a < 4; a++)
-                m[a * 4 + a] *= 1 + lambda;
-            memcpy(dp, g, sizeof dp);
-            lapack_int info = LAPACKE_dpotrf(LAPACK_ROW_MAJOR, 'L', 4, m, 4);
+            double m[NP * NP], dc[NP], trial[NP], obj_t, chi2_t;
+            memcpy(m, a, sizeof m);
+            for (int p = 0; p < NP; p++)
+                m[p * NP + p] *= 1 + lambda;
+            memcpy(dc, g, sizeof dc);
+            lapack_int info = LAPACKE_dpotrf(LAPACK_ROW_MAJOR, 'L', NP, m, NP);
             if (info == 0)
-                info = LAPACKE_dpotrs(LAPACK_ROW_MAJOR, 'L', 4, 1, m, 4, dp, 1);
-            double trial[4], chi2_trial = INFINITY;
-            for (int a = 0; a < 4; a++)
-                trial[a] = p[a] + dp[a];
+                info = LAPACKE_dpotrs(LAPACK_ROW_MAJOR, 'L', NP, 1, m, NP, dc, 1);
+            obj_t = INFINITY;
+            for (int p = 0; p < NP; p++)
+                trial[p] = c[p] + dc[p];
             if (info == 0)
-                CLEF_CHECK(gauss_eval(fd, trial, rt, NULL, &chi2_trial));
-            if (chi2_trial <= *chi2) {
+                CLEF_CHECK(evaluate(f, trial, rt, NULL, &obj_t, &chi2_t, scratch));
+            if (obj_t <= obj) {
                 int small = 1;
-                for (int a = 0; a < 4; a++)
-                    small &= fabs(dp[a]) <= LM_STEP_TOL * (1 + fabs(p[a]));
-                memcpy(p, trial, sizeof trial);
-                CLEF_CHECK(gauss_eval(fd, p, r, jac, chi2));
+                for (int p = 0; p < NP; p++)
+                    small &= fabs(dc[p]) <= LM_STEP_TOL * (1 + fabs(c[p]));
+                memcpy(c, trial, sizeof trial);
+                CLEF_CHECK(evaluate(f, c, r, jac, &obj, chi2_data, scratch));
                 lambda = fmax(lambda / 10, 1e-12);
                 *converged = small;
                 break;
             }
             lambda *= 10;
             if (lambda > LM_LAMBDA_MAX) {
-                /* No damped step lowers chi^2: a minimum to machine precision. */
-                *converged = 1;
+                *converged = 1; /* no damped step lowers the objective */
                 break;
             }
         }
     }
-    double z[4];
-    CLEF_CHECK(gauss_eval(fd, p, r, jac, chi2));
-    CLEF_CHECK(normal_solve(jac, r, n, 4, z, pcov));
+    normal_eq(f, jac, r, c, a, g);
+    for (int p = 0; p < NFREE; p++)
+        for (int q = 0; q < NFREE; q++)
+            afree[p * NFREE + q] = a[p * NP + q];
+    CLEF_CHECK(spd_inverse(a, NP, cov));
 fail:
     free(r);
-    free(jac);
     free(rt);
+    free(jac);
+    free(scratch);
     return status;
 }
 
@@ -284,28 +291,33 @@ static void not_found(clef_peak_result *res, const char *fmt, ...)
     clef_log(CLEF_LOG_INFO, "first peak: none found: %s", res->reason);
 }
 
-static void result_init(clef_peak_result *r, int model)
+static void result_init(clef_peak_result *r)
 {
     memset(r, 0, sizeof *r);
-    r->model = model;
-    r->l_peak = r->l_peak_err = r->d_peak = r->d_peak_err = r->corr = NAN;
+    r->l_peak = r->l_peak_err = r->l_peak_err_stat = r->l_peak_err_shape = NAN;
+    r->d_peak = r->d_peak_err = r->corr = r->width = NAN;
     r->theta_deg = r->theta_deg_err = r->chi2 = r->p_value = r->curv_signif = NAN;
+    r->half_width = r->shape_prior = NAN;
     r->bin_first = r->bin_last = -1;
 }
 
-/* Check the input and find the window [*w0, *w1] (table indices). */
+/* Check the input and find the search window [*w0, *w1] (table indices). */
 static int check_input(const clef_bandpowers *bp, const clef_peak_opts *o, int *w0, int *w1)
 {
-    if (!bp || bp->nbins < 1 || !bp->l_eff || !bp->dl || !bp->dl_err)
+    if (!bp || bp->nbins < 1 || !bp->l_eff || !bp->dl || !bp->dl_err || !bp->l_lo || !bp->l_hi)
         CLEF_FAIL(CLEF_EINVAL, "peak: empty band-power table");
     if (!(o->l_min < o->l_max) || !isfinite(o->l_min) || !isfinite(o->l_max))
         CLEF_FAIL(CLEF_EINVAL, "peak: window [%g, %g] is empty", o->l_min, o->l_max);
-    if (!(o->half_width > 0) || !isfinite(o->half_width))
-        CLEF_FAIL(CLEF_EINVAL, "peak: half width %g must be positive", o->half_width);
+    if (!(o->half_width >= 0) || !isfinite(o->half_width))
+        CLEF_FAIL(CLEF_EINVAL, "peak: half width %g must be positive (or 0: automatic)",
+                  o->half_width);
     if (!(o->curv_nsigma >= 0) || !isfinite(o->curv_nsigma))
         CLEF_FAIL(CLEF_EINVAL, "peak: curvature threshold %g sigma must be >= 0", o->curv_nsigma);
-    if (o->model != CLEF_PEAK_PARABOLA && o->model != CLEF_PEAK_GAUSSIAN)
-        CLEF_FAIL(CLEF_EINVAL, "peak: unknown model %d", o->model);
+    if (!(o->shape_prior >= 0) || !isfinite(o->shape_prior))
+        CLEF_FAIL(CLEF_EINVAL, "peak: shape prior %g must be positive (or 0: default)",
+                  o->shape_prior);
+    if (bp->win && bp->win_lmax < 0)
+        CLEF_FAIL(CLEF_EINVAL, "peak: the table's windows have lmax %d", bp->win_lmax);
     *w0 = -1;
     *w1 = -2;
     for (int b = 0; b < bp->nbins; b++) {
@@ -325,175 +337,271 @@ static int check_input(const clef_bandpowers *bp, const clef_peak_opts *o, int *
             CLEF_FAIL(CLEF_EINVAL, "peak: bin %d (l_eff %g) has a non-positive or unknown error "
                       "(%s %g); the fit needs errors", b, bp->l_eff[b],
                       bp->cov ? "covariance diagonal" : "D error", bp->cov ? var : bp->dl_err[b]);
+        if (bp->win && bp->l_hi[b] > bp->win_lmax)
+            CLEF_FAIL(CLEF_EINVAL, "peak: the table's window functions stop at l = %d, below the "
+                      "end of bin %d (l = %d)", bp->win_lmax, b, bp->l_hi[b]);
     }
     if (*w0 < 0)
         CLEF_FAIL(CLEF_EINVAL, "peak: no bin has l_eff in the window [%g, %g]", o->l_min, o->l_max);
     return CLEF_OK;
 }
 
-/* Fill fd with bins [b0, b1], centred on l0, scaled by s, and factor
- * their covariance (full block if the table has one, else diagonal). */
-static int fit_data_make(fit_data *fd, const clef_bandpowers *bp, int b0, int b1, double l0,
-                         double s)
+static int windows_kind(const clef_bandpowers *bp, int b0, int b1)
 {
-    const int n = b1 - b0 + 1;
-    fd->n = n;
-    fd->l0 = l0;
-    fd->s = s;
-    fd->x = malloc((size_t)n * sizeof *fd->x);
-    fd->y = malloc((size_t)n * sizeof *fd->y);
-    fd->chol = calloc((size_t)n * (size_t)n, sizeof *fd->chol);
-    if (!fd->x || !fd->y || !fd->chol)
-        CLEF_FAIL(CLEF_ENOMEM, "peak fit: out of memory for %d bins", n);
-    const size_t nb = (size_t)bp->nbins;
-    for (int i = 0; i < n; i++) {
-        fd->x[i] = (bp->l_eff[b0 + i] - l0) / s;
-        fd->y[i] = bp->dl[b0 + i];
-        for (int j = 0; j <= i; j++)
-            fd->chol[i * n + j] = bp->cov ? bp->cov[(size_t)(b0 + i) * nb + (size_t)(b0 + j)]
-                                 : (i == j ? bp->dl_err[b0 + i] * bp->dl_err[b0 + i] : 0);
+    if (bp->win)
+        return CLEF_PEAK_WIN_TABLE;
+    for (int b = b0; b <= b1; b++)
+        if (bp->l_hi[b] > bp->l_lo[b])
+            return CLEF_PEAK_WIN_TOPHAT;
+    return CLEF_PEAK_WIN_POINT;
+}
+
+/* Fill the fit for bins b0..b1 around lc: windows, powers of d, covariance. */
+static int fit_make(fit *f, const clef_bandpowers *bp, int b0, int b1, double lc, double hw)
+{
+    memset(f, 0, sizeof *f);
+    const int n = b1 - b0 + 1, kind = windows_kind(bp, b0, b1);
+    f->n = n;
+    f->b0 = b0;
+    f->lc = lc;
+    f->hw = hw;
+    if (kind == CLEF_PEAK_WIN_POINT) {
+        f->L0 = 0;
+        f->L1 = n - 1; /* one "multipole" per bin, at its l_eff */
+    } else {
+        f->L0 = bp->l_lo[b0];
+        f->L1 = bp->l_hi[b1];
+        for (int b = b0; b <= b1; b++) {
+            f->L0 = bp->l_lo[b] < f->L0 ? bp->l_lo[b] : f->L0;
+            f->L1 = bp->l_hi[b] > f->L1 ? bp->l_hi[b] : f->L1;
+        }
     }
-    const lapack_int info = LAPACKE_dpotrf(LAPACK_ROW_MAJOR, 'L', n, fd->chol, n);
+    f->nl = f->L1 - f->L0 + 1;
+    f->wm = calloc((size_t)n * (size_t)f->nl, sizeof *f->wm);
+    f->dpow = malloc((size_t)f->nl * NP * sizeof *f->dpow);
+    f->chol = calloc((size_t)n * (size_t)n, sizeof *f->chol);
+    f->y = malloc((size_t)n * sizeof *f->y);
+    if (!f->wm || !f->dpow || !f->chol || !f->y)
+        CLEF_FAIL(CLEF_ENOMEM, "peak fit: out of memory for %d bins over %d multipoles", n, f->nl);
+    for (int j = 0; j < f->nl; j++) {
+        const double l = kind == CLEF_PEAK_WIN_POINT ? bp->l_eff[b0 + j] : f->L0 + j;
+        const double d = (l - lc) / hw;
+        double p = 1;
+        for (int k = 0; k < NP; k++, p *= d)
+            f->dpow[(size_t)j * NP + k] = p;
+    }
+    const size_t nb = (size_t)bp->nbins, wl = (size_t)bp->win_lmax + 1;
+    for (int i = 0; i < n; i++) {
+        const int b = b0 + i;
+        double *w = f->wm + (size_t)i * f->nl;
+        if (kind == CLEF_PEAK_WIN_TABLE) {
+            /* Multipoles outside the fitted bins are left out: the windows of
+             * decoupled band powers sum to zero over every other bin (K^-1 P M
+             * T Q = 1), so a D_l that is flat across a bin contributes nothing
+             * there, and the model is only meant to hold near the peak. */
+            for (int l = f->L0; l <= f->L1; l++)
+                w[l - f->L0] = bp->win[(size_t)b * wl + (size_t)l];
+        } else if (kind == CLEF_PEAK_WIN_TOPHAT) {
+            const int nm = bp->l_hi[b] - bp->l_lo[b] + 1;
+            for (int l = bp->l_lo[b]; l <= bp->l_hi[b]; l++)
+                w[l - f->L0] = 1.0 / nm;
+        } else {
+            w[i] = 1;
+        }
+        f->y[i] = bp->dl[b];
+        for (int j = 0; j <= i; j++)
+            f->chol[i * n + j] = bp->cov ? bp->cov[(size_t)b * nb + (size_t)(b0 + j)]
+                                 : (i == j ? bp->dl_err[b] * bp->dl_err[b] : 0);
+    }
+    const lapack_int info = LAPACKE_dpotrf(LAPACK_ROW_MAJOR, 'L', n, f->chol, n);
     if (info != 0)
         CLEF_FAIL(CLEF_EINVAL, "peak: the covariance of bins %d-%d is not positive definite "
                   "(LAPACK dpotrf info %d)", b0, b1, (int)info);
     return CLEF_OK;
 }
 
-/* Peak of the parabola p = (a, b, c) in x: x_p = -b / 2c, D_p = a - b^2 / 4c,
- * with gradients for the delta method. */
-static void parabola_peak(const double *p, double *xp, double *dp, double *gx, double *gd)
+/* Starting terms: weighted least squares of ln D on 1, d, d^2 at l_eff with
+ * weights (D / sigma)^2 (the errors of ln D), over the bins with D > 0.
+ * Returns 0 when fewer than three bins are positive. */
+static int start_terms(const fit *f, const clef_bandpowers *bp, double *c)
 {
-    *xp = -p[1] / (2 * p[2]);
-    *dp = p[0] - p[1] * p[1] / (4 * p[2]);
-    gx[0] = 0;
-    gx[1] = -1 / (2 * p[2]);
-    gx[2] = p[1] / (2 * p[2] * p[2]);
-    gd[0] = 1;
-    gd[1] = -p[1] / (2 * p[2]);
-    gd[2] = p[1] * p[1] / (4 * p[2] * p[2]);
+    double a[9] = {0}, v[3] = {0};
+    int npos = 0;
+    for (int i = 0; i < f->n; i++) {
+        const int b = f->b0 + i;
+        if (!(bp->dl[b] > 0))
+            continue;
+        npos++;
+        const double d = (bp->l_eff[b] - f->lc) / f->hw;
+        const double ph[3] = {1, d, d * d}, s = bp->dl[b] / bp->dl_err[b];
+        const double wgt = s * s, ly = log(bp->dl[b]);
+        for (int p = 0; p < 3; p++) {
+            v[p] += wgt * ph[p] * ly;
+            for (int q = 0; q < 3; q++)
+                a[p * 3 + q] += wgt * ph[p] * ph[q];
+        }
+    }
+    memset(c, 0, NP * sizeof *c);
+    if (npos < 3 || LAPACKE_dposv(LAPACK_ROW_MAJOR, 'L', 3, 1, a, 3, v, 1) != 0)
+        return 0;
+    memcpy(c, v, sizeof v);
+    return 1;
 }
 
-/* Fit the model to the bins within half_width of bin `top` (inside the
- * window w0..w1) and fill r. */
-static int fit_at(const clef_bandpowers *bp, const clef_peak_opts *o, int top, int w0, int w1,
-                  clef_peak_result *r)
+/* Maximum of the fitted ln D over [xa, xb] (units of d): grid, then Newton. */
+static double poly_max(const double *c, double xa, double xb)
 {
-    result_init(r, o->model);
-    const double ltop = bp->l_eff[top];
-    const double hw = o->half_width;
-    int b0 = top, b1 = top;
-    while (b0 > w0 && ltop - bp->l_eff[b0 - 1] <= hw)
-        b0--;
-    while (b1 < w1 && bp->l_eff[b1 + 1] - ltop <= hw)
-        b1++;
+    double bx = xa, bv = -INFINITY;
+    for (int k = 0; k <= SCAN_POINTS; k++) {
+        const double x = xa + (xb - xa) * k / SCAN_POINTS, v = poly(c, x, 0);
+        if (v > bv) {
+            bv = v;
+            bx = x;
+        }
+    }
+    for (int it = 0; it < 50; it++) {
+        const double d2 = poly(c, bx, 2);
+        if (!(d2 < 0))
+            break;
+        const double step = poly(c, bx, 1) / d2;
+        bx -= step;
+        if (fabs(step) < 1e-14)
+            break;
+    }
+    return bx;
+}
+
+/* Fit the bins within hw of lc and fill r (found or a reason). */
+static int fit_at(const clef_bandpowers *bp, const clef_peak_opts *o, double lc, double hw,
+                  int w0, int w1, clef_peak_result *r)
+{
+    result_init(r);
+    r->half_width = hw;
+    r->shape_prior = shape_prior_of(o);
+    int b0 = -1, b1 = -2;
+    for (int b = w0; b <= w1; b++)
+        if (fabs(bp->l_eff[b] - lc) <= hw) {
+            if (b0 < 0)
+                b0 = b;
+            b1 = b;
+        }
     r->bin_first = b0;
     r->bin_last = b1;
     r->nbins_used = b1 - b0 + 1;
-    const int need = o->model == CLEF_PEAK_GAUSSIAN ? 4 : 3;
-    if (r->nbins_used < need) {
-        not_found(r, "too few bins: %d within %g of the highest bin (l_eff %g); the %s fit "
-                  "needs at least %d", r->nbins_used, hw, ltop,
-                  o->model == CLEF_PEAK_GAUSSIAN ? "Gaussian" : "parabola", need);
+    r->windows = windows_kind(bp, b0 < 0 ? w0 : b0, b0 < 0 ? w0 : b1);
+    if (r->nbins_used < CLEF_PEAK_MIN_BINS) {
+        not_found(r, "too few bins: %d within %g of l = %.1f; the fit needs at least %d (widen "
+                  "the half width)", r->nbins_used > 0 ? r->nbins_used : 0, hw, lc,
+                  CLEF_PEAK_MIN_BINS);
         return CLEF_OK;
     }
-
-    fit_data fd = {0};
-    double pp[3], ppcov[9], chi2 = 0;
-    int status = CLEF_OK;
-    CLEF_CHECK(fit_data_make(&fd, bp, b0, b1, ltop, hw));
-    status = fit_parabola(&fd, pp, ppcov, &chi2);
+    fit f;
+    int status = fit_make(&f, bp, b0, b1, lc, hw);
+    double c[NP], cov[NP * NP], afree[NFREE * NFREE], chi2 = 0;
+    int converged = 0;
+    if (status != CLEF_OK)
+        goto fail;
+    if (!start_terms(&f, bp, c) || !(c[2] < 0)) {
+        not_found(r, "ln D over bins %d-%d is not concave: D does not turn over there", b0, b1);
+        goto fail;
+    }
+    /* Prior of the terms of degree >= 4: the Taylor coefficients c_k =
+     * f^(k) / k! of a squared-exponential process of rms s and length w
+     * have variance s^2 (2k)! / (2^k (k!)^3 w^(2k)); w, in units of d, is
+     * the Gaussian width of the starting parabola in ln D, 1 / sqrt(-2 c2). */
+    {
+        const double wd = 1 / sqrt(-2 * c[2]), s = shape_prior_of(o);
+        double f2k = 40320, fk = 24; /* (2k)! and k! at k = 4 */
+        for (int k = 0; k < NP; k++)
+            f.prec[k] = 0;
+        for (int k = NFREE; k < NP; k++) {
+            if (k > NFREE) {
+                f2k *= (2.0 * k - 1) * (2.0 * k);
+                fk *= k;
+            }
+            const double var = s * s * f2k / (pow(2, k) * fk * fk * fk) / pow(wd, 2 * k);
+            f.prec[k] = 1 / var;
+        }
+    }
+    status = lm(&f, c, cov, afree, &chi2, &converged);
     if (status == CLEF_ENUMERIC) {
         status = CLEF_OK;
-        not_found(r, "the parabola's parameters are not constrained by bins %d-%d (%s)", b0, b1,
-                  clef_last_error());
+        not_found(r, "the fit over bins %d-%d failed (%s)", b0, b1, clef_last_error());
         goto fail;
     }
-    CLEF_CHECK(status);
-    /* The peak is only defined when the curvature is negative, and its
-     * delta-method error is only meaningful when c is well away from zero
-     * compared with its error (the vertex -b/2c has no finite variance
-     * otherwise); c / sigma_c does not depend on the scaling of x. */
-    const double c_sig = pp[2] / sqrt(ppcov[8]);
-    r->curv_signif = c_sig;
-    if (pp[2] >= 0) {
-        not_found(r, "the parabola through bins %d-%d is not concave (curvature %+.3g uK^2 per "
-                  "l^2)", b0, b1, pp[2] / (fd.s * fd.s));
+    if (status != CLEF_OK)
+        goto fail;
+    if (!converged) {
+        not_found(r, "the fit over bins %d-%d did not converge in %d iterations", b0, b1,
+                  LM_MAX_ITER);
         goto fail;
     }
-    if (c_sig > -o->curv_nsigma) {
-        not_found(r, "curvature not significant: c / sigma_c = %.2f, above -%g", c_sig,
-                  o->curv_nsigma);
+    const double xa = (bp->l_eff[b0] - lc) / hw, xb = (bp->l_eff[b1] - lc) / hw;
+    const double x = poly_max(c, xa, xb), d2 = poly(c, x, 2);
+    /* Curvature of ln D at the maximum and its error (the maximum's own
+     * shift does not enter at first order). */
+    double hk[NP], gk[NP], ek[NP], p = 1, pm1 = 0, pm2 = 0;
+    for (int k = 0; k < NP; k++) {
+        hk[k] = k >= 2 ? k * (k - 1.0) * pm2 : 0;
+        gk[k] = k >= 1 ? -k * pm1 / d2 : 0; /* d x / d c_k from P'(x) = 0 */
+        ek[k] = p;                          /* d ln D(x) / d c_k */
+        pm2 = pm1;
+        pm1 = p;
+        p *= x;
+    }
+    double var_h = 0, var_x = 0, var_e = 0, cov_xe = 0;
+    for (int a = 0; a < NP; a++)
+        for (int b = 0; b < NP; b++) {
+            var_h += hk[a] * cov[a * NP + b] * hk[b];
+            var_x += gk[a] * cov[a * NP + b] * gk[b];
+            var_e += ek[a] * cov[a * NP + b] * ek[b];
+            cov_xe += gk[a] * cov[a * NP + b] * ek[b];
+        }
+    r->curv_signif = d2 / sqrt(var_h);
+    if (!(d2 < 0)) {
+        not_found(r, "the fitted ln D over bins %d-%d is not concave at its maximum", b0, b1);
         goto fail;
     }
-    double xp, dpk, gx[4] = {0}, gd[4] = {0}, pcov[16];
-    int np = 3;
-    if (o->model == CLEF_PEAK_PARABOLA) {
-        parabola_peak(pp, &xp, &dpk, gx, gd);
-        memcpy(pcov, ppcov, sizeof ppcov);
-    } else {
-        /* Start from the parabola itself (q = 0). */
-        double pg[4], g1[3], g2[3];
-        parabola_peak(pp, &pg[2], &pg[0], g1, g2);
-        pg[1] = -2 * pp[2];
-        pg[3] = 0;
-        int converged = 0;
-        status = fit_gaussian(&fd, pg, pcov, &chi2, &converged);
-        if (status == CLEF_ENUMERIC) {
-            status = CLEF_OK;
-            not_found(r, "the Gaussian's parameters are not constrained by bins %d-%d (%s); try "
-                      "the parabola model", b0, b1, clef_last_error());
-            goto fail;
-        }
-        CLEF_CHECK(status);
-        if (!converged) {
-            not_found(r, "the Gaussian fit did not converge in %d iterations", LM_MAX_ITER);
-            goto fail;
-        }
-        /* Whether the data turn over was judged on the parabola above: the
-         * Gaussian's extra shape parameter q is strongly correlated with
-         * kappa over a +-half-width range, which widens sigma_kappa without
-         * saying anything about the turnover. */
-        if (!(pg[1] > 0)) {
-            not_found(r, "the fitted Gaussian is not peaked (curvature at the top %+.3g uK^2 per "
-                      "l^2)", -pg[1] / (fd.s * fd.s));
-            goto fail;
-        }
-        if (pg[3] > 0)
-            clef_log(CLEF_LOG_DEBUG, "first peak: Gaussian width w = %.4g", fd.s / sqrt(pg[3]));
-        else
-            clef_log(CLEF_LOG_INFO, "first peak: the Gaussian fit prefers 1/w^2 = %.3g <= 0 (sides "
-                     "falling at least as fast as a parabola's); l_peak and D_peak are still its "
-                     "vertex", pg[3] / (fd.s * fd.s));
-        np = 4;
-        xp = pg[2];
-        dpk = pg[0];
-        gx[2] = 1;
-        gd[0] = 1;
+    if (r->curv_signif > -o->curv_nsigma) {
+        not_found(r, "curvature not significant: %.2f sigma below zero, fewer than %g",
+                  -r->curv_signif, o->curv_nsigma);
+        goto fail;
     }
-    const double lp = fd.l0 + fd.s * xp;
-    if (lp < bp->l_eff[b0] || lp > bp->l_eff[b1]) {
-        not_found(r, "the fitted peak l = %.1f lies outside the fitted range [%g, %g]", lp,
+    const double lp = lc + hw * x;
+    if (!(x > xa && x < xb)) {
+        not_found(r, "the fitted maximum l = %.1f is not inside the fitted range (%g, %g)", lp,
                   bp->l_eff[b0], bp->l_eff[b1]);
         goto fail;
     }
-    const double var_x = quad(gx, pcov, gx, np), var_d = quad(gd, pcov, gd, np);
+    /* The error with the shape terms held at their fitted values: the free
+     * block of the Hessian alone. */
+    double sfree[NFREE * NFREE], var_stat = 0;
+    status = spd_inverse(afree, NFREE, sfree);
+    if (status == CLEF_ENUMERIC) {
+        status = CLEF_OK;
+        not_found(r, "the free terms over bins %d-%d are not constrained", b0, b1);
+        goto fail;
+    }
+    for (int a = 0; a < NFREE; a++)
+        for (int b = 0; b < NFREE; b++)
+            var_stat += gk[a] * sfree[a * NFREE + b] * gk[b];
+    const double dp = exp(poly(c, x, 0));
     r->found = 1;
     r->l_peak = lp;
-    r->l_peak_err = fd.s * sqrt(var_x);
-    r->d_peak = dpk;
-    r->d_peak_err = sqrt(var_d);
-    r->corr = quad(gx, pcov, gd, np) / sqrt(var_x * var_d);
-    /* theta = 180 deg / l, sigma_theta = 180 deg sigma_l / l^2 */
+    r->l_peak_err = hw * sqrt(var_x);
+    r->l_peak_err_stat = hw * sqrt(fmin(var_stat, var_x));
+    r->l_peak_err_shape = hw * sqrt(fmax(var_x - var_stat, 0));
+    r->d_peak = dp;
+    r->d_peak_err = dp * sqrt(var_e);
+    r->corr = cov_xe / sqrt(var_x * var_e);
+    r->width = hw / sqrt(-d2);
     r->theta_deg = 180.0 / lp;
     r->theta_deg_err = 180.0 * r->l_peak_err / (lp * lp);
     r->chi2 = chi2;
-    r->dof = fd.n - np;
+    r->dof = f.n - NFREE;
     r->p_value = r->dof > 0 ? gsl_cdf_chisq_Q(chi2, r->dof) : NAN;
 fail:
-    free(fd.x);
-    free(fd.y);
-    free(fd.chol);
+    fit_free(&f);
     return status;
 }
 
@@ -501,70 +609,62 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
 {
     if (!o || !r)
         CLEF_FAIL(CLEF_EINVAL, "peak: NULL options or result");
-    result_init(r, o->model);
+    result_init(r);
     int w0 = -1, w1 = -2;
     CLEF_TRY(check_input(bp, o, &w0, &w1));
+    const double hw = clef_peak_half_width(bp, o);
+    r->half_width = hw;
+    r->shape_prior = shape_prior_of(o);
+    r->windows = windows_kind(bp, w0, w1);
 
     int top = w0;
     for (int b = w0; b <= w1; b++)
         if (bp->dl[b] > bp->dl[top])
             top = b;
-    const double ltop = bp->l_eff[top];
     if (top == w0 || top == w1) {
         not_found(r, "the highest band power in the window [%g, %g] is at its %s edge (l_eff %g): "
                   "D does not turn over inside the window", o->l_min, o->l_max,
-                  top == w0 ? "lower" : "upper", ltop);
+                  top == w0 ? "lower" : "upper", bp->l_eff[top]);
         return CLEF_OK;
     }
-    /* The fit window is centred on the highest bin, then re-centred on the
-     * bin nearest the fitted peak until it stops moving (at most a few
-     * passes): a single noisy highest bin then no longer decides which
-     * bins enter the fit, which would add scatter the fit's own error does
-     * not know about. */
-    int center = top, visited[CLEF_PEAK_RECENTER + 1], nvisited = 0;
-    clef_peak_result best;
-    int have = 0;
-    for (int pass = 0; pass <= CLEF_PEAK_RECENTER; pass++) {
-        visited[nvisited++] = center;
-        CLEF_TRY(fit_at(bp, o, center, w0, w1, r));
-        if (!r->found)
+    /* The fit is centred on the highest bin, then on the fitted peak until
+     * the set of fitted bins and the centre stop changing: a single noisy
+     * highest bin then does not decide which bins enter the fit. */
+    double lc = bp->l_eff[top];
+    int last0 = -1, last1 = -1;
+    clef_peak_result res;
+    for (int pass = 0; pass < MAX_PASSES; pass++) {
+        CLEF_TRY(fit_at(bp, o, lc, hw, w0, w1, &res));
+        if (!res.found)
             break;
-        best = *r;
-        have = 1;
-        int near = w0;
-        for (int b = w0; b <= w1; b++)
-            if (fabs(bp->l_eff[b] - r->l_peak) < fabs(bp->l_eff[near] - r->l_peak))
-                near = b;
-        int seen = 0;
-        for (int i = 0; i < nvisited; i++)
-            seen |= visited[i] == near;
-        if (seen || near == w0 || near == w1)
+        const int same = res.bin_first == last0 && res.bin_last == last1;
+        const double moved = fabs(res.l_peak - lc);
+        last0 = res.bin_first;
+        last1 = res.bin_last;
+        lc = res.l_peak;
+        if (same && moved < 1e-3 * hw)
             break;
-        center = near;
     }
-    if (have)
-        *r = best;
-    else
+    *r = res;
+    if (!r->found)
         return CLEF_OK;
     if (r->curv_signif > -CLEF_PEAK_RELIABLE_SIGNIF)
         clef_log(CLEF_LOG_WARN, "first peak: the curvature is only %.1f sigma below zero; the quoted "
                  "errors may underestimate the scatter of l_peak (docs/peak.md)", -r->curv_signif);
-    clef_log(CLEF_LOG_INFO, "first peak: l = %.2f +- %.2f, D = %.1f +- %.1f uK^2 (%s, %d bins)",
-             r->l_peak, r->l_peak_err, r->d_peak, r->d_peak_err,
-             r->model == CLEF_PEAK_GAUSSIAN ? "Gaussian" : "parabola", r->nbins_used);
+    clef_log(CLEF_LOG_INFO, "first peak: l = %.2f +- %.2f (statistical %.2f, shape %.2f), D = %.1f "
+             "+- %.1f uK^2 (%d bins, half width %g)", r->l_peak, r->l_peak_err,
+             r->l_peak_err_stat, r->l_peak_err_shape, r->d_peak, r->d_peak_err, r->nbins_used, hw);
     return CLEF_OK;
 }
 
 /* ---- the result as metadata items (docs/formats.md, "Peak keywords") --- */
 
-static const char *const model_names[] = {"parabola", "gaussian"};
+static const char *const window_names[] = {"table", "top-hat", "point"};
 
-int clef_peak_to_meta(const clef_peak_result *r, clef_bandpowers *bp)
+int clef_peak_to_meta(const clef_peak_result *r, const clef_peak_opts *o, clef_bandpowers *bp)
 {
     if (!r || !bp)
         CLEF_FAIL(CLEF_EINVAL, "peak: NULL result or table");
-    if (r->model != CLEF_PEAK_PARABOLA && r->model != CLEF_PEAK_GAUSSIAN)
-        CLEF_FAIL(CLEF_EINVAL, "peak: unknown model %d", r->model);
     /* Drop the items of an earlier result so none is left stale. */
     int kept = 0;
     for (int i = 0; i < bp->nmeta; i++)
@@ -572,7 +672,7 @@ int clef_peak_to_meta(const clef_peak_result *r, clef_bandpowers *bp)
             bp->meta[kept++] = bp->meta[i];
     bp->nmeta = kept;
     CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_FOUND", r->found ? 1 : 0, "1: first peak found, 0: none"));
-    CLEF_TRY(clef_bandpowers_meta_text(bp, "PK_MODEL", model_names[r->model], "peak model fitted"));
+    CLEF_TRY(clef_bandpowers_meta_text(bp, "PK_MODEL", CLEF_PEAK_MODEL_NAME, "peak model (docs/peak.md)"));
     if (!r->found)
         CLEF_TRY(clef_bandpowers_meta_text(bp, "PK_WHY", r->reason, "why no peak was found"));
     const struct {
@@ -581,19 +681,22 @@ int clef_peak_to_meta(const clef_peak_result *r, clef_bandpowers *bp)
         const char *comment;
     } items[] = {
         {"PK_L", r->l_peak, "first peak multipole"},
-        {"PK_LERR", r->l_peak_err, "1-sigma error of PK_L"},
+        {"PK_LERR", r->l_peak_err, "1-sigma error of PK_L (statistical + shape)"},
+        {"PK_LSTAT", r->l_peak_err_stat, "statistical part of PK_LERR"},
+        {"PK_LSHAP", r->l_peak_err_shape, "shape part of PK_LERR"},
         {"PK_D", r->d_peak, "[uK^2] D_l at the peak"},
         {"PK_DERR", r->d_peak_err, "[uK^2] 1-sigma error of PK_D"},
         {"PK_CORR", r->corr, "correlation of PK_L and PK_D"},
         {"PK_THETA", r->theta_deg, "[deg] angular scale 180 deg / PK_L"},
         {"PK_THERR", r->theta_deg_err, "[deg] 1-sigma error of PK_THETA"},
+        {"PK_WIDTH", r->width, "Gaussian-equivalent width of the peak"},
         {"PK_CHI2", r->chi2, "chi^2 of the peak fit"},
         {"PK_DOF", r->dof, "degrees of freedom of the peak fit"},
         {"PK_PVAL", r->p_value, "probability of a chi^2 at least PK_CHI2"},
     };
     if (isfinite(r->curv_signif))
         CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_CSIG", r->curv_signif,
-                                             "parabola curvature / its error"));
+                                             "curvature of ln D at the peak / its error"));
     if (r->found)
         for (size_t i = 0; i < sizeof items / sizeof items[0]; i++)
             if (isfinite(items[i].v))
@@ -602,6 +705,19 @@ int clef_peak_to_meta(const clef_peak_result *r, clef_bandpowers *bp)
         CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_NBIN", r->nbins_used, "bins in the peak fit"));
         CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_BIN1", r->bin_first, "first fitted bin (from 0)"));
         CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_BIN2", r->bin_last, "last fitted bin (from 0)"));
+    }
+    if (r->windows >= 0 && r->windows <= 2)
+        CLEF_TRY(clef_bandpowers_meta_text(bp, "PK_WIN", window_names[r->windows],
+                                           "window functions of the peak fit"));
+    if (o) {
+        CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_LMIN", o->l_min, "peak search window start"));
+        CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_LMAX", o->l_max, "peak search window end"));
+        CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_HW", clef_peak_half_width(bp, o),
+                                             "half width of the peak fit"));
+        CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_CSMIN", o->curv_nsigma,
+                                             "curvature significance required"));
+        CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_SHAPE", shape_prior_of(o),
+                                             "prior rms of the peak shape terms"));
     }
     return CLEF_OK;
 }
@@ -614,7 +730,7 @@ static double meta_double(const clef_bandpowers *bp, const char *key)
     return v && end != v && !*end ? d : NAN;
 }
 
-int clef_peak_from_meta(const clef_bandpowers *bp, clef_peak_result *r)
+int clef_peak_from_meta(const clef_bandpowers *bp, clef_peak_result *r, clef_peak_opts *o)
 {
     if (!bp || !r)
         CLEF_FAIL(CLEF_EINVAL, "peak: NULL table or result");
@@ -622,25 +738,25 @@ int clef_peak_from_meta(const clef_bandpowers *bp, clef_peak_result *r)
     if (found != 0 && found != 1)
         CLEF_FAIL(CLEF_EINVAL, "peak: the table has no valid PK_FOUND keyword (no peak result recorded)");
     const char *model = clef_bandpowers_meta_get(bp, "PK_MODEL");
-    int m = -1;
-    for (int i = 0; i < 2; i++)
-        if (model && !strcmp(model, model_names[i]))
-            m = i;
-    if (m < 0)
-        CLEF_FAIL(CLEF_EINVAL, "peak: keyword PK_MODEL is '%s', expected 'parabola' or 'gaussian'",
-                  model ? model : "(missing)");
-    result_init(r, m);
+    if (!model || strcmp(model, CLEF_PEAK_MODEL_NAME))
+        CLEF_FAIL(CLEF_EINVAL, "peak: keyword PK_MODEL is '%s', not '%s': the peak was recorded by "
+                  "another estimator (an older clef?); refit the table with clef peak",
+                  model ? model : "(missing)", CLEF_PEAK_MODEL_NAME);
+    result_init(r);
     r->found = (int)found;
     const char *why = clef_bandpowers_meta_get(bp, "PK_WHY");
     if (why)
         snprintf(r->reason, sizeof r->reason, "%s", why);
     r->l_peak = meta_double(bp, "PK_L");
     r->l_peak_err = meta_double(bp, "PK_LERR");
+    r->l_peak_err_stat = meta_double(bp, "PK_LSTAT");
+    r->l_peak_err_shape = meta_double(bp, "PK_LSHAP");
     r->d_peak = meta_double(bp, "PK_D");
     r->d_peak_err = meta_double(bp, "PK_DERR");
     r->corr = meta_double(bp, "PK_CORR");
     r->theta_deg = meta_double(bp, "PK_THETA");
     r->theta_deg_err = meta_double(bp, "PK_THERR");
+    r->width = meta_double(bp, "PK_WIDTH");
     r->chi2 = meta_double(bp, "PK_CHI2");
     r->p_value = meta_double(bp, "PK_PVAL");
     r->curv_signif = meta_double(bp, "PK_CSIG");
@@ -650,7 +766,31 @@ int clef_peak_from_meta(const clef_bandpowers *bp, clef_peak_result *r)
     r->nbins_used = isfinite(nb) ? (int)nb : 0;
     r->bin_first = isfinite(b1) ? (int)b1 : -1;
     r->bin_last = isfinite(b2) ? (int)b2 : -1;
-    if (r->found && !(isfinite(r->l_peak) && isfinite(r->l_peak_err)))
-        CLEF_FAIL(CLEF_EINVAL, "peak: PK_FOUND = 1 but PK_L or PK_LERR is missing");
+    const char *win = clef_bandpowers_meta_get(bp, "PK_WIN");
+    r->windows = -1;
+    for (int i = 0; win && i < 3; i++)
+        if (!strcmp(win, window_names[i]))
+            r->windows = i;
+    if (r->found && !(isfinite(r->l_peak) && isfinite(r->l_peak_err) && r->l_peak_err > 0))
+        CLEF_FAIL(CLEF_EINVAL, "peak: PK_FOUND = 1 but PK_L or PK_LERR is missing or invalid");
+    clef_peak_opts d;
+    clef_peak_opts_default(&d);
+    const double lmin = meta_double(bp, "PK_LMIN"), lmax = meta_double(bp, "PK_LMAX");
+    const double hw = meta_double(bp, "PK_HW"), cs = meta_double(bp, "PK_CSMIN");
+    const double sh = meta_double(bp, "PK_SHAPE");
+    if (isfinite(lmin))
+        d.l_min = lmin;
+    if (isfinite(lmax))
+        d.l_max = lmax;
+    if (isfinite(hw) && hw > 0)
+        d.half_width = hw;
+    if (isfinite(cs) && cs >= 0)
+        d.curv_nsigma = cs;
+    if (isfinite(sh) && sh > 0)
+        d.shape_prior = sh;
+    r->half_width = clef_peak_half_width(bp, &d);
+    r->shape_prior = shape_prior_of(&d);
+    if (o)
+        *o = d;
     return CLEF_OK;
 }

@@ -24,7 +24,6 @@ void clef_spectrum_opts_default(clef_spectrum_opts *o)
     o->use_cache = 1;
     o->find_peak = 1;
     clef_peak_opts_default(&o->peak);
-    o->peak.half_width = 0; /* automatic: see peak_half_width() */
 }
 
 void clef_spectrum_result_free(clef_spectrum_result *res)
@@ -166,22 +165,6 @@ static int check_inputs(const clef_map *map1, const clef_map *map2, const clef_m
         CLEF_FAIL(CLEF_EINVAL, "a second mask was given for a single map");
     }
     return CLEF_OK;
-}
-
-/* The automatic half-width of the peak fit: the library's default (60),
- * widened to three bin widths so wide bins still give about seven points. */
-static double peak_half_width(const clef_bins *bins, const clef_peak_opts *po)
-{
-    clef_peak_opts d;
-    clef_peak_opts_default(&d);
-    double hw = d.half_width;
-    for (int b = 0; b < clef_bins_count(bins); b++) {
-        double c = 0.5 * (clef_bins_l_lo(bins, b) + clef_bins_l_hi(bins, b));
-        double w = clef_bins_l_hi(bins, b) - clef_bins_l_lo(bins, b) + 1;
-        if (c >= po->l_min && c <= po->l_max && 3 * w > hw)
-            hw = 3 * w;
-    }
-    return hw;
 }
 
 /* Record every input and option as table metadata (FITS keywords). */
@@ -589,22 +572,19 @@ static int stage_covariance(run *r)
 static int stage_peak(run *r)
 {
     clef_spectrum_result *res = r->res;
-    clef_peak_opts po = r->o.peak;
-    if (!(po.half_width > 0))
-        po.half_width = peak_half_width(r->bins, &po);
+    const clef_peak_opts po = r->o.peak; /* half width 0: the library's automatic rule */
     int status = clef_peak_find(r->bp, &po, &res->peak);
     if (status == CLEF_EINVAL) {
         /* Unusable for a peak fit (e.g. lmax below the window): the band
          * powers still stand; the run records why there is no peak. */
         clef_log(CLEF_LOG_WARN, "first peak not fitted: %s", clef_last_error());
-        memset(&res->peak, 0, sizeof res->peak);
-        res->peak.model = po.model;
+        res->peak.found = 0;
         snprintf(res->peak.reason, sizeof res->peak.reason, "%s", clef_last_error());
         status = CLEF_OK;
     }
     CLEF_TRY(status);
     res->peak_done = 1;
-    CLEF_TRY(clef_peak_to_meta(&res->peak, r->bp));
+    CLEF_TRY(clef_peak_to_meta(&res->peak, &po, r->bp));
     stage_done(res, "peak", &r->t0);
     return CLEF_OK;
 }

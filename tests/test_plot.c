@@ -444,7 +444,7 @@ static void test_spectrum_cli_peak(void **state)
     clef_peak_result rec = fit;
     rec.l_peak = fit.l_peak + 13.7;
     rec.l_peak_err = 4.4;
-    assert_int_equal(clef_peak_to_meta(&rec, bp), CLEF_OK);
+    assert_int_equal(clef_peak_to_meta(&rec, NULL, bp), CLEF_OK);
     const char *fits = test_path("withpeak.fits");
     assert_int_equal(clef_bandpowers_write_fits(bp, fits), CLEF_OK);
     cli_marker(fits, test_path("cli_meta.svg"), rec.l_peak);

@@ -22,6 +22,8 @@
 
 #include "clef/clef.h"
 #include "clef/cosmo.h"
+#include "clef/peak.h"
+#include "clef/table.h"
 
 #ifdef __cplusplus
 extern "C" {
@@ -38,8 +40,7 @@ typedef struct clef_geometry_opts {
     clef_geometry_prior omega_c; /* default 0.120 +- 0.002 */
     clef_geometry_prior h;       /* default 0.674 +- 0.010 */
     /* Fractional uncertainty of the l_1 model, added in quadrature to
-     * l_peak_err (default 0.005: the model's l_1 for Planck 2018 parameters
-     * differs from the WMAP peak by 0.5%). */
+     * l_peak_err (default CLEF_GEOMETRY_MODEL_ERR; docs/geometry.md). */
     double model_err;
     double omega_k_min, omega_k_max; /* grid range (default -0.3 .. 0.3) */
     int ngrid;                      /* grid points (default 1201, >= 11) */
@@ -49,7 +50,20 @@ typedef struct clef_geometry_opts {
     /* The remaining parameters (n_s, T_cmb, N_eff, m_nu, ...); default
      * Planck 2018.  omega_b, omega_c, h, omega_k are ignored. */
     clef_cosmo_params base;
+    /* Forward model (docs/geometry.md): the band-power table the peak was
+     * measured on (its bins, covariance and window functions; only read)
+     * and the peak settings used.  The model's l_1 at each Omega_k node is
+     * then what clef_peak_find reports on the model spectrum through those
+     * windows, so the estimator's own offset from the true maximum cancels.
+     * NULL: the model's maximum l_1 is compared with l_peak directly. */
+    const clef_bandpowers *forward_table;
+    clef_peak_opts forward_peak;
 } clef_geometry_opts;
+
+/* Default model error: 0.4% of l_1 (docs/geometry.md): the HS96 theta_*
+ * differs from Planck's by 0.20%, and the first-peak phase shift is
+ * checked only through WMAP's first peak to 0.36%; in quadrature. */
+#define CLEF_GEOMETRY_MODEL_ERR 0.004
 
 /* Defaults above; l_peak and l_peak_err are set to 0 (must be filled). */
 void clef_geometry_opts_default(clef_geometry_opts *o);
@@ -78,13 +92,20 @@ typedef struct clef_geometry_result {
     double l1_flat;      /* model l_1 for the prior means and Omega_k = 0 */
     double l1_min, l1_max; /* range of model l_1 over the grid at the prior means */
     int nsamples_valid;  /* prior samples that gave a valid model somewhere on the grid */
+    int forward;         /* 1: the forward model was used */
+    double forward_offset; /* estimator on the model minus the model's maximum, prior means,
+                              Omega_k = 0 (multipoles; NaN without the forward model) */
+    double forward_offset_min, forward_offset_max; /* range over the Omega_k nodes */
+    double l1_flat_forward; /* l1_flat + forward_offset */
+    int forward_nodes_failed; /* nodes where the estimator found no peak on the model
+                                 (excluded from the grid) */
 } clef_geometry_result;
 
 /* Run the inference.  *out is allocated (free with
  * clef_geometry_result_free).  Errors: CLEF_EINVAL (bad options: l_peak or
  * its error not positive, a negative prior sigma, unphysical prior means,
- * bad grid), CLEF_ENUMERIC (the measured peak is out of reach of every
- * model on the grid), CLEF_ENOMEM. */
+ * bad grid, a forward table the estimator rejects), CLEF_ENUMERIC (the
+ * measured peak is out of reach of every model on the grid), CLEF_ENOMEM. */
 int clef_geometry_infer(const clef_geometry_opts *o, clef_geometry_result **out);
 void clef_geometry_result_free(clef_geometry_result *r); /* NULL is a no-op */
 

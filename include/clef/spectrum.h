@@ -62,8 +62,8 @@ typedef struct clef_spectrum_opts {
     const char *cache_dir;     /* NULL: $CLEF_CACHE_DIR, $XDG_CACHE_HOME/clef, ~/.cache/clef */
     double rcond_min;          /* 0: CLEF_COUPLING_RCOND_MIN */
     int find_peak;             /* 1: fit the first acoustic peak (default) */
-    clef_peak_opts peak;       /* its options (clef_peak_opts_default; half_width 0 = automatic:
-                                  max(60, three bin widths)) */
+    clef_peak_opts peak;       /* its options (clef_peak_opts_default: half_width 0 = the
+                                  automatic rule of peak.h, as clef peak uses) */
     const char *names[4];      /* map1, map2, mask1, mask2 names for messages (may be NULL) */
     int allow_coord_mismatch;  /* 1: accept map and mask with different COORDSYS */
 } clef_spectrum_opts;

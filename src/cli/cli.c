@@ -14,6 +14,7 @@
 #include <unistd.h>
 
 #include "clef/clef.h"
+#include "clef/peak.h"
 
 int cli_verbosity = 1;
 
@@ -201,4 +202,53 @@ int cli_write_json(const char *path, const cJSON *j)
     }
     status = clef_outfile_commit(&of);
     return status == CLEF_OK ? CLI_EXIT_OK : cli_fail(status);
+}
+
+static void number_or_null(cJSON *o, const char *key, double v)
+{
+    if (isfinite(v))
+        cJSON_AddNumberToObject(o, key, v);
+    else
+        cJSON_AddNullToObject(o, key);
+}
+
+void cli_peak_json(cJSON *o, const clef_peak_result *r, const clef_peak_opts *po)
+{
+    static const char *const windows[] = {"table", "top-hat", "point"};
+    cJSON_AddStringToObject(o, "model", CLEF_PEAK_MODEL_NAME);
+    if (po) {
+        cJSON *s = cJSON_AddObjectToObject(o, "settings");
+        cJSON_AddNumberToObject(s, "l_min", po->l_min);
+        cJSON_AddNumberToObject(s, "l_max", po->l_max);
+        number_or_null(s, "half_width", r->half_width);
+        cJSON_AddNumberToObject(s, "curvature_sigma_min", po->curv_nsigma);
+        number_or_null(s, "shape_prior", r->shape_prior);
+        if (r->windows >= 0 && r->windows <= 2)
+            cJSON_AddStringToObject(s, "windows", windows[r->windows]);
+    }
+    cJSON_AddBoolToObject(o, "found", r->found);
+    if (!r->found)
+        cJSON_AddStringToObject(o, "reason", r->reason);
+    if (isfinite(r->curv_signif))
+        cJSON_AddNumberToObject(o, "curvature_signif", r->curv_signif);
+    if (r->nbins_used > 0) {
+        cJSON_AddNumberToObject(o, "bins_used", r->nbins_used);
+        cJSON_AddNumberToObject(o, "bin_first", r->bin_first);
+        cJSON_AddNumberToObject(o, "bin_last", r->bin_last);
+    }
+    if (!r->found)
+        return;
+    cJSON_AddNumberToObject(o, "l_peak", r->l_peak);
+    cJSON_AddNumberToObject(o, "l_peak_err", r->l_peak_err);
+    number_or_null(o, "l_peak_err_stat", r->l_peak_err_stat);
+    number_or_null(o, "l_peak_err_shape", r->l_peak_err_shape);
+    cJSON_AddNumberToObject(o, "d_peak_uK2", r->d_peak);
+    cJSON_AddNumberToObject(o, "d_peak_err_uK2", r->d_peak_err);
+    number_or_null(o, "corr_l_d", r->corr);
+    cJSON_AddNumberToObject(o, "angular_scale_deg", r->theta_deg);
+    cJSON_AddNumberToObject(o, "angular_scale_err_deg", r->theta_deg_err);
+    number_or_null(o, "width", r->width);
+    cJSON_AddNumberToObject(o, "chi2", r->chi2);
+    cJSON_AddNumberToObject(o, "dof", r->dof);
+    number_or_null(o, "p_value", r->p_value);
 }

@@ -53,6 +53,13 @@ int cli_parse_double(const char *cmd, const char *opt, const char *s, double *ou
 struct cJSON;
 int cli_write_json(const char *path, const struct cJSON *j);
 
+/* The first-peak result and the settings that made it as members of a JSON
+ * object, with the names every command uses (docs/peak.md, "JSON"). */
+struct clef_peak_result;
+struct clef_peak_opts;
+void cli_peak_json(struct cJSON *obj, const struct clef_peak_result *r,
+                   const struct clef_peak_opts *o);
+
 /* --ordering RING|NESTED (NULL allowed); prints a usage error and returns
  * nonzero otherwise. */
 int cli_check_ordering(const char *cmd, const char *ordering);

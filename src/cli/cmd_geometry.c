@@ -9,6 +9,7 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <sys/stat.h>
 
 #include "clef/geometry.h"
 #include "clef/peak.h"
@@ -77,9 +78,79 @@ static void help(void)
            o.ngrid, o.nsamples, o.seed);
 }
 
-/* l_peak +- sigma from a band-power table: its recorded peak keywords, or a
- * fit with clef peak's defaults when it has none. */
-static int peak_from_table(const char *path, double *l, double *err, int *fitted)
+/* The band-power table behind a spectrum run's JSON summary: the first of
+ * its "outputs" that is a FITS (else CSV) table, as written or relative to
+ * the JSON's folder.  Returns a malloc'ed path or NULL (message printed). */
+static char *table_from_json(const char *json_path)
+{
+    FILE *f = fopen(json_path, "rb");
+    if (!f) {
+        fprintf(stderr, "clef: error: cannot open '%s': %s\n", json_path, strerror(errno));
+        return NULL;
+    }
+    char *text = NULL;
+    size_t n = 0, cap = 0;
+    for (;;) {
+        if (n + 4096 + 1 > cap) {
+            cap = 2 * cap + 8192;
+            char *t = realloc(text, cap);
+            if (!t) {
+                free(text);
+                fclose(f);
+                fprintf(stderr, "clef: error: out of memory reading '%s'\n", json_path);
+                return NULL;
+            }
+            text = t;
+        }
+        const size_t got = fread(text + n, 1, 4096, f);
+        n += got;
+        if (got < 4096)
+            break;
+    }
+    fclose(f);
+    text[n] = 0;
+    cJSON *j = cJSON_Parse(text);
+    free(text);
+    const cJSON *outs = j ? cJSON_GetObjectItemCaseSensitive(j, "outputs") : NULL;
+    const char *pick = NULL;
+    for (int pass = 0; pass < 2 && !pick; pass++) {
+        const cJSON *it;
+        cJSON_ArrayForEach(it, outs) {
+            const char *v = cJSON_IsString(it) ? it->valuestring : NULL;
+            const size_t len = v ? strlen(v) : 0;
+            if (v && len > 5 && !strcmp(v + len - 5, pass ? ".csv" : ".fits") &&
+                !(pass && len > 8 && !strcmp(v + len - 8, "-cov.csv"))) {
+                pick = v;
+                break;
+            }
+        }
+    }
+    char *path = NULL;
+    if (!pick) {
+        fprintf(stderr, "clef: error: '%s' is not a spectrum summary naming a band-power table "
+                "in \"outputs\"\n", json_path);
+    } else {
+        struct stat st;
+        const char *slash = strrchr(json_path, '/');
+        const size_t dl = slash ? (size_t)(slash - json_path) + 1 : 0;
+        if (stat(pick, &st) == 0 || pick[0] == '/' || !dl) {
+            path = strdup(pick);
+        } else if ((path = malloc(dl + strlen(pick) + 1))) {
+            memcpy(path, json_path, dl);
+            strcpy(path + dl, pick);
+        }
+        if (!path)
+            fprintf(stderr, "clef: error: out of memory\n");
+    }
+    cJSON_Delete(j);
+    return path;
+}
+
+/* l_peak +- sigma from a band-power table: its recorded peak keywords (and
+ * the settings they were made with), or a fit with clef peak's defaults
+ * when it has none.  *bp_out keeps the table for the forward model. */
+static int peak_from_table(const char *path, clef_bandpowers **bp_out, clef_peak_opts *po,
+                           double *l, double *err, int *fitted)
 {
     clef_bandpowers *bp = NULL;
     int status = clef_bandpowers_read(&bp, path);
@@ -87,24 +158,26 @@ static int peak_from_table(const char *path, double *l, double *err, int *fitted
         return cli_fail(status);
     clef_peak_result r;
     *fitted = 0;
+    clef_peak_opts_default(po);
     if (clef_bandpowers_meta_get(bp, "PK_FOUND")) {
-        status = clef_peak_from_meta(bp, &r);
+        status = clef_peak_from_meta(bp, &r, po);
     } else {
-        clef_peak_opts po;
-        clef_peak_opts_default(&po);
-        status = clef_peak_find(bp, &po, &r);
+        status = clef_peak_find(bp, po, &r);
         *fitted = 1;
     }
-    clef_bandpowers_free(bp);
-    if (status != CLEF_OK)
+    if (status != CLEF_OK) {
+        clef_bandpowers_free(bp);
         return cli_fail(status);
+    }
     if (!r.found) {
         fprintf(stderr, "clef: error: %s: no first peak%s: %s\n", path,
                 *fitted ? " found by the fit" : " recorded", r.reason);
+        clef_bandpowers_free(bp);
         return CLI_EXIT_INVALID;
     }
     *l = r.l_peak;
     *err = r.l_peak_err;
+    *bp_out = bp;
     return CLI_EXIT_OK;
 }
 
@@ -304,18 +377,35 @@ int cmd_geometry(int argc, char **argv)
     cli_setup_logging();
 
     int fitted = 0;
+    clef_bandpowers *fbp = NULL;
+    char *json_table = NULL;
+    const char *given = table;
     if (table) {
-        const int rc = peak_from_table(table, &o.l_peak, &o.l_peak_err, &fitted);
-        if (rc != CLI_EXIT_OK)
+        const size_t tl = strlen(table);
+        if (tl > 5 && !strcmp(table + tl - 5, ".json")) {
+            if (!(json_table = table_from_json(table)))
+                return CLI_EXIT_INVALID;
+            table = json_table;
+        }
+        const int rc = peak_from_table(table, &fbp, &o.forward_peak, &o.l_peak, &o.l_peak_err,
+                                       &fitted);
+        if (rc != CLI_EXIT_OK) {
+            free(json_table);
             return rc;
+        }
+        o.forward_table = fbp;
         cli_verbose("%s: l_peak = %g +- %g (%s)", table, o.l_peak, o.l_peak_err,
                     fitted ? "fitted" : "from its peak keywords");
     }
+    (void)given;
     const double t0 = clef_wtime();
     clef_geometry_result *r;
     const int status = clef_geometry_infer(&o, &r);
-    if (status != CLEF_OK)
+    if (status != CLEF_OK) {
+        clef_bandpowers_free(fbp);
+        free(json_table);
         return cli_fail(status);
+    }
     cli_verbose("curvature posterior: %.2f s", clef_wtime() - t0);
     int rc = CLI_EXIT_OK;
     if (json) {
@@ -326,5 +416,7 @@ int cmd_geometry(int argc, char **argv)
     if (rc == CLI_EXIT_OK && cli_verbosity >= 1)
         print_result(&o, r, table, fitted);
     clef_geometry_result_free(r);
+    clef_bandpowers_free(fbp);
+    free(json_table);
     return rc;
 }

@@ -8,12 +8,17 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <sys/stat.h>
 
 #include "clef/peak.h"
 #include "clef/table.h"
 #include "cli.h"
 
-static const char *const model_names[] = {"parabola", "gaussian"};
+static int ends_with(const char *s, const char *suffix)
+{
+    const size_t n = strlen(s), m = strlen(suffix);
+    return n >= m && !strcmp(s + n - m, suffix);
+}
 
 static void help(void)
 {
@@ -22,19 +27,21 @@ static void help(void)
     printf("Usage: clef peak [OPTIONS] TABLE\n\n"
            "Locate the first acoustic peak of a band-power table (clef's FITS or CSV, or a\n"
            "text table of columns 'l_eff D err' or 'l_lo l_hi l_eff C D err'; see\n"
-           "docs/formats.md) by a least-squares fit with the band-power covariance around\n"
-           "the highest band power in a window of multipoles (docs/peak.md).\n\n"
+           "docs/formats.md): a local model of ln D (free up to the cubic term, higher\n"
+           "terms under a smoothness prior) is fitted through the band powers' window\n"
+           "functions with their covariance, around the highest band power of a window of\n"
+           "multipoles; the peak is the maximum of the fitted D(l) (docs/peak.md).\n\n"
            "Options:\n"
            "  --l-min L           lower end of the search window, multipole (default %g)\n"
            "  --l-max L           upper end of the search window, multipole (default %g)\n"
-           "  --model M           'parabola' (D = a + b l + c l^2) or 'gaussian'\n"
-           "                      (D = D0 + A exp(-(l - lp)^2 / 2w^2)) (default gaussian)\n"
-           "  --half-width DL     fit the bins within DL multipoles of the highest one\n"
-           "                      (default %g)\n"
-           "  --curv-sigma N      report no peak unless the fitted curvature is at least\n"
-           "                      N standard errors below zero (default %g)\n"
+           "  --half-width DL     fit the bins within DL multipoles of the fit centre\n"
+           "                      (default: max(%g, %g bin widths))\n"
+           "  --curv-sigma N      report no peak unless the curvature of ln D at the peak\n"
+           "                      is at least N standard errors below zero (default %g)\n"
            "  --cov FILE          covariance of D (uK^4) for the table's bins, a text\n"
            "                      matrix (default: the table's own, else its errors alone)\n"
+           "  --output FILE       write the table with the result as PK_* keywords to FILE\n"
+           "                      (FITS when FILE ends in .fits, else CSV; not the input)\n"
            "  --json FILE         also write the result as JSON to FILE\n"
            "  --require           exit with code 9 when no peak is found (default: exit 0\n"
            "                      and print the reason)\n"
@@ -42,9 +49,10 @@ static void help(void)
            "  --verbose           print fit details and timings on stderr\n"
            "  --help              show this help\n\n"
            "Exit codes: 0 done (peak or no peak), 2 usage, 3 invalid input (e.g. errors\n"
-           "missing or zero, no bin in the window), 4 cannot read or write a file, 5 bad\n"
-           "file format, 8 out of memory, 9 no peak found with --require.\n",
-           o.l_min, o.l_max, o.half_width, o.curv_nsigma);
+           "missing or zero, no bin in the window, --output naming the input), 4 cannot\n"
+           "read or write a file, 5 bad file format, 8 out of memory, 9 no peak found with\n"
+           "--require.\n",
+           o.l_min, o.l_max, CLEF_PEAK_HALF_WIDTH_MIN, CLEF_PEAK_HALF_WIDTH_BINS, o.curv_nsigma);
 }
 
 /* The result as a JSON object (numbers only where defined). */
@@ -54,59 +62,35 @@ static cJSON *result_json(const char *table, const clef_peak_opts *o, const clef
     cJSON *j = cJSON_CreateObject();
     cJSON_AddStringToObject(j, "clef_version", CLEF_VERSION);
     cJSON_AddStringToObject(j, "table", table);
-    cJSON_AddStringToObject(j, "model", model_names[o->model]);
-    cJSON *w = cJSON_AddObjectToObject(j, "window");
-    cJSON_AddNumberToObject(w, "l_min", o->l_min);
-    cJSON_AddNumberToObject(w, "l_max", o->l_max);
-    cJSON_AddNumberToObject(j, "half_width", o->half_width);
-    cJSON_AddNumberToObject(j, "curvature_sigma_min", o->curv_nsigma);
     cJSON_AddStringToObject(j, "covariance", cov_source);
-    cJSON_AddBoolToObject(j, "found", r->found);
-    if (!r->found)
-        cJSON_AddStringToObject(j, "reason", r->reason);
-    if (isfinite(r->curv_signif))
-        cJSON_AddNumberToObject(j, "curvature_signif", r->curv_signif);
-    if (r->nbins_used > 0) {
-        cJSON_AddNumberToObject(j, "bins_used", r->nbins_used);
-        cJSON_AddNumberToObject(j, "bin_first", r->bin_first);
-        cJSON_AddNumberToObject(j, "bin_last", r->bin_last);
-    }
-    if (r->found) {
-        cJSON_AddNumberToObject(j, "l_peak", r->l_peak);
-        cJSON_AddNumberToObject(j, "l_peak_err", r->l_peak_err);
-        cJSON_AddNumberToObject(j, "d_peak_uK2", r->d_peak);
-        cJSON_AddNumberToObject(j, "d_peak_err_uK2", r->d_peak_err);
-        cJSON_AddNumberToObject(j, "corr_l_d", r->corr);
-        cJSON_AddNumberToObject(j, "theta_deg", r->theta_deg);
-        cJSON_AddNumberToObject(j, "theta_deg_err", r->theta_deg_err);
-        cJSON_AddNumberToObject(j, "chi2", r->chi2);
-        cJSON_AddNumberToObject(j, "dof", r->dof);
-        if (isfinite(r->p_value))
-            cJSON_AddNumberToObject(j, "p_value", r->p_value);
-        else
-            cJSON_AddNullToObject(j, "p_value");
-    }
+    cli_peak_json(j, r, o);
     return j;
 }
 
+static const char *const window_text[] = {"the table's window functions",
+                                          "top-hat windows over each bin (none in the table)",
+                                          "points at l_eff (no windows, one-multipole bins)"};
 
-static void print_result(const char *table, const clef_bandpowers *bp, const clef_peak_opts *o,
-                         const clef_peak_result *r, const char *cov_source)
+static void print_result(const char *table, const clef_bandpowers *bp, const clef_peak_result *r,
+                         const char *cov_source)
 {
     if (!r->found) {
         printf("no peak found: %s\n", r->reason);
         return;
     }
     printf("first acoustic peak of %s\n", table);
-    printf("  fit            %s over %d bins (l_eff %g to %g), %s covariance\n",
-           model_names[o->model], r->nbins_used, bp->l_eff[r->bin_first], bp->l_eff[r->bin_last],
-           cov_source);
+    printf("  fit            %d bins (l_eff %g to %g), half width %g, %s covariance,\n"
+           "                 %s\n",
+           r->nbins_used, bp->l_eff[r->bin_first], bp->l_eff[r->bin_last], r->half_width,
+           cov_source, r->windows >= 0 && r->windows <= 2 ? window_text[r->windows] : "");
     printf("  curvature      %.1f sigma below zero\n", -r->curv_signif);
-    printf("  l_peak         %.2f +- %.2f\n", r->l_peak, r->l_peak_err);
+    printf("  l_peak         %.2f +- %.2f (statistical %.2f, shape %.2f)\n", r->l_peak,
+           r->l_peak_err, r->l_peak_err_stat, r->l_peak_err_shape);
     printf("  D_peak         %.1f +- %.1f uK^2\n", r->d_peak, r->d_peak_err);
     printf("  correlation    %.3f (l_peak with D_peak)\n", r->corr);
     printf("  angular scale  %.4f +- %.4f deg (180 deg / l_peak)\n", r->theta_deg,
            r->theta_deg_err);
+    printf("  peak width     %.1f (Gaussian-equivalent)\n", r->width);
     if (r->dof > 0)
         printf("  goodness       chi^2 = %.2f for %d degree%s of freedom, p = %.3g\n", r->chi2,
                r->dof, r->dof == 1 ? "" : "s", r->p_value);
@@ -114,19 +98,27 @@ static void print_result(const char *table, const clef_bandpowers *bp, const cle
         printf("  goodness       chi^2 = %.2g with no degrees of freedom (p undefined)\n", r->chi2);
 }
 
+/* 1 when both paths name the same existing file (the output would replace the input). */
+static int same_file(const char *a, const char *b)
+{
+    struct stat sa, sb;
+    return stat(a, &sa) == 0 && stat(b, &sb) == 0 && sa.st_dev == sb.st_dev &&
+           sa.st_ino == sb.st_ino;
+}
+
 int cmd_peak(int argc, char **argv)
 {
     static const struct option longopts[] = {
-        {"l-min", required_argument, NULL, 'a'},     {"l-max", required_argument, NULL, 'b'},
-        {"model", required_argument, NULL, 'm'},     {"half-width", required_argument, NULL, 'w'},
-        {"curv-sigma", required_argument, NULL, 's'}, {"cov", required_argument, NULL, 'c'},
-        {"json", required_argument, NULL, 'j'},      {"require", no_argument, NULL, 'r'},
-        {"quiet", no_argument, NULL, 'q'},           {"verbose", no_argument, NULL, 'v'},
-        {"help", no_argument, NULL, 'h'},            {NULL, 0, NULL, 0}};
+        {"l-min", required_argument, NULL, 'a'},      {"l-max", required_argument, NULL, 'b'},
+        {"half-width", required_argument, NULL, 'w'}, {"curv-sigma", required_argument, NULL, 's'},
+        {"cov", required_argument, NULL, 'c'},        {"output", required_argument, NULL, 'o'},
+        {"json", required_argument, NULL, 'j'},       {"require", no_argument, NULL, 'r'},
+        {"quiet", no_argument, NULL, 'q'},            {"verbose", no_argument, NULL, 'v'},
+        {"help", no_argument, NULL, 'h'},             {NULL, 0, NULL, 0}};
     clef_peak_opts o;
     clef_peak_opts_default(&o);
-    const char *json_path = NULL, *cov_path = NULL;
-    int require = 0, c;
+    const char *json_path = NULL, *cov_path = NULL, *out_path = NULL;
+    int require = 0, c, have_hw = 0;
     optind = 1;
     opterr = 0;
     while ((c = getopt_long(argc, argv, ":", longopts, NULL)) != -1) {
@@ -142,21 +134,14 @@ int cmd_peak(int argc, char **argv)
         case 'w':
             if (cli_parse_double("peak", "--half-width", optarg, &o.half_width))
                 return CLI_EXIT_USAGE;
+            have_hw = 1;
             break;
         case 's':
             if (cli_parse_double("peak", "--curv-sigma", optarg, &o.curv_nsigma))
                 return CLI_EXIT_USAGE;
             break;
-        case 'm':
-            if (!strcmp(optarg, "parabola"))
-                o.model = CLEF_PEAK_PARABOLA;
-            else if (!strcmp(optarg, "gaussian"))
-                o.model = CLEF_PEAK_GAUSSIAN;
-            else
-                return cli_usage_error("peak", "--model must be 'parabola' or 'gaussian', got '%s'",
-                                       optarg);
-            break;
         case 'c': cov_path = optarg; break;
+        case 'o': out_path = optarg; break;
         case 'j': json_path = optarg; break;
         case 'r': require = 1; break;
         case 'q': cli_verbosity = 0; break;
@@ -171,12 +156,17 @@ int cmd_peak(int argc, char **argv)
                                                       : "exactly one band-power table expected");
     if (!(o.l_min < o.l_max))
         return cli_usage_error("peak", "--l-min %g must be below --l-max %g", o.l_min, o.l_max);
-    if (!(o.half_width > 0))
+    if (have_hw && !(o.half_width > 0))
         return cli_usage_error("peak", "--half-width must be positive, got %g", o.half_width);
     if (!(o.curv_nsigma >= 0))
         return cli_usage_error("peak", "--curv-sigma must be >= 0, got %g", o.curv_nsigma);
     cli_setup_logging();
     const char *table = argv[optind];
+    if (out_path && same_file(out_path, table)) {
+        fprintf(stderr, "clef: error: --output '%s' is the input table; give another file\n",
+                out_path);
+        return CLI_EXIT_INVALID;
+    }
 
     const double t0 = clef_wtime();
     clef_bandpowers *bp = NULL;
@@ -193,12 +183,19 @@ int cmd_peak(int argc, char **argv)
     clef_peak_result r;
     const double t1 = clef_wtime();
     status = clef_peak_find(bp, &o, &r);
+    if (status == CLEF_OK && out_path) {
+        status = clef_peak_to_meta(&r, &o, bp);
+        if (status == CLEF_OK)
+            status = ends_with(out_path, ".fits") || ends_with(out_path, ".fit")
+                         ? clef_bandpowers_write_fits(bp, out_path)
+                         : clef_bandpowers_write_csv(bp, out_path);
+    }
     if (status != CLEF_OK) {
         clef_bandpowers_free(bp);
         return cli_fail(status);
     }
     cli_verbose("peak fit in %.3f s", clef_wtime() - t1);
-    print_result(table, bp, &o, &r, cov_source);
+    print_result(table, bp, &r, cov_source);
     clef_bandpowers_free(bp);
     if (json_path) {
         cJSON *j = result_json(table, &o, &r, cov_source);

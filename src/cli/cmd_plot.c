@@ -259,7 +259,7 @@ static int parse_args(int argc, char **argv, args *a, int *done)
  * with the default options.  Returns 1 when r holds a found peak. */
 static int table_peak(const clef_bandpowers *bp, const char *path, clef_peak_result *r)
 {
-    if (clef_peak_from_meta(bp, r) == CLEF_OK) {
+    if (clef_peak_from_meta(bp, r, NULL) == CLEF_OK) {
         if (r->found)
             cli_verbose("first peak from the header of %s: l = %.1f +- %.1f", path, r->l_peak,
                         r->l_peak_err);

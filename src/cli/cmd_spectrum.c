@@ -60,9 +60,8 @@ static void help(void)
         "  --no-cache             neither read nor write the coupling cache\n\n"
         "First peak:\n"
         "  --peak-l-min L, --peak-l-max L   search window (default 100..400)\n"
-        "  --peak-model parabola|gaussian   fitted shape (default gaussian)\n"
-        "  --peak-half-width L    multipoles each side of the top bin used in the fit\n"
-        "                         (default: max(60, three bin widths))\n"
+        "  --peak-half-width L    multipoles each side of the fit centre used in the fit\n"
+        "                         (default: max(120, three bin widths); docs/peak.md)\n"
         "  --no-peak              skip the peak fit\n\n"
         "Output:\n"
         "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv, PREFIX.json\n"
@@ -78,7 +77,7 @@ static void help(void)
 enum {
     OPT_MASK = 256, OPT_MASK2, OPT_HDU, OPT_COLUMN, OPT_COORD, OPT_LMAX, OPT_BINW, OPT_LOGB,
     OPT_BINS, OPT_FWHM, OPT_BEAMF, OPT_NOPIX, OPT_TRANSFER, OPT_NOISE, OPT_THEORY, OPT_ITER,
-    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_PLMIN, OPT_PLMAX, OPT_PMODEL, OPT_PHW, OPT_NOPEAK, OPT_FORMAT,
+    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_PLMIN, OPT_PLMAX, OPT_PHW, OPT_NOPEAK, OPT_FORMAT,
     OPT_THREADS, OPT_QUIET, OPT_VERBOSE, OPT_HELP
 };
 
@@ -87,7 +86,7 @@ typedef struct args {
     const char *noise_file, *theory_file, *cache_dir, *output, *format, *threads;
     long lmax, bin_width, log_bins, iterations;
     double beam_fwhm, peak_lmin, peak_lmax, peak_hw;
-    int peak_model, no_peak, no_pixel_window, keep, no_cache, coord;
+    int no_peak, no_pixel_window, keep, no_cache, coord;
     int want_fits, want_csv, want_json;
 } args;
 
@@ -135,7 +134,6 @@ static int parse_args(int argc, char **argv, args *a)
         {"no-cache", no_argument, 0, OPT_NOCACHE},
         {"peak-l-min", required_argument, 0, OPT_PLMIN},
         {"peak-l-max", required_argument, 0, OPT_PLMAX},
-        {"peak-model", required_argument, 0, OPT_PMODEL},
         {"peak-half-width", required_argument, 0, OPT_PHW},
         {"no-peak", no_argument, 0, OPT_NOPEAK},
         {"output", required_argument, 0, 'o'},
@@ -147,7 +145,6 @@ static int parse_args(int argc, char **argv, args *a)
         {0, 0, 0, 0}};
     memset(a, 0, sizeof *a);
     a->iterations = CLEF_SPECTRUM_ITERATIONS;
-    a->peak_model = -1;
     a->peak_lmin = -1;
     a->peak_lmax = -1;
     a->want_fits = a->want_csv = a->want_json = 1;
@@ -209,15 +206,6 @@ static int parse_args(int argc, char **argv, args *a)
         case OPT_PLMAX:
             if (cli_parse_double(CMD, "--peak-l-max", optarg, &a->peak_lmax))
                 return CLI_EXIT_USAGE;
-            break;
-        case OPT_PMODEL:
-            if (!strcmp(optarg, "parabola"))
-                a->peak_model = CLEF_PEAK_PARABOLA;
-            else if (!strcmp(optarg, "gaussian"))
-                a->peak_model = CLEF_PEAK_GAUSSIAN;
-            else
-                return cli_usage_error(CMD, "--peak-model must be parabola or gaussian, got '%s'",
-                                       optarg);
             break;
         case OPT_PHW:
             if (cli_parse_double(CMD, "--peak-half-width", optarg, &a->peak_hw))
@@ -362,27 +350,10 @@ static cJSON *input_json(const char *role, const char *path, const clef_map *m)
     return o;
 }
 
-static cJSON *peak_json(const clef_spectrum_result *r)
+static cJSON *peak_json(const clef_spectrum_result *r, const clef_spectrum_opts *so)
 {
     cJSON *o = cJSON_CreateObject();
-    const clef_peak_result *p = &r->peak;
-    cJSON_AddBoolToObject(o, "found", p->found);
-    cJSON_AddStringToObject(o, "model", p->model == CLEF_PEAK_GAUSSIAN ? "gaussian" : "parabola");
-    if (!p->found) {
-        cJSON_AddStringToObject(o, "reason", p->reason);
-        return o;
-    }
-    cJSON_AddNumberToObject(o, "l_peak", p->l_peak);
-    cJSON_AddNumberToObject(o, "l_peak_err", p->l_peak_err);
-    cJSON_AddNumberToObject(o, "d_peak_uK2", p->d_peak);
-    cJSON_AddNumberToObject(o, "d_peak_err_uK2", p->d_peak_err);
-    cJSON_AddNumberToObject(o, "correlation", p->corr);
-    cJSON_AddNumberToObject(o, "angular_scale_deg", p->theta_deg);
-    cJSON_AddNumberToObject(o, "angular_scale_err_deg", p->theta_deg_err);
-    cJSON_AddNumberToObject(o, "chi2", p->chi2);
-    cJSON_AddNumberToObject(o, "dof", p->dof);
-    cJSON_AddNumberToObject(o, "p_value", p->p_value);
-    cJSON_AddNumberToObject(o, "bins_used", p->nbins_used);
+    cli_peak_json(o, &r->peak, &so->peak);
     return o;
 }
 
@@ -481,7 +452,7 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddItemToObject(b, "d_err_uK2", array_json(bp->dl_err, bp->nbins));
     cJSON_AddItemToObject(b, "c_uK2", array_json(bp->cl, bp->nbins));
     if (r->peak_done)
-        cJSON_AddItemToObject(root, "peak", peak_json(r));
+        cJSON_AddItemToObject(root, "peak", peak_json(r, so));
     cJSON *w = cJSON_AddArrayToObject(root, "warnings");
     for (int i = 0; i < cli_nwarnings(); i++)
         cJSON_AddItemToArray(w, cJSON_CreateString(cli_warning(i)));
@@ -510,8 +481,8 @@ static void print_result(const args *a, const clef_spectrum_result *r)
     if (r->peak_done) {
         const clef_peak_result *p = &r->peak;
         if (p->found)
-            printf("first peak: l = %.1f +/- %.1f, D = %.0f +/- %.0f uK^2, angular scale "
-                   "%.3f +/- %.3f deg, chi2 %.2f for %d dof\n",
+            printf("first peak: l = %.2f +/- %.2f, D = %.1f +/- %.1f uK^2, angular scale "
+                   "%.4f +/- %.4f deg, chi2 %.2f for %d dof\n",
                    p->l_peak, p->l_peak_err, p->d_peak, p->d_peak_err, p->theta_deg,
                    p->theta_deg_err, p->chi2, p->dof);
         else
@@ -570,8 +541,6 @@ int cmd_spectrum(int argc, char **argv)
     so.beam_fwhm = a.beam_fwhm;
     so.allow_coord_mismatch = a.coord;
     so.find_peak = !a.no_peak;
-    if (a.peak_model >= 0)
-        so.peak.model = a.peak_model;
     if (a.peak_lmin >= 0)
         so.peak.l_min = a.peak_lmin;
     if (a.peak_lmax >= 0)
