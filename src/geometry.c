@@ -16,6 +16,7 @@
 #include "core_impl.h"
 #include "clef/theory.h"
 #include "cosmo_impl.h"
+#include "peak_impl.h"
 
 /* A posterior above this fraction of its peak at a grid edge means the
  * grid cuts it off. */
@@ -66,12 +67,19 @@ static int check_prior(const char *name, const clef_geometry_prior *pr)
     return CLEF_OK;
 }
 
+static int check_measurement(double l_peak, double l_peak_err)
+{
+    if (!(l_peak > 0 && isfinite(l_peak)))
+        CLEF_FAIL(CLEF_EINVAL, "l_peak = %g: must be a positive multipole", l_peak);
+    if (!(l_peak_err > 0 && isfinite(l_peak_err)))
+        CLEF_FAIL(CLEF_EINVAL, "l_peak error = %g: must be > 0", l_peak_err);
+    return CLEF_OK;
+}
+
 static int check_opts(const clef_geometry_opts *o)
 {
-    if (!(o->l_peak > 0 && isfinite(o->l_peak)))
-        CLEF_FAIL(CLEF_EINVAL, "l_peak = %g: must be a positive multipole", o->l_peak);
-    if (!(o->l_peak_err > 0 && isfinite(o->l_peak_err)))
-        CLEF_FAIL(CLEF_EINVAL, "l_peak error = %g: must be > 0", o->l_peak_err);
+    if (o->forward_table && o->forward_table->nbins < 1)
+        CLEF_FAIL(CLEF_EINVAL, "forward model: the band-power table has no bins");
     CLEF_TRY(check_prior("omega_b", &o->omega_b));
     CLEF_TRY(check_prior("omega_c", &o->omega_c));
     CLEF_TRY(check_prior("h", &o->h));
@@ -180,7 +188,7 @@ static int forward_offset(const clef_geometry_opts *o, forward_work *fw, const c
         fw->pred[b] = s;
     }
     clef_peak_result r;
-    const int st = clef_peak_find(&fw->bp, &o->forward_peak, &r);
+    const int st = clef_peak_find_quiet(&fw->bp, &o->forward_peak, &r);
     if (st == CLEF_EINVAL)
         return CLEF_OK; /* e.g. the model's bins carry no error in the window: no peak */
     CLEF_TRY(st);
@@ -326,83 +334,166 @@ static void valid_run(const double *row, int nn, int *j0, int *j1)
     *j1 = best1;
 }
 
-/* Variance of the l_1 residual: measurement plus model error. */
-static double residual_var(const clef_geometry_opts *o, double l1)
+/* Everything that does not depend on the measurement. */
+struct clef_geometry_plan {
+    clef_geometry_opts o;  /* forward_table set to NULL after creation */
+    int ng, nn, ns;
+    double *grid, *nodes, *table; /* table: ns x nn model l_1 */
+    gsl_spline **sp;             /* one per sample with >= 3 valid nodes, else NULL */
+    int *run;                    /* valid node run per sample */
+    int nvalid;
+    clef_geometry_result ref;    /* reference and forward-model numbers */
+    double phi1;
+};
+
+void clef_geometry_plan_destroy(clef_geometry_plan *p)
 {
-    return o->l_peak_err * o->l_peak_err + o->model_err * o->model_err * l1 * l1;
+    if (!p)
+        return;
+    if (p->sp)
+        for (int i = 0; i < p->ns; i++)
+            gsl_spline_free(p->sp[i]);
+    free(p->sp);
+    free(p->run);
+    free(p->grid);
+    free(p->nodes);
+    free(p->table);
+    free(p);
+}
+
+/* Variance of the l_1 residual: measurement plus model error. */
+static double residual_var(double err, double model_err, double l1)
+{
+    return err * err + model_err * model_err * l1 * l1;
 }
 
 /* Gaussian chi^2 of a model l_1; the log(var) term matters only when the
  * model error (proportional to l_1) varies across the grid. */
-static double chi2_of(const clef_geometry_opts *o, double l1)
+static double chi2_of(double lp, double err, double model_err, double l1)
 {
-    const double var = residual_var(o, l1);
-    const double d = l1 - o->l_peak;
+    const double var = residual_var(err, model_err, l1);
+    const double d = l1 - lp;
     return d * d / var + log(var);
 }
 
-/* Marginal likelihood on the fine grid: one cubic spline through each
- * sample's valid nodes, then for every grid point the sum over samples in
- * sample order (parallel over grid points, so the result does not depend
- * on the thread count).  The chi^2 is taken relative to the smallest node
- * value, so a measurement far from every model does not underflow.
- * *reachable is 0 when no sample comes within 5 sigma of l_peak. */
-static int accumulate(const clef_geometry_opts *o, const double *nodes, const double *table,
-                      const double *grid, double *post, int *nvalid, int *reachable)
+/* Reference numbers at the prior means: flat l_1, the l_1 range over the
+ * grid, phi_1. */
+static int reference(const clef_geometry_plan *pl, clef_geometry_result *r, double *phi1)
 {
-    const int nn = o->nnodes, ng = o->ngrid, ns = o->nsamples;
-    int status = CLEF_OK;
-    gsl_spline **sp = calloc((size_t)ns, sizeof *sp);
-    int *run = malloc((size_t)ns * 2 * sizeof *run);
-    if (!sp || !run) {
-        status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory for the splines");
-        goto done;
+    const clef_geometry_opts *o = &pl->o;
+    clef_cosmo_params p = o->base;
+    p.omega_b = o->omega_b.mean;
+    p.omega_c = o->omega_c.mean;
+    p.h = o->h.mean;
+    clef_cosmo_work w = {0};
+    CLEF_TRY(clef_cosmo_work_alloc(&w));
+    double l1;
+    r->l1_min = INFINITY;
+    r->l1_max = -INFINITY;
+    for (int k = 0; k < pl->ng; k += (pl->ng - 1) / 10) {
+        p.omega_k = pl->grid[k];
+        if (clef_cosmo_peak_quiet(&p, &w, &l1, NULL) == 0) {
+            r->l1_min = fmin(r->l1_min, l1);
+            r->l1_max = fmax(r->l1_max, l1);
+        }
     }
-    double ref = INFINITY;
-    *nvalid = 0;
-    *reachable = 0;
+    p.omega_k = 0.0;
+    const int st = clef_cosmo_peak_quiet(&p, &w, &r->l1_flat, phi1);
+    clef_cosmo_work_free(&w);
+    if (st != 0)
+        CLEF_FAIL(CLEF_ENUMERIC, "curvature inference: no flat model at the prior means");
+    return CLEF_OK;
+}
+
+int clef_geometry_plan_create(clef_geometry_plan **out, const clef_geometry_opts *o)
+{
+    int status = CLEF_OK;
+    double *samples = NULL, *off = NULL;
+    gsl_rng *rng = NULL;
+    clef_geometry_plan *pl = NULL;
+    if (!out || !o)
+        CLEF_FAIL(CLEF_EINVAL, "curvature inference: NULL options or plan");
+    *out = NULL;
+    CLEF_TRY(check_opts(o));
+    const int ng = o->ngrid, nn = o->nnodes, ns = o->nsamples;
+    pl = calloc(1, sizeof *pl);
+    if (!pl)
+        CLEF_FAIL(CLEF_ENOMEM, "curvature inference: out of memory");
+    pl->o = *o;
+    pl->ng = ng;
+    pl->nn = nn;
+    pl->ns = ns;
+    pl->grid = malloc((size_t)ng * sizeof *pl->grid);
+    pl->nodes = malloc((size_t)nn * sizeof *pl->nodes);
+    pl->table = malloc((size_t)ns * nn * sizeof *pl->table);
+    pl->sp = calloc((size_t)ns, sizeof *pl->sp);
+    pl->run = malloc((size_t)ns * 2 * sizeof *pl->run);
+    samples = malloc((size_t)ns * 3 * sizeof *samples);
+    rng = gsl_rng_alloc(gsl_rng_mt19937);
+    if (!pl->grid || !pl->nodes || !pl->table || !pl->sp || !pl->run || !samples || !rng) {
+        status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory (%d samples)", ns);
+        goto fail;
+    }
+    const double lo = o->omega_k_min, hi = o->omega_k_max;
+    for (int k = 0; k < ng; k++)
+        pl->grid[k] = lo + (hi - lo) * k / (ng - 1.0);
+    for (int j = 0; j < nn; j++)
+        pl->nodes[j] = lo + (hi - lo) * j / (nn - 1.0);
+    /* Draw all samples serially from one seeded stream: the same seed gives
+     * the same samples whatever the thread count.  Priors are truncated to
+     * the physical region (omega_b > 0, omega_c > 0, 0 < h <= 2). */
+    gsl_rng_set(rng, o->seed);
     for (int i = 0; i < ns; i++) {
-        const double *row = table + (size_t)i * nn;
+        samples[3 * i] = draw(rng, &o->omega_b, 0.0, INFINITY);
+        samples[3 * i + 1] = draw(rng, &o->omega_c, 0.0, INFINITY);
+        samples[3 * i + 2] = draw(rng, &o->h, 0.0, 2.0);
+        if (isnan(samples[3 * i + 1]) || isnan(samples[3 * i + 2]))
+            samples[3 * i] = NAN;
+    }
+    clef_progress("curvature", 0.0);
+    clef_geometry_result *r = &pl->ref;
+    r->forward = o->forward_table != NULL;
+    r->forward_offset = r->forward_offset_min = r->forward_offset_max = NAN;
+    if (r->forward) {
+        if (!(off = malloc((size_t)nn * 4 * sizeof *off))) {
+            status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory");
+            goto fail;
+        }
+        CLEF_CHECK(forward_nodes(o, pl->nodes, off, r));
+    }
+    clef_progress("curvature", 0.5);
+    CLEF_CHECK(node_table(o, samples, pl->nodes, off, pl->table));
+    clef_progress("curvature", 0.9);
+    for (int i = 0; i < ns; i++) {
+        const double *row = pl->table + (size_t)i * nn;
         int j0, j1;
         valid_run(row, nn, &j0, &j1);
-        run[2 * i] = j0;
-        run[2 * i + 1] = j1;
+        pl->run[2 * i] = j0;
+        pl->run[2 * i + 1] = j1;
         if (j1 - j0 + 1 < 3)
             continue;
-        (*nvalid)++;
-        double lmin = INFINITY, lmax = -INFINITY;
-        for (int j = j0; j <= j1; j++) {
-            ref = fmin(ref, chi2_of(o, row[j]));
-            lmin = fmin(lmin, row[j]);
-            lmax = fmax(lmax, row[j]);
-        }
-        if (o->l_peak >= lmin - 5.0 * sqrt(residual_var(o, lmin)) &&
-            o->l_peak <= lmax + 5.0 * sqrt(residual_var(o, lmax)))
-            *reachable = 1;
-        sp[i] = gsl_spline_alloc(gsl_interp_cspline, (size_t)(j1 - j0 + 1));
-        if (!sp[i]) {
+        pl->nvalid++;
+        pl->sp[i] = gsl_spline_alloc(gsl_interp_cspline, (size_t)(j1 - j0 + 1));
+        if (!pl->sp[i]) {
             status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory for the splines");
-            goto done;
+            goto fail;
         }
-        gsl_spline_init(sp[i], nodes + j0, row + j0, (size_t)(j1 - j0 + 1));
+        gsl_spline_init(pl->sp[i], pl->nodes + j0, row + j0, (size_t)(j1 - j0 + 1));
     }
-#pragma omp parallel for schedule(static)
-    for (int k = 0; k < ng; k++) {
-        double sum = 0;
-        for (int i = 0; i < ns; i++) {
-            if (!sp[i] || grid[k] < nodes[run[2 * i]] || grid[k] > nodes[run[2 * i + 1]])
-                continue;
-            const double l1 = gsl_spline_eval(sp[i], grid[k], NULL);
-            sum += exp(-0.5 * (chi2_of(o, l1) - ref));
-        }
-        post[k] = sum;
-    }
-done:
-    if (sp)
-        for (int i = 0; i < ns; i++)
-            gsl_spline_free(sp[i]);
-    free(sp);
-    free(run);
+    CLEF_CHECK(reference(pl, r, &pl->phi1));
+    r->l1_flat_forward = r->l1_flat + r->forward_offset;
+    clef_progress("curvature", 1.0);
+    pl->o.forward_table = NULL; /* not kept: the caller may free it */
+    gsl_rng_free(rng);
+    free(samples);
+    free(off);
+    *out = pl;
+    return CLEF_OK;
+fail:
+    gsl_rng_free(rng);
+    free(samples);
+    free(off);
+    clef_geometry_plan_destroy(pl);
     return status;
 }
 
@@ -466,129 +557,103 @@ static int summarise(clef_geometry_result *r)
     return CLEF_OK;
 }
 
-/* Reference numbers at the prior means: flat l_1, the l_1 range over the
- * grid, and theta_* implied by the measured peak. */
-static int reference(const clef_geometry_opts *o, clef_geometry_result *r)
+int clef_geometry_plan_execute(const clef_geometry_plan *pl, double l_peak, double l_peak_err,
+                               clef_geometry_result **out)
 {
-    clef_cosmo_params p = o->base;
-    p.omega_b = o->omega_b.mean;
-    p.omega_c = o->omega_c.mean;
-    p.h = o->h.mean;
-    clef_cosmo_work w = {0};
-    CLEF_TRY(clef_cosmo_work_alloc(&w));
-    double phi1 = 0, l1;
-    r->l1_min = INFINITY;
-    r->l1_max = -INFINITY;
-    for (int k = 0; k < r->n; k += (r->n - 1) / 10) {
-        p.omega_k = r->omega_k[k];
-        if (clef_cosmo_peak_quiet(&p, &w, &l1, NULL) == 0) {
-            r->l1_min = fmin(r->l1_min, l1);
-            r->l1_max = fmax(r->l1_max, l1);
-        }
-    }
-    p.omega_k = 0.0;
-    const int st = clef_cosmo_peak_quiet(&p, &w, &r->l1_flat, &phi1);
-    clef_cosmo_work_free(&w);
-    if (st != 0)
-        CLEF_FAIL(CLEF_ENUMERIC, "curvature inference: no flat model at the prior means");
-    r->acoustic_scale_deg = 180.0 / o->l_peak;
-    r->acoustic_scale_err_deg = 180.0 * o->l_peak_err / (o->l_peak * o->l_peak);
-    r->theta_star_deg = 180.0 * (1.0 - phi1) / o->l_peak;
-    return CLEF_OK;
-}
-
-int clef_geometry_infer(const clef_geometry_opts *o, clef_geometry_result **out)
-{
-    int status = CLEF_OK;
-    clef_geometry_result *r = NULL;
-    double *samples = NULL, *nodes = NULL, *table = NULL, *off = NULL;
-    gsl_rng *rng = NULL;
+    if (!pl || !out)
+        CLEF_FAIL(CLEF_EINVAL, "curvature inference: NULL plan or result");
     *out = NULL;
-    if (!o)
-        CLEF_FAIL(CLEF_EINVAL, "curvature inference: NULL options");
-    CLEF_TRY(check_opts(o));
-    const int ng = o->ngrid, nn = o->nnodes, ns = o->nsamples;
-    r = calloc(1, sizeof *r);
-    samples = malloc((size_t)ns * 3 * sizeof *samples);
-    nodes = malloc((size_t)nn * sizeof *nodes);
-    table = malloc((size_t)ns * nn * sizeof *table);
-    rng = gsl_rng_alloc(gsl_rng_mt19937);
-    if (!r || !samples || !nodes || !table || !rng) {
-        status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory (%d samples)", ns);
-        goto fail;
-    }
+    CLEF_TRY(check_measurement(l_peak, l_peak_err));
+    const int ng = pl->ng, nn = pl->nn, ns = pl->ns;
+    const double merr = pl->o.model_err;
+    clef_geometry_result *r = malloc(sizeof *r);
+    if (!r)
+        CLEF_FAIL(CLEF_ENOMEM, "curvature inference: out of memory");
+    *r = pl->ref;
     r->n = ng;
     r->omega_k = malloc((size_t)ng * sizeof *r->omega_k);
     r->posterior = calloc((size_t)ng, sizeof *r->posterior);
+    int status = CLEF_OK;
     if (!r->omega_k || !r->posterior) {
         status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory (%d grid points)", ng);
         goto fail;
     }
-    const double lo = o->omega_k_min, hi = o->omega_k_max;
-    for (int k = 0; k < ng; k++)
-        r->omega_k[k] = lo + (hi - lo) * k / (ng - 1.0);
-    for (int j = 0; j < nn; j++)
-        nodes[j] = lo + (hi - lo) * j / (nn - 1.0);
-    /* Draw all samples serially from one seeded stream: the same seed gives
-     * the same samples whatever the thread count.  Priors are truncated to
-     * the physical region (omega_b > 0, omega_c > 0, 0 < h <= 2). */
-    gsl_rng_set(rng, o->seed);
-    for (int i = 0; i < ns; i++) {
-        samples[3 * i] = draw(rng, &o->omega_b, 0.0, INFINITY);
-        samples[3 * i + 1] = draw(rng, &o->omega_c, 0.0, INFINITY);
-        samples[3 * i + 2] = draw(rng, &o->h, 0.0, 2.0);
-        if (isnan(samples[3 * i + 1]) || isnan(samples[3 * i + 2]))
-            samples[3 * i] = NAN;
-    }
-    clef_progress("curvature", 0.0);
-    r->forward = o->forward_table != NULL;
-    r->forward_offset = r->forward_offset_min = r->forward_offset_max = NAN;
-    if (r->forward) {
-        if (!(off = malloc((size_t)nn * 4 * sizeof *off))) {
-            status = clef_fail(CLEF_ENOMEM, "curvature inference: out of memory");
-            goto fail;
-        }
-        CLEF_CHECK(forward_nodes(o, nodes, off, r));
-    }
-    clef_progress("curvature", 0.3);
-    CLEF_CHECK(node_table(o, samples, nodes, off, table));
-    clef_progress("curvature", 0.8);
+    memcpy(r->omega_k, pl->grid, (size_t)ng * sizeof *r->omega_k);
+    r->nsamples_valid = pl->nvalid;
+    /* chi^2 relative to the smallest node value, so a measurement far from
+     * every model does not underflow; reachable when some sample comes
+     * within 5 sigma of l_peak. */
+    double ref = INFINITY;
     int reachable = 0;
-    CLEF_CHECK(accumulate(o, nodes, table, r->omega_k, r->posterior, &r->nsamples_valid, &reachable));
-    clef_progress("curvature", 1.0);
-    CLEF_CHECK(reference(o, r));
-    r->l1_flat_forward = r->l1_flat + r->forward_offset;
+    for (int i = 0; i < ns; i++) {
+        if (!pl->sp[i])
+            continue;
+        const double *row = pl->table + (size_t)i * nn;
+        double lmin = INFINITY, lmax = -INFINITY;
+        for (int j = pl->run[2 * i]; j <= pl->run[2 * i + 1]; j++) {
+            ref = fmin(ref, chi2_of(l_peak, l_peak_err, merr, row[j]));
+            lmin = fmin(lmin, row[j]);
+            lmax = fmax(lmax, row[j]);
+        }
+        if (l_peak >= lmin - 5.0 * sqrt(residual_var(l_peak_err, merr, lmin)) &&
+            l_peak <= lmax + 5.0 * sqrt(residual_var(l_peak_err, merr, lmax)))
+            reachable = 1;
+    }
+    /* Marginal likelihood on the fine grid: for every grid point the sum
+     * over samples in sample order (parallel over grid points, so the
+     * result does not depend on the thread count). */
+#pragma omp parallel for schedule(static)
+    for (int k = 0; k < ng; k++) {
+        double sum = 0;
+        gsl_interp_accel *acc = NULL;
+        for (int i = 0; i < ns; i++) {
+            const gsl_spline *sp = pl->sp[i];
+            if (!sp || pl->grid[k] < pl->nodes[pl->run[2 * i]] ||
+                pl->grid[k] > pl->nodes[pl->run[2 * i + 1]])
+                continue;
+            const double l1 = gsl_spline_eval(sp, pl->grid[k], acc);
+            sum += exp(-0.5 * (chi2_of(l_peak, l_peak_err, merr, l1) - ref));
+        }
+        r->posterior[k] = sum;
+    }
     double top = 0;
     for (int k = 0; k < ng; k++)
         top = fmax(top, r->posterior[k]);
-    if (!reachable || r->nsamples_valid == 0 || !(top > 0) || !isfinite(top)) {
+    if (!reachable || pl->nvalid == 0 || !(top > 0) || !isfinite(top)) {
         status = clef_fail(CLEF_ENUMERIC,
                            "l_peak = %g +- %g is out of reach (more than 5 sigma from every model): for Omega_k in [%g, %g] the "
                            "model gives l_1 in [%.1f, %.1f] at the prior means",
-                           o->l_peak, o->l_peak_err, lo, hi, r->l1_min, r->l1_max);
+                           l_peak, l_peak_err, pl->o.omega_k_min, pl->o.omega_k_max, r->l1_min,
+                           r->l1_max);
         goto fail;
     }
     CLEF_CHECK(summarise(r));
+    r->acoustic_scale_deg = 180.0 / l_peak;
+    r->acoustic_scale_err_deg = 180.0 * l_peak_err / (l_peak * l_peak);
+    r->theta_star_deg = 180.0 * (1.0 - pl->phi1) / l_peak;
     if (r->truncated)
         clef_log(CLEF_LOG_WARN,
                  "the Omega_k posterior is cut off by the grid [%g, %g]; widen the grid",
-                 lo, hi);
-    if (r->hi68 - r->lo68 < 4.0 * (hi - lo) / (ng - 1.0))
+                 pl->o.omega_k_min, pl->o.omega_k_max);
+    if (r->hi68 - r->lo68 < 4.0 * (pl->o.omega_k_max - pl->o.omega_k_min) / (ng - 1.0))
         clef_log(CLEF_LOG_WARN,
                  "the 68%% interval spans fewer than 4 grid steps; use a finer grid");
-    gsl_rng_free(rng);
-    free(samples);
-    free(nodes);
-    free(table);
-    free(off);
     *out = r;
     return CLEF_OK;
 fail:
-    gsl_rng_free(rng);
-    free(samples);
-    free(nodes);
-    free(table);
-    free(off);
     clef_geometry_result_free(r);
+    return status;
+}
+
+int clef_geometry_infer(const clef_geometry_opts *o, clef_geometry_result **out)
+{
+    if (!o || !out)
+        CLEF_FAIL(CLEF_EINVAL, "curvature inference: NULL options");
+    *out = NULL;
+    CLEF_TRY(check_measurement(o->l_peak, o->l_peak_err));
+    clef_geometry_plan *pl = NULL;
+    CLEF_TRY(clef_geometry_plan_create(&pl, o));
+    const int status = clef_geometry_plan_execute(pl, o->l_peak, o->l_peak_err, out);
+    clef_geometry_plan_destroy(pl);
     return status;
 }

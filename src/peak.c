@@ -38,6 +38,11 @@
 #include <string.h>
 
 #include "core_impl.h"
+#include "peak_impl.h"
+
+/* Set for the duration of a quiet call (the forward model of
+ * src/geometry.c runs the estimator on many model spectra). */
+static _Thread_local int quiet;
 
 #define NP (CLEF_PEAK_DEGREE + 1)
 #define NFREE 4            /* c0..c3 carry no prior */
@@ -288,7 +293,8 @@ static void not_found(clef_peak_result *res, const char *fmt, ...)
     vsnprintf(res->reason, sizeof res->reason, fmt, ap);
     va_end(ap);
     res->found = 0;
-    clef_log(CLEF_LOG_INFO, "first peak: none found: %s", res->reason);
+    if (!quiet)
+        clef_log(CLEF_LOG_INFO, "first peak: none found: %s", res->reason);
 }
 
 static void result_init(clef_peak_result *r)
@@ -646,7 +652,7 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
             break;
     }
     *r = res;
-    if (!r->found)
+    if (!r->found || quiet)
         return CLEF_OK;
     if (r->curv_signif > -CLEF_PEAK_RELIABLE_SIGNIF)
         clef_log(CLEF_LOG_WARN, "first peak: the curvature is only %.1f sigma below zero; the quoted "
@@ -655,6 +661,14 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
              "+- %.1f uK^2 (%d bins, half width %g)", r->l_peak, r->l_peak_err,
              r->l_peak_err_stat, r->l_peak_err_shape, r->d_peak, r->d_peak_err, r->nbins_used, hw);
     return CLEF_OK;
+}
+
+int clef_peak_find_quiet(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak_result *r)
+{
+    quiet = 1;
+    const int status = clef_peak_find(bp, o, r);
+    quiet = 0;
+    return status;
 }
 
 /* ---- the result as metadata items (docs/formats.md, "Peak keywords") --- */

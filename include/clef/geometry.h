@@ -107,6 +107,18 @@ typedef struct clef_geometry_result {
  * bad grid, a forward table the estimator rejects), CLEF_ENUMERIC (the
  * measured peak is out of reach of every model on the grid), CLEF_ENOMEM. */
 int clef_geometry_infer(const clef_geometry_opts *o, clef_geometry_result **out);
+
+/* The same in two steps, for many measurements made with one set of bins,
+ * windows, covariance and settings (e.g. an ensemble of skies): the plan
+ * holds the prior samples and the (forward-modelled) model l_1 at the
+ * nodes (o->l_peak and o->l_peak_err are not used; o->forward_table is
+ * only read during the call); execute adds a measurement.  Errors as
+ * clef_geometry_infer.  A plan may be executed from several threads. */
+typedef struct clef_geometry_plan clef_geometry_plan;
+int clef_geometry_plan_create(clef_geometry_plan **out, const clef_geometry_opts *o);
+int clef_geometry_plan_execute(const clef_geometry_plan *p, double l_peak, double l_peak_err,
+                               clef_geometry_result **out);
+void clef_geometry_plan_destroy(clef_geometry_plan *p); /* NULL is a no-op */
 void clef_geometry_result_free(clef_geometry_result *r); /* NULL is a no-op */
 
 #ifdef __cplusplus

@@ -24,8 +24,10 @@ static const char *const cautions[] = {
     "dark energy as a cosmological constant, adiabatic initial conditions; other dark-energy "
     "models or extra radiation shift the inferred curvature.",
     "Approximate fitting formulas (Hu & Sugiyama 1996 z_*, Doran & Lilley 2002 phase shift), "
-    "not a Boltzmann solver: the model l_1 is good to about half a percent, included as a "
-    "model error.",
+    "not a Boltzmann solver: the model l_1 is good to about 0.4%, included as a model error. "
+    "With a band-power table the peak estimator is applied to the model spectrum through the "
+    "table's windows (forward model); with --peak-l it is not, and the measured peak must be "
+    "an unbiased estimate of the maximum of D_l.",
     "The peak height is not used; the priors on omega_b and omega_c stand in for the "
     "information the other peaks would give.",
 };
@@ -38,10 +40,13 @@ static void help(void)
     printf("Usage: clef geometry [OPTIONS] [TABLE]\n\n"
            "Infer the curvature Omega_k from the first acoustic peak: either --peak-l L\n"
            "--peak-l-err S, or TABLE, a band-power table whose first-peak keywords (written\n"
-           "by clef peak / clef spectrum) give l_peak +- sigma; a table without them is\n"
-           "fitted with clef peak's defaults. The posterior of Omega_k is computed on a grid,\n"
-           "marginalised over Gaussian priors on omega_b, omega_c and h by seeded Monte Carlo\n"
-           "sampling, with the first-peak model l_1 = l_A (1 - phi_1) of docs/geometry.md.\n\n"
+           "by clef peak / clef spectrum) give l_peak +- sigma and the settings; a table\n"
+           "without them is fitted with clef peak's defaults; a spectrum run's JSON summary\n"
+           "(.json) stands for the table it names in \"outputs\". The posterior of Omega_k is\n"
+           "computed on a grid, marginalised over Gaussian priors on omega_b, omega_c and h by\n"
+           "seeded Monte Carlo sampling, with the first-peak model l_1 = l_A (1 - phi_1) of\n"
+           "docs/geometry.md; with a table the model's l_1 is what the peak estimator finds\n"
+           "on the model spectrum through the table's windows (forward model).\n\n"
            "Measurement:\n"
            "  --peak-l L        first-peak multipole\n"
            "  --peak-l-err S    its 1-sigma error (required with --peak-l)\n\n"
@@ -211,6 +216,20 @@ static cJSON *result_json(const clef_geometry_opts *o, const clef_geometry_resul
         cJSON_AddNullToObject(j, "table");
     cJSON_AddNumberToObject(j, "l_peak", o->l_peak);
     cJSON_AddNumberToObject(j, "l_peak_err", o->l_peak_err);
+    cJSON *fm = cJSON_AddObjectToObject(j, "forward_model");
+    cJSON_AddBoolToObject(fm, "used", r->forward);
+    if (r->forward) {
+        cJSON_AddNumberToObject(fm, "offset_flat", r->forward_offset);
+        cJSON_AddNumberToObject(fm, "offset_min", r->forward_offset_min);
+        cJSON_AddNumberToObject(fm, "offset_max", r->forward_offset_max);
+        cJSON_AddNumberToObject(fm, "l1_flat_estimated", r->l1_flat_forward);
+        cJSON_AddNumberToObject(fm, "nodes_without_peak", r->forward_nodes_failed);
+        cJSON *ps = cJSON_AddObjectToObject(fm, "peak_settings");
+        cJSON_AddNumberToObject(ps, "l_min", o->forward_peak.l_min);
+        cJSON_AddNumberToObject(ps, "l_max", o->forward_peak.l_max);
+        cJSON_AddNumberToObject(ps, "half_width", o->forward_peak.half_width);
+        cJSON_AddNumberToObject(ps, "curvature_sigma_min", o->forward_peak.curv_nsigma);
+    }
     cJSON *ok = interval_json(j, "omega_k", r->best, r->lo68, r->hi68, r->lo95, r->hi95);
     cJSON_AddNumberToObject(ok, "mean", r->mean);
     cJSON_AddNumberToObject(ok, "sd", r->sd);
@@ -219,8 +238,8 @@ static cJSON *result_json(const clef_geometry_opts *o, const clef_geometry_resul
     cJSON_AddStringToObject(j, "classification", clef_geometry_class_name(r->classification));
     cJSON_AddStringToObject(j, "classification_rule",
                             "closed if the 95% interval lies below 0, open if above, else flat");
-    cJSON_AddNumberToObject(j, "acoustic_scale_deg", r->acoustic_scale_deg);
-    cJSON_AddNumberToObject(j, "acoustic_scale_err_deg", r->acoustic_scale_err_deg);
+    cJSON_AddNumberToObject(j, "angular_scale_deg", r->acoustic_scale_deg);
+    cJSON_AddNumberToObject(j, "angular_scale_err_deg", r->acoustic_scale_err_deg);
     cJSON_AddNumberToObject(j, "theta_star_deg", r->theta_star_deg);
     cJSON_AddNumberToObject(j, "l1_flat_model", r->l1_flat);
     cJSON *pr = cJSON_AddObjectToObject(j, "priors");
@@ -252,22 +271,51 @@ static cJSON *result_json(const clef_geometry_opts *o, const clef_geometry_resul
 }
 
 
+/* Decimals for the Omega_k line: 4, more when a verdict other than "flat"
+ * would otherwise stand next to a bound that rounds to 0 (or Omega_total
+ * to 1), so a printed interval never touches zero while the verdict says
+ * it excludes it. */
+static int interval_digits(const clef_geometry_result *r)
+{
+    if (r->classification == CLEF_GEOMETRY_FLAT)
+        return 4;
+    const double edge = r->classification == CLEF_GEOMETRY_CLOSED ? r->hi95 : r->lo95;
+    int d = 4;
+    while (d < 12 && fabs(edge) < 0.5 * pow(10, -d))
+        d++;
+    char buf[64];
+    for (;; d++) { /* also guard against rounding up to exactly 0 */
+        snprintf(buf, sizeof buf, "%.*f", d, fabs(edge));
+        if (strtod(buf, NULL) > 0 || d >= 12)
+            break;
+    }
+    return d;
+}
+
 static void print_result(const clef_geometry_opts *o, const clef_geometry_result *r,
                          const char *table, int fitted)
 {
+    const int nd = interval_digits(r);
     printf("curvature from the first acoustic peak\n");
     if (table)
         printf("  l_peak          %.2f +- %.2f (%s %s)\n", o->l_peak, o->l_peak_err,
                fitted ? "fitted in" : "recorded in", table);
     else
         printf("  l_peak          %.2f +- %.2f\n", o->l_peak, o->l_peak_err);
-    printf("  acoustic scale  %.4f +- %.4f deg (180 deg / l_peak); theta_* = %.4f deg\n",
+    printf("  angular scale   %.4f +- %.4f deg (180 deg / l_peak); theta_* = %.4f deg\n",
            r->acoustic_scale_deg, r->acoustic_scale_err_deg, r->theta_star_deg);
     printf("  flat model      l_1 = %.2f at the prior means\n", r->l1_flat);
-    printf("  Omega_k         %.4f   68%%: [%.4f, %.4f]   95%%: [%.4f, %.4f]\n", r->best, r->lo68,
-           r->hi68, r->lo95, r->hi95);
-    printf("  Omega_total     %.4f   68%%: [%.4f, %.4f]   95%%: [%.4f, %.4f]\n", 1 - r->best,
-           1 - r->hi68, 1 - r->lo68, 1 - r->hi95, 1 - r->lo95);
+    if (r->forward)
+        printf("  forward model   the peak estimator on the flat model gives %.2f (offset %+.2f;\n"
+               "                  %+.2f to %+.2f over the Omega_k nodes)\n", r->l1_flat_forward,
+               r->forward_offset, r->forward_offset_min, r->forward_offset_max);
+    else
+        printf("  forward model   none (no band-power table): l_peak is compared with the\n"
+               "                  model's maximum directly\n");
+    printf("  Omega_k         %.*f   68%%: [%.*f, %.*f]   95%%: [%.*f, %.*f]\n", nd, r->best, nd,
+           r->lo68, nd, r->hi68, nd, r->lo95, nd, r->hi95);
+    printf("  Omega_total     %.*f   68%%: [%.*f, %.*f]   95%%: [%.*f, %.*f]\n", nd, 1 - r->best,
+           nd, 1 - r->hi68, nd, 1 - r->lo68, nd, 1 - r->hi95, nd, 1 - r->lo95);
     printf("  geometry        %s\n",
            r->classification == CLEF_GEOMETRY_CLOSED ? "closed (the 95% interval lies below Omega_k = 0)"
            : r->classification == CLEF_GEOMETRY_OPEN ? "open (the 95% interval lies above Omega_k = 0)"

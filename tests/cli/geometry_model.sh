@@ -57,7 +57,8 @@ k = j["omega_k"]
 assert k["lo95"] <= k["lo68"] <= k["best"] <= k["hi68"] <= k["hi95"]
 assert j["classification"] == "flat" and k["lo95"] < 0 < k["hi95"]
 assert j["l_peak"] == 220.1 and j["l_peak_err"] == 0.8
-assert abs(j["acoustic_scale_deg"] - 180 / 220.1) < 1e-9
+assert abs(j["angular_scale_deg"] - 180 / 220.1) < 1e-9
+assert j["forward_model"]["used"] is False
 c = j["curve"]
 assert len(c["omega_k"]) == len(c["posterior"]) == 1201
 assert max(c["posterior"]) == 1.0 and min(c["posterior"]) >= 0
@@ -80,7 +81,10 @@ assert k['lo68'] <= -0.05 <= k['hi68'], k
 import sys, numpy as np
 t = sys.argv[1]
 lo = 2 + 20 * np.arange(30); hi = lo + 19; le = 0.5 * (lo + hi)
-d = 5600 - 0.12 * (le - 236.2) ** 2
+def D(l):  # ln D exactly cubic: the estimator holds it (docs/peak.md)
+    x = l - 236.2
+    return np.exp(8.6 - x * x / 20000 - 1.5e-7 * x ** 3)
+d = np.array([D(np.arange(a, b + 1.0)).mean() for a, b in zip(lo, hi)])
 c = 2 * np.pi * d / (le * (le + 1))
 def write(name, meta):
     with open(t + "/" + name, "w") as f:
@@ -89,10 +93,12 @@ def write(name, meta):
         for row in zip(lo, hi, le, c, d):
             f.write("%d,%d,%r,%r,%r,40\n" % row)
 write("fit.csv", "")
-write("keys.csv", "# PK_FOUND = 1 / peak found\n# PK_MODEL = 'parabola' / model\n"
-      "# PK_L = 236.2 / first peak multipole\n# PK_LERR = 1.5 / error\n")
-write("nopeak.csv", "# PK_FOUND = 0 / none\n# PK_MODEL = 'parabola' / model\n"
+write("keys.csv", "# PK_FOUND = 1 / peak found\n# PK_MODEL = 'logcubic-gp' / model\n"
+      "# PK_L = 236.2 / first peak multipole\n# PK_LERR = 1.5 / error\n# PK_HW = 100 / half width\n")
+write("nopeak.csv", "# PK_FOUND = 0 / none\n# PK_MODEL = 'logcubic-gp' / model\n"
       "# PK_WHY = 'too noisy' / reason\n")
+write("old.csv", "# PK_FOUND = 1 / peak found\n# PK_MODEL = 'parabola' / model\n"
+      "# PK_L = 236.2 / first peak multipole\n# PK_LERR = 1.5 / error\n")
 PY
 "$CLEF_BIN" geometry --samples 300 --json "$T/keys.json" "$T/keys.csv" > "$T/keys.out" \
     || fail "geometry on keys.csv exit $?: $(cat "$T/keys.out")"
@@ -102,12 +108,17 @@ import json, sys
 j = json.load(open(sys.argv[1]))
 assert j['l_peak'] == 236.2 and j['l_peak_err'] == 1.5 and j['classification'] == 'open'
 assert j['table'].endswith('keys.csv')
+f = j['forward_model']
+assert f['used'] is True and f['peak_settings']['half_width'] == 100 and abs(f['offset_flat']) < 1, f
 " "$T/keys.json" || fail "keys JSON"
 "$CLEF_BIN" geometry --samples 300 "$T/fit.csv" > "$T/fit.out" || fail "geometry on fit.csv exit $?"
 grep -q "l_peak  *236.20 +- .* (fitted in" "$T/fit.out" || fail "fit summary: $(cat "$T/fit.out")"
 "$CLEF_BIN" geometry "$T/nopeak.csv" > /dev/null 2>"$T/err.txt"
 [ $? -eq 3 ] || fail "table without peak: expected exit 3"
 grep -q "too noisy" "$T/err.txt" || fail "no-peak message: $(cat "$T/err.txt")"
+"$CLEF_BIN" geometry "$T/old.csv" > /dev/null 2>"$T/err.txt"
+[ $? -eq 3 ] || fail "a peak recorded by another estimator: expected exit 3"
+grep -q "refit" "$T/err.txt" || fail "old-estimator message: $(cat "$T/err.txt")"
 
 # --- errors: nothing written -----------------------------------------------
 "$CLEF_BIN" geometry --peak-l 220 > /dev/null 2>&1

@@ -6,13 +6,17 @@ T="$CLEF_TEST_TMP/peak-cli"
 mkdir -p "$T" || exit 1
 fail() { echo "FAIL: $*"; exit 1; }
 
-# A parabola D = 5600 - 0.12 (l - 231.7)^2 sampled at l_eff (clef's CSV
-# layout): the fitted vertex is exactly 231.7 (exact model, no noise).
+# A peak whose ln D is exactly cubic, ln D = 8.6 - d^2 / 20000 - 1.5e-7 d^3,
+# d = l - 231.7, averaged over 20-wide bins (clef's CSV layout): the model
+# holds it, so the fitted maximum is exactly 231.7 (no noise).
 "$CLEF_PYTHON" - "$T" <<'PY' || fail "cannot make the test tables"
 import sys, numpy as np
 t = sys.argv[1]
 lo = 2 + 20 * np.arange(30); hi = lo + 19; le = 0.5 * (lo + hi)
-d = 5600 - 0.12 * (le - 231.7) ** 2
+def D(l):
+    x = l - 231.7
+    return np.exp(8.6 - x * x / 20000 - 1.5e-7 * x ** 3)
+d = np.array([D(np.arange(a, b + 1.0)).mean() for a, b in zip(lo, hi)])
 c = 2 * np.pi * d / (le * (le + 1))
 with open(t + "/para.csv", "w") as f:
     f.write("# NSIDE = 256 / resolution\nl_min,l_max,l_eff,c_band_uK2,d_band_uK2,d_sigma_uK2\n")
@@ -36,14 +40,34 @@ check_json() { # file, python expression over the parsed object j
         || fail "JSON check '$2' on $1: $(cat "$1")"
 }
 
-"$CLEF_BIN" peak --model parabola --json "$T/para.json" "$T/para.csv" > "$T/out.txt" || fail "peak on para.csv exit $?"
+"$CLEF_BIN" peak --json "$T/para.json" "$T/para.csv" > "$T/out.txt" || fail "peak on para.csv exit $?"
 grep -q "l_peak  *231.70" "$T/out.txt" || fail "printed l_peak: $(cat "$T/out.txt")"
-check_json "$T/para.json" "j['found'] is True and abs(j['l_peak'] - 231.7) < 1e-6 and j['model'] == 'parabola' and j['covariance'] == 'diagonal'"
-check_json "$T/para.json" "abs(j['theta_deg'] - 180 / j['l_peak']) < 1e-12 and j['dof'] == j['bins_used'] - 3 and j['l_peak_err'] > 0"
+check_json "$T/para.json" "j['found'] is True and abs(j['l_peak'] - 231.7) < 1e-6 and j['model'] == 'logcubic-gp' and j['covariance'] == 'diagonal'"
+check_json "$T/para.json" "abs(j['angular_scale_deg'] - 180 / j['l_peak']) < 1e-12 and j['dof'] == j['bins_used'] - 4 and j['l_peak_err'] > 0"
+check_json "$T/para.json" "abs(j['l_peak_err'] ** 2 - j['l_peak_err_stat'] ** 2 - j['l_peak_err_shape'] ** 2) < 1e-9 * j['l_peak_err'] ** 2"
+check_json "$T/para.json" "j['settings']['half_width'] == 120 and j['settings']['windows'] == 'top-hat' and j['settings']['l_min'] == 100"
 
-"$CLEF_BIN" peak --quiet --model gaussian --cov "$T/para_cov.csv" --json "$T/g.json" "$T/para.csv" > /dev/null \
-    || fail "gaussian with --cov exit $?"
-check_json "$T/g.json" "j['found'] and j['model'] == 'gaussian' and j['covariance'] == 'full' and abs(j['l_peak'] - 231.7) < 1e-6"
+"$CLEF_BIN" peak --quiet --cov "$T/para_cov.csv" --json "$T/g.json" "$T/para.csv" > /dev/null \
+    || fail "peak with --cov exit $?"
+check_json "$T/g.json" "j['found'] and j['covariance'] == 'full' and abs(j['l_peak'] - 231.7) < 1e-6"
+
+# --output: the table with the result as PK_* keywords; read back by clef
+# peak (same numbers) and refused when it names the input.
+"$CLEF_BIN" peak --quiet --half-width 100 --cov "$T/para_cov.csv" --output "$T/with.fits" "$T/para.csv" \
+    > "$T/w1.txt" || fail "--output exit $?"
+"$CLEF_PYTHON" -c "
+import sys
+from astropy.io import fits
+h = fits.open(sys.argv[1])[1].header
+assert h['PK_FOUND'] == 1 and abs(h['PK_L'] - 231.7) < 1e-6 and h['PK_HW'] == 100 and h['PK_MODEL'] == 'logcubic-gp', h
+" "$T/with.fits" || fail "PK_* keywords in the --output table (astropy)"
+"$CLEF_BIN" peak --half-width 100 "$T/with.fits" > "$T/w2.txt" || fail "peak on its own output exit $?"
+sed 1d "$T/w1.txt" > "$T/w1b.txt"; sed 1d "$T/w2.txt" > "$T/w2b.txt"
+cmp -s "$T/w1b.txt" "$T/w2b.txt" || fail "peak on the written table differs: $(cat "$T/w1.txt" "$T/w2.txt")"
+cp "$T/para.csv" "$T/keep.csv"
+"$CLEF_BIN" peak --output "$T/para.csv" "$T/para.csv" > /dev/null 2> "$T/e.txt"
+rc=$?; [ "$rc" -eq 3 ] || fail "--output naming the input: exit $rc, expected 3"
+cmp -s "$T/para.csv" "$T/keep.csv" || fail "--output naming the input changed it"
 
 "$CLEF_BIN" peak --json "$T/f.json" "$T/para.fits" > /dev/null || fail "peak on astropy FITS exit $?"
 check_json "$T/f.json" "j['found'] and abs(j['l_peak'] - 231.7) < 1e-6"
@@ -72,7 +96,8 @@ expect 3 "table without errors" "$CLEF_BIN" peak "$T/noerr.txt"
 expect 3 "no bin in the window" "$CLEF_BIN" peak --l-min 1000 --l-max 2000 "$T/para.csv"
 printf '1,0\n0,1\n' > "$T/badcov.csv"
 expect 5 "covariance of the wrong size" "$CLEF_BIN" peak --cov "$T/badcov.csv" "$T/para.csv"
-expect 2 "unknown model" "$CLEF_BIN" peak --model cubic "$T/para.csv"
+expect 2 "the removed --model option" "$CLEF_BIN" peak --model parabola "$T/para.csv"
+expect 2 "half width not positive" "$CLEF_BIN" peak --half-width 0 "$T/para.csv"
 expect 2 "window reversed" "$CLEF_BIN" peak --l-min 400 --l-max 100 "$T/para.csv"
 expect 2 "bad number option" "$CLEF_BIN" peak --half-width x "$T/para.csv"
 expect 2 "no table" "$CLEF_BIN" peak

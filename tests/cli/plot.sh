@@ -71,7 +71,7 @@ band = np.ones(npix); band[npix // 2 - npix // 10: npix // 2 + npix // 10] = 0
 write_map(t + "/band64.fits", 64, band)
 x = np.linspace(-0.1, 0.1, 101)
 json.dump({"omega_k": {"best": -0.01, "lo68": -0.03, "hi68": 0.01, "lo95": -0.05, "hi95": 0.03},
-           "classification": "flat", "acoustic_scale_deg": 0.81, "l_peak": 221.0, "l_peak_err": 6.0,
+           "classification": "flat", "angular_scale_deg": 0.81, "l_peak": 221.0, "l_peak_err": 6.0,
            "curve": {"omega_k": list(x), "posterior": list(np.exp(-0.5 * ((x + 0.01) / 0.02) ** 2))}},
           open(t + "/geo.json", "w"))
 PYEOF
