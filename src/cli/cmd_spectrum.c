@@ -64,7 +64,8 @@ static void help(void)
         "                         (default: max(120, three bin widths); docs/peak.md)\n"
         "  --no-peak              skip the peak fit\n\n"
         "Output:\n"
-        "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv, PREFIX.json\n"
+        "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv,\n"
+        "                         PREFIX-windows.csv (band-power window functions), PREFIX.json\n"
         "                         (default: the first map's name without folder and extension)\n"
         "  --format LIST          comma-separated subset of fits,csv,json (default all three)\n"
         "  --threads N            OpenMP threads (default: OMP_NUM_THREADS or all cores)\n"
@@ -451,6 +452,24 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddItemToObject(b, "d_uK2", array_json(bp->dl, bp->nbins));
     cJSON_AddItemToObject(b, "d_err_uK2", array_json(bp->dl_err, bp->nbins));
     cJSON_AddItemToObject(b, "c_uK2", array_json(bp->cl, bp->nbins));
+    if (bp->win) {
+        /* The windows themselves are in the FITS HDU BANDWIN and the
+         * windows CSV; the summary records their range and row sums
+         * (docs/formats-spectrum.md). */
+        cJSON *wj = cJSON_AddObjectToObject(b, "windows");
+        cJSON_AddNumberToObject(wj, "l_min", 0);
+        cJSON_AddNumberToObject(wj, "l_max", bp->win_lmax);
+        cJSON_AddStringToObject(wj, "fits_hdu", "BANDWIN");
+        double *sums = calloc((size_t)bp->nbins, sizeof *sums);
+        if (sums) {
+            const size_t n = (size_t)bp->win_lmax + 1;
+            for (int i = 0; i < bp->nbins; i++)
+                for (size_t l = 0; l < n; l++)
+                    sums[i] += bp->win[(size_t)i * n + l];
+            cJSON_AddItemToObject(wj, "row_sums", array_json(sums, bp->nbins));
+            free(sums);
+        }
+    }
     if (r->peak_done)
         cJSON_AddItemToObject(root, "peak", peak_json(r, so));
     cJSON *w = cJSON_AddArrayToObject(root, "warnings");
@@ -506,8 +525,8 @@ int cmd_spectrum(int argc, char **argv)
     clef_spectrum_result res;
     memset(&res, 0, sizeof res);
     cJSON *json = NULL;
-    char paths[4][4096];
-    const char *written[4];
+    char paths[5][4096];
+    const char *written[5];
     int nwritten = 0;
 
     clef_map_read_opts ro = {0};
@@ -621,10 +640,17 @@ int cmd_spectrum(int argc, char **argv)
             goto fail;
         written[nwritten] = paths[nwritten];
         nwritten++;
+        if (res.bp->win) {
+            snprintf(paths[nwritten], sizeof paths[0], "%s-windows.csv", prefix);
+            if ((status = clef_bandpowers_write_windows_csv(res.bp, paths[nwritten])) != CLEF_OK)
+                goto fail;
+            written[nwritten] = paths[nwritten];
+            nwritten++;
+        }
     }
     if (a.want_json) {
         snprintf(paths[nwritten], sizeof paths[0], "%s.json", prefix);
-        const char *all[5];
+        const char *all[6];
         for (int i = 0; i < nwritten; i++)
             all[i] = written[i];
         all[nwritten] = paths[nwritten];
