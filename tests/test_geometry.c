@@ -20,8 +20,8 @@ static clef_geometry_opts defaults(double l, double err)
     return o;
 }
 
-/* The model's l_1 at the default prior means and a given Omega_k. */
-static double model_l1(double omega_k)
+/* The parameters at the default prior means and a given Omega_k. */
+static clef_cosmo_params prior_means(double omega_k)
 {
     clef_geometry_opts o;
     clef_geometry_opts_default(&o);
@@ -30,6 +30,13 @@ static double model_l1(double omega_k)
     p.omega_c = o.omega_c.mean;
     p.h = o.h.mean;
     p.omega_k = omega_k;
+    return p;
+}
+
+/* The model's l_1 at the default prior means and a given Omega_k. */
+static double model_l1(double omega_k)
+{
+    const clef_cosmo_params p = prior_means(omega_k);
     clef_cosmo_acoustic a;
     assert_int_equal(clef_cosmo_acoustic_scale(&p, &a), CLEF_OK);
     return a.l_1;
@@ -208,13 +215,7 @@ static void test_edges_and_errors(void **state)
  * errors of cosmic variance on 60% of the sky. */
 static clef_bandpowers *model_table(double omega_k)
 {
-    clef_geometry_opts o;
-    clef_geometry_opts_default(&o);
-    clef_cosmo_params p = o.base;
-    p.omega_b = o.omega_b.mean;
-    p.omega_c = o.omega_c.mean;
-    p.h = o.h.mean;
-    p.omega_k = omega_k;
+    const clef_cosmo_params p = prior_means(omega_k);
     const int nb = 30, lmax = 601;
     double cl[602];
     assert_int_equal(clef_theory_cl(&p, lmax, cl), CLEF_OK);
