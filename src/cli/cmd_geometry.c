@@ -180,6 +180,9 @@ static int peak_from_table(const char *path, clef_bandpowers **bp_out, clef_peak
         clef_bandpowers_free(bp);
         return CLI_EXIT_INVALID;
     }
+    if (!*fitted && r.windows == CLEF_PEAK_WIN_TABLE && !bp->win)
+        cli_info("warning: %s: the peak was fitted through window functions this file does not "
+                 "carry; the forward model falls back to top-hat bins (give the FITS table)", path);
     *l = r.l_peak;
     *err = r.l_peak_err;
     *bp_out = bp;
