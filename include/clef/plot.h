@@ -32,7 +32,8 @@ extern "C" {
 enum clef_plot_format { CLEF_PLOT_PNG = 0, CLEF_PLOT_SVG = 1, CLEF_PLOT_PDF = 2 };
 
 /* Output format from the file name's extension (case-insensitive .png,
- * .svg, .pdf).  CLEF_EUNSUP (naming the file) for any other extension. */
+ * .svg, .pdf; "-", standard output, is PNG).  CLEF_EUNSUP (naming the
+ * file) for any other extension. */
 int clef_plot_format_from_path(const char *path, int *format);
 
 /* ---------------------------------------------------------------- spectrum */
