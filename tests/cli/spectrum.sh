@@ -13,7 +13,7 @@ C="$CLEF_BIN"
 # latitude-cut mask.
 "$C" simulate --quiet --nside 64 --model --seed 3 --beam-fwhm 30 --noise-depth 30 --splits 2 \
     --coordsys G --output "$T/sky.fits" || fail "simulate"
-"$C" mask --quiet --nside 64 --latitude-cut 15 --apodize c2 --apod-scale 5 --coordsys G \
+"$C" mask --quiet --nside 64 --latitude-cut 15 --taper c2 --taper-width 5 --coordsys G \
     --output "$T/mask.fits" || fail "mask"
 "$C" mask --quiet --nside 32 --output "$T/mask32.fits" || fail "mask32"
 "$C" mask --quiet --nside 64 --patch 0,90,0.1 --output "$T/empty.fits" || fail "empty mask"
