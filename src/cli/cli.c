@@ -292,3 +292,27 @@ int cli_check_outputs(const char *const *inputs, int nin, const char *const *out
 }
 
 FILE *cli_text_stream(void) { return stdout_taken ? stderr : stdout; }
+
+/* Descriptor 1 pointed at stderr while a text summary is printed with
+ * printf, when standard output carries a file. */
+static int saved_stdout = -1;
+
+void cli_text_begin(void)
+{
+    if (!stdout_taken || saved_stdout >= 0)
+        return;
+    fflush(stdout);
+    saved_stdout = dup(STDOUT_FILENO);
+    if (saved_stdout >= 0)
+        dup2(STDERR_FILENO, STDOUT_FILENO);
+}
+
+void cli_text_end(void)
+{
+    if (saved_stdout < 0)
+        return;
+    fflush(stdout);
+    dup2(saved_stdout, STDOUT_FILENO);
+    close(saved_stdout);
+    saved_stdout = -1;
+}

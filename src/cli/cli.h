@@ -74,6 +74,10 @@ int cli_is_stdout(const char *path);
 int cli_same_file(const char *a, const char *b);
 /* Where text summaries go: stdout, or stderr when an output is stdout. */
 FILE *cli_text_stream(void);
+/* Around code that prints a summary with printf: while stdout carries a
+ * file, the summary goes to stderr (no-ops otherwise). */
+void cli_text_begin(void);
+void cli_text_end(void);
 
 /* --ordering RING|NESTED (NULL allowed); prints a usage error and returns
  * nonzero otherwise. */

@@ -320,11 +320,15 @@ static void default_prefix(const char *map, char *buf, size_t n)
     strncat(buf, "-bandpowers", n - strlen(buf) - 1);
 }
 
-/* The largest multipole in the first column of a text table ('#'
- * comments), or -1 if none can be read; the table's own reader reports
- * any error in detail. */
+/* The largest multipole of a spectrum file (text or FITS), else of the
+ * first column of a text table ('#' comments), or -1 if none can be read;
+ * the table's own reader reports any error in detail. */
 static int text_last_l(const char *path)
 {
+    /* Spectrum files (text or FITS) say it through their own reader. */
+    int flmax = -1;
+    if (clef_theory_read_cl(path, 0, NULL, &flmax) == CLEF_OK)
+        return flmax;
     FILE *f = fopen(path, "r");
     if (!f)
         return -1;
