@@ -71,7 +71,8 @@ static void help(void)
         "                         (default: max(60, three bin widths))\n"
         "  --no-peak              skip the peak fit\n\n"
         "Output:\n"
-        "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv, PREFIX.json\n"
+        "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv,\n"
+        "                         PREFIX-windows.csv (band-power window functions), PREFIX.json\n"
         "                         (default: the first map's name without folder and\n"
         "                         extension, followed by -bandpowers)\n"
         "  --format LIST          comma-separated subset of fits,csv,json (default all three)\n"
@@ -546,6 +547,24 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddItemToObject(b, "d_uK2", array_json(bp->dl, bp->nbins));
     cJSON_AddItemToObject(b, "d_err_uK2", array_json(bp->dl_err, bp->nbins));
     cJSON_AddItemToObject(b, "c_uK2", array_json(bp->cl, bp->nbins));
+    if (bp->win) {
+        /* The windows themselves are in the FITS HDU BANDWIN and the
+         * windows CSV; the summary records their range and row sums
+         * (docs/formats-spectrum.md). */
+        cJSON *wj = cJSON_AddObjectToObject(b, "windows");
+        cJSON_AddNumberToObject(wj, "l_min", 0);
+        cJSON_AddNumberToObject(wj, "l_max", bp->win_lmax);
+        cJSON_AddStringToObject(wj, "fits_hdu", "BANDWIN");
+        double *sums = calloc((size_t)bp->nbins, sizeof *sums);
+        if (sums) {
+            const size_t n = (size_t)bp->win_lmax + 1;
+            for (int i = 0; i < bp->nbins; i++)
+                for (size_t l = 0; l < n; l++)
+                    sums[i] += bp->win[(size_t)i * n + l];
+            cJSON_AddItemToObject(wj, "row_sums", array_json(sums, bp->nbins));
+            free(sums);
+        }
+    }
     if (r->peak_done)
         cJSON_AddItemToObject(root, "peak", peak_json(r));
     cJSON *w = cJSON_AddArrayToObject(root, "warnings");
@@ -672,8 +691,8 @@ int cmd_spectrum(int argc, char **argv)
     clef_spectrum_result res;
     memset(&res, 0, sizeof res);
     cJSON *json = NULL;
-    char paths[4][4096];
-    const char *written[4];
+    char paths[5][4096];
+    const char *written[5];
     int nwritten = 0;
 
     /* Every output is known before anything is read: none may be an input,
@@ -683,7 +702,7 @@ int cmd_spectrum(int argc, char **argv)
         snprintf(prefix, sizeof prefix, "%s", a.output);
     else
         default_prefix(a.map[0], prefix, sizeof prefix);
-    const char *outs[4] = {NULL, NULL, NULL, NULL};
+    const char *outs[5] = {NULL, NULL, NULL, NULL, NULL};
     if (a.want_fits) {
         snprintf(paths[0], sizeof paths[0], "%s.fits", prefix);
         outs[0] = paths[0];
@@ -691,18 +710,20 @@ int cmd_spectrum(int argc, char **argv)
     if (a.want_csv) {
         snprintf(paths[1], sizeof paths[1], "%s.csv", prefix);
         snprintf(paths[2], sizeof paths[2], "%s-cov.csv", prefix);
+        snprintf(paths[3], sizeof paths[3], "%s-windows.csv", prefix);
         outs[1] = paths[1];
         outs[2] = paths[2];
+        outs[3] = paths[3];
     }
     if (a.want_json) {
-        snprintf(paths[3], sizeof paths[3], "%s", a.json ? a.json : "");
+        snprintf(paths[4], sizeof paths[4], "%s", a.json ? a.json : "");
         if (!a.json)
-            snprintf(paths[3], sizeof paths[3], "%s.json", prefix);
-        outs[3] = paths[3];
+            snprintf(paths[4], sizeof paths[4], "%s.json", prefix);
+        outs[4] = paths[4];
     }
     const char *inputs[] = {a.map[0], a.map[1], a.mask[0], a.mask[1], a.bins_file,
                             a.beam_file, a.transfer_file, a.noise_file, a.theory_file};
-    if ((rc = cli_check_outputs(inputs, 9, outs, 4)) != CLI_EXIT_OK)
+    if ((rc = cli_check_outputs(inputs, 9, outs, 5)) != CLI_EXIT_OK)
         return rc;
     if (a.map[1] && cli_same_file(a.map[0], a.map[1]))
         cli_warn("the two maps '%s' and '%s' are the same file: their cross-spectrum is the "
@@ -836,20 +857,25 @@ int cmd_spectrum(int argc, char **argv)
         if ((status = clef_bandpowers_write_cov_csv(res.bp, paths[2])) != CLEF_OK)
             goto fail;
         written[nwritten++] = paths[2];
+        if (res.bp->win) {
+            if ((status = clef_bandpowers_write_windows_csv(res.bp, paths[3])) != CLEF_OK)
+                goto fail;
+            written[nwritten++] = paths[3];
+        }
     }
     if (a.want_json) {
-        const char *all[5];
+        const char *all[6];
         for (int i = 0; i < nwritten; i++)
             all[i] = written[i];
-        all[nwritten] = paths[3];
+        all[nwritten] = paths[4];
         json = summary_json(argc, argv, &a, maps, &so, &res, a.mask[1] ? &mm2 : NULL, t_read,
                             clef_wtime() - t_begin, all, nwritten + 1);
-        const int rc_json = json ? cli_write_json(paths[3], json) : CLI_EXIT_NOMEM;
+        const int rc_json = json ? cli_write_json(paths[4], json) : CLI_EXIT_NOMEM;
         if (rc_json != CLI_EXIT_OK) {
             rc = rc_json; /* already reported */
             goto fail;
         }
-        written[nwritten++] = paths[3];
+        written[nwritten++] = paths[4];
     }
     if (cli_verbosity >= 1)
         print_result(cli_text_stream(), &a, &res);

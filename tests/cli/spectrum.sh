@@ -21,7 +21,7 @@ C="$CLEF_BIN"
 
 "$C" spectrum "$T/sky_split1.fits" "$T/sky_split2.fits" --mask "$T/mask.fits" --beam-fwhm 30 \
     --output "$T/run" > "$T/out.txt" 2> "$T/err.txt" || fail "spectrum exit $?: $(cat "$T/err.txt")"
-for f in run.fits run.csv run-cov.csv run.json; do
+for f in run.fits run.csv run-cov.csv run-windows.csv run.json; do
     [ -s "$T/$f" ] || fail "missing output $f"
 done
 grep -q "first peak" "$T/out.txt" || fail "no peak line: $(cat "$T/out.txt")"
@@ -56,6 +56,16 @@ rows = list(csv.DictReader(l for l in open(t + "/run.csv") if not l.startswith("
 assert np.allclose([float(r["d_band_uK2"]) for r in rows], d, rtol=1e-12)
 assert np.allclose(np.loadtxt(t + "/run-cov.csv", delimiter=","), cov, rtol=1e-12)
 assert "peak" in j and "found" in j["peak"]
+# Band-power windows (docs/formats-spectrum.md): FITS HDU BANDWIN = the CSV
+# side file; each row sums to 1 over its own bin's multipoles.
+with fits.open(t + "/run.fits") as h:
+    w = h["BANDWIN"].data
+    lo, hi = h["BANDPOWER"].data["LMIN"], h["BANDPOWER"].data["LMAX"]
+assert w.shape == (len(d), j["bandpowers"]["windows"]["l_max"] + 1), w.shape
+assert np.allclose(np.loadtxt(t + "/run-windows.csv", delimiter=","), w, rtol=1e-15, atol=0)
+for b in range(len(d)):
+    assert abs(w[b, lo[b]:hi[b] + 1].sum() - 1) < 1e-9, (b, w[b, lo[b]:hi[b] + 1].sum())
+assert np.allclose(w.sum(axis=1), j["bandpowers"]["windows"]["row_sums"], rtol=1e-12)
 PY
 
 # Second run: the coupling comes from the cache.
