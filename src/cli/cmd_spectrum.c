@@ -455,6 +455,15 @@ typedef struct mask_moments {
     double fsky, w1, w2, w4, fsky_eff;
 } mask_moments;
 
+static void moments_json(cJSON *o, const mask_moments *m)
+{
+    cJSON_AddNumberToObject(o, "f_sky", m->fsky);
+    cJSON_AddNumberToObject(o, "w1", m->w1);
+    cJSON_AddNumberToObject(o, "w2", m->w2);
+    cJSON_AddNumberToObject(o, "w4", m->w4);
+    cJSON_AddNumberToObject(o, "f_sky_eff", m->fsky_eff);
+}
+
 static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const maps[4],
                           const clef_spectrum_opts *so, const clef_spectrum_result *r,
                           const mask_moments *mm2, double t_read, double t_total, const char *const *outputs, int nout)
@@ -512,19 +521,10 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
 
     cJSON *sky = cJSON_AddObjectToObject(root, "sky");
     cJSON_AddNumberToObject(sky, "nside", (double)r->nside);
-    cJSON_AddNumberToObject(sky, "f_sky", r->fsky);
-    cJSON_AddNumberToObject(sky, "w1", r->w1);
-    cJSON_AddNumberToObject(sky, "w2", r->w2);
-    cJSON_AddNumberToObject(sky, "w4", r->w4);
-    cJSON_AddNumberToObject(sky, "f_sky_eff", r->fsky_eff);
-    if (mm2) { /* --mask2: the second map's effective mask too */
-        cJSON *m2 = cJSON_AddObjectToObject(sky, "mask2");
-        cJSON_AddNumberToObject(m2, "f_sky", mm2->fsky);
-        cJSON_AddNumberToObject(m2, "w1", mm2->w1);
-        cJSON_AddNumberToObject(m2, "w2", mm2->w2);
-        cJSON_AddNumberToObject(m2, "w4", mm2->w4);
-        cJSON_AddNumberToObject(m2, "f_sky_eff", mm2->fsky_eff);
-    }
+    const mask_moments mm1 = {r->fsky, r->w1, r->w2, r->w4, r->fsky_eff};
+    moments_json(sky, &mm1);
+    if (mm2) /* --mask2: the second map's effective mask too */
+        moments_json(cJSON_AddObjectToObject(sky, "mask2"), mm2);
     cJSON *mp = cJSON_AddArrayToObject(sky, "removed_multipoles_uK");
     for (int i = 0; i <= r->cross; i++)
         cJSON_AddItemToArray(mp, array_json(r->multipoles[i], 4));
