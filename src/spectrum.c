@@ -483,8 +483,9 @@ static int stage_bins(run *r)
             width = cw > CLEF_SPECTRUM_BIN_WIDTH ? cw : CLEF_SPECTRUM_BIN_WIDTH;
         }
         if (width > r->lmax - 1)
-            CLEF_FAIL(CLEF_EINVAL, "bin width %d does not fit between l = 2 and lmax = %d",
-                      width, r->lmax);
+            CLEF_FAIL(CLEF_EINVAL, "bin width %d%s does not fit between l = 2 and lmax = %d",
+                      width, r->o.bin_width > 0 ? "" : " (the mask's coupling width: its "
+                      "observed region is too small to resolve narrower bins)", r->lmax);
         CLEF_TRY(clef_bins_create_linear(&r->own_bins, 2, width, r->lmax, CLEF_BINS_DL));
         r->bins = r->own_bins;
         r->res->bin_width = width;

@@ -8,7 +8,6 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
-#include <sys/stat.h>
 
 #include "clef/peak.h"
 #include "clef/table.h"
@@ -41,11 +40,12 @@ static void help(void)
            "  --cov FILE          covariance of D (uK^4) for the table's bins, a text\n"
            "                      matrix (default: the table's own, else its errors alone)\n"
            "  --output FILE       write the table with the result as PK_* keywords to FILE\n"
-           "                      (FITS when FILE ends in .fits, else CSV; not the input)\n"
-           "  --json FILE         also write the result as JSON to FILE\n"
+           "                      (FITS when FILE ends in .fits, else CSV; not an input)\n"
+           "  --json FILE         also write the result as JSON to FILE ('-': standard\n"
+           "                      output; the text result then goes to standard error)\n"
            "  --require           exit with code 9 when no peak is found (default: exit 0\n"
            "                      and print the reason)\n"
-           "  --quiet             print errors only (the result still goes to stdout)\n"
+           "  --quiet             print errors only (--json is still written)\n"
            "  --verbose           print fit details and timings on stderr\n"
            "  --help              show this help\n\n"
            "Exit codes: 0 done (peak or no peak), 2 usage, 3 invalid input (e.g. errors\n"
@@ -96,14 +96,6 @@ static void print_result(const char *table, const clef_bandpowers *bp, const cle
                r->dof, r->dof == 1 ? "" : "s", r->p_value);
     else
         printf("  goodness       chi^2 = %.2g with no degrees of freedom (p undefined)\n", r->chi2);
-}
-
-/* 1 when both paths name the same existing file (the output would replace the input). */
-static int same_file(const char *a, const char *b)
-{
-    struct stat sa, sb;
-    return stat(a, &sa) == 0 && stat(b, &sb) == 0 && sa.st_dev == sb.st_dev &&
-           sa.st_ino == sb.st_ino;
 }
 
 int cmd_peak(int argc, char **argv)
@@ -162,11 +154,13 @@ int cmd_peak(int argc, char **argv)
         return cli_usage_error("peak", "--curv-sigma must be >= 0, got %g", o.curv_nsigma);
     cli_setup_logging();
     const char *table = argv[optind];
-    if (out_path && same_file(out_path, table)) {
-        fprintf(stderr, "clef: error: --output '%s' is the input table; give another file\n",
-                out_path);
-        return CLI_EXIT_INVALID;
-    }
+    if (out_path && cli_is_stdout(out_path))
+        return cli_usage_error("peak", "--output needs a file (a table cannot go to standard "
+                               "output; use --json - for the result)");
+    const char *inputs[2] = {table, cov_path}, *outputs[2] = {json_path, out_path};
+    const int rc_out = cli_check_outputs(inputs, 2, outputs, 2);
+    if (rc_out != CLI_EXIT_OK)
+        return rc_out;
 
     const double t0 = clef_wtime();
     clef_bandpowers *bp = NULL;
@@ -195,7 +189,11 @@ int cmd_peak(int argc, char **argv)
         return cli_fail(status);
     }
     cli_verbose("peak fit in %.3f s", clef_wtime() - t1);
-    print_result(table, bp, &r, cov_source);
+    if (cli_verbosity >= 1) {
+        cli_text_begin();
+        print_result(table, bp, &r, cov_source);
+        cli_text_end();
+    }
     clef_bandpowers_free(bp);
     if (json_path) {
         cJSON *j = result_json(table, &o, &r, cov_source);
