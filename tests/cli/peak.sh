@@ -53,7 +53,7 @@ check_json "$T/g.json" "j['found'] and j['covariance'] == 'full' and abs(j['l_pe
 
 # --output: the table with the result as PK_* keywords; read back by clef
 # peak (same numbers) and refused when it names the input.
-"$CLEF_BIN" peak --quiet --half-width 100 --cov "$T/para_cov.csv" --output "$T/with.fits" "$T/para.csv" \
+"$CLEF_BIN" peak --half-width 100 --cov "$T/para_cov.csv" --output "$T/with.fits" "$T/para.csv" \
     > "$T/w1.txt" || fail "--output exit $?"
 "$CLEF_PYTHON" -c "
 import sys
