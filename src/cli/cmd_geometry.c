@@ -213,7 +213,8 @@ static cJSON *result_json(const clef_geometry_opts *o, const clef_geometry_resul
                           const char *table)
 {
     cJSON *j = cJSON_CreateObject();
-    cJSON_AddStringToObject(j, "clef_version", CLEF_VERSION);
+    cJSON_AddStringToObject(j, "program", "clef");
+    cJSON_AddStringToObject(j, "version", CLEF_VERSION);
     if (table)
         cJSON_AddStringToObject(j, "table", table);
     else

@@ -60,10 +60,14 @@ static cJSON *result_json(const char *table, const clef_peak_opts *o, const clef
                           const char *cov_source)
 {
     cJSON *j = cJSON_CreateObject();
-    cJSON_AddStringToObject(j, "clef_version", CLEF_VERSION);
+    cJSON_AddStringToObject(j, "program", "clef");
+    cJSON_AddStringToObject(j, "version", CLEF_VERSION);
     cJSON_AddStringToObject(j, "table", table);
     cJSON_AddStringToObject(j, "covariance", cov_source);
     cli_peak_json(j, r, o);
+    cJSON *w = cJSON_AddArrayToObject(j, "warnings");
+    for (int i = 0; i < cli_nwarnings(); i++)
+        cJSON_AddItemToArray(w, cJSON_CreateString(cli_warning(i)));
     return j;
 }
 
