@@ -12,9 +12,12 @@
  * Propagation: Cov(D) = (K^-1 P) Cov(C~) (K^-1 P)^T.
  *
  * C is estimated from the measured pseudo-spectrum divided by the mask
- * moment mean(w_a w_b), averaged over each bin to damp its scatter, or from
- * a theory C_l times the signal filter plus the noise spectrum. */
+ * moment mean(w_a w_b), smoothed in D_l by a leave-one-out fit over the
+ * neighbouring bins (smooth_estimate), or from a theory C_l times the
+ * signal filter plus the noise spectrum. */
+#define _DEFAULT_SOURCE /* M_PI */
 #include <cblas.h>
+#include <lapacke.h>
 #include <math.h>
 #include <stdlib.h>
 #include <string.h>
@@ -30,21 +33,78 @@ int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int 
     return clef_coupling_create(out, lmax, wl, wl_lmax);
 }
 
-/* Bin-averaged full-sky estimate of one measured pseudo-spectrum. */
+/* Full-sky estimate of one measured pseudo-spectrum for the covariance
+ * (docs/method.md section 7).  C_l = pcl_l / w2 (the "improved" narrow-
+ * kernel approximation of Garcia-Garcia et al. 2019, section 3.2) is
+ * smoothed as D_l = l(l+1) C_l / 2 pi: an average of C_l over a bin would
+ * give its lowest multipoles, where C_l is largest, most of the weight
+ * (for a flat D_l the first bin's variance came out ~3x too large).
+ *
+ * Leave-one-out: the estimate over the multipoles of bin b is a quadratic
+ * in l fitted (least squares) to the bin means of D_l of up to two bins on
+ * each side, without bin b itself.  A covariance built from the bin's own
+ * fluctuation follows the data: a sky that fluctuates high gets a larger
+ * error, so errors and band powers correlate (0.97-1.00 across skies) and
+ * fits weighted by them are biased low (Hamimeche & Lewis 2008, PRD 77,
+ * 103013, section II, on data-dependent covariances).  Without b the
+ * estimate is independent of D_b (up to the mask's coupling of
+ * neighbouring bins).  A quadratic through +-1, +-2 bins follows a peak of
+ * width sigma to (bin width / sigma)^4 / 2 (0.3% for 20-wide bins on the
+ * first acoustic peak).  Bins without a neighbour on each side (the first
+ * and last bin of the decoupled range) use their own mean; so does a bin
+ * whose fit is not positive where positivity is required (auto-spectra). */
 static void smooth_estimate(const clef_bins *bins, const double *pcl, double w2, int lmax,
-                            double *c)
+                            int positive, double *c)
 {
+    const int nb = clef_bins_count(bins);
+    double *dmean = malloc((size_t)nb * sizeof *dmean);
     for (int l = 0; l <= lmax; l++)
         c[l] = pcl[l] / w2;
-    for (int b = 0; b < clef_bins_count(bins); b++) {
-        int lo = clef_bins_l_lo(bins, b), hi = clef_bins_l_hi(bins, b);
+    if (!dmean) { /* no smoothing without memory: still a usable estimate */
+        return;
+    }
+    for (int b = 0; b < nb; b++) {
+        const int lo = clef_bins_l_lo(bins, b), hi = clef_bins_l_hi(bins, b);
         double s = 0;
         for (int l = lo; l <= hi; l++)
-            s += c[l];
-        s /= (hi - lo + 1);
-        for (int l = lo; l <= hi; l++)
-            c[l] = s;
+            s += l * (l + 1.0) / (2 * M_PI) * c[l];
+        dmean[b] = s / (hi - lo + 1);
     }
+    for (int b = 0; b < nb; b++) {
+        const int lo = clef_bins_l_lo(bins, b), hi = clef_bins_l_hi(bins, b);
+        const double x0 = clef_bins_l_eff(bins, b);
+        double q[3] = {dmean[b], 0, 0}; /* D(l) = q0 + q1 (l - x0) + q2 (l - x0)^2 */
+        if (b > 0 && b + 1 < nb) {
+            /* Normal equations of the quadratic over the neighbours. */
+            double a[9] = {0}, y[3] = {0};
+            int np = 0;
+            for (int j = b - 2; j <= b + 2; j++) {
+                if (j < 0 || j >= nb || j == b)
+                    continue;
+                const double x = clef_bins_l_eff(bins, j) - x0, f[3] = {1, x, x * x};
+                for (int u = 0; u < 3; u++) {
+                    y[u] += f[u] * dmean[j];
+                    for (int v = 0; v < 3; v++)
+                        a[u * 3 + v] += f[u] * f[v];
+                }
+                np++;
+            }
+            if (np >= 3 && LAPACKE_dposv(LAPACK_ROW_MAJOR, 'U', 3, 1, a, 3, y, 1) == 0) {
+                int ok = 1;
+                for (int l = lo; l <= hi && positive; l++) {
+                    const double x = l - x0;
+                    ok &= y[0] + y[1] * x + y[2] * x * x > 0;
+                }
+                if (ok && isfinite(y[0] + y[1] + y[2]))
+                    memcpy(q, y, sizeof q);
+            }
+        }
+        for (int l = lo; l <= hi; l++) {
+            const double x = l - x0;
+            c[l] = (q[0] + q[1] * x + q[2] * x * x) * 2 * M_PI / (l * (l + 1.0));
+        }
+    }
+    free(dmean);
 }
 
 int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
@@ -64,10 +124,10 @@ int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
         }
     }
     /* c[0] = C^ab, c[1] = C^aa, c[2] = C^bb. */
-    smooth_estimate(in->bins, in->pcl[0], in->w2[0], lmax, c[0]);
+    smooth_estimate(in->bins, in->pcl[0], in->w2[0], lmax, !in->cross, c[0]);
     if (in->cross) {
-        smooth_estimate(in->bins, in->pcl[1], in->w2[1], lmax, c[1]);
-        smooth_estimate(in->bins, in->pcl[2], in->w2[2], lmax, c[2]);
+        smooth_estimate(in->bins, in->pcl[1], in->w2[1], lmax, 1, c[1]);
+        smooth_estimate(in->bins, in->pcl[2], in->w2[2], lmax, 1, c[2]);
     } else {
         memcpy(c[1], c[0], (size_t)n * sizeof(double));
         memcpy(c[2], c[0], (size_t)n * sizeof(double));

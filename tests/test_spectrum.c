@@ -64,19 +64,20 @@ static void random_alm(int lmax, const double *cl, unsigned long seed, double co
     gsl_rng_free(r);
 }
 
-/* Full sky, no noise, band-limited: the band powers are the exact binned
- * C_l of the map's own a_lm (the coupling matrix is the identity). */
-static void full_sky_case(int64_t nside, int lmax, double tol)
+/* Full sky, no noise, power up to lsim >= lmax: the band powers up to lmax
+ * are the exact binned C_l of the map's own a_lm (the coupling matrix is
+ * the identity), to the transform's accuracy. */
+static void full_sky_case(int64_t nside, int lmax, int lsim, double tol)
 {
-    double *cl = calloc(lmax + 1, sizeof *cl), *cl_alm = calloc(lmax + 1, sizeof *cl_alm);
-    for (int l = 2; l <= lmax; l++)
+    double *cl = calloc(lsim + 1, sizeof *cl), *cl_alm = calloc(lsim + 1, sizeof *cl_alm);
+    for (int l = 2; l <= lsim; l++)
         cl[l] = 1000.0 / (l * (l + 1.0)); /* flat D_l: every bin matters equally */
-    double complex *alm = calloc(clef_alm_size(lmax, lmax), sizeof *alm);
-    random_alm(lmax, cl, 11, alm);
-    assert_int_equal(clef_alm_cl(lmax, lmax, alm, NULL, cl_alm), CLEF_OK);
+    double complex *alm = calloc(clef_alm_size(lsim, lsim), sizeof *alm);
+    random_alm(lsim, cl, 11, alm);
+    assert_int_equal(clef_alm_cl(lsim, lsim, alm, NULL, cl_alm), CLEF_OK);
 
     clef_sht *sht = NULL;
-    assert_int_equal(clef_sht_create(&sht, nside, lmax, NULL), CLEF_OK);
+    assert_int_equal(clef_sht_create(&sht, nside, lsim, NULL), CLEF_OK);
     clef_map *map = NULL;
     assert_int_equal(clef_map_alloc(&map, nside), CLEF_OK);
     const double complex *ain[1] = {alm};
@@ -96,13 +97,14 @@ static void full_sky_case(int64_t nside, int lmax, double tol)
     clef_spectrum_result r;
     assert_int_equal(clef_spectrum_compute(map, NULL, mask, NULL, &o, &r), CLEF_OK);
     int nb = clef_bins_count(bins);
-    double *want = calloc(nb, sizeof *want);
+    double *want = calloc(nb, sizeof *want), worst = 0;
     bin_input(bins, cl_alm, lmax, want);
-    for (int b = 0; b < nb; b++)
+    for (int b = 0; b < nb; b++) {
+        worst = fmax(worst, fabs(r.bp->dl[b] / want[b] - 1));
         check_rel(r.bp->dl[b], want[b], tol, "exact binned C_l of the a_lm (Hivon et al. 2002 P)");
-    /* Full sky: the Gaussian covariance is diagonal-dominant and its
-     * diagonal is the cosmic variance 2 C^2/(2l+1) averaged over the bin
-     * (METHODS.md section 5, full-sky limit of the pseudo-C_l covariance). */
+    }
+    print_message("full sky nside %lld, lmax %d, power to %d: worst relative error %.2g\n",
+                  (long long)nside, lmax, lsim, worst);
     check_rel(r.fsky, 1.0, 1e-15, "full mask");
     clef_spectrum_result_free(&r);
     clef_bins_destroy(bins);
@@ -118,8 +120,18 @@ static void full_sky_case(int64_t nside, int lmax, double tol)
 static void test_full_sky_exact(void **state)
 {
     (void)state;
-    full_sky_case(32, 32, 1e-6);  /* lmax <= nside: 1e-6 (issue 6) */
-    full_sky_case(32, 64, 1e-3);  /* lmax = 2 nside: the transform's accuracy (docs/transforms.md) */
+    /* Band-limited at lmax: 1e-6 (lmax <= nside) and 1e-3 (lmax = 2 nside)
+     * when the map was analysed to lmax (issue 6).  The estimator now
+     * analyses to 3 nside - 1 for its hidden bins (issue 11), which costs a
+     * map band-limited at lmax some accuracy but is the more accurate
+     * choice for maps with power up to 3 nside - 1, as real maps have
+     * (docs/method.md section 5).  Tolerances: 1.5-2.5x the worst 4-wide
+     * bin measured (1.2e-5, 3.9e-3, 3.1e-3, 1.5e-3); every one is far below
+     * the cosmic variance of such a bin (~6% at l = 64). */
+    full_sky_case(32, 32, 32, 3e-5);
+    full_sky_case(32, 64, 64, 6e-3);
+    full_sky_case(32, 64, 95, 5e-3);
+    full_sky_case(64, 128, 191, 3e-3);
 }
 
 /* Ensemble of masked skies at nside 128 with a ~60% apodized galactic cut:
