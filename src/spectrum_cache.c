@@ -8,6 +8,7 @@
 #include "cache_impl.h"
 #include "clef/hash.h"
 #include "core_impl.h"
+#include "spectrum_deproj.h"
 #include "spectrum_impl.h"
 
 void clef_spectrum_mask_key(int64_t nside, int lmax_t, int iterations, const double *w2,
@@ -45,4 +46,35 @@ int clef_spectrum_mask_cache(const clef_spectrum_opts *o, const char *key, int l
         return 0;
     }
     return clef_cache_load(path, CLEF_CACHE_MASK_SPECTRA, key, 2, (size_t)lmax_t + 1, wl);
+}
+
+void clef_spectrum_deproj_key(const char *mask_key, const int nf[2], int lp, int iterations,
+                              char hex[65])
+{
+    clef_sha256 h;
+    unsigned char d[CLEF_SHA256_BYTES];
+    const int64_t v[4] = {nf[0], nf[1], lp, iterations};
+    const double lv[2] = {CLEF_DEPROJ_LEVEL, CLEF_DEPROJ_LMAX_MAX};
+    clef_sha256_init(&h);
+    clef_sha256_update(&h, "clef deprojection", 18);
+    clef_sha256_update(&h, CLEF_VERSION, sizeof CLEF_VERSION);
+    clef_sha256_update(&h, mask_key, 64);
+    clef_sha256_update(&h, v, sizeof v);
+    clef_sha256_update(&h, lv, sizeof lv);
+    clef_sha256_final(&h, d);
+    clef_sha256_hex(d, hex);
+}
+
+int clef_spectrum_deproj_cache(const clef_spectrum_opts *o, const char *key, size_t n,
+                               double *payload, int store)
+{
+    char dir[4096], path[4096 + 160];
+    const char *why = clef_cache_resolve_dir(o->cache_dir, dir, sizeof dir);
+    if (why || !clef_cache_path(path, sizeof path, dir, CLEF_CACHE_DEPROJ, key))
+        return 0;
+    if (store) {
+        clef_cache_store(dir, path, CLEF_CACHE_DEPROJ, key, 1, n, payload);
+        return 0;
+    }
+    return clef_cache_load(path, CLEF_CACHE_DEPROJ, key, 1, n, payload);
 }

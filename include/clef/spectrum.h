@@ -89,6 +89,8 @@ typedef struct clef_spectrum_result {
     int lmax_mask;             /* multipoles of the mask spectra used by the coupling */
     int nbins;                 /* band powers reported */
     int nbins_hidden;          /* bins decoupled but not reported */
+    int ldep;                  /* the monopole/dipole removal is corrected in the coupling for
+                                  l <= ldep (0 when the multipoles are kept) */
     int bin_width;             /* width used for automatic bins, 0 when bins were given */
     double fsky, w1, w2, w4, fsky_eff; /* moments of the (first) effective mask */
     double rcond;              /* reciprocal condition number of K */
