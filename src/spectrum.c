@@ -250,6 +250,8 @@ static int record_meta(clef_bandpowers *bp, const clef_spectrum_opts *o,
     CLEF_TRY(clef_bandpowers_meta_number(bp, "ITERS", o->iterations, "analysis iterations"));
     CLEF_TRY(clef_bandpowers_meta_text(bp, "MULTIPOL", o->keep_multipoles ? "kept" : "removed",
                                        "monopole and dipole"));
+    CLEF_TRY(clef_bandpowers_meta_number(bp, "DEPRLMAX", r->ldep,
+                                         "removal corrected in the coupling to this l"));
     CLEF_TRY(clef_bandpowers_meta_number(bp, "FSKY", r->fsky, "observed sky fraction"));
     CLEF_TRY(clef_bandpowers_meta_number(bp, "MASKW2", r->w2, "mean of mask^2"));
     CLEF_TRY(clef_bandpowers_meta_number(bp, "MASKW4", r->w4, "mean of mask^4"));

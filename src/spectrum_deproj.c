@@ -62,7 +62,7 @@ static void ring_templates(const mask_ring *g, int64_t j, double f[4])
 /* Fill map[p] = w[p] f_i(p) (w NULL: f_i alone). */
 static void template_map(int64_t nside, const double *w, int i, double *map)
 {
-#pragma omp parallel for schedule(dynamic, 16)
+#pragma omp parallel for schedule(dynamic, 16) if (nside >= 128)
     for (int64_t r = 1; r < 4 * nside; r++) {
         mask_ring g;
         mask_ring_info(nside, r, &g);
@@ -119,7 +119,7 @@ static int side_make(int64_t nside, int lp, int iterations, side *s)
         for (int j = 0; j <= i; j++) {
             template_map(nside, NULL, j, f);
             double acc = 0;
-#pragma omp parallel for reduction(+ : acc) schedule(static)
+#pragma omp parallel for reduction(+ : acc) schedule(static) if (npix >= (1 << 18))
             for (int64_t p = 0; p < npix; p++)
                 acc += map[p] * f[p];
             fm[i * s->nf + j] = fm[j * s->nf + i] = acc * area;
@@ -249,7 +249,7 @@ static int kh_terms(int64_t nd, int n, int lp, const side *t, const double *kern
                 const double *kk = kern;
                 double *dst = pm[j];
                 const double *src = g[j];
-#pragma omp parallel for schedule(static)
+#pragma omp parallel for schedule(static) if (npd >= (1 << 18))
                 for (int64_t p = 0; p < npd; p++)
                     dst[p] = kk[p] * src[p];
             }

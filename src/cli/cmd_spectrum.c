@@ -448,6 +448,7 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddBoolToObject(op, "pixel_window", so->pixel_window);
     cJSON_AddNumberToObject(op, "iterations", so->iterations);
     cJSON_AddBoolToObject(op, "multipoles_removed", !so->keep_multipoles);
+    cJSON_AddNumberToObject(op, "removal_corrected_to_l", r->ldep);
     cJSON_AddBoolToObject(op, "cache", so->use_cache);
     cJSON_AddStringToObject(op, "covariance_spectrum", so->theory_cl ? "theory" : "measured");
     cJSON_AddNumberToObject(op, "peak_l_min", so->peak.l_min);
