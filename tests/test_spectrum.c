@@ -963,6 +963,84 @@ static void test_deprojection_identity(void **state)
         clef_map_free(maps[i]);
 }
 
+/* The multipole-range rules (docs/method.md section 5): the default lmax is
+ * 2 nside trimmed to whole bins, a given lmax above 2 nside is warned
+ * about, a short remainder at the top joins the last bin, hidden bins run
+ * to 3 nside - 1 (or the beam floor), and the windows' rows sum to 1. */
+static char warn_text[4096];
+static void capture_warn(void *user, int level, const char *msg)
+{
+    (void)user;
+    if (level == CLEF_LOG_WARN)
+        snprintf(warn_text + strlen(warn_text), sizeof warn_text - strlen(warn_text), "%s\n", msg);
+}
+
+static void test_lmax_rules(void **state)
+{
+    (void)state;
+    const int64_t nside = 32;
+    clef_map *mask = cut_mask(nside, 20, 10), *map = NULL;
+    assert_int_equal(clef_map_alloc(&map, nside), CLEF_OK);
+    gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+    for (int64_t p = 0; p < map->npix; p++)
+        map->pix[p] = gsl_ran_gaussian(rng, 100.0);
+    gsl_rng_free(rng);
+    clef_spectrum_opts o;
+    clef_spectrum_opts_default(&o);
+    o.find_peak = 0;
+    o.bin_width = 20;
+    int l = 0;
+    assert_int_equal(clef_spectrum_default_lmax(&o, nside, &l), CLEF_OK);
+    assert_int_equal(l, 64);
+    clef_spectrum_result r;
+    clef_set_log(capture_warn, NULL);
+    warn_text[0] = 0;
+    assert_int_equal(clef_spectrum_compute(map, NULL, mask, NULL, &o, &r), CLEF_OK);
+    assert_int_equal(r.lmax, 61); /* 2 + 3 x 20 - 1: whole bins below 64 */
+    assert_int_equal(r.lmax_ext, 95);
+    assert_true(r.nbins_hidden >= 1);
+    assert_null(strstr(warn_text, "above 2*nside"));
+    for (int b = 0; b < r.nbins; b++) {
+        double s = 0;
+        for (int k = 0; k <= r.bp->win_lmax; k++)
+            s += r.bp->win[(size_t)b * (r.bp->win_lmax + 1) + k];
+        check_abs(s, 1.0, 1e-9, "rows sum to 1 (docs/formats-spectrum.md)");
+        check_abs(r.bp->win[(size_t)b * (r.bp->win_lmax + 1) + 1], 0.0, 0.0, "dipole removed");
+    }
+    clef_spectrum_result_free(&r);
+    o.lmax = 63; /* remainder 2 < half a width: joins the last bin */
+    assert_int_equal(clef_spectrum_compute(map, NULL, mask, NULL, &o, &r), CLEF_OK);
+    assert_int_equal(r.nbins, 3);
+    assert_int_equal(r.bp->l_lo[2], 42);
+    assert_int_equal(r.bp->l_hi[2], 63);
+    clef_spectrum_result_free(&r);
+    o.lmax = 55; /* remainder 14 >= half a width: a bin of its own */
+    assert_int_equal(clef_spectrum_compute(map, NULL, mask, NULL, &o, &r), CLEF_OK);
+    assert_int_equal(r.nbins, 3);
+    assert_int_equal(r.bp->l_hi[1], 41);
+    assert_int_equal(r.bp->l_hi[2], 55);
+    clef_spectrum_result_free(&r);
+    o.lmax = 80; /* above 2 nside: accepted with a warning */
+    assert_int_equal(clef_spectrum_compute(map, NULL, mask, NULL, &o, &r), CLEF_OK);
+    assert_non_null(strstr(warn_text, "lmax = 80 is above 2*nside = 64"));
+    clef_spectrum_result_free(&r);
+    /* A wide beam lowers the default lmax and the coupled range to where
+     * B_l p_l >= 0.01 (B_l = exp(-l(l+1) sigma^2/2): l(l+1) <= 2 ln(100) /
+     * sigma^2; FWHM 600 arcmin gives l <= 41 before the pixel window). */
+    o.lmax = 0;
+    o.beam_fwhm = 600;
+    warn_text[0] = 0;
+    assert_int_equal(clef_spectrum_compute(map, NULL, mask, NULL, &o, &r), CLEF_OK);
+    const double sig = 600 / 60.0 * M_PI / 180 / sqrt(8 * log(2.0));
+    assert_true(r.lmax_ext < 96 && r.lmax_ext * (r.lmax_ext + 1.0) <= 2 * log(100.0) / (sig * sig));
+    assert_true(r.lmax <= r.lmax_ext);
+    assert_non_null(strstr(warn_text, "falls below"));
+    clef_spectrum_result_free(&r);
+    clef_set_log(NULL, NULL);
+    clef_map_free(map);
+    clef_map_free(mask);
+}
+
 /* Error paths: nside mismatch, empty mask, lmax too high, bins that leave
  * the coupling singular, a second mask without a second map. */
 static void test_errors(void **state)
@@ -1093,6 +1171,7 @@ int main(void)
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_multipoles),
         cmocka_unit_test(test_deprojection_identity),
+        cmocka_unit_test(test_lmax_rules),
         cmocka_unit_test(test_full_sky_exact),
         cmocka_unit_test(test_errors),
         cmocka_unit_test(test_threads),
