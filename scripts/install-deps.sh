@@ -9,7 +9,7 @@ libchealpix-dev libcfitsio-dev libfftw3-dev
 liblapacke-dev libopenblas-dev libgsl-dev
 libcjson-dev libcairo2-dev libcmocka-dev
 fitsverify poppler-utils
-python3 python3-numpy python3-astropy python3-scipy"
+python3 python3-numpy python3-astropy python3-scipy python3-colorspacious"
 
 missing=""
 for p in $PKGS; do

@@ -568,8 +568,9 @@ static int stage_transform(run *r)
 static int auto_bins(run *r, int width)
 {
     if (width > r->lmax - 1)
-        CLEF_FAIL(CLEF_EINVAL, "bin width %d does not fit between l = 2 and lmax = %d", width,
-                  r->lmax);
+        CLEF_FAIL(CLEF_EINVAL, "bin width %d%s does not fit between l = 2 and lmax = %d",
+                  width, r->o.bin_width > 0 ? "" : " (the mask's coupling width: its "
+                  "observed region is too small to resolve narrower bins)", r->lmax);
     int n = (r->lmax - 1) / width;
     const int rest = r->lmax - 1 - n * width;
     if (r->lmax_auto && rest > 0) {

@@ -13,7 +13,7 @@ C="$CLEF_BIN"
 # latitude-cut mask.
 "$C" simulate --quiet --nside 64 --model --seed 3 --beam-fwhm 30 --noise-depth 30 --splits 2 \
     --coordsys G --output "$T/sky.fits" || fail "simulate"
-"$C" mask --quiet --nside 64 --latitude-cut 15 --apodize c2 --apod-scale 5 --coordsys G \
+"$C" mask --quiet --nside 64 --latitude-cut 15 --taper c2 --taper-width 5 --coordsys G \
     --output "$T/mask.fits" || fail "mask"
 "$C" mask --quiet --nside 32 --output "$T/mask32.fits" || fail "mask32"
 "$C" mask --quiet --nside 64 --patch 0,90,0.1 --output "$T/empty.fits" || fail "empty mask"
@@ -38,7 +38,7 @@ assert j["program"] == "clef" and j["spectrum"] == "cross", j["spectrum"]
 assert len(j["inputs"]) == 3 and all(len(i["sha256"]) == 64 for i in j["inputs"])
 import hashlib
 assert j["inputs"][0]["sha256"] == hashlib.sha256(open(t + "/sky_split1.fits", "rb").read()).hexdigest()
-assert 0.6 < j["sky"]["fsky"] < 0.8, j["sky"]
+assert 0.6 < j["sky"]["f_sky"] < 0.8, j["sky"]
 assert j["options"]["lmax"] <= 191 and j["options"]["beam_fwhm_arcmin"] == 30
 assert "total" in j["timings_s"] and "coupling" in j["timings_s"]
 with fits.open(t + "/run.fits") as h:
@@ -83,13 +83,20 @@ import numpy as np
 l = np.arange(101); s = 30 / 60 * np.pi / 180 / np.sqrt(8 * np.log(2))
 np.savetxt('$T/beam.txt', np.c_[l, np.exp(-l * (l + 1) * s * s / 2)], fmt='%d %.12g', header='l B_l')
 " || fail "beam table"
-"$C" spectrum "$T/sky_split1.fits" --mask "$T/mask.fits" --beam-file "$T/beam.txt" --format json \
-    --output "$T/btab" > /dev/null 2>&1 || fail "spectrum with a beam table"
+"$C" spectrum "$T/sky_split1.fits" --mask "$T/mask.fits" --beam-table "$T/beam.txt" --format json \
+    --output "$T/btab" > /dev/null 2> "$T/btab.err" || fail "spectrum with a beam table"
 "$CLEF_PYTHON" -c "
 import json, sys
 j = json.load(open(sys.argv[1])); o = j['options']
 ok = o['lmax'] <= 100 and o['lmax_coupled'] == 100 and any('beam table stops at l = 100' in w for w in j['warnings'])
 sys.exit(0 if ok else 1)" "$T/btab.json" || fail "lmax not capped by the beam table: $(cat "$T/btab.json")"
+# ... and the cap is not silent: its reason, with the file, is in stderr and
+# in the JSON warnings.
+grep -q "lmax capped at 100: the beam table" "$T/btab.err" || fail "no cap warning: $(cat "$T/btab.err")"
+"$CLEF_PYTHON" -c "import json,sys; j=json.load(open(sys.argv[1])); sys.exit(0 if any('lmax capped at 100' in w and 'beam.txt' in w for w in j['warnings']) else 1)" \
+    "$T/btab.json" || fail "cap warning missing from the JSON warnings"
+"$C" spectrum "$T/sky_split1.fits" --mask "$T/mask.fits" --beam-file "$T/beam.txt" -o "$T/bad" \
+    > /dev/null 2>&1 && fail "the old option name --beam-file is still accepted"
 
 # Default lmax: at most 2 nside, whole bins, hidden bins above it; a given
 # lmax above 2 nside is warned about on stderr and in the JSON.
