@@ -967,6 +967,18 @@ static void test_deprojection_identity(void **state)
  * 2 nside trimmed to whole bins, a given lmax above 2 nside is warned
  * about, a short remainder at the top joins the last bin, hidden bins run
  * to 3 nside - 1 (or the beam floor), and the windows' rows sum to 1. */
+/* A map of independent Gaussian pixels (GSL, fixed seed). */
+static clef_map *white_map(int64_t nside, double sigma)
+{
+    clef_map *m = NULL;
+    assert_int_equal(clef_map_alloc(&m, nside), CLEF_OK);
+    gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+    for (int64_t p = 0; p < m->npix; p++)
+        m->pix[p] = gsl_ran_gaussian(rng, sigma);
+    gsl_rng_free(rng);
+    return m;
+}
+
 static char warn_text[4096];
 static void capture_warn(void *user, int level, const char *msg)
 {
@@ -979,12 +991,7 @@ static void test_lmax_rules(void **state)
 {
     (void)state;
     const int64_t nside = 32;
-    clef_map *mask = cut_mask(nside, 20, 10), *map = NULL;
-    assert_int_equal(clef_map_alloc(&map, nside), CLEF_OK);
-    gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
-    for (int64_t p = 0; p < map->npix; p++)
-        map->pix[p] = gsl_ran_gaussian(rng, 100.0);
-    gsl_rng_free(rng);
+    clef_map *mask = cut_mask(nside, 20, 10), *map = white_map(nside, 100.0);
     clef_spectrum_opts o;
     clef_spectrum_opts_default(&o);
     o.find_peak = 0;
@@ -1102,12 +1109,7 @@ static void test_threads(void **state)
 {
     (void)state;
     const int64_t nside = 32;
-    clef_map *mask = cut_mask(nside, 20, 10), *map = NULL;
-    assert_int_equal(clef_map_alloc(&map, nside), CLEF_OK);
-    gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
-    for (int64_t p = 0; p < map->npix; p++)
-        map->pix[p] = gsl_ran_gaussian(rng, 1.0);
-    gsl_rng_free(rng);
+    clef_map *mask = cut_mask(nside, 20, 10), *map = white_map(nside, 1.0);
     clef_spectrum_opts o;
     clef_spectrum_opts_default(&o);
     o.use_cache = 0;
