@@ -74,6 +74,40 @@ static void template_map(int64_t nside, const double *w, int i, double *map)
     }
 }
 
+/* F_ij = int w f_i f_j (pixel sums times the pixel area) in one pass; the
+ * rings are summed in order, so F does not depend on the thread count. */
+static int template_normal(int64_t nside, const double *w, int nf, double fm[16])
+{
+    const int64_t nrings = 4 * nside - 1;
+    double(*part)[16] = calloc((size_t)nrings, sizeof *part);
+    if (!part)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for the deprojection templates");
+#pragma omp parallel for schedule(dynamic, 16) if (nside >= 128)
+    for (int64_t r = 0; r < nrings; r++) {
+        mask_ring g;
+        mask_ring_info(nside, r + 1, &g);
+        for (int64_t j = 0; j < g.n; j++) {
+            const double wp = w[g.first + j];
+            if (wp == 0)
+                continue;
+            double f[4];
+            ring_templates(&g, j, f);
+            for (int a = 0; a < nf; a++)
+                for (int b = 0; b < nf; b++)
+                    part[r][a * nf + b] += wp * f[a] * f[b];
+        }
+    }
+    const double area = 4.0 * M_PI / (12.0 * (double)nside * (double)nside);
+    for (int k = 0; k < nf * nf; k++) {
+        double acc = 0;
+        for (int64_t r = 0; r < nrings; r++)
+            acc += part[r][k];
+        fm[k] = acc * area;
+    }
+    free(part);
+    return CLEF_OK;
+}
+
 /* One side of the pair: the weights, the number of templates, the
  * templates' coefficients G_i (to lp) and F^-1. */
 typedef struct side {
@@ -89,24 +123,24 @@ static void side_free(side *s)
         free(s->g[i]);
 }
 
-/* Analyse w f_i for every template (one map buffer reused: at high nside a
- * map is hundreds of MB) and invert F = int w f f^T (pixel sums times the
- * pixel area; F is the normal matrix of the fit itself). */
+/* Analyse w f_i for every template to lp (one map buffer reused: at high
+ * nside a map is hundreds of MB; earlier coefficients are replaced) and
+ * invert F = int w f f^T (the normal matrix of the fit itself). */
 static int side_make(int64_t nside, int lp, int iterations, side *s)
 {
     const int64_t npix = 12 * nside * nside;
-    const double area = 4.0 * M_PI / (double)npix;
     double *map = clef_alloc_large((size_t)npix * sizeof *map);
-    double *f = clef_alloc_large((size_t)npix * sizeof *f);
     clef_sht *sht = NULL;
     int status = CLEF_OK;
-    if (!map || !f) {
+    if (!map) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the deprojection templates");
         goto fail;
     }
     CLEF_CHECK(clef_sht_create(&sht, nside, lp, NULL));
     double fm[16] = {0};
+    CLEF_CHECK(template_normal(nside, s->w, s->nf, fm));
     for (int i = 0; i < s->nf; i++) {
+        free(s->g[i]);
         if (!(s->g[i] = malloc(clef_alm_size(lp, lp) * sizeof(double complex)))) {
             status = clef_fail(CLEF_ENOMEM, "out of memory for the deprojection templates");
             goto fail;
@@ -115,15 +149,6 @@ static int side_make(int64_t nside, int lp, int iterations, side *s)
         const double *in[1] = {map};
         double complex *out[1] = {s->g[i]};
         CLEF_CHECK(clef_sht_analysis(sht, 1, in, out, iterations));
-        /* F_ij = sum_p w f_i f_j area: map holds w f_i, f the template j. */
-        for (int j = 0; j <= i; j++) {
-            template_map(nside, NULL, j, f);
-            double acc = 0;
-#pragma omp parallel for reduction(+ : acc) schedule(static) if (npix >= (1 << 18))
-            for (int64_t p = 0; p < npix; p++)
-                acc += map[p] * f[p];
-            fm[i * s->nf + j] = fm[j * s->nf + i] = acc * area;
-        }
     }
     /* F^-1 by Cholesky (F is the positive definite normal matrix of the
      * fit that succeeded for these templates). */
@@ -141,7 +166,6 @@ static int side_make(int64_t nside, int lp, int iterations, side *s)
 fail:
     clef_sht_destroy(sht);
     free(map);
-    free(f);
     return status;
 }
 
@@ -290,37 +314,19 @@ static int kh_terms(int64_t nd, int n, int lp, const side *t, const double *kern
     return status;
 }
 
-int clef_spectrum_deproj(const clef_spectrum_deproj_in *in, clef_spectrum_deproj_out *out)
+/* S_l / w2 of each side (the larger) for l <= lp: the removed fraction per
+ * mode. */
+static int removed_fraction(const side *s, int same, int lp, double w2, double *sl)
 {
-    memset(out, 0, sizeof *out);
-    const int64_t nside = in->nside, npix = 12 * nside * nside;
-    const int same = in->w[1] == in->w[0] && in->nf[1] == in->nf[0];
-    int lp = in->lmax < CLEF_DEPROJ_LMAX_MAX ? in->lmax : CLEF_DEPROJ_LMAX_MAX;
-    side s[2];
-    memset(s, 0, sizeof s);
-    double *kern[2] = {NULL}, *acc[2] = {NULL}, *cab = NULL, *q = NULL, *sl = NULL;
-    int status = CLEF_OK;
-    for (int k = 0; k <= !same; k++) {
-        s[k].w = in->w[k];
-        s[k].nf = in->nf[k];
-        CLEF_CHECK(side_make(nside, lp, in->iterations, &s[k]));
-    }
-    side *sa = &s[0], *sb = &s[same ? 0 : 1];
-    /* S_l of each side; ldep where the larger falls below the level. */
-    sl = calloc((size_t)lp + 1, sizeof *sl);
     double *tmp = malloc((size_t)(lp + 1) * sizeof *tmp);
-    if (!sl || !tmp) {
+    double *sk = malloc((size_t)(lp + 1) * sizeof *sk);
+    if (!tmp || !sk) {
         free(tmp);
-        status = clef_fail(CLEF_ENOMEM, "out of memory for the deprojection");
-        goto fail;
+        free(sk);
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for the deprojection");
     }
     for (int k = 0; k <= !same; k++) {
-        double *sk = calloc((size_t)lp + 1, sizeof *sk);
-        if (!sk) {
-            free(tmp);
-            status = clef_fail(CLEF_ENOMEM, "out of memory for the deprojection");
-            goto fail;
-        }
+        memset(sk, 0, (size_t)(lp + 1) * sizeof *sk);
         for (int i = 0; i < s[k].nf; i++)
             for (int j = 0; j < s[k].nf; j++) {
                 cross_cl(lp, s[k].g[i], s[k].g[j], lp, tmp);
@@ -328,16 +334,48 @@ int clef_spectrum_deproj(const clef_spectrum_deproj_in *in, clef_spectrum_deproj
                     sk[l] += s[k].finv[i * s[k].nf + j] * tmp[l];
             }
         for (int l = 0; l <= lp; l++)
-            sl[l] = fmax(sl[l], sk[l] / in->w2);
-        free(sk);
+            sl[l] = fmax(sl[l], sk[l] / w2);
     }
     free(tmp);
-    int n = 1; /* l = 0, 1 always: the templates' own multipoles */
-    for (int l = 0; l <= lp; l++)
-        if (sl[l] >= CLEF_DEPROJ_LEVEL && l > n)
-            n = l;
-    if (n > lp)
-        n = lp;
+    free(sk);
+    return CLEF_OK;
+}
+
+int clef_spectrum_deproj(const clef_spectrum_deproj_in *in, clef_spectrum_deproj_out *out)
+{
+    memset(out, 0, sizeof *out);
+    const int64_t nside = in->nside;
+    const int same = in->w[1] == in->w[0] && in->nf[1] == in->nf[0];
+    /* A first look to l = 64, where smooth masks stop; to the full
+     * CLEF_DEPROJ_LMAX_MAX only when the templates still carry power near
+     * its end (sharp edges, small patches). */
+    const int lcap = in->lmax < CLEF_DEPROJ_LMAX_MAX ? in->lmax : CLEF_DEPROJ_LMAX_MAX;
+    int lp = lcap < 64 ? lcap : 64;
+    side s[2];
+    memset(s, 0, sizeof s);
+    double *kern[2] = {NULL}, *acc[2] = {NULL}, *cab = NULL, *q = NULL, *sl = NULL;
+    int status = CLEF_OK, n = 1;
+    for (;;) {
+        for (int k = 0; k <= !same; k++) {
+            s[k].w = in->w[k];
+            s[k].nf = in->nf[k];
+            CLEF_CHECK(side_make(nside, lp, in->iterations, &s[k]));
+        }
+        free(sl);
+        if (!(sl = calloc((size_t)lp + 1, sizeof *sl))) {
+            status = clef_fail(CLEF_ENOMEM, "out of memory for the deprojection");
+            goto fail;
+        }
+        CLEF_CHECK(removed_fraction(s, same, lp, in->w2, sl));
+        n = 1; /* l = 0, 1 always: the templates' own multipoles */
+        for (int l = 0; l <= lp; l++)
+            if (sl[l] >= CLEF_DEPROJ_LEVEL && l > n)
+                n = l;
+        if (lp == lcap || 4 * n < 3 * lp)
+            break;
+        lp = lcap;
+    }
+    side *sa = &s[0], *sb = &s[same ? 0 : 1];
     out->level_at_cut = n < lp ? sl[n + 1] : sl[lp];
     out->truncated = n == lp && lp < in->lmax && sl[lp] >= CLEF_DEPROJ_LEVEL;
     out->ldep = n;
@@ -420,7 +458,6 @@ fail:
     free(cab);
     free(q);
     free(sl);
-    (void)npix;
     if (status != CLEF_OK)
         clef_spectrum_deproj_free(out);
     return status;
