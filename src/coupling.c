@@ -259,6 +259,33 @@ void clef_coupling_apply(const clef_coupling *c, const double *cl, double *out)
     }
 }
 
+int clef_coupling_add_block(clef_coupling *c, int n, const double *d, double scale)
+{
+    if (!c || !d || n < 0 || n > c->lmax + 1)
+        CLEF_FAIL(CLEF_EINVAL, "coupling: correction block of %d rows for lmax %d", n,
+                  c ? c->lmax : -1);
+    for (size_t i = 0; i < (size_t)n * (size_t)n; i++)
+        if (!isfinite(d[i]))
+            CLEF_FAIL(CLEF_EINVAL, "coupling: correction element (%zu, %zu) is not finite",
+                      i / (size_t)n, i % (size_t)n);
+    const size_t m = (size_t)c->lmax + 1;
+    for (size_t l = 0; l < (size_t)n; l++)
+        for (size_t lp = 0; lp < (size_t)n; lp++)
+            c->m[l * m + lp] += scale * d[l * (size_t)n + lp];
+    return CLEF_OK;
+}
+
+int clef_coupling_zero_columns(clef_coupling *c, int lcut)
+{
+    if (!c || lcut < 0 || lcut > c->lmax)
+        CLEF_FAIL(CLEF_EINVAL, "coupling: columns 0..%d outside 0..%d", lcut, c ? c->lmax : -1);
+    const size_t m = (size_t)c->lmax + 1;
+    for (size_t l = 0; l < m; l++)
+        for (int lp = 0; lp <= lcut; lp++)
+            c->m[l * m + (size_t)lp] = 0.0;
+    return CLEF_OK;
+}
+
 int clef_coupling_width(const double *wl, int wl_lmax, double level)
 {
     if (!wl || wl_lmax < 0 || !(wl[0] > 0))

@@ -5,7 +5,8 @@
  *   0   char[8]  magic "CLEFCPLC"
  *   8   u32      format version (CACHE_FORMAT)
  *   12  u32      byte-order mark 0x01020304 (as written by this machine)
- *   16  u32      kind: 1 = unbinned M, 2 = binned K, 3 = mask spectra (spectrum module)
+ *   16  u32      kind: 1 = unbinned M, 2 = binned K, 3 = mask spectra, 4 = deprojection
+ *                 correction (spectrum module)
  *   20  u32      reserved, 0
  *   24  u64      rows
  *   32  u64      columns
@@ -139,7 +140,10 @@ int clef_cache_path(char *buf, size_t n, const char *dir, int kind, const char *
 {
     const int len =
         snprintf(buf, n, "%s/%s-%s.bin", dir,
-                 kind == KIND_M ? "coupling-M" : kind == KIND_K ? "coupling-K" : "mask-spectra",
+                 kind == KIND_M   ? "coupling-M"
+                 : kind == KIND_K ? "coupling-K"
+                 : kind == CLEF_CACHE_MASK_SPECTRA ? "mask-spectra"
+                                                   : "deprojection",
                  key);
     return len >= 0 && (size_t)len < n;
 }

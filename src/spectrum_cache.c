@@ -8,6 +8,7 @@
 #include "cache_impl.h"
 #include "clef/hash.h"
 #include "core_impl.h"
+#include "spectrum_deproj.h"
 #include "spectrum_impl.h"
 
 void clef_spectrum_mask_key(int64_t nside, int lmax_t, int iterations, const double *w2,
@@ -28,21 +29,53 @@ void clef_spectrum_mask_key(int64_t nside, int lmax_t, int iterations, const dou
     clef_sha256_hex(d, hex);
 }
 
-int clef_spectrum_mask_cache(const clef_spectrum_opts *o, const char *key, int lmax_t,
-                             double *wl, int store)
+/* Load (store = 0; 1 on a hit) or save (store = 1) a rows x cols payload of
+ * one kind in the cache folder; problems are warnings, never errors. */
+static int cache_io(const clef_spectrum_opts *o, int kind, const char *what, const char *key,
+                    size_t rows, size_t cols, double *data, int store)
 {
     char dir[4096], path[4096 + 160];
     const char *why = clef_cache_resolve_dir(o->cache_dir, dir, sizeof dir);
     if (why) {
         if (store)
-            clef_log(CLEF_LOG_WARN, "mask spectra not cached: %s", why);
+            clef_log(CLEF_LOG_WARN, "%s not cached: %s", what, why);
         return 0;
     }
-    if (!clef_cache_path(path, sizeof path, dir, CLEF_CACHE_MASK_SPECTRA, key))
+    if (!clef_cache_path(path, sizeof path, dir, kind, key))
         return 0;
     if (store) {
-        clef_cache_store(dir, path, CLEF_CACHE_MASK_SPECTRA, key, 2, (size_t)lmax_t + 1, wl);
+        clef_cache_store(dir, path, kind, key, rows, cols, data);
         return 0;
     }
-    return clef_cache_load(path, CLEF_CACHE_MASK_SPECTRA, key, 2, (size_t)lmax_t + 1, wl);
+    return clef_cache_load(path, kind, key, rows, cols, data);
+}
+
+int clef_spectrum_mask_cache(const clef_spectrum_opts *o, const char *key, int lmax_t,
+                             double *wl, int store)
+{
+    return cache_io(o, CLEF_CACHE_MASK_SPECTRA, "mask spectra", key, 2, (size_t)lmax_t + 1, wl,
+                    store);
+}
+
+void clef_spectrum_deproj_key(const char *mask_key, const int nf[2], int lp, int iterations,
+                              char hex[65])
+{
+    clef_sha256 h;
+    unsigned char d[CLEF_SHA256_BYTES];
+    const int64_t v[4] = {nf[0], nf[1], lp, iterations};
+    const double lv[2] = {CLEF_DEPROJ_LEVEL, CLEF_DEPROJ_LMAX_MAX};
+    clef_sha256_init(&h);
+    clef_sha256_update(&h, "clef deprojection", 18);
+    clef_sha256_update(&h, CLEF_VERSION, sizeof CLEF_VERSION);
+    clef_sha256_update(&h, mask_key, 64);
+    clef_sha256_update(&h, v, sizeof v);
+    clef_sha256_update(&h, lv, sizeof lv);
+    clef_sha256_final(&h, d);
+    clef_sha256_hex(d, hex);
+}
+
+int clef_spectrum_deproj_cache(const clef_spectrum_opts *o, const char *key, size_t n,
+                               double *payload, int store)
+{
+    return cache_io(o, CLEF_CACHE_DEPROJ, "deprojection correction", key, 1, n, payload, store);
 }

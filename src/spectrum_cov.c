@@ -12,9 +12,12 @@
  * Propagation: Cov(D) = (K^-1 P) Cov(C~) (K^-1 P)^T.
  *
  * C is estimated from the measured pseudo-spectrum divided by the mask
- * moment mean(w_a w_b), averaged over each bin to damp its scatter, or from
- * a theory C_l times the signal filter plus the noise spectrum. */
+ * moment mean(w_a w_b), smoothed in D_l by a leave-one-out fit over the
+ * neighbouring bins (smooth_estimate), or from a theory C_l times the
+ * signal filter plus the noise spectrum. */
+#define _DEFAULT_SOURCE /* M_PI */
 #include <cblas.h>
+#include <lapacke.h>
 #include <math.h>
 #include <stdlib.h>
 #include <string.h>
@@ -30,21 +33,90 @@ int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int 
     return clef_coupling_create(out, lmax, wl, wl_lmax);
 }
 
-/* Bin-averaged full-sky estimate of one measured pseudo-spectrum. */
+/* Full-sky estimate of one measured pseudo-spectrum for the covariance
+ * (docs/method.md section 7).  C_l = pcl_l / w2 (the "improved" narrow-
+ * kernel approximation of Garcia-Garcia et al. 2019, section 3.2) is
+ * smoothed as D_l = l(l+1) C_l / 2 pi: an average of C_l over a bin would
+ * give its lowest multipoles, where C_l is largest, most of the weight
+ * (for a flat D_l the first bin's variance came out ~3x too large).
+ *
+ * Leave-one-out: over the multipoles of bin b the estimate is a cubic in l
+ * fitted (least squares, weights 2l+1, the inverse cosmic variance of a
+ * flat D_l) to the D_l of the multipoles of up to two bins on each side,
+ * without bin b itself.  A covariance built from the bin's own fluctuation
+ * follows the data: a sky that fluctuates high gets a larger error, so
+ * errors and band powers correlate (0.97-1.00 across skies) and fits
+ * weighted by them are biased low (Hamimeche & Lewis 2008, PRD 77, 103013,
+ * section II, on data-dependent covariances).  Without b the estimate is
+ * independent of D_b (up to the mask's coupling of neighbouring bins).  On
+ * the analytic spectrum the cubic is within 0.6% of the true bin variance
+ * for 10-wide bins and 4% for 30-wide ones (a quadratic through the bin
+ * means: 16% for 30-wide bins next to the first).  Bins without a
+ * neighbour on each side (the first and last of the decoupled range) use
+ * their own mean; so does a bin whose fit is singular or, where positivity
+ * is required (auto-spectra), not positive. */
 static void smooth_estimate(const clef_bins *bins, const double *pcl, double w2, int lmax,
-                            double *c)
+                            int positive, double *c)
 {
+    const int nb = clef_bins_count(bins);
+    double *d = malloc((size_t)(lmax + 1) * sizeof *d);
+    double *dmean = malloc((size_t)nb * sizeof *dmean);
     for (int l = 0; l <= lmax; l++)
         c[l] = pcl[l] / w2;
-    for (int b = 0; b < clef_bins_count(bins); b++) {
-        int lo = clef_bins_l_lo(bins, b), hi = clef_bins_l_hi(bins, b);
+    if (!d || !dmean) { /* no smoothing without memory: still a usable estimate */
+        free(d);
+        free(dmean);
+        return;
+    }
+    for (int l = 0; l <= lmax; l++)
+        d[l] = l * (l + 1.0) / (2 * M_PI) * c[l];
+    for (int b = 0; b < nb; b++) {
+        const int lo = clef_bins_l_lo(bins, b), hi = clef_bins_l_hi(bins, b);
         double s = 0;
         for (int l = lo; l <= hi; l++)
-            s += c[l];
-        s /= (hi - lo + 1);
-        for (int l = lo; l <= hi; l++)
-            c[l] = s;
+            s += d[l];
+        dmean[b] = s / (hi - lo + 1);
     }
+    for (int b = 0; b < nb; b++) {
+        const int lo = clef_bins_l_lo(bins, b), hi = clef_bins_l_hi(bins, b);
+        const double x0 = clef_bins_l_eff(bins, b);
+        const int j0 = b - 2 < 0 ? 0 : b - 2, j1 = b + 2 >= nb ? nb - 1 : b + 2;
+        /* D(l) = sum_k q_k u^k, u = (l - x0) / h (scaled for conditioning). */
+        const double h = 0.5 * (clef_bins_l_hi(bins, j1) - clef_bins_l_lo(bins, j0) + 1);
+        double q[4] = {dmean[b], 0, 0, 0};
+        if (b > 0 && b + 1 < nb) {
+            double a[16] = {0}, y[4] = {0};
+            for (int j = j0; j <= j1; j++) {
+                if (j == b)
+                    continue;
+                for (int l = clef_bins_l_lo(bins, j); l <= clef_bins_l_hi(bins, j); l++) {
+                    const double u = (l - x0) / h, wt = 2.0 * l + 1.0;
+                    const double f[4] = {1, u, u * u, u * u * u};
+                    for (int r = 0; r < 4; r++) {
+                        y[r] += wt * f[r] * d[l];
+                        for (int k = 0; k < 4; k++)
+                            a[r * 4 + k] += wt * f[r] * f[k];
+                    }
+                }
+            }
+            if (LAPACKE_dposv(LAPACK_ROW_MAJOR, 'U', 4, 1, a, 4, y, 1) == 0 &&
+                isfinite(y[0] + y[1] + y[2] + y[3])) {
+                int ok = 1;
+                for (int l = lo; l <= hi && positive; l++) {
+                    const double u = (l - x0) / h;
+                    ok &= y[0] + u * (y[1] + u * (y[2] + u * y[3])) > 0;
+                }
+                if (ok)
+                    memcpy(q, y, sizeof q);
+            }
+        }
+        for (int l = lo; l <= hi; l++) {
+            const double u = (l - x0) / h;
+            c[l] = (q[0] + u * (q[1] + u * (q[2] + u * q[3]))) * 2 * M_PI / (l * (l + 1.0));
+        }
+    }
+    free(d);
+    free(dmean);
 }
 
 int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
@@ -64,10 +136,10 @@ int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
         }
     }
     /* c[0] = C^ab, c[1] = C^aa, c[2] = C^bb. */
-    smooth_estimate(in->bins, in->pcl[0], in->w2[0], lmax, c[0]);
+    smooth_estimate(in->bins, in->pcl[0], in->w2[0], lmax, !in->cross, c[0]);
     if (in->cross) {
-        smooth_estimate(in->bins, in->pcl[1], in->w2[1], lmax, c[1]);
-        smooth_estimate(in->bins, in->pcl[2], in->w2[2], lmax, c[2]);
+        smooth_estimate(in->bins, in->pcl[1], in->w2[1], lmax, 1, c[1]);
+        smooth_estimate(in->bins, in->pcl[2], in->w2[2], lmax, 1, c[2]);
     } else {
         memcpy(c[1], c[0], (size_t)n * sizeof(double));
         memcpy(c[2], c[0], (size_t)n * sizeof(double));

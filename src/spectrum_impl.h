@@ -33,6 +33,15 @@ int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int 
 void clef_spectrum_mask_key(int64_t nside, int lmax_t, int iterations, const double *w2,
                             const double *w1, char hex[65]);
 
+/* Cache key of the deprojection correction: the mask key, the templates
+ * removed from each map, the correction's range and the iterations. */
+void clef_spectrum_deproj_key(const char *mask_key, const int nf[2], int lp, int iterations,
+                              char hex[65]);
+/* The correction as one payload of n doubles (store = 0: load, 1 on a hit;
+ * store = 1: save).  Cache problems are warnings, never errors. */
+int clef_spectrum_deproj_cache(const clef_spectrum_opts *o, const char *key, size_t n,
+                               double *payload, int store);
+
 /* The mask spectra W_l and W_l[w_a w_b] (2 x (lmax_t + 1) doubles in wl)
  * in the cache folder under `key`.  store = 0: load, returning 1 on a hit;
  * store = 1: save (returns 0).  Cache problems are warnings, never errors. */

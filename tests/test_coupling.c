@@ -296,6 +296,31 @@ static void test_binned_recovers_band_powers(void **state)
     clef_bins_destroy(b8);
     free(win);
     clef_coupling_binned_destroy(kb);
+    /* Corrections of M: a block added, columns zeroed, bad arguments refused. */
+    {
+        clef_coupling *cc = NULL;
+        make_coupling(&cc, 8, wl, 2 * L);
+        const double *mc = clef_coupling_matrix(cc);
+        const double before = mc[3 * 9 + 2], before1 = mc[5 * 9 + 1];
+        double blk[16];
+        for (int i = 0; i < 16; i++)
+            blk[i] = 0.001 * i;
+        assert_int_equal(clef_coupling_add_block(cc, 4, blk, -2.0), CLEF_OK);
+        check_abs(mc[3 * 9 + 2], before - 2.0 * 0.001 * 14, 1e-15, "M - 2 d");
+        check_abs(mc[5 * 9 + 1], before1, 0, "outside the block");
+        assert_int_equal(clef_coupling_zero_columns(cc, 1), CLEF_OK);
+        for (int l = 0; l <= 8; l++) {
+            check_abs(mc[l * 9 + 0], 0, 0, "column 0 zeroed");
+            check_abs(mc[l * 9 + 1], 0, 0, "column 1 zeroed");
+        }
+        assert_true(mc[4 * 9 + 2] != 0);
+        assert_int_equal(clef_coupling_add_block(cc, 10, blk, 1.0), CLEF_EINVAL);
+        blk[3] = NAN;
+        assert_int_equal(clef_coupling_add_block(cc, 4, blk, 1.0), CLEF_EINVAL);
+        assert_int_equal(clef_coupling_zero_columns(cc, 9), CLEF_EINVAL);
+        assert_int_equal(clef_coupling_zero_columns(cc, -1), CLEF_EINVAL);
+        clef_coupling_destroy(cc);
+    }
     /* Full sky, no transfer: K = I (P Q = I) */
     static double w1[2 * L + 1];
     w1[0] = 4 * M_PI;

@@ -73,6 +73,18 @@ const double *clef_coupling_matrix(const clef_coupling *c);
 /* out[l] = sum_l' M_ll' cl[l'], l = 0..lmax. */
 void clef_coupling_apply(const clef_coupling *c, const double *cl, double *out);
 
+/* Add scale * d to the top-left n x n block of M (d row-major n x n,
+ * n <= lmax + 1): a correction of the coupling, e.g. for the bias of
+ * removing templates from the map (Elsner, Leistedt & Peiris 2017).
+ * Errors: CLEF_EINVAL (n out of range, non-finite d). */
+int clef_coupling_add_block(clef_coupling *c, int n, const double *d, double scale);
+
+/* Set the columns l' <= lcut of M to zero: multipoles the map was cleaned
+ * of exactly (the monopole and dipole fitted and removed on the observed
+ * sky) no longer couple into any l.  Errors: CLEF_EINVAL (lcut out of
+ * range). */
+int clef_coupling_zero_columns(clef_coupling *c, int lcut);
+
 /* Coupling width of a mask spectrum: the highest l <= wl_lmax with
  * W_l >= level W_0, plus one (0 if W_0 <= 0).  A bin should be at least
  * this wide for K to be well conditioned. */

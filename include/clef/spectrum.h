@@ -37,13 +37,18 @@ extern "C" {
 /* Default bin width floor (multipoles) when no bins are given; the width
  * actually used is max(this, the mask's coupling width). */
 #define CLEF_SPECTRUM_BIN_WIDTH 20
-/* Default lmax is 3 nside - 1, lowered to the last l where the beam times
- * the pixel window is at least this (decoupling beyond would amplify the
- * noise by more than 1e4 in power). */
+/* Default lmax: this times nside (the HEALPix quadrature is accurate to
+ * about 2 nside; band powers above are biased, docs/method.md section 5),
+ * lowered to the last l where the beam times the pixel window is at least
+ * CLEF_SPECTRUM_BEAM_FLOOR (decoupling beyond would amplify the noise by
+ * more than 1e4 in power) and to the end of the beam, transfer and noise
+ * tables, then, for automatic bins, to the end of the last whole bin. */
+#define CLEF_SPECTRUM_LMAX_NSIDE 2
 #define CLEF_SPECTRUM_BEAM_FLOOR 1e-2
 
 typedef struct clef_spectrum_opts {
-    int lmax;                  /* 0: default (above); else 2 <= lmax <= 3 nside - 1 */
+    int lmax;                  /* 0: default (above); else 2 <= lmax <= 3 nside - 1 (a warning
+                                  above 2 nside) */
     const clef_bins *bins;     /* NULL: linear bins from l = 2 (width below) */
     int bin_width;             /* 0: automatic (CLEF_SPECTRUM_BIN_WIDTH floor) */
     double beam_fwhm;          /* Gaussian beam FWHM, arcmin; 0 = none */
@@ -78,9 +83,14 @@ typedef struct clef_spectrum_result {
     int peak_done;
     int cross;                 /* 1 for a cross-spectrum of two maps */
     int64_t nside;
-    int lmax;                  /* multipoles decoupled */
+    int lmax;                  /* multipoles reported (the last bin ends here) */
+    int lmax_ext;              /* multipoles analysed, coupled and decoupled (>= lmax): hidden
+                                  bins above lmax take the power there (docs/method.md 5) */
     int lmax_mask;             /* multipoles of the mask spectra used by the coupling */
-    int nbins;
+    int nbins;                 /* band powers reported */
+    int nbins_hidden;          /* bins decoupled but not reported */
+    int ldep;                  /* the monopole/dipole removal is corrected in the coupling for
+                                  l <= ldep (0 when the multipoles are kept) */
     int bin_width;             /* width used for automatic bins, 0 when bins were given */
     double fsky, w1, w2, w4, fsky_eff; /* moments of the (first) effective mask */
     double rcond;              /* reciprocal condition number of K */
@@ -101,6 +111,12 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
                           const clef_map *mask2, const clef_spectrum_opts *opts,
                           clef_spectrum_result *res);
 void clef_spectrum_result_free(clef_spectrum_result *res); /* frees res->bp; res itself is the caller's */
+
+/* The lmax clef_spectrum_compute chooses for opts->lmax = 0 on maps of this
+ * nside, before automatic bins trim it to a whole bin: min(2 nside, the
+ * beam floor, the tables' ends).  opts may be NULL (defaults).  Errors:
+ * CLEF_EINVAL (bad nside, tables ending below l = 2), CLEF_ENOMEM. */
+int clef_spectrum_default_lmax(const clef_spectrum_opts *opts, int64_t nside, int *lmax);
 
 /* Fit and remove the monopole and dipole of a map by weighted least squares
  * on the pixels with w > 0: min sum_p w_p (T_p - a - d . n_p)^2.  coeffs

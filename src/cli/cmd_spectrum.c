@@ -44,8 +44,10 @@ static void help(void)
         "                         does not know is refused, no TUNIT is taken as uK)\n"
         "  --calibration F        multiply the map values by F to get uK (instead of --unit)\n\n"
         "Multipoles and bins:\n"
-        "  --lmax L               highest multipole (default 3*nside-1, lowered where the\n"
-        "                         beam x pixel window drops below 0.01; at most 3*nside-1)\n"
+        "  --lmax L               highest multipole reported (default 2*nside, lowered where\n"
+        "                         the beam x pixel window drops below 0.01 or a table ends,\n"
+        "                         then to the end of the last whole bin; at most 3*nside-1,\n"
+        "                         with a warning above 2*nside)\n"
         "  --bin-width N          linear bins of N multipoles from l=2 (default: automatic,\n"
         "                         max(20, the mask's coupling width))\n"
         "  --log-bins N           N logarithmic bins from l=2 to lmax instead\n"
@@ -339,11 +341,9 @@ static int text_last_l(const char *path)
 }
 
 /* Tables indexed by l are read up to `lread`, or to their own end when that
- * comes first and no --lmax was given (the default lmax then stops there). */
-static int table_lmax(const char *path, int lread, int lmax_given)
+ * comes first (the default lmax and the coupling range then stop there). */
+static int table_lmax(const char *path, int lread)
 {
-    if (lmax_given)
-        return lread;
     int last = text_last_l(path);
     return last >= 2 && last < lread ? last : lread;
 }
@@ -470,7 +470,9 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
 
     cJSON *op = cJSON_AddObjectToObject(root, "options");
     cJSON_AddNumberToObject(op, "lmax", r->lmax);
+    cJSON_AddNumberToObject(op, "lmax_coupled", r->lmax_ext);
     cJSON_AddNumberToObject(op, "lmax_mask", r->lmax_mask);
+    cJSON_AddNumberToObject(op, "hidden_bins", r->nbins_hidden);
     cJSON_AddNumberToObject(op, "nbins", r->nbins);
     if (r->bin_width)
         cJSON_AddNumberToObject(op, "bin_width", r->bin_width);
@@ -478,6 +480,7 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddBoolToObject(op, "pixel_window", so->pixel_window);
     cJSON_AddNumberToObject(op, "iterations", so->iterations);
     cJSON_AddBoolToObject(op, "multipoles_removed", !so->keep_multipoles);
+    cJSON_AddNumberToObject(op, "removal_corrected_to_l", r->ldep);
     cJSON_AddBoolToObject(op, "cache", so->use_cache);
     cJSON_AddStringToObject(op, "covariance_spectrum", so->theory_cl ? "theory" : "measured");
     cJSON_AddNumberToObject(op, "peak_l_min", so->peak.l_min);
@@ -549,23 +552,23 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
 
 
 /* A beam, transfer or noise table shorter than the map's multipole range
- * lowers the default lmax to its last l: say so, with the reason, in the
- * warnings (stderr and the JSON summary). */
+ * stops the coupled range (and below 2 nside the default lmax) at its last
+ * l: say so, naming the file, in the warnings (stderr and the JSON
+ * summary).  The library's own warning names the table kind only. */
 static void warn_table_caps(const args *a, const clef_spectrum_opts *so,
                             const clef_spectrum_result *r, int lread)
 {
-    if (a->lmax)
-        return; /* a given lmax beyond a table's end is refused, not capped */
     const struct { const char *what, *path; int last; } t[] = {
         {"beam table", a->beam_file, so->beam_lmax},
         {"transfer function", a->transfer_file, so->transfer_lmax},
         {"noise spectrum", a->noise_file, so->noise_lmax},
     };
     for (int i = 0; i < 3; i++)
-        if (t[i].path && t[i].last < lread && r->lmax == t[i].last)
+        if (t[i].path && t[i].last < lread && r->lmax_ext == t[i].last)
             cli_warn("lmax capped at %d: the %s '%s' ends at l = %d, below the map's l = %d; "
-                     "give a longer table to go further", r->lmax, t[i].what, t[i].path,
-                     t[i].last, lread);
+                     "band powers stop at %d and the coupling (hidden bins) at %d; give a "
+                     "longer table to go further", t[i].last, t[i].what, t[i].path, t[i].last,
+                     lread, r->lmax, r->lmax_ext);
 }
 
 static void print_result(FILE *out, const args *a, const clef_spectrum_result *r)
@@ -727,8 +730,10 @@ int cmd_spectrum(int argc, char **argv)
 
     const int64_t nside = maps[0]->nside;
     const int lmax_pix = (int)(3 * nside - 1);
-    /* Files indexed by l are read up to the largest lmax the run may use. */
-    const int lread = a.lmax ? (int)a.lmax : lmax_pix;
+    /* Files indexed by l are read up to 3 nside - 1 or their own end: the
+     * coupling runs past lmax (hidden bins, docs/method.md section 5); the
+     * estimator refuses a table that stops below lmax. */
+    const int lread = lmax_pix;
 
     clef_spectrum_opts so;
     clef_spectrum_opts_default(&so);
@@ -753,19 +758,19 @@ int cmd_spectrum(int argc, char **argv)
     so.names[3] = a.mask[1];
     so.bin_width = (int)a.bin_width;
     if (a.beam_file) {
-        so.beam_lmax = table_lmax(a.beam_file, lread, a.lmax > 0);
+        so.beam_lmax = table_lmax(a.beam_file, lread);
         if (!(beam = read_profile_file(a.beam_file, so.beam_lmax, &status)))
             goto fail;
         so.beam = beam;
     }
     if (a.transfer_file) {
-        so.transfer_lmax = table_lmax(a.transfer_file, lread, a.lmax > 0);
+        so.transfer_lmax = table_lmax(a.transfer_file, lread);
         if (!(transfer = read_profile_file(a.transfer_file, so.transfer_lmax, &status)))
             goto fail;
         so.transfer = transfer;
     }
     if (a.noise_file) {
-        so.noise_lmax = table_lmax(a.noise_file, lread, a.lmax > 0);
+        so.noise_lmax = table_lmax(a.noise_file, lread);
         if (!(noise = read_spectrum_file(a.noise_file, so.noise_lmax, &status)))
             goto fail;
         so.noise_cl = noise;
@@ -780,11 +785,18 @@ int cmd_spectrum(int argc, char **argv)
         so.theory_lmax = last >= 0 && last < lread ? last : lread;
     }
     if (a.bins_file || a.log_bins > 0) {
-        /* Explicit bins need the lmax they end at: the given one or 3 nside - 1. */
-        if (a.bins_file)
-            status = clef_bins_read(&bins, a.bins_file, lread, CLEF_BINS_DL);
-        else
-            status = clef_bins_create_log(&bins, 2, lread, (int)a.log_bins, CLEF_BINS_DL);
+        /* Explicit bins need the lmax they end at: a bin file may reach
+         * the given lmax or 3 nside - 1; logarithmic bins end at the given
+         * lmax or the default one. */
+        const int lbins = a.lmax ? (int)a.lmax : lmax_pix;
+        if (a.bins_file) {
+            status = clef_bins_read(&bins, a.bins_file, lbins, CLEF_BINS_DL);
+        } else {
+            int ldef = lbins;
+            if (!a.lmax && (status = clef_spectrum_default_lmax(&so, nside, &ldef)) != CLEF_OK)
+                goto fail;
+            status = clef_bins_create_log(&bins, 2, ldef, (int)a.log_bins, CLEF_BINS_DL);
+        }
         if (status != CLEF_OK)
             goto fail;
         if (!a.lmax)

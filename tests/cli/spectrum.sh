@@ -75,24 +75,42 @@ PY
     "$T/again.json" || fail "second run did not use the coupling cache"
 [ ! -e "$T/again.fits" ] || fail "--format json wrote a FITS file"
 
-# A beam table that stops below 3 nside - 1 caps the default lmax (Gaussian
-# beam B_l = exp(-l(l+1) sigma^2/2), sigma = FWHM/sqrt(8 ln 2): METHODS.md 6).
+# A beam table that stops below 2 nside caps the default lmax and the coupled
+# range, with a warning naming it (Gaussian beam B_l = exp(-l(l+1) sigma^2/2),
+# sigma = FWHM/sqrt(8 ln 2): METHODS.md 6).
 "$CLEF_PYTHON" -c "
 import numpy as np
-l = np.arange(151); s = 30 / 60 * np.pi / 180 / np.sqrt(8 * np.log(2))
+l = np.arange(101); s = 30 / 60 * np.pi / 180 / np.sqrt(8 * np.log(2))
 np.savetxt('$T/beam.txt', np.c_[l, np.exp(-l * (l + 1) * s * s / 2)], fmt='%d %.12g', header='l B_l')
 " || fail "beam table"
 "$C" spectrum "$T/sky_split1.fits" --mask "$T/mask.fits" --beam-table "$T/beam.txt" --format json \
     --output "$T/btab" > /dev/null 2> "$T/btab.err" || fail "spectrum with a beam table"
-"$CLEF_PYTHON" -c "import json,sys; j=json.load(open(sys.argv[1])); sys.exit(0 if j['options']['lmax'] == 150 else 1)" \
-    "$T/btab.json" || fail "lmax not capped by the beam table"
-# ... and the cap is no longer silent: its reason is in stderr and in the
-# JSON warnings.
-grep -q "lmax capped at 150: the beam table" "$T/btab.err" || fail "no cap warning: $(cat "$T/btab.err")"
-"$CLEF_PYTHON" -c "import json,sys; j=json.load(open(sys.argv[1])); sys.exit(0 if any('lmax capped at 150' in w and 'beam.txt' in w for w in j['warnings']) else 1)" \
+"$CLEF_PYTHON" -c "
+import json, sys
+j = json.load(open(sys.argv[1])); o = j['options']
+ok = o['lmax'] <= 100 and o['lmax_coupled'] == 100 and any('beam table stops at l = 100' in w for w in j['warnings'])
+sys.exit(0 if ok else 1)" "$T/btab.json" || fail "lmax not capped by the beam table: $(cat "$T/btab.json")"
+# ... and the cap is not silent: its reason, with the file, is in stderr and
+# in the JSON warnings.
+grep -q "lmax capped at 100: the beam table" "$T/btab.err" || fail "no cap warning: $(cat "$T/btab.err")"
+"$CLEF_PYTHON" -c "import json,sys; j=json.load(open(sys.argv[1])); sys.exit(0 if any('lmax capped at 100' in w and 'beam.txt' in w for w in j['warnings']) else 1)" \
     "$T/btab.json" || fail "cap warning missing from the JSON warnings"
 "$C" spectrum "$T/sky_split1.fits" --mask "$T/mask.fits" --beam-file "$T/beam.txt" -o "$T/bad" \
     > /dev/null 2>&1 && fail "the old option name --beam-file is still accepted"
+
+# Default lmax: at most 2 nside, whole bins, hidden bins above it; a given
+# lmax above 2 nside is warned about on stderr and in the JSON.
+"$CLEF_PYTHON" -c "
+import json, sys
+j = json.load(open(sys.argv[1])); o = j['options']; b = j['bandpowers']
+w = [h - l + 1 for l, h in zip(b['l_min'], b['l_max'])]
+ok = o['lmax'] <= 128 and o['lmax_coupled'] == 191 and o['hidden_bins'] >= 1 and len(set(w)) == 1
+sys.exit(0 if ok else 1)" "$T/run.json" || fail "default lmax and bins: $(cat "$T/run.json")"
+"$C" spectrum "$T/sky_split1.fits" --mask "$T/mask.fits" --beam-fwhm 30 --lmax 160 --format json \
+    --output "$T/high" > /dev/null 2> "$T/high.err" || fail "spectrum --lmax 160"
+grep -q "warning: lmax = 160 is above 2\*nside = 128" "$T/high.err" || fail "no lmax warning: $(cat "$T/high.err")"
+"$CLEF_PYTHON" -c "import json,sys; j=json.load(open(sys.argv[1])); sys.exit(0 if any('above 2*nside' in w for w in j['warnings']) else 1)" \
+    "$T/high.json" || fail "lmax warning not in the JSON"
 
 # Bad input: the documented exit code, a message, and no output.
 expect() { # code, description, command...
