@@ -11,6 +11,7 @@
 #include <time.h>
 #include <sys/mman.h>
 #include <sys/stat.h>
+#include <sys/sysinfo.h>
 #include <unistd.h>
 
 static clef_log_fn log_fn;
@@ -139,6 +140,15 @@ double clef_wtime(void)
  * where the system offers them (Linux madvise; a hint, ignored elsewhere). */
 void *clef_alloc_large(size_t bytes)
 {
+    /* More than the machine's memory and swap can never be backed: refuse
+     * it here rather than let an overcommitted allocation be killed on
+     * first touch (the caller reports CLEF_ENOMEM with the size). */
+    struct sysinfo si;
+    if (sysinfo(&si) == 0) {
+        const double limit = ((double)si.totalram + (double)si.totalswap) * si.mem_unit;
+        if ((double)bytes > limit)
+            return NULL;
+    }
 #ifdef MADV_HUGEPAGE
     const size_t huge = (size_t)2 << 20;
     if (bytes >= 2 * huge) {

@@ -10,6 +10,7 @@
 
 #include <chealpix.h>
 #include <dirent.h>
+#include <sys/resource.h>
 #include <fitsio.h>
 #include <gsl/gsl_rng.h>
 #include <gsl/gsl_randist.h>
@@ -596,13 +597,13 @@ static void test_bad_files(void **state)
     write_bytes(trunc, bytes, 2880 + 1000);
     expect_read_fail(trunc, NULL, CLEF_EFORMAT, trunc);
     write_bytes(trunc, bytes, n - 2 * 2880);
-    expect_read_fail(trunc, NULL, CLEF_EFORMAT, "ends early");
+    expect_read_fail(trunc, NULL, CLEF_EFORMAT, "the file is truncated");
 
     /* A truncated gzip stream. */
     assert_int_equal(run_cmd("gzip -c '%s' | head -c 3000 > '%s.gz'", good, trunc), 0);
     char tgz[1100];
     snprintf(tgz, sizeof tgz, "%s.gz", trunc);
-    expect_read_fail(tgz, NULL, CLEF_EFORMAT, "ends early");
+    expect_read_fail(tgz, NULL, CLEF_EFORMAT, "the file is truncated");
 
     /* A FITS file with only an image, and one with an ASCII table. */
     char img[1024];
@@ -871,6 +872,84 @@ static void test_check_mask(void **state)
     clef_map_free(NULL);
 }
 
+/* Resource limits.  A header that promises a huge map from a tiny file is
+ * refused as malformed before any map-sized allocation; a legitimate map
+ * too large for the memory limit is CLEF_ENOMEM with the size asked for.
+ * The child runs under RLIMIT_AS = 1 GiB (as `ulimit -v` does), so a
+ * 7.2 GB allocation attempt would fail there: EFORMAT proves none was made. */
+static void expect_child(const char *path, int code, const char *n1, const char *n2)
+{
+    fflush(NULL);
+    const pid_t pid = fork();
+    assert_true(pid >= 0);
+    if (pid == 0) {
+        const struct rlimit lim = {(rlim_t)1 << 30, (rlim_t)1 << 30};
+        if (setrlimit(RLIMIT_AS, &lim) != 0)
+            _exit(90);
+        clef_map *m = NULL;
+        const int st = clef_map_read(&m, path, NULL);
+        if (st != code || !strstr(clef_last_error(), n1) || (n2 && !strstr(clef_last_error(), n2))) {
+            fprintf(stderr, "%s: expected status %d with '%s' '%s', got %d: %s\n", path, code, n1,
+                    n2 ? n2 : "", st, clef_last_error());
+            _exit(91);
+        }
+        _exit(0);
+    }
+    int ws;
+    assert_int_equal(waitpid(pid, &ws, 0), pid);
+    assert_true(WIFEXITED(ws));
+    assert_int_equal(WEXITSTATUS(ws), 0);
+}
+
+static void test_resource_limits(void **state)
+{
+    (void)state;
+    const double v[12] = {0};
+    /* NSIDE 8192 over a 12-row table: EFORMAT before allocation. */
+    const char *tiny = test_path("huge-nside-tiny.fits");
+    tfile t = {.nside_key = 8192, .ordering = "RING", .n = 12, .values = v};
+    write_tfile(tiny, &t);
+    expect_read_fail(tiny, NULL, CLEF_EFORMAT, "implies 805306368 pixels");
+
+    /* The same with NAXIS2 raised to 12 x 8192^2 rows in the header: the
+     * table now matches NSIDE but the file is 5 kB. */
+    t.nside_key = 1;
+    write_tfile(tiny, &t);
+    static char bytes[8 * 2880];
+    FILE *f = fopen(tiny, "rb");
+    const size_t n = fread(bytes, 1, sizeof bytes, f);
+    fclose(f);
+    int patched = 0;
+    for (size_t c = 2880; c + 80 <= n; c += 80) {
+        if (!memcmp(bytes + c, "NAXIS2  =", 9)) {
+            memcpy(bytes + c + 10, "           805306368", 20);
+            patched++;
+        }
+        if (!memcmp(bytes + c, "NSIDE   =", 9)) {
+            memcpy(bytes + c + 10, "                8192", 20);
+            patched++;
+        }
+    }
+    assert_int_equal(patched, 2);
+    write_bytes(tiny, bytes, n);
+    expect_read_fail(tiny, NULL, CLEF_EFORMAT, "the file is truncated");
+
+    /* A legitimate partial-sky table of NSIDE 8192 (3 pixels) needs the
+     * full 7.2 GB map: ENOMEM with nside and bytes in the message. */
+    const char *part = test_path("nside8192-partial.fits");
+    const long long idx[3] = {0, 1, 2};
+    tfile p = {.nside_key = 8192, .ordering = "RING", .indxschm = "EXPLICIT", .n = 3,
+               .values = v, .index = idx};
+    write_tfile(part, &p);
+    if (test_sanitize()) {
+        /* AddressSanitizer reserves more address space than the limit. */
+        fprintf(stderr, "skipped: RLIMIT_AS checks under the sanitizer build\n");
+        return;
+    }
+    expect_child(tiny, CLEF_EFORMAT, "the file is truncated", NULL);
+    expect_child(part, CLEF_ENOMEM, "nside 8192", "7.25 GB");
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -889,6 +968,7 @@ int main(void)
         cmocka_unit_test(test_header_variants),
         cmocka_unit_test(test_write_errors),
         cmocka_unit_test(test_check_mask),
+        cmocka_unit_test(test_resource_limits),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
