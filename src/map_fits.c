@@ -8,6 +8,7 @@
  * moves up to a million values, never one pixel. */
 #define _POSIX_C_SOURCE 200809L
 #include "map_impl.h"
+#include "fits_impl.h"
 
 #include <chealpix.h>
 #include <errno.h>
@@ -66,6 +67,7 @@ typedef struct reader {
     double bad_file;     /* BAD_DATA keyword, or the standard sentinel */
     int valcol, pixcol;  /* 1-based; pixcol 0 for implicit tables */
     int64_t nrows, repeat;
+    long long real_size; /* bytes really held (memory files); 0: CFITSIO's file size */
 } reader;
 
 static int reader_fits_fail(reader *r, int fstatus, const char *what)
@@ -540,7 +542,8 @@ static int check_sizes(reader *r)
         fits_get_hduaddrll(r->f, &headstart, &datastart, &dataend, &st);
     if (st)
         return reader_fits_fail(r, st, "cannot read the table layout (NAXIS1, PCOUNT)");
-    const long long have = r->f->Fptr->logfilesize - datastart;
+    const long long size = r->real_size > 0 ? r->real_size : r->f->Fptr->logfilesize;
+    const long long have = size - datastart;
     if (naxis1 < 0 || pcount < 0 || r->nrows < 0 ||
         (naxis1 > 0 && r->nrows > (INT64_MAX - pcount) / naxis1))
         CLEF_FAIL(CLEF_EFORMAT, "%s: table size NAXIS1 = %lld x NAXIS2 = %lld (+ PCOUNT %lld) "
@@ -591,6 +594,7 @@ static int read_opened(reader *r, const clef_map_read_opts *opts, clef_map **out
     clef_map *m = NULL;
     double *buf = NULL;
     int status = CLEF_OK, st = 0;
+    CLEF_CHECK(clef_fits_check_headers(r->f, r->path));
     CLEF_CHECK(select_hdu(r, opts ? opts->hdu : NULL));
 
     m = calloc(1, sizeof *m);
@@ -719,18 +723,29 @@ int clef_map_read_memory(clef_map **out, const void *data, size_t size, const ch
     r.path = name;
     snprintf(r.where, sizeof r.where, "'%s'", name);
     int st = 0;
-    /* CFITSIO reads the caller's bytes in place (READONLY, no realloc). */
-    void *mem = (void *)data;
-    size_t msize = size;
+    /* CFITSIO's memory driver reads whole 2880-byte records and does not
+     * stop at the end of the buffer it was given (found by fuzz_map: a file
+     * cut inside its last record was read past its end), so it gets a copy
+     * padded with zeros to whole records.  The size checks use the true
+     * length (r.real_size): a cut inside the data is still "truncated". */
+    const size_t padded = (size + 2879) / 2880 * 2880;
+    void *mem = calloc(1, padded);
+    if (!mem)
+        CLEF_FAIL(CLEF_ENOMEM, "'%s': no memory for a %zu-byte copy", name, padded);
+    memcpy(mem, data, size);
+    r.real_size = (long long)size;
+    size_t msize = padded;
     fits_open_memfile(&r.f, name, READONLY, &mem, &msize, 0, NULL, &st);
     if (st) {
         char text[256];
         clef_map_fits_status(st, text, sizeof text);
+        free(mem);
         CLEF_FAIL(read_status_code(st), "cannot read '%s' as FITS: %s", name, text);
     }
     const int status = read_opened(&r, opts, out);
     st = 0;
     fits_close_file(r.f, &st);
     fits_clear_errmsg();
+    free(mem);
     return status;
 }

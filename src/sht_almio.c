@@ -9,6 +9,7 @@
 
 #include "clef/sht.h"
 #include "core_impl.h"
+#include "fits_impl.h"
 
 #define ROWS_PER_CHUNK 65536
 #define EXTNAME "CLEF_ALM"
@@ -142,6 +143,7 @@ int clef_alm_read(const char *path, int *lmax_out, int *mmax_out, double complex
         f = NULL;
         return fits_error(CLEF_EIO, path, "cannot open", fst);
     }
+    CLEF_CHECK(clef_fits_check_headers(f, path));
     if (fits_movnam_hdu(f, BINARY_TBL, EXTNAME, 0, &fst)) {
         /* Not ours by name: take the first binary table. */
         fst = 0;

@@ -13,6 +13,7 @@
 #include <unistd.h>
 
 #include "core_impl.h"
+#include "fits_impl.h"
 
 static const char *const fits_units[CLEF_TABLE_NCOLS] = {"", "", "", "uK^2", "uK^2", "uK^2"};
 static const char *const fits_forms[CLEF_TABLE_NCOLS] = {"1J", "1J", "1D", "1D", "1D", "1D"};
@@ -249,6 +250,7 @@ int clef_table_read_fits(clef_bandpowers **out, const char *path)
     if (st)
         return fits_fail(st == FILE_NOT_OPENED ? CLEF_EIO : CLEF_EFORMAT, st, path,
                          "cannot open the FITS file");
+    CLEF_CHECK(clef_fits_check_headers(f, path));
     fits_movnam_hdu(f, BINARY_TBL, "BANDPOWER", 0, &st);
     if (st) {
         status = fits_fail(CLEF_EFORMAT, st, path, "no binary table HDU with EXTNAME 'BANDPOWER'");

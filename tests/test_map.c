@@ -901,6 +901,41 @@ static void expect_child(const char *path, int code, const char *n1, const char 
     assert_int_equal(WEXITSTATUS(ws), 0);
 }
 
+/* Headers CFITSIO 4.2 would overflow a buffer on (tests/fuzz/fuzz_map
+ * finding): an unquoted 70-character TTYPE1 made `clef inspect` abort with
+ * "buffer overflow detected".  Refused from the raw header instead (FITS
+ * standard 4.0 section 7.3.1: TTYPEn is a character string). */
+static void test_unquoted_ttype(void **state)
+{
+    (void)state;
+    const char *good = test_path("ttype-good.fits");
+    const double v[12] = {0};
+    tfile t = {.nside_key = 1, .ordering = "RING", .n = 12, .values = v};
+    write_tfile(good, &t);
+    static char bytes[4 * 2880];
+    FILE *f = fopen(good, "rb");
+    const size_t n = fread(bytes, 1, sizeof bytes, f);
+    fclose(f);
+    int patched = 0;
+    for (size_t c = 2880; c + 80 <= n; c += 80)
+        if (!memcmp(bytes + c, "TTYPE1  =", 9)) {
+            memset(bytes + c + 10, 'a', 70);
+            patched = 1;
+        }
+    assert_true(patched);
+    const char *bad = test_path("ttype-unquoted.fits");
+    write_bytes(bad, bytes, n);
+    expect_read_fail(bad, NULL, CLEF_EFORMAT, "keyword TTYPE1 is not a quoted string");
+    /* a byte outside printable ASCII in a value card */
+    for (size_t c = 2880; c + 80 <= n; c += 80)
+        if (!memcmp(bytes + c, "TTYPE1  =", 9)) {
+            memset(bytes + c + 10, ' ', 70);
+            memcpy(bytes + c + 10, "'SIG\xea'", 6);
+        }
+    write_bytes(bad, bytes, n);
+    expect_read_fail(bad, NULL, CLEF_EFORMAT, "byte 0xea at column 15 is not printable ASCII");
+}
+
 static void test_resource_limits(void **state)
 {
     (void)state;
@@ -969,6 +1004,7 @@ int main(void)
         cmocka_unit_test(test_write_errors),
         cmocka_unit_test(test_check_mask),
         cmocka_unit_test(test_resource_limits),
+        cmocka_unit_test(test_unquoted_ttype),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

@@ -1,0 +1,187 @@
+/* Raw header checks before CFITSIO moves to an HDU (src/fits_impl.h).
+ * Card layout: FITS Standard 4.0 (Pence et al. 2010, A&A 524, A42 and the
+ * IAU FITS Working Group's 2016 text), sections 4.1 (cards, ASCII 32-126)
+ * and 4.4 (data size from BITPIX, NAXISn, PCOUNT, GCOUNT). */
+#include "fits_impl.h"
+
+#include <fitsio2.h>
+#include <stdint.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "core_impl.h"
+
+#define BLOCK 2880
+#define CARD 80
+
+/* Integer value of a value card ("KEY     = 123 / comment"), or 0 when the
+ * value is not an integer. */
+static int card_int(const char *c, long long *v)
+{
+    char val[72];
+    memcpy(val, c + 10, 70);
+    val[70] = '\0';
+    char *slash = strchr(val, '/');
+    if (slash)
+        *slash = '\0';
+    char *end;
+    const long long x = strtoll(val, &end, 10);
+    while (*end == ' ')
+        end++;
+    if (end == val || *end)
+        return 0;
+    *v = x;
+    return 1;
+}
+
+/* CFITSIO takes any card with '=' in column 9 as a value card. */
+static int is_value_card(const char *c) { return c[8] == '='; }
+
+static int key_is(const char *c, const char *key)
+{
+    const size_t n = strlen(key);
+    if (memcmp(c, key, n))
+        return 0;
+    for (size_t i = n; i < 8; i++)
+        if (c[i] != ' ')
+            return 0;
+    return 1;
+}
+
+/* "TTYPE12 " etc.: the root followed by digits and blanks. */
+static int key_indexed(const char *c, const char *root)
+{
+    const size_t n = strlen(root);
+    if (memcmp(c, root, n) || c[n] < '1' || c[n] > '9')
+        return 0;
+    size_t i = n + 1;
+    while (i < 8 && c[i] >= '0' && c[i] <= '9')
+        i++;
+    while (i < 8 && c[i] == ' ')
+        i++;
+    return i == 8;
+}
+
+/* Length of the keyword name in columns 1-8 (trailing blanks dropped). */
+static int key_len(const char *c)
+{
+    int n = 8;
+    while (n > 0 && c[n - 1] == ' ')
+        n--;
+    return n;
+}
+
+static int string_valued(const char *c)
+{
+    static const char *const indexed[] = {"TTYPE", "TFORM", "TUNIT", "TDIM", "TDISP"};
+    if (key_is(c, "XTENSION") || key_is(c, "EXTNAME"))
+        return 1;
+    for (size_t i = 0; i < sizeof indexed / sizeof *indexed; i++)
+        if (key_indexed(c, indexed[i]))
+            return 1;
+    return 0;
+}
+
+int clef_fits_check_headers(fitsfile *f, const char *name)
+{
+    const long long size = f->Fptr->logfilesize;
+    long long pos = 0;
+    char block[BLOCK];
+    for (int hdu = 1; hdu <= 10000 && pos + BLOCK <= size; hdu++) {
+        long long bitpix = 0, naxis = -1, pcount = 0, gcount = 1, prod = 1, naxis1 = -1;
+        int ended = 0, ok_size = 1, card_no = 0, groups = 0;
+        while (!ended) {
+            int st = 0;
+            if (pos + BLOCK > size)
+                return CLEF_OK; /* header cut short: CFITSIO reports it */
+            ffmbyt(f, pos, REPORT_EOF, &st);
+            if (!st)
+                ffgbyt(f, BLOCK, block, &st);
+            if (st) {
+                fits_clear_errmsg();
+                return CLEF_OK;
+            }
+            pos += BLOCK;
+            for (int k = 0; k < BLOCK / CARD && !ended; k++) {
+                const char *c = block + k * CARD;
+                card_no++;
+                /* An extension starts with XTENSION; anything else means the
+                 * walk lost its way (an unusual data layout): stop checking. */
+                if (hdu > 1 && card_no == 1 && !key_is(c, "XTENSION"))
+                    return CLEF_OK;
+                if (key_is(c, "END")) {
+                    ended = 1;
+                    break;
+                }
+                /* COMMENT, HISTORY and blank keywords are free text. */
+                if (key_is(c, "COMMENT") || key_is(c, "HISTORY") || key_is(c, ""))
+                    continue;
+                for (int i = 0; i < CARD; i++) {
+                    const unsigned char ch = (unsigned char)c[i];
+                    if (ch < 32 || ch > 126)
+                        CLEF_FAIL(CLEF_EFORMAT,
+                                  "'%s' HDU %d header card %d (%.*s): byte 0x%02x at column %d "
+                                  "is not printable ASCII (FITS standard, section 4.1)",
+                                  name, hdu, card_no, key_len(c), c, ch, i + 1);
+                }
+                if (!is_value_card(c))
+                    continue;
+                if (string_valued(c)) {
+                    int i = 9;
+                    while (i < CARD && c[i] == ' ')
+                        i++;
+                    if (i == CARD || c[i] != '\'')
+                        CLEF_FAIL(CLEF_EFORMAT,
+                                  "'%s' HDU %d header card %d: keyword %.*s is not a quoted "
+                                  "string: %.70s", name, hdu, card_no, key_len(c), c, c + 10);
+                }
+                long long v;
+                if (key_is(c, "BITPIX")) {
+                    ok_size &= card_int(c, &bitpix);
+                } else if (key_is(c, "NAXIS")) {
+                    ok_size &= card_int(c, &naxis);
+                } else if (key_is(c, "GROUPS")) {
+                    groups = c[29] == 'T';
+                } else if (key_is(c, "NAXIS1")) {
+                    if (!card_int(c, &naxis1) || naxis1 < 0)
+                        ok_size = 0;
+                } else if (key_indexed(c, "NAXIS")) {
+                    if (!card_int(c, &v) || v < 0)
+                        ok_size = 0;
+                    else if (v == 0)
+                        prod = 0;
+                    else if (prod > size / v)
+                        prod = size + 1; /* more than the file: stops the walk */
+                    else
+                        prod *= v;
+                } else if (key_is(c, "PCOUNT")) {
+                    ok_size &= card_int(c, &pcount);
+                } else if (key_is(c, "GCOUNT")) {
+                    ok_size &= card_int(c, &gcount);
+                }
+            }
+        }
+        /* Data size, section 4.4.1.1: |BITPIX|/8 GCOUNT (PCOUNT + NAXIS1 ... NAXISn). */
+        if (!ok_size || naxis < 0 || pcount < 0 || gcount < 0 || bitpix == 0)
+            return CLEF_OK; /* CFITSIO refuses the header itself */
+        /* Random groups (section 6): NAXIS1 = 0 is not a factor. */
+        if (naxis1 >= 0 && !(groups && naxis1 == 0)) {
+            if (naxis1 == 0)
+                prod = 0;
+            else if (prod > size / naxis1)
+                prod = size + 1;
+            else
+                prod *= naxis1;
+        }
+        if (naxis == 0)
+            prod = 0;
+        const long long bytes_per = llabs(bitpix) / 8;
+        if (prod > size || pcount > size || gcount > size)
+            return CLEF_OK; /* data beyond the file: the readers' size checks report it */
+        const long long data = bytes_per * gcount * (pcount + prod);
+        if (data > size)
+            return CLEF_OK;
+        pos += (data + BLOCK - 1) / BLOCK * BLOCK;
+    }
+    return CLEF_OK;
+}
