@@ -249,8 +249,9 @@ void clef_cache_store(const char *dir, const char *path, int kind, const char *k
         ok = (fclose(f) == 0) && ok;
     }
     if (!ok) {
-        clef_log(CLEF_LOG_WARN, "coupling cache: cannot write '%s': %s", o.tmp_path,
-                 strerror(errno));
+        char why[256];
+        clef_write_reason(path, errno, why, sizeof why);
+        clef_log(CLEF_LOG_WARN, "coupling cache: not stored: cannot write '%s': %s", path, why);
         clef_outfile_abort(&o);
         return;
     }

@@ -32,6 +32,19 @@ static int fits_fail(int code, int st, const char *path, const char *what)
     CLEF_FAIL(code, "'%s': %s (CFITSIO status %d: %s)", path, what, st, text);
 }
 
+/* A write failure: the reason in words when the file system gives one
+ * (clef_write_fail), measured before the temporary is removed. */
+static int write_fits_fail(clef_outfile *of, int st, const char *path, const char *what)
+{
+    char text[FLEN_STATUS], lib[FLEN_STATUS + 32];
+    fits_get_errstatus(st, text);
+    fits_clear_errmsg();
+    snprintf(lib, sizeof lib, "CFITSIO status %d: %s", st, text);
+    const int code = clef_write_fail(CLEF_EIO, path, what, lib);
+    clef_outfile_abort(of);
+    return code;
+}
+
 /* One metadata item as a header card: integers as integers, other numbers
  * with 17 significant digits, text as a (possibly long, CONTINUE'd) string. */
 static void write_meta_card(fitsfile *f, const clef_meta *m, int *st)
@@ -105,17 +118,14 @@ int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
     fitsfile *f = NULL;
     int st = 0;
     fits_create_diskfile(&f, of.tmp_path, &st);
-    if (st) {
-        clef_outfile_abort(&of);
-        return fits_fail(CLEF_EIO, st, path, "cannot create the FITS file");
-    }
+    if (st)
+        return write_fits_fail(&of, st, path, "cannot create the FITS file");
     write_hdus(f, bp, &st);
     int st_close = 0;
     fits_close_file(f, &st_close);
-    if (st || st_close) {
-        clef_outfile_abort(&of);
-        return fits_fail(CLEF_EIO, st ? st : st_close, path, "cannot write the band-power FITS file");
-    }
+    if (st || st_close)
+        return write_fits_fail(&of, st ? st : st_close, path,
+                               "cannot write the band-power FITS file");
     return clef_outfile_commit(&of);
 }
 

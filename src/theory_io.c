@@ -229,7 +229,7 @@ static int write_text(const char *tmp, const char *path, int lmax, const double 
 {
     FILE *f = fopen(tmp, "w");
     if (!f)
-        CLEF_FAIL(CLEF_EIO, "cannot write '%s' (temporary for '%s'): %s", tmp, path, strerror(errno));
+        return clef_write_fail(CLEF_EIO, path, "cannot create it", NULL);
     fprintf(f, "# CMB temperature power spectrum written by clef %s\n", CLEF_VERSION);
     if (p)
         fprintf(f,
@@ -242,18 +242,19 @@ static int write_text(const char *tmp, const char *path, int lmax, const double 
     fprintf(f, "# columns: l C_l D_l\n");
     for (int l = 0; l <= lmax; l++)
         fprintf(f, "%d %.10e %.10e\n", l, cl[l], dl_of(cl, l));
-    if (fclose(f) != 0)
-        CLEF_FAIL(CLEF_EIO, "error writing '%s' (temporary for '%s')", tmp, path);
+    const int bad = ferror(f);
+    if (fclose(f) != 0 || bad)
+        return clef_write_fail(CLEF_EIO, path, "write error", NULL);
     return CLEF_OK;
 }
 
 /* Record the first CFITSIO failure as a clef error naming the step. */
 static int fits_status(const char *path, const char *what, int fst)
 {
-    char msg[FLEN_STATUS];
+    char msg[FLEN_STATUS], lib[FLEN_STATUS + 32];
     fits_get_errstatus(fst, msg);
-    return clef_fail(CLEF_EIO, "writing FITS spectrum '%s': %s: CFITSIO status %d (%s)", path,
-                     what, fst, msg);
+    snprintf(lib, sizeof lib, "CFITSIO status %d: %s", fst, msg);
+    return clef_write_fail(CLEF_EIO, path, what, lib);
 }
 
 static int write_fits(const char *tmp, const char *path, int lmax, const double *cl,

@@ -133,7 +133,7 @@ static int no_temporaries(void)
     struct dirent *e;
     int clean = 1;
     while ((e = readdir(d)))
-        if (strstr(e->d_name, ".tmp-"))
+        if (strstr(e->d_name, ".clef-tmp."))
             clean = 0;
     closedir(d);
     return clean;

@@ -89,7 +89,7 @@ static int count_tmp_files(const char *dir)
     if (!d)
         return 0;
     for (struct dirent *e; (e = readdir(d));)
-        n += strstr(e->d_name, ".tmp-") != NULL;
+        n += strstr(e->d_name, ".clef-tmp.") != NULL;
     closedir(d);
     return n;
 }

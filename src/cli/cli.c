@@ -195,8 +195,10 @@ int cli_write_json(const char *path, const cJSON *j)
     free(text);
     if (bad) {
         const int e = errno;
+        char why[256];
+        clef_write_reason(path, e, why, sizeof why);
         clef_outfile_abort(&of);
-        fprintf(stderr, "clef: error: cannot write '%s': %s\n", path, strerror(e));
+        fprintf(stderr, "clef: error: cannot write '%s': %s\n", path, *why ? why : strerror(e));
         return CLI_EXIT_IO;
     }
     status = clef_outfile_commit(&of);

@@ -110,16 +110,10 @@ static int ends_with_gz(const char *s)
 static int gzip_fits(const char *path)
 {
     char gz[4200], name[4300];
-    const char *slash = strrchr(path, '/');
-    const int dirlen = slash ? (int)(slash - path) + 1 : 0;
-    snprintf(gz, sizeof gz, "%.*s.clef-gzip-XXXXXX.gz", dirlen, path);
-    const int fd = mkstemps(gz, 3);
-    if (fd < 0) {
-        fprintf(stderr, "clef: error: cannot create a temporary file next to '%s': %s\n", path,
-                strerror(errno));
+    if (clef_temp_make(gz, sizeof gz, path, NULL, ".gz") != CLEF_OK) {
+        fprintf(stderr, "clef: error: %s\n", clef_last_error());
         return CLEF_EIO;
     }
-    close(fd);
     snprintf(name, sizeof name, "!%s", gz);
     fitsfile *in = NULL, *out = NULL;
     int st = 0, st2 = 0, st3 = 0;
@@ -145,9 +139,11 @@ static int gzip_fits(const char *path)
         if (st || st2)
             fits_get_errstatus(st ? st : st2, msg);
         unlink(gz);
+        clef_temp_forget(gz);
         fprintf(stderr, "clef: error: cannot gzip-compress '%s': %s\n", path, msg);
         return CLEF_EIO;
     }
+    clef_temp_forget(gz);
     return CLEF_OK;
 }
 
@@ -410,17 +406,28 @@ int cmd_simulate(int argc, char **argv)
             goto fail;
         nouts++;
         cli_verbose("writing %s", name);
-        /* clef_map_write compresses when the name ends in .gz. */
+        /* clef_map_write compresses when the name ends in .gz: write a
+         * registered ".gz" temporary, then move it onto the output's. */
         char tmp[4200];
-        snprintf(tmp, sizeof tmp, "%s%s", outs[nouts - 1].tmp_path, ends_with_gz(name) ? ".gz" : "");
-        if ((status = clef_map_write(maps[s], tmp, &wo)) != CLEF_OK)
+        snprintf(tmp, sizeof tmp, "%s", outs[nouts - 1].tmp_path);
+        if (ends_with_gz(name) &&
+            (status = clef_temp_make(tmp, sizeof tmp, name, NULL, ".gz")) != CLEF_OK)
             goto fail;
-        if (strcmp(tmp, outs[nouts - 1].tmp_path) && rename(tmp, outs[nouts - 1].tmp_path) != 0) {
-            fprintf(stderr, "clef: error: cannot rename '%s': %s\n", tmp, strerror(errno));
+        status = clef_map_write(maps[s], tmp, &wo);
+        if (strcmp(tmp, outs[nouts - 1].tmp_path)) {
+            if (status == CLEF_OK && rename(tmp, outs[nouts - 1].tmp_path) != 0) {
+                char why[256];
+                fprintf(stderr, "clef: error: cannot write '%s': %s\n", name,
+                        clef_write_reason(name, errno, why, sizeof why));
+                exit_code = CLI_EXIT_IO;
+            }
             unlink(tmp);
-            exit_code = CLI_EXIT_IO;
-            goto done;
+            clef_temp_forget(tmp);
         }
+        if (status != CLEF_OK)
+            goto fail;
+        if (exit_code != CLI_EXIT_OK)
+            goto done;
     }
     if (a.alm_output) {
         if ((status = clef_outfile_begin(&outs[nouts], a.alm_output)) != CLEF_OK)
