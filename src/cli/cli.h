@@ -57,6 +57,13 @@ int cli_write_json(const char *path, const struct cJSON *j);
  * nonzero otherwise. */
 int cli_check_ordering(const char *cmd, const char *ordering);
 
+/* Inputs changed under a running job (src/cli/cli_inputs.c): record each
+ * input file before reading it; cli_check_inputs() before writing outputs
+ * returns CLI_EXIT_IO (message printed) if any was removed, replaced,
+ * resized or modified since, else CLI_EXIT_OK. */
+void cli_watch_input(const char *path);
+int cli_check_inputs(void);
+
 /* --threads N: set the OpenMP thread count (0 = leave the default). */
 int cli_set_threads(const char *cmd, const char *s);
 

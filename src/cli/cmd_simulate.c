@@ -323,6 +323,9 @@ int cmd_simulate(int argc, char **argv)
         exit_code = CLI_EXIT_NOMEM;
         goto done;
     }
+    cli_watch_input(a.cl_file);
+    cli_watch_input(a.beam_file);
+    cli_watch_input(a.hits_file);
     if ((status = load_spectrum(&a, &p, cl)) != CLEF_OK)
         goto fail;
     if (a.beam_file) {
@@ -441,6 +444,8 @@ int cmd_simulate(int argc, char **argv)
             goto done;
         }
     }
+    if ((exit_code = cli_check_inputs()) != CLI_EXIT_OK)
+        goto done;
     for (int i = 0; i < nouts; i++)
         if ((status = clef_outfile_commit(&outs[i])) != CLEF_OK)
             goto fail;

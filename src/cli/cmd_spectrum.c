@@ -537,12 +537,19 @@ int cmd_spectrum(int argc, char **argv)
     cJSON *json = NULL;
     char paths[4][4096];
     const char *written[4];
-    int nwritten = 0;
+    int nwritten = 0, nbegun = 0;
+    static clef_outfile outs[4];
 
     clef_map_read_opts ro = {0};
     ro.hdu = a.hdu;
     ro.column = a.column;
     const char *files[4] = {a.map[0], a.map[1], a.mask[0], a.mask[1]};
+    const char *others[5] = {a.beam_file, a.transfer_file, a.noise_file, a.theory_file,
+                             a.bins_file};
+    for (int i = 0; i < 4; i++)
+        cli_watch_input(files[i]);
+    for (int i = 0; i < 5; i++)
+        cli_watch_input(others[i]);
     for (int i = 0; i < 4; i++) {
         if (!files[i])
             continue;
@@ -627,47 +634,55 @@ int cmd_spectrum(int argc, char **argv)
     if (status != CLEF_OK)
         goto fail;
 
-    /* Outputs: each file is written atomically; if one fails, the ones
-     * already written by this run are removed, so a run leaves all or none. */
+    /* Outputs: each file is first written completely to its own temporary
+     * (registered, so a signal removes it), then all are renamed in one
+     * quick pass, once the inputs are known not to have changed under the
+     * run: a failure or a signal leaves no partial file and, short of a
+     * SIGKILL between two renames, no mix of this run's and older files. */
     char prefix[4000];
     if (a.output)
         snprintf(prefix, sizeof prefix, "%s", a.output);
     else
         default_prefix(a.map[0], prefix, sizeof prefix);
-    if (a.want_fits) {
-        snprintf(paths[nwritten], sizeof paths[0], "%s.fits", prefix);
-        if ((status = clef_bandpowers_write_fits(res.bp, paths[nwritten])) != CLEF_OK)
-            goto fail;
-        written[nwritten] = paths[nwritten];
-        nwritten++;
-    }
+    int nout = 0;
+    if (a.want_fits)
+        snprintf(paths[nout++], sizeof paths[0], "%s.fits", prefix);
     if (a.want_csv) {
-        snprintf(paths[nwritten], sizeof paths[0], "%s.csv", prefix);
-        if ((status = clef_bandpowers_write_csv(res.bp, paths[nwritten])) != CLEF_OK)
+        snprintf(paths[nout++], sizeof paths[0], "%s.csv", prefix);
+        snprintf(paths[nout++], sizeof paths[0], "%s-cov.csv", prefix);
+    }
+    if (a.want_json)
+        snprintf(paths[nout++], sizeof paths[0], "%s.json", prefix);
+    for (int i = 0; i < nout; i++) {
+        if ((status = clef_outfile_begin(&outs[i], paths[i])) != CLEF_OK)
             goto fail;
-        written[nwritten] = paths[nwritten];
-        nwritten++;
-        snprintf(paths[nwritten], sizeof paths[0], "%s-cov.csv", prefix);
-        if ((status = clef_bandpowers_write_cov_csv(res.bp, paths[nwritten])) != CLEF_OK)
+        nbegun = i + 1;
+        written[i] = paths[i];
+    }
+    int k = 0;
+    if (a.want_fits && (status = clef_bandpowers_write_fits(res.bp, outs[k++].tmp_path)) != CLEF_OK)
+        goto fail;
+    if (a.want_csv) {
+        if ((status = clef_bandpowers_write_csv(res.bp, outs[k++].tmp_path)) != CLEF_OK)
             goto fail;
-        written[nwritten] = paths[nwritten];
-        nwritten++;
+        if ((status = clef_bandpowers_write_cov_csv(res.bp, outs[k++].tmp_path)) != CLEF_OK)
+            goto fail;
     }
     if (a.want_json) {
-        snprintf(paths[nwritten], sizeof paths[0], "%s.json", prefix);
-        const char *all[5];
-        for (int i = 0; i < nwritten; i++)
-            all[i] = written[i];
-        all[nwritten] = paths[nwritten];
         json = summary_json(argc, argv, &a, maps, &so, &res, t_read, clef_wtime() - t_begin,
-                            all, nwritten + 1);
-        const int rc_json = json ? cli_write_json(paths[nwritten], json) : CLI_EXIT_NOMEM;
+                            written, nout);
+        const int rc_json = json ? cli_write_json(outs[k++].tmp_path, json) : CLI_EXIT_NOMEM;
         if (rc_json != CLI_EXIT_OK) {
             rc = rc_json; /* already reported */
             goto fail;
         }
-        written[nwritten] = paths[nwritten];
-        nwritten++;
+    }
+    if ((rc = cli_check_inputs()) != CLI_EXIT_OK)
+        goto fail;
+    for (int i = 0; i < nout; i++) {
+        if ((status = clef_outfile_commit(&outs[i])) != CLEF_OK)
+            goto fail;
+        nwritten = i + 1;
     }
     if (cli_verbosity >= 1)
         print_result(&a, &res);
@@ -678,6 +693,8 @@ int cmd_spectrum(int argc, char **argv)
     cli_verbose("time %-10s %8.3f s", "total", clef_wtime() - t_begin);
 
 fail:
+    for (int i = 0; i < nbegun; i++)
+        clef_outfile_abort(&outs[i]);
     if (status != CLEF_OK || rc != CLI_EXIT_OK)
         for (int i = 0; i < nwritten; i++)
             remove(written[i]);
