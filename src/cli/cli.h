@@ -36,6 +36,9 @@ const char *cli_warning(int i);
 
 /* Map a library status to an exit code, printing clef_last_error(). */
 int cli_fail(int status);
+/* The same, with each of the n temporary paths tmps[i] in the message
+ * replaced by the output it stands for, targets[i]. */
+int cli_fail_as(int status, int n, const char *const *tmps, const char *const *targets);
 /* Print "clef <cmd>: <message>" and return CLI_EXIT_USAGE. */
 int cli_usage_error(const char *cmd, const char *fmt, ...)
 #if defined(__GNUC__)

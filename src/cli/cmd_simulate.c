@@ -313,6 +313,7 @@ int cmd_simulate(int argc, char **argv)
     double complex *alm = NULL;
     clef_sht *sht = NULL;
     clef_outfile outs[3];
+    char tmp[4200] = ""; /* the gzip scratch file of the map being written */
     int nouts = 0;
     memset(outs, 0, sizeof outs);
 
@@ -411,7 +412,6 @@ int cmd_simulate(int argc, char **argv)
         cli_verbose("writing %s", name);
         /* clef_map_write compresses when the name ends in .gz: write a
          * registered ".gz" temporary, then move it onto the output's. */
-        char tmp[4200];
         snprintf(tmp, sizeof tmp, "%s", outs[nouts - 1].tmp_path);
         if (ends_with_gz(name) &&
             (status = clef_temp_make(tmp, sizeof tmp, name, NULL, ".gz")) != CLEF_OK)
@@ -450,8 +450,19 @@ int cmd_simulate(int argc, char **argv)
         if ((status = clef_outfile_commit(&outs[i])) != CLEF_OK)
             goto fail;
     goto done;
-fail:
-    exit_code = cli_fail(status);
+fail: {
+    const char *tmps[4], *targets[4];
+    int n = 0;
+    if (tmp[0] && nouts) {
+        tmps[n] = tmp;
+        targets[n++] = outs[nouts - 1].path;
+    }
+    for (int i = 0; i < nouts; i++) {
+        tmps[n] = outs[i].tmp_path;
+        targets[n++] = outs[i].path;
+    }
+    exit_code = cli_fail_as(status, n, tmps, targets);
+}
 done:
     for (int i = 0; i < nouts; i++)
         clef_outfile_abort(&outs[i]);

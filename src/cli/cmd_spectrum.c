@@ -707,5 +707,10 @@ fail:
     free(theory);
     for (int i = 0; i < 4; i++)
         clef_map_free(maps[i]);
-    return status == CLEF_OK ? rc : cli_fail(status);
+    if (status == CLEF_OK)
+        return rc;
+    const char *tmps[4];
+    for (int i = 0; i < nbegun; i++)
+        tmps[i] = outs[i].tmp_path;
+    return cli_fail_as(status, nbegun, tmps, written);
 }
