@@ -27,11 +27,10 @@ static int card_int(const char *c, long long *v)
     char *slash = strchr(val, '/');
     if (slash)
         *slash = '\0';
+    /* The leading integer, as a lenient reader would take it. */
     char *end;
     const long long x = strtoll(val, &end, 10);
-    while (*end == ' ')
-        end++;
-    if (end == val || *end)
+    if (end == val)
         return 0;
     *v = x;
     return 1;
@@ -100,114 +99,144 @@ static int read_tail(fitsfile *f, long long pos, long long n, char *out)
     return ok;
 }
 
+/* Read the 2880-byte block at `pos` (blank-padded when cut short).
+ * 0 when it cannot be read. */
+static int read_block(fitsfile *f, long long pos, long long size, char *block)
+{
+    const long long avail = size - pos < BLOCK ? size - pos : BLOCK;
+    memset(block, ' ', BLOCK);
+    /* A last block cut short is still parsed by CFITSIO (found by fuzz_alm),
+     * but CFITSIO's own reads of it fail: read it directly. */
+    if (avail < BLOCK && read_tail(f, pos, avail, block))
+        return 1;
+    int st = 0;
+    ffmbyt(f, pos, REPORT_EOF, &st);
+    if (!st)
+        ffgbyt(f, avail, block, &st);
+    if (st) {
+        fits_clear_errmsg();
+        return 0;
+    }
+    return 1;
+}
+
+/* Check the header that starts at *pos (HDU number hdu); on return *pos is
+ * just past its END block and *data the size of the data that follows, or
+ * -1 when the structural keywords do not give it. */
+static int check_header(fitsfile *f, const char *name, int hdu, long long *pos, long long size,
+                        long long *data)
+{
+    char block[BLOCK];
+    long long bitpix = 0, naxis = -1, pcount = 0, gcount = 1, prod = 1, naxis1 = -1;
+    int ended = 0, ok_size = 1, card_no = 0, groups = 0;
+    *data = -1;
+    while (!ended) {
+        if (*pos >= size || !read_block(f, *pos, size, block))
+            return CLEF_OK; /* no END: CFITSIO reports it */
+        *pos += BLOCK;
+        for (int k = 0; k < BLOCK / CARD && !ended; k++) {
+            const char *c = block + k * CARD;
+            card_no++;
+            if (key_is(c, "END")) {
+                ended = 1;
+                break;
+            }
+            /* COMMENT, HISTORY and blank keywords are free text. */
+            if (key_is(c, "COMMENT") || key_is(c, "HISTORY") || key_is(c, ""))
+                continue;
+            for (int i = 0; i < CARD; i++) {
+                const unsigned char ch = (unsigned char)c[i];
+                if (ch < 32 || ch > 126)
+                    CLEF_FAIL(CLEF_EFORMAT,
+                              "'%s' HDU %d header card %d (%.*s): byte 0x%02x at column %d "
+                              "is not printable ASCII (FITS standard, section 4.1)",
+                              name, hdu, card_no, key_len(c), c, ch, i + 1);
+            }
+            if (!is_value_card(c))
+                continue;
+            if (string_valued(c)) {
+                int i = 9;
+                while (i < CARD && c[i] == ' ')
+                    i++;
+                if (i == CARD || c[i] != '\'')
+                    CLEF_FAIL(CLEF_EFORMAT,
+                              "'%s' HDU %d header card %d: keyword %.*s is not a quoted "
+                              "string: %.70s", name, hdu, card_no, key_len(c), c, c + 10);
+            }
+            long long v;
+            if (key_is(c, "BITPIX")) {
+                ok_size &= card_int(c, &bitpix);
+            } else if (key_is(c, "NAXIS")) {
+                ok_size &= card_int(c, &naxis);
+            } else if (key_is(c, "GROUPS")) {
+                groups = c[29] == 'T';
+            } else if (key_is(c, "NAXIS1")) {
+                if (!card_int(c, &naxis1) || naxis1 < 0)
+                    ok_size = 0;
+            } else if (key_indexed(c, "NAXIS")) {
+                if (!card_int(c, &v) || v < 0)
+                    ok_size = 0;
+                else if (v == 0)
+                    prod = 0;
+                else if (prod > size / v)
+                    prod = size + 1; /* more than the file */
+                else
+                    prod *= v;
+            } else if (key_is(c, "PCOUNT")) {
+                ok_size &= card_int(c, &pcount);
+            } else if (key_is(c, "GCOUNT")) {
+                ok_size &= card_int(c, &gcount);
+            }
+        }
+    }
+    /* Data size, section 4.4.1.1: |BITPIX|/8 GCOUNT (PCOUNT + NAXIS1 ... NAXISn);
+     * random groups (section 6): NAXIS1 = 0 is not a factor. */
+    if (!ok_size || naxis < 0 || pcount < 0 || gcount < 0 || bitpix == 0)
+        return CLEF_OK;
+    if (naxis1 >= 0 && !(groups && naxis1 == 0)) {
+        if (naxis1 == 0)
+            prod = 0;
+        else if (prod > size / naxis1)
+            prod = size + 1;
+        else
+            prod *= naxis1;
+    }
+    if (naxis == 0)
+        prod = 0;
+    if (prod > size || pcount > size || gcount > size)
+        return CLEF_OK;
+    const long long bytes = llabs(bitpix) / 8 * gcount * (pcount + prod);
+    if (bytes <= size)
+        *data = bytes;
+    return CLEF_OK;
+}
+
 int clef_fits_check_headers(fitsfile *f, const char *name)
 {
     const long long size = f->Fptr->logfilesize;
-    long long pos = 0;
-    char block[BLOCK];
-    for (int hdu = 1; hdu <= 10000 && pos < size; hdu++) {
-        long long bitpix = 0, naxis = -1, pcount = 0, gcount = 1, prod = 1, naxis1 = -1;
-        int ended = 0, ok_size = 1, card_no = 0, groups = 0;
-        while (!ended) {
-            int st = 0;
-            if (pos >= size)
-                return CLEF_OK; /* no END: CFITSIO reports it */
-            /* A last block cut short is still parsed by CFITSIO (found by
-             * fuzz_alm), so it is checked too, blank-padded. */
-            const long long avail = size - pos < BLOCK ? size - pos : BLOCK;
-            memset(block, ' ', BLOCK);
-            if (avail < BLOCK && read_tail(f, pos, avail, block)) {
-                /* read directly: CFITSIO fails on a partial record */
-            } else {
-                ffmbyt(f, pos, REPORT_EOF, &st);
-                if (!st)
-                    ffgbyt(f, avail, block, &st);
-                if (st) {
-                    fits_clear_errmsg();
-                    return CLEF_OK;
-                }
-            }
-            pos += BLOCK;
-            for (int k = 0; k < BLOCK / CARD && !ended; k++) {
-                const char *c = block + k * CARD;
-                card_no++;
-                /* An extension starts with XTENSION; anything else means the
-                 * walk lost its way (an unusual data layout): stop checking. */
-                if (hdu > 1 && card_no == 1 && !key_is(c, "XTENSION"))
-                    return CLEF_OK;
-                if (key_is(c, "END")) {
-                    ended = 1;
-                    break;
-                }
-                /* COMMENT, HISTORY and blank keywords are free text. */
-                if (key_is(c, "COMMENT") || key_is(c, "HISTORY") || key_is(c, ""))
-                    continue;
-                for (int i = 0; i < CARD; i++) {
-                    const unsigned char ch = (unsigned char)c[i];
-                    if (ch < 32 || ch > 126)
-                        CLEF_FAIL(CLEF_EFORMAT,
-                                  "'%s' HDU %d header card %d (%.*s): byte 0x%02x at column %d "
-                                  "is not printable ASCII (FITS standard, section 4.1)",
-                                  name, hdu, card_no, key_len(c), c, ch, i + 1);
-                }
-                if (!is_value_card(c))
-                    continue;
-                if (string_valued(c)) {
-                    int i = 9;
-                    while (i < CARD && c[i] == ' ')
-                        i++;
-                    if (i == CARD || c[i] != '\'')
-                        CLEF_FAIL(CLEF_EFORMAT,
-                                  "'%s' HDU %d header card %d: keyword %.*s is not a quoted "
-                                  "string: %.70s", name, hdu, card_no, key_len(c), c, c + 10);
-                }
-                long long v;
-                if (key_is(c, "BITPIX")) {
-                    ok_size &= card_int(c, &bitpix);
-                } else if (key_is(c, "NAXIS")) {
-                    ok_size &= card_int(c, &naxis);
-                } else if (key_is(c, "GROUPS")) {
-                    groups = c[29] == 'T';
-                } else if (key_is(c, "NAXIS1")) {
-                    if (!card_int(c, &naxis1) || naxis1 < 0)
-                        ok_size = 0;
-                } else if (key_indexed(c, "NAXIS")) {
-                    if (!card_int(c, &v) || v < 0)
-                        ok_size = 0;
-                    else if (v == 0)
-                        prod = 0;
-                    else if (prod > size / v)
-                        prod = size + 1; /* more than the file: stops the walk */
-                    else
-                        prod *= v;
-                } else if (key_is(c, "PCOUNT")) {
-                    ok_size &= card_int(c, &pcount);
-                } else if (key_is(c, "GCOUNT")) {
-                    ok_size &= card_int(c, &gcount);
-                }
-            }
-        }
-        /* Data size, section 4.4.1.1: |BITPIX|/8 GCOUNT (PCOUNT + NAXIS1 ... NAXISn). */
-        if (!ok_size || naxis < 0 || pcount < 0 || gcount < 0 || bitpix == 0)
-            return CLEF_OK; /* CFITSIO refuses the header itself */
-        /* Random groups (section 6): NAXIS1 = 0 is not a factor. */
-        if (naxis1 >= 0 && !(groups && naxis1 == 0)) {
-            if (naxis1 == 0)
-                prod = 0;
-            else if (prod > size / naxis1)
-                prod = size + 1;
-            else
-                prod *= naxis1;
-        }
-        if (naxis == 0)
-            prod = 0;
-        const long long bytes_per = llabs(bitpix) / 8;
-        if (prod > size || pcount > size || gcount > size)
-            return CLEF_OK; /* data beyond the file: the readers' size checks report it */
-        const long long data = bytes_per * gcount * (pcount + prod);
-        if (data > size)
-            return CLEF_OK;
+    long long pos = 0, data;
+    CLEF_TRY(check_header(f, name, 1, &pos, size, &data));
+    int hdu = 2, lost = data < 0;
+    if (!lost)
         pos += (data + BLOCK - 1) / BLOCK * BLOCK;
+    char block[BLOCK];
+    /* Follow the data sizes from header to header; when they cannot be
+     * trusted (a keyword clef does not parse but CFITSIO might, a next
+     * header that is not where it should be), check every block of the
+     * rest of the file that begins an extension header instead. */
+    while (pos < size && hdu <= 100000) {
+        if (!read_block(f, pos, size, block))
+            return CLEF_OK;
+        if (!key_is(block, "XTENSION")) {
+            lost = 1;
+            pos += BLOCK;
+            continue;
+        }
+        CLEF_TRY(check_header(f, name, hdu++, &pos, size, &data));
+        if (data < 0)
+            lost = 1;
+        if (!lost)
+            pos += (data + BLOCK - 1) / BLOCK * BLOCK;
     }
     return CLEF_OK;
 }
