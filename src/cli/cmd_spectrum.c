@@ -13,6 +13,7 @@
 
 #include "clef/beam.h"
 #include "clef/bins.h"
+#include "clef/coupling.h"
 #include "clef/hash.h"
 #include "clef/map.h"
 #include "clef/peak.h"
@@ -57,7 +58,10 @@ static void help(void)
         "                         observed sky and removed)\n"
         "  --cache-dir DIR        coupling cache folder (default $CLEF_CACHE_DIR,\n"
         "                         $XDG_CACHE_HOME/clef or ~/.cache/clef)\n"
-        "  --no-cache             neither read nor write the coupling cache\n\n"
+        "  --no-cache             neither read nor write the coupling cache\n"
+        "  --cache-limit SIZE     keep the cache folder under SIZE (e.g. 500M, 4G; 0: no\n"
+        "                         limit), removing least recently used entries\n"
+        "                         (default $CLEF_CACHE_LIMIT, else 4G)\n\n"
         "First peak:\n"
         "  --peak-l-min L, --peak-l-max L   search window (default 100..400)\n"
         "  --peak-model parabola|gaussian   fitted shape (default gaussian)\n"
@@ -78,7 +82,7 @@ static void help(void)
 enum {
     OPT_MASK = 256, OPT_MASK2, OPT_HDU, OPT_COLUMN, OPT_COORD, OPT_LMAX, OPT_BINW, OPT_LOGB,
     OPT_BINS, OPT_FWHM, OPT_BEAMF, OPT_NOPIX, OPT_TRANSFER, OPT_NOISE, OPT_THEORY, OPT_ITER,
-    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_PLMIN, OPT_PLMAX, OPT_PMODEL, OPT_PHW, OPT_NOPEAK, OPT_FORMAT,
+    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_CACHELIMIT, OPT_PLMIN, OPT_PLMAX, OPT_PMODEL, OPT_PHW, OPT_NOPEAK, OPT_FORMAT,
     OPT_THREADS, OPT_QUIET, OPT_VERBOSE, OPT_HELP
 };
 
@@ -133,6 +137,7 @@ static int parse_args(int argc, char **argv, args *a)
         {"keep-multipoles", no_argument, 0, OPT_KEEP},
         {"cache-dir", required_argument, 0, OPT_CACHE},
         {"no-cache", no_argument, 0, OPT_NOCACHE},
+        {"cache-limit", required_argument, 0, OPT_CACHELIMIT},
         {"peak-l-min", required_argument, 0, OPT_PLMIN},
         {"peak-l-max", required_argument, 0, OPT_PLMAX},
         {"peak-model", required_argument, 0, OPT_PMODEL},
@@ -202,6 +207,13 @@ static int parse_args(int argc, char **argv, args *a)
         case OPT_KEEP: a->keep = 1; break;
         case OPT_CACHE: a->cache_dir = optarg; break;
         case OPT_NOCACHE: a->no_cache = 1; break;
+        case OPT_CACHELIMIT: {
+            long long bytes;
+            if (clef_cache_parse_size(optarg, &bytes) != CLEF_OK)
+                return cli_usage_error(CMD, "--cache-limit: %s", clef_last_error());
+            clef_cache_set_limit(bytes);
+            break;
+        }
         case OPT_PLMIN:
             if (cli_parse_double(CMD, "--peak-l-min", optarg, &a->peak_lmin))
                 return CLI_EXIT_USAGE;
