@@ -248,6 +248,8 @@ int clef_temp_make(char *out, size_t n, const char *next_to, const char *label, 
     suffix = suffix ? suffix : "";
     const char *slash = strrchr(next_to, '/');
     const size_t dirlen = slash ? (size_t)(slash - next_to) + 1 : 0;
+    char dir[4096];
+    snprintf(dir, sizeof dir, "%.*s", dirlen > 1 ? (int)dirlen - 1 : (int)dirlen, next_to);
     char host[64];
     host_tag(host, sizeof host);
     char tail[160];
@@ -257,12 +259,11 @@ int clef_temp_make(char *out, size_t n, const char *next_to, const char *label, 
     const size_t room = 255 - 1 - strlen(tail);
     if (lablen > room)
         lablen = room;
-    const int len = snprintf(out, n, "%.*s.%.*s%s", (int)dirlen, next_to, (int)lablen,
-                             label ? label : "", tail);
+    const int len = label ? snprintf(out, n, "%.*s.%.*s%s", (int)dirlen, next_to, (int)lablen,
+                                     label, tail)
+                          : snprintf(out, n, "%.*s%s", (int)dirlen, next_to, tail);
     if (len < 0 || (size_t)len >= n)
         CLEF_FAIL(CLEF_EINVAL, "output path too long: '%s'", next_to);
-    char dir[4096];
-    snprintf(dir, sizeof dir, "%.*s", dirlen > 1 ? (int)dirlen - 1 : (int)dirlen, next_to);
     sweep_once(dirlen ? dir : ".");
     const int fd = mkstemps(out, (int)strlen(suffix));
     if (fd < 0) {

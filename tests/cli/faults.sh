@@ -164,7 +164,7 @@ for sig in TERM INT; do
     done
     [ "$(temps "$d")" -gt 0 ] || fail "SIG$sig: no temporary appeared to interrupt"
     kill "-$sig" "$pid"
-    rc=0; wait "$pid" || rc=$?
+    rc=0; wait "$pid" 2>/dev/null || rc=$?
     want=143; [ "$sig" = INT ] && want=130
     [ "$rc" -eq "$want" ] || fail "SIG$sig: exit status $rc, expected $want"
     grep -q "interrupted by a signal; temporary files removed" "$d.err" || fail "SIG$sig: no message"
@@ -214,9 +214,20 @@ else
     grep -q "ro/out" ro.log || fail "read-only folder: message: $(cat ro.log)"
     chmod 755 ro
 fi
+# wait_read PID BYTES: until the process has read BYTES (/proc/PID/io rchar),
+# i.e. its inputs, and is computing.
+wait_read() {
+    n=0
+    while [ "$n" -lt 2000 ] && kill -0 "$1" 2>/dev/null; do
+        r=$(sed -n 's/^rchar: //p' "/proc/$1/io" 2>/dev/null || echo 0)
+        [ "${r:-0}" -ge "$2" ] && return 0
+        sleep 0.005; n=$((n + 1))
+    done
+}
+size=$(($(wc -c < map.fits) + $(wc -c < mask.fits)))
 mkdir -p gone/sub
 "$CLEF_BIN" spectrum map.fits --mask mask.fits --no-cache -o gone/sub/out --quiet 2>gone.log & pid=$!
-sleep "$(awk -v m="$t_spec" 'BEGIN { printf "%.3f", 0.3 * m / 1000 }')"
+wait_read "$pid" "$size"
 rm -rf gone/sub
 rc=0; wait "$pid" || rc=$?
 [ "$rc" -eq 4 ] || fail "folder deleted during the run: exit $rc ($(cat gone.log))"
@@ -226,19 +237,13 @@ echo "ok: output folder deleted: $(cat gone.log)"
 
 # 5. Input truncated or replaced while the job runs: once clef has read the
 # map and the mask (/proc/PID/io rchar), change the map.
-size=$(($(wc -c < map.fits) + $(wc -c < mask.fits)))
 for how in truncate replace; do
     d="in-$how"; mkdir "$d"; cp map.fits "$d/map.fits"
     [ "$how" = replace ] && "$CLEF_BIN" simulate --nside 128 --cl cl.txt --seed 9 \
         --output "$d/new.fits" --quiet
     "$CLEF_BIN" spectrum "$d/map.fits" --mask mask.fits --no-cache -o "$d/out" --quiet \
         2>"$d.log" & pid=$!
-    n=0
-    while [ "$n" -lt 1000 ] && kill -0 "$pid" 2>/dev/null; do
-        r=$(sed -n 's/^rchar: //p' "/proc/$pid/io" 2>/dev/null || echo 0)
-        [ "${r:-0}" -ge "$size" ] && break
-        sleep 0.005; n=$((n + 1))
-    done
+    wait_read "$pid" "$size"
     if [ "$how" = truncate ]; then
         truncate -s 20000 "$d/map.fits"
     else
