@@ -19,6 +19,7 @@ cd "$T"
 failures=0
 fail() { echo "FAIL: $*"; failures=$((failures + 1)); }
 N=20
+[ -n "${CLEF_SANITIZE:-}" ] && N=6   # the sanitizer build: same checks, fewer runs
 export OMP_NUM_THREADS=1
 temps() { find "$@" -name '*.clef-tmp.*' 2>/dev/null | wc -l; }
 
@@ -95,7 +96,7 @@ concurrent corrupted "$PWD/c2"
 # 3. Back-to-back runs of a small job.
 "$CLEF_BIN" simulate --nside 16 --cl cl.txt --seed 3 --output small.fits --quiet
 "$CLEF_BIN" mask --nside 16 --latitude-cut 10 --output smallmask.fits --quiet
-reps=50; [ -n "${CLEF_LONG:-}" ] && reps=200
+reps=50; [ -n "${CLEF_LONG:-}" ] && reps=200; [ -n "${CLEF_SANITIZE:-}" ] && reps=15
 mkdir -p bb
 "$CLEF_PYTHON" - "$CLEF_BIN" "$reps" <<'PY' || fail "back-to-back runs"
 import os, subprocess, sys, time
