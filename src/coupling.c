@@ -513,3 +513,42 @@ void clef_coupling_binned_decouple(const clef_coupling_binned *k, const double *
         band[b] = s;
     }
 }
+
+int clef_coupling_binned_windows(const clef_coupling_binned *k, const clef_coupling *m,
+                                 const clef_bins *bins, const double *transfer, double *out)
+{
+    if (!k || !m || !bins || !out)
+        CLEF_FAIL(CLEF_EINVAL, "coupling windows: NULL argument");
+    if (m->lmax != k->lmax || clef_bins_count(bins) != k->nbins)
+        CLEF_FAIL(CLEF_EINVAL,
+                  "coupling windows: matrix lmax %d and %d bins do not match the binned "
+                  "operator (lmax %d, %d bins)",
+                  m->lmax, clef_bins_count(bins), k->lmax, k->nbins);
+    CLEF_TRY(check_bins(bins, m->lmax));
+    CLEF_TRY(clef_coupling_check_transfer(transfer, m->lmax));
+    const int nb = k->nbins;
+    const size_t n = (size_t)m->lmax + 1;
+    /* (P M)_bl = sum_{l'' in b} P_bl'' M_l''l: one pass over the binned rows. */
+#pragma omp parallel for schedule(dynamic, 1)
+    for (int b = 0; b < nb; b++) {
+        double *row = out + (size_t)b * n;
+        memset(row, 0, n * sizeof *row);
+        for (int l2 = clef_bins_l_lo(bins, b); l2 <= clef_bins_l_hi(bins, b); l2++) {
+            const double p = clef_bins_p(bins, b, l2);
+            const double *ml = m->m + (size_t)l2 * n;
+            for (size_t l = 0; l < n; l++)
+                row[l] += p * ml[l];
+        }
+    }
+    /* K^-1 (P M) by LU back-substitution (LAPACK dgetrs), then the filter
+     * T_l on the columns: the band power sees the sky through M T. */
+    lapack_int info = LAPACKE_dgetrs(LAPACK_ROW_MAJOR, 'N', nb, (lapack_int)n, k->lu, nb,
+                                     k->ipiv, out, (lapack_int)n);
+    if (info != 0)
+        CLEF_FAIL(CLEF_ENUMERIC, "coupling windows: LAPACK dgetrs failed (info %d)", (int)info);
+    if (transfer)
+        for (int b = 0; b < nb; b++)
+            for (size_t l = 0; l < n; l++)
+                out[(size_t)b * n + l] *= transfer[l];
+    return CLEF_OK;
+}

@@ -13,6 +13,10 @@ int clef_plot_format_from_path(const char *path, int *format)
 {
     if (!path || !*path)
         CLEF_FAIL(CLEF_EINVAL, "figure path is empty");
+    if (!strcmp(path, "-")) { /* standard output: PNG */
+        *format = CLEF_PLOT_PNG;
+        return CLEF_OK;
+    }
     const char *slash = strrchr(path, '/');
     const char *dot = strrchr(slash ? slash + 1 : path, '.');
     if (dot && !strcasecmp(dot, ".png"))

@@ -61,12 +61,21 @@ double plot_text_width(cairo_t *cr, const char *s);
 void plot_draw_axes(cairo_t *cr, const clef_plot_frame *f, const char *xlabel,
                     const char *ylabel, double font);
 
-/* Colour scales of our own: t in [0, 1] (clamped) to sRGB. */
+/* Colour scales of our own (plot_util.c: construction; docs/figures.md):
+ * a table of PLOT_SCALE_N sRGB colours at equal CIE 1976 colour
+ * differences, built once per figure (no shared state). */
 typedef struct plot_rgb {
     double r, g, b;
 } plot_rgb;
-plot_rgb plot_scale_diverging(double t);
-plot_rgb plot_scale_sequential(double t);
-extern const plot_rgb plot_missing_grey;
+#define PLOT_SCALE_N 513
+typedef struct plot_scale {
+    plot_rgb c[PLOT_SCALE_N];
+} plot_scale;
+/* scale: CLEF_PLOT_SCALE_DIVERGING or _SEQUENTIAL. */
+void plot_scale_build(int scale, plot_scale *s);
+/* t in [0, 1] (clamped): 0 = low end, 1 = high end, 0.5 = diverging centre. */
+plot_rgb plot_scale_colour(const plot_scale *s, double t);
+/* Missing pixels: hatch of these two greys. */
+extern const plot_rgb plot_missing_light, plot_missing_dark;
 
 #endif

@@ -1,5 +1,8 @@
 /* Map view: full-sky Mollweide projection of a HEALPix map, a mask, or
- * their product, with graticule, colour bar and caption.
+ * their product.  clef's own layout (docs/figures.md): the sky on the
+ * left, a vertical colour bar at its right with the unit above it and a
+ * hatched "no data" key below it, the title and a caption line under the
+ * map, a graticule of meridians every 60 and parallels every 20 degrees.
  *
  * Projection formulas: Snyder (1987), "Map Projections - A Working Manual",
  * USGS Professional Paper 1395, pp. 249-253.  With the auxiliary angle psi,
@@ -27,6 +30,10 @@ static double map_font(int width)
     return s < 7 ? 7 : s;
 }
 
+/* Graticule spacing, degrees (named in the caption). */
+#define GRID_LON 60
+#define GRID_LAT 20
+
 int clef_plot_map_layout(const clef_plot_map_opts *o, clef_plot_map_frame *f)
 {
     clef_plot_map_opts d = {0};
@@ -39,17 +46,19 @@ int clef_plot_map_layout(const clef_plot_map_opts *o, clef_plot_map_frame *f)
                   PLOT_SIZE_MAX);
     const double fs = map_font(f->width);
     const double margin = 0.02 * f->width;
-    const double title_band = o->title ? 2.6 * fs : margin;
-    f->a = 0.5 * (f->width - 2 * margin);
+    /* Right of the sky: gap, bar, ticks and their labels. */
+    const double band = 1.4 * fs + 1.2 * fs + 6.0 * fs;
+    f->a = 0.5 * (f->width - 2 * margin - band);
     f->b = 0.5 * f->a;
-    f->cx = 0.5 * f->width;
-    f->cy = title_band + f->b;
-    f->bar_top = f->cy + f->b + 1.2 * fs;
-    f->bar_bottom = f->bar_top + 1.1 * fs;
-    f->bar_left = 0.25 * f->width;
-    f->bar_right = 0.75 * f->width;
-    /* Below the bar: tick labels, then the caption line. */
-    f->height = (int)ceil(f->bar_bottom + 5.0 * fs);
+    f->cx = margin + f->a;
+    f->cy = margin + 0.6 * fs + f->b;
+    f->bar_left = f->cx + f->a + 1.4 * fs;
+    f->bar_right = f->bar_left + 1.2 * fs;
+    f->bar_top = f->cy - 0.72 * f->b;
+    f->bar_bottom = f->cy + 0.50 * f->b;
+    /* Under the sky: the title line (if any) and the caption line. */
+    const double below = (o->title ? 1.9 * fs : 0) + 3.4 * fs;
+    f->height = (int)ceil(f->cy + f->b + 0.8 * fs + below);
     return CLEF_OK;
 }
 
@@ -107,7 +116,7 @@ typedef struct sky_image {
     int x0, y0, w, h;
     double *v;
     unsigned char *state;
-    size_t nshown;
+    size_t nshown, nmissing;
     int all_unit;  /* every shown value in [0, 1] */
     double vmin, vmax;
 } sky_image;
@@ -123,7 +132,7 @@ static int sample_sky(const clef_plot_map_frame *f, const clef_map *map, const c
     im->state = malloc((size_t)im->w * im->h);
     if (!im->v || !im->state)
         CLEF_FAIL(CLEF_ENOMEM, "map view: no memory for a %d x %d image", im->w, im->h);
-    im->nshown = 0;
+    im->nshown = im->nmissing = 0;
     im->all_unit = 1;
     im->vmin = INFINITY;
     im->vmax = -INFINITY;
@@ -144,6 +153,7 @@ static int sample_sky(const clef_plot_map_frame *f, const clef_map *map, const c
             }
             im->v[k] = v;
             im->state[k] = st;
+            im->nmissing += st == SKY_MISSING;
             if (st != SKY_SHOWN)
                 continue;
             im->nshown++;
@@ -221,21 +231,29 @@ static int choose_scale(const clef_plot_map_opts *o, const sky_image *im, int *s
     return CLEF_OK;
 }
 
-static plot_rgb scale_colour(int scale, double v, double lo, double hi)
-{
-    const double t = (v - lo) / (hi - lo);
-    return scale == CLEF_PLOT_SCALE_DIVERGING ? plot_scale_diverging(t) : plot_scale_sequential(t);
-}
-
 static uint32_t argb(plot_rgb c)
 {
     return 0xff000000u | (uint32_t)lround(255 * c.r) << 16 | (uint32_t)lround(255 * c.g) << 8 |
            (uint32_t)lround(255 * c.b);
 }
 
+/* The hatch of missing pixels: diagonal stripes, a third of each period
+ * dark, anchored to device coordinates so that neighbouring regions join. */
+static int hatch_period(int width)
+{
+    const int p = (int)lround(width / 125.0);
+    return p < 4 ? 4 : p;
+}
+
+static int hatch_dark(int x, int y, int period)
+{
+    return ((x + y) % period + period) % period < (period + 2) / 3;
+}
+
 /* Paint the sampled sky as an image at (x0, y0), one image pixel per
  * device unit; outside the ellipse stays transparent. */
-static int paint_sky(cairo_t *cr, const sky_image *im, int scale, double lo, double hi)
+static int paint_sky(cairo_t *cr, const sky_image *im, const plot_scale *sc, double lo,
+                     double hi, int period)
 {
     cairo_surface_t *s = cairo_image_surface_create(CAIRO_FORMAT_ARGB32, im->w, im->h);
     if (cairo_surface_status(s) != CAIRO_STATUS_SUCCESS) {
@@ -245,14 +263,17 @@ static int paint_sky(cairo_t *cr, const sky_image *im, int scale, double lo, dou
     cairo_surface_flush(s);
     unsigned char *data = cairo_image_surface_get_data(s);
     const int stride = cairo_image_surface_get_stride(s);
-    const uint32_t grey = argb(plot_missing_grey);
+    const uint32_t light = argb(plot_missing_light), dark = argb(plot_missing_dark);
     for (int j = 0; j < im->h; j++) {
         uint32_t *row = (uint32_t *)(void *)(data + (size_t)j * stride);
         for (int i = 0; i < im->w; i++) {
             const size_t k = (size_t)j * im->w + i;
-            row[i] = im->state[k] == SKY_SHOWN     ? argb(scale_colour(scale, im->v[k], lo, hi))
-                     : im->state[k] == SKY_MISSING ? grey
-                                                   : 0;
+            if (im->state[k] == SKY_SHOWN)
+                row[i] = argb(plot_scale_colour(sc, (im->v[k] - lo) / (hi - lo)));
+            else if (im->state[k] == SKY_MISSING)
+                row[i] = hatch_dark(im->x0 + i, im->y0 + j, period) ? dark : light;
+            else
+                row[i] = 0;
         }
     }
     cairo_surface_mark_dirty(s);
@@ -263,22 +284,23 @@ static int paint_sky(cairo_t *cr, const sky_image *im, int scale, double lo, dou
     return CLEF_OK;
 }
 
-/* Parallels and meridians every 30 degrees, and the outline. */
+/* Meridians every GRID_LON and parallels every GRID_LAT degrees (the
+ * poles excluded), and the outline. */
 static void draw_graticule(cairo_t *cr, const clef_plot_map_frame *f, double fs, int lines)
 {
     const double deg = PLOT_PI / 180;
     double x, y;
     cairo_save(cr);
     if (lines) {
-        cairo_set_source_rgba(cr, 0.15, 0.15, 0.15, 0.45);
+        cairo_set_source_rgba(cr, 0.10, 0.10, 0.12, 0.40);
         cairo_set_line_width(cr, 0.05 * fs);
-        for (int lat = -60; lat <= 60; lat += 30) {
+        for (int lat = -GRID_LAT * ((90 - 1) / GRID_LAT); lat < 90; lat += GRID_LAT) {
             project(f, PLOT_PI, lat * deg, &x, &y);
             cairo_move_to(cr, x, y);
             project(f, -PLOT_PI, lat * deg, &x, &y);
             cairo_line_to(cr, x, y);
         }
-        for (int lon = -150; lon <= 150; lon += 30)
+        for (int lon = -180 + GRID_LON; lon < 180; lon += GRID_LON)
             for (int k = 0; k <= 180; k++) {
                 project(f, lon * deg, (k - 90) * deg, &x, &y);
                 if (k == 0)
@@ -299,15 +321,18 @@ static void draw_graticule(cairo_t *cr, const clef_plot_map_frame *f, double fs,
     cairo_restore(cr);
 }
 
-static void draw_colour_bar(cairo_t *cr, const clef_plot_map_frame *f, int scale, double lo,
-                            double hi, const char *unit, double fs)
+/* The vertical colour bar: low values at the bottom, ticks and labels on
+ * its right, the unit centred above it; under it, when the view shows
+ * missing pixels, a hatched key labelled "no data". */
+static void draw_colour_bar(cairo_t *cr, const clef_plot_map_frame *f, const plot_scale *sc,
+                            double lo, double hi, const char *unit, double fs, int missing,
+                            int period)
 {
     const double w = f->bar_right - f->bar_left, h = f->bar_bottom - f->bar_top;
-    cairo_pattern_t *g = cairo_pattern_create_linear(f->bar_left, 0, f->bar_right, 0);
-    for (int k = 0; k <= 64; k++) {
-        const double t = k / 64.0;
-        const plot_rgb c = scale == CLEF_PLOT_SCALE_DIVERGING ? plot_scale_diverging(t)
-                                                               : plot_scale_sequential(t);
+    cairo_pattern_t *g = cairo_pattern_create_linear(0, f->bar_bottom, 0, f->bar_top);
+    for (int k = 0; k <= 128; k++) {
+        const double t = k / 128.0;
+        const plot_rgb c = plot_scale_colour(sc, t);
         cairo_pattern_add_color_stop_rgb(g, t, c.r, c.g, c.b);
     }
     cairo_rectangle(cr, f->bar_left, f->bar_top, w, h);
@@ -315,24 +340,48 @@ static void draw_colour_bar(cairo_t *cr, const clef_plot_map_frame *f, int scale
     cairo_fill(cr);
     cairo_pattern_destroy(g);
 
-    cairo_set_source_rgb(cr, 0, 0, 0);
+    cairo_set_source_rgb(cr, 0.15, 0.15, 0.15);
     cairo_set_line_width(cr, 0.06 * fs);
     cairo_rectangle(cr, f->bar_left, f->bar_top, w, h);
     cairo_stroke(cr);
     double ticks[PLOT_MAX_TICKS], step;
-    const int n = plot_ticks_linear(lo, hi, 4, ticks, &step);
+    const int n = plot_ticks_linear(lo, hi, 5, ticks, &step);
     char buf[64];
-    plot_font(cr, fs, 0);
+    plot_font(cr, 0.9 * fs, 0);
     for (int i = 0; i < n; i++) {
-        const double x = f->bar_left + (ticks[i] - lo) / (hi - lo) * w;
-        cairo_move_to(cr, x, f->bar_bottom);
-        cairo_line_to(cr, x, f->bar_bottom + 0.4 * fs);
+        const double y = f->bar_bottom - (ticks[i] - lo) / (hi - lo) * h;
+        cairo_move_to(cr, f->bar_right, y);
+        cairo_line_to(cr, f->bar_right + 0.45 * fs, y);
         cairo_stroke(cr);
         plot_format_tick(ticks[i], step, buf, sizeof buf);
-        plot_text(cr, x, f->bar_bottom + 0.6 * fs, buf, 0.5, 0);
+        plot_text(cr, f->bar_right + 0.7 * fs, y, buf, 0, 0.5);
     }
-    if (unit && *unit)
-        plot_text(cr, f->bar_right + 0.8 * fs, 0.5 * (f->bar_top + f->bar_bottom), unit, 0, 0.5);
+    if (unit && *unit) {
+        plot_font(cr, fs, 1);
+        plot_text(cr, 0.5 * (f->bar_left + f->bar_right), f->bar_top - 0.8 * fs, unit, 0.5, 1);
+    }
+    if (missing) {
+        const double top = f->bar_bottom + 1.2 * fs, side = w;
+        cairo_save(cr);
+        cairo_rectangle(cr, f->bar_left, top, side, side);
+        cairo_clip_preserve(cr);
+        cairo_set_source_rgb(cr, plot_missing_light.r, plot_missing_light.g, plot_missing_light.b);
+        cairo_fill(cr);
+        cairo_set_source_rgb(cr, plot_missing_dark.r, plot_missing_dark.g, plot_missing_dark.b);
+        cairo_set_line_width(cr, period / 3.0);
+        /* Stripes along x + y = const, as in the sky image. */
+        for (double c = -side; c <= 2 * side; c += period) {
+            cairo_move_to(cr, f->bar_left + c, top);
+            cairo_line_to(cr, f->bar_left + c - side, top + side);
+        }
+        cairo_stroke(cr);
+        cairo_restore(cr);
+        cairo_set_source_rgb(cr, 0.15, 0.15, 0.15);
+        cairo_rectangle(cr, f->bar_left, top, side, side);
+        cairo_stroke(cr);
+        plot_font(cr, 0.9 * fs, 0);
+        plot_text(cr, f->bar_right + 0.7 * fs, top + 0.5 * side, "no data", 0, 0.5);
+    }
 }
 
 static const char *coord_name(const char *c)
@@ -395,27 +444,36 @@ int clef_plot_map(const clef_map *map, const clef_map *mask, const clef_plot_map
         goto fail;
     }
     CLEF_CHECK(choose_scale(o, &im, &scale, &lo, &hi));
+    plot_scale sc;
+    plot_scale_build(scale, &sc);
     CLEF_CHECK(plot_canvas_open(&c, path, f.width, f.height, o->transparent));
     const double fs = map_font(f.width);
-    CLEF_CHECK(paint_sky(c.cr, &im, scale, lo, hi));
+    const int period = hatch_period(f.width);
+    CLEF_CHECK(paint_sky(c.cr, &im, &sc, lo, hi, period));
     draw_graticule(c.cr, &f, fs, o->graticule >= 0);
 
-    char unit[80], caption[256];
+    char unit[80], caption[2][200];
     unit_text(o, map, scale, unit, sizeof unit);
-    draw_colour_bar(c.cr, &f, scale, lo, hi, unit, fs);
+    draw_colour_bar(c.cr, &f, &sc, lo, hi, unit, fs, im.nmissing > 0, period);
     const char *coord = coord_name(map->coordsys);
-    snprintf(caption, sizeof caption,
-             "Mollweide projection, %s%s; longitude 0 at the centre, increasing to the left; "
-             "grid every 30\xc2\xb0",
+    snprintf(caption[0], sizeof caption[0], "Mollweide equal-area view \xc2\xb7 %s%s",
              coord ? coord : "coordinate system unknown", coord ? " coordinates" : "");
-    cairo_set_source_rgb(c.cr, 0.25, 0.25, 0.25);
-    plot_font(c.cr, 0.85 * fs, 0);
-    plot_text(c.cr, f.cx, f.height - 0.8 * fs, caption, 0.5, 1);
+    snprintf(caption[1], sizeof caption[1],
+             "longitude 0 at the centre, increasing to the left%s",
+             o->graticule >= 0 ? " \xc2\xb7 meridians every 60\xc2\xb0, parallels every 20\xc2\xb0"
+                               : "");
+    const double left = f.cx - f.a;
+    double y = f.cy + f.b + 0.8 * fs;
     if (o->title) {
         cairo_set_source_rgb(c.cr, 0, 0, 0);
-        plot_font(c.cr, 1.2 * fs, 1);
-        plot_text(c.cr, f.cx, 1.3 * fs, o->title, 0.5, 0.5);
+        plot_font(c.cr, 1.15 * fs, 1);
+        plot_text(c.cr, left, y + 1.15 * fs, o->title, 0, 1);
+        y += 1.9 * fs;
     }
+    cairo_set_source_rgb(c.cr, 0.25, 0.25, 0.25);
+    plot_font(c.cr, 0.85 * fs, 0);
+    plot_text(c.cr, left, y + 1.0 * fs, caption[0], 0, 1);
+    plot_text(c.cr, left, y + 2.3 * fs, caption[1], 0, 1);
     free(im.v);
     free(im.state);
     return plot_canvas_close(&c);

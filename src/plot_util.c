@@ -268,45 +268,159 @@ void plot_draw_axes(cairo_t *cr, const clef_plot_frame *f, const char *xlabel,
     cairo_restore(cr);
 }
 
-/* Our colour stops.  Diverging: deep blue through a warm off-white at the
- * centre (zero) to dark red, light enough in the middle that small values
- * recede; sequential: dark navy through teal and green to pale yellow,
- * monotonic in lightness so that a mask's 0 reads dark and 1 light. */
-typedef struct colour_stop {
-    double t, r, g, b;
-} colour_stop;
+/* Colour scales of our own, constructed in CIELAB (CIE 15:2004, D65 white)
+ * and shown in sRGB (IEC 61966-2-1).  Each scale is made of quadratic
+ * Bezier curves in L*a*b*, traversed at constant speed in the CIE 1976
+ * colour difference Delta E*ab: equal steps in value give equal colour
+ * steps along the scale (docs/figures.md lists the measured properties).
+ *
+ * Diverging ("dusk-to-brass"): a neutral near-white centre at L* = 97 for
+ * zero; the negative arm runs to a deep violet (h_ab = 305 deg), the
+ * positive arm to a dark brass (h_ab = 80 deg), both ending at L* = 22 and
+ * both 110.6 Delta E*ab long, so +v and -v stand out equally; L* falls
+ * monotonically from the centre to each end.  The two hues lie on the
+ * blue-yellow opponent axis, which red-green colour-vision deficiency
+ * preserves.  Sequential ("tide"): one curve from a dark indigo (L* 16)
+ * through teal to a pale cream (L* 94), L* increasing throughout. */
+typedef struct lab_arm {
+    double p[3][3]; /* Bezier control points: L*, a*, b* */
+} lab_arm;
 
-static const colour_stop diverging[] = {
-    {0.00, 0.12, 0.19, 0.48}, {0.22, 0.27, 0.49, 0.76}, {0.50, 0.96, 0.95, 0.92},
-    {0.78, 0.91, 0.52, 0.25}, {1.00, 0.52, 0.06, 0.09},
-};
-static const colour_stop sequential[] = {
-    {0.00, 0.07, 0.08, 0.22}, {0.33, 0.16, 0.36, 0.53}, {0.66, 0.36, 0.69, 0.53},
-    {1.00, 0.98, 0.93, 0.55},
-};
-const plot_rgb plot_missing_grey = {0.62, 0.62, 0.62};
+static void lch_point(double L, double c, double h_deg, double out[3])
+{
+    const double h = h_deg * PLOT_PI / 180.0;
+    out[0] = L;
+    out[1] = c * cos(h);
+    out[2] = c * sin(h);
+}
 
-static plot_rgb interpolate(const colour_stop *s, int n, double t)
+/* The two diverging arms (centre -> end) and the sequential curve. */
+static void scale_arms(int scale, lab_arm *arm, int *narms)
+{
+    memset(arm, 0, 2 * sizeof *arm);
+    if (scale == CLEF_PLOT_SCALE_DIVERGING) {
+        *narms = 2;
+        lch_point(97, 0, 0, arm[0].p[0]);          /* negative arm: violet */
+        lch_point(50, 90, 305, arm[0].p[1]);
+        lch_point(22, 45, 305, arm[0].p[2]);
+        lch_point(97, 0, 0, arm[1].p[0]);          /* positive arm: brass */
+        lch_point(62, 84.883, 80, arm[1].p[1]);    /* chroma set for equal length */
+        lch_point(22, 28, 80, arm[1].p[2]);
+    } else {
+        *narms = 1;
+        lch_point(16, 30, 300, arm[0].p[0]);
+        lch_point(55, 50, 200, arm[0].p[1]);
+        lch_point(94, 16, 88, arm[0].p[2]);
+    }
+}
+
+static void bezier(const lab_arm *a, double s, double out[3])
+{
+    const double u = 1 - s;
+    for (int k = 0; k < 3; k++)
+        out[k] = u * u * a->p[0][k] + 2 * s * u * a->p[1][k] + s * s * a->p[2][k];
+}
+
+/* CIELAB -> XYZ (CIE 15:2004 eq. 8.4, D65 white X_n = 0.95047, Z_n =
+ * 1.08883) -> linear sRGB (IEC 61966-2-1 matrix) -> gamma-encoded sRGB,
+ * clipped to [0, 1] (the curves are chosen inside the gamut). */
+static plot_rgb lab_to_srgb(const double lab[3])
+{
+    const double d = 6.0 / 29.0;
+    const double fy = (lab[0] + 16) / 116, fx = fy + lab[1] / 500, fz = fy - lab[2] / 200;
+    const double f[3] = {fx, fy, fz}, white[3] = {0.95047, 1.0, 1.08883};
+    double xyz[3];
+    for (int k = 0; k < 3; k++)
+        xyz[k] = white[k] * (f[k] > d ? f[k] * f[k] * f[k] : 3 * d * d * (f[k] - 4.0 / 29.0));
+    static const double m[3][3] = {{3.2406, -1.5372, -0.4986},
+                                   {-0.9689, 1.8758, 0.0415},
+                                   {0.0557, -0.2040, 1.0570}};
+    double c[3];
+    for (int i = 0; i < 3; i++) {
+        double v = m[i][0] * xyz[0] + m[i][1] * xyz[1] + m[i][2] * xyz[2];
+        v = v < 0 ? 0 : v > 1 ? 1 : v;
+        c[i] = v <= 0.0031308 ? 12.92 * v : 1.055 * pow(v, 1 / 2.4) - 0.055;
+    }
+    plot_rgb out = {c[0], c[1], c[2]};
+    return out;
+}
+
+/* Fill n entries along one arm at equal Delta E*ab spacing: the curve is
+ * sampled finely, its arc length accumulated, and inverted linearly. */
+#define ARC_SAMPLES 2048
+static void arm_table(const lab_arm *a, plot_rgb *out, int n)
+{
+    double len[ARC_SAMPLES + 1], prev[3], cur[3];
+    bezier(a, 0, prev);
+    len[0] = 0;
+    for (int i = 1; i <= ARC_SAMPLES; i++) {
+        bezier(a, (double)i / ARC_SAMPLES, cur);
+        const double dl = cur[0] - prev[0], da = cur[1] - prev[1], db = cur[2] - prev[2];
+        len[i] = len[i - 1] + sqrt(dl * dl + da * da + db * db);
+        memcpy(prev, cur, sizeof prev);
+    }
+    int i = 0;
+    for (int k = 0; k < n; k++) {
+        const double target = len[ARC_SAMPLES] * k / (n - 1);
+        while (i < ARC_SAMPLES - 1 && len[i + 1] < target)
+            i++;
+        const double span = len[i + 1] - len[i];
+        const double u = span > 0 ? (target - len[i]) / span : 0;
+        bezier(a, (i + (u < 0 ? 0 : u > 1 ? 1 : u)) / ARC_SAMPLES, cur);
+        out[k] = lab_to_srgb(cur);
+    }
+}
+
+void plot_scale_build(int scale, plot_scale *s)
+{
+    lab_arm arm[2];
+    int narms;
+    scale_arms(scale, arm, &narms);
+    if (narms == 2) {
+        /* Entry 0 is the negative end, PLOT_SCALE_N / 2 the centre. */
+        const int h = PLOT_SCALE_N / 2 + 1;
+        plot_rgb neg[PLOT_SCALE_N / 2 + 1];
+        arm_table(&arm[0], neg, h);
+        for (int k = 0; k < h; k++)
+            s->c[k] = neg[h - 1 - k];
+        arm_table(&arm[1], s->c + h - 1, h);
+    } else {
+        arm_table(&arm[0], s->c, PLOT_SCALE_N);
+    }
+}
+
+plot_rgb plot_scale_colour(const plot_scale *s, double t)
 {
     if (!(t > 0))
         t = 0;
     if (t > 1)
         t = 1;
-    int i = 0;
-    while (i < n - 2 && t > s[i + 1].t)
-        i++;
-    const double u = (t - s[i].t) / (s[i + 1].t - s[i].t);
-    plot_rgb c = {s[i].r + u * (s[i + 1].r - s[i].r), s[i].g + u * (s[i + 1].g - s[i].g),
-                  s[i].b + u * (s[i + 1].b - s[i].b)};
+    const double x = t * (PLOT_SCALE_N - 1);
+    int i = (int)x;
+    if (i > PLOT_SCALE_N - 2)
+        i = PLOT_SCALE_N - 2;
+    const double u = x - i;
+    const plot_rgb a = s->c[i], b = s->c[i + 1];
+    plot_rgb c = {a.r + u * (b.r - a.r), a.g + u * (b.g - a.g), a.b + u * (b.b - a.b)};
     return c;
 }
 
-plot_rgb plot_scale_diverging(double t)
+int clef_plot_scale_rgb(int scale, double t, double rgb[3])
 {
-    return interpolate(diverging, (int)(sizeof diverging / sizeof *diverging), t);
+    if (scale != CLEF_PLOT_SCALE_DIVERGING && scale != CLEF_PLOT_SCALE_SEQUENTIAL)
+        CLEF_FAIL(CLEF_EINVAL, "colour scale %d is neither diverging nor sequential", scale);
+    if (!rgb || !isfinite(t))
+        CLEF_FAIL(CLEF_EINVAL, "colour scale: no output or t not finite");
+    plot_scale s;
+    plot_scale_build(scale, &s);
+    const plot_rgb c = plot_scale_colour(&s, t);
+    rgb[0] = c.r;
+    rgb[1] = c.g;
+    rgb[2] = c.b;
+    return CLEF_OK;
 }
 
-plot_rgb plot_scale_sequential(double t)
-{
-    return interpolate(sequential, (int)(sizeof sequential / sizeof *sequential), t);
-}
+/* Missing pixels: light grey hatched with a darker grey, so that they are
+ * told apart from the scale's near-white centre and from any value. */
+const plot_rgb plot_missing_light = {0.80, 0.80, 0.80};
+const plot_rgb plot_missing_dark = {0.56, 0.56, 0.56};

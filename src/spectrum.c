@@ -272,6 +272,7 @@ typedef struct run {
     double *tl;                    /* signal filter F B^2 p^2 */
     const clef_bins *bins;
     clef_bins *own_bins;
+    clef_coupling *m;              /* unbinned coupling matrix M of the mask pair */
     clef_coupling_binned *kb;
     double *band;
     clef_bandpowers *bp;
@@ -283,6 +284,7 @@ static void run_free(run *r)
     clef_bandpowers_free(r->bp);
     free(r->band);
     clef_coupling_binned_destroy(r->kb);
+    clef_coupling_destroy(r->m);
     clef_bins_destroy(r->own_bins);
     for (int i = 0; i < 5; i++)
         free(r->alm[i]);
@@ -498,8 +500,9 @@ static int stage_bins(run *r)
             width = cw > CLEF_SPECTRUM_BIN_WIDTH ? cw : CLEF_SPECTRUM_BIN_WIDTH;
         }
         if (width > r->lmax - 1)
-            CLEF_FAIL(CLEF_EINVAL, "bin width %d does not fit between l = 2 and lmax = %d",
-                      width, r->lmax);
+            CLEF_FAIL(CLEF_EINVAL, "bin width %d%s does not fit between l = 2 and lmax = %d",
+                      width, r->o.bin_width > 0 ? "" : " (the mask's coupling width: its "
+                      "observed region is too small to resolve narrower bins)", r->lmax);
         CLEF_TRY(clef_bins_create_linear(&r->own_bins, 2, width, r->lmax, CLEF_BINS_DL));
         r->bins = r->own_bins;
         r->res->bin_width = width;
@@ -508,8 +511,9 @@ static int stage_bins(run *r)
     return CLEF_OK;
 }
 
-/* The binned coupling operator K (cached), the noise bias, the decoupled
- * band powers. */
+/* The coupling matrix M (cached), the binned operator K, the noise bias,
+ * the decoupled band powers.  M itself is kept: the noise bias and the
+ * window functions need it, and K is cheap to build from it. */
 static int stage_decouple(run *r)
 {
     const int lmax = r->lmax;
@@ -519,18 +523,12 @@ static int stage_decouple(run *r)
     co.rcond_min = o->rcond_min > 0 ? o->rcond_min : CLEF_COUPLING_RCOND_MIN;
     co.width_level = CLEF_COUPLING_WIDTH_LEVEL;
     clef_progress("coupling", 0.0);
-    int status;
-    if (o->use_cache) {
-        status = clef_coupling_binned_create_cached(&r->kb, lmax, r->wl, r->lmax_t, r->bins,
-                                                    r->tl, &co, o->cache_dir, &r->res->cache_hit);
-    } else {
-        clef_coupling *m = NULL;
-        status = clef_coupling_create(&m, lmax, r->wl, r->lmax_t);
-        if (status == CLEF_OK)
-            status = clef_coupling_binned_create(&r->kb, m, r->bins, r->tl, &co);
-        clef_coupling_destroy(m);
-    }
-    CLEF_TRY(status);
+    if (o->use_cache)
+        CLEF_TRY(clef_coupling_create_cached(&r->m, lmax, r->wl, r->lmax_t, o->cache_dir,
+                                             &r->res->cache_hit));
+    else
+        CLEF_TRY(clef_coupling_create(&r->m, lmax, r->wl, r->lmax_t));
+    CLEF_TRY(clef_coupling_binned_create(&r->kb, r->m, r->bins, r->tl, &co));
     clef_progress("coupling", 1.0);
     r->res->rcond = clef_coupling_binned_rcond(r->kb);
     stage_done(r->res, "coupling", &r->t0);
@@ -544,18 +542,13 @@ static int stage_decouple(run *r)
         if (o->noise_lmax < lmax)
             CLEF_FAIL(CLEF_EINVAL, "the noise spectrum stops at l = %d, below lmax = %d",
                       o->noise_lmax, lmax);
-        clef_coupling *m = NULL;
-        CLEF_TRY(clef_spectrum_coupling(&m, lmax, r->wl, r->lmax_t, o));
         double *bias = malloc((size_t)(lmax + 1) * sizeof *bias);
-        if (!bias) {
-            clef_coupling_destroy(m);
+        if (!bias)
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for the noise bias");
-        }
-        clef_coupling_apply(m, o->noise_cl, bias);
+        clef_coupling_apply(r->m, o->noise_cl, bias);
         for (int l = 0; l <= lmax; l++)
             r->pcl_dec[l] -= bias[l];
         free(bias);
-        clef_coupling_destroy(m);
     }
     if (!(r->band = malloc((size_t)r->res->nbins * sizeof *r->band)))
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for band powers");
@@ -582,6 +575,33 @@ static int stage_covariance(run *r)
     free(cov);
     CLEF_TRY(status);
     stage_done(r->res, "covariance", &r->t0);
+    return CLEF_OK;
+}
+
+/* Band-power window functions acting on D_l (docs/formats-spectrum.md):
+ * <D_b> = sum_l W_bl D_l with W = K^-1 P M T (acting on C_l) times
+ * 2 pi / (l (l+1)) per column; flat-weighted bands are C_b, reported as
+ * D_b = C_b l_eff (l_eff + 1) / 2 pi, so their rows carry that factor too.
+ * Column l = 0 is 0: D_0 = 0 for every spectrum, so a monopole's leakage
+ * cannot be written as a weight on D_0 (the monopole is removed by
+ * default). */
+static int stage_windows(run *r)
+{
+    const int nb = r->res->nbins, lmax = r->lmax;
+    const size_t n = (size_t)lmax + 1;
+    CLEF_TRY(clef_bandpowers_alloc_windows(r->bp, lmax));
+    double *w = r->bp->win;
+    CLEF_TRY(clef_coupling_binned_windows(r->kb, r->m, r->bins, r->tl, w));
+    const int flat = clef_bins_weighting(r->bins) == CLEF_BINS_FLAT;
+    for (int b = 0; b < nb; b++) {
+        const double le = clef_bins_l_eff(r->bins, b);
+        const double scale = flat ? le * (le + 1) / (2 * M_PI) : 1.0;
+        double *row = w + (size_t)b * n;
+        row[0] = 0.0;
+        for (size_t l = 1; l < n; l++)
+            row[l] *= scale * 2 * M_PI / ((double)l * (double)(l + 1));
+    }
+    stage_done(r->res, "windows", &r->t0);
     return CLEF_OK;
 }
 
@@ -641,6 +661,8 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
         status = stage_decouple(&r);
     if (status == CLEF_OK)
         status = stage_covariance(&r);
+    if (status == CLEF_OK)
+        status = stage_windows(&r);
     if (status == CLEF_OK)
         status = record_meta(r.bp, &r.o, res);
     if (status == CLEF_OK && r.o.find_peak)

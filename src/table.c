@@ -312,6 +312,38 @@ int clef_bandpowers_write_cov_csv(const clef_bandpowers *bp, const char *path)
     return write_text_atomic(bp, path, cov_body);
 }
 
+static void win_body(FILE *f, const clef_bandpowers *bp)
+{
+    write_meta_line(f, "CLEFVERS", CLEF_VERSION, 0, "clef version that wrote this file");
+    fprintf(f, "# band-power window functions: row b (bins in table order), column l "
+               "(l = 0..%d) = W_bl; <d_band_uK2 of row b> = sum_l W_bl D_l\n", bp->win_lmax);
+    char v[40];
+    const size_t n = (size_t)bp->win_lmax + 1;
+    for (size_t b = 0; b < (size_t)bp->nbins; b++)
+        for (size_t l = 0; l < n; l++) {
+            const double x = bp->win[b * n + l];
+            if (x == 0)
+                fputc('0', f); /* most of a row is exactly 0: keep the file small */
+            else {
+                clef_table_format_double(v, sizeof v, x);
+                fputs(v, f);
+            }
+            fputc(l + 1 < n ? ',' : '\n', f);
+        }
+}
+
+int clef_bandpowers_write_windows_csv(const clef_bandpowers *bp, const char *path)
+{
+    CLEF_TRY(clef_table_check(bp, path));
+    if (!bp->win)
+        CLEF_FAIL(CLEF_EINVAL, "'%s': the band-power table has no window functions to write", path);
+    for (size_t i = 0; i < (size_t)bp->nbins * ((size_t)bp->win_lmax + 1); i++)
+        if (!isfinite(bp->win[i]))
+            CLEF_FAIL(CLEF_EINVAL, "'%s': window element (bin %zu, l %zu) is not finite", path,
+                      i / ((size_t)bp->win_lmax + 1), i % ((size_t)bp->win_lmax + 1));
+    return write_text_atomic(bp, path, win_body);
+}
+
 /* ---- reading ----------------------------------------------------------- */
 
 int clef_table_check_cov(const double *cov, size_t n, const char *path)

@@ -105,6 +105,18 @@ static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
         fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
         fits_write_img(f, TDOUBLE, 1, n * n, bp->cov, st);
     }
+    if (bp->win) {
+        /* NAXIS1 runs over l = 0..win_lmax, NAXIS2 over the bins: in numpy
+         * data[b, l] = W_bl (docs/formats-spectrum.md). */
+        long naxes[2] = {bp->win_lmax + 1, bp->nbins};
+        fits_create_img(f, DOUBLE_IMG, 2, naxes, st);
+        fits_write_key_str(f, "EXTNAME", "BANDWIN", "band-power window functions W_bl", st);
+        fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
+        fits_write_key_lng(f, "WINLMIN", 0, "multipole of the first column", st);
+        fits_write_key_lng(f, "WINLMAX", bp->win_lmax, "multipole of the last column", st);
+        fits_write_comment(f, "<D_BAND of row b> = sum_l W_bl D_l, D_l = l(l+1)C_l/2pi of the sky", st);
+        fits_write_img(f, TDOUBLE, 1, n * ((LONGLONG)bp->win_lmax + 1), bp->win, st);
+    }
 }
 
 int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
@@ -212,22 +224,38 @@ static int read_columns(fitsfile *f, clef_bandpowers *bp, const char *path)
     return CLEF_OK;
 }
 
-/* HDU 'BANDCOV', when present: an nbins x nbins double image. */
-static int read_cov(fitsfile *f, clef_bandpowers *bp, const char *path)
+/* Move to the image HDU `name`; *present = 0 when the file has none.  A
+ * 2-dimensional image fills naxes. */
+static int find_image(fitsfile *f, const char *name, const char *path, int *present, int *naxis,
+                      long naxes[2])
 {
     int st = 0;
-    fits_movnam_hdu(f, IMAGE_HDU, "BANDCOV", 0, &st);
+    *present = 0;
+    fits_movnam_hdu(f, IMAGE_HDU, (char *)name, 0, &st);
     if (st == BAD_HDU_NUM) {
         fits_clear_errmsg();
         return CLEF_OK;
     }
-    int naxis = 0;
-    long naxes[2] = {0, 0};
-    fits_get_img_dim(f, &naxis, &st);
-    if (!st && naxis == 2)
+    fits_get_img_dim(f, naxis, &st);
+    if (!st && *naxis == 2)
         fits_get_img_size(f, 2, naxes, &st);
-    if (st)
-        return fits_fail(CLEF_EFORMAT, st, path, "cannot read HDU BANDCOV");
+    if (st) {
+        char what[64];
+        snprintf(what, sizeof what, "cannot read HDU %s", name);
+        return fits_fail(CLEF_EFORMAT, st, path, what);
+    }
+    *present = 1;
+    return CLEF_OK;
+}
+
+/* HDU 'BANDCOV', when present: an nbins x nbins double image. */
+static int read_cov(fitsfile *f, clef_bandpowers *bp, const char *path)
+{
+    int st = 0, naxis = 0, present = 0;
+    long naxes[2] = {0, 0};
+    CLEF_TRY(find_image(f, "BANDCOV", path, &present, &naxis, naxes));
+    if (!present)
+        return CLEF_OK;
     if (naxis != 2 || naxes[0] != bp->nbins || naxes[1] != bp->nbins)
         CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDCOV: image is %d-dimensional %ld x %ld, the table has "
                   "%d bins", path, naxis, naxes[0], naxes[1], bp->nbins);
@@ -247,6 +275,43 @@ static int read_cov(fitsfile *f, clef_bandpowers *bp, const char *path)
         return status;
     }
     bp->cov = cov;
+    return CLEF_OK;
+}
+
+/* HDU 'BANDWIN', when present: an (win_lmax + 1) x nbins double image whose
+ * columns start at l = 0 (WINLMIN, if given, must be 0). */
+static int read_win(fitsfile *f, clef_bandpowers *bp, const char *path)
+{
+    int st = 0, naxis = 0, present = 0;
+    long naxes[2] = {0, 0};
+    CLEF_TRY(find_image(f, "BANDWIN", path, &present, &naxis, naxes));
+    if (!present)
+        return CLEF_OK;
+    if (naxis != 2 || naxes[1] != bp->nbins || naxes[0] < 1 || naxes[0] > (1L << 20) + 1)
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDWIN: image is %d-dimensional %ld x %ld, expected "
+                  "(lmax + 1) x %d bins", path, naxis, naxes[0], naxes[1], bp->nbins);
+    long lmin = 0;
+    fits_read_key_lng(f, "WINLMIN", &lmin, NULL, &st);
+    if (st == KEY_NO_EXIST) {
+        st = 0;
+        fits_clear_errmsg();
+        lmin = 0;
+    }
+    if (st)
+        return fits_fail(CLEF_EFORMAT, st, path, "HDU BANDWIN: cannot read keyword WINLMIN");
+    if (lmin != 0)
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDWIN keyword WINLMIN = %ld: only 0 is supported",
+                  path, lmin);
+    CLEF_TRY(clef_bandpowers_alloc_windows(bp, (int)naxes[0] - 1));
+    const size_t nn = (size_t)bp->nbins * (size_t)naxes[0];
+    int anynul = 0;
+    fits_read_img(f, TDOUBLE, 1, (LONGLONG)nn, NULL, bp->win, &anynul, &st);
+    if (st)
+        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDWIN image");
+    for (size_t i = 0; i < nn; i++)
+        if (!isfinite(bp->win[i]))
+            CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDWIN: element (bin %zu, l %zu) is not finite",
+                      path, i / (size_t)naxes[0], i % (size_t)naxes[0]);
     return CLEF_OK;
 }
 
@@ -280,6 +345,7 @@ int clef_table_read_fits(clef_bandpowers **out, const char *path)
     CLEF_CHECK(read_columns(f, bp, path));
     CLEF_CHECK(read_meta(f, bp, path));
     CLEF_CHECK(read_cov(f, bp, path));
+    CLEF_CHECK(read_win(f, bp, path));
     *out = bp;
     bp = NULL;
 fail:

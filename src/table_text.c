@@ -301,6 +301,28 @@ fail:
     return status;
 }
 
+/* The next line of a matrix file with its comment and leading blanks cut
+ * off, skipping empty lines: its length (*s points into *buf), -1 at end
+ * of file, -2 (reported) for binary content. */
+static long next_data_line(FILE *f, char **buf, size_t *cap, long *line, const char *path,
+                           char **s)
+{
+    for (;;) {
+        const long len = next_line(f, buf, cap);
+        if (len == -1)
+            return -1;
+        ++*line;
+        if (len == -2) {
+            clef_fail(CLEF_EFORMAT, "'%s' line %ld: binary content (NUL byte)", path, *line);
+            return -2;
+        }
+        *s = *buf + strspn(*buf, " \t");
+        *(*s + strcspn(*s, "#")) = '\0';
+        if (**s)
+            return (long)strlen(*s);
+    }
+}
+
 int clef_bandpowers_read_cov(clef_bandpowers *bp, const char *path)
 {
     if (!bp || bp->nbins < 1 || !path)
@@ -321,18 +343,14 @@ int clef_bandpowers_read_cov(clef_bandpowers *bp, const char *path)
         goto fail;
     }
     for (;;) {
-        const long len = next_line(f, &buf, &cap);
+        char *s;
+        long len = next_data_line(f, &buf, &cap, &line, path, &s);
         if (len == -1)
             break;
-        line++;
-        if (len == -2) {
-            status = clef_fail(CLEF_EFORMAT, "'%s' line %ld: binary content (NUL byte)", path, line);
+        if (len < 0) {
+            status = CLEF_EFORMAT;
             goto fail;
         }
-        char *s = buf + strspn(buf, " \t");
-        *(s + strcspn(s, "#")) = '\0';
-        if (!*s)
-            continue;
         const int nf = split_fields(s, fld, (int)n + 1);
         if (nf < 0) {
             status = clef_fail(CLEF_EFORMAT, "'%s' line %ld column %d: empty field", path, line, -nf);
@@ -364,6 +382,86 @@ int clef_bandpowers_read_cov(clef_bandpowers *bp, const char *path)
 fail:
     free(cov);
     free(fld);
+    free(buf);
+    fclose(f);
+    return status;
+}
+
+int clef_bandpowers_read_windows(clef_bandpowers *bp, const char *path)
+{
+    if (!bp || bp->nbins < 1 || !path)
+        CLEF_FAIL(CLEF_EINVAL, "read windows: no table or no path");
+    FILE *f = fopen(path, "r");
+    if (!f)
+        CLEF_FAIL(CLEF_EIO, "cannot open window-function file '%s': %s", path, strerror(errno));
+    const size_t nb = (size_t)bp->nbins;
+    int status = CLEF_OK;
+    char *buf = NULL;
+    size_t cap = 0, ncol = 0, rows = 0, vcap = 0;
+    long line = 0;
+    double *win = NULL;
+    for (;;) {
+        char *s;
+        const long len = next_data_line(f, &buf, &cap, &line, path, &s);
+        if (len == -1)
+            break;
+        if (len < 0) {
+            status = CLEF_EFORMAT;
+            goto fail;
+        }
+        if (rows == nb) {
+            status = clef_fail(CLEF_EFORMAT, "'%s' line %ld: more than %zu rows (the table has "
+                               "%zu bins)", path, line, nb, nb);
+            goto fail;
+        }
+        /* The row's fields, one per multipole from l = 0. */
+        const size_t nf_max = (size_t)len / 2 + 1;
+        char **fld = malloc((nf_max + 1) * sizeof *fld);
+        if (!fld) {
+            status = clef_fail(CLEF_ENOMEM, "'%s': out of memory", path);
+            goto fail;
+        }
+        const int nf = split_fields(s, fld, (int)nf_max);
+        if (nf < 0 || nf > (1 << 20) + 1) {
+            free(fld);
+            status = clef_fail(CLEF_EFORMAT, "'%s' line %ld column %d: empty field", path, line,
+                               nf < 0 ? -nf : nf);
+            goto fail;
+        }
+        if (rows == 0) {
+            ncol = (size_t)nf;
+            vcap = nb * ncol;
+            if (!(win = malloc(vcap * sizeof *win))) {
+                free(fld);
+                status = clef_fail(CLEF_ENOMEM, "'%s': out of memory for %zu x %zu windows", path,
+                                   nb, ncol);
+                goto fail;
+            }
+        } else if ((size_t)nf != ncol) {
+            free(fld);
+            status = clef_fail(CLEF_EFORMAT, "'%s' line %ld: %d values, the first row has %zu "
+                               "(one per multipole from l = 0)", path, line, nf, ncol);
+            goto fail;
+        }
+        for (size_t j = 0; j < ncol; j++)
+            if (!parse_number(fld[j], &win[rows * ncol + j])) {
+                status = clef_fail(CLEF_EFORMAT, "'%s' line %ld column %zu: '%s' is not a finite "
+                                   "number", path, line, j + 1, fld[j]);
+                free(fld);
+                goto fail;
+            }
+        free(fld);
+        rows++;
+    }
+    if (rows != nb) {
+        status = clef_fail(CLEF_EFORMAT, "'%s': %zu window rows, the table has %zu bins", path,
+                           rows, nb);
+        goto fail;
+    }
+    CLEF_CHECK(clef_bandpowers_alloc_windows(bp, (int)ncol - 1));
+    memcpy(bp->win, win, nb * ncol * sizeof *win);
+fail:
+    free(win);
     free(buf);
     fclose(f);
     return status;

@@ -1,5 +1,5 @@
-/* Spectrum files: the text format of docs/formats-spectrum.md (read and
- * write) and a FITS binary table (write). */
+/* Spectrum files: the text format of docs/formats-spectrum.md and the FITS
+ * binary table clef_theory_write_cl writes, both read and written. */
 #define _POSIX_C_SOURCE 200809L
 #define _DEFAULT_SOURCE
 #include "clef/theory.h"
@@ -171,10 +171,120 @@ fail:
     return status;
 }
 
+/* Record the first CFITSIO failure as a clef error naming the step. */
+static int fits_status(const char *path, const char *what, int fst)
+{
+    char msg[FLEN_STATUS];
+    fits_get_errstatus(fst, msg);
+    return clef_fail(CLEF_EIO, "FITS spectrum '%s': %s: CFITSIO status %d (%s)", path, what,
+                     fst, msg);
+}
+
+/* One (l, value) pair of a FITS row, with the text reader's checks. */
+static int fits_row(const char *path, long row, double lv, double val, int is_dl, int lmax,
+                    double *cl, unsigned char *seen, int *file_lmax)
+{
+    if (!(lv >= 0) || lv != floor(lv) || lv > 1e9)
+        CLEF_FAIL(CLEF_EFORMAT, "%s row %ld: multipole l = %g is not a whole number >= 0", path,
+                  row, lv);
+    if (!(val >= 0))
+        CLEF_FAIL(CLEF_EFORMAT, "%s row %ld: %s = %g at l = %g is negative or not a number",
+                  path, row, is_dl ? "DL" : "CL", val, lv);
+    const int l = (int)lv;
+    if (l > *file_lmax)
+        *file_lmax = l;
+    if (l > lmax)
+        return CLEF_OK;
+    if (seen[l])
+        CLEF_FAIL(CLEF_EFORMAT, "%s row %ld: multipole l = %d appears twice", path, row, l);
+    seen[l] = 1;
+    cl[l] = is_dl ? (l > 0 ? 2.0 * M_PI * val / ((double)l * (l + 1.0)) : 0.0) : val;
+    return CLEF_OK;
+}
+
+/* The FITS layout clef_theory_write_cl writes: HDU SPECTRUM (else the first
+ * binary table) with columns L and CL (or DL), in uK^2. */
+static int read_fits_body(const char *path, int lmax, double *cl, unsigned char *seen,
+                          int *file_lmax)
+{
+    fitsfile *ff = NULL;
+    int fst = 0, status = CLEF_OK, hdutype = 0;
+    double *lv = NULL, *v = NULL;
+    *file_lmax = -1;
+    if (fits_open_file(&ff, path, READONLY, &fst))
+        return fits_status(path, "open", fst);
+    if (fits_movnam_hdu(ff, BINARY_TBL, "SPECTRUM", 0, &fst)) {
+        fst = 0;
+        if (fits_movabs_hdu(ff, 2, &hdutype, &fst) || hdutype != BINARY_TBL) {
+            status = clef_fail(CLEF_EFORMAT, "%s: no HDU SPECTRUM and no binary table after the "
+                               "primary HDU", path);
+            goto done;
+        }
+    }
+    int col_l = 0, col_v = 0, is_dl = 0;
+    if (fits_get_colnum(ff, CASEINSEN, "L", &col_l, &fst)) {
+        status = clef_fail(CLEF_EFORMAT, "%s: the spectrum table has no column L", path);
+        goto done;
+    }
+    if (fits_get_colnum(ff, CASEINSEN, "CL", &col_v, &fst)) {
+        fst = 0;
+        is_dl = 1;
+        if (fits_get_colnum(ff, CASEINSEN, "DL", &col_v, &fst)) {
+            status = clef_fail(CLEF_EFORMAT, "%s: the spectrum table has neither a CL nor a DL "
+                               "column", path);
+            goto done;
+        }
+    }
+    long nrows = 0;
+    fits_get_num_rows(ff, &nrows, &fst);
+    if (fst || nrows < 1 || nrows > 100000000L) {
+        status = fst ? fits_status(path, "rows", fst)
+                     : clef_fail(CLEF_EFORMAT, "%s: the spectrum table has %ld rows", path, nrows);
+        goto done;
+    }
+    lv = malloc((size_t)nrows * sizeof *lv);
+    v = malloc((size_t)nrows * sizeof *v);
+    if (!lv || !v) {
+        status = clef_fail(CLEF_ENOMEM, "%s: out of memory for %ld rows", path, nrows);
+        goto done;
+    }
+    fits_read_col(ff, TDOUBLE, col_l, 1, 1, nrows, NULL, lv, NULL, &fst);
+    fits_read_col(ff, TDOUBLE, col_v, 1, 1, nrows, NULL, v, NULL, &fst);
+    if (fst) {
+        status = fits_status(path, "columns", fst);
+        goto done;
+    }
+    for (long r = 0; r < nrows && status == CLEF_OK; r++)
+        status = fits_row(path, r + 1, lv[r], v[r], is_dl, lmax, cl, seen, file_lmax);
+done:
+    if (ff) {
+        int st = 0;
+        fits_close_file(ff, &st);
+    }
+    free(lv);
+    free(v);
+    return status;
+}
+
+/* 1 when the file starts like FITS (plain, or gzip-compressed: CFITSIO
+ * reads both). */
+static int looks_fits(FILE *f)
+{
+    unsigned char head[9] = {0};
+    const size_t n = fread(head, 1, sizeof head, f);
+    rewind(f);
+    return (n >= 2 && head[0] == 0x1f && head[1] == 0x8b) ||
+           (n == 9 && !memcmp(head, "SIMPLE  =", 9));
+}
+
 int clef_theory_read_cl(const char *path, int lmax, double *cl, int *lmax_file)
 {
-    if (!path || !cl)
+    /* cl == NULL: only the file's largest multipole is wanted. */
+    const int query = !cl && lmax_file;
+    if (!path || (!cl && !query))
         CLEF_FAIL(CLEF_EINVAL, "spectrum reader: NULL path or output array");
+    if (query)
+        lmax = CLEF_THEORY_LMAX_MAX;
     if (lmax < 2 || lmax > CLEF_THEORY_LMAX_MAX)
         CLEF_FAIL(CLEF_EINVAL, "spectrum reader: lmax = %d must be in [2, %d]", lmax,
                   CLEF_THEORY_LMAX_MAX);
@@ -182,15 +292,33 @@ int clef_theory_read_cl(const char *path, int lmax, double *cl, int *lmax_file)
     if (!f)
         CLEF_FAIL(CLEF_EIO, "cannot open spectrum file '%s': %s", path, strerror(errno));
     unsigned char *seen = calloc((size_t)lmax + 1, 1);
-    if (!seen) {
+    double *scratch = query ? malloc(((size_t)lmax + 1) * sizeof *scratch) : NULL;
+    if (!seen || (query && !scratch)) {
         fclose(f);
+        free(seen);
+        free(scratch);
         CLEF_FAIL(CLEF_ENOMEM, "spectrum reader: out of memory for lmax = %d", lmax);
     }
+    if (query)
+        cl = scratch;
     for (int l = 0; l <= lmax; l++)
         cl[l] = 0.0;
     int flmax;
-    int status = read_body(f, path, lmax, cl, seen, &flmax);
-    fclose(f);
+    int status;
+    if (looks_fits(f)) {
+        fclose(f);
+        status = read_fits_body(path, lmax, cl, seen, &flmax);
+    } else {
+        status = read_body(f, path, lmax, cl, seen, &flmax);
+        fclose(f);
+    }
+    if (query) {
+        free(seen);
+        free(scratch);
+        if (status == CLEF_OK)
+            *lmax_file = flmax;
+        return status;
+    }
     if (status == CLEF_OK && flmax < 2)
         status = clef_fail(CLEF_EFORMAT, "%s: no multipole l >= 2 in the file", path);
     if (status == CLEF_OK) {
@@ -248,8 +376,9 @@ static int write_text(const char *tmp, const char *path, int lmax, const double 
     return CLEF_OK;
 }
 
-/* Record the first CFITSIO failure as a clef error naming the step. */
-static int fits_status(const char *path, const char *what, int fst)
+/* A CFITSIO failure while writing: the reason in words when the file system
+ * gives one (clef_write_fail), naming the target. */
+static int fits_write_status(const char *path, const char *what, int fst)
 {
     char msg[FLEN_STATUS], lib[FLEN_STATUS + 32];
     fits_get_errstatus(fst, msg);
@@ -322,7 +451,7 @@ static int write_fits(const char *tmp, const char *path, int lmax, const double 
     free(lcol);
     return CLEF_OK;
 fits_fail:
-    status = fits_status(path, what, fst);
+    status = fits_write_status(path, what, fst);
 fail:
     if (ff) {
         int close_st = 0;

@@ -259,6 +259,45 @@ static void test_binned_recovers_band_powers(void **state)
             check_abs(s, clef_bins_p(bins, b, l), 1e-9 * (1 + clef_bins_p(bins, b, l)),
                       "K (K^-1 P) = P");
         }
+    /* Window functions: W = K^-1 P M T, checked against the explicit
+     * product (K^-1 P) M T; summed with Q over bin b' they give delta_bb'
+     * (K^-1 K = I, Hivon et al. 2002 eqs. 20-21), and the mean band power
+     * of the unbinned spectrum C (not piecewise constant) is W C. */
+    double *win = malloc((size_t)nb * (L + 1) * sizeof *win);
+    assert_int_equal(clef_coupling_binned_windows(kb, c, bins, tr, win), CLEF_OK);
+    const double *mm = clef_coupling_matrix(c);
+    for (int b = 0; b < nb; b += 4)
+        for (int l = 0; l <= L; l += 7) {
+            double s = 0;
+            for (int j = 0; j <= L; j++)
+                s += kp[(size_t)b * (L + 1) + j] * mm[(size_t)j * (L + 1) + l];
+            check_abs(win[(size_t)b * (L + 1) + l], s * tr[l], 1e-12 * (1 + fabs(s)),
+                      "explicit (K^-1 P) M T");
+        }
+    for (int b = 0; b < nb; b++)
+        for (int bp = 0; bp < nb; bp++) {
+            double s = 0;
+            for (int l = clef_bins_l_lo(bins, bp); l <= clef_bins_l_hi(bins, bp); l++)
+                s += win[(size_t)b * (L + 1) + l] * clef_bins_q(bins, bp, l);
+            check_abs(s, b == bp, 1e-10, "sum_l W_bl Q_lb' = delta (K^-1 K = I)");
+        }
+    for (int l = 0; l <= L; l++) /* a smooth spectrum with a peak: not constant in a bin */
+        cl[l] = l < 2 ? 0 : 2 * M_PI / (l * (l + 1.0)) * (1000 + 4000 * exp(-pow((l - 120) / 40.0, 2)));
+    for (int l = 0; l <= L; l++)
+        tcl[l] = tr[l] * cl[l];
+    clef_coupling_apply(c, tcl, pcl);
+    clef_coupling_binned_decouple(kb, pcl, got);
+    for (int b = 0; b < nb; b++) {
+        double s = 0;
+        for (int l = 0; l <= L; l++)
+            s += win[(size_t)b * (L + 1) + l] * cl[l];
+        check_rel(s, got[b], 1e-10, "<D_b> = sum_l W_bl C_l (linearity)");
+    }
+    clef_bins *b8 = NULL;
+    assert_int_equal(clef_bins_create_linear(&b8, 2, 8, L, CLEF_BINS_DL), CLEF_OK);
+    assert_int_equal(clef_coupling_binned_windows(kb, c, b8, tr, win), CLEF_EINVAL);
+    clef_bins_destroy(b8);
+    free(win);
     clef_coupling_binned_destroy(kb);
     /* Full sky, no transfer: K = I (P Q = I) */
     static double w1[2 * L + 1];

@@ -211,6 +211,8 @@ static void test_format_from_path(void **state)
     assert_non_null(strstr(clef_last_error(), "d.jpg"));
     assert_int_equal(clef_plot_format_from_path("dir.png/noext", &f), CLEF_EUNSUP);
     assert_int_equal(clef_plot_format_from_path("", &f), CLEF_EINVAL);
+    assert_int_equal(clef_plot_format_from_path("-", &f), CLEF_OK); /* stdout: PNG */
+    assert_int_equal(f, CLEF_PLOT_PNG);
 }
 
 /* Tick placement: steps of 1, 2 or 5 times a power of ten (Heckbert,
@@ -501,12 +503,13 @@ static void test_map_unproject_roundtrip(void **state)
     check_abs(ph, pi / 2, 1e-12, "longitude to the left");
 }
 
-/* The colour bar's two ends in the PNG: the scale's low and high colours. */
+/* The colour bar's two ends in the PNG: the scale's low colour at the
+ * bottom of the vertical bar, the high colour at its top. */
 static void bar_ends(const image *im, const clef_plot_map_frame *f, int lo[3], int hi[3])
 {
-    const int y = (int)(0.5 * (f->bar_top + f->bar_bottom));
-    image_rgb(im, (int)ceil(f->bar_left) + 2, y, lo);
-    image_rgb(im, (int)floor(f->bar_right) - 3, y, hi);
+    const int x = (int)(0.5 * (f->bar_left + f->bar_right));
+    image_rgb(im, x, (int)floor(f->bar_bottom) - 2, lo);
+    image_rgb(im, x, (int)ceil(f->bar_top) + 1, hi);
 }
 
 static void test_map_hemispheres(void **state)
@@ -641,6 +644,26 @@ static void test_map_hot_pixel(void **state)
     free_map(m);
 }
 
+/* Missing pixels are hatched (plot_util.c): within a few pixels of (x, y)
+ * both greys of the hatch appear, and nothing else. */
+static int hatched(const image *im, int x, int y)
+{
+    const int light[3] = {204, 204, 204}, dark[3] = {143, 143, 143}; /* 0.80, 0.56 x 255 */
+    int nl = 0, nd = 0;
+    for (int j = y - 2; j <= y + 2; j++)
+        for (int i = x - 2; i <= x + 2; i++) {
+            int rgb[3];
+            image_rgb(im, i, j, rgb);
+            if (rgb_close(rgb, light, 2))
+                nl++;
+            else if (rgb_close(rgb, dark, 2))
+                nd++;
+            else
+                return 0;
+        }
+    return nl > 0 && nd > 0;
+}
+
 static void test_map_missing_and_mask(void **state)
 {
     (void)state;
@@ -663,11 +686,9 @@ static void test_map_missing_and_mask(void **state)
     image im;
     image_load(&im, png);
     int rgb[3];
-    const int grey[3] = {158, 158, 158}; /* 0.62 x 255, plot.h: neutral grey */
     double x, y;
-    mollweide(&f, pi / 2 + 0.05, pi / 2 + 0.12, &x, &y); /* off the l = 90 deg meridian */
-    image_rgb(&im, (int)x, (int)y, rgb);
-    assert_true(rgb_close(rgb, grey, 2));
+    mollweide(&f, pi / 2 + 0.05, pi / 2 + 0.12, &x, &y); /* inside the missing patch */
+    assert_true(hatched(&im, (int)x, (int)y));
     /* Outside the ellipse: the white background. */
     image_rgb(&im, 2, (int)f.cy, rgb);
     assert_true(rgb[0] == 255 && rgb[1] == 255 && rgb[2] == 255);
@@ -676,12 +697,10 @@ static void test_map_missing_and_mask(void **state)
     /* Map x mask: the southern half, masked out, is grey too; the north is not. */
     assert_int_equal(clef_plot_map(m, mask, &o, png), CLEF_OK);
     image_load(&im, png);
-    mollweide(&f, 2.3, 4.0, &x, &y);
-    image_rgb(&im, (int)x, (int)y, rgb);
-    assert_true(rgb_close(rgb, grey, 2));
+    mollweide(&f, 2.5, 4.0, &x, &y); /* between the parallels at -40 and -60 deg */
+    assert_true(hatched(&im, (int)x, (int)y));
     mollweide(&f, 0.8, 4.0, &x, &y);
-    image_rgb(&im, (int)x, (int)y, rgb);
-    assert_false(rgb_close(rgb, grey, 10));
+    assert_false(hatched(&im, (int)x, (int)y));
     cairo_surface_destroy(im.s);
 
     /* Transparent background: alpha 0 outside the ellipse. */
@@ -713,6 +732,68 @@ static void test_map_svg_pdf(void **state)
     assert_int_equal(clef_plot_map(m, NULL, &o, pdf), CLEF_OK);
     check_pdf(pdf, 400, f.height);
     free_map(m);
+}
+
+/* The map view's colour scales against an outside colour library:
+ * colorspacious (Debian python3-colorspacious; sRGB IEC 61966-2-1, CIELAB
+ * CIE 15:2004, CAM02-UCS of Luo, Cui & Li 2006, colour-vision deficiency
+ * of Machado, Oliveira & Fernandes 2009) checks the properties that
+ * docs/figures.md states: equal CIE76 steps along each arm, equal arm
+ * lengths, a neutral centre at L* 97, L* monotonic to ends at 22 (diverging)
+ * or from 16 to 94 (sequential), every colour inside the sRGB gamut, and the
+ * two arms kept apart under full deuteranomaly and protanomaly. */
+static void test_colour_scales(void **state)
+{
+    (void)state;
+    const char *path = test_path("scales.txt");
+    FILE *f = fopen(path, "w");
+    assert_non_null(f);
+    const int scales[2] = {CLEF_PLOT_SCALE_DIVERGING, CLEF_PLOT_SCALE_SEQUENTIAL};
+    for (int k = 0; k < 2; k++)
+        for (int i = 0; i <= 400; i++) {
+            double c[3];
+            assert_int_equal(clef_plot_scale_rgb(scales[k], i / 400.0, c), CLEF_OK);
+            fprintf(f, "%d %.12f %.12f %.12f\n", k, c[0], c[1], c[2]);
+        }
+    fclose(f);
+    double c[3];
+    assert_int_equal(clef_plot_scale_rgb(CLEF_PLOT_SCALE_AUTO, 0.5, c), CLEF_EINVAL);
+    assert_int_equal(clef_plot_scale_rgb(CLEF_PLOT_SCALE_DIVERGING, NAN, c), CLEF_EINVAL);
+    const char *py = test_path("scales.py");
+    f = fopen(py, "w");
+    assert_non_null(f);
+    fputs("import sys\n"
+          "import numpy as np\n"
+          "from colorspacious import cspace_convert\n"
+          "d = np.loadtxt(sys.argv[1])\n"
+          "def steps(x): return np.sqrt((np.diff(x, axis=0) ** 2).sum(1))\n"
+          "div = d[d[:, 0] == 0, 1:]; seq = d[d[:, 0] == 1, 1:]\n"
+          "assert div.min() > 0.005 and div.max() < 0.995 and seq.min() > 0.005 and seq.max() < 0.995\n"
+          "lab = cspace_convert(div, 'sRGB1', 'CIELab')\n"
+          "L = lab[:, 0]\n"
+          "assert abs(L[200] - 97) < 0.3 and np.hypot(*lab[200, 1:]) < 1, lab[200]\n"
+          "assert abs(L[0] - 22) < 0.5 and abs(L[400] - 22) < 0.5, (L[0], L[400])\n"
+          "assert (np.diff(L[:201]) > 0).all() and (np.diff(L[200:]) < 0).all()\n"
+          "neg, pos = steps(lab[:201]), steps(lab[200:])\n"
+          "for a in (neg, pos): assert a.std() / a.mean() < 0.01, a.std() / a.mean()\n"
+          "assert abs(neg.sum() / pos.sum() - 1) < 0.01, (neg.sum(), pos.sum())\n"
+          "u = steps(cspace_convert(div, 'sRGB1', 'CAM02-UCS'))\n"
+          "assert u.std() / u.mean() < 0.3, u.std() / u.mean()\n"
+          "k = np.arange(30, 201)\n"
+          "for kind in ('deuteranomaly', 'protanomaly'):\n"
+          "    cvd = {'name': 'sRGB1+CVD', 'cvd_type': kind, 'severity': 100}\n"
+          "    sim = cspace_convert(div, cvd, 'sRGB1').clip(0, 1)\n"
+          "    ucs = cspace_convert(sim, 'sRGB1', 'CAM02-UCS')\n"
+          "    sep = np.sqrt(((ucs[200 - k] - ucs[200 + k]) ** 2).sum(1))\n"
+          "    assert sep.min() > 15, (kind, sep.min())\n"
+          "lab = cspace_convert(seq, 'sRGB1', 'CIELab')\n"
+          "assert abs(lab[0, 0] - 16) < 0.5 and abs(lab[-1, 0] - 94) < 0.5\n"
+          "assert (np.diff(lab[:, 0]) > 0).all()\n"
+          "a = steps(lab)\n"
+          "assert a.std() / a.mean() < 0.01\n",
+          f);
+    fclose(f);
+    assert_int_equal(run_cmd("%s %s %s", ref_python(), py, path), 0);
 }
 
 static void test_map_errors(void **state)
@@ -985,6 +1066,7 @@ int main(void)
         cmocka_unit_test(test_map_missing_and_mask),
         cmocka_unit_test(test_map_svg_pdf),
         cmocka_unit_test(test_map_errors),
+        cmocka_unit_test(test_colour_scales),
         cmocka_unit_test(test_titles_and_captions),
         cmocka_unit_test(test_curvature),
         cmocka_unit_test(test_curvature_errors),

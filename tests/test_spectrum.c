@@ -236,6 +236,98 @@ static void test_masked_ensemble(void **state)
     free(want);
 }
 
+/* Band-power windows (docs/formats-spectrum.md): over masked skies with a
+ * beam and the pixel window, the mean band power equals sum_l W_bl D_l of
+ * the input within 3 standard errors in every bin, for an input that
+ * oscillates inside the bins (so W D differs from the plain bin average
+ * P C); each row summed over the multipoles of its own bin is 1 and over
+ * another bin 0 (K^-1 K = I, Hivon et al. 2002 eqs. 20-21). */
+static void test_windows_ensemble(void **state)
+{
+    (void)state;
+    const int64_t nside = 64;
+    const int lmax = (int)(2 * nside);
+    const int nsim = test_sanitize() ? 8 : 60;
+    double *cl = calloc(lmax + 1, sizeof *cl), *dl = calloc(lmax + 1, sizeof *dl);
+    for (int l = 2; l <= lmax; l++) {
+        dl[l] = 1000.0 * (1 + 0.8 * cos(2 * M_PI * l / 11.0));
+        cl[l] = 2 * M_PI * dl[l] / (l * (l + 1.0));
+    }
+    clef_map *mask = cut_mask(nside, 20.0, 10.0);
+    clef_bins *bins = NULL;
+    assert_int_equal(clef_bins_create_linear(&bins, 2, 16, lmax, CLEF_BINS_DL), CLEF_OK);
+    const int nb = clef_bins_count(bins);
+    double *naive = calloc(nb, sizeof *naive), *sum = calloc(nb, sizeof *sum),
+           *sum2 = calloc(nb, sizeof *sum2), *wd = calloc(nb, sizeof *wd);
+    bin_input(bins, cl, lmax, naive);
+    clef_sht *sht = NULL;
+    assert_int_equal(clef_sht_create(&sht, nside, lmax, NULL), CLEF_OK);
+    clef_map *m = NULL;
+    assert_int_equal(clef_map_alloc(&m, nside), CLEF_OK);
+    clef_spectrum_opts o;
+    clef_spectrum_opts_default(&o);
+    o.lmax = lmax;
+    o.bins = bins;
+    o.beam_fwhm = 60.0;
+    o.pixel_window = 1;
+    o.iterations = 3;
+    o.find_peak = 0;
+    int win_lmax = -1;
+    for (int s = 0; s < nsim; s++) {
+        clef_sim_opts so = {0};
+        so.seed = 4400 + s;
+        so.beam_fwhm = 60.0;
+        so.pixel_window = 1;
+        double *maps[1] = {m->pix};
+        assert_int_equal(clef_sim_map(sht, cl, &so, NULL, maps, NULL), CLEF_OK);
+        clef_spectrum_result r;
+        assert_int_equal(clef_spectrum_compute(m, NULL, mask, NULL, &o, &r), CLEF_OK);
+        assert_non_null(r.bp->win);
+        if (s == 0) {
+            win_lmax = r.bp->win_lmax;
+            assert_true(win_lmax >= lmax);
+            const size_t n = (size_t)win_lmax + 1;
+            for (int b = 0; b < nb; b++) {
+                for (int l = 0; l <= win_lmax && l <= lmax; l++)
+                    wd[b] += r.bp->win[b * n + l] * dl[l];
+                for (int c = 0; c < nb; c++) {
+                    double rs = 0;
+                    for (int l = clef_bins_l_lo(bins, c); l <= clef_bins_l_hi(bins, c); l++)
+                        rs += r.bp->win[b * n + l];
+                    check_abs(rs, b == c, 1e-9, "window row over a bin: delta (K^-1 K = I)");
+                }
+            }
+        }
+        for (int b = 0; b < nb; b++) {
+            sum[b] += r.bp->dl[b];
+            sum2[b] += r.bp->dl[b] * r.bp->dl[b];
+        }
+        clef_spectrum_result_free(&r);
+    }
+    double worst_w = 0, worst_naive = 0;
+    for (int b = 0; b < nb; b++) {
+        const double mean = sum[b] / nsim;
+        const double se = sqrt((sum2[b] / nsim - mean * mean) / (nsim - 1.0));
+        worst_w = fmax(worst_w, fabs(mean - wd[b]) / se);
+        worst_naive = fmax(worst_naive, fabs(mean - naive[b]) / se);
+        if (fabs(mean - wd[b]) > 3 * se)
+            fail_msg("bin %d (l %d-%d): mean %.2f, W D %.2f, 3 s.e. %.2f", b,
+                     clef_bins_l_lo(bins, b), clef_bins_l_hi(bins, b), mean, wd[b], 3 * se);
+    }
+    print_message("windows: worst |mean - W D| = %.2f s.e., worst |mean - P C| = %.2f s.e. "
+                  "over %d bins, %d skies\n", worst_w, worst_naive, nb, nsim);
+    clef_map_free(m);
+    clef_map_free(mask);
+    clef_sht_destroy(sht);
+    clef_bins_destroy(bins);
+    free(cl);
+    free(dl);
+    free(naive);
+    free(sum);
+    free(sum2);
+    free(wd);
+}
+
 /* Peak: skies from the analytic model with Planck 2018 flat parameters,
  * nside 512, a 10-arcmin beam and ~70% of the sky: the recovered l_peak is
  * within its quoted 2 sigma of the model's own first peak in >= 90% of the
@@ -534,8 +626,11 @@ int main(void)
         cmocka_unit_test(test_threads),
         cmocka_unit_test(test_units),
         cmocka_unit_test(test_noise_subtraction),
+        cmocka_unit_test(test_windows_ensemble),
         cmocka_unit_test(test_masked_ensemble),
         cmocka_unit_test(test_peak_recovery),
     };
+    if (getenv("CLEF_TEST_FILTER")) /* run one test by name while developing */
+        cmocka_set_test_filter(getenv("CLEF_TEST_FILTER"));
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

@@ -193,6 +193,75 @@ static void astropy_reads_fits(void **state)
     clef_bandpowers_free(bp);
 }
 
+static const char *write_file(const char *name, const char *text);
+
+/* Window functions: FITS HDU BANDWIN and the windows CSV read back exactly,
+ * astropy and numpy see data[b, l] = W_bl, fitsverify accepts the file,
+ * and malformed windows files are refused naming the line. */
+static void windows_round_trip(void **state)
+{
+    (void)state;
+    clef_bandpowers *bp = make_table(6, 1), *back = NULL;
+    const int wl = 40;
+    assert_int_equal(clef_bandpowers_alloc_windows(bp, wl), CLEF_OK);
+    gsl_rng *r = gsl_rng_alloc(gsl_rng_mt19937);
+    gsl_rng_set(r, 7);
+    for (int i = 0; i < 6 * (wl + 1); i++)
+        bp->win[i] = (i % 5 == 0) ? 0.0 : gsl_rng_uniform(r) - 0.2;
+    gsl_rng_free(r);
+    const char *path = test_path("win.fits"), *cpath = test_path("win.csv");
+    assert_int_equal(clef_bandpowers_write_fits(bp, path), CLEF_OK);
+    assert_int_equal(clef_bandpowers_read(&back, path), CLEF_OK);
+    assert_same_table(bp, back, 1);
+    assert_non_null(back->win);
+    assert_int_equal(back->win_lmax, wl);
+    for (int i = 0; i < 6 * (wl + 1); i++)
+        check_abs(back->win[i], bp->win[i], 0, "FITS round trip");
+    clef_bandpowers_free(back);
+    assert_int_equal(run_cmd("fitsverify -q '%s' | grep -q 'verification OK'", path), 0);
+    assert_int_equal(run_cmd("%s -c \"from astropy.io import fits\n"
+                             "h = fits.open('%s')\n"
+                             "w = h['BANDWIN'].data\n"
+                             "assert w.shape == (6, %d), w.shape\n"
+                             "assert w[4, 17] == %.17g\n"
+                             "assert h['BANDWIN'].header['WINLMAX'] == %d\n\"",
+                             ref_python(), path, wl + 1, bp->win[4 * (wl + 1) + 17], wl),
+                     0);
+
+    assert_int_equal(clef_bandpowers_write_windows_csv(bp, cpath), CLEF_OK);
+    clef_bandpowers *t = make_table(6, 0);
+    assert_int_equal(clef_bandpowers_read_windows(t, cpath), CLEF_OK);
+    assert_int_equal(t->win_lmax, wl);
+    for (int i = 0; i < 6 * (wl + 1); i++)
+        check_abs(t->win[i], bp->win[i], 0, "CSV round trip");
+    assert_int_equal(run_cmd("%s -c \"import numpy as np\n"
+                             "w = np.loadtxt('%s', delimiter=',')\n"
+                             "assert w.shape == (6, %d) and w[4, 17] == %.17g\n\"",
+                             ref_python(), cpath, wl + 1, bp->win[4 * (wl + 1) + 17]),
+                     0);
+    /* Errors: too few rows, a ragged row, a bad number, no windows to write. */
+    const char *p = write_file("win_short.csv", "# c\n1,2,3\n4,5,6\n");
+    assert_int_equal(clef_bandpowers_read_windows(t, p), CLEF_EFORMAT);
+    assert_non_null(strstr(clef_last_error(), "2 window rows"));
+    p = write_file("win_ragged.csv", "1,2,3\n4,5\n");
+    assert_int_equal(clef_bandpowers_read_windows(t, p), CLEF_EFORMAT);
+    assert_non_null(strstr(clef_last_error(), "line 2"));
+    p = write_file("win_bad.csv", "1,2,3\n4,5,x\n1,2,3\n1,2,3\n1,2,3\n1,2,3\n");
+    assert_int_equal(clef_bandpowers_read_windows(t, p), CLEF_EFORMAT);
+    assert_non_null(strstr(clef_last_error(), "line 2 column 3"));
+    p = write_file("win_ok.csv", "1,2,3\n4,5,6\n1,2,3\n1,2,3\n1,2,3\n1 2 3\n");
+    assert_int_equal(clef_bandpowers_read_windows(t, p), CLEF_OK);
+    assert_int_equal(t->win_lmax, 2);
+    check_abs(t->win[5], 6, 0, "row 1, l = 2");
+    assert_int_equal(clef_bandpowers_read_windows(t, test_path("absent.csv")), CLEF_EIO);
+    clef_bandpowers *nw = make_table(3, 0);
+    assert_int_equal(clef_bandpowers_write_windows_csv(nw, test_path("nw.csv")), CLEF_EINVAL);
+    assert_false(file_exists(test_path("nw.csv")));
+    clef_bandpowers_free(nw);
+    clef_bandpowers_free(t);
+    clef_bandpowers_free(bp);
+}
+
 static void fitsverify_passes(void **state)
 {
     (void)state;
@@ -487,7 +556,7 @@ int main(void)
         cmocka_unit_test(astropy_reads_fits), cmocka_unit_test(fitsverify_passes),
         cmocka_unit_test(user_tables),       cmocka_unit_test(read_errors),
         cmocka_unit_test(write_errors),      cmocka_unit_test(meta_rules),
-        cmocka_unit_test(foreign_fits),
+        cmocka_unit_test(foreign_fits),      cmocka_unit_test(windows_round_trip),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

@@ -67,16 +67,29 @@ void clef_set_progress(clef_progress_fn fn, void *user);
  * `path` (same folder, so the final rename cannot cross file systems);
  * the caller writes `tmp_path` by any means (stdio, CFITSIO with a leading
  * '!' to overwrite); commit() renames it onto `path`; abort() deletes it.
- * A failure therefore never leaves a partial output. */
+ * A failure therefore never leaves a partial output.
+ *
+ * A `path` that is a symbolic link is written through: the file the link
+ * points to is replaced and the link kept (`path` then holds the target).
+ * "-" means standard output, and paths naming a descriptor (/dev/stdout,
+ * /dev/fd/N, /proc/self/fd/N) or an existing non-regular file (a device,
+ * a pipe) are streamed into: the temporary file lies in $TMPDIR (else
+ * /tmp) and commit() copies it in, so nothing is written on failure there
+ * either.  A folder is refused (CLEF_EIO). */
 typedef struct clef_outfile {
     char path[4096];
     char tmp_path[4096];
     int active;
+    int stream;      /* 1: commit() copies into `path` (or stdout for "-") */
 } clef_outfile;
 
 int clef_outfile_begin(clef_outfile *o, const char *path);
 int clef_outfile_commit(clef_outfile *o);
 void clef_outfile_abort(clef_outfile *o); /* no-op when not active */
+/* Check before a long computation that `path` can be written: begin() and
+ * abort(), so the folder exists and takes a new file.  CLEF_EIO naming the
+ * path otherwise. */
+int clef_outfile_check(const char *path);
 
 /* Temporary files (docs/reliability.md).  Every temporary clef creates is
  * named "<folder>/.<label>.clef-tmp.<pid>.<host>.XXXXXX<suffix>" and kept

@@ -106,6 +106,19 @@ const double *clef_coupling_binned_kinv_p(const clef_coupling_binned *k);
 void clef_coupling_binned_decouple(const clef_coupling_binned *k, const double *pcl,
                                    double *band);
 
+/* Band-power window functions of the decoupled band powers, acting on C_l:
+ * out[b (lmax+1) + l] = sum_l'' (K^-1 P)_bl'' M_l''l T_l for l = 0..lmax,
+ * so that a sky of spectrum C_l (no power above lmax) gives
+ * <band_b> = sum_l out[b (lmax+1) + l] C_l.  m and transfer must be the
+ * matrix and the T_l (NULL: 1) k was built from; bins are its bins.  With
+ * K = P M T Q and P Q = I, the window of bin b summed with the weights
+ * Q_lb' over the multipoles of bin b' is exactly delta_bb'.  Computed as
+ * K^-1 (P M) (LAPACK dgetrs on the LU factors of K), cost ~ nbins (lmax+1)
+ * (bin width + nbins).  out holds nbins x (lmax+1) doubles.  Errors:
+ * CLEF_EINVAL (mismatched lmax or bins), CLEF_ENOMEM, CLEF_ENUMERIC. */
+int clef_coupling_binned_windows(const clef_coupling_binned *k, const clef_coupling *m,
+                                 const clef_bins *bins, const double *transfer, double *out);
+
 /* ---- cache (src/coupling_cache.c) ---- */
 
 /* The cache folder: cache_dir if non-NULL and non-empty, else

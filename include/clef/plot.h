@@ -32,7 +32,8 @@ extern "C" {
 enum clef_plot_format { CLEF_PLOT_PNG = 0, CLEF_PLOT_SVG = 1, CLEF_PLOT_PDF = 2 };
 
 /* Output format from the file name's extension (case-insensitive .png,
- * .svg, .pdf).  CLEF_EUNSUP (naming the file) for any other extension. */
+ * .svg, .pdf; "-", standard output, is PNG).  CLEF_EUNSUP (naming the
+ * file) for any other extension. */
 int clef_plot_format_from_path(const char *path, int *format);
 
 /* ---------------------------------------------------------------- spectrum */
@@ -102,21 +103,31 @@ typedef struct clef_plot_map_opts {
     int have_range;             /* 1: use [vmin, vmax] as given */
     double vmin, vmax;
     double percentile;          /* diverging range r = this percentile of |value|; 0 = 99.5 */
-    const char *title;          /* NULL: none drawn above the map */
+    const char *title;          /* NULL: none (drawn in bold under the map, above the caption) */
     const char *unit;           /* colour-bar unit; NULL: the map's unit, else "uK" (or none for a mask) */
     int transparent;            /* 1: no background outside the ellipse (PNG alpha, no page fill) */
     int graticule;              /* 0 = draw (default), -1 = do not draw */
 } clef_plot_map_opts;
 
-/* Where the sky ellipse and the colour bar sit. */
+/* Where the sky ellipse and the colour bar sit: the sky at the left, the
+ * colour bar vertical at its right (low values at the bottom, the unit
+ * above it, a hatched "no data" key below it when pixels are missing), the
+ * title and a two-line caption under the sky. */
 typedef struct clef_plot_map_frame {
-    int width, height;          /* whole figure: height = width/2 + title band + colour-bar band */
+    int width, height;          /* whole figure: height = sky + the band under it */
     double cx, cy;              /* centre of the ellipse: (l, b) = (0, 0), i.e. theta = 90 deg, phi = 0 */
     double a, b;                /* semi-axes (a = 2 b): longitude +-180 deg at cx -+ a */
     double bar_left, bar_right, bar_top, bar_bottom;   /* colour bar */
 } clef_plot_map_frame;
 
 int clef_plot_map_layout(const clef_plot_map_opts *o, clef_plot_map_frame *f);
+
+/* The map view's colour scales, clef's own (docs/figures.md): the sRGB
+ * colour (components in [0, 1]) at position t in [0, 1] (clamped; 0 the
+ * low end, 0.5 the centre of the diverging scale, 1 the high end) of
+ * CLEF_PLOT_SCALE_DIVERGING or CLEF_PLOT_SCALE_SEQUENTIAL.  CLEF_EINVAL for
+ * another scale or a non-finite t. */
+int clef_plot_scale_rgb(int scale, double t, double rgb[3]);
 
 /* Inverse Mollweide projection (Snyder 1987, "Map Projections - A Working
  * Manual", USGS PP 1395, p. 251-253) of device point (x, y) in frame f:
@@ -127,7 +138,8 @@ int clef_plot_map_unproject(const clef_plot_map_frame *f, double x, double y, do
                             double *phi);
 
 /* Draw a map (mask == NULL), a mask (pass it as `map`), or map x mask (pixels
- * where the mask is 0 or invalid are drawn grey, as missing ones).  Pixel
+ * where the mask is 0 or invalid are drawn hatched grey, as missing ones).
+ * Graticule: meridians every 60 deg, parallels every 20 deg.  Pixel
  * lookup by ang2pix_ring64 (HEALPix C library) at each image pixel centre.
  * The colour-bar range: opts range if given; else for a diverging scale
  * +-(percentile of |value| over the image pixels, which sample equal sky

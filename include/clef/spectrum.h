@@ -70,7 +70,7 @@ typedef struct clef_spectrum_opts {
 
 void clef_spectrum_opts_default(clef_spectrum_opts *o);
 
-#define CLEF_SPECTRUM_MAX_STAGES 8
+#define CLEF_SPECTRUM_MAX_STAGES 12
 
 typedef struct clef_spectrum_result {
     clef_bandpowers *bp;       /* band powers, covariance and metadata (owned) */

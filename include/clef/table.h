@@ -2,8 +2,9 @@
  * files of clef's own design (docs/formats.md): a FITS binary table (HDU 1
  * "BANDPOWER", one row per bin, units in TUNIT, inputs and options as header
  * keywords; HDU 2 "BANDCOV", the binned covariance of D as an nbins x nbins
- * image), a CSV with '#' comment lines carrying the same keywords, and the
- * covariance as a second CSV if asked.  Also read back (FITS or CSV, chosen
+ * image; HDU "BANDWIN", the band-power window functions, when known), a CSV
+ * with '#' comment lines carrying the same keywords, and the covariance and
+ * the windows as further CSVs if asked.  Also read back (FITS or CSV, chosen
  * by content) by `clef peak` and `clef plot`, and accepts a few simple
  * foreign layouts (see clef_bandpowers_read).
  *
@@ -73,6 +74,11 @@ int clef_bandpowers_write_csv(const clef_bandpowers *bp, const char *path);
 /* Covariance as CSV: one row per bin, nbins comma-separated values. */
 int clef_bandpowers_write_cov_csv(const clef_bandpowers *bp, const char *path);
 
+/* Window functions as CSV: one row per bin, win_lmax + 1 comma-separated
+ * values W_bl for l = 0..win_lmax (docs/formats-spectrum.md).  Errors:
+ * CLEF_EINVAL (no windows, non-finite values), CLEF_EIO. */
+int clef_bandpowers_write_windows_csv(const clef_bandpowers *bp, const char *path);
+
 /* Read a band-power table written by clef (FITS or CSV, detected from the
  * content), or a plain text table with whitespace/comma-separated columns
  * "l_eff D [err]" or "l_lo l_hi l_eff C D err" (see docs/formats.md).
@@ -88,6 +94,16 @@ int clef_bandpowers_read(clef_bandpowers **out, const char *path);
  * the message names the line and column). */
 #define CLEF_TABLE_COV_SYM_TOL 1e-8
 int clef_bandpowers_read_cov(clef_bandpowers *bp, const char *path);
+
+/* Read window functions for the table's bins from a text file: nbins rows
+ * of the same number of comma- or whitespace-separated numbers, one per
+ * multipole from l = 0, '#' comment lines (the layout of
+ * clef_bandpowers_write_windows_csv).  Replaces bp->win and win_lmax.
+ * FITS tables carry their windows in HDU BANDWIN, which
+ * clef_bandpowers_read loads itself.  Errors: CLEF_EIO, CLEF_EFORMAT (row
+ * count, ragged rows, a bad number; the message names the line and
+ * column), CLEF_ENOMEM. */
+int clef_bandpowers_read_windows(clef_bandpowers *bp, const char *path);
 
 #ifdef __cplusplus
 }

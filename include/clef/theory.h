@@ -68,7 +68,11 @@ int clef_theory_first_peak(const clef_cosmo_params *p, double *l_peak, double *d
  * warning.  *lmax_file (may be NULL) receives the file's largest l.
  * Errors name the file and line: CLEF_EIO (cannot open), CLEF_EFORMAT (no
  * columns line, bad number, negative, duplicate or missing multipole,
- * negative spectrum value), CLEF_EINVAL (lmax < 2). */
+ * negative spectrum value), CLEF_EINVAL (lmax < 2).
+ * A FITS file (plain or gzip) is read as clef_theory_write_cl writes it:
+ * HDU SPECTRUM (else the first binary table), columns L and CL (else DL),
+ * with the same checks (errors name the row).  cl == NULL with lmax_file
+ * set only reports the file's largest l (no warning, lmax ignored). */
 int clef_theory_read_cl(const char *path, int lmax, double *cl, int *lmax_file);
 
 /* Write C_l (l = 0..lmax, uK^2) atomically: a FITS binary table when the

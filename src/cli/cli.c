@@ -1,6 +1,7 @@
 /* Shared command-line helpers: logging and progress on stderr, exit codes,
  * strict option parsing. */
 #define _POSIX_C_SOURCE 200809L
+#define _XOPEN_SOURCE 700
 #include "cli.h"
 
 #include <cjson/cJSON.h>
@@ -11,11 +12,15 @@
 #include <stdlib.h>
 #include <string.h>
 #include <strings.h>
+#include <sys/stat.h>
 #include <unistd.h>
 
 #include "clef/clef.h"
 
+#define PATH_MAX_CLI 4096
+
 int cli_verbosity = 1;
+static int stdout_taken;
 
 #define MAX_WARNINGS 64
 static char *warnings[MAX_WARNINGS];
@@ -63,6 +68,16 @@ void cli_setup_logging(void)
         clef_set_progress(progress_hook, NULL);
     else
         clef_set_progress(NULL, NULL);
+}
+
+void cli_warn(const char *fmt, ...)
+{
+    char msg[2048];
+    va_list ap;
+    va_start(ap, fmt);
+    vsnprintf(msg, sizeof msg, fmt, ap);
+    va_end(ap);
+    log_hook(NULL, CLEF_LOG_WARN, msg);
 }
 
 int cli_nwarnings(void) { return nwarnings; }
@@ -215,4 +230,103 @@ int cli_write_json(const char *path, const cJSON *j)
     }
     status = clef_outfile_commit(&of);
     return status == CLEF_OK ? CLI_EXIT_OK : cli_fail(status);
+}
+
+/* 1 when `path` names standard output ("-", /dev/stdout, fd 1). */
+int cli_is_stdout(const char *path)
+{
+    return !strcmp(path, "-") || !strcmp(path, "/dev/stdout") || !strcmp(path, "/dev/fd/1") ||
+           !strcmp(path, "/proc/self/fd/1");
+}
+
+/* The folder part of `path` made absolute and free of links, followed by
+ * its last component: a name two spellings of one new file share. */
+static int canonical_new(const char *path, char *out, size_t n)
+{
+    const char *slash = strrchr(path, '/');
+    char dir[4096];
+    if (!slash)
+        snprintf(dir, sizeof dir, ".");
+    else if (slash == path)
+        snprintf(dir, sizeof dir, "/");
+    else
+        snprintf(dir, sizeof dir, "%.*s", (int)(slash - path), path);
+    char real[PATH_MAX_CLI];
+    if (!realpath(dir, real))
+        return 0;
+    return snprintf(out, n, "%s/%s", real, slash ? slash + 1 : path) < (int)n;
+}
+
+/* 1 when a and b are the same file: the same device and inode once links
+ * are followed (symbolic and hard links alike), or, for files that do not
+ * exist yet, the same canonical name. */
+int cli_same_file(const char *a, const char *b)
+{
+    struct stat sa, sb;
+    const int ea = stat(a, &sa) == 0, eb = stat(b, &sb) == 0;
+    if (ea && eb)
+        return sa.st_dev == sb.st_dev && sa.st_ino == sb.st_ino;
+    if (ea || eb)
+        return 0;
+    char ca[8192], cb[8192];
+    return canonical_new(a, ca, sizeof ca) && canonical_new(b, cb, sizeof cb) && !strcmp(ca, cb);
+}
+
+int cli_check_outputs(const char *const *inputs, int nin, const char *const *outputs, int nout)
+{
+    for (int k = 0; k < nout; k++) {
+        const char *o = outputs[k];
+        if (!o)
+            continue;
+        if (cli_is_stdout(o)) {
+            stdout_taken = 1;
+            continue;
+        }
+        for (int i = 0; i < nin; i++)
+            if (inputs[i] && cli_same_file(o, inputs[i])) {
+                fprintf(stderr,
+                        "clef: error: output '%s' is the input file '%s'%s: refusing to "
+                        "overwrite an input (choose another output name)\n",
+                        o, inputs[i], strcmp(o, inputs[i]) ? " (the same file under another name)" : "");
+                return CLI_EXIT_INVALID;
+            }
+        for (int j = 0; j < k; j++)
+            if (outputs[j] && !cli_is_stdout(outputs[j]) && cli_same_file(o, outputs[j])) {
+                fprintf(stderr, "clef: error: outputs '%s' and '%s' are the same file\n",
+                        outputs[j], o);
+                return CLI_EXIT_INVALID;
+            }
+        /* A folder that is missing or takes no new file fails now, before
+         * the computation, not after it. */
+        const int status = clef_outfile_check(o);
+        if (status != CLEF_OK)
+            return cli_fail(status);
+    }
+    return CLI_EXIT_OK;
+}
+
+FILE *cli_text_stream(void) { return stdout_taken ? stderr : stdout; }
+
+/* Descriptor 1 pointed at stderr while a text summary is printed with
+ * printf, when standard output carries a file. */
+static int saved_stdout = -1;
+
+void cli_text_begin(void)
+{
+    if (!stdout_taken || saved_stdout >= 0)
+        return;
+    fflush(stdout);
+    saved_stdout = dup(STDOUT_FILENO);
+    if (saved_stdout >= 0)
+        dup2(STDERR_FILENO, STDOUT_FILENO);
+}
+
+void cli_text_end(void)
+{
+    if (saved_stdout < 0)
+        return;
+    fflush(stdout);
+    dup2(saved_stdout, STDOUT_FILENO);
+    close(saved_stdout);
+    saved_stdout = -1;
 }

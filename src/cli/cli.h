@@ -32,6 +32,13 @@ extern int cli_verbosity;
  * are also collected for run summaries: cli_warnings(). */
 void cli_setup_logging(void);
 int cli_nwarnings(void);
+/* A warning of the command itself: printed like the library's (unless
+ * --quiet) and collected with them for the JSON "warnings" array. */
+void cli_warn(const char *fmt, ...)
+#if defined(__GNUC__)
+    __attribute__((format(printf, 1, 2)))
+#endif
+    ;
 const char *cli_warning(int i);
 
 /* Map a library status to an exit code, printing clef_last_error(). */
@@ -55,6 +62,25 @@ int cli_parse_double(const char *cmd, const char *opt, const char *s, double *ou
  * an exit code, having printed the error. */
 struct cJSON;
 int cli_write_json(const char *path, const struct cJSON *j);
+
+/* Output safety, before any computation: refuse an output that is the same
+ * file as an input (device and inode, through symbolic and hard links;
+ * exit 3), two outputs that are one file (exit 3), and an output whose
+ * folder does not take a new file (exit 4).  "-" and /dev/stdout mean
+ * standard output; the text summary then goes to standard error
+ * (cli_text_stream).  NULL entries are skipped.  Returns an exit code,
+ * having printed the error. */
+int cli_check_outputs(const char *const *inputs, int nin, const char *const *outputs, int nout);
+/* 1 when `path` names standard output ("-", /dev/stdout, /dev/fd/1). */
+int cli_is_stdout(const char *path);
+/* 1 when the two paths are the same file (see cli_check_outputs). */
+int cli_same_file(const char *a, const char *b);
+/* Where text summaries go: stdout, or stderr when an output is stdout. */
+FILE *cli_text_stream(void);
+/* Around code that prints a summary with printf: while stdout carries a
+ * file, the summary goes to stderr (no-ops otherwise). */
+void cli_text_begin(void);
+void cli_text_end(void);
 
 /* --ordering RING|NESTED (NULL allowed); prints a usage error and returns
  * nonzero otherwise. */

@@ -19,8 +19,9 @@ static void help(FILE *f)
             "NSIDE, FIRSTPIX, LASTPIX, INDXSCHM, OBJECT, COORDSYS, BAD_DATA, TUNIT and\n"
             "CLEFVERS keywords; missing pixels are written as -1.6375e30.  An OUTPUT\n"
             "name ending in .gz gives a gzip-compressed file.  OUTPUT is written to a\n"
-            "temporary file and renamed on success; it is replaced if it exists.  On any\n"
-            "error nothing is written.\n\n"
+            "temporary file and renamed on success; it is replaced if it exists (through a\n"
+            "symbolic link, its target), but never when it is INPUT itself under any name\n"
+            "(exit 3); '-' writes to standard output.  On any error nothing is written.\n\n"
             "Options:\n"
             "  --hdu HDU          input table: extension number (1 = first after the\n"
             "                     primary) or EXTNAME; default: the first binary table\n"
@@ -31,7 +32,7 @@ static void help(FILE *f)
             "                     default 1024 when it divides, else 1\n"
             "  --float32          write 32-bit floats (default: 64-bit)\n"
             "  --name NAME        output column name (default: the input column's name)\n"
-            "  --quiet            print errors only\n"
+            "  --quiet            print errors only (OUTPUT is still written)\n"
             "  --verbose          report what is read and written\n"
             "  --help             show this help\n\n"
             "Exit codes: 0 ok, 2 usage, 3 invalid option value, 4 cannot read or write a\n"
@@ -83,6 +84,10 @@ int cmd_convert(int argc, char **argv)
         return CLI_EXIT_USAGE;
     cli_setup_logging();
     const char *in = argv[optind], *out = argv[optind + 1];
+    const char *inputs[1] = {in}, *outputs[1] = {out};
+    const int rc_out = cli_check_outputs(inputs, 1, outputs, 1);
+    if (rc_out != CLI_EXIT_OK)
+        return rc_out;
 
     clef_map *m;
     int status = clef_map_read(&m, in, &ro);

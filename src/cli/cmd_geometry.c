@@ -65,8 +65,9 @@ static void help(void)
            "  --seed N          random seed, GSL mt19937 (default %lu)\n"
            "  --threads N       OpenMP threads (default: all; the result does not depend on it)\n\n"
            "Output:\n"
-           "  --json FILE       write the result as JSON (written atomically)\n"
-           "  --quiet           no summary on stdout; errors only on stderr\n"
+           "  --json FILE       write the result as JSON (written atomically; '-': standard\n"
+           "                    output, the text summary then goes to standard error)\n"
+           "  --quiet           print errors only (--json is still written)\n"
            "  --verbose         timings on stderr\n"
            "  --help            show this help\n\n"
            "Exit codes: 0 done, 2 usage, 3 invalid input (no peak in the table, bad priors),\n"
@@ -302,6 +303,10 @@ int cmd_geometry(int argc, char **argv)
     if (!table && !(have_l && have_err))
         return cli_usage_error("geometry", "need --peak-l and --peak-l-err, or a band-power TABLE");
     cli_setup_logging();
+    const char *inputs[1] = {table}, *outputs[1] = {json};
+    const int rc_out = cli_check_outputs(inputs, 1, outputs, 1);
+    if (rc_out != CLI_EXIT_OK)
+        return rc_out;
 
     int fitted = 0;
     if (table) {
@@ -323,8 +328,11 @@ int cmd_geometry(int argc, char **argv)
         rc = j ? cli_write_json(json, j) : CLI_EXIT_NOMEM;
         cJSON_Delete(j);
     }
-    if (rc == CLI_EXIT_OK && cli_verbosity >= 1)
+    if (rc == CLI_EXIT_OK && cli_verbosity >= 1) {
+        cli_text_begin();
         print_result(&o, r, table, fitted);
+        cli_text_end();
+    }
     clef_geometry_result_free(r);
     return rc;
 }

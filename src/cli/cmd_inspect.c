@@ -27,20 +27,22 @@ static void help(FILE *f)
             "                   primary) or EXTNAME; default: the first binary table\n"
             "  --column COL     column to read: number (1-based) or name; default: the\n"
             "                   first value column\n"
-            "  --ordering ORD   RING or NESTED, for files without an ORDERING keyword\n"
-            "                   (default: none; such files are refused)\n"
+            "  --ordering ORD   RING or NESTED, for files (map and mask) without an\n"
+            "                   ORDERING keyword (default: none; such files are refused)\n"
             "  --mask FILE      also check that the mask in FILE suits this map: same nside,\n"
             "                   same COORDSYS (when both are known), values in [0, 1]; a\n"
             "                   mismatch is an error (exit 3)\n"
             "  --allow-coord-mismatch  accept a mask whose COORDSYS differs (a warning)\n"
-            "  --json           print the summary as one JSON object on stdout\n"
-            "  --quiet          print errors only (the summary is still printed)\n"
+            "  --json FILE      write the summary as one JSON object to FILE ('-': standard\n"
+            "                   output) instead of the text summary\n"
+            "  --quiet          print errors only (--json is still written); the exit code\n"
+            "                   tells whether the file reads\n"
             "  --verbose        also print what is being read\n"
             "  --help           show this help\n\n"
             "rms is sqrt(mean(x^2)); stddev divides by the number of valid pixels.\n"
             "Exit codes: 0 ok, 2 usage, 3 invalid option value (unknown HDU or column),\n"
             "4 cannot read the file, 5 malformed file, 8 out of memory.\n"
-            "Example: clef inspect --json --column 1 map.fits.gz\n");
+            "Example: clef inspect --json - --column 1 map.fits.gz\n");
 }
 
 static const char *coord_name(const char *c)
@@ -75,21 +77,22 @@ typedef struct mask_info {
     clef_map_stats st;
 } mask_info;
 
-static int print_json(const char *path, const clef_map *m, const clef_map_stats *st,
+static int write_json(const char *out, const char *path, const clef_map *m, const clef_map_stats *st,
                       const mask_info *mi)
 {
     cJSON *o = cJSON_CreateObject();
     if (!o)
-        return 1;
-    cJSON_AddStringToObject(o, "file", path);
+        return CLI_EXIT_NOMEM;
+    cJSON_AddStringToObject(o, "program", "clef");
+    cJSON_AddStringToObject(o, "version", CLEF_VERSION);
+    cJSON_AddStringToObject(o, "path", path);
     cJSON_AddNumberToObject(o, "hdu", m->hdu);
     cJSON_AddStringToObject(o, "column", m->column);
     cJSON_AddStringToObject(o, "unit", m->unit);
     cJSON_AddNumberToObject(o, "nside", (double)m->nside);
     cJSON_AddNumberToObject(o, "npix", (double)m->npix);
     cJSON_AddNumberToObject(o, "pixel_size_arcmin", pixel_arcmin(m->npix));
-    cJSON_AddStringToObject(o, "file_ordering", m->file_ordering == CLEF_NESTED ? "NESTED"
-                                                                                : "RING");
+    cJSON_AddStringToObject(o, "ordering", m->file_ordering == CLEF_NESTED ? "NESTED" : "RING");
     if (m->coordsys[0])
         cJSON_AddStringToObject(o, "coordsys", m->coordsys);
     else
@@ -98,7 +101,7 @@ static int print_json(const char *path, const clef_map *m, const clef_map_stats 
     cJSON_AddNumberToObject(o, "missing_pixels", (double)st->nmissing);
     cJSON_AddNumberToObject(o, "bad_pixels", (double)m->nbad);
     cJSON_AddNumberToObject(o, "absent_pixels", (double)(m->nmissing - m->nbad));
-    cJSON_AddNumberToObject(o, "sky_fraction", st->fsky);
+    cJSON_AddNumberToObject(o, "f_sky", st->fsky);
     add_number_or_null(o, "min", st->min);
     add_number_or_null(o, "max", st->max);
     add_number_or_null(o, "mean", st->mean);
@@ -108,20 +111,19 @@ static int print_json(const char *path, const clef_map *m, const clef_map_stats 
         cJSON *k = cJSON_AddObjectToObject(o, "mask");
         if (!k) {
             cJSON_Delete(o);
-            return 1;
+            return CLI_EXIT_NOMEM;
         }
-        cJSON_AddStringToObject(k, "file", mi->path);
+        cJSON_AddStringToObject(k, "path", mi->path);
         cJSON_AddBoolToObject(k, "suits_map", 1);
         cJSON_AddNumberToObject(k, "valid_pixels", (double)mi->st.nvalid);
         add_number_or_null(k, "mean_weight", mi->st.mean * mi->st.fsky);
     }
-    char *text = cJSON_Print(o);
+    cJSON *w = cJSON_AddArrayToObject(o, "warnings");
+    for (int i = 0; i < cli_nwarnings(); i++)
+        cJSON_AddItemToArray(w, cJSON_CreateString(cli_warning(i)));
+    const int rc = cli_write_json(out, o);
     cJSON_Delete(o);
-    if (!text)
-        return 1;
-    puts(text);
-    cJSON_free(text);
-    return 0;
+    return rc;
 }
 
 static void print_text(const char *path, const clef_map *m, const clef_map_stats *st,
@@ -158,14 +160,15 @@ int cmd_inspect(int argc, char **argv)
 {
     static const struct option longopts[] = {
         {"hdu", required_argument, NULL, 'H'},      {"column", required_argument, NULL, 'c'},
-        {"ordering", required_argument, NULL, 'o'}, {"json", no_argument, NULL, 'j'},
+        {"ordering", required_argument, NULL, 'o'}, {"json", required_argument, NULL, 'j'},
         {"quiet", no_argument, NULL, 'q'},          {"verbose", no_argument, NULL, 'v'},
         {"help", no_argument, NULL, 'h'},           {"mask", required_argument, NULL, 'm'},
         {"allow-coord-mismatch", no_argument, NULL, 'a'}, {NULL, 0, NULL, 0},
     };
     clef_map_read_opts ro = {0};
     mask_info mi = {0};
-    int json = 0, allow_coord = 0, c;
+    const char *json = NULL;
+    int allow_coord = 0, c;
     opterr = 0;
     optind = 1;
     while ((c = getopt_long(argc, argv, "", longopts, NULL)) != -1) {
@@ -173,7 +176,7 @@ int cmd_inspect(int argc, char **argv)
         case 'H': ro.hdu = optarg; break;
         case 'c': ro.column = optarg; break;
         case 'o': ro.ordering = optarg; break;
-        case 'j': json = 1; break;
+        case 'j': json = optarg; break;
         case 'm': mi.path = optarg; break;
         case 'a': allow_coord = 1; break;
         case 'q': cli_verbosity = 0; break;
@@ -191,6 +194,10 @@ int cmd_inspect(int argc, char **argv)
         return CLI_EXIT_USAGE;
     cli_setup_logging();
     const char *path = argv[optind];
+    const char *inputs[2] = {path, mi.path}, *outputs[1] = {json};
+    const int rc_out = cli_check_outputs(inputs, 2, outputs, 1);
+    if (rc_out != CLI_EXIT_OK)
+        return rc_out;
     cli_verbose("reading %s", path);
 
     clef_map *m = NULL, *mask = NULL;
@@ -200,7 +207,8 @@ int cmd_inspect(int argc, char **argv)
         status = clef_map_stats_compute(m, &st);
     if (status == CLEF_OK && mi.path) {
         cli_verbose("reading mask %s", mi.path);
-        status = clef_map_read(&mask, mi.path, NULL);
+        const clef_map_read_opts mro = {.ordering = ro.ordering};
+        status = clef_map_read(&mask, mi.path, &mro);
         if (status == CLEF_OK)
             status = clef_map_check_mask(m, path, mask, mi.path, allow_coord);
         if (status == CLEF_OK)
@@ -213,14 +221,10 @@ int cmd_inspect(int argc, char **argv)
         return cli_fail(status);
     }
     int rc = CLI_EXIT_OK;
-    if (json) {
-        if (print_json(path, m, &st, &mi)) {
-            fprintf(stderr, "clef: error: out of memory while building the JSON summary\n");
-            rc = CLI_EXIT_NOMEM;
-        }
-    } else {
+    if (json)
+        rc = write_json(json, path, m, &st, &mi);
+    else if (cli_verbosity >= 1)
         print_text(path, m, &st, &mi);
-    }
     clef_map_free(m);
     clef_map_free(mask);
     return rc;

@@ -40,8 +40,10 @@ static void help(void)
            "  --lmax L        highest multipole written (default %d)\n"
            "  --output FILE   write l, C_l, D_l in uK^2: a FITS binary table if FILE ends\n"
            "                  in .fits or .fit, else text (docs/formats-spectrum.md);\n"
-           "                  written atomically (default: no file, summary only)\n"
-           "  --quiet         no summary on stdout; errors only on stderr\n"
+           "                  written atomically; '-': text on standard output, the\n"
+           "                  summary then on standard error (default: no file, summary\n"
+           "                  only).  Both layouts are read back by --cl and --theory.\n"
+           "  --quiet         print errors only (--output is still written)\n"
            "  --verbose       also print the model's internal scales\n"
            "  --help          show this help\n\n"
            "Exit codes: 0 done, 2 usage, 3 unphysical parameters, 4 cannot write the file,\n"
@@ -134,6 +136,10 @@ int cmd_model(int argc, char **argv)
         return cli_usage_error("model", "--lmax must be between 2 and %d, got %ld",
                                CLEF_THEORY_LMAX_MAX, lmax);
     cli_setup_logging();
+    const char *outputs[1] = {output};
+    const int rc_out = cli_check_outputs(NULL, 0, outputs, 1);
+    if (rc_out != CLI_EXIT_OK)
+        return rc_out;
 
     clef_theory_info in;
     int status = clef_theory_info_get(&p, &in);
@@ -157,9 +163,12 @@ int cmd_model(int argc, char **argv)
             return cli_fail(status);
     }
     if (cli_verbosity >= 1) {
+        cli_text_begin();
         print_summary(&p, &in, lpk, dpk);
         if (output)
-            printf("  written           %s (l = 0..%ld; columns l, C_l, D_l in uK^2)\n", output, lmax);
+            printf("  written           %s (l = 0..%ld; columns l, C_l, D_l in uK^2)\n",
+                   cli_is_stdout(output) ? "to standard output" : output, lmax);
+        cli_text_end();
     }
     if (cli_verbosity >= 2)
         print_verbose(&in);

@@ -35,10 +35,11 @@ static void help(void)
            "                      N standard errors below zero (default %g)\n"
            "  --cov FILE          covariance of D (uK^4) for the table's bins, a text\n"
            "                      matrix (default: the table's own, else its errors alone)\n"
-           "  --json FILE         also write the result as JSON to FILE\n"
+           "  --json FILE         also write the result as JSON to FILE ('-': standard\n"
+           "                      output; the text result then goes to standard error)\n"
            "  --require           exit with code 9 when no peak is found (default: exit 0\n"
            "                      and print the reason)\n"
-           "  --quiet             print errors only (the result still goes to stdout)\n"
+           "  --quiet             print errors only (--json is still written)\n"
            "  --verbose           print fit details and timings on stderr\n"
            "  --help              show this help\n\n"
            "Exit codes: 0 done (peak or no peak), 2 usage, 3 invalid input (e.g. errors\n"
@@ -177,6 +178,10 @@ int cmd_peak(int argc, char **argv)
         return cli_usage_error("peak", "--curv-sigma must be >= 0, got %g", o.curv_nsigma);
     cli_setup_logging();
     const char *table = argv[optind];
+    const char *inputs[2] = {table, cov_path}, *outputs[1] = {json_path};
+    const int rc_out = cli_check_outputs(inputs, 2, outputs, 1);
+    if (rc_out != CLI_EXIT_OK)
+        return rc_out;
 
     const double t0 = clef_wtime();
     clef_bandpowers *bp = NULL;
@@ -198,7 +203,11 @@ int cmd_peak(int argc, char **argv)
         return cli_fail(status);
     }
     cli_verbose("peak fit in %.3f s", clef_wtime() - t1);
-    print_result(table, bp, &o, &r, cov_source);
+    if (cli_verbosity >= 1) {
+        cli_text_begin();
+        print_result(table, bp, &o, &r, cov_source);
+        cli_text_end();
+    }
     clef_bandpowers_free(bp);
     if (json_path) {
         cJSON *j = result_json(table, &o, &r, cov_source);

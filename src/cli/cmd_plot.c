@@ -42,29 +42,36 @@ static void help(FILE *f)
             "  --no-peak            do not mark the first peak\n"
             "  --width N, --height N  figure size (default 900 x 600)\n\n"
             "map: Mollweide equal-area view of the whole sky, longitude 0 at the centre\n"
-            "  and increasing to the left; graticule every 30 deg; coordinate system in\n"
-            "  the caption.  Values in [0, 1] get the sequential scale (masks), others the\n"
-            "  diverging scale symmetric around 0 with range +-(99.5th percentile of |T|).\n"
-            "  Missing pixels are grey.\n"
-            "  --mask MASK          show MAP x MASK; pixels where MASK is 0 are grey\n"
+            "  and increasing to the left, a vertical colour bar at its right with the unit\n"
+            "  above it, title and caption (coordinate system) under the map, meridians\n"
+            "  every 60 deg and parallels every 20 deg.  Values in [0, 1] get the\n"
+            "  sequential scale (masks), others the diverging scale symmetric around 0\n"
+            "  with range +-(99.5th percentile of |T|); both are clef's own, uniform in\n"
+            "  CIELAB (docs/figures.md).  Missing pixels are hatched grey.\n"
+            "  --mask MASK          show MAP x MASK; pixels where MASK is 0 are shown as\n"
+            "                       missing\n"
+            "  --mask-column COL    column of MASK to read (default: its first value\n"
+            "                       column; --column and --hdu apply to MAP only)\n"
+            "  --ordering RING|NESTED  pixel order of MAP and MASK files without ORDERING\n"
             "  --range MIN,MAX      colour range (default: automatic, see above)\n"
             "  --percentile P       diverging range from this percentile of |T| (default 99.5)\n"
             "  --scale S            auto, diverging or sequential (default auto)\n"
             "  --unit TEXT          colour-bar unit (default: the map's TUNIT, else uK;\n"
             "                       none for the sequential scale)\n"
-            "  --column COL, --hdu HDU  column and table of MAP and MASK to read\n"
-            "                       (default: the first value column of the first table)\n"
+            "  --column COL, --hdu HDU  column and table of MAP to read (default: the first\n"
+            "                       value column of the first table)\n"
             "  --transparent        no background outside the sky (PNG alpha)\n"
             "  --no-grid            no graticule\n"
-            "  --width N            figure width (default 1000); the height follows:\n"
-            "                       width/2 plus room for the title and colour bar\n\n"
+            "  --width N            figure width (default 1000); the height follows\n"
+            "                       (about width/2)\n\n"
             "curvature: the posterior of Omega_k (peak 1) with the 68%% and 95%% intervals\n"
             "  shaded, the best value (solid) and the flat value 0 (dashed) marked, the\n"
             "  classification in the title.\n"
             "  --omega-total        x axis Omega_total = 1 - Omega_k (flat at 1)\n"
             "  --width N, --height N  figure size (default 800 x 500)\n\n"
             "Common options:\n"
-            "  -o, --output FILE    figure to write (required)\n"
+            "  -o, --output FILE    figure to write (required; '-': PNG on standard output;\n"
+            "                       never one of the input files)\n"
             "  --title TEXT         title (default: see each figure; map: the file names)\n"
             "  --quiet              print errors only\n"
             "  --verbose            also print what is read and drawn\n"
@@ -79,7 +86,7 @@ enum {
     OPT_WIDTH = 256, OPT_HEIGHT, OPT_TITLE, OPT_LOG_L, OPT_THEORY, OPT_COMPARE, OPT_LABEL,
     OPT_COMPARE_LABEL, OPT_NO_PEAK, OPT_MASK, OPT_RANGE, OPT_PERCENTILE, OPT_SCALE, OPT_UNIT,
     OPT_COLUMN, OPT_HDU, OPT_TRANSPARENT, OPT_NO_GRID, OPT_OMEGA_TOTAL, OPT_QUIET, OPT_VERBOSE,
-    OPT_HELP
+    OPT_HELP, OPT_MASK_COLUMN, OPT_ORDERING
 };
 
 enum kind { KIND_SPECTRUM, KIND_MAP, KIND_CURVATURE };
@@ -90,6 +97,7 @@ typedef struct args {
     long width, height;
     int log_l, no_peak, transparent, no_grid, have_range, scale, omega_total;
     const char *theory, *compare, *label, *compare_label, *mask, *unit, *column, *hdu;
+    const char *mask_column, *ordering;
     double vmin, vmax, percentile;
 } args;
 
@@ -125,6 +133,7 @@ static int option_kind(int opt)
         return KIND_SPECTRUM;
     case OPT_MASK: case OPT_RANGE: case OPT_PERCENTILE: case OPT_SCALE: case OPT_UNIT:
     case OPT_COLUMN: case OPT_HDU: case OPT_TRANSPARENT: case OPT_NO_GRID:
+    case OPT_MASK_COLUMN: case OPT_ORDERING:
         return KIND_MAP;
     case OPT_OMEGA_TOTAL:
         return KIND_CURVATURE;
@@ -153,6 +162,8 @@ static int parse_args(int argc, char **argv, args *a, int *done)
         {"unit", required_argument, NULL, OPT_UNIT},
         {"column", required_argument, NULL, OPT_COLUMN},
         {"hdu", required_argument, NULL, OPT_HDU},
+        {"mask-column", required_argument, NULL, OPT_MASK_COLUMN},
+        {"ordering", required_argument, NULL, OPT_ORDERING},
         {"transparent", no_argument, NULL, OPT_TRANSPARENT},
         {"no-grid", no_argument, NULL, OPT_NO_GRID},
         {"omega-total", no_argument, NULL, OPT_OMEGA_TOTAL},
@@ -217,6 +228,8 @@ static int parse_args(int argc, char **argv, args *a, int *done)
         case OPT_UNIT: a->unit = optarg; break;
         case OPT_COLUMN: a->column = optarg; break;
         case OPT_HDU: a->hdu = optarg; break;
+        case OPT_MASK_COLUMN: a->mask_column = optarg; break;
+        case OPT_ORDERING: a->ordering = optarg; break;
         case OPT_TRANSPARENT: a->transparent = 1; break;
         case OPT_NO_GRID: a->no_grid = 1; break;
         case OPT_OMEGA_TOTAL: a->omega_total = 1; break;
@@ -249,6 +262,8 @@ static int parse_args(int argc, char **argv, args *a, int *done)
         if (k != a->kind && kind_opt[k])
             return cli_usage_error("plot", "option '%s' does not apply to 'plot %s'",
                                    kind_opt[k], kind);
+    if (cli_check_ordering("plot", a->ordering))
+        return CLI_EXIT_USAGE;
     if (a->kind == KIND_MAP && a->height)
         return cli_usage_error("plot", "the map view's height follows from --width; "
                                "--height does not apply");
@@ -313,7 +328,8 @@ typedef struct theory_curve {
 
 static int read_theory(const char *path, int lmax, theory_curve *t)
 {
-    if (!has_columns_line(path)) {
+    int flmax = -1;
+    if (!has_columns_line(path) && clef_theory_read_cl(path, 0, NULL, &flmax) != CLEF_OK) {
         clef_bandpowers *bp = NULL;
         int status = clef_bandpowers_read(&bp, path);
         if (status != CLEF_OK)
@@ -413,9 +429,14 @@ static int run_map(const args *a)
     clef_map_read_opts ro = {0};
     ro.hdu = a->hdu;
     ro.column = a->column;
+    ro.ordering = a->ordering;
+    /* The mask is its own file: MAP's --column and --hdu do not apply. */
+    clef_map_read_opts mro = {0};
+    mro.column = a->mask_column;
+    mro.ordering = a->ordering;
     int status = clef_map_read(&map, a->input, &ro);
     if (status == CLEF_OK && a->mask)
-        status = clef_map_read(&mask, a->mask, &ro);
+        status = clef_map_read(&mask, a->mask, &mro);
     if (status == CLEF_OK && mask)
         status = clef_map_check_mask(map, a->input, mask, a->mask, 0);
     if (status != CLEF_OK)
@@ -471,6 +492,10 @@ int cmd_plot(int argc, char **argv)
     if (rc || done)
         return rc;
     cli_setup_logging();
+    const char *inputs[4] = {a.input, a.mask, a.theory, a.compare}, *outputs[1] = {a.output};
+    const int rc_out = cli_check_outputs(inputs, 4, outputs, 1);
+    if (rc_out != CLI_EXIT_OK)
+        return rc_out;
     int status;
     switch (a.kind) {
     case KIND_SPECTRUM: status = run_spectrum(&a); break;
@@ -479,6 +504,6 @@ int cmd_plot(int argc, char **argv)
     }
     if (status != CLEF_OK)
         return cli_fail(status);
-    cli_info("wrote %s", a.output);
+    cli_info("wrote %s", cli_is_stdout(a.output) ? "the figure to standard output" : a.output);
     return CLI_EXIT_OK;
 }

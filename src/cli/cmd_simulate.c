@@ -27,8 +27,9 @@ static void help(FILE *f)
 {
     fprintf(f,
             "Usage: clef simulate --nside N (--cl FILE | --model) --output FILE [OPTIONS]\n\n"
-            "Draw a Gaussian sky with the given angular power spectrum, smooth it by a beam\n"
-            "and the pixel window if asked, add pixel noise if asked, and write it as a\n"
+            "Draw a Gaussian sky with the given angular power spectrum, smooth it by the\n"
+            "pixel window (as a real map has it) and a beam if asked, add pixel noise if\n"
+            "asked, and write it as a\n"
             "HEALPix map (RING, full sky).  The same seed gives the same map whatever the\n"
             "number of threads.  Random numbers, beam, pixel window and noise model are\n"
             "described in docs/simulation.md.\n\n"
@@ -48,9 +49,10 @@ static void help(FILE *f)
             "  --seed S             random seed, an integer in [0, 2^64) (default 1)\n"
             "  --beam-fwhm ARCMIN   Gaussian beam full width at half maximum, arcmin\n"
             "                       (default: no beam)\n"
-            "  --beam-file FILE     beam B_l from a text file of rows 'l B_l'\n"
-            "                       (docs/formats-spectrum.md, \"beam files\")\n"
-            "  --pixel-window       multiply the sky by the pixel window of nside\n\n"
+            "  --beam-table FILE    beam B_l from a text file of rows 'l B_l'\n"
+            "                       (docs/formats-spectrum.md, \"beam tables\")\n"
+            "  --no-pixel-window    leave out the pixel window of nside (default: the sky\n"
+            "                       is multiplied by it, as clef spectrum assumes)\n\n"
             "Noise (white, not smoothed by beam or pixel window):\n"
             "  --noise-depth UK_ARCMIN  noise level of each map in uK-arcmin; the pixel\n"
             "                       standard deviation is\n"
@@ -59,23 +61,25 @@ static void help(FILE *f)
             "  --hits FILE          hit-count map of the same nside: pixel noise scales as\n"
             "                       1/sqrt(hits / mean hits), pixels without hits are written\n"
             "                       as missing (needs --noise-depth)\n"
+            "  --ordering RING|NESTED  pixel order of a hit map without ORDERING keyword\n"
             "  --splits N           1 (default) or 2 maps with the same sky and independent\n"
             "                       noise, each of the given depth; written as OUTPUT with\n"
             "                       '_split1' and '_split2' inserted before the extension\n\n"
             "Output:\n"
             "  --output FILE        FITS map; a name ending in .gz is written gzip-compressed\n"
-            "                       (required)\n"
+            "                       ('-': standard output, one split only) (required)\n"
             "  --float32            write 32-bit floats (default 64-bit)\n"
             "  --coordsys G|E|C     coordinate system recorded in the header (default: that\n"
             "                       of the hit map, else none)\n"
             "  --alm-output FILE    also write the sky a_lm before beam and pixel window\n"
             "                       (FITS table, docs/formats.md)\n"
             "  --threads N          OpenMP threads (default: all)\n"
-            "  --quiet              print errors only\n"
+            "  --quiet              print errors only (files are still written)\n"
             "  --verbose            report the steps\n"
             "  --help               show this help\n\n"
             "Exit codes: 0 ok, 2 usage, 3 invalid input value, 4 cannot read or write a file,\n"
-            "5 malformed input file, 8 out of memory.  On any error nothing is written.\n"
+            "5 malformed input file, 8 out of memory.  On any error nothing is written; an\n"
+            "output that is an input file is refused (exit 3).\n"
             "Example: clef simulate --nside 256 --model --seed 7 --beam-fwhm 10 \\\n"
             "           --noise-depth 30 --splits 2 --output sky.fits.gz\n");
 }
@@ -150,8 +154,8 @@ static int gzip_fits(const char *path)
 typedef struct sim_args {
     long nside, lmax, splits;
     unsigned long long seed;
-    const char *cl_file, *beam_file, *hits_file, *output, *alm_output, *coordsys;
-    int model, pixel_window, float32;
+    const char *cl_file, *beam_file, *hits_file, *output, *alm_output, *coordsys, *ordering;
+    int model, no_pixel_window, float32;
     double beam_fwhm, noise_depth;
     double param[5];      /* omega_b, omega_c, h, omega_k, n_s as given */
     unsigned params_given; /* bit i: param[i] was given */
@@ -165,14 +169,14 @@ static int parse_args(int argc, char **argv, sim_args *a)
         {"omega-b", required_argument, NULL, 'B'},    {"omega-c", required_argument, NULL, 'C'},
         {"hubble", required_argument, NULL, 'H'},     {"omega-k", required_argument, NULL, 'K'},
         {"n-s", required_argument, NULL, 'N'},        {"seed", required_argument, NULL, 's'},
-        {"beam-fwhm", required_argument, NULL, 'f'},  {"beam-file", required_argument, NULL, 'b'},
-        {"pixel-window", no_argument, NULL, 'p'},     {"noise-depth", required_argument, NULL, 'd'},
+        {"beam-fwhm", required_argument, NULL, 'f'},  {"beam-table", required_argument, NULL, 'b'},
+        {"no-pixel-window", no_argument, NULL, 'p'},     {"noise-depth", required_argument, NULL, 'd'},
         {"hits", required_argument, NULL, 'h' + 256}, {"splits", required_argument, NULL, 'S'},
         {"output", required_argument, NULL, 'o'},     {"float32", no_argument, NULL, '4'},
         {"coordsys", required_argument, NULL, 'x'},   {"alm-output", required_argument, NULL, 'a'},
         {"threads", required_argument, NULL, 't'},    {"quiet", no_argument, NULL, 'q'},
         {"verbose", no_argument, NULL, 'v'},          {"help", no_argument, NULL, 'h'},
-        {NULL, 0, NULL, 0},
+        {"ordering", required_argument, NULL, 'O'},   {NULL, 0, NULL, 0},
     };
     int c;
     double v;
@@ -218,7 +222,8 @@ static int parse_args(int argc, char **argv, sim_args *a)
                 return cli_usage_error(CMD, "--beam-fwhm must be >= 0 arcmin, got %g", a->beam_fwhm);
             break;
         case 'b': a->beam_file = optarg; break;
-        case 'p': a->pixel_window = 1; break;
+        case 'p': a->no_pixel_window = 1; break;
+        case 'O': a->ordering = optarg; break;
         case 'd':
             if (cli_parse_double(CMD, "--noise-depth", optarg, &a->noise_depth))
                 return CLI_EXIT_USAGE;
@@ -269,11 +274,15 @@ static int parse_args(int argc, char **argv, sim_args *a)
     if (a->params_given && !a->model)
         return cli_usage_error(CMD, "cosmological parameters need --model");
     if (a->beam_file && a->beam_fwhm > 0)
-        return cli_usage_error(CMD, "give at most one of --beam-fwhm and --beam-file");
+        return cli_usage_error(CMD, "give at most one of --beam-fwhm and --beam-table");
     if (a->hits_file && a->noise_depth == 0)
         return cli_usage_error(CMD, "--hits needs --noise-depth");
     if (!a->output)
         return cli_usage_error(CMD, "--output is required");
+    if (a->splits > 1 && cli_is_stdout(a->output))
+        return cli_usage_error(CMD, "--output -: standard output takes one map, not --splits 2");
+    if (cli_check_ordering(CMD, a->ordering))
+        return CLI_EXIT_USAGE;
     return CLI_EXIT_OK;
 }
 
@@ -317,6 +326,21 @@ int cmd_simulate(int argc, char **argv)
     int nouts = 0;
     memset(outs, 0, sizeof outs);
 
+    /* Outputs are checked before any work: none may be an input, every
+     * folder must take a new file. */
+    char names[2][4096];
+    const char *outputs[3] = {NULL, NULL, a.alm_output};
+    for (int s = 0; s < nsplits; s++) {
+        if (nsplits > 1)
+            split_name(a.output, s + 1, names[s], sizeof names[s]);
+        else
+            snprintf(names[s], sizeof names[s], "%s", a.output);
+        outputs[s] = names[s];
+    }
+    const char *inputs[3] = {a.cl_file, a.beam_file, a.hits_file};
+    if ((exit_code = cli_check_outputs(inputs, 3, outputs, 3)) != CLI_EXIT_OK)
+        return exit_code;
+
     cl = malloc(sizeof *cl * ((size_t)lmax + 1));
     bl = malloc(sizeof *bl * ((size_t)lmax + 1));
     if (!cl || !bl) {
@@ -337,7 +361,8 @@ int cmd_simulate(int argc, char **argv)
     }
     double *hits_pix = NULL;
     if (a.hits_file) {
-        if ((status = clef_map_read(&hits, a.hits_file, NULL)) != CLEF_OK)
+        const clef_map_read_opts hro = {.ordering = a.ordering};
+        if ((status = clef_map_read(&hits, a.hits_file, &hro)) != CLEF_OK)
             goto fail;
         if (hits->nside != nside) {
             fprintf(stderr, "clef: error: hit map '%s' has nside %lld, the simulation %lld\n",
@@ -368,7 +393,7 @@ int cmd_simulate(int argc, char **argv)
     const clef_sim_opts so = {
         .seed = a.seed,
         .beam = bl,
-        .pixel_window = a.pixel_window,
+        .pixel_window = !a.no_pixel_window,
         .noise_depth = a.noise_depth,
         .hits = hits_pix,
         .nsplits = nsplits,
@@ -401,11 +426,7 @@ int cmd_simulate(int argc, char **argv)
         .history = history,
     };
     for (int s = 0; s < nsplits; s++) {
-        char name[4096];
-        if (nsplits > 1)
-            split_name(a.output, s + 1, name, sizeof name);
-        else
-            snprintf(name, sizeof name, "%s", a.output);
+        const char *name = names[s];
         if ((status = clef_outfile_begin(&outs[nouts], name)) != CLEF_OK)
             goto fail;
         nouts++;

@@ -37,7 +37,13 @@ static void help(void)
         "  --mask2 FILE           separate mask for MAP2\n"
         "  --hdu H, --column C    table and column of the maps (default: first table,\n"
         "                         first value column)\n"
-        "  --allow-coord-mismatch accept map and mask with different COORDSYS\n\n"
+        "  --allow-coord-mismatch accept map and mask with different COORDSYS\n"
+        "  --ordering RING|NESTED pixel order of map and mask files that have no ORDERING\n"
+        "                         keyword (default: such files are refused)\n"
+        "  --unit U               unit of the map values (K, mK or uK, with or without _CMB),\n"
+        "                         overriding the files' TUNIT (default: TUNIT; a unit clef\n"
+        "                         does not know is refused, no TUNIT is taken as uK)\n"
+        "  --calibration F        multiply the map values by F to get uK (instead of --unit)\n\n"
         "Multipoles and bins:\n"
         "  --lmax L               highest multipole (default 3*nside-1, lowered where the\n"
         "                         beam x pixel window drops below 0.01; at most 3*nside-1)\n"
@@ -47,7 +53,7 @@ static void help(void)
         "  --bins FILE            bin edges from a text file (docs/coupling.md)\n\n"
         "Instrument:\n"
         "  --beam-fwhm ARCMIN     Gaussian beam full width at half maximum (default: none)\n"
-        "  --beam-file FILE       tabulated beam, columns 'l B_l'\n"
+        "  --beam-table FILE      tabulated beam, columns 'l B_l'\n"
         "  --no-pixel-window      do not correct for the pixel window (default: corrected)\n"
         "  --transfer FILE        transfer function, columns 'l F_l'\n"
         "  --noise-cl FILE        noise spectrum N_l [uK^2] to subtract (auto-spectra)\n"
@@ -69,11 +75,19 @@ static void help(void)
         "                         (default: max(60, three bin widths))\n"
         "  --no-peak              skip the peak fit\n\n"
         "Output:\n"
-        "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv, PREFIX.json\n"
-        "                         (default: the first map's name without folder and extension)\n"
+        "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv,\n"
+        "                         PREFIX-windows.csv (band-power window functions), PREFIX.json\n"
+        "                         (default: the first map's name without folder and\n"
+        "                         extension, followed by -bandpowers)\n"
         "  --format LIST          comma-separated subset of fits,csv,json (default all three)\n"
+        "  --json FILE            write the JSON run summary to FILE instead of PREFIX.json\n"
+        "                         ('-': standard output; the text summary then goes to\n"
+        "                         standard error)\n"
         "  --threads N            OpenMP threads (default: OMP_NUM_THREADS or all cores)\n"
-        "  --quiet, --verbose, --help\n\n"
+        "  --quiet                print errors only (files are still written)\n"
+        "  --verbose, --help\n\n"
+        "No output may be an input file (same file under any name: exit 3); the output\n"
+        "folders are checked before the computation (exit 4).\n"
         "Exit codes: 0 ok, 2 usage, 3 invalid input, 4 I/O, 5 bad file format,\n"
         "6 numerical failure (e.g. singular coupling: widen the bins), 8 out of memory.\n",
         CLEF_SPECTRUM_ITERATIONS);
@@ -82,15 +96,17 @@ static void help(void)
 enum {
     OPT_MASK = 256, OPT_MASK2, OPT_HDU, OPT_COLUMN, OPT_COORD, OPT_LMAX, OPT_BINW, OPT_LOGB,
     OPT_BINS, OPT_FWHM, OPT_BEAMF, OPT_NOPIX, OPT_TRANSFER, OPT_NOISE, OPT_THEORY, OPT_ITER,
-    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_CACHELIMIT, OPT_PLMIN, OPT_PLMAX, OPT_PMODEL, OPT_PHW, OPT_NOPEAK, OPT_FORMAT,
-    OPT_THREADS, OPT_QUIET, OPT_VERBOSE, OPT_HELP
+    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_CACHELIMIT, OPT_PLMIN, OPT_PLMAX, OPT_PMODEL, OPT_PHW,
+    OPT_NOPEAK, OPT_FORMAT, OPT_THREADS, OPT_QUIET, OPT_VERBOSE, OPT_HELP, OPT_JSON, OPT_ORDERING,
+    OPT_UNIT, OPT_CALIB
 };
 
 typedef struct args {
     const char *map[2], *mask[2], *hdu, *column, *bins_file, *beam_file, *transfer_file;
     const char *noise_file, *theory_file, *cache_dir, *output, *format, *threads;
+    const char *json, *ordering, *unit;
     long lmax, bin_width, log_bins, iterations;
-    double beam_fwhm, peak_lmin, peak_lmax, peak_hw;
+    double beam_fwhm, peak_lmin, peak_lmax, peak_hw, calibration;
     int peak_model, no_peak, no_pixel_window, keep, no_cache, coord;
     int want_fits, want_csv, want_json;
 } args;
@@ -128,7 +144,7 @@ static int parse_args(int argc, char **argv, args *a)
         {"log-bins", required_argument, 0, OPT_LOGB},
         {"bins", required_argument, 0, OPT_BINS},
         {"beam-fwhm", required_argument, 0, OPT_FWHM},
-        {"beam-file", required_argument, 0, OPT_BEAMF},
+        {"beam-table", required_argument, 0, OPT_BEAMF},
         {"no-pixel-window", no_argument, 0, OPT_NOPIX},
         {"transfer", required_argument, 0, OPT_TRANSFER},
         {"noise-cl", required_argument, 0, OPT_NOISE},
@@ -145,6 +161,10 @@ static int parse_args(int argc, char **argv, args *a)
         {"no-peak", no_argument, 0, OPT_NOPEAK},
         {"output", required_argument, 0, 'o'},
         {"format", required_argument, 0, OPT_FORMAT},
+        {"json", required_argument, 0, OPT_JSON},
+        {"ordering", required_argument, 0, OPT_ORDERING},
+        {"unit", required_argument, 0, OPT_UNIT},
+        {"calibration", required_argument, 0, OPT_CALIB},
         {"threads", required_argument, 0, OPT_THREADS},
         {"quiet", no_argument, 0, OPT_QUIET},
         {"verbose", no_argument, 0, OPT_VERBOSE},
@@ -248,6 +268,20 @@ static int parse_args(int argc, char **argv, args *a)
             if (parse_format(a, optarg))
                 return CLI_EXIT_USAGE;
             break;
+        case OPT_JSON: a->json = optarg; break;
+        case OPT_ORDERING: a->ordering = optarg; break;
+        case OPT_UNIT:
+            if (clef_unit_to_uk(optarg) == 0)
+                return cli_usage_error(CMD, "--unit: '%s' is not a unit clef knows (K, mK, uK, "
+                                       "with or without _CMB)", optarg);
+            a->unit = optarg;
+            break;
+        case OPT_CALIB:
+            if (cli_parse_double(CMD, "--calibration", optarg, &a->calibration))
+                return CLI_EXIT_USAGE;
+            if (!(a->calibration > 0))
+                return cli_usage_error(CMD, "--calibration must be positive, got %s", optarg);
+            break;
         case OPT_THREADS: a->threads = optarg; break;
         case OPT_QUIET: cli_verbosity = 0; break;
         case OPT_VERBOSE: cli_verbosity = 2; break;
@@ -269,7 +303,16 @@ static int parse_args(int argc, char **argv, args *a)
     if ((a->bins_file != NULL) + (a->log_bins > 0) + (a->bin_width > 0) > 1)
         return cli_usage_error(CMD, "choose one of --bins, --log-bins and --bin-width");
     if (a->beam_file && a->beam_fwhm > 0)
-        return cli_usage_error(CMD, "choose one of --beam-fwhm and --beam-file");
+        return cli_usage_error(CMD, "choose one of --beam-fwhm and --beam-table");
+    if (a->unit && a->calibration > 0)
+        return cli_usage_error(CMD, "choose one of --unit and --calibration");
+    if (a->output && !strcmp(a->output, "-"))
+        return cli_usage_error(CMD, "--output takes a prefix for several files, not '-'; "
+                               "use --json - for the summary on standard output");
+    if (cli_check_ordering(CMD, a->ordering))
+        return CLI_EXIT_USAGE;
+    if (a->json)
+        a->want_json = 1;
     if (a->threads && cli_set_threads(CMD, a->threads))
         return CLI_EXIT_USAGE;
     return 0;
@@ -291,11 +334,15 @@ static void default_prefix(const char *map, char *buf, size_t n)
     strncat(buf, "-bandpowers", n - strlen(buf) - 1);
 }
 
-/* The largest multipole in the first column of a text table ('#'
- * comments), or -1 if none can be read; the table's own reader reports
- * any error in detail. */
+/* The largest multipole of a spectrum file (text or FITS), else of the
+ * first column of a text table ('#' comments), or -1 if none can be read;
+ * the table's own reader reports any error in detail. */
 static int text_last_l(const char *path)
 {
+    /* Spectrum files (text or FITS) say it through their own reader. */
+    int flmax = -1;
+    if (clef_theory_read_cl(path, 0, NULL, &flmax) == CLEF_OK)
+        return flmax;
     FILE *f = fopen(path, "r");
     if (!f)
         return -1;
@@ -369,6 +416,7 @@ static cJSON *input_json(const char *role, const char *path, const clef_map *m)
         cJSON_AddStringToObject(o, "ordering", m->file_ordering == CLEF_NESTED ? "NESTED" : "RING");
         cJSON_AddStringToObject(o, "coordsys", m->coordsys);
         cJSON_AddStringToObject(o, "column", m->column);
+        cJSON_AddStringToObject(o, "unit", m->unit);
         cJSON_AddNumberToObject(o, "missing_pixels", (double)m->nmissing);
     }
     return o;
@@ -414,9 +462,24 @@ static cJSON *int_array_json(const int *v, int n)
     return a;
 }
 
+/* Moments of the effective weights of one map: mask x validity of the map
+ * (the estimator's w, docs/method.md), for the run summary of each mask. */
+typedef struct mask_moments {
+    double fsky, w1, w2, w4, fsky_eff;
+} mask_moments;
+
+static void moments_json(cJSON *o, const mask_moments *m)
+{
+    cJSON_AddNumberToObject(o, "f_sky", m->fsky);
+    cJSON_AddNumberToObject(o, "w1", m->w1);
+    cJSON_AddNumberToObject(o, "w2", m->w2);
+    cJSON_AddNumberToObject(o, "w4", m->w4);
+    cJSON_AddNumberToObject(o, "f_sky_eff", m->fsky_eff);
+}
+
 static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const maps[4],
                           const clef_spectrum_opts *so, const clef_spectrum_result *r,
-                          double t_read, double t_total, const char *const *outputs, int nout)
+                          const mask_moments *mm2, double t_read, double t_total, const char *const *outputs, int nout)
 {
     cJSON *root = cJSON_CreateObject();
     cJSON_AddStringToObject(root, "program", "clef");
@@ -462,14 +525,19 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddNumberToObject(op, "peak_l_min", so->peak.l_min);
     cJSON_AddNumberToObject(op, "peak_l_max", so->peak.l_max);
     cJSON_AddNumberToObject(op, "threads", omp_get_max_threads());
+    if (a->unit)
+        cJSON_AddStringToObject(op, "unit", a->unit);
+    if (a->calibration > 0)
+        cJSON_AddNumberToObject(op, "calibration", a->calibration);
+    if (a->ordering)
+        cJSON_AddStringToObject(op, "ordering_assumed", a->ordering);
 
     cJSON *sky = cJSON_AddObjectToObject(root, "sky");
     cJSON_AddNumberToObject(sky, "nside", (double)r->nside);
-    cJSON_AddNumberToObject(sky, "fsky", r->fsky);
-    cJSON_AddNumberToObject(sky, "w1", r->w1);
-    cJSON_AddNumberToObject(sky, "w2", r->w2);
-    cJSON_AddNumberToObject(sky, "w4", r->w4);
-    cJSON_AddNumberToObject(sky, "fsky_eff", r->fsky_eff);
+    const mask_moments mm1 = {r->fsky, r->w1, r->w2, r->w4, r->fsky_eff};
+    moments_json(sky, &mm1);
+    if (mm2) /* --mask2: the second map's effective mask too */
+        moments_json(cJSON_AddObjectToObject(sky, "mask2"), mm2);
     cJSON *mp = cJSON_AddArrayToObject(sky, "removed_multipoles_uK");
     for (int i = 0; i <= r->cross; i++)
         cJSON_AddItemToArray(mp, array_json(r->multipoles[i], 4));
@@ -492,6 +560,24 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddItemToObject(b, "d_uK2", array_json(bp->dl, bp->nbins));
     cJSON_AddItemToObject(b, "d_err_uK2", array_json(bp->dl_err, bp->nbins));
     cJSON_AddItemToObject(b, "c_uK2", array_json(bp->cl, bp->nbins));
+    if (bp->win) {
+        /* The windows themselves are in the FITS HDU BANDWIN and the
+         * windows CSV; the summary records their range and row sums
+         * (docs/formats-spectrum.md). */
+        cJSON *wj = cJSON_AddObjectToObject(b, "windows");
+        cJSON_AddNumberToObject(wj, "l_min", 0);
+        cJSON_AddNumberToObject(wj, "l_max", bp->win_lmax);
+        cJSON_AddStringToObject(wj, "fits_hdu", "BANDWIN");
+        double *sums = calloc((size_t)bp->nbins, sizeof *sums);
+        if (sums) {
+            const size_t n = (size_t)bp->win_lmax + 1;
+            for (int i = 0; i < bp->nbins; i++)
+                for (size_t l = 0; l < n; l++)
+                    sums[i] += bp->win[(size_t)i * n + l];
+            cJSON_AddItemToObject(wj, "row_sums", array_json(sums, bp->nbins));
+            free(sums);
+        }
+    }
     if (r->peak_done)
         cJSON_AddItemToObject(root, "peak", peak_json(r));
     cJSON *w = cJSON_AddArrayToObject(root, "warnings");
@@ -504,31 +590,102 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
 }
 
 
-static void print_result(const args *a, const clef_spectrum_result *r)
+/* A beam, transfer or noise table shorter than the map's multipole range
+ * lowers the default lmax to its last l: say so, with the reason, in the
+ * warnings (stderr and the JSON summary). */
+static void warn_table_caps(const args *a, const clef_spectrum_opts *so,
+                            const clef_spectrum_result *r, int lread)
+{
+    if (a->lmax)
+        return; /* a given lmax beyond a table's end is refused, not capped */
+    const struct { const char *what, *path; int last; } t[] = {
+        {"beam table", a->beam_file, so->beam_lmax},
+        {"transfer function", a->transfer_file, so->transfer_lmax},
+        {"noise spectrum", a->noise_file, so->noise_lmax},
+    };
+    for (int i = 0; i < 3; i++)
+        if (t[i].path && t[i].last < lread && r->lmax == t[i].last)
+            cli_warn("lmax capped at %d: the %s '%s' ends at l = %d, below the map's l = %d; "
+                     "give a longer table to go further", r->lmax, t[i].what, t[i].path,
+                     t[i].last, lread);
+}
+
+static void print_result(FILE *out, const args *a, const clef_spectrum_result *r)
 {
     const clef_bandpowers *bp = r->bp;
-    printf("%s-spectrum of %s%s%s with mask %s\n", r->cross ? "cross" : "auto", a->map[0],
+    fprintf(out, "%s-spectrum of %s%s%s with mask %s\n", r->cross ? "cross" : "auto", a->map[0],
            r->cross ? " x " : "", r->cross ? a->map[1] : "", a->mask[0]);
-    printf("nside %lld, lmax %d, %d bins, sky fraction %.4f (effective %.4f), "
+    fprintf(out, "nside %lld, lmax %d, %d bins, sky fraction %.4f (effective %.4f), "
            "coupling 1/cond %.3g%s\n",
            (long long)r->nside, r->lmax, r->nbins, r->fsky, r->fsky_eff, r->rcond,
            r->cache_hit ? " (cached)" : "");
-    printf("%5s %11s %9s %14s %13s\n", "bin", "l range", "l_eff", "D_b [uK^2]", "sigma [uK^2]");
+    fprintf(out, "%5s %11s %9s %14s %13s\n", "bin", "l range", "l_eff", "D_b [uK^2]", "sigma [uK^2]");
     for (int b = 0; b < bp->nbins; b++) {
         char range[32];
         snprintf(range, sizeof range, "%d-%d", bp->l_lo[b], bp->l_hi[b]);
-        printf("%5d %11s %9.1f %14.3f %13.3f\n", b, range, bp->l_eff[b], bp->dl[b], bp->dl_err[b]);
+        fprintf(out, "%5d %11s %9.1f %14.3f %13.3f\n", b, range, bp->l_eff[b], bp->dl[b], bp->dl_err[b]);
     }
     if (r->peak_done) {
         const clef_peak_result *p = &r->peak;
         if (p->found)
-            printf("first peak: l = %.1f +/- %.1f, D = %.0f +/- %.0f uK^2, angular scale "
+            fprintf(out, "first peak: l = %.1f +/- %.1f, D = %.0f +/- %.0f uK^2, angular scale "
                    "%.3f +/- %.3f deg, chi2 %.2f for %d dof\n",
                    p->l_peak, p->l_peak_err, p->d_peak, p->d_peak_err, p->theta_deg,
                    p->theta_deg_err, p->chi2, p->dof);
         else
-            printf("first peak: none found (%s)\n", p->reason);
+            fprintf(out, "first peak: none found (%s)\n", p->reason);
     }
+}
+
+/* Moments of the effective weights of one map: mask x validity of the map
+ * (the estimator's w, docs/method.md), for the run summary of each mask. */
+static void effective_moments(const clef_map *map, const clef_map *mask, mask_moments *m)
+{
+    double s1 = 0, s2 = 0, s4 = 0;
+    int64_t nobs = 0;
+    for (int64_t p = 0; p < mask->npix; p++) {
+        const double w = (map->valid[p] && mask->valid[p]) ? mask->pix[p] : 0.0;
+        s1 += w;
+        s2 += w * w;
+        s4 += w * w * w * w;
+        nobs += w > 0;
+    }
+    const double n = (double)mask->npix;
+    m->fsky = (double)nobs / n;
+    m->w1 = s1 / n;
+    m->w2 = s2 / n;
+    m->w4 = s4 / n;
+    m->fsky_eff = s4 > 0 ? m->w2 * m->w2 / m->w4 : 0.0;
+}
+
+/* Units: --calibration scales the values to uK, --unit replaces TUNIT; else
+ * a TUNIT clef does not know is refused rather than guessed. */
+static int apply_units(const args *a, clef_map *map, const char *path)
+{
+    if (a->calibration > 0) {
+        for (int64_t p = 0; p < map->npix; p++)
+            map->pix[p] *= a->calibration;
+        snprintf(map->unit, sizeof map->unit, "uK");
+        return CLI_EXIT_OK;
+    }
+    if (a->unit) {
+        snprintf(map->unit, sizeof map->unit, "%s", a->unit);
+        return CLI_EXIT_OK;
+    }
+    if (!map->unit[0]) {
+        cli_warn("map '%s' records no unit (no TUNIT for column '%s'): values taken as uK; "
+                 "give --unit or --calibration to state it", path, map->column);
+        return CLI_EXIT_OK;
+    }
+    if (clef_unit_to_uk(map->unit) == 0) {
+        fprintf(stderr,
+                "clef: error: map '%s' column '%s' has unit '%s' (TUNIT), not a temperature unit "
+                "clef knows (K, mK, uK, with or without _CMB); give --unit U to state the unit "
+                "or --calibration F to convert the values to uK\n",
+                path, map->column, map->unit);
+        return CLI_EXIT_INVALID;
+    }
+    return CLI_EXIT_OK;
 }
 
 int cmd_spectrum(int argc, char **argv)
@@ -547,14 +704,53 @@ int cmd_spectrum(int argc, char **argv)
     clef_spectrum_result res;
     memset(&res, 0, sizeof res);
     cJSON *json = NULL;
-    char paths[4][4096];
-    const char *written[4];
-    int nwritten = 0, nbegun = 0;
-    static clef_outfile outs[4];
+    char paths[5][4096];
+    const char *written[5];
+    int nwritten = 0;
+    static clef_outfile ofs[5]; /* staged outputs, by slot of paths[] */
+    int begun[5] = {0, 0, 0, 0, 0};
+
+    /* Every output is known before anything is read: none may be an input,
+     * and every folder must take a new file, or the run stops now. */
+    char prefix[4000];
+    if (a.output)
+        snprintf(prefix, sizeof prefix, "%s", a.output);
+    else
+        default_prefix(a.map[0], prefix, sizeof prefix);
+    const char *outs[5] = {NULL, NULL, NULL, NULL, NULL};
+    if (a.want_fits) {
+        snprintf(paths[0], sizeof paths[0], "%s.fits", prefix);
+        outs[0] = paths[0];
+    }
+    if (a.want_csv) {
+        snprintf(paths[1], sizeof paths[1], "%s.csv", prefix);
+        snprintf(paths[2], sizeof paths[2], "%s-cov.csv", prefix);
+        snprintf(paths[3], sizeof paths[3], "%s-windows.csv", prefix);
+        outs[1] = paths[1];
+        outs[2] = paths[2];
+        outs[3] = paths[3];
+    }
+    if (a.want_json) {
+        snprintf(paths[4], sizeof paths[4], "%s", a.json ? a.json : "");
+        if (!a.json)
+            snprintf(paths[4], sizeof paths[4], "%s.json", prefix);
+        outs[4] = paths[4];
+    }
+    const char *inputs[] = {a.map[0], a.map[1], a.mask[0], a.mask[1], a.bins_file,
+                            a.beam_file, a.transfer_file, a.noise_file, a.theory_file};
+    if ((rc = cli_check_outputs(inputs, 9, outs, 5)) != CLI_EXIT_OK)
+        return rc;
+    if (a.map[1] && cli_same_file(a.map[0], a.map[1]))
+        cli_warn("the two maps '%s' and '%s' are the same file: their cross-spectrum is the "
+                 "auto-spectrum, with its noise bias (give two independent maps, or one map "
+                 "and --noise-cl)", a.map[0], a.map[1]);
 
     clef_map_read_opts ro = {0};
     ro.hdu = a.hdu;
     ro.column = a.column;
+    ro.ordering = a.ordering;
+    clef_map_read_opts mro = {0};
+    mro.ordering = a.ordering;
     const char *files[4] = {a.map[0], a.map[1], a.mask[0], a.mask[1]};
     const char *others[5] = {a.beam_file, a.transfer_file, a.noise_file, a.theory_file,
                              a.bins_file};
@@ -565,12 +761,18 @@ int cmd_spectrum(int argc, char **argv)
     for (int i = 0; i < 4; i++) {
         if (!files[i])
             continue;
-        status = clef_map_read(&maps[i], files[i], i < 2 ? &ro : NULL);
+        status = clef_map_read(&maps[i], files[i], i < 2 ? &ro : &mro);
         if (status != CLEF_OK)
             goto fail;
         cli_verbose("read %s: nside %lld, %lld missing pixels", files[i],
                     (long long)maps[i]->nside, (long long)maps[i]->nmissing);
+        if (i < 2 && (rc = apply_units(&a, maps[i], files[i])) != CLI_EXIT_OK)
+            goto fail;
     }
+    if (a.map[1] && !cli_same_file(a.map[0], a.map[1]) && maps[0]->npix == maps[1]->npix &&
+        !memcmp(maps[0]->pix, maps[1]->pix, (size_t)maps[0]->npix * sizeof(double)))
+        cli_warn("the maps '%s' and '%s' hold the same values: their cross-spectrum is the "
+                 "auto-spectrum, with its noise bias", a.map[0], a.map[1]);
     double t_read = clef_wtime() - t_begin;
 
     const int64_t nside = maps[0]->nside;
@@ -646,44 +848,52 @@ int cmd_spectrum(int argc, char **argv)
     if (status != CLEF_OK)
         goto fail;
 
+    warn_table_caps(&a, &so, &res, lread);
+    mask_moments mm2 = {0};
+    if (a.mask[1]) {
+        /* The second mask, reported beside the first (JSON and keywords). */
+        effective_moments(maps[1], maps[3], &mm2);
+        if ((status = clef_bandpowers_meta_number(res.bp, "FSKY2", mm2.fsky,
+                                                  "observed sky fraction, mask 2")) ||
+            (status = clef_bandpowers_meta_number(res.bp, "MASK2W2", mm2.w2,
+                                                  "mean of mask2^2")) ||
+            (status = clef_bandpowers_meta_number(res.bp, "MASK2W4", mm2.w4,
+                                                  "mean of mask2^4")) ||
+            (status = clef_bandpowers_meta_number(res.bp, "FSKYEFF2", mm2.fsky_eff,
+                                                  "w2^2 / w4, mask 2")))
+            goto fail;
+    }
+
     /* Outputs: each file is first written completely to its own temporary
      * (registered, so a signal removes it), then all are renamed in one
      * quick pass, once the inputs are known not to have changed under the
      * run: a failure or a signal leaves no partial file and, short of a
      * SIGKILL between two renames, no mix of this run's and older files. */
-    char prefix[4000];
-    if (a.output)
-        snprintf(prefix, sizeof prefix, "%s", a.output);
-    else
-        default_prefix(a.map[0], prefix, sizeof prefix);
-    int nout = 0;
-    if (a.want_fits)
-        snprintf(paths[nout++], sizeof paths[0], "%s.fits", prefix);
-    if (a.want_csv) {
-        snprintf(paths[nout++], sizeof paths[0], "%s.csv", prefix);
-        snprintf(paths[nout++], sizeof paths[0], "%s-cov.csv", prefix);
-    }
-    if (a.want_json)
-        snprintf(paths[nout++], sizeof paths[0], "%s.json", prefix);
-    for (int i = 0; i < nout; i++) {
-        if ((status = clef_outfile_begin(&outs[i], paths[i])) != CLEF_OK)
+    const int want[5] = {a.want_fits, a.want_csv, a.want_csv, a.want_csv && res.bp->win != NULL,
+                         a.want_json};
+    const char *final[5];
+    int nfinal = 0;
+    for (int i = 0; i < 5; i++) {
+        if (!want[i])
+            continue;
+        if ((status = clef_outfile_begin(&ofs[i], paths[i])) != CLEF_OK)
             goto fail;
-        nbegun = i + 1;
-        written[i] = paths[i];
+        begun[i] = 1;
+        final[nfinal++] = paths[i];
     }
-    int k = 0;
-    if (a.want_fits && (status = clef_bandpowers_write_fits(res.bp, outs[k++].tmp_path)) != CLEF_OK)
+    if (want[0] && (status = clef_bandpowers_write_fits(res.bp, ofs[0].tmp_path)) != CLEF_OK)
         goto fail;
-    if (a.want_csv) {
-        if ((status = clef_bandpowers_write_csv(res.bp, outs[k++].tmp_path)) != CLEF_OK)
-            goto fail;
-        if ((status = clef_bandpowers_write_cov_csv(res.bp, outs[k++].tmp_path)) != CLEF_OK)
-            goto fail;
-    }
-    if (a.want_json) {
-        json = summary_json(argc, argv, &a, maps, &so, &res, t_read, clef_wtime() - t_begin,
-                            written, nout);
-        const int rc_json = json ? cli_write_json(outs[k++].tmp_path, json) : CLI_EXIT_NOMEM;
+    if (want[1] && (status = clef_bandpowers_write_csv(res.bp, ofs[1].tmp_path)) != CLEF_OK)
+        goto fail;
+    if (want[2] && (status = clef_bandpowers_write_cov_csv(res.bp, ofs[2].tmp_path)) != CLEF_OK)
+        goto fail;
+    if (want[3] &&
+        (status = clef_bandpowers_write_windows_csv(res.bp, ofs[3].tmp_path)) != CLEF_OK)
+        goto fail;
+    if (want[4]) {
+        json = summary_json(argc, argv, &a, maps, &so, &res, a.mask[1] ? &mm2 : NULL, t_read,
+                            clef_wtime() - t_begin, final, nfinal);
+        const int rc_json = json ? cli_write_json(ofs[4].tmp_path, json) : CLI_EXIT_NOMEM;
         if (rc_json != CLI_EXIT_OK) {
             rc = rc_json; /* already reported */
             goto fail;
@@ -691,13 +901,16 @@ int cmd_spectrum(int argc, char **argv)
     }
     if ((rc = cli_check_inputs()) != CLI_EXIT_OK)
         goto fail;
-    for (int i = 0; i < nout; i++) {
-        if ((status = clef_outfile_commit(&outs[i])) != CLEF_OK)
+    for (int i = 0; i < 5; i++) {
+        if (!begun[i])
+            continue;
+        if ((status = clef_outfile_commit(&ofs[i])) != CLEF_OK)
             goto fail;
-        nwritten = i + 1;
+        begun[i] = 0;
+        written[nwritten++] = paths[i];
     }
     if (cli_verbosity >= 1)
-        print_result(&a, &res);
+        print_result(cli_text_stream(), &a, &res);
     for (int i = 0; i < nwritten; i++)
         cli_verbose("wrote %s", written[i]);
     for (int i = 0; i < res.nstages; i++)
@@ -705,11 +918,13 @@ int cmd_spectrum(int argc, char **argv)
     cli_verbose("time %-10s %8.3f s", "total", clef_wtime() - t_begin);
 
 fail:
-    for (int i = 0; i < nbegun; i++)
-        clef_outfile_abort(&outs[i]);
+    for (int i = 0; i < 5; i++)
+        if (begun[i])
+            clef_outfile_abort(&ofs[i]);
     if (status != CLEF_OK || rc != CLI_EXIT_OK)
         for (int i = 0; i < nwritten; i++)
-            remove(written[i]);
+            if (!cli_is_stdout(written[i]))
+                remove(written[i]);
     cJSON_Delete(json);
     clef_spectrum_result_free(&res);
     clef_bins_destroy(bins);
@@ -721,8 +936,13 @@ fail:
         clef_map_free(maps[i]);
     if (status == CLEF_OK)
         return rc;
-    const char *tmps[4];
-    for (int i = 0; i < nbegun; i++)
-        tmps[i] = outs[i].tmp_path;
-    return cli_fail_as(status, nbegun, tmps, written);
+    /* Library writers wrote to the staged temporaries: name the outputs. */
+    const char *tmps[5], *targets[5];
+    int nt = 0;
+    for (int i = 0; i < 5; i++)
+        if (ofs[i].tmp_path[0]) {
+            tmps[nt] = ofs[i].tmp_path;
+            targets[nt++] = paths[i];
+        }
+    return cli_fail_as(status, nt, tmps, targets);
 }

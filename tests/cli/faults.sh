@@ -158,10 +158,10 @@ echo "ok: stale temporaries"
 # map).  env --default-signal undoes the SIGINT-ignore of background jobs.
 for sig in TERM INT; do
     d="sig-$sig"; mkdir "$d"
-    env --default-signal=INT,TERM "$CLEF_BIN" simulate --nside 512 --cl cl.txt --lmax 400 \
+    env --default-signal=INT,TERM "$CLEF_BIN" simulate --nside 512 --cl cl.txt --lmax 400 --no-pixel-window \
         --output "$d/big.fits.gz" --quiet 2>"$d.err" & pid=$!
     n=0
-    while [ "$(temps "$d")" -eq 0 ] && [ "$n" -lt 600 ] && kill -0 "$pid" 2>/dev/null; do
+    while [ "$(temps "$d")" -eq 0 ] && [ "$n" -lt 6000 ] && kill -0 "$pid" 2>/dev/null; do
         sleep 0.01; n=$((n + 1))
     done
     [ "$(temps "$d")" -gt 0 ] || fail "SIG$sig: no temporary appeared to interrupt"

@@ -30,7 +30,7 @@ np.save("hits.npy", v)
 EOF
 
 # 1. Threshold mask from a map: value >= 0.3 and valid.
-if "$CLEF_BIN" mask --from hits.fits --threshold 0.3 --output thr.fits --json --quiet > thr.json; then
+if "$CLEF_BIN" mask --from hits.fits --threshold 0.3 --output thr.fits --json thr.json --quiet; then
     "$CLEF_PYTHON" - <<'EOF' || fail "threshold mask differs from numpy"
 import json
 import numpy as np
@@ -47,7 +47,8 @@ assert r["nside"] == 32 and r["npix"] == 12288
 assert abs(r["f_sky"] - want.mean()) < 1e-12, (r["f_sky"], want.mean())
 for k in ("w1", "w2", "w4", "f_sky_eff"):
     assert abs(r[k] - want.mean()) < 1e-12, k
-assert r["apodization"] == "none" and r["apod_scale_deg"] is None
+assert r["taper"] == "none" and r["taper_width_deg"] is None
+assert r["program"] == "clef" and r["observed_pixels"] == int(want.sum()) and r["warnings"] == []
 EOF
 else
     fail "clef mask --from hits.fits --threshold 0.3"
@@ -57,7 +58,7 @@ fi
 printf '# lon lat radius[arcmin]\n10 45 300\n200 -60 240  # second\n\n' > holes.txt
 for kind in c1 c2 gauss; do
     if "$CLEF_BIN" mask --nside 64 --coordsys G --latitude-cut 25 --holes holes.txt \
-        --apodize $kind --apod-scale 4 --output ap_$kind.fits --report --json > ap_$kind.json; then
+        --taper $kind --taper-width 4 --output ap_$kind.fits --report --json ap_$kind.json > ap_$kind.txt; then
         KIND=$kind "$CLEF_PYTHON" - <<'EOF' || fail "apodized mask ($kind) checks"
 import json, os
 import numpy as np
@@ -75,10 +76,10 @@ for key, ref in (("w1", w.mean()), ("w2", (w**2).mean()), ("w4", (w**4).mean()),
                  ("f_sky", (w > 0).mean())):
     assert abs(r[key] - ref) <= 1e-12 * max(1.0, ref), (key, r[key], ref)
 assert abs(r["f_sky_eff"] - (w**2).mean()**2 / (w**4).mean()) < 1e-12
-assert r["apodization"] == k and r["apod_scale_deg"] == 4
+assert r["taper"] == k and r["taper_width_deg"] == 4
 EOF
     else
-        fail "clef mask --apodize $kind"
+        fail "clef mask --taper $kind"
     fi
 done
 
@@ -91,7 +92,26 @@ f = float(d['f_sky'])
 assert abs(f - (1 - math.cos(math.radians(15))) / 2) < 0.02 * f, f
 " || fail "patch sky fraction"
 
-# 4. Bad inputs: exit code and no output file.
+# 4. Masks that clef spectrum cannot use are written with a warning that
+# says why, on stderr and in the JSON warnings.
+"$CLEF_BIN" mask --nside 64 --patch 0,90,0.1 --output zero.fits --json zero.json 2> zero.err \
+    || fail "all-zero mask exit $?"
+grep -q "no observed pixel" zero.err || fail "no warning for an all-zero mask: $(cat zero.err)"
+"$CLEF_BIN" mask --nside 64 --patch 0,90,1.5 --output small.fits --json small.json 2> small.err \
+    || fail "tiny mask exit $?"
+grep -q "too small for any band-power bin" small.err || fail "no warning for a tiny mask: $(cat small.err)"
+"$CLEF_PYTHON" - <<'EOF' || fail "mask warnings in the JSON"
+import json
+z = json.load(open("zero.json")); s = json.load(open("small.json"))
+assert z["observed_pixels"] == 0 and any("no observed pixel" in w for w in z["warnings"]), z
+assert any("too small" in w and "coupling" in w for w in s["warnings"]), s
+# The warning tells the truth: the coupling width exceeds l = 2..3 nside - 1.
+assert s["coupling_width"] > 3 * 64 - 3, s["coupling_width"]
+EOF
+"$CLEF_BIN" mask --nside 64 --latitude-cut 20 --output fine.fits 2> fine.err || fail "cut mask"
+[ ! -s fine.err ] || fail "a usable mask got a warning: $(cat fine.err)"
+
+# 5. Bad inputs: exit code and no output file.
 expect() {
     want=$1; shift
     rm -f out.fits
@@ -109,8 +129,11 @@ echo "not a fits file" > text.fits
 expect 2
 expect 2 --nside 8
 expect 2 --nside 8 --from hits.fits --output out.fits
-expect 2 --nside 8 --apodize c3 --apod-scale 1 --output out.fits
-expect 2 --nside 8 --apodize c1 --output out.fits
+expect 2 --nside 8 --taper c3 --taper-width 1 --output out.fits
+expect 2 --nside 8 --taper c1 --output out.fits
+# The former option names are gone, not aliases.
+expect 2 --nside 8 --apodize c1 --apod-scale 1 --output out.fits
+expect 2 --nside 8 --taper c1 --apod-scale 1 --output out.fits
 expect 2 --nside 8 --patch 1,2 --output out.fits
 expect 2 --nside 8 --latitude-cut ten --output out.fits
 expect 2 --nside 8 --erode 1 --output out.fits
@@ -118,7 +141,7 @@ expect 2 --nside 8 --coordsys X --output out.fits
 expect 3 --nside 12 --output out.fits
 expect 3 --nside 8 --latitude-cut 95 --output out.fits
 expect 3 --nside 8 --patch 0,100,5 --output out.fits
-expect 3 --nside 8 --apodize c2 --apod-scale 0 --output out.fits
+expect 3 --nside 8 --taper c2 --taper-width 0 --output out.fits
 expect 3 --from hits.fits --coordsys C --output out.fits
 expect 4 --nside 8 --holes missing.txt --output out.fits
 expect 5 --nside 8 --holes badholes.txt --output out.fits
@@ -137,10 +160,10 @@ rc=$?
 set -e
 [ "$rc" -eq 4 ] || fail "unwritable output exited $rc, expected 4"
 
-# 5. --help documents every option.
+# 6. --help documents every option.
 "$CLEF_BIN" mask --help > help.txt || fail "--help"
 for o in --nside --from --column --hdu --threshold --latitude-cut --holes --patch --coordsys \
-    --apodize --apod-scale --erode --output --float32 --report --json --threads --quiet \
+    --taper --taper-width --erode --ordering --output --float32 --report --json --threads --quiet \
     --verbose --help; do
     grep -q -- "$o" help.txt || fail "--help does not mention $o"
 done

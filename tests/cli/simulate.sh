@@ -13,7 +13,7 @@ failures=0
 fail() { echo "FAIL: $*"; failures=$((failures + 1)); }
 
 # 1. Model sky, beam, pixel window, noise, two splits, float32, gzip, a_lm.
-"$CLEF_BIN" simulate --nside 32 --model --seed 5 --beam-fwhm 120 --pixel-window \
+"$CLEF_BIN" simulate --nside 32 --model --seed 5 --beam-fwhm 120 \
     --noise-depth 50 --splits 2 --float32 --coordsys G --output sky.fits.gz \
     --alm-output alm.fits --threads 2 --quiet || fail "simulate with splits"
 for f in sky_split1.fits.gz sky_split2.fits.gz alm.fits; do
@@ -51,6 +51,45 @@ assert (maps[0] + maps[1]).std() > 2 * s
 with fits.open("alm.fits") as h:
     assert h[1].header["LMAX"] == 95, h[1].header["LMAX"]
     assert len(h[1].data) == 96 * 97 // 2
+PY
+
+# 1b. Default to default: clef simulate applies the pixel window as a real
+# map has it, and clef spectrum corrects for it, so the round trip recovers
+# the input model; without the window (--no-pixel-window, the former
+# default) the corrected band powers come out high at high l, by one over
+# the pixel window squared (about 1/0.6 at l = 2 nside: common practice,
+# from memory).
+"$CLEF_BIN" model --quiet --lmax 191 --output model.txt || fail "model"
+"$CLEF_BIN" mask --quiet --nside 64 --output full.fits || fail "full-sky mask"
+"$CLEF_BIN" simulate --quiet --nside 64 --model --seed 21 --output pw.fits || fail "simulate default"
+"$CLEF_BIN" simulate --quiet --nside 64 --model --seed 21 --no-pixel-window --output nopw.fits \
+    || fail "simulate --no-pixel-window"
+for m in pw nopw; do
+    "$CLEF_BIN" spectrum --quiet $m.fits --mask full.fits --bin-width 20 --lmax 180 --no-peak \
+        --format csv --no-cache -o sp_$m || fail "spectrum of $m.fits"
+done
+"$CLEF_PYTHON" - <<'PY' || fail "simulate/spectrum round trip with default pixel-window settings"
+import csv
+import numpy as np
+m = np.loadtxt("model.txt")            # l, C_l, D_l (uK^2)
+dl = dict(zip(m[:, 0].astype(int), m[:, 2]))
+def table(name):
+    rows = list(csv.DictReader(l for l in open(name) if not l.startswith("#")))
+    return [(int(r["l_min"]), int(r["l_max"]), float(r["d_band_uK2"]), float(r["d_sigma_uK2"]))
+            for r in rows]
+def ratios(name):
+    out = []
+    for lo, hi, d, e in table(name):
+        truth = np.mean([dl[l] for l in range(lo, hi + 1)])
+        out.append((lo, d / truth, (d - truth) / e))
+    return out
+pw = ratios("sp_pw.csv"); nopw = ratios("sp_nopw.csv")
+# Every bin within 4 quoted sigma of the model (cosmic variance only).
+assert all(abs(z) < 4 for _, _, z in pw), pw
+high = [r for lo, r, _ in pw if lo >= 120]
+assert abs(np.mean(high) - 1) < 0.08, high
+wrong = [r for lo, r, _ in nopw if lo >= 120]
+assert np.mean(wrong) > 1.3, wrong     # the mismatch the default removes
 PY
 
 # 2. Same seed, same map, whatever the thread count.
@@ -127,24 +166,26 @@ expect 2 --nside 16 --cl dl.txt --omega-b 0.03 --output out.fits     # parameter
 expect 2 --nside 16 --model --coordsys Q --output out.fits
 expect 2 --nside 16 --model --seed -4 --output out.fits
 expect 2 --nside 16 --model --beam-fwhm -1 --output out.fits
-expect 2 --nside 16 --model --beam-fwhm 5 --beam-file dl.txt --output out.fits
+expect 2 --nside 16 --model --beam-fwhm 5 --beam-table dl.txt --output out.fits
 expect 2 --nside 16 --model --noise-depth abc --output out.fits
 expect 2 --nside 16 --model --no-such-option --output out.fits
+expect 2 --nside 16 --model --pixel-window --output out.fits       # now the default: no option
+expect 2 --nside 16 --model --beam-file dl.txt --output out.fits   # renamed --beam-table
 expect 2 --nside 16 --model --output out.fits extra-argument
 expect 3 --nside 16 --model --omega-b -0.5 --output out.fits        # unphysical model
 expect 3 --nside 16 --model --hits hits.fits --noise-depth 5 --output out.fits  # nside mismatch
 expect 3 --nside 32 --model --hits hits16.fits --noise-depth 5 --output out.fits
 printf '0 1\n1 0.9\n' > short_beam.txt
-expect 3 --nside 16 --model --beam-file short_beam.txt --output out.fits  # beam stops early
+expect 3 --nside 16 --model --beam-table short_beam.txt --output out.fits  # beam stops early
 expect 4 --nside 16 --cl no-such-file.txt --output out.fits
-expect 4 --nside 16 --model --beam-file no-such-beam.txt --output out.fits
+expect 4 --nside 16 --model --beam-table no-such-beam.txt --output out.fits
 expect 4 --nside 16 --model --hits no-such-hits.fits --noise-depth 5 --output out.fits
 expect 4 --nside 16 --model --output no-such-dir/out.fits
 expect 4 --nside 16 --model --splits 2 --output out.fits --alm-output no-such-dir/alm.fits
 printf '# columns: l C_l\n2 1\n3 x\n' > bad_cl.txt
 expect 5 --nside 16 --cl bad_cl.txt --output out.fits
 printf '0 1\n1 x\n' > bad_beam.txt
-expect 5 --nside 16 --model --beam-file bad_beam.txt --output out.fits
+expect 5 --nside 16 --model --beam-table bad_beam.txt --output out.fits
 "$CLEF_BIN" simulate --help | grep -q -- '--noise-depth' || fail "--help lacks --noise-depth"
 
 [ "$failures" -eq 0 ] || { echo "$failures failure(s)"; exit 1; }

@@ -13,7 +13,7 @@ C="$CLEF_BIN"
 # latitude-cut mask.
 "$C" simulate --quiet --nside 64 --model --seed 3 --beam-fwhm 30 --noise-depth 30 --splits 2 \
     --coordsys G --output "$T/sky.fits" || fail "simulate"
-"$C" mask --quiet --nside 64 --latitude-cut 15 --apodize c2 --apod-scale 5 --coordsys G \
+"$C" mask --quiet --nside 64 --latitude-cut 15 --taper c2 --taper-width 5 --coordsys G \
     --output "$T/mask.fits" || fail "mask"
 "$C" mask --quiet --nside 32 --output "$T/mask32.fits" || fail "mask32"
 "$C" mask --quiet --nside 64 --patch 0,90,0.1 --output "$T/empty.fits" || fail "empty mask"
@@ -21,7 +21,7 @@ C="$CLEF_BIN"
 
 "$C" spectrum "$T/sky_split1.fits" "$T/sky_split2.fits" --mask "$T/mask.fits" --beam-fwhm 30 \
     --output "$T/run" > "$T/out.txt" 2> "$T/err.txt" || fail "spectrum exit $?: $(cat "$T/err.txt")"
-for f in run.fits run.csv run-cov.csv run.json; do
+for f in run.fits run.csv run-cov.csv run-windows.csv run.json; do
     [ -s "$T/$f" ] || fail "missing output $f"
 done
 grep -q "first peak" "$T/out.txt" || fail "no peak line: $(cat "$T/out.txt")"
@@ -38,7 +38,7 @@ assert j["program"] == "clef" and j["spectrum"] == "cross", j["spectrum"]
 assert len(j["inputs"]) == 3 and all(len(i["sha256"]) == 64 for i in j["inputs"])
 import hashlib
 assert j["inputs"][0]["sha256"] == hashlib.sha256(open(t + "/sky_split1.fits", "rb").read()).hexdigest()
-assert 0.6 < j["sky"]["fsky"] < 0.8, j["sky"]
+assert 0.6 < j["sky"]["f_sky"] < 0.8, j["sky"]
 assert j["options"]["lmax"] <= 191 and j["options"]["beam_fwhm_arcmin"] == 30
 assert "total" in j["timings_s"] and "coupling" in j["timings_s"]
 with fits.open(t + "/run.fits") as h:
@@ -56,6 +56,16 @@ rows = list(csv.DictReader(l for l in open(t + "/run.csv") if not l.startswith("
 assert np.allclose([float(r["d_band_uK2"]) for r in rows], d, rtol=1e-12)
 assert np.allclose(np.loadtxt(t + "/run-cov.csv", delimiter=","), cov, rtol=1e-12)
 assert "peak" in j and "found" in j["peak"]
+# Band-power windows (docs/formats-spectrum.md): FITS HDU BANDWIN = the CSV
+# side file; each row sums to 1 over its own bin's multipoles.
+with fits.open(t + "/run.fits") as h:
+    w = h["BANDWIN"].data
+    lo, hi = h["BANDPOWER"].data["LMIN"], h["BANDPOWER"].data["LMAX"]
+assert w.shape == (len(d), j["bandpowers"]["windows"]["l_max"] + 1), w.shape
+assert np.allclose(np.loadtxt(t + "/run-windows.csv", delimiter=","), w, rtol=1e-15, atol=0)
+for b in range(len(d)):
+    assert abs(w[b, lo[b]:hi[b] + 1].sum() - 1) < 1e-9, (b, w[b, lo[b]:hi[b] + 1].sum())
+assert np.allclose(w.sum(axis=1), j["bandpowers"]["windows"]["row_sums"], rtol=1e-12)
 PY
 
 # Second run: the coupling comes from the cache.
@@ -72,10 +82,17 @@ import numpy as np
 l = np.arange(151); s = 30 / 60 * np.pi / 180 / np.sqrt(8 * np.log(2))
 np.savetxt('$T/beam.txt', np.c_[l, np.exp(-l * (l + 1) * s * s / 2)], fmt='%d %.12g', header='l B_l')
 " || fail "beam table"
-"$C" spectrum "$T/sky_split1.fits" --mask "$T/mask.fits" --beam-file "$T/beam.txt" --format json \
-    --output "$T/btab" > /dev/null 2>&1 || fail "spectrum with a beam table"
+"$C" spectrum "$T/sky_split1.fits" --mask "$T/mask.fits" --beam-table "$T/beam.txt" --format json \
+    --output "$T/btab" > /dev/null 2> "$T/btab.err" || fail "spectrum with a beam table"
 "$CLEF_PYTHON" -c "import json,sys; j=json.load(open(sys.argv[1])); sys.exit(0 if j['options']['lmax'] == 150 else 1)" \
     "$T/btab.json" || fail "lmax not capped by the beam table"
+# ... and the cap is no longer silent: its reason is in stderr and in the
+# JSON warnings.
+grep -q "lmax capped at 150: the beam table" "$T/btab.err" || fail "no cap warning: $(cat "$T/btab.err")"
+"$CLEF_PYTHON" -c "import json,sys; j=json.load(open(sys.argv[1])); sys.exit(0 if any('lmax capped at 150' in w and 'beam.txt' in w for w in j['warnings']) else 1)" \
+    "$T/btab.json" || fail "cap warning missing from the JSON warnings"
+"$C" spectrum "$T/sky_split1.fits" --mask "$T/mask.fits" --beam-file "$T/beam.txt" -o "$T/bad" \
+    > /dev/null 2>&1 && fail "the old option name --beam-file is still accepted"
 
 # Bad input: the documented exit code, a message, and no output.
 expect() { # code, description, command...
