@@ -15,6 +15,7 @@
 #include <fitsio.h>
 
 #include "core_impl.h"
+#include "fits_impl.h"
 
 /* Column roles named on the "# columns:" line. */
 enum { COL_OTHER, COL_L, COL_CL, COL_DL };
@@ -213,6 +214,8 @@ static int read_fits_body(const char *path, int lmax, double *cl, unsigned char 
     *file_lmax = -1;
     if (fits_open_file(&ff, path, READONLY, &fst))
         return fits_status(path, "open", fst);
+    if ((status = clef_fits_check_headers(ff, path)) != CLEF_OK)
+        goto done;
     if (fits_movnam_hdu(ff, BINARY_TBL, "SPECTRUM", 0, &fst)) {
         fst = 0;
         if (fits_movabs_hdu(ff, 2, &hdutype, &fst) || hdutype != BINARY_TBL) {

@@ -26,7 +26,11 @@ for bin in "$out"/fuzz/fuzz_*; do
     fi
     seeds="tests/fuzz/corpus/$h"
     dict=tests/fuzz/text.dict
-    case "$short" in map|table|alm) dict=tests/fuzz/fits.dict ;; esac
+    case "$short" in
+    map|alm) dict=tests/fuzz/fits.dict ;;
+    table|spectrum_text)   # text and FITS readers behind one entry point
+        dict="$out/both.dict"; cat tests/fuzz/text.dict tests/fuzz/fits.dict > "$dict" ;;
+    esac
     log="$out/logs/$h.log"
     if [ "$mode" = long ]; then
         work="$out/corpus/$h"; mkdir -p "$work"
