@@ -15,6 +15,8 @@
 #     exit 4, a message naming the target and the reason, nothing partial.
 #  5. An input truncated or replaced while the job runs: exit 4 (or 5 if the
 #     read itself saw the cut), no output.
+#  6. Under ulimit -v 1 GiB: a legitimate NSIDE 8192 map is exit 8 with the
+#     size asked for; a huge NSIDE over a tiny table exit 5, no allocation.
 # CLEF_FAULT_TRIALS (default 20) sets the number of SIGKILL points.
 set -eu
 : "${CLEF_BIN:?}" "${CLEF_PYTHON:?}" "${CLEF_TEST_TMP:?}"
@@ -261,6 +263,35 @@ for how in truncate replace; do
     ls "$d" | grep -q '^out' && fail "input $how: outputs written: $(ls "$d")"
     echo "ok: input $how while running: exit $rc: $(cat "$d.log")"
 done
+
+# 6. Memory limits (ulimit -v): a partial-sky map of NSIDE 8192 (3 pixels,
+# written by astropy) needs the full 7.2 GB sky: exit 8 with the size; the
+# same NSIDE in a header over a 12-row table: exit 5 before any allocation.
+# AddressSanitizer reserves more address space than any such limit: skipped.
+if [ -z "${CLEF_SANITIZE:-}" ]; then
+    "$CLEF_PYTHON" - <<'PY'
+import numpy as np
+from astropy.io import fits
+def write(name, cols, **kw):
+    h = fits.BinTableHDU.from_columns(cols)
+    for k, v in kw.items():
+        h.header[k] = v
+    fits.HDUList([fits.PrimaryHDU(), h]).writeto(name, overwrite=True)
+write("big-partial.fits", [fits.Column(name="PIXEL", format="K", array=np.arange(3)),
+                           fits.Column(name="T", format="D", array=np.ones(3))],
+      PIXTYPE="HEALPIX", ORDERING="RING", NSIDE=8192, INDXSCHM="EXPLICIT")
+write("big-tiny.fits", [fits.Column(name="T", format="D", array=np.ones(12))],
+      PIXTYPE="HEALPIX", ORDERING="RING", NSIDE=8192)
+PY
+    rc=0; (ulimit -v 1048576; "$CLEF_BIN" inspect big-partial.fits) 2>mem.log >/dev/null || rc=$?
+    [ "$rc" -eq 8 ] || fail "ulimit -v, NSIDE 8192 partial map: exit $rc, expected 8 ($(cat mem.log))"
+    grep -q "nside 8192 (805306368 pixels, 7.25 GB)" mem.log || fail "ulimit -v: message: $(cat mem.log)"
+    rc=0; (ulimit -v 1048576; "$CLEF_BIN" inspect big-tiny.fits) 2>mem2.log >/dev/null || rc=$?
+    [ "$rc" -eq 5 ] || fail "ulimit -v, NSIDE 8192 over 12 rows: exit $rc, expected 5 ($(cat mem2.log))"
+    echo "ok: ulimit -v 1 GiB: $(cat mem.log); $(cat mem2.log)"
+else
+    echo "skipped: ulimit -v checks under the sanitizer build"
+fi
 
 [ "$failures" -eq 0 ] || { echo "$failures fault check(s) failed"; exit 1; }
 echo "all fault checks passed"
