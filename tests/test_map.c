@@ -17,6 +17,7 @@
 #include <gsl/gsl_statistics_double.h>
 
 #include "clef/map.h"
+#include "map_impl.h"
 
 /* ------------------------------------------------------------------------
  * A test-only FITS writer (CFITSIO), able to break every rule on purpose.
@@ -936,6 +937,39 @@ static void test_unquoted_ttype(void **state)
     expect_read_fail(bad, NULL, CLEF_EFORMAT, "byte 0xea at column 15 is not printable ASCII");
 }
 
+/* clef_map_read_memory (the fuzz harness's entry): CFITSIO's memory driver
+ * read whole 2880-byte records past the end of a buffer cut inside its last
+ * record (fuzz_map finding, ASan heap-buffer-overflow; regression input
+ * tests/fuzz/corpus/fuzz_map/regress-memfile-cut-in-last-record.fits).
+ * Cut in the padding the map reads whole; cut in the data it is truncated. */
+static void test_read_memory(void **state)
+{
+    (void)state;
+    const char *good = test_path("mem-good.fits");
+    double v[48];
+    for (int i = 0; i < 48; i++)
+        v[i] = i;
+    tfile t = {.nside_key = 2, .ordering = "RING", .n = 48, .values = v};
+    write_tfile(good, &t);
+    static char bytes[4 * 2880];
+    FILE *f = fopen(good, "rb");
+    const size_t n = fread(bytes, 1, sizeof bytes, f);
+    fclose(f);
+    assert_int_equal(n, 3 * 2880);
+    char *exact = malloc(n);
+    memcpy(exact, bytes, n);
+    clef_map *m = NULL;
+    assert_int_equal(clef_map_read_memory(&m, exact, n - 1000, "cut-in-padding", NULL), CLEF_OK);
+    assert_true(m->pix[47] == 47.0);
+    clef_map_free(m);
+    m = NULL;
+    assert_int_equal(clef_map_read_memory(&m, exact, 2 * 2880 + 100, "cut-in-data", NULL),
+                     CLEF_EFORMAT);
+    assert_non_null(strstr(clef_last_error(), "the file is truncated"));
+    assert_null(m);
+    free(exact);
+}
+
 static void test_resource_limits(void **state)
 {
     (void)state;
@@ -1004,6 +1038,7 @@ int main(void)
         cmocka_unit_test(test_write_errors),
         cmocka_unit_test(test_check_mask),
         cmocka_unit_test(test_resource_limits),
+        cmocka_unit_test(test_read_memory),
         cmocka_unit_test(test_unquoted_ttype),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
