@@ -16,4 +16,11 @@
  * Only the primary header has been parsed by CFITSIO when this runs. */
 int clef_fits_check_headers(fitsfile *f, const char *name);
 
+/* A gzip stream whose trailer (ISIZE) claims more than deflate can expand
+ * to: CLEF_EFORMAT before CFITSIO allocates that much.  The _file form reads
+ * the first 2 and last 4 bytes of `path`; call it before fits_open_*. */
+int clef_fits_check_gzip(const unsigned char *head, size_t nhead, const unsigned char tail[4],
+                         long long size, const char *name);
+int clef_fits_check_gzip_file(const char *path);
+
 #endif

@@ -677,6 +677,7 @@ int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *op
     clef_map *m = NULL;
     int status = CLEF_OK, st = 0;
 
+    CLEF_TRY(clef_fits_check_gzip_file(path));
     /* The disk-file opener takes the name literally (no extended-syntax
      * parsing of brackets) and still decompresses gzip. */
     fits_open_diskfile(&r.f, path, READONLY, &st);
@@ -718,6 +719,9 @@ int clef_map_read_memory(clef_map **out, const void *data, size_t size, const ch
     *out = NULL;
     if (!data || !size)
         CLEF_FAIL(CLEF_EFORMAT, "'%s' is empty (0 bytes), not a FITS file", name);
+    if (size >= 18)
+        CLEF_TRY(clef_fits_check_gzip(data, size, (const unsigned char *)data + size - 4,
+                                      (long long)size, name));
     reader r;
     memset(&r, 0, sizeof r);
     r.path = name;
@@ -741,6 +745,18 @@ int clef_map_read_memory(clef_map **out, const void *data, size_t size, const ch
         clef_map_fits_status(st, text, sizeof text);
         free(mem);
         CLEF_FAIL(read_status_code(st), "cannot read '%s' as FITS: %s", name, text);
+    }
+    /* CFITSIO may take the file to be longer than the buffer (a primary
+     * header describing more data than follows; fuzz_map finding), and its
+     * memory driver would then read past the buffer: refuse that here. */
+    if (r.f->Fptr->logfilesize > (long long)padded) {
+        const long long claimed = r.f->Fptr->logfilesize;
+        st = 0;
+        fits_close_file(r.f, &st);
+        fits_clear_errmsg();
+        free(mem);
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' is truncated: its headers describe %lld bytes, but it "
+                  "holds %zu", name, claimed, size);
     }
     const int status = read_opened(&r, opts, out);
     st = 0;

@@ -147,6 +147,7 @@ int clef_alm_read(const char *path, int *lmax_out, int *mmax_out, double complex
     unsigned char *seen = NULL;
     int *cl = NULL, *cm = NULL;
     double *re = NULL, *im = NULL;
+    CLEF_TRY(clef_fits_check_gzip_file(path));
     if (fits_open_file(&f, path, READONLY, &fst)) {
         f = NULL;
         return fits_error(CLEF_EIO, path, "cannot open", fst);

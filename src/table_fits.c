@@ -321,6 +321,7 @@ int clef_table_read_fits(clef_bandpowers **out, const char *path)
     fitsfile *f = NULL;
     int st = 0, status = CLEF_OK;
     clef_bandpowers *bp = NULL;
+    CLEF_TRY(clef_fits_check_gzip_file(path));
     fits_open_diskfile(&f, path, READONLY, &st);
     if (st)
         return fits_fail(st == FILE_NOT_OPENED ? CLEF_EIO : CLEF_EFORMAT, st, path,

@@ -212,6 +212,7 @@ static int read_fits_body(const char *path, int lmax, double *cl, unsigned char 
     int fst = 0, status = CLEF_OK, hdutype = 0;
     double *lv = NULL, *v = NULL;
     *file_lmax = -1;
+    CLEF_TRY(clef_fits_check_gzip_file(path));
     if (fits_open_file(&ff, path, READONLY, &fst))
         return fits_status(path, "open", fst);
     if ((status = clef_fits_check_headers(ff, path)) != CLEF_OK)
