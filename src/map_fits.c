@@ -719,9 +719,9 @@ int clef_map_read_memory(clef_map **out, const void *data, size_t size, const ch
     *out = NULL;
     if (!data || !size)
         CLEF_FAIL(CLEF_EFORMAT, "'%s' is empty (0 bytes), not a FITS file", name);
-    if (size >= 18)
-        CLEF_TRY(clef_fits_check_gzip(data, size, (const unsigned char *)data + size - 4,
-                                      (long long)size, name));
+    CLEF_TRY(clef_fits_check_gzip(data, size,
+                                  size >= 4 ? (const unsigned char *)data + size - 4 : NULL,
+                                  (long long)size, name));
     reader r;
     memset(&r, 0, sizeof r);
     r.path = name;

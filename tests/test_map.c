@@ -996,6 +996,11 @@ static void test_gzip_claim(void **state)
     fputc(0xff, f);
     fclose(f);
     expect_read_fail(gz, NULL, CLEF_EFORMAT, "claim 4294967295 bytes uncompressed");
+    /* shorter than a gzip header and trailer (a second finding: CFITSIO
+     * read a size field out of the 10-byte header) */
+    static const unsigned char ten[10] = {0x1f, 0x8b, 0x08, 0x29, 0xff, 0x68, 0x45, 0x52, 0xff, 0xff};
+    write_bytes(gz, ten, sizeof ten);
+    expect_read_fail(gz, NULL, CLEF_EFORMAT, "truncated gzip file (10 bytes)");
 }
 
 static void test_resource_limits(void **state)
