@@ -26,7 +26,7 @@ failures=0
 fail() { echo "FAIL: $*"; failures=$((failures + 1)); }
 trials=${CLEF_FAULT_TRIALS:-20}
 # The sanitizer build runs the same checks on fewer points (it is 2-5x slower).
-[ -n "${CLEF_SANITIZE:-}" ] && trials=${CLEF_FAULT_TRIALS:-6}
+[ -n "${CLEF_SANITIZE:-}" ] && trials=${CLEF_FAULT_TRIALS:-4}
 export OMP_NUM_THREADS=2
 host=$(hostname | tr -c 'A-Za-z0-9\n-' '-' | cut -c1-40)
 [ -n "$host" ] || host=localhost
