@@ -10,7 +10,7 @@ CFLAGS   ?= -O3 -g
 WERROR   ?=
 PREFIX   ?= /usr/local
 
-PKGS     := chealpix cfitsio fftw3 lapacke openblas gsl libcjson cairo
+PKGS     := chealpix cfitsio fftw3 lapacke openblas gsl libcjson cairo nettle
 TESTPKGS := cmocka
 
 PKGCFLAGS := $(shell pkg-config --cflags $(PKGS) 2>/dev/null)
@@ -27,19 +27,21 @@ LIB_SRC   := $(wildcard src/*.c)
 CLI_SRC   := $(wildcard src/cli/*.c)
 TEST_SRC  := $(wildcard tests/test_*.c)
 BENCH_SRC := $(wildcard bench/bench_*.c)
+FUZZ_SRC  := $(wildcard tests/fuzz/fuzz_*.c)
 BENCH_COMMON := $(filter-out $(BENCH_SRC),$(wildcard bench/*.c))
 
 LIB_OBJ   := $(LIB_SRC:%.c=$(BUILD)/%.o)
 CLI_OBJ   := $(CLI_SRC:%.c=$(BUILD)/%.o)
 TEST_BIN  := $(TEST_SRC:tests/%.c=$(BUILD)/tests/%)
 BENCH_BIN := $(BENCH_SRC:bench/%.c=$(BUILD)/bench/%)
+REPLAY_BIN := $(FUZZ_SRC:tests/fuzz/%.c=$(BUILD)/fuzz-replay/%)
 BENCH_COMMON_OBJ := $(BENCH_COMMON:%.c=$(BUILD)/%.o)
 
 LIBA  := $(BUILD)/libclef.a
 LIBSO := $(BUILD)/libclef.so
 CLEF  := $(BUILD)/clef
 
-.PHONY: all deps check check-long tests bench demo sanitize clean install
+.PHONY: all deps check check-long tests bench demo sanitize clean install fuzz fuzz-ci fuzz-build
 .DEFAULT_GOAL := all
 
 all: $(LIBA) $(LIBSO) $(CLEF)
@@ -69,7 +71,14 @@ $(BUILD)/bench/%: bench/%.c $(BENCH_COMMON_OBJ) $(LIBA)
 	@mkdir -p $(dir $@)
 	$(CC) $(ALL_CPPFLAGS) $(ALL_CFLAGS) -Ibench $< $(BENCH_COMMON_OBJ) -o $@ $(ALL_LDFLAGS) $(LIBA) $(ALL_LDLIBS)
 
-tests: all $(TEST_BIN)
+# Every fuzz harness also links against a plain replay driver, so the
+# corpora (seeds and regression inputs) run in make check and make sanitize
+# with the project's compiler (tests/cli/fuzz_corpus.sh).
+$(BUILD)/fuzz-replay/%: tests/fuzz/%.c tests/fuzz/replay.c tests/fuzz/fuzz.h $(LIBA)
+	@mkdir -p $(dir $@)
+	$(CC) $(ALL_CPPFLAGS) $(ALL_CFLAGS) -Itests/fuzz tests/fuzz/replay.c $< -o $@ $(ALL_LDFLAGS) $(LIBA) $(ALL_LDLIBS)
+
+tests: all $(TEST_BIN) $(REPLAY_BIN)
 
 # The test suite: every tests/test_*.c program (cmocka) and every
 # tests/cli/*.sh script; tests/run.sh prints "N passed, N failed".
@@ -88,6 +97,33 @@ sanitize: deps
 	    LDFLAGS="-fsanitize=address,undefined" tests
 	@CLEF_SANITIZE=1 ASAN_OPTIONS=detect_leaks=1 sh tests/run.sh build-san
 
+# Fuzzing (tests/fuzz/README.md): libFuzzer harnesses built with Debian's
+# clang, AddressSanitizer and UndefinedBehaviorSanitizer in build-fuzz/.
+# `make fuzz` runs each harness for 10^6 executions or FUZZ_TIME seconds
+# (default 1800), whichever comes first; `make fuzz-ci` about 20 s each over
+# its corpus (what .ci/run does).  Both fail on any finding.
+FUZZ_CFLAGS := -O1 -g -fno-omit-frame-pointer -fsanitize=address,undefined -fno-sanitize-recover=undefined
+FUZZ_BIN := $(FUZZ_SRC:tests/fuzz/%.c=build-fuzz/fuzz/%)
+FUZZ_TIME ?= 1800
+
+fuzz-build:
+	@sh scripts/install-deps.sh --fuzz
+	@$(MAKE) --no-print-directory BUILD=build-fuzz CC=clang \
+	    CFLAGS="$(FUZZ_CFLAGS) -fsanitize=fuzzer-no-link" LDFLAGS="-fsanitize=address,undefined" fuzz-harnesses
+
+build-fuzz/fuzz/%: tests/fuzz/%.c tests/fuzz/fuzz.h $(LIBA)
+	@mkdir -p $(dir $@)
+	$(CC) $(ALL_CPPFLAGS) $(ALL_CFLAGS) -fsanitize=fuzzer -Itests/fuzz $< -o $@ $(ALL_LDFLAGS) -fsanitize=fuzzer $(LIBA) $(ALL_LDLIBS)
+
+.PHONY: fuzz-harnesses
+fuzz-harnesses: $(FUZZ_BIN)
+
+fuzz: fuzz-build
+	@sh tests/fuzz/run.sh long $(FUZZ_TIME)
+
+fuzz-ci: fuzz-build
+	@sh tests/fuzz/run.sh ci 20
+
 bench: deps
 	@$(MAKE) --no-print-directory all $(BENCH_BIN)
 	@sh bench/run.sh $(BUILD)
@@ -105,6 +141,6 @@ install: all
 	    -e 's|@PKGS@|$(PKGS)|' clef.pc.in > $(DESTDIR)$(PREFIX)/lib/pkgconfig/clef.pc
 
 clean:
-	rm -rf build build-san
+	rm -rf build build-san build-fuzz
 
 -include $(LIB_OBJ:.o=.d) $(CLI_OBJ:.o=.d) $(BENCH_COMMON_OBJ:.o=.d)

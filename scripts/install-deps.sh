@@ -7,9 +7,14 @@ set -eu
 PKGS="build-essential pkg-config
 libchealpix-dev libcfitsio-dev libfftw3-dev
 liblapacke-dev libopenblas-dev libgsl-dev
-libcjson-dev libcairo2-dev libcmocka-dev
+libcjson-dev libcairo2-dev libcmocka-dev nettle-dev
 fitsverify poppler-utils
 python3 python3-numpy python3-astropy python3-scipy python3-colorspacious"
+# --fuzz: only what the fuzz step needs (clang with libFuzzer and the
+# sanitizer runtimes, LLVM's OpenMP runtime for clang builds).
+if [ "${1:-}" = "--fuzz" ]; then
+    PKGS="clang libclang-rt-14-dev libfuzzer-14-dev libomp-14-dev"
+fi
 
 missing=""
 for p in $PKGS; do

@@ -1,10 +1,13 @@
 /* Status codes, last-error messages, log and progress hooks, atomic output
  * files, and the wall clock. */
-#define _DEFAULT_SOURCE /* madvise */
+#define _GNU_SOURCE /* madvise, mkstemps */
 #include "core_impl.h"
 
+#include <dirent.h>
 #include <errno.h>
 #include <fcntl.h>
+#include <pthread.h>
+#include <signal.h>
 #include <stdarg.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -12,6 +15,8 @@
 #include <time.h>
 #include <sys/mman.h>
 #include <sys/stat.h>
+#include <sys/statvfs.h>
+#include <sys/sysinfo.h>
 #include <unistd.h>
 
 static clef_log_fn log_fn;
@@ -75,6 +80,205 @@ void clef_progress(const char *stage, double fraction)
 {
     if (progress_fn)
         progress_fn(progress_user, stage, fraction);
+}
+
+/* ------------------------------------------------------------------------
+ * Temporary files
+ *
+ * Every temporary clef creates is named
+ *     <folder>/.<label>.clef-tmp.<pid>.<host>.<6 random characters><suffix>
+ * (label: the target's base name, possibly shortened; omitted for gzip
+ * scratch files, whose names must hold ".gz" only at the end), so that
+ *  - a signal handler can remove the live ones (clef_temp_remove_all: the
+ *    registry below, read without locks, unlink() only), and
+ *  - a later run removes stale ones of its own: those of this host whose
+ *    process is gone (kill(pid, 0) fails with ESRCH), found when it next
+ *    creates a temporary in that folder.  Temporaries of other hosts (a
+ *    shared file system) are left alone: their process cannot be checked.
+ * ------------------------------------------------------------------------ */
+
+#define TEMP_TAG ".clef-tmp."
+#define MAX_TEMPS 64
+
+static struct temp_slot {
+    volatile sig_atomic_t used;
+    char path[4096];
+} temps[MAX_TEMPS];
+static pthread_mutex_t temps_lock = PTHREAD_MUTEX_INITIALIZER;
+
+/* Folders already swept for stale temporaries by this process. */
+#define MAX_SWEPT 16
+static char swept[MAX_SWEPT][512];
+static int nswept;
+
+static void temp_register(const char *path)
+{
+    pthread_mutex_lock(&temps_lock);
+    for (int i = 0; i < MAX_TEMPS; i++)
+        if (!temps[i].used) {
+            snprintf(temps[i].path, sizeof temps[i].path, "%s", path);
+            __atomic_store_n(&temps[i].used, 1, __ATOMIC_RELEASE);
+            break;
+        }
+    pthread_mutex_unlock(&temps_lock);
+}
+
+void clef_temp_forget(const char *path)
+{
+    pthread_mutex_lock(&temps_lock);
+    for (int i = 0; i < MAX_TEMPS; i++)
+        if (temps[i].used && !strcmp(temps[i].path, path)) {
+            __atomic_store_n(&temps[i].used, 0, __ATOMIC_RELEASE);
+            break;
+        }
+    pthread_mutex_unlock(&temps_lock);
+}
+
+void clef_temp_remove_all(void)
+{
+    for (int i = 0; i < MAX_TEMPS; i++)
+        if (__atomic_load_n(&temps[i].used, __ATOMIC_ACQUIRE))
+            unlink(temps[i].path);
+}
+
+/* This host's name reduced to [A-Za-z0-9-] (at most 40 characters), so a
+ * temporary name parses back unambiguously. */
+static void host_tag(char *out, size_t n)
+{
+    char h[256] = "";
+    if (gethostname(h, sizeof h - 1) != 0 || !h[0])
+        snprintf(h, sizeof h, "localhost");
+    size_t k = 0;
+    for (size_t i = 0; h[i] && k + 1 < n && k < 40; i++) {
+        const char ch = h[i];
+        const int ok = (ch >= 'a' && ch <= 'z') || (ch >= 'A' && ch <= 'Z') ||
+                       (ch >= '0' && ch <= '9') || ch == '-';
+        out[k++] = ok ? ch : '-';
+    }
+    out[k] = '\0';
+}
+
+int clef_temp_parse(const char *name, long *pid, char *host, size_t hostn)
+{
+    /* The last tag: a temporary made next to another temporary carries both. */
+    const char *t = NULL;
+    for (const char *p = strstr(name, TEMP_TAG); p; p = strstr(p + 1, TEMP_TAG))
+        t = p;
+    if (!t)
+        return 0;
+    const char *p = t + strlen(TEMP_TAG);
+    char *end;
+    errno = 0;
+    const long v = strtol(p, &end, 10);
+    if (errno || end == p || v <= 0 || *end != '.')
+        return 0;
+    const char *h = end + 1;
+    const char *dot = strchr(h, '.');
+    if (!dot || dot == h || (size_t)(dot - h) >= hostn)
+        return 0;
+    for (const char *q = h; q < dot; q++)
+        if (!((*q >= 'a' && *q <= 'z') || (*q >= 'A' && *q <= 'Z') || (*q >= '0' && *q <= '9') ||
+              *q == '-'))
+            return 0;
+    const char *rnd = dot + 1;
+    for (int i = 0; i < 6; i++)
+        if (!rnd[i] || rnd[i] == '.' || rnd[i] == '/')
+            return 0;
+    if (rnd[6] && strcmp(rnd + 6, ".gz"))
+        return 0;
+    memcpy(host, h, (size_t)(dot - h));
+    host[dot - h] = '\0';
+    *pid = v;
+    return 1;
+}
+
+int clef_temp_sweep(const char *dir)
+{
+    char me[64];
+    host_tag(me, sizeof me);
+    DIR *d = opendir(dir && *dir ? dir : ".");
+    if (!d)
+        return 0;
+    int removed = 0;
+    struct dirent *e;
+    while ((e = readdir(d))) {
+        long pid;
+        char host[64];
+        if (e->d_name[0] != '.' || !clef_temp_parse(e->d_name, &pid, host, sizeof host))
+            continue;
+        if (strcmp(host, me) || pid == (long)getpid())
+            continue;
+        if (kill((pid_t)pid, 0) == 0 || errno != ESRCH)
+            continue; /* alive (or not ours to signal): in use */
+        char path[4608];
+        snprintf(path, sizeof path, "%s/%s", dir && *dir ? dir : ".", e->d_name);
+        struct stat st;
+        if (lstat(path, &st) != 0 || !S_ISREG(st.st_mode))
+            continue;
+        if (unlink(path) == 0) {
+            removed++;
+            clef_log(CLEF_LOG_INFO, "removed stale temporary '%s' (process %ld has ended)", path,
+                     pid);
+        }
+    }
+    closedir(d);
+    return removed;
+}
+
+/* Sweep each folder once per process. */
+static void sweep_once(const char *dir)
+{
+    pthread_mutex_lock(&temps_lock);
+    for (int i = 0; i < nswept; i++)
+        if (!strcmp(swept[i], dir)) {
+            pthread_mutex_unlock(&temps_lock);
+            return;
+        }
+    if (strlen(dir) < sizeof swept[0])
+        snprintf(swept[nswept++ % MAX_SWEPT], sizeof swept[0], "%s", dir);
+    if (nswept > MAX_SWEPT)
+        nswept = MAX_SWEPT;
+    pthread_mutex_unlock(&temps_lock);
+    clef_temp_sweep(dir);
+}
+
+int clef_temp_make(char *out, size_t n, const char *next_to, const char *label, const char *suffix)
+{
+    if (!next_to || !*next_to)
+        CLEF_FAIL(CLEF_EINVAL, "output path is empty");
+    suffix = suffix ? suffix : "";
+    const char *slash = strrchr(next_to, '/');
+    const size_t dirlen = slash ? (size_t)(slash - next_to) + 1 : 0;
+    char dir[4096];
+    snprintf(dir, sizeof dir, "%.*s", dirlen > 1 ? (int)dirlen - 1 : (int)dirlen, next_to);
+    char host[64];
+    host_tag(host, sizeof host);
+    char tail[160];
+    snprintf(tail, sizeof tail, "%s%ld.%s.XXXXXX%s", TEMP_TAG, (long)getpid(), host, suffix);
+    /* One file name is at most NAME_MAX (255) bytes: shorten the label. */
+    size_t lablen = label ? strlen(label) : 0;
+    const size_t room = 255 - 1 - strlen(tail);
+    if (lablen > room)
+        lablen = room;
+    const int len = label ? snprintf(out, n, "%.*s.%.*s%s", (int)dirlen, next_to, (int)lablen,
+                                     label, tail)
+                          : snprintf(out, n, "%.*s%s", (int)dirlen, next_to, tail);
+    if (len < 0 || (size_t)len >= n)
+        CLEF_FAIL(CLEF_EINVAL, "output path too long: '%s'", next_to);
+    sweep_once(dirlen ? dir : ".");
+    const int fd = mkstemps(out, (int)strlen(suffix));
+    if (fd < 0) {
+        const int e = errno;
+        CLEF_FAIL(CLEF_EIO, "cannot create a temporary file next to '%s': %s", next_to,
+                  strerror(e));
+    }
+    temp_register(out);
+    /* mkstemp creates mode 0600; give the output the usual umask-based mode. */
+    mode_t mask = umask(0);
+    umask(mask);
+    fchmod(fd, 0666 & ~mask);
+    close(fd);
+    return CLEF_OK;
 }
 
 /* Paths that name an open descriptor rather than a file: writing them by
@@ -149,27 +353,19 @@ int clef_outfile_begin(clef_outfile *o, const char *path)
         strcpy(o->path, path);
         o->stream = 1;
         const char *dir = getenv("TMPDIR");
-        if (snprintf(o->tmp_path, sizeof o->tmp_path, "%s/.clef-stream.tmp-XXXXXX",
-                     dir && *dir ? dir : "/tmp") >= (int)sizeof o->tmp_path)
+        char where[4096];
+        if (snprintf(where, sizeof where, "%s/stream", dir && *dir ? dir : "/tmp") >=
+            (int)sizeof where)
             CLEF_FAIL(CLEF_EINVAL, "TMPDIR too long: '%s'", dir);
+        CLEF_TRY(clef_temp_make(o->tmp_path, sizeof o->tmp_path, where, "clef-stream", NULL));
     } else {
         CLEF_TRY(resolve_target(path, o->path, sizeof o->path - 32));
-        /* Temporary name in the target's folder: "<dir>/.<base>.tmp-XXXXXX". */
+        /* Temporary in the target's folder, so the final rename cannot
+         * cross file systems. */
         const char *slash = strrchr(o->path, '/');
-        size_t dirlen = slash ? (size_t)(slash - o->path) + 1 : 0;
-        if (snprintf(o->tmp_path, sizeof o->tmp_path, "%.*s.%s.tmp-XXXXXX", (int)dirlen,
-                     o->path, o->path + dirlen) >= (int)sizeof o->tmp_path)
-            CLEF_FAIL(CLEF_EINVAL, "output path too long: '%s'", o->path);
+        const char *base = slash ? slash + 1 : o->path;
+        CLEF_TRY(clef_temp_make(o->tmp_path, sizeof o->tmp_path, o->path, base, NULL));
     }
-    int fd = mkstemp(o->tmp_path);
-    if (fd < 0)
-        CLEF_FAIL(CLEF_EIO, "cannot create a temporary file next to '%s': %s", o->path,
-                  strerror(errno));
-    /* mkstemp creates mode 0600; give the output the usual umask-based mode. */
-    mode_t mask = umask(0);
-    umask(mask);
-    fchmod(fd, 0666 & ~mask);
-    close(fd);
     o->active = 1;
     return CLEF_OK;
 }
@@ -233,16 +429,20 @@ int clef_outfile_commit(clef_outfile *o)
     if (o->stream) {
         const int status = stream_out(o);
         unlink(o->tmp_path);
+        clef_temp_forget(o->tmp_path);
         o->active = 0;
         return status;
     }
     if (rename(o->tmp_path, o->path) != 0) {
         int e = errno;
+        char why[160];
+        clef_write_reason(o->path, e, why, sizeof why);
         unlink(o->tmp_path);
+        clef_temp_forget(o->tmp_path);
         o->active = 0;
-        CLEF_FAIL(CLEF_EIO, "cannot rename '%s' to '%s': %s", o->tmp_path, o->path,
-                  strerror(e));
+        CLEF_FAIL(CLEF_EIO, "cannot write '%s': %s", o->path, why);
     }
+    clef_temp_forget(o->tmp_path);
     o->active = 0;
     return CLEF_OK;
 }
@@ -251,8 +451,56 @@ void clef_outfile_abort(clef_outfile *o)
 {
     if (o && o->active) {
         unlink(o->tmp_path);
+        clef_temp_forget(o->tmp_path);
         o->active = 0;
     }
+}
+
+/* Why writing `target` failed, in words: the condition of its folder's file
+ * system when it explains the failure (full, read-only, folder gone), else
+ * the errno text, else "". */
+const char *clef_write_reason(const char *target, int err, char *buf, size_t n)
+{
+    char dir[4096];
+    const char *slash = target ? strrchr(target, '/') : NULL;
+    if (slash == target)
+        snprintf(dir, sizeof dir, "/");
+    else if (slash)
+        snprintf(dir, sizeof dir, "%.*s", (int)(slash - target), target);
+    else
+        snprintf(dir, sizeof dir, ".");
+    struct statvfs fs;
+    struct stat st;
+    if (err == ENOSPC || err == EDQUOT || err == EROFS || err == EFBIG)
+        snprintf(buf, n, "%s", strerror(err));
+    else if (stat(dir, &st) != 0 || !S_ISDIR(st.st_mode))
+        snprintf(buf, n, "its folder '%s' no longer exists", dir);
+    else if (statvfs(dir, &fs) == 0 && (fs.f_flag & ST_RDONLY))
+        snprintf(buf, n, "%s", strerror(EROFS));
+    else if (statvfs(dir, &fs) == 0 && (fs.f_bavail == 0 || (fs.f_files && fs.f_favail == 0)))
+        snprintf(buf, n, "%s", strerror(ENOSPC));
+    else if (err)
+        snprintf(buf, n, "%s", strerror(err));
+    else
+        snprintf(buf, n, "%s", "");
+    /* "No space left on device" -> lower case, as in the rest of clef's messages */
+    if (buf[0] >= 'A' && buf[0] <= 'Z' && buf[1] >= 'a' && buf[1] <= 'z')
+        buf[0] = (char)(buf[0] - 'A' + 'a');
+    return buf;
+}
+
+int clef_write_fail(int code, const char *target, const char *what, const char *lib_text)
+{
+    const int e = errno;
+    char why[256];
+    clef_write_reason(target, e == ENOSPC || e == EDQUOT || e == EROFS || e == EFBIG ? e : 0, why,
+                      sizeof why);
+    if (*why)
+        return clef_fail(code, "cannot write '%s': %s", target, why);
+    if (lib_text && *lib_text)
+        return clef_fail(code, "cannot write '%s': %s (%s)", target, what, lib_text);
+    return clef_fail(code, "cannot write '%s': %s%s%s", target, what, e ? ": " : "",
+                     e ? strerror(e) : "");
 }
 
 double clef_wtime(void)
@@ -269,6 +517,15 @@ double clef_wtime(void)
  * where the system offers them (Linux madvise; a hint, ignored elsewhere). */
 void *clef_alloc_large(size_t bytes)
 {
+    /* More than the machine's memory and swap can never be backed: refuse
+     * it here rather than let an overcommitted allocation be killed on
+     * first touch (the caller reports CLEF_ENOMEM with the size). */
+    struct sysinfo si;
+    if (sysinfo(&si) == 0) {
+        const double limit = ((double)si.totalram + (double)si.totalswap) * si.mem_unit;
+        if ((double)bytes > limit)
+            return NULL;
+    }
 #ifdef MADV_HUGEPAGE
     const size_t huge = (size_t)2 << 20;
     if (bytes >= 2 * huge) {

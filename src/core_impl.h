@@ -21,6 +21,13 @@ void clef_progress(const char *stage, double fraction);
  * system offers them.  Release with free(). */
 void *clef_alloc_large(size_t bytes);
 
+/* Record a failure to write `target` (never the temporary): "cannot write
+ * '<target>': no space left on device" (or read-only file system, quota,
+ * folder gone) when the file system explains it, else "cannot write
+ * '<target>': <what> (<lib_text>)".  Reads errno; call it before removing
+ * the temporary.  Returns `code`. */
+int clef_write_fail(int code, const char *target, const char *what, const char *lib_text);
+
 /* CLEF_FAIL(code, fmt, ...): format the message, log it, return the code. */
 #define CLEF_FAIL(code, ...) return clef_fail((code), __VA_ARGS__)
 

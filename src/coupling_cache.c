@@ -20,11 +20,14 @@
 #define _XOPEN_SOURCE 700
 #include "coupling_impl.h"
 
+#include <dirent.h>
 #include <errno.h>
+#include <fcntl.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
 #include <sys/stat.h>
+#include <sys/time.h>
 #include <sys/types.h>
 #include <unistd.h>
 
@@ -213,6 +216,9 @@ int clef_cache_load(const char *path, int kind, const char *key, size_t rows, si
         return 0;
     }
     clef_log(CLEF_LOG_INFO, "coupling cache: hit '%s'", path);
+    /* A hit makes the entry the youngest: pruning removes the least
+     * recently used first.  A read-only cache simply keeps its times. */
+    utimensat(AT_FDCWD, path, NULL, 0);
     return 1;
 bad:
     fclose(f);
@@ -220,10 +226,158 @@ bad:
     return 0;
 }
 
+/* ---- size limit ---------------------------------------------------- */
+
+#define DEFAULT_LIMIT (4LL << 30) /* 4 GiB */
+static long long limit_set = -1;  /* clef_cache_set_limit; -1: not set */
+
+int clef_cache_parse_size(const char *s, long long *bytes)
+{
+    if (!s || !*s)
+        CLEF_FAIL(CLEF_EINVAL, "cache size limit: empty value");
+    char *end;
+    errno = 0;
+    const double v = strtod(s, &end);
+    if (errno || end == s || !(v >= 0) || v > 9e18)
+        CLEF_FAIL(CLEF_EINVAL, "cache size limit '%s' is not a size (e.g. 500M, 4G, 0 for none)",
+                  s);
+    double mult = 1;
+    switch (*end) {
+    case 'k': case 'K': mult = 1024.0; end++; break;
+    case 'm': case 'M': mult = 1024.0 * 1024; end++; break;
+    case 'g': case 'G': mult = 1024.0 * 1024 * 1024; end++; break;
+    case 't': case 'T': mult = 1024.0 * 1024 * 1024 * 1024; end++; break;
+    default: break;
+    }
+    if (*end == 'i' && mult > 1)
+        end++;
+    if (*end == 'B' || *end == 'b')
+        end++;
+    if (*end || v * mult > 9e18)
+        CLEF_FAIL(CLEF_EINVAL, "cache size limit '%s' is not a size (e.g. 500M, 4G, 0 for none)",
+                  s);
+    *bytes = (long long)(v * mult);
+    return CLEF_OK;
+}
+
+void clef_cache_set_limit(long long bytes) { limit_set = bytes < 0 ? -1 : bytes; }
+
+long long clef_cache_limit(void)
+{
+    if (limit_set >= 0)
+        return limit_set;
+    const char *env = getenv("CLEF_CACHE_LIMIT");
+    long long v;
+    if (env && *env) {
+        if (clef_cache_parse_size(env, &v) == CLEF_OK)
+            return v;
+        clef_log(CLEF_LOG_WARN, "CLEF_CACHE_LIMIT: %s; using the default 4G", clef_last_error());
+    }
+    return DEFAULT_LIMIT;
+}
+
+/* "<name>-<64 hex digits>.bin": a cache entry of any kind (the names of
+ * clef_cache_path), so new kinds are pruned without a list here. */
+static int is_entry_name(const char *n)
+{
+    const size_t len = strlen(n);
+    if (len < 1 + 1 + 64 + 4 || strcmp(n + len - 4, ".bin") || n[0] == '.')
+        return 0;
+    const char *hex = n + len - 4 - 64;
+    if (hex[-1] != '-')
+        return 0;
+    for (int i = 0; i < 64; i++)
+        if (!((hex[i] >= '0' && hex[i] <= '9') || (hex[i] >= 'a' && hex[i] <= 'f')))
+            return 0;
+    return 1;
+}
+
+typedef struct entry {
+    char name[256];
+    long long size;
+    struct timespec mtime;
+} entry;
+
+static int older_first(const void *a, const void *b)
+{
+    const entry *x = a, *y = b;
+    if (x->mtime.tv_sec != y->mtime.tv_sec)
+        return x->mtime.tv_sec < y->mtime.tv_sec ? -1 : 1;
+    if (x->mtime.tv_nsec != y->mtime.tv_nsec)
+        return x->mtime.tv_nsec < y->mtime.tv_nsec ? -1 : 1;
+    return strcmp(x->name, y->name);
+}
+
+int clef_cache_prune(const char *dir, long long limit, const char *keep)
+{
+    if (limit <= 0)
+        return 0;
+    DIR *d = opendir(dir);
+    if (!d)
+        return 0;
+    entry *e = NULL;
+    size_t n = 0, cap = 0;
+    long long total = 0;
+    struct dirent *de;
+    char path[4096 + 300];
+    while ((de = readdir(d))) {
+        if (!is_entry_name(de->d_name) || strlen(de->d_name) >= sizeof e->name)
+            continue;
+        snprintf(path, sizeof path, "%s/%s", dir, de->d_name);
+        struct stat st;
+        if (lstat(path, &st) != 0 || !S_ISREG(st.st_mode))
+            continue;
+        if (n == cap) {
+            cap = cap ? 2 * cap : 64;
+            entry *ne = realloc(e, cap * sizeof *e);
+            if (!ne)
+                break;
+            e = ne;
+        }
+        snprintf(e[n].name, sizeof e[n].name, "%s", de->d_name);
+        e[n].size = (long long)st.st_size;
+        e[n].mtime = st.st_mtim;
+        total += e[n].size;
+        n++;
+    }
+    closedir(d);
+    int removed = 0;
+    if (total > limit) {
+        qsort(e, n, sizeof *e, older_first);
+        const char *keep_base = keep ? strrchr(keep, '/') : NULL;
+        keep_base = keep_base ? keep_base + 1 : keep;
+        for (size_t i = 0; i < n && total > limit; i++) {
+            if (keep_base && !strcmp(e[i].name, keep_base))
+                continue;
+            snprintf(path, sizeof path, "%s/%s", dir, e[i].name);
+            /* Another run may have pruned it already, or still be reading
+             * it: an open file stays readable after unlink (POSIX). */
+            if (unlink(path) == 0 || errno == ENOENT) {
+                total -= e[i].size;
+                removed++;
+                clef_log(CLEF_LOG_INFO,
+                         "cache: removed the least recently used entry '%s' (%.1f MB) to stay "
+                         "under the limit of %.1f MB", path, 1e-6 * (double)e[i].size,
+                         1e-6 * (double)limit);
+            }
+        }
+    }
+    free(e);
+    return removed;
+}
+
 /* Write atomically; failures are warnings (the result is still good). */
 void clef_cache_store(const char *dir, const char *path, int kind, const char *key,
                         size_t rows, size_t cols, const double *data)
 {
+    const long long limit = clef_cache_limit();
+    const long long bytes = (long long)(CACHE_HEADER + rows * cols * sizeof *data);
+    if (limit > 0 && bytes > limit) {
+        clef_log(CLEF_LOG_WARN, "cache: not stored: the entry (%.1f MB) is larger than the cache "
+                 "limit (%.1f MB; --cache-limit, CLEF_CACHE_LIMIT)", 1e-6 * (double)bytes,
+                 1e-6 * (double)limit);
+        return;
+    }
     if (!make_dirs(dir))
         return;
     clef_outfile o;
@@ -253,13 +407,17 @@ void clef_cache_store(const char *dir, const char *path, int kind, const char *k
         ok = (fclose(f) == 0) && ok;
     }
     if (!ok) {
-        clef_log(CLEF_LOG_WARN, "coupling cache: cannot write '%s': %s", o.tmp_path,
-                 strerror(errno));
+        char why[256];
+        clef_write_reason(path, errno, why, sizeof why);
+        clef_log(CLEF_LOG_WARN, "coupling cache: not stored: cannot write '%s': %s", path, why);
         clef_outfile_abort(&o);
         return;
     }
-    if (clef_outfile_commit(&o) != CLEF_OK)
+    if (clef_outfile_commit(&o) != CLEF_OK) {
         clef_log(CLEF_LOG_WARN, "coupling cache: not stored: %s", clef_last_error());
+        return;
+    }
+    clef_cache_prune(dir, limit, path);
 }
 
 int clef_coupling_create_cached(clef_coupling **out, int lmax, const double *wl, int wl_lmax,

@@ -30,8 +30,9 @@ int clef_map_alloc(clef_map **out, int64_t nside)
     m->valid = clef_alloc_large((size_t)m->npix);
     if (!m->pix || !m->valid) {
         clef_map_free(m);
-        CLEF_FAIL(CLEF_ENOMEM, "cannot allocate a map of nside %lld (%lld pixels)",
-                  (long long)nside, (long long)clef_nside_npix(nside));
+        CLEF_FAIL(CLEF_ENOMEM, "cannot allocate a map of nside %lld (%lld pixels, %.3g GB)",
+                  (long long)nside, (long long)clef_nside_npix(nside),
+                  1e-9 * (double)clef_nside_npix(nside) * (sizeof(double) + 1));
     }
     memset(m->pix, 0, (size_t)m->npix * sizeof *m->pix);
     memset(m->valid, 1, (size_t)m->npix);

@@ -8,6 +8,7 @@
  * moves up to a million values, never one pixel. */
 #define _POSIX_C_SOURCE 200809L
 #include "map_impl.h"
+#include "fits_impl.h"
 
 #include <chealpix.h>
 #include <errno.h>
@@ -66,6 +67,7 @@ typedef struct reader {
     double bad_file;     /* BAD_DATA keyword, or the standard sentinel */
     int valcol, pixcol;  /* 1-based; pixcol 0 for implicit tables */
     int64_t nrows, repeat;
+    long long real_size; /* bytes really held (memory files); 0: CFITSIO's file size */
 } reader;
 
 static int reader_fits_fail(reader *r, int fstatus, const char *what)
@@ -429,13 +431,7 @@ static int read_values(reader *r, int col, int64_t e0, int64_t n, double *buf)
 
 static int read_implicit(reader *r, clef_map *m, double *buf)
 {
-    const int64_t total = r->nrows * r->repeat;
-    if (total != r->npix)
-        CLEF_FAIL(CLEF_EFORMAT,
-                  "%s: keyword NSIDE = %lld implies %lld pixels, but column %d holds %lld "
-                  "values (%lld rows x %lld per row)",
-                  r->where, (long long)r->nside, (long long)r->npix, r->valcol, (long long)total,
-                  (long long)r->nrows, (long long)r->repeat);
+    const int64_t total = r->nrows * r->repeat; /* == npix: check_sizes */
     int64_t nbad = 0;
     for (int64_t e0 = 0; e0 < total; e0 += CHUNK) {
         const int64_t n = total - e0 < CHUNK ? total - e0 : CHUNK;
@@ -473,11 +469,6 @@ static int read_explicit(reader *r, clef_map *m, double *buf)
         CLEF_FAIL(CLEF_EFORMAT,
                   "%s: the PIXEL column has %lld values per row but column %d has %lld",
                   r->where, prep, r->valcol, (long long)r->repeat);
-    if (total > r->npix)
-        CLEF_FAIL(CLEF_EFORMAT,
-                  "%s: keyword NSIDE = %lld implies %lld pixels, but the explicit-index table "
-                  "lists %lld",
-                  r->where, (long long)r->nside, (long long)r->npix, (long long)total);
     long long *idx = malloc((size_t)(total < CHUNK ? total : CHUNK) * sizeof *idx + 1);
     unsigned char *seen = calloc((size_t)(r->npix / 8 + 1), 1);
     int status = CLEF_OK;
@@ -534,6 +525,55 @@ fail:
     return status;
 }
 
+/* The table must be able to hold what its header promises, checked before
+ * any allocation of the map's size: an implicit table exactly 12 NSIDE^2
+ * values, an explicit one at most that many; and the file must be long
+ * enough for NAXIS1 x NAXIS2 bytes of rows plus the heap (PCOUNT), so that
+ * a 3 kB file claiming a billion rows is refused at once (CFITSIO itself
+ * only notices when it reaches the missing bytes). */
+static int check_sizes(reader *r)
+{
+    long long naxis1 = 0, pcount = 0, headstart, datastart, dataend;
+    int st = 0;
+    fits_read_key(r->f, TLONGLONG, "NAXIS1", &naxis1, NULL, &st);
+    if (st == 0)
+        fits_read_key(r->f, TLONGLONG, "PCOUNT", &pcount, NULL, &st);
+    if (st == 0)
+        fits_get_hduaddrll(r->f, &headstart, &datastart, &dataend, &st);
+    if (st)
+        return reader_fits_fail(r, st, "cannot read the table layout (NAXIS1, PCOUNT)");
+    const long long size = r->real_size > 0 ? r->real_size : r->f->Fptr->logfilesize;
+    const long long have = size - datastart;
+    if (naxis1 < 0 || pcount < 0 || r->nrows < 0 ||
+        (naxis1 > 0 && r->nrows > (INT64_MAX - pcount) / naxis1))
+        CLEF_FAIL(CLEF_EFORMAT, "%s: table size NAXIS1 = %lld x NAXIS2 = %lld (+ PCOUNT %lld) "
+                  "is out of range", r->where, naxis1, (long long)r->nrows, pcount);
+    const long long need = naxis1 * r->nrows + pcount;
+    if (need > have)
+        CLEF_FAIL(CLEF_EFORMAT,
+                  "%s: the file is truncated: the header promises %lld bytes of table data "
+                  "(NAXIS1 = %lld x NAXIS2 = %lld + PCOUNT %lld) but only %lld follow the header",
+                  r->where, need, naxis1, (long long)r->nrows, pcount, have > 0 ? have : 0);
+    /* Every value takes at least one byte of a row (bit columns aside: at
+     * most 8 per byte), so rows x repeat cannot overflow after the check. */
+    if (r->repeat > 8 * (naxis1 > 0 ? naxis1 : 1))
+        CLEF_FAIL(CLEF_EFORMAT, "%s: column %d repeats %lld values in a row of %lld bytes",
+                  r->where, r->valcol, (long long)r->repeat, naxis1);
+    const int64_t total = r->nrows * r->repeat;
+    if (!r->explicit_index && total != r->npix)
+        CLEF_FAIL(CLEF_EFORMAT,
+                  "%s: keyword NSIDE = %lld implies %lld pixels, but column %d holds %lld "
+                  "values (%lld rows x %lld per row)",
+                  r->where, (long long)r->nside, (long long)r->npix, r->valcol, (long long)total,
+                  (long long)r->nrows, (long long)r->repeat);
+    if (r->explicit_index && total > r->npix)
+        CLEF_FAIL(CLEF_EFORMAT,
+                  "%s: keyword NSIDE = %lld implies %lld pixels, but the explicit-index table "
+                  "lists %lld",
+                  r->where, (long long)r->nside, (long long)r->npix, (long long)total);
+    return CLEF_OK;
+}
+
 static void column_meta(reader *r, clef_map *m)
 {
     char key[FLEN_KEYWORD], val[FLEN_VALUE];
@@ -544,6 +584,81 @@ static void column_meta(reader *r, clef_map *m)
     fits_make_keyn("TUNIT", r->valcol, key, &st);
     if (key_string(r, key, val, &found) == CLEF_OK && found)
         snprintf(m->unit, sizeof m->unit, "%.*s", (int)sizeof m->unit - 1, val);
+}
+
+/* Everything after opening: HDU and column selection, header checks, the
+ * size checks that come before any large allocation, and the values.  The
+ * caller opens and closes r->f. */
+static int read_opened(reader *r, const clef_map_read_opts *opts, clef_map **out)
+{
+    clef_map *m = NULL;
+    double *buf = NULL;
+    int status = CLEF_OK, st = 0;
+    CLEF_CHECK(clef_fits_check_headers(r->f, r->path));
+    CLEF_CHECK(select_hdu(r, opts ? opts->hdu : NULL));
+
+    m = calloc(1, sizeof *m);
+    if (!m) {
+        status = clef_fail(CLEF_ENOMEM, "cannot allocate a map header");
+        goto fail;
+    }
+    m->hdu = r->ext;
+    CLEF_CHECK(read_header(r, opts, m));
+    int ncols = 0;
+    long long nrows = 0;
+    fits_get_num_cols(r->f, &ncols, &st);
+    fits_get_num_rowsll(r->f, &nrows, &st);
+    if (st) {
+        status = reader_fits_fail(r, st, "cannot read the table size");
+        goto fail;
+    }
+    r->nrows = nrows;
+    CLEF_CHECK(select_columns(r, opts ? opts->column : NULL, ncols));
+    CLEF_CHECK(check_column(r, r->valcol, "value column"));
+    if (r->pixcol) {
+        const int64_t vrep = r->repeat;
+        CLEF_CHECK(check_column(r, r->pixcol, "PIXEL column"));
+        r->repeat = vrep;
+    }
+    /* Sizes first, allocation after: a header that promises more than the
+     * file holds, or an NSIDE its table cannot fill, is refused before the
+     * full-sky arrays (9 bytes per pixel, 7.2 GB at NSIDE 8192) exist. */
+    CLEF_CHECK(check_sizes(r));
+
+    /* The pixel arrays come from clef_map_alloc so clef_map_free owns them. */
+    clef_map *px = NULL;
+    status = clef_map_alloc(&px, r->nside);
+    if (status != CLEF_OK) {
+        char why[512];
+        snprintf(why, sizeof why, "%s", clef_last_error());
+        status = clef_fail(status, "%s: %s", r->where, why);
+        goto fail;
+    }
+    m->nside = px->nside;
+    m->npix = px->npix;
+    m->pix = px->pix;
+    m->valid = px->valid;
+    free(px);
+    column_meta(r, m);
+
+    const int64_t nbuf = r->nrows * r->repeat < CHUNK ? r->nrows * r->repeat : CHUNK;
+    buf = malloc((size_t)(nbuf > 0 ? nbuf : 1) * sizeof *buf);
+    if (!buf) {
+        status = clef_fail(CLEF_ENOMEM, "%s: cannot allocate a read buffer of %zu bytes",
+                           r->where, (size_t)(nbuf > 0 ? nbuf : 1) * sizeof *buf);
+        goto fail;
+    }
+    if (r->explicit_index)
+        CLEF_CHECK(read_explicit(r, m, buf));
+    else
+        CLEF_CHECK(read_implicit(r, m, buf));
+    free(buf);
+    *out = m;
+    return CLEF_OK;
+fail:
+    free(buf);
+    clef_map_free(m);
+    return status;
 }
 
 int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *opts)
@@ -560,9 +675,9 @@ int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *op
     r.path = path;
     snprintf(r.where, sizeof r.where, "'%s'", path);
     clef_map *m = NULL;
-    double *buf = NULL;
     int status = CLEF_OK, st = 0;
 
+    CLEF_TRY(clef_fits_check_gzip_file(path));
     /* The disk-file opener takes the name literally (no extended-syntax
      * parsing of brackets) and still decompresses gzip. */
     fits_open_diskfile(&r.f, path, READONLY, &st);
@@ -573,60 +688,13 @@ int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *op
         status = clef_fail(read_status_code(st), "cannot read '%s' as FITS: %s", path, text);
         goto fail;
     }
-    CLEF_CHECK(select_hdu(&r, opts ? opts->hdu : NULL));
-
-    m = calloc(1, sizeof *m);
-    if (!m) {
-        status = clef_fail(CLEF_ENOMEM, "cannot allocate a map header");
-        goto fail;
-    }
-    m->hdu = r.ext;
-    CLEF_CHECK(read_header(&r, opts, m));
-    int ncols = 0;
-    long long nrows = 0;
-    fits_get_num_cols(r.f, &ncols, &st);
-    fits_get_num_rowsll(r.f, &nrows, &st);
-    if (st) {
-        status = reader_fits_fail(&r, st, "cannot read the table size");
-        goto fail;
-    }
-    r.nrows = nrows;
-    CLEF_CHECK(select_columns(&r, opts ? opts->column : NULL, ncols));
-    CLEF_CHECK(check_column(&r, r.valcol, "value column"));
-    if (r.pixcol) {
-        const int64_t vrep = r.repeat;
-        CLEF_CHECK(check_column(&r, r.pixcol, "PIXEL column"));
-        r.repeat = vrep;
-    }
-
-    /* The pixel arrays come from clef_map_alloc so clef_map_free owns them. */
-    clef_map *px = NULL;
-    CLEF_CHECK(clef_map_alloc(&px, r.nside));
-    m->nside = px->nside;
-    m->npix = px->npix;
-    m->pix = px->pix;
-    m->valid = px->valid;
-    free(px);
-    column_meta(&r, m);
-
-    const int64_t nbuf = r.nrows * r.repeat < CHUNK ? r.nrows * r.repeat : CHUNK;
-    buf = malloc((size_t)(nbuf > 0 ? nbuf : 1) * sizeof *buf);
-    if (!buf) {
-        status = clef_fail(CLEF_ENOMEM, "%s: cannot allocate a read buffer", r.where);
-        goto fail;
-    }
-    if (r.explicit_index)
-        CLEF_CHECK(read_explicit(&r, m, buf));
-    else
-        CLEF_CHECK(read_implicit(&r, m, buf));
-
+    CLEF_CHECK(read_opened(&r, opts, &m));
     fits_close_file(r.f, &st);
     r.f = NULL;
     if (st) {
         status = reader_fits_fail(&r, st, "cannot close the file");
         goto fail;
     }
-    free(buf);
     clef_log(CLEF_LOG_INFO, "read %s: nside %lld, %s, %lld of %lld pixels missing", r.where,
              (long long)m->nside, m->file_ordering == CLEF_NESTED ? "NESTED" : "RING",
              (long long)m->nmissing, (long long)m->npix);
@@ -639,7 +707,61 @@ fail:
         fits_close_file(r.f, &st2);
         fits_clear_errmsg();
     }
-    free(buf);
     clef_map_free(m);
+    return status;
+}
+
+int clef_map_read_memory(clef_map **out, const void *data, size_t size, const char *name,
+                         const clef_map_read_opts *opts)
+{
+    if (!out)
+        CLEF_FAIL(CLEF_EINVAL, "clef_map_read_memory: out is NULL");
+    *out = NULL;
+    if (!data || !size)
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' is empty (0 bytes), not a FITS file", name);
+    CLEF_TRY(clef_fits_check_gzip(data, size,
+                                  size >= 4 ? (const unsigned char *)data + size - 4 : NULL,
+                                  (long long)size, name));
+    reader r;
+    memset(&r, 0, sizeof r);
+    r.path = name;
+    snprintf(r.where, sizeof r.where, "'%s'", name);
+    int st = 0;
+    /* CFITSIO's memory driver reads whole 2880-byte records and does not
+     * stop at the end of the buffer it was given (found by fuzz_map: a file
+     * cut inside its last record was read past its end), so it gets a copy
+     * padded with zeros to whole records.  The size checks use the true
+     * length (r.real_size): a cut inside the data is still "truncated". */
+    const size_t padded = (size + 2879) / 2880 * 2880;
+    void *mem = calloc(1, padded);
+    if (!mem)
+        CLEF_FAIL(CLEF_ENOMEM, "'%s': no memory for a %zu-byte copy", name, padded);
+    memcpy(mem, data, size);
+    r.real_size = (long long)size;
+    size_t msize = padded;
+    fits_open_memfile(&r.f, name, READONLY, &mem, &msize, 0, NULL, &st);
+    if (st) {
+        char text[256];
+        clef_map_fits_status(st, text, sizeof text);
+        free(mem);
+        CLEF_FAIL(read_status_code(st), "cannot read '%s' as FITS: %s", name, text);
+    }
+    /* CFITSIO may take the file to be longer than the buffer (a primary
+     * header describing more data than follows; fuzz_map finding), and its
+     * memory driver would then read past the buffer: refuse that here. */
+    if (r.f->Fptr->logfilesize > (long long)padded) {
+        const long long claimed = r.f->Fptr->logfilesize;
+        st = 0;
+        fits_close_file(r.f, &st);
+        fits_clear_errmsg();
+        free(mem);
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' is truncated: its headers describe %lld bytes, but it "
+                  "holds %zu", name, claimed, size);
+    }
+    const int status = read_opened(&r, opts, out);
+    st = 0;
+    fits_close_file(r.f, &st);
+    fits_clear_errmsg();
+    free(mem);
     return status;
 }

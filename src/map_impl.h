@@ -15,4 +15,10 @@
  * clears CFITSIO's message stack so later messages carry no stale text. */
 void clef_map_fits_status(int fstatus, char *buf, size_t n);
 
+/* clef_map_read on a FITS file held in memory (CFITSIO memory file; the
+ * bytes are read in place, never written).  `name` is used in messages.
+ * Used by the fuzz harness (tests/fuzz/fuzz_map.c), so no disk is touched. */
+int clef_map_read_memory(clef_map **out, const void *data, size_t size, const char *name,
+                         const clef_map_read_opts *opts);
+
 #endif

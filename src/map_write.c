@@ -15,12 +15,20 @@
 
 #define CHUNK CLEF_MAP_CHUNK
 
+/* The message names the target, never the temporary; a full disk, a
+ * read-only file system or a vanished folder is said in words instead of
+ * CFITSIO's status number. */
 static int write_fail(int fstatus, const char *path, const char *what)
 {
-    char text[256];
+    const int e = errno;
+    char text[256], why[256];
     clef_map_fits_status(fstatus, text, sizeof text);
-    CLEF_FAIL(fstatus == MEMORY_ALLOCATION ? CLEF_ENOMEM : CLEF_EIO,
-              "cannot write '%s': %s: %s", path, what, text);
+    if (fstatus == MEMORY_ALLOCATION)
+        CLEF_FAIL(CLEF_ENOMEM, "cannot write '%s': %s: %s", path, what, text);
+    clef_write_reason(path, e == ENOSPC || e == EDQUOT || e == EROFS ? e : 0, why, sizeof why);
+    if (*why)
+        CLEF_FAIL(CLEF_EIO, "cannot write '%s': %s", path, why);
+    CLEF_FAIL(CLEF_EIO, "cannot write '%s': %s: %s", path, what, text);
 }
 
 static void write_header(fitsfile *f, const clef_map *m, const clef_map_write_opts *opts,
@@ -47,21 +55,16 @@ static void write_header(fitsfile *f, const clef_map *m, const clef_map_write_op
 /* CFITSIO gzips its output when the first ".gz" in the name ends it (it
  * searches for the first occurrence).  The temporary name from
  * clef_outfile_begin holds the whole output name, so it cannot serve: make a
- * second unique file "<folder>/.clef-XXXXXX.gz", which is moved onto the
- * temporary name once complete. */
+ * second temporary "<folder>/.clef-tmp.<pid>.<host>.XXXXXX.gz" (no label),
+ * moved onto the first once complete. */
 static int gz_temp(const char *tmp_path, char *out, size_t n)
 {
     const char *slash = strrchr(tmp_path, '/');
     const int dirlen = slash ? (int)(slash - tmp_path) + 1 : 0;
-    snprintf(out, n, "%.*s.clef-XXXXXX.gz", dirlen, tmp_path);
-    if (strstr(out, ".gz") != out + strlen(out) - 3)
+    if (dirlen && memmem(tmp_path, (size_t)dirlen, ".gz", 3))
         CLEF_FAIL(CLEF_EUNSUP, "cannot write gzip output into folder '%.*s': its name contains "
                   "'.gz'", dirlen, tmp_path);
-    const int fd = mkstemps(out, 3);
-    if (fd < 0)
-        CLEF_FAIL(CLEF_EIO, "cannot create a temporary file '%s': %s", out, strerror(errno));
-    close(fd);
-    return CLEF_OK;
+    return clef_temp_make(out, n, tmp_path, NULL, ".gz");
 }
 
 int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opts *opts)
@@ -144,10 +147,15 @@ int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opt
     }
     free(buf);
     buf = NULL;
-    if (gz && rename(gz_path, of.tmp_path) != 0) {
-        status = clef_fail(CLEF_EIO, "cannot rename '%s' to '%s': %s", gz_path, of.tmp_path,
-                           strerror(errno));
-        goto fail;
+    if (gz) {
+        if (rename(gz_path, of.tmp_path) != 0) {
+            char why[256];
+            status = clef_fail(CLEF_EIO, "cannot write '%s': %s", path,
+                               clef_write_reason(path, errno, why, sizeof why));
+            goto fail;
+        }
+        clef_temp_forget(gz_path);
+        gz_path[0] = '\0';
     }
     return clef_outfile_commit(&of);
 
@@ -158,8 +166,10 @@ fail:
         fits_clear_errmsg();
     }
     free(buf);
-    if (gz_path[0])
+    if (gz_path[0]) {
         unlink(gz_path);
+        clef_temp_forget(gz_path);
+    }
     clef_outfile_abort(&of);
     return status;
 }

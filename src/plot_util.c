@@ -1,5 +1,6 @@
 /* Shared drawing helpers of the plot module: canvases written atomically,
  * ticks, text, axes and colour scales. */
+#include <errno.h>
 #include <cairo-pdf.h>
 #include <cairo-svg.h>
 #include <math.h>
@@ -87,7 +88,11 @@ int plot_canvas_close(plot_canvas *c)
         }
     }
     if (st != CAIRO_STATUS_SUCCESS) {
+        char why[256];
+        clef_write_reason(c->out.path, errno, why, sizeof why);
         plot_canvas_abort(c);
+        if (st == CAIRO_STATUS_WRITE_ERROR && *why)
+            return clef_fail(CLEF_EIO, "cannot write '%s': %s", c->out.path, why);
         return cairo_fail(c->out.path, st);
     }
     cairo_surface_destroy(c->surface);

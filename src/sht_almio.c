@@ -9,6 +9,7 @@
 
 #include "clef/sht.h"
 #include "core_impl.h"
+#include "fits_impl.h"
 
 #define ROWS_PER_CHUNK 65536
 #define EXTNAME "CLEF_ALM"
@@ -18,6 +19,14 @@ static int fits_error(int code, const char *path, const char *what, int fst)
     char text[FLEN_STATUS];
     fits_get_errstatus(fst, text);
     return clef_fail(code, "%s: %s (CFITSIO status %d: %s)", path, what, fst, text);
+}
+
+static int write_error(const char *path, const char *what, int fst)
+{
+    char text[FLEN_STATUS], lib[FLEN_STATUS + 32];
+    fits_get_errstatus(fst, text);
+    snprintf(lib, sizeof lib, "CFITSIO status %d: %s", fst, text);
+    return clef_write_fail(CLEF_EIO, path, what, lib);
 }
 
 int clef_alm_write(const char *path, int lmax, int mmax, const double complex *alm)
@@ -45,7 +54,7 @@ int clef_alm_write(const char *path, int lmax, int mmax, const double complex *a
     const size_t n = clef_alm_size(lmax, mmax);
     if (fits_create_file(&f, name, &fst) ||
         fits_create_tbl(f, BINARY_TBL, 0, 4, ttype, tform, tunit, EXTNAME, &fst)) {
-        status = fits_error(CLEF_EIO, path, "cannot create the a_lm table", fst);
+        status = write_error(path, "cannot create the a_lm table", fst);
         goto fail;
     }
     long long lv = lmax, mv = mmax;
@@ -55,7 +64,7 @@ int clef_alm_write(const char *path, int lmax, int mmax, const double complex *a
     fits_write_comment(f, "clef a_lm: one row per (l,m), 0<=m<=MMAX, m<=l<=LMAX, m-major; "
                           "a_l,-m = (-1)^m conj(a_lm)", &fst);
     if (fst) {
-        status = fits_error(CLEF_EIO, path, "cannot write the header keywords", fst);
+        status = write_error(path, "cannot write the header keywords", fst);
         goto fail;
     }
     size_t row = 0, filled = 0;
@@ -73,7 +82,7 @@ int clef_alm_write(const char *path, int lmax, int mmax, const double complex *a
                 fits_write_col(f, TDOUBLE, 3, r1, 1, (LONGLONG)filled, re, &fst);
                 fits_write_col(f, TDOUBLE, 4, r1, 1, (LONGLONG)filled, im, &fst);
                 if (fst) {
-                    status = fits_error(CLEF_EIO, path, "cannot write a_lm rows", fst);
+                    status = write_error(path, "cannot write a_lm rows", fst);
                     goto fail;
                 }
                 row += filled;
@@ -84,7 +93,7 @@ int clef_alm_write(const char *path, int lmax, int mmax, const double complex *a
     fits_close_file(f, &fst);
     f = NULL;
     if (fst) {
-        status = fits_error(CLEF_EIO, path, "cannot finish the a_lm file", fst);
+        status = write_error(path, "cannot finish the a_lm file", fst);
         goto fail;
     }
     free(col_l);
@@ -138,10 +147,12 @@ int clef_alm_read(const char *path, int *lmax_out, int *mmax_out, double complex
     unsigned char *seen = NULL;
     int *cl = NULL, *cm = NULL;
     double *re = NULL, *im = NULL;
+    CLEF_TRY(clef_fits_check_gzip_file(path));
     if (fits_open_file(&f, path, READONLY, &fst)) {
         f = NULL;
         return fits_error(CLEF_EIO, path, "cannot open", fst);
     }
+    CLEF_CHECK(clef_fits_check_headers(f, path));
     if (fits_movnam_hdu(f, BINARY_TBL, EXTNAME, 0, &fst)) {
         /* Not ours by name: take the first binary table. */
         fst = 0;

@@ -253,16 +253,16 @@ static int write_text_atomic(const clef_bandpowers *bp, const char *path,
     CLEF_TRY(clef_outfile_begin(&of, path));
     FILE *f = fopen(of.tmp_path, "w");
     if (!f) {
-        const int e = errno;
+        const int code = clef_write_fail(CLEF_EIO, path, "cannot create it", NULL);
         clef_outfile_abort(&of);
-        CLEF_FAIL(CLEF_EIO, "cannot write '%s': %s", of.tmp_path, strerror(e));
+        return code;
     }
     body(f, bp);
     const int bad = ferror(f);
     if (fclose(f) != 0 || bad) {
-        const int e = errno;
+        const int code = clef_write_fail(CLEF_EIO, path, "write error", NULL);
         clef_outfile_abort(&of);
-        CLEF_FAIL(CLEF_EIO, "error writing '%s': %s", path, strerror(e));
+        return code;
     }
     return clef_outfile_commit(&of);
 }

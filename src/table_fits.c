@@ -13,6 +13,7 @@
 #include <unistd.h>
 
 #include "core_impl.h"
+#include "fits_impl.h"
 
 static const char *const fits_units[CLEF_TABLE_NCOLS] = {"", "", "", "uK^2", "uK^2", "uK^2"};
 static const char *const fits_forms[CLEF_TABLE_NCOLS] = {"1J", "1J", "1D", "1D", "1D", "1D"};
@@ -29,6 +30,19 @@ static int fits_fail(int code, int st, const char *path, const char *what)
     fits_get_errstatus(st, text);
     fits_clear_errmsg();
     CLEF_FAIL(code, "'%s': %s (CFITSIO status %d: %s)", path, what, st, text);
+}
+
+/* A write failure: the reason in words when the file system gives one
+ * (clef_write_fail), measured before the temporary is removed. */
+static int write_fits_fail(clef_outfile *of, int st, const char *path, const char *what)
+{
+    char text[FLEN_STATUS], lib[FLEN_STATUS + 32];
+    fits_get_errstatus(st, text);
+    fits_clear_errmsg();
+    snprintf(lib, sizeof lib, "CFITSIO status %d: %s", st, text);
+    const int code = clef_write_fail(CLEF_EIO, path, what, lib);
+    clef_outfile_abort(of);
+    return code;
 }
 
 /* One metadata item as a header card: integers as integers, other numbers
@@ -116,17 +130,14 @@ int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
     fitsfile *f = NULL;
     int st = 0;
     fits_create_diskfile(&f, of.tmp_path, &st);
-    if (st) {
-        clef_outfile_abort(&of);
-        return fits_fail(CLEF_EIO, st, path, "cannot create the FITS file");
-    }
+    if (st)
+        return write_fits_fail(&of, st, path, "cannot create the FITS file");
     write_hdus(f, bp, &st);
     int st_close = 0;
     fits_close_file(f, &st_close);
-    if (st || st_close) {
-        clef_outfile_abort(&of);
-        return fits_fail(CLEF_EIO, st ? st : st_close, path, "cannot write the band-power FITS file");
-    }
+    if (st || st_close)
+        return write_fits_fail(&of, st ? st : st_close, path,
+                               "cannot write the band-power FITS file");
     return clef_outfile_commit(&of);
 }
 
@@ -310,10 +321,12 @@ int clef_table_read_fits(clef_bandpowers **out, const char *path)
     fitsfile *f = NULL;
     int st = 0, status = CLEF_OK;
     clef_bandpowers *bp = NULL;
+    CLEF_TRY(clef_fits_check_gzip_file(path));
     fits_open_diskfile(&f, path, READONLY, &st);
     if (st)
         return fits_fail(st == FILE_NOT_OPENED ? CLEF_EIO : CLEF_EFORMAT, st, path,
                          "cannot open the FITS file");
+    CLEF_CHECK(clef_fits_check_headers(f, path));
     fits_movnam_hdu(f, BINARY_TBL, "BANDPOWER", 0, &st);
     if (st) {
         status = fits_fail(CLEF_EFORMAT, st, path, "no binary table HDU with EXTNAME 'BANDPOWER'");

@@ -219,6 +219,11 @@ int clef_table_read_text(clef_bandpowers **out, const char *path)
                                -n);
             goto fail;
         }
+        if (n > MAX_FIELDS) {
+            status = clef_fail(CLEF_EFORMAT, "'%s' line %ld: more than %d columns", path, line,
+                               MAX_FIELDS);
+            goto fail;
+        }
         /* One header row of column names may precede the data: a row with
          * no number in it (a row with a mistyped number stays an error). */
         int numbers = 0;

@@ -15,6 +15,7 @@
 #include <fitsio.h>
 
 #include "core_impl.h"
+#include "fits_impl.h"
 
 /* Column roles named on the "# columns:" line. */
 enum { COL_OTHER, COL_L, COL_CL, COL_DL };
@@ -211,8 +212,11 @@ static int read_fits_body(const char *path, int lmax, double *cl, unsigned char 
     int fst = 0, status = CLEF_OK, hdutype = 0;
     double *lv = NULL, *v = NULL;
     *file_lmax = -1;
+    CLEF_TRY(clef_fits_check_gzip_file(path));
     if (fits_open_file(&ff, path, READONLY, &fst))
         return fits_status(path, "open", fst);
+    if ((status = clef_fits_check_headers(ff, path)) != CLEF_OK)
+        goto done;
     if (fits_movnam_hdu(ff, BINARY_TBL, "SPECTRUM", 0, &fst)) {
         fst = 0;
         if (fits_movabs_hdu(ff, 2, &hdutype, &fst) || hdutype != BINARY_TBL) {
@@ -357,7 +361,7 @@ static int write_text(const char *tmp, const char *path, int lmax, const double 
 {
     FILE *f = fopen(tmp, "w");
     if (!f)
-        CLEF_FAIL(CLEF_EIO, "cannot write '%s' (temporary for '%s'): %s", tmp, path, strerror(errno));
+        return clef_write_fail(CLEF_EIO, path, "cannot create it", NULL);
     fprintf(f, "# CMB temperature power spectrum written by clef %s\n", CLEF_VERSION);
     if (p)
         fprintf(f,
@@ -370,9 +374,20 @@ static int write_text(const char *tmp, const char *path, int lmax, const double 
     fprintf(f, "# columns: l C_l D_l\n");
     for (int l = 0; l <= lmax; l++)
         fprintf(f, "%d %.10e %.10e\n", l, cl[l], dl_of(cl, l));
-    if (fclose(f) != 0)
-        CLEF_FAIL(CLEF_EIO, "error writing '%s' (temporary for '%s')", tmp, path);
+    const int bad = ferror(f);
+    if (fclose(f) != 0 || bad)
+        return clef_write_fail(CLEF_EIO, path, "write error", NULL);
     return CLEF_OK;
+}
+
+/* A CFITSIO failure while writing: the reason in words when the file system
+ * gives one (clef_write_fail), naming the target. */
+static int fits_write_status(const char *path, const char *what, int fst)
+{
+    char msg[FLEN_STATUS], lib[FLEN_STATUS + 32];
+    fits_get_errstatus(fst, msg);
+    snprintf(lib, sizeof lib, "CFITSIO status %d: %s", fst, msg);
+    return clef_write_fail(CLEF_EIO, path, what, lib);
 }
 
 static int write_fits(const char *tmp, const char *path, int lmax, const double *cl,
@@ -440,7 +455,7 @@ static int write_fits(const char *tmp, const char *path, int lmax, const double 
     free(lcol);
     return CLEF_OK;
 fits_fail:
-    status = fits_status(path, what, fst);
+    status = fits_write_status(path, what, fst);
 fail:
     if (ff) {
         int close_st = 0;

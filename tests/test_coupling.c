@@ -4,6 +4,9 @@
 #include "check.h"
 
 #include <complex.h>
+#include <dirent.h>
+#include <fcntl.h>
+#include <time.h>
 
 #include <chealpix.h>
 #include <omp.h>
@@ -816,6 +819,128 @@ static double taper(double theta, double t1, double t2)
  * (Hivon et al. 2002 eq. for <C~_l>, METHODS.md section 4).  C_l is 1 on
  * even l and 0 on odd l up to lin, so the coupling visibly moves power
  * into odd l: the naive w2 C_l prediction must fail the same test. */
+/* Cache size limit: sizes parsed as documented (powers of 1024, common
+ * practice for memory and file sizes); after a store the folder is brought
+ * under the limit least recently used first, a hit refreshes an entry, the
+ * entry just stored and files that are not entries are never removed, and
+ * an entry larger than the limit is not stored. */
+static void set_age(const char *path, time_t age)
+{
+    struct timespec ts[2];
+    clock_gettime(CLOCK_REALTIME, &ts[0]);
+    ts[0].tv_sec -= age;
+    ts[1] = ts[0];
+    assert_int_equal(utimensat(AT_FDCWD, path, ts, 0), 0);
+}
+
+static void test_cache_limit(void **state)
+{
+    (void)state;
+    long long b;
+    assert_int_equal(clef_cache_parse_size("500M", &b), CLEF_OK);
+    assert_true(b == 500LL << 20);
+    assert_int_equal(clef_cache_parse_size("1.5G", &b), CLEF_OK);
+    assert_true(b == 3LL << 29);
+    assert_int_equal(clef_cache_parse_size("4GiB", &b), CLEF_OK);
+    assert_true(b == 4LL << 30);
+    assert_int_equal(clef_cache_parse_size("123", &b), CLEF_OK);
+    assert_true(b == 123);
+    assert_int_equal(clef_cache_parse_size("0", &b), CLEF_OK);
+    assert_true(b == 0);
+    assert_int_equal(clef_cache_parse_size("12X", &b), CLEF_EINVAL);
+    assert_int_equal(clef_cache_parse_size("-1G", &b), CLEF_EINVAL);
+    assert_int_equal(clef_cache_parse_size("", &b), CLEF_EINVAL);
+    unsetenv("CLEF_CACHE_LIMIT");
+    clef_cache_set_limit(-1);
+    assert_true(clef_cache_limit() == 4LL << 30);
+    setenv("CLEF_CACHE_LIMIT", "2M", 1);
+    assert_true(clef_cache_limit() == 2LL << 20);
+    clef_cache_set_limit(1000);
+    assert_true(clef_cache_limit() == 1000);
+
+    /* Three real entries (M at lmax 40, 60, 80: 13.6, 29.5, 52.2 kB). */
+    const char *dir = test_path("cache-limit");
+    clef_cache_set_limit(0);
+    const int ls[3] = {40, 60, 80};
+    static double wl[161];
+    cap_wl(0.3, 160, wl);
+    for (int i = 0; i < 3; i++) {
+        clef_coupling *c;
+        int hit;
+        assert_int_equal(clef_coupling_create_cached(&c, ls[i], wl, 2 * ls[i], dir, &hit), CLEF_OK);
+        clef_coupling_destroy(c);
+    }
+    char names[3][4200];
+    DIR *d = opendir(dir);
+    assert_non_null(d);
+    struct dirent *e;
+    int n = 0;
+    long long sizes[3];
+    while ((e = readdir(d)))
+        if (e->d_name[0] != '.') {
+            assert_true(n < 3);
+            snprintf(names[n], sizeof names[n], "%s/%s", dir, e->d_name);
+            n++;
+        }
+    closedir(d);
+    assert_int_equal(n, 3);
+    /* order them by size = by lmax */
+    for (int i = 0; i < 3; i++) {
+        struct stat st;
+        assert_int_equal(stat(names[i], &st), 0);
+        sizes[i] = st.st_size;
+    }
+    for (int i = 0; i < 3; i++)
+        for (int j = i + 1; j < 3; j++)
+            if (sizes[j] < sizes[i]) {
+                char tmp[4200];
+                long long s = sizes[i];
+                sizes[i] = sizes[j];
+                sizes[j] = s;
+                memcpy(tmp, names[i], sizeof tmp);
+                memcpy(names[i], names[j], sizeof tmp);
+                memcpy(names[j], tmp, sizeof tmp);
+            }
+    /* ages: lmax 40 oldest, then 80, then 60; a file that is not an entry */
+    set_age(names[0], 300);
+    set_age(names[2], 200);
+    set_age(names[1], 100);
+    char other[4300];
+    snprintf(other, sizeof other, "%s/notes.bin", dir);
+    FILE *f = fopen(other, "w");
+    fputs("not an entry", f);
+    fclose(f);
+    set_age(other, 1000);
+    /* a hit on the oldest (lmax 40) makes it the youngest */
+    clef_coupling *c;
+    int hit = 0;
+    assert_int_equal(clef_coupling_create_cached(&c, 40, wl, 80, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 1);
+    clef_coupling_destroy(c);
+    /* limit just below the total: the least recently used (lmax 80) goes */
+    const long long total = sizes[0] + sizes[1] + sizes[2];
+    assert_int_equal(clef_cache_prune(dir, total - 1, NULL), 1);
+    assert_false(file_exists(names[2]));
+    assert_true(file_exists(names[0]) && file_exists(names[1]) && file_exists(other));
+    /* a limit below everything keeps `keep` */
+    assert_int_equal(clef_cache_prune(dir, 1, names[1]), 1);
+    assert_true(file_exists(names[1]) && !file_exists(names[0]) && file_exists(other));
+    /* a store prunes: limit = the lmax-40 entry alone; storing it removes
+     * the lmax-60 entry and keeps the new one */
+    clef_cache_set_limit(sizes[0]);
+    assert_int_equal(clef_coupling_create_cached(&c, 40, wl, 80, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_destroy(c);
+    assert_true(file_exists(names[0]) && !file_exists(names[1]));
+    /* an entry larger than the limit is not stored */
+    clef_cache_set_limit(1000);
+    assert_int_equal(clef_coupling_create_cached(&c, 60, wl, 120, dir, &hit), CLEF_OK);
+    clef_coupling_destroy(c);
+    assert_false(file_exists(names[1]));
+    clef_cache_set_limit(-1);
+    unsetenv("CLEF_CACHE_LIMIT");
+}
+
 static void test_masked_gaussian_skies(void **state)
 {
     (void)state;
@@ -932,6 +1057,7 @@ int main(void)
         cmocka_unit_test(test_cache_hit_and_keys),
         cmocka_unit_test(test_cache_corrupt_and_mismatch),
         cmocka_unit_test(test_cache_dir),
+        cmocka_unit_test(test_cache_limit),
         cmocka_unit_test(test_masked_gaussian_skies),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);

@@ -10,12 +10,14 @@
 
 #include <chealpix.h>
 #include <dirent.h>
+#include <sys/resource.h>
 #include <fitsio.h>
 #include <gsl/gsl_rng.h>
 #include <gsl/gsl_randist.h>
 #include <gsl/gsl_statistics_double.h>
 
 #include "clef/map.h"
+#include "map_impl.h"
 
 /* ------------------------------------------------------------------------
  * A test-only FITS writer (CFITSIO), able to break every rule on purpose.
@@ -132,7 +134,7 @@ static int no_temporaries(void)
     struct dirent *e;
     int clean = 1;
     while ((e = readdir(d)))
-        if (strstr(e->d_name, ".tmp-"))
+        if (strstr(e->d_name, ".clef-tmp."))
             clean = 0;
     closedir(d);
     return clean;
@@ -596,13 +598,13 @@ static void test_bad_files(void **state)
     write_bytes(trunc, bytes, 2880 + 1000);
     expect_read_fail(trunc, NULL, CLEF_EFORMAT, trunc);
     write_bytes(trunc, bytes, n - 2 * 2880);
-    expect_read_fail(trunc, NULL, CLEF_EFORMAT, "ends early");
+    expect_read_fail(trunc, NULL, CLEF_EFORMAT, "the file is truncated");
 
     /* A truncated gzip stream. */
     assert_int_equal(run_cmd("gzip -c '%s' | head -c 3000 > '%s.gz'", good, trunc), 0);
     char tgz[1100];
     snprintf(tgz, sizeof tgz, "%s.gz", trunc);
-    expect_read_fail(tgz, NULL, CLEF_EFORMAT, "ends early");
+    expect_read_fail(tgz, NULL, CLEF_EFORMAT, "truncated");
 
     /* A FITS file with only an image, and one with an ASCII table. */
     char img[1024];
@@ -871,6 +873,185 @@ static void test_check_mask(void **state)
     clef_map_free(NULL);
 }
 
+/* Resource limits.  A header that promises a huge map from a tiny file is
+ * refused as malformed before any map-sized allocation; a legitimate map
+ * too large for the memory limit is CLEF_ENOMEM with the size asked for.
+ * The child runs under RLIMIT_AS = 1 GiB (as `ulimit -v` does), so a
+ * 7.2 GB allocation attempt would fail there: EFORMAT proves none was made. */
+static void expect_child(const char *path, int code, const char *n1, const char *n2)
+{
+    fflush(NULL);
+    const pid_t pid = fork();
+    assert_true(pid >= 0);
+    if (pid == 0) {
+        const struct rlimit lim = {(rlim_t)1 << 30, (rlim_t)1 << 30};
+        if (setrlimit(RLIMIT_AS, &lim) != 0)
+            _exit(90);
+        clef_map *m = NULL;
+        const int st = clef_map_read(&m, path, NULL);
+        if (st != code || !strstr(clef_last_error(), n1) || (n2 && !strstr(clef_last_error(), n2))) {
+            fprintf(stderr, "%s: expected status %d with '%s' '%s', got %d: %s\n", path, code, n1,
+                    n2 ? n2 : "", st, clef_last_error());
+            _exit(91);
+        }
+        _exit(0);
+    }
+    int ws;
+    assert_int_equal(waitpid(pid, &ws, 0), pid);
+    assert_true(WIFEXITED(ws));
+    assert_int_equal(WEXITSTATUS(ws), 0);
+}
+
+/* Headers CFITSIO 4.2 would overflow a buffer on (tests/fuzz/fuzz_map
+ * finding): an unquoted 70-character TTYPE1 made `clef inspect` abort with
+ * "buffer overflow detected".  Refused from the raw header instead (FITS
+ * standard 4.0 section 7.3.1: TTYPEn is a character string). */
+static void test_unquoted_ttype(void **state)
+{
+    (void)state;
+    const char *good = test_path("ttype-good.fits");
+    const double v[12] = {0};
+    tfile t = {.nside_key = 1, .ordering = "RING", .n = 12, .values = v};
+    write_tfile(good, &t);
+    static char bytes[4 * 2880];
+    FILE *f = fopen(good, "rb");
+    const size_t n = fread(bytes, 1, sizeof bytes, f);
+    fclose(f);
+    int patched = 0;
+    for (size_t c = 2880; c + 80 <= n; c += 80)
+        if (!memcmp(bytes + c, "TTYPE1  =", 9)) {
+            memset(bytes + c + 10, 'a', 70);
+            patched = 1;
+        }
+    assert_true(patched);
+    const char *bad = test_path("ttype-unquoted.fits");
+    write_bytes(bad, bytes, n);
+    expect_read_fail(bad, NULL, CLEF_EFORMAT, "keyword TTYPE1 is not a quoted string");
+    /* a byte outside printable ASCII in a value card */
+    for (size_t c = 2880; c + 80 <= n; c += 80)
+        if (!memcmp(bytes + c, "TTYPE1  =", 9)) {
+            memset(bytes + c + 10, ' ', 70);
+            memcpy(bytes + c + 10, "'SIG\xea'", 6);
+        }
+    write_bytes(bad, bytes, n);
+    expect_read_fail(bad, NULL, CLEF_EFORMAT, "byte 0xea at column 15 is not printable ASCII");
+}
+
+/* clef_map_read_memory (the fuzz harness's entry): CFITSIO's memory driver
+ * read whole 2880-byte records past the end of a buffer cut inside its last
+ * record (fuzz_map finding, ASan heap-buffer-overflow; regression input
+ * tests/fuzz/corpus/fuzz_map/regress-memfile-cut-in-last-record.fits).
+ * Cut in the padding the map reads whole; cut in the data it is truncated. */
+static void test_read_memory(void **state)
+{
+    (void)state;
+    const char *good = test_path("mem-good.fits");
+    double v[48];
+    for (int i = 0; i < 48; i++)
+        v[i] = i;
+    tfile t = {.nside_key = 2, .ordering = "RING", .n = 48, .values = v};
+    write_tfile(good, &t);
+    static char bytes[4 * 2880];
+    FILE *f = fopen(good, "rb");
+    const size_t n = fread(bytes, 1, sizeof bytes, f);
+    fclose(f);
+    assert_int_equal(n, 3 * 2880);
+    char *exact = malloc(n);
+    memcpy(exact, bytes, n);
+    clef_map *m = NULL;
+    assert_int_equal(clef_map_read_memory(&m, exact, n - 1000, "cut-in-padding", NULL), CLEF_OK);
+    assert_true(m->pix[47] == 47.0);
+    clef_map_free(m);
+    m = NULL;
+    assert_int_equal(clef_map_read_memory(&m, exact, 2 * 2880 + 100, "cut-in-data", NULL),
+                     CLEF_EFORMAT);
+    assert_non_null(strstr(clef_last_error(), "the file is truncated"));
+    assert_null(m);
+    free(exact);
+}
+
+/* A gzip file whose trailer claims 4 GB (fuzz_spectrum_text finding:
+ * CFITSIO allocates the claimed size before inflating a byte): refused,
+ * since deflate expands at most 1032:1 (RFC 1952 ISIZE; zlib technical
+ * notes). */
+static void test_gzip_claim(void **state)
+{
+    (void)state;
+    const char *good = test_path("claim.fits");
+    const double v[12] = {0};
+    tfile t = {.nside_key = 1, .ordering = "RING", .n = 12, .values = v};
+    write_tfile(good, &t);
+    assert_int_equal(run_cmd("gzip -c '%s' > '%s.gz'", good, good), 0);
+    char gz[1100];
+    snprintf(gz, sizeof gz, "%s.gz", good);
+    clef_map *m = NULL;
+    assert_int_equal(clef_map_read(&m, gz, NULL), CLEF_OK); /* the genuine file reads */
+    clef_map_free(m);
+    FILE *f = fopen(gz, "r+b");
+    assert_non_null(f);
+    assert_int_equal(fseek(f, -4, SEEK_END), 0);
+    fputc(0xff, f);
+    fputc(0xff, f);
+    fputc(0xff, f);
+    fputc(0xff, f);
+    fclose(f);
+    expect_read_fail(gz, NULL, CLEF_EFORMAT, "claim 4294967295 bytes uncompressed");
+    /* shorter than a gzip header and trailer (a second finding: CFITSIO
+     * read a size field out of the 10-byte header) */
+    static const unsigned char ten[10] = {0x1f, 0x8b, 0x08, 0x29, 0xff, 0x68, 0x45, 0x52, 0xff, 0xff};
+    write_bytes(gz, ten, sizeof ten);
+    expect_read_fail(gz, NULL, CLEF_EFORMAT, "truncated gzip file (10 bytes)");
+}
+
+static void test_resource_limits(void **state)
+{
+    (void)state;
+    const double v[12] = {0};
+    /* NSIDE 8192 over a 12-row table: EFORMAT before allocation. */
+    const char *tiny = test_path("huge-nside-tiny.fits");
+    tfile t = {.nside_key = 8192, .ordering = "RING", .n = 12, .values = v};
+    write_tfile(tiny, &t);
+    expect_read_fail(tiny, NULL, CLEF_EFORMAT, "implies 805306368 pixels");
+
+    /* The same with NAXIS2 raised to 12 x 8192^2 rows in the header: the
+     * table now matches NSIDE but the file is 5 kB. */
+    t.nside_key = 1;
+    write_tfile(tiny, &t);
+    static char bytes[8 * 2880];
+    FILE *f = fopen(tiny, "rb");
+    const size_t n = fread(bytes, 1, sizeof bytes, f);
+    fclose(f);
+    int patched = 0;
+    for (size_t c = 2880; c + 80 <= n; c += 80) {
+        if (!memcmp(bytes + c, "NAXIS2  =", 9)) {
+            memcpy(bytes + c + 10, "           805306368", 20);
+            patched++;
+        }
+        if (!memcmp(bytes + c, "NSIDE   =", 9)) {
+            memcpy(bytes + c + 10, "                8192", 20);
+            patched++;
+        }
+    }
+    assert_int_equal(patched, 2);
+    write_bytes(tiny, bytes, n);
+    expect_read_fail(tiny, NULL, CLEF_EFORMAT, "the file is truncated");
+
+    /* A legitimate partial-sky table of NSIDE 8192 (3 pixels) needs the
+     * full 7.2 GB map: ENOMEM with nside and bytes in the message. */
+    const char *part = test_path("nside8192-partial.fits");
+    const long long idx[3] = {0, 1, 2};
+    tfile p = {.nside_key = 8192, .ordering = "RING", .indxschm = "EXPLICIT", .n = 3,
+               .values = v, .index = idx};
+    write_tfile(part, &p);
+    if (test_sanitize()) {
+        /* AddressSanitizer reserves more address space than the limit. */
+        fprintf(stderr, "skipped: RLIMIT_AS checks under the sanitizer build\n");
+        return;
+    }
+    expect_child(tiny, CLEF_EFORMAT, "the file is truncated", NULL);
+    expect_child(part, CLEF_ENOMEM, "nside 8192", "7.25 GB");
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -889,6 +1070,10 @@ int main(void)
         cmocka_unit_test(test_header_variants),
         cmocka_unit_test(test_write_errors),
         cmocka_unit_test(test_check_mask),
+        cmocka_unit_test(test_resource_limits),
+        cmocka_unit_test(test_read_memory),
+        cmocka_unit_test(test_gzip_claim),
+        cmocka_unit_test(test_unquoted_ttype),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

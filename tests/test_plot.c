@@ -121,7 +121,7 @@ static int rgb_close(const int a[3], const int b[3], int tol)
     return abs(a[0] - b[0]) <= tol && abs(a[1] - b[1]) <= tol && abs(a[2] - b[2]) <= tol;
 }
 
-/* No temporary output ("<name>.tmp-XXXXXX") left in the scratch folder. */
+/* No temporary output (".<name>.clef-tmp.<pid>.<host>.XXXXXX") left in the scratch folder. */
 static int leftover_tmp(void)
 {
     char dir[1024];
@@ -130,7 +130,7 @@ static int leftover_tmp(void)
     DIR *d = opendir(dir);
     int found = 0;
     for (struct dirent *e; d && (e = readdir(d));)
-        if (strstr(e->d_name, ".tmp-"))
+        if (strstr(e->d_name, ".clef-tmp."))
             found = 1;
     if (d)
         closedir(d);

@@ -89,7 +89,7 @@ static int count_tmp_files(const char *dir)
     if (!d)
         return 0;
     for (struct dirent *e; (e = readdir(d));)
-        n += strstr(e->d_name, ".tmp-") != NULL;
+        n += strstr(e->d_name, ".clef-tmp.") != NULL;
     closedir(d);
     return n;
 }
@@ -395,6 +395,12 @@ static void read_errors(void **state)
         {"bad_header2.txt", "a b c\nd e f\n", "line 2", "column 1"},
         {"bad_first.txt", "# x\n1O0 3000 50\n120 3000 50\n", "line 2", "column 1"},
         {"bad_nodata.txt", "# only comments\n\n", "no data rows", NULL},
+        /* 65 fields: read one past the 64-entry field array before the fix
+         * (fuzz_table finding, UBSan; tests/fuzz/corpus/fuzz_table/regress-65-columns.txt) */
+        {"bad_65.txt",
+         "1 2 3 4 5 6 7 8 9 10 11 12 13 14 15 16 17 18 19 20 21 22 23 24 25 26 27 28 29 30 31 32 "
+         "33 34 35 36 37 38 39 40 41 42 43 44 45 46 47 48 49 50 51 52 53 54 55 56 57 58 59 60 61 "
+         "62 63 64 65\n", "line 1", "more than 64 columns"},
     };
     for (size_t i = 0; i < sizeof bad / sizeof bad[0]; i++) {
         const char *p = write_file(bad[i].name, bad[i].text);

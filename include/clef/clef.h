@@ -91,6 +91,35 @@ void clef_outfile_abort(clef_outfile *o); /* no-op when not active */
  * path otherwise. */
 int clef_outfile_check(const char *path);
 
+/* Temporary files (docs/reliability.md).  Every temporary clef creates is
+ * named "<folder>/.<label>.clef-tmp.<pid>.<host>.XXXXXX<suffix>" and kept
+ * in a process-wide registry until it is renamed or removed.
+ *
+ * clef_temp_make: create an empty, registered temporary in the folder of
+ * `next_to` (label NULL: no label; suffix e.g. ".gz" or NULL).  Before the
+ * first temporary in a folder, stale temporaries of this host whose
+ * process has ended are removed (clef_temp_sweep).  CLEF_EIO when the
+ * folder is missing or not writable.
+ * clef_temp_forget: take a renamed or removed temporary off the registry.
+ * clef_temp_remove_all: unlink every registered temporary; only unlink()
+ * is called, so it is safe in a signal handler (the command-line tool
+ * calls it on SIGINT, SIGTERM and SIGHUP).
+ * clef_temp_sweep: remove stale temporaries of this host in `dir` now;
+ * returns how many.  clef_temp_parse: 1 if `name` (a file name) is a clef
+ * temporary, with its pid and host. */
+int clef_temp_make(char *out, size_t n, const char *next_to, const char *label, const char *suffix);
+void clef_temp_forget(const char *path);
+void clef_temp_remove_all(void);
+int clef_temp_sweep(const char *dir);
+int clef_temp_parse(const char *name, long *pid, char *host, size_t hostn);
+
+/* Why writing `target` failed, in words, for messages: "no space left on
+ * device", "disk quota exceeded", "read-only file system", "its folder
+ * '...' no longer exists", or strerror(err) (err may be 0; then "" when
+ * nothing is known).  Looks at the target folder's file system, so call it
+ * before removing the failed temporary.  Returns buf. */
+const char *clef_write_reason(const char *target, int err, char *buf, size_t n);
+
 /* Wall-clock seconds from an arbitrary origin (monotonic), for stage timings. */
 double clef_wtime(void);
 

@@ -138,6 +138,21 @@ int clef_coupling_binned_windows(const clef_coupling_binned *k, const clef_coupl
  * Errors: CLEF_EINVAL when none is set or the name does not fit in n. */
 int clef_coupling_cache_dir(const char *cache_dir, char *buf, size_t n);
 
+/* Cache size limit (docs/coupling.md, "size limit").  After each store,
+ * entries of the folder ("<kind>-<key>.bin" files) beyond the limit are
+ * removed, least recently used first (a hit refreshes an entry's time); an
+ * entry larger than the limit is not stored.  The limit is, in order:
+ * clef_cache_set_limit(bytes) (process-wide; call before threads run, like
+ * clef_set_log; a negative value unsets it), $CLEF_CACHE_LIMIT, or 4 GiB.
+ * 0 means no limit.  clef_cache_parse_size reads "500M", "4G", "1.5T",
+ * "123456" (bytes; K/M/G/T are powers of 1024; "MiB", "GB" accepted):
+ * CLEF_EINVAL otherwise.  clef_cache_prune applies a limit to a folder now,
+ * never removing `keep` (may be NULL), and returns the number removed. */
+void clef_cache_set_limit(long long bytes);
+long long clef_cache_limit(void);
+int clef_cache_parse_size(const char *s, long long *bytes);
+int clef_cache_prune(const char *dir, long long limit, const char *keep);
+
 /* Like clef_coupling_create, but first look for M in the cache folder
  * (key: SHA-256 of lmax, wl_lmax, the W_l bytes and the clef version); on a
  * miss compute it and store it.  *hit (may be NULL) is 1 on a hit.  Cache

@@ -1,16 +1,17 @@
 /* SHA-256 message digests (FIPS 180-4, "Secure Hash Standard", NIST 2015),
  * used for input checksums in run summaries and for coupling-cache keys.
  *
+ * The digest itself comes from GNU Nettle (Debian package nettle-dev), a
+ * maintained, widely reviewed implementation: input checksums and cache
+ * keys are integrity features, so clef does not carry SHA-256 code of its
+ * own.  Nettle picks the x86 SHA extensions at load time when the CPU has
+ * them (its "fat" build; NETTLE_FAT_OVERRIDE selects the portable code).
+ *
  * Incremental use: clef_hash_sha256_init, any number of _update calls, then
  * _final.  One-shot helpers hash a buffer or a whole file.  Digests are 32
  * bytes; the hex form is 64 lower-case characters plus a terminating NUL.
  *
- * On x86-64 CPUs with the SHA extensions the block function uses them
- * (several times faster); setting the environment variable CLEF_NO_SHA_NI
- * before the first digest forces the portable code.
- *
- * Thread safety: no shared state (apart from a CPU-feature flag set once,
- * benignly); a context must not be used by two
+ * Thread safety: no shared state; a context must not be used by two
  * threads at once.
  */
 #ifndef CLEF_HASH_H
@@ -27,13 +28,14 @@ extern "C" {
 
 #define CLEF_SHA256_BYTES 32
 
-/* Streaming state.  Plain struct so that callers can keep it on the stack;
- * its fields are private. */
+/* Streaming state.  Opaque storage large enough for the library's context
+ * (checked at compile time in src/hash.c), so that callers can keep it on
+ * the stack without including Nettle's headers. */
 typedef struct clef_sha256 {
-    uint32_t h[8];
-    uint64_t nbytes;      /* message length so far, in bytes */
-    unsigned char block[64];
-    size_t nblock;        /* bytes waiting in `block` */
+    union {
+        unsigned char bytes[192];
+        uint64_t align_;
+    } opaque_;
 } clef_sha256;
 
 void clef_sha256_init(clef_sha256 *ctx);

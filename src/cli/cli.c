@@ -84,13 +84,25 @@ void cli_warn(const char *fmt, ...)
 int cli_nwarnings(void) { return nwarnings; }
 const char *cli_warning(int i) { return (i >= 0 && i < nwarnings) ? warnings[i] : ""; }
 
-int cli_fail(int status)
+int cli_fail(int status) { return cli_fail_as(status, 0, NULL, NULL); }
+
+int cli_fail_as(int status, int n, const char *const *tmps, const char *const *targets)
 {
     if (progress_shown) {
         fputs("\r\033[K", stderr);
         progress_shown = 0;
     }
-    const char *msg = clef_last_error();
+    /* The library wrote to temporaries the command made; name the outputs. */
+    char msg[4096];
+    snprintf(msg, sizeof msg, "%s", clef_last_error());
+    for (int i = 0; i < n; i++) {
+        const size_t lt = strlen(tmps[i]), lg = strlen(targets[i]);
+        char *p;
+        while (lt && (p = strstr(msg, tmps[i])) && strlen(msg) - lt + lg < sizeof msg) {
+            memmove(p + lg, p + lt, strlen(p + lt) + 1);
+            memcpy(p, targets[i], lg);
+        }
+    }
     fprintf(stderr, "clef: error: %s\n", *msg ? msg : clef_strerror(status));
     switch (status) {
     case CLEF_OK: return CLI_EXIT_OK;
@@ -211,8 +223,10 @@ int cli_write_json(const char *path, const cJSON *j)
     free(text);
     if (bad) {
         const int e = errno;
+        char why[256];
+        clef_write_reason(path, e, why, sizeof why);
         clef_outfile_abort(&of);
-        fprintf(stderr, "clef: error: cannot write '%s': %s\n", path, strerror(e));
+        fprintf(stderr, "clef: error: cannot write '%s': %s\n", path, *why ? why : strerror(e));
         return CLI_EXIT_IO;
     }
     status = clef_outfile_commit(&of);

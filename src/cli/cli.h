@@ -43,6 +43,9 @@ const char *cli_warning(int i);
 
 /* Map a library status to an exit code, printing clef_last_error(). */
 int cli_fail(int status);
+/* The same, with each of the n temporary paths tmps[i] in the message
+ * replaced by the output it stands for, targets[i]. */
+int cli_fail_as(int status, int n, const char *const *tmps, const char *const *targets);
 /* Print "clef <cmd>: <message>" and return CLI_EXIT_USAGE. */
 int cli_usage_error(const char *cmd, const char *fmt, ...)
 #if defined(__GNUC__)
@@ -89,6 +92,13 @@ void cli_text_end(void);
 /* --ordering RING|NESTED (NULL allowed); prints a usage error and returns
  * nonzero otherwise. */
 int cli_check_ordering(const char *cmd, const char *ordering);
+
+/* Inputs changed under a running job (src/cli/cli_inputs.c): record each
+ * input file before reading it; cli_check_inputs() before writing outputs
+ * returns CLI_EXIT_IO (message printed) if any was removed, replaced,
+ * resized or modified since, else CLI_EXIT_OK. */
+void cli_watch_input(const char *path);
+int cli_check_inputs(void);
 
 /* --threads N: set the OpenMP thread count (0 = leave the default). */
 int cli_set_threads(const char *cmd, const char *s);

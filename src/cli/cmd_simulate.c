@@ -114,16 +114,10 @@ static int ends_with_gz(const char *s)
 static int gzip_fits(const char *path)
 {
     char gz[4200], name[4300];
-    const char *slash = strrchr(path, '/');
-    const int dirlen = slash ? (int)(slash - path) + 1 : 0;
-    snprintf(gz, sizeof gz, "%.*s.clef-gzip-XXXXXX.gz", dirlen, path);
-    const int fd = mkstemps(gz, 3);
-    if (fd < 0) {
-        fprintf(stderr, "clef: error: cannot create a temporary file next to '%s': %s\n", path,
-                strerror(errno));
+    if (clef_temp_make(gz, sizeof gz, path, NULL, ".gz") != CLEF_OK) {
+        fprintf(stderr, "clef: error: %s\n", clef_last_error());
         return CLEF_EIO;
     }
-    close(fd);
     snprintf(name, sizeof name, "!%s", gz);
     fitsfile *in = NULL, *out = NULL;
     int st = 0, st2 = 0, st3 = 0;
@@ -149,9 +143,11 @@ static int gzip_fits(const char *path)
         if (st || st2)
             fits_get_errstatus(st ? st : st2, msg);
         unlink(gz);
+        clef_temp_forget(gz);
         fprintf(stderr, "clef: error: cannot gzip-compress '%s': %s\n", path, msg);
         return CLEF_EIO;
     }
+    clef_temp_forget(gz);
     return CLEF_OK;
 }
 
@@ -326,6 +322,7 @@ int cmd_simulate(int argc, char **argv)
     double complex *alm = NULL;
     clef_sht *sht = NULL;
     clef_outfile outs[3];
+    char tmp[4200] = ""; /* the gzip scratch file of the map being written */
     int nouts = 0;
     memset(outs, 0, sizeof outs);
 
@@ -351,6 +348,9 @@ int cmd_simulate(int argc, char **argv)
         exit_code = CLI_EXIT_NOMEM;
         goto done;
     }
+    cli_watch_input(a.cl_file);
+    cli_watch_input(a.beam_file);
+    cli_watch_input(a.hits_file);
     if ((status = load_spectrum(&a, &p, cl)) != CLEF_OK)
         goto fail;
     if (a.beam_file) {
@@ -431,17 +431,27 @@ int cmd_simulate(int argc, char **argv)
             goto fail;
         nouts++;
         cli_verbose("writing %s", name);
-        /* clef_map_write compresses when the name ends in .gz. */
-        char tmp[4200];
-        snprintf(tmp, sizeof tmp, "%s%s", outs[nouts - 1].tmp_path, ends_with_gz(name) ? ".gz" : "");
-        if ((status = clef_map_write(maps[s], tmp, &wo)) != CLEF_OK)
+        /* clef_map_write compresses when the name ends in .gz: write a
+         * registered ".gz" temporary, then move it onto the output's. */
+        snprintf(tmp, sizeof tmp, "%s", outs[nouts - 1].tmp_path);
+        if (ends_with_gz(name) &&
+            (status = clef_temp_make(tmp, sizeof tmp, name, NULL, ".gz")) != CLEF_OK)
             goto fail;
-        if (strcmp(tmp, outs[nouts - 1].tmp_path) && rename(tmp, outs[nouts - 1].tmp_path) != 0) {
-            fprintf(stderr, "clef: error: cannot rename '%s': %s\n", tmp, strerror(errno));
+        status = clef_map_write(maps[s], tmp, &wo);
+        if (strcmp(tmp, outs[nouts - 1].tmp_path)) {
+            if (status == CLEF_OK && rename(tmp, outs[nouts - 1].tmp_path) != 0) {
+                char why[256];
+                fprintf(stderr, "clef: error: cannot write '%s': %s\n", name,
+                        clef_write_reason(name, errno, why, sizeof why));
+                exit_code = CLI_EXIT_IO;
+            }
             unlink(tmp);
-            exit_code = CLI_EXIT_IO;
-            goto done;
+            clef_temp_forget(tmp);
         }
+        if (status != CLEF_OK)
+            goto fail;
+        if (exit_code != CLI_EXIT_OK)
+            goto done;
     }
     if (a.alm_output) {
         if ((status = clef_outfile_begin(&outs[nouts], a.alm_output)) != CLEF_OK)
@@ -455,12 +465,25 @@ int cmd_simulate(int argc, char **argv)
             goto done;
         }
     }
+    if ((exit_code = cli_check_inputs()) != CLI_EXIT_OK)
+        goto done;
     for (int i = 0; i < nouts; i++)
         if ((status = clef_outfile_commit(&outs[i])) != CLEF_OK)
             goto fail;
     goto done;
-fail:
-    exit_code = cli_fail(status);
+fail: {
+    const char *tmps[4], *targets[4];
+    int n = 0;
+    if (tmp[0] && nouts) {
+        tmps[n] = tmp;
+        targets[n++] = outs[nouts - 1].path;
+    }
+    for (int i = 0; i < nouts; i++) {
+        tmps[n] = outs[i].tmp_path;
+        targets[n++] = outs[i].path;
+    }
+    exit_code = cli_fail_as(status, n, tmps, targets);
+}
 done:
     for (int i = 0; i < nouts; i++)
         clef_outfile_abort(&outs[i]);

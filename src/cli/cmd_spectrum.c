@@ -13,6 +13,7 @@
 
 #include "clef/beam.h"
 #include "clef/bins.h"
+#include "clef/coupling.h"
 #include "clef/hash.h"
 #include "clef/map.h"
 #include "clef/peak.h"
@@ -65,7 +66,10 @@ static void help(void)
         "                         observed sky and removed)\n"
         "  --cache-dir DIR        coupling cache folder (default $CLEF_CACHE_DIR,\n"
         "                         $XDG_CACHE_HOME/clef or ~/.cache/clef)\n"
-        "  --no-cache             neither read nor write the coupling cache\n\n"
+        "  --no-cache             neither read nor write the coupling cache\n"
+        "  --cache-limit SIZE     keep the cache folder under SIZE (e.g. 500M, 4G; 0: no\n"
+        "                         limit), removing least recently used entries\n"
+        "                         (default $CLEF_CACHE_LIMIT, else 4G)\n\n"
         "First peak:\n"
         "  --peak-l-min L, --peak-l-max L   search window (default 100..400)\n"
         "  --peak-half-width L    multipoles each side of the fit centre used in the fit\n"
@@ -93,8 +97,9 @@ static void help(void)
 enum {
     OPT_MASK = 256, OPT_MASK2, OPT_HDU, OPT_COLUMN, OPT_COORD, OPT_LMAX, OPT_BINW, OPT_LOGB,
     OPT_BINS, OPT_FWHM, OPT_BEAMF, OPT_NOPIX, OPT_TRANSFER, OPT_NOISE, OPT_THEORY, OPT_ITER,
-    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_PLMIN, OPT_PLMAX, OPT_PHW, OPT_NOPEAK, OPT_FORMAT,
-    OPT_THREADS, OPT_QUIET, OPT_VERBOSE, OPT_HELP, OPT_JSON, OPT_ORDERING, OPT_UNIT, OPT_CALIB
+    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_CACHELIMIT, OPT_PLMIN, OPT_PLMAX, OPT_PHW,
+    OPT_NOPEAK, OPT_FORMAT, OPT_THREADS, OPT_QUIET, OPT_VERBOSE, OPT_HELP, OPT_JSON, OPT_ORDERING,
+    OPT_UNIT, OPT_CALIB
 };
 
 typedef struct args {
@@ -149,6 +154,7 @@ static int parse_args(int argc, char **argv, args *a)
         {"keep-multipoles", no_argument, 0, OPT_KEEP},
         {"cache-dir", required_argument, 0, OPT_CACHE},
         {"no-cache", no_argument, 0, OPT_NOCACHE},
+        {"cache-limit", required_argument, 0, OPT_CACHELIMIT},
         {"peak-l-min", required_argument, 0, OPT_PLMIN},
         {"peak-l-max", required_argument, 0, OPT_PLMAX},
         {"peak-half-width", required_argument, 0, OPT_PHW},
@@ -220,6 +226,13 @@ static int parse_args(int argc, char **argv, args *a)
         case OPT_KEEP: a->keep = 1; break;
         case OPT_CACHE: a->cache_dir = optarg; break;
         case OPT_NOCACHE: a->no_cache = 1; break;
+        case OPT_CACHELIMIT: {
+            long long bytes;
+            if (clef_cache_parse_size(optarg, &bytes) != CLEF_OK)
+                return cli_usage_error(CMD, "--cache-limit: %s", clef_last_error());
+            clef_cache_set_limit(bytes);
+            break;
+        }
         case OPT_PLMIN:
             if (cli_parse_double(CMD, "--peak-l-min", optarg, &a->peak_lmin))
                 return CLI_EXIT_USAGE;
@@ -668,6 +681,8 @@ int cmd_spectrum(int argc, char **argv)
     char paths[5][4096];
     const char *written[5];
     int nwritten = 0;
+    static clef_outfile ofs[5]; /* staged outputs, by slot of paths[] */
+    int begun[5] = {0, 0, 0, 0, 0};
 
     /* Every output is known before anything is read: none may be an input,
      * and every folder must take a new file, or the run stops now. */
@@ -711,6 +726,12 @@ int cmd_spectrum(int argc, char **argv)
     clef_map_read_opts mro = {0};
     mro.ordering = a.ordering;
     const char *files[4] = {a.map[0], a.map[1], a.mask[0], a.mask[1]};
+    const char *others[5] = {a.beam_file, a.transfer_file, a.noise_file, a.theory_file,
+                             a.bins_file};
+    for (int i = 0; i < 4; i++)
+        cli_watch_input(files[i]);
+    for (int i = 0; i < 5; i++)
+        cli_watch_input(others[i]);
     for (int i = 0; i < 4; i++) {
         if (!files[i])
             continue;
@@ -824,39 +845,50 @@ int cmd_spectrum(int argc, char **argv)
             goto fail;
     }
 
-    /* Outputs: each file is written atomically; if one fails, the ones
-     * already written by this run are removed, so a run leaves all or none. */
-    if (a.want_fits) {
-        if ((status = clef_bandpowers_write_fits(res.bp, paths[0])) != CLEF_OK)
+    /* Outputs: each file is first written completely to its own temporary
+     * (registered, so a signal removes it), then all are renamed in one
+     * quick pass, once the inputs are known not to have changed under the
+     * run: a failure or a signal leaves no partial file and, short of a
+     * SIGKILL between two renames, no mix of this run's and older files. */
+    const int want[5] = {a.want_fits, a.want_csv, a.want_csv, a.want_csv && res.bp->win != NULL,
+                         a.want_json};
+    const char *final[5];
+    int nfinal = 0;
+    for (int i = 0; i < 5; i++) {
+        if (!want[i])
+            continue;
+        if ((status = clef_outfile_begin(&ofs[i], paths[i])) != CLEF_OK)
             goto fail;
-        written[nwritten++] = paths[0];
+        begun[i] = 1;
+        final[nfinal++] = paths[i];
     }
-    if (a.want_csv) {
-        if ((status = clef_bandpowers_write_csv(res.bp, paths[1])) != CLEF_OK)
-            goto fail;
-        written[nwritten++] = paths[1];
-        if ((status = clef_bandpowers_write_cov_csv(res.bp, paths[2])) != CLEF_OK)
-            goto fail;
-        written[nwritten++] = paths[2];
-        if (res.bp->win) {
-            if ((status = clef_bandpowers_write_windows_csv(res.bp, paths[3])) != CLEF_OK)
-                goto fail;
-            written[nwritten++] = paths[3];
-        }
-    }
-    if (a.want_json) {
-        const char *all[6];
-        for (int i = 0; i < nwritten; i++)
-            all[i] = written[i];
-        all[nwritten] = paths[4];
+    if (want[0] && (status = clef_bandpowers_write_fits(res.bp, ofs[0].tmp_path)) != CLEF_OK)
+        goto fail;
+    if (want[1] && (status = clef_bandpowers_write_csv(res.bp, ofs[1].tmp_path)) != CLEF_OK)
+        goto fail;
+    if (want[2] && (status = clef_bandpowers_write_cov_csv(res.bp, ofs[2].tmp_path)) != CLEF_OK)
+        goto fail;
+    if (want[3] &&
+        (status = clef_bandpowers_write_windows_csv(res.bp, ofs[3].tmp_path)) != CLEF_OK)
+        goto fail;
+    if (want[4]) {
         json = summary_json(argc, argv, &a, maps, &so, &res, a.mask[1] ? &mm2 : NULL, t_read,
-                            clef_wtime() - t_begin, all, nwritten + 1);
-        const int rc_json = json ? cli_write_json(paths[4], json) : CLI_EXIT_NOMEM;
+                            clef_wtime() - t_begin, final, nfinal);
+        const int rc_json = json ? cli_write_json(ofs[4].tmp_path, json) : CLI_EXIT_NOMEM;
         if (rc_json != CLI_EXIT_OK) {
             rc = rc_json; /* already reported */
             goto fail;
         }
-        written[nwritten++] = paths[4];
+    }
+    if ((rc = cli_check_inputs()) != CLI_EXIT_OK)
+        goto fail;
+    for (int i = 0; i < 5; i++) {
+        if (!begun[i])
+            continue;
+        if ((status = clef_outfile_commit(&ofs[i])) != CLEF_OK)
+            goto fail;
+        begun[i] = 0;
+        written[nwritten++] = paths[i];
     }
     if (cli_verbosity >= 1)
         print_result(cli_text_stream(), &a, &res);
@@ -867,6 +899,9 @@ int cmd_spectrum(int argc, char **argv)
     cli_verbose("time %-10s %8.3f s", "total", clef_wtime() - t_begin);
 
 fail:
+    for (int i = 0; i < 5; i++)
+        if (begun[i])
+            clef_outfile_abort(&ofs[i]);
     if (status != CLEF_OK || rc != CLI_EXIT_OK)
         for (int i = 0; i < nwritten; i++)
             if (!cli_is_stdout(written[i]))
@@ -880,5 +915,15 @@ fail:
     free(theory);
     for (int i = 0; i < 4; i++)
         clef_map_free(maps[i]);
-    return status == CLEF_OK ? rc : cli_fail(status);
+    if (status == CLEF_OK)
+        return rc;
+    /* Library writers wrote to the staged temporaries: name the outputs. */
+    const char *tmps[5], *targets[5];
+    int nt = 0;
+    for (int i = 0; i < 5; i++)
+        if (ofs[i].tmp_path[0]) {
+            tmps[nt] = ofs[i].tmp_path;
+            targets[nt++] = paths[i];
+        }
+    return cli_fail_as(status, nt, tmps, targets);
 }

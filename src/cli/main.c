@@ -1,6 +1,9 @@
 /* clef: entry point and subcommand dispatch. */
+#define _POSIX_C_SOURCE 200809L
+#include <signal.h>
 #include <stdio.h>
 #include <string.h>
+#include <unistd.h>
 
 #include "clef/clef.h"
 #include "cli.h"
@@ -30,11 +33,48 @@ static void usage(FILE *f)
     fprintf(f,
             "\nEvery command takes --help, --quiet, --verbose.\n"
             "Exit codes: 0 ok, 2 usage, 3 invalid input, 4 I/O error, 5 bad file format,\n"
-            "6 numerical failure, 7 unsupported, 8 out of memory, 9 no peak found (peak --require).\n");
+            "6 numerical failure, 7 unsupported, 8 out of memory, 9 no peak found (peak --require);\n"
+            "killed by SIGINT/SIGTERM/SIGHUP after removing temporaries: 130/143/129.\n");
+}
+
+/* SIGINT, SIGTERM, SIGHUP: remove every registered temporary, say so, and
+ * die of the same signal (default action re-raised), so a shell or batch
+ * system sees the usual status: 130, 143, 129 (docs/exit-codes.md).  Only
+ * async-signal-safe calls: unlink (in clef_temp_remove_all), write,
+ * sigaction, raise. */
+static void on_signal(int sig)
+{
+    clef_temp_remove_all();
+    static const char msg[] = "clef: interrupted by a signal; temporary files removed\n";
+    ssize_t ignored = write(STDERR_FILENO, msg, sizeof msg - 1);
+    (void)ignored;
+    struct sigaction sa;
+    memset(&sa, 0, sizeof sa);
+    sa.sa_handler = SIG_DFL;
+    sigemptyset(&sa.sa_mask);
+    sigaction(sig, &sa, NULL);
+    raise(sig);
+}
+
+static void install_signal_handlers(void)
+{
+    static const int sigs[] = {SIGINT, SIGTERM, SIGHUP};
+    struct sigaction sa;
+    memset(&sa, 0, sizeof sa);
+    sa.sa_handler = on_signal;
+    sigfillset(&sa.sa_mask); /* no second handler on top of the first */
+    for (size_t i = 0; i < sizeof sigs / sizeof *sigs; i++) {
+        struct sigaction old;
+        /* A signal ignored by the parent (nohup, a batch system) stays ignored. */
+        if (sigaction(sigs[i], NULL, &old) == 0 && old.sa_handler == SIG_IGN)
+            continue;
+        sigaction(sigs[i], &sa, NULL);
+    }
 }
 
 int main(int argc, char **argv)
 {
+    install_signal_handlers();
     if (argc < 2) {
         usage(stderr);
         return CLI_EXIT_USAGE;

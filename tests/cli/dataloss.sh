@@ -31,7 +31,7 @@ run() {
 # intact FILE SUM WHAT: FILE still has checksum SUM.
 intact() { [ "$(sum "$1")" = "$2" ] || fail "$3: $1 was changed"; }
 no_temporaries() {
-    if ls -A | grep -q '\.tmp-'; then fail "$1: a temporary file was left: $(ls -A | grep '\.tmp-')"; fi
+    if ls -A | grep -q '\.clef-tmp\.'; then fail "$1: a temporary file was left: $(ls -A | grep '\.clef-tmp\.')"; fi
 }
 
 "$C" simulate --quiet --nside 32 --model --seed 2 --splits 2 --noise-depth 40 --output sky.fits \

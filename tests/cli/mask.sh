@@ -121,7 +121,7 @@ expect() {
     set -e
     [ "$rc" -eq "$want" ] || fail "clef mask $* exited $rc, expected $want ($(cat err.txt))"
     [ ! -e out.fits ] || fail "clef mask $* left out.fits"
-    if ls -A | grep -q '\.tmp-'; then fail "clef mask $* left a temporary file"; fi
+    if ls -A | grep -q '\.clef-tmp\.'; then fail "clef mask $* left a temporary file"; fi
     return 0
 }
 printf '1 2 3\n4 5\n' > badholes.txt

@@ -135,7 +135,7 @@ expect 5 "$BIN" plot curvature "$T/bad.json" -o "$T/e12.png"
 for i in 1 2 3 4 5 6 7 8 9 11 12 13; do
     ls "$T"/e$i.* >/dev/null 2>&1 && fail "output e$i left behind"
 done
-ls -a "$T" | grep -q '\.tmp-' && fail "temporary file left behind"
+ls -a "$T" | grep -q '\.clef-tmp\.' && fail "temporary file left behind"
 expect 0 "$BIN" plot --help
 
 rm -rf "$T"

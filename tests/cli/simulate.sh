@@ -150,7 +150,7 @@ expect() {
     for f in out.fits out_split1.fits out_split2.fits; do
         [ -e "$f" ] && fail "simulate $* left $f"
     done
-    ls -a | grep -q '\.tmp-' && fail "simulate $* left a temporary file"
+    ls -a | grep -q '\.clef-tmp\.' && fail "simulate $* left a temporary file"
     return 0
 }
 expect 2 --model --output out.fits                                   # no --nside
