@@ -51,10 +51,10 @@ static int cache_io(const clef_spectrum_opts *o, int kind, const char *what, con
 }
 
 int clef_spectrum_mask_cache(const clef_spectrum_opts *o, const char *key, int lmax_t,
-                             double *wl, int store)
+                             int rows, double *wl, int store)
 {
-    return cache_io(o, CLEF_CACHE_MASK_SPECTRA, "mask spectra", key, 2, (size_t)lmax_t + 1, wl,
-                    store);
+    return cache_io(o, CLEF_CACHE_MASK_SPECTRA, "mask spectra", key, (size_t)rows,
+                    (size_t)lmax_t + 1, wl, store);
 }
 
 void clef_spectrum_deproj_key(const char *mask_key, const int nf[2], int lp, int iterations,

@@ -1,20 +1,37 @@
-/* Gaussian covariance of the decoupled band powers.
+/* Stage "covariance": the joint Gaussian covariance of the decoupled band
+ * powers of every pair of fields.
  *
  * Pseudo-spectra covariance in the narrow-kernel approximation (Efstathiou
- * 2004, MNRAS 349, 603; Garcia-Garcia, Alonso & Bellini 2019, JCAP 11, 043;
- * METHODS.md section 5):
- *   Cov(C~^ab_l, C~^ab_l') = [C^aa C^bb + C^ab C^ab]_{ll'} M[w_a w_b]_ll' / (2l'+1),
+ * 2004, MNRAS 349, 603; Garcia-Garcia, Alonso & Bellini 2019, JCAP 10,
+ * 043, eq. 2.21-2.23 and section 3.2; METHODS.md section 5), for the
+ * pseudo-spectra of fields a, b and c, d:
+ *   Cov(C~^ab_l, C~^cd_l') = [C^ac C^bd]_ll' M[w_a w_c, w_b w_d]_ll' / (2l'+1)
+ *                          + [C^ad C^bc]_ll' M[w_a w_d, w_b w_c]_ll' / (2l'+1),
  * where C are the full-sky spectra as seen by the instrument (beam, pixel
- * window and noise included) and M[w_a w_b] is the coupling matrix built
- * from the power spectrum of the product mask.  The l, l' products are
- * symmetrised as sqrt(C^aa_l C^bb_l C^aa_l' C^bb_l') + C^ab_l C^ab_l', which
- * is exact on the diagonal and reduces to 2 C_l^2 / (2l+1) on the full sky.
- * Propagation: Cov(D) = (K^-1 P) Cov(C~) (K^-1 P)^T.
+ * window and noise included) and M[u, v] is the coupling matrix built from
+ * the cross-spectrum of the two product masks u and v (their eq. 2.22:
+ * each term has its own kernel, not M[w_a w_b] for both).  For one pair
+ * with one mask both kernels are M[w^2].
+ *
+ * Splits: the estimate of pair (a, b) is the mean over its split pairs
+ * (i, j) (i < j for a = b) of C~(a_i, b_j), so its covariance is the mean
+ * over the split pairs of both estimates of the expression above with
+ *   C(a_i, c_k) = S^ac + delta_ac delta_ik N^a,
+ * S the signal spectra and N the noise of one split.  S^ac is estimated by
+ * the mean of the split crosses of a and c, S^aa + N^a by the mean of a's
+ * split auto-spectra (the only estimate for a single map).
+ *
+ * The l, l' products are symmetrised as s_l s_l' with s_l = sqrt|X_l Y_l|
+ * (signed as X_l Y_l unless both are auto-spectra), and X_l X_l' for the
+ * product of one spectrum with itself: exact on the diagonal and 2 C_l^2 /
+ * (2l+1) on the full sky.  Propagation: Cov(D^p, D^q) = (K_p^-1 P) Cov(C~)
+ * (K_q^-1 P)^T.
  *
  * C is estimated from the measured pseudo-spectrum divided by the mask
- * moment mean(w_a w_b), smoothed in D_l by a leave-one-out fit over the
- * neighbouring bins (smooth_estimate), or from a theory C_l times the
- * signal filter plus the noise spectrum. */
+ * moment mean(w_x w_y), smoothed in D_l by a leave-one-out fit over the
+ * neighbouring bins (smooth_estimate), or from a theory C_l times the pair
+ * filter (signal spectra) plus the noise spectrum (a single map's own
+ * auto-spectrum block). */
 #define _DEFAULT_SOURCE /* M_PI */
 #include <cblas.h>
 #include <lapacke.h>
@@ -23,15 +40,7 @@
 #include <string.h>
 
 #include "core_impl.h"
-#include "spectrum_impl.h"
-
-int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
-                           const clef_spectrum_opts *o)
-{
-    if (o->use_cache)
-        return clef_coupling_create_cached(out, lmax, wl, wl_lmax, o->cache_dir, NULL);
-    return clef_coupling_create(out, lmax, wl, wl_lmax);
-}
+#include "estimator_impl.h"
 
 /* Full-sky estimate of one measured pseudo-spectrum for the covariance
  * (docs/method.md section 7).  C_l = pcl_l / w2 (the "improved" narrow-
@@ -119,86 +128,263 @@ static void smooth_estimate(const clef_bins *bins, const double *pcl, double w2,
     free(dmean);
 }
 
-int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
+/* A spectrum of the covariance: fields x <= y, total = 1 for the split
+ * auto-spectra of x (signal plus noise), else the mean of the crosses. */
+typedef struct spec_id {
+    int x, y, total;
+} spec_id;
+
+static spec_id spec(int x, int i, int y, int k)
 {
-    const int lmax = in->lmax, n = lmax + 1;
-    const int nb = clef_bins_count(in->bins);
-    const clef_spectrum_opts *o = in->opts;
-    int status = CLEF_OK;
-    double *c[3] = {NULL, NULL, NULL}, *g = NULL, *x = NULL;
-    clef_coupling *m2 = NULL;
+    spec_id s = {x < y ? x : y, x < y ? y : x, x == y && i == k};
+    return s;
+}
 
-    for (int k = 0; k < 3; k++) {
-        c[k] = malloc((size_t)n * sizeof(double));
-        if (!c[k]) {
-            status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
-            goto fail;
+static int same_id(spec_id a, spec_id b)
+{
+    return a.x == b.x && a.y == b.y && a.total == b.total;
+}
+
+/* One rank-1 term w s_l s_l' of [C C]_ll': kind 1 or 2 (its kernel). */
+typedef struct term {
+    spec_id u, v;
+    int kind;
+    double w;
+} term;
+
+#define MAX_TERMS 64
+
+static int add_term(term *t, int *n, spec_id u, spec_id v, int kind, double w)
+{
+    for (int k = 0; k < *n; k++)
+        if (t[k].kind == kind && ((same_id(t[k].u, u) && same_id(t[k].v, v)) ||
+                                  (same_id(t[k].u, v) && same_id(t[k].v, u)))) {
+            t[k].w += w;
+            return CLEF_OK;
         }
-    }
-    /* c[0] = C^ab, c[1] = C^aa, c[2] = C^bb. */
-    smooth_estimate(in->bins, in->pcl[0], in->w2[0], lmax, !in->cross, c[0]);
-    if (in->cross) {
-        smooth_estimate(in->bins, in->pcl[1], in->w2[1], lmax, 1, c[1]);
-        smooth_estimate(in->bins, in->pcl[2], in->w2[2], lmax, 1, c[2]);
-    } else {
-        memcpy(c[1], c[0], (size_t)n * sizeof(double));
-        memcpy(c[2], c[0], (size_t)n * sizeof(double));
-    }
-    if (o->theory_cl) {
-        if (o->theory_lmax < lmax) {
-            status = clef_fail(CLEF_EINVAL,
-                               "the theory spectrum for the covariance stops at l = %d, below "
-                               "lmax = %d",
-                               o->theory_lmax, lmax);
-            goto fail;
+    if (*n >= MAX_TERMS)
+        CLEF_FAIL(CLEF_EINVAL, "covariance: too many split terms");
+    t[*n].u = u;
+    t[*n].v = v;
+    t[*n].kind = kind;
+    t[*n].w = w;
+    (*n)++;
+    return CLEF_OK;
+}
+
+/* The split pairs (i, j) of the estimate of fields (a, b). */
+static int split_pairs(const clef_estimator *e, int a, int b, int ij[][2])
+{
+    const int ka = e->fields[a].f.nsplits, kb = e->fields[b].f.nsplits;
+    int n = 0;
+    for (int i = 0; i < ka; i++)
+        for (int j = 0; j < kb; j++)
+            if (a != b || ka == 1 || i < j) {
+                ij[n][0] = i;
+                ij[n][1] = j;
+                n++;
+            }
+    return n;
+}
+
+static int collect_terms(const clef_estimator *e, const est_pair *p, const est_pair *q, term *t,
+                         int *nt)
+{
+    int ij[CLEF_FIELD_MAX_SPLITS * CLEF_FIELD_MAX_SPLITS][2];
+    int kl[CLEF_FIELD_MAX_SPLITS * CLEF_FIELD_MAX_SPLITS][2];
+    const int n1 = split_pairs(e, p->a, p->b, ij), n2 = split_pairs(e, q->a, q->b, kl);
+    const double w = 1.0 / ((double)n1 * (double)n2);
+    const int a = p->a, b = p->b, c = q->a, d = q->b;
+    *nt = 0;
+    for (int r = 0; r < n1; r++)
+        for (int s = 0; s < n2; s++) {
+            const int i = ij[r][0], j = ij[r][1], k = kl[s][0], l = kl[s][1];
+            CLEF_TRY(add_term(t, nt, spec(a, i, c, k), spec(b, j, d, l), 1, w));
+            CLEF_TRY(add_term(t, nt, spec(a, i, d, l), spec(b, j, c, k), 2, w));
         }
+    return CLEF_OK;
+}
+
+/* Full-sky estimate of spectrum id over the bins of pair p.  theory_total:
+ * the block of a single map's auto-spectrum with itself, where a theory
+ * spectrum gives the total (signal plus the noise table). */
+static int estimate(clef_estimator *e, const est_pair *p, spec_id id, int theory_total,
+                    double *const *raw, double *c)
+{
+    const int lmax = e->lmax_ext, n = lmax + 1;
+    const clef_spectrum_opts *o = &e->o;
+    const est_field *fx = &e->fields[id.x], *fy = &e->fields[id.y];
+    if (o->theory_cl && (!id.total || theory_total)) {
+        const int same = !memcmp(fx->filter, fy->filter, (size_t)n * sizeof(double));
         for (int l = 0; l <= lmax; l++) {
-            double s = o->theory_cl[l] * in->tl[l];
-            double nl = (o->noise_cl && !in->cross && l <= o->noise_lmax) ? o->noise_cl[l] : 0;
-            c[0][l] = in->cross ? s : s + nl;
-            if (!in->cross)
-                c[1][l] = c[2][l] = c[0][l];
+            const double tl = same ? fx->filter[l] : sqrt(fx->filter[l] * fy->filter[l]);
+            const double s = o->theory_cl[l] * tl;
+            const double nl = (id.total && fx->f.noise_cl && l <= fx->f.noise_lmax)
+                                  ? fx->f.noise_cl[l] : 0;
+            c[l] = id.total ? s + nl : s;
         }
+        return CLEF_OK;
     }
+    const int slot = (id.x * e->nfields + id.y) * 2 + id.total;
+    if (!raw[slot]) {
+        /* raw[] is the caller's table of pseudo-spectra, filled on demand. */
+        double **r = (double **)raw;
+        if (!(r[slot] = malloc((size_t)n * sizeof(double))))
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for the covariance");
+        CLEF_TRY(clef_est_pseudo(e, id.x, id.y, id.total, r[slot]));
+    }
+    const double *wx = e->weights[fx->wid].w, *wy = e->weights[fy->wid].w;
+    double w2 = 0;
+    if (fx->wid == fy->wid) {
+        w2 = e->weights[fx->wid].w2;
+    } else {
+        for (int64_t q = 0; q < e->npix; q++)
+            w2 += wx[q] * wy[q];
+        w2 /= (double)e->npix;
+    }
+    smooth_estimate(p->all_bins, raw[slot], w2, lmax, id.x == id.y, c);
+    return CLEF_OK;
+}
 
-    CLEF_CHECK(clef_spectrum_coupling(&m2, lmax, in->wl2, in->lmax_t, o));
-    const double *m = clef_coupling_matrix(m2);
-    g = clef_alloc_large((size_t)n * n * sizeof *g);
-    x = malloc((size_t)nb * n * sizeof *x);
-    if (!g || !x) {
+/* s_l of one term (above). */
+static void term_vector(const term *t, const double *u, const double *v, int n, double *s)
+{
+    const int same = same_id(t->u, t->v);
+    const int autos = t->u.total && t->v.total;
+    const double sw = sqrt(t->w); /* the term is w s_l s_l' */
+    for (int l = 0; l < n; l++) {
+        if (same && t->kind == 2) {
+            s[l] = sw * u[l];
+            continue;
+        }
+        const double x = u[l] * v[l];
+        const double r = sqrt(fabs(x));
+        s[l] = sw * (autos || x >= 0 ? r : -r);
+    }
+}
+
+/* Covariance block of pairs p and q over their bins (nb_all_p x nb_all_q). */
+static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double *const *raw,
+                 double *out)
+{
+    const int lmax = e->lmax_ext, n = lmax + 1;
+    const int np = p->nb_all, nq = q->nb_all;
+    term t[MAX_TERMS];
+    int nt = 0, status = CLEF_OK;
+    CLEF_TRY(collect_terms(e, p, q, t, &nt));
+    const int wa = e->fields[p->a].wid, wb = e->fields[p->b].wid;
+    const int wc = e->fields[q->a].wid, wd = e->fields[q->b].wid;
+    const clef_coupling *k1 = NULL, *k2 = NULL;
+    CLEF_TRY(clef_est_kernel(e, wa, wc, wb, wd, &k1));
+    CLEF_TRY(clef_est_kernel(e, wa, wd, wb, wc, &k2));
+    const int one = k1 == k2;
+    const int theory_total = p == q && p->a == p->b && e->fields[p->a].f.nsplits == 1;
+    double *s = malloc((size_t)nt * n * sizeof *s), *u = malloc((size_t)n * sizeof *u);
+    double *v = malloc((size_t)n * sizeof *v), *inv = malloc((size_t)n * sizeof *inv);
+    double *g = clef_alloc_large((size_t)n * n * sizeof *g);
+    double *x = malloc((size_t)np * n * sizeof *x);
+    if (!s || !u || !v || !inv || !g || !x) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", lmax);
         goto fail;
     }
-    /* sqrt(C^aa_l C^bb_l C^aa_l' C^bb_l') = s_l s_l', s_l = sqrt|C^aa_l C^bb_l|;
-     * c[1] is overwritten with s_l and c[2] with 1/(2l+1). */
-    for (int l = 0; l < n; l++) {
-        c[1][l] = sqrt(fabs(c[1][l] * c[2][l]));
-        c[2][l] = 1.0 / (2.0 * l + 1.0);
+    for (int k = 0; k < nt; k++) {
+        CLEF_CHECK(estimate(e, p, t[k].u, theory_total, raw, u));
+        CLEF_CHECK(estimate(e, p, t[k].v, theory_total, raw, v));
+        term_vector(&t[k], u, v, n, s + (size_t)k * n);
     }
+    for (int l = 0; l < n; l++)
+        inv[l] = 1.0 / (2.0 * l + 1.0);
+    const double *m1 = clef_coupling_matrix(k1), *m2 = clef_coupling_matrix(k2);
 #pragma omp parallel for schedule(static)
     for (int l = 0; l < n; l++) {
-        const double sl = c[1][l], cl = c[0][l];
-        const double *ml = m + (size_t)l * n;
+        const double *m1l = m1 + (size_t)l * n, *m2l = m2 + (size_t)l * n;
         double *gl = g + (size_t)l * n;
-        for (int lp = 0; lp < n; lp++)
-            gl[lp] = (sl * c[1][lp] + cl * c[0][lp]) * ml[lp] * c[2][lp];
-    }
-    const double *a = clef_coupling_binned_kinv_p(in->kb);
-    /* x = A G, cov = x A^T. */
-    cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, nb, n, n, 1.0, a, n, g, n, 0.0, x, n);
-    cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasTrans, nb, nb, n, 1.0, x, n, a, n, 0.0, cov,
-                nb);
-    for (int i = 0; i < nb; i++)
-        for (int j = i + 1; j < nb; j++) {
-            double s = 0.5 * (cov[(size_t)i * nb + j] + cov[(size_t)j * nb + i]);
-            cov[(size_t)i * nb + j] = cov[(size_t)j * nb + i] = s;
+        for (int lp = 0; lp < n; lp++) {
+            double a1 = 0, a2 = 0;
+            for (int k = 0; k < nt; k++) {
+                const double *sk = s + (size_t)k * n;
+                const double z = sk[l] * sk[lp];
+                if (t[k].kind == 1 || one)
+                    a1 += z;
+                else
+                    a2 += z;
+            }
+            gl[lp] = one ? a1 * m1l[lp] * inv[lp] : (a1 * m1l[lp] + a2 * m2l[lp]) * inv[lp];
         }
-
+    }
+    const double *ap = clef_coupling_binned_kinv_p(p->kb), *aq = clef_coupling_binned_kinv_p(q->kb);
+    /* x = A_p G, out = x A_q^T. */
+    cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, np, n, n, 1.0, ap, n, g, n, 0.0, x, n);
+    cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasTrans, np, nq, n, 1.0, x, n, aq, n, 0.0, out,
+                nq);
+    if (p == q)
+        for (int i = 0; i < np; i++)
+            for (int j = i + 1; j < np; j++) {
+                double z = 0.5 * (out[(size_t)i * np + j] + out[(size_t)j * np + i]);
+                out[(size_t)i * np + j] = out[(size_t)j * np + i] = z;
+            }
 fail:
-    clef_coupling_destroy(m2);
+    free(s);
+    free(u);
+    free(v);
+    free(inv);
     free(g);
     free(x);
-    for (int k = 0; k < 3; k++)
-        free(c[k]);
+    return status;
+}
+
+int clef_est_covariance(clef_estimator *e)
+{
+    const clef_spectrum_opts *o = &e->o;
+    if (o->theory_cl && o->theory_lmax < e->lmax_ext)
+        CLEF_FAIL(CLEF_EINVAL,
+                  "the theory spectrum for the covariance stops at l = %d, below lmax = %d",
+                  o->theory_lmax, e->lmax_ext);
+    const int nb = e->nb, np = e->npairs, nraw = e->nfields * e->nfields * 2;
+    int status = CLEF_OK;
+    double **raw = calloc((size_t)nraw, sizeof *raw);
+    double *tmp = NULL;
+    e->ncov = np * nb;
+    e->cov = calloc((size_t)e->ncov * e->ncov, sizeof *e->cov);
+    if (!raw || !e->cov) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
+        goto fail;
+    }
+    for (int a = 0; a < np; a++) {
+        est_pair *p = &e->pairs[a];
+        for (int b = a; b < np && (b == a || e->joint); b++) {
+            est_pair *q = &e->pairs[b];
+            double *out = NULL;
+            if (b == a) {
+                if (!(out = p->cov_all = malloc((size_t)p->nb_all * p->nb_all * sizeof *out))) {
+                    status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
+                    goto fail;
+                }
+            } else {
+                free(tmp);
+                if (!(out = tmp = malloc((size_t)p->nb_all * q->nb_all * sizeof *out))) {
+                    status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
+                    goto fail;
+                }
+            }
+            CLEF_CHECK(block(e, p, q, raw, out));
+            for (int i = 0; i < nb; i++)
+                for (int j = 0; j < nb; j++) {
+                    const double z = out[(size_t)p->rep[i] * q->nb_all + q->rep[j]];
+                    e->cov[(size_t)(a * nb + i) * e->ncov + b * nb + j] = z;
+                    e->cov[(size_t)(b * nb + j) * e->ncov + a * nb + i] = z;
+                }
+        }
+    }
+fail:
+    if (raw)
+        for (int k = 0; k < nraw; k++)
+            free(raw[k]);
+    free(raw);
+    free(tmp);
+    /* The kernels are done with: the memory of a few n x n matrices. */
+    for (int k = 0; k < e->nkernels; k++)
+        clef_coupling_destroy(e->kernels[k].m);
+    e->nkernels = 0;
     return status;
 }

@@ -2,32 +2,7 @@
 #ifndef CLEF_SPECTRUM_IMPL_H
 #define CLEF_SPECTRUM_IMPL_H
 
-#include "clef/bins.h"
-#include "clef/coupling.h"
 #include "clef/spectrum.h"
-
-/* Inputs of the band-power covariance (spectrum_cov.c). */
-typedef struct clef_spectrum_cov_in {
-    int lmax;                   /* multipoles decoupled */
-    int lmax_t;                 /* multipoles of the mask spectra */
-    int cross;                  /* 1: cross-spectrum of two maps */
-    const clef_bins *bins;
-    const clef_coupling_binned *kb;
-    double *const *pcl;         /* pseudo-spectra before noise subtraction:
-                                   [0] map1 x map2 (or auto), [1] map1 auto, [2] map2 auto */
-    double w2[3];               /* mean of w_a w_b for the pairs of pcl[0..2] */
-    const double *tl;           /* signal filter F B^2 p^2, l = 0..lmax */
-    const double *wl2;          /* spectrum of the product mask w_a w_b, l = 0..lmax_t */
-    const clef_spectrum_opts *opts;
-} clef_spectrum_cov_in;
-
-/* Covariance of the decoupled band powers (nbins x nbins, row-major). */
-int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov);
-
-/* Unbinned coupling matrix of a mask spectrum, through the cache when the
- * options allow it. */
-int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
-                           const clef_spectrum_opts *o);
 
 /* Cache key of the mask spectra: the weights, nside, lmax_t, iterations. */
 void clef_spectrum_mask_key(int64_t nside, int lmax_t, int iterations, const double *w2,
@@ -42,10 +17,11 @@ void clef_spectrum_deproj_key(const char *mask_key, const int nf[2], int lp, int
 int clef_spectrum_deproj_cache(const clef_spectrum_opts *o, const char *key, size_t n,
                                double *payload, int store);
 
-/* The mask spectra W_l and W_l[w_a w_b] (2 x (lmax_t + 1) doubles in wl)
+/* The mask spectra W_l and the covariance kernels (rows x (lmax_t + 1)
+ * doubles in wl: W_l, W_l[w_a w_b] and, for two masks, W_l[w_a^2, w_b^2])
  * in the cache folder under `key`.  store = 0: load, returning 1 on a hit;
  * store = 1: save (returns 0).  Cache problems are warnings, never errors. */
 int clef_spectrum_mask_cache(const clef_spectrum_opts *o, const char *key, int lmax_t,
-                             double *wl, int store);
+                             int rows, double *wl, int store);
 
 #endif

@@ -1,0 +1,82 @@
+/* The estimator of many fields: every requested auto- and cross-spectrum
+ * of a list of fields (field.h) as decoupled band powers, with the joint
+ * Gaussian covariance of all of them (pseudo-C_l method, Hivon et al.
+ * 2002, ApJ 567, 2; covariance after Garcia-Garcia, Alonso & Bellini 2019,
+ * JCAP 10, 043, generalised to four fields: docs/method.md section 8).
+ *
+ * Plan, then execute:
+ *   clef_estimator_create(&e, &opts);      run-wide options (spectrum.h)
+ *   clef_estimator_add_field(e, &field);   as many as needed
+ *   clef_estimator_add_pair(e, "a", "b");  optional: default is every pair a <= b
+ *   clef_estimator_compute(e);             each map is transformed once
+ *   clef_estimator_result(e, k)            band powers of pair k (its table's
+ *                                          covariance is the pair's own block)
+ *   clef_estimator_covariance(e, &n)       joint covariance, n = sum of the pairs' bins
+ *   clef_estimator_destroy(e);
+ *
+ * The run-wide options are those of clef_spectrum_opts except the beam,
+ * transfer and noise entries, which belong to each field.  What depends on
+ * two masks (mask spectra, coupling, deprojection correction, covariance
+ * kernels) is computed once per distinct pair of effective weights, and the
+ * coupling and mask spectra go through the cache folder as for one pair.
+ *
+ * The pair (a, a) of a field with k >= 2 splits is the mean of its
+ * k (k - 1) / 2 split crosses; a pair (a, b) of two fields the mean of all
+ * k_a k_b cross-split spectra.  Neither carries a noise bias.
+ *
+ * clef_spectrum_compute (spectrum.h) is this estimator with one field (an
+ * auto-spectrum) or two (a cross-spectrum) and one pair.
+ */
+#ifndef CLEF_ESTIMATOR_H
+#define CLEF_ESTIMATOR_H
+
+#include "clef/field.h"
+#include "clef/spectrum.h"
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
+/* Most fields of one estimator (pairs: up to n (n + 1) / 2). */
+#define CLEF_ESTIMATOR_MAX_FIELDS 64
+
+typedef struct clef_estimator clef_estimator;
+
+/* opts may be NULL (defaults); it is copied (its bins and theory pointers are
+ * borrowed).  joint = 1 also computes the cross-pair blocks of the joint
+ * covariance (each pair's own block is always computed). */
+int clef_estimator_create(clef_estimator **out, const clef_spectrum_opts *opts, int joint);
+void clef_estimator_destroy(clef_estimator *e); /* NULL is a no-op */
+
+/* Errors: CLEF_EINVAL (no name, a duplicated name, nsplits outside
+ * 1..CLEF_FIELD_MAX_SPLITS, a missing map or mask, spin other than 0,
+ * too many fields). */
+int clef_estimator_add_field(clef_estimator *e, const clef_field *f);
+/* Request the pair of the fields named a and b (a may equal b).  Errors:
+ * CLEF_EINVAL (a name no field has, a pair requested twice). */
+int clef_estimator_add_pair(clef_estimator *e, const char *a, const char *b);
+
+/* Errors: those of clef_spectrum_compute, naming the field at fault. */
+int clef_estimator_compute(clef_estimator *e);
+
+int clef_estimator_nfields(const clef_estimator *e);
+int clef_estimator_npairs(const clef_estimator *e);
+/* Field indices of pair k. */
+void clef_estimator_pair_fields(const clef_estimator *e, int k, int *a, int *b);
+const char *clef_estimator_field_name(const clef_estimator *e, int i);
+/* The result of pair k (owned by the estimator). */
+const clef_spectrum_result *clef_estimator_result(const clef_estimator *e, int k);
+/* Move the result of pair k to *out (the estimator keeps an empty one). */
+void clef_estimator_take_result(clef_estimator *e, int k, clef_spectrum_result *out);
+/* Joint covariance of the reported band powers D_b of all pairs, pairs in
+ * order, n x n row-major (n = npairs x nbins); NULL before compute.
+ * Cross-pair blocks are 0 unless the estimator was created with joint = 1. */
+const double *clef_estimator_covariance(const clef_estimator *e, int *n);
+/* Spherical-harmonic analyses of maps (each split map once) and of
+ * weights and weight products (0 when the mask spectra came from the cache). */
+void clef_estimator_transforms(const clef_estimator *e, int *maps, int *masks);
+
+#ifdef __cplusplus
+}
+#endif
+#endif
