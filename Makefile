@@ -10,7 +10,7 @@ CFLAGS   ?= -O3 -g
 WERROR   ?=
 PREFIX   ?= /usr/local
 
-PKGS     := chealpix cfitsio fftw3 lapacke openblas gsl libcjson cairo nettle
+PKGS     := chealpix cfitsio fftw3 lapacke openblas gsl libcjson cairo nettle yaml-0.1
 TESTPKGS := cmocka
 
 PKGCFLAGS := $(shell pkg-config --cflags $(PKGS) 2>/dev/null)

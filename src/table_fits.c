@@ -61,12 +61,22 @@ static void write_meta_card(fitsfile *f, const clef_meta *m, int *st)
     }
 }
 
-static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
+static void write_primary(fitsfile *f, int *st)
 {
-    const LONGLONG n = bp->nbins;
     fits_create_img(f, BYTE_IMG, 0, NULL, st);
     fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
     fits_write_date(f, st);
+}
+
+/* The table, covariance and window HDUs of one band-power set; ext NULL:
+ * the names BANDPOWER, BANDCOV, BANDWIN, else those followed by " ext". */
+static void write_set(fitsfile *f, const clef_bandpowers *bp, const char *ext, int *st)
+{
+    const LONGLONG n = bp->nbins;
+    char en[3][FLEN_VALUE];
+    static const char *const base[3] = {"BANDPOWER", "BANDCOV", "BANDWIN"};
+    for (int i = 0; i < 3; i++)
+        snprintf(en[i], sizeof en[i], "%s%s%.56s", base[i], ext ? " " : "", ext ? ext : "");
 
     char *ttype[CLEF_TABLE_NCOLS], *tform[CLEF_TABLE_NCOLS], *tunit[CLEF_TABLE_NCOLS];
     for (int k = 0; k < CLEF_TABLE_NCOLS; k++) {
@@ -74,7 +84,7 @@ static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
         tform[k] = (char *)fits_forms[k];
         tunit[k] = (char *)fits_units[k];
     }
-    fits_create_tbl(f, BINARY_TBL, n, CLEF_TABLE_NCOLS, ttype, tform, tunit, "BANDPOWER", st);
+    fits_create_tbl(f, BINARY_TBL, n, CLEF_TABLE_NCOLS, ttype, tform, tunit, en[0], st);
     for (int k = 0; k < CLEF_TABLE_NCOLS; k++) {
         char key[FLEN_KEYWORD];
         snprintf(key, sizeof key, "TTYPE%d", k + 1);
@@ -100,7 +110,7 @@ static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
     if (bp->cov) {
         long naxes[2] = {bp->nbins, bp->nbins};
         fits_create_img(f, DOUBLE_IMG, 2, naxes, st);
-        fits_write_key_str(f, "EXTNAME", "BANDCOV", "covariance of D_BAND between bins", st);
+        fits_write_key_str(f, "EXTNAME", en[1], "covariance of D_BAND between bins", st);
         fits_write_key_str(f, "BUNIT", "uK^4", "unit of the covariance", st);
         fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
         fits_write_img(f, TDOUBLE, 1, n * n, bp->cov, st);
@@ -110,7 +120,7 @@ static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
          * data[b, l] = W_bl (docs/formats-spectrum.md). */
         long naxes[2] = {bp->win_lmax + 1, bp->nbins};
         fits_create_img(f, DOUBLE_IMG, 2, naxes, st);
-        fits_write_key_str(f, "EXTNAME", "BANDWIN", "band-power window functions W_bl", st);
+        fits_write_key_str(f, "EXTNAME", en[2], "band-power window functions W_bl", st);
         fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
         fits_write_key_lng(f, "WINLMIN", 0, "multipole of the first column", st);
         fits_write_key_lng(f, "WINLMAX", bp->win_lmax, "multipole of the last column", st);
@@ -119,9 +129,45 @@ static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
     }
 }
 
-int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
+static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
 {
-    CLEF_TRY(clef_table_check(bp, path));
+    write_primary(f, st);
+    write_set(f, bp, NULL, st);
+}
+
+typedef struct fits_job {
+    const clef_bandpowers *bp;
+    const clef_bandpowers *const *set;
+    const char *const *names;
+    int n;
+    const double *cov;
+    int ncov;
+} fits_job;
+
+static void write_job(fitsfile *f, const fits_job *j, int *st)
+{
+    if (j->bp) {
+        write_hdus(f, j->bp, st);
+        return;
+    }
+    write_primary(f, st);
+    fits_write_key_lng(f, "NPAIRS", j->n, "band-power sets (pairs of fields) in this file", st);
+    for (int k = 0; k < j->n && !*st; k++)
+        write_set(f, j->set[k], j->names[k], st);
+    if (j->cov && !*st) {
+        long naxes[2] = {j->ncov, j->ncov};
+        fits_create_img(f, DOUBLE_IMG, 2, naxes, st);
+        fits_write_key_str(f, "EXTNAME", "JOINTCOV", "covariance of all pairs' D_BAND", st);
+        fits_write_key_str(f, "BUNIT", "uK^4", "unit of the covariance", st);
+        fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
+        fits_write_key_lng(f, "NPAIRS", j->n, "pairs, in the order of the BANDPOWER HDUs", st);
+        fits_write_key_lng(f, "NBINS", j->set[0]->nbins, "bins per pair", st);
+        fits_write_img(f, TDOUBLE, 1, (LONGLONG)j->ncov * j->ncov, (double *)j->cov, st);
+    }
+}
+
+static int write_fits_job(const fits_job *j, const char *path)
+{
     clef_outfile of;
     CLEF_TRY(clef_outfile_begin(&of, path));
     /* The disk-file entry point takes the name literally (no extended
@@ -132,13 +178,44 @@ int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
     fits_create_diskfile(&f, of.tmp_path, &st);
     if (st)
         return write_fits_fail(&of, st, path, "cannot create the FITS file");
-    write_hdus(f, bp, &st);
+    write_job(f, j, &st);
     int st_close = 0;
     fits_close_file(f, &st_close);
     if (st || st_close)
         return write_fits_fail(&of, st ? st : st_close, path,
                                "cannot write the band-power FITS file");
     return clef_outfile_commit(&of);
+}
+
+int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
+{
+    CLEF_TRY(clef_table_check(bp, path));
+    fits_job j = {0};
+    j.bp = bp;
+    return write_fits_job(&j, path);
+}
+
+int clef_bandpowers_write_fits_set(const clef_bandpowers *const *bp, const char *const *names,
+                                   int n, const double *cov, int ncov, const char *path)
+{
+    if (n < 1)
+        CLEF_FAIL(CLEF_EINVAL, "%s: no band powers to write", path);
+    for (int k = 0; k < n; k++) {
+        CLEF_TRY(clef_table_check(bp[k], path));
+        if (bp[k]->nbins != bp[0]->nbins)
+            CLEF_FAIL(CLEF_EINVAL, "%s: pair '%s' has %d bins, pair '%s' %d", path, names[k],
+                      bp[k]->nbins, names[0], bp[0]->nbins);
+    }
+    if (cov && ncov != n * bp[0]->nbins)
+        CLEF_FAIL(CLEF_EINVAL, "%s: joint covariance of %d rows for %d pairs of %d bins", path,
+                  ncov, n, bp[0]->nbins);
+    fits_job j = {0};
+    j.set = bp;
+    j.names = names;
+    j.n = n;
+    j.cov = cov;
+    j.ncov = ncov;
+    return write_fits_job(&j, path);
 }
 
 /* ---- reading ----------------------------------------------------------- */

@@ -121,6 +121,16 @@ int cmd_convert(int argc, char **argv);
 int cmd_simulate(int argc, char **argv);
 int cmd_peak(int argc, char **argv);
 int cmd_spectrum(int argc, char **argv);
+/* clef spectrum --run FILE: many fields from a run file (cmd_spectrum_run.c). */
+int cmd_spectrum_run(int argc, char **argv);
+/* Tables indexed by l for the spectrum command (cmd_spectrum.c): the last
+ * multipole of a file (-1: unreadable), the multipole to read it to (its
+ * end when below lread), and readers of l = 0..lmax (NULL + *status on
+ * failure). */
+int cli_text_last_l(const char *path);
+int cli_table_lmax(const char *path, int lread);
+double *cli_read_spectrum_file(const char *path, int lmax, int *status);
+double *cli_read_profile_file(const char *path, int lmax, int *status);
 int cmd_model(int argc, char **argv);
 int cmd_geometry(int argc, char **argv);
 int cmd_mask(int argc, char **argv);

@@ -327,7 +327,7 @@ static void default_prefix(const char *map, char *buf, size_t n)
 /* The largest multipole of a spectrum file (text or FITS), else of the
  * first column of a text table ('#' comments), or -1 if none can be read;
  * the table's own reader reports any error in detail. */
-static int text_last_l(const char *path)
+int cli_text_last_l(const char *path)
 {
     /* Spectrum files (text or FITS) say it through their own reader. */
     int flmax = -1;
@@ -355,13 +355,13 @@ static int text_last_l(const char *path)
 
 /* Tables indexed by l are read up to `lread`, or to their own end when that
  * comes first (the default lmax and the coupling range then stop there). */
-static int table_lmax(const char *path, int lread)
+int cli_table_lmax(const char *path, int lread)
 {
-    int last = text_last_l(path);
+    int last = cli_text_last_l(path);
     return last >= 2 && last < lread ? last : lread;
 }
 
-static double *read_spectrum_file(const char *path, int lmax, int *status)
+double *cli_read_spectrum_file(const char *path, int lmax, int *status)
 {
     double *cl = calloc((size_t)lmax + 1, sizeof *cl);
     if (!cl) {
@@ -376,7 +376,7 @@ static double *read_spectrum_file(const char *path, int lmax, int *status)
     return cl;
 }
 
-static double *read_profile_file(const char *path, int lmax, int *status)
+double *cli_read_profile_file(const char *path, int lmax, int *status)
 {
     double *v = calloc((size_t)lmax + 1, sizeof *v);
     if (!v) {
@@ -664,6 +664,10 @@ static int apply_units(const args *a, clef_map *map, const char *path)
 
 int cmd_spectrum(int argc, char **argv)
 {
+    /* A run file describes many fields: its own mode (cmd_spectrum_run.c). */
+    for (int i = 1; i < argc; i++)
+        if (!strcmp(argv[i], "--run") || !strncmp(argv[i], "--run=", 6))
+            return cmd_spectrum_run(argc, argv);
     args a;
     int rc = parse_args(argc, argv, &a);
     if (rc)
@@ -779,30 +783,30 @@ int cmd_spectrum(int argc, char **argv)
     so.names[3] = a.mask[1];
     so.bin_width = (int)a.bin_width;
     if (a.beam_file) {
-        so.beam_lmax = table_lmax(a.beam_file, lread);
-        if (!(beam = read_profile_file(a.beam_file, so.beam_lmax, &status)))
+        so.beam_lmax = cli_table_lmax(a.beam_file, lread);
+        if (!(beam = cli_read_profile_file(a.beam_file, so.beam_lmax, &status)))
             goto fail;
         so.beam = beam;
     }
     if (a.transfer_file) {
-        so.transfer_lmax = table_lmax(a.transfer_file, lread);
-        if (!(transfer = read_profile_file(a.transfer_file, so.transfer_lmax, &status)))
+        so.transfer_lmax = cli_table_lmax(a.transfer_file, lread);
+        if (!(transfer = cli_read_profile_file(a.transfer_file, so.transfer_lmax, &status)))
             goto fail;
         so.transfer = transfer;
     }
     if (a.noise_file) {
-        so.noise_lmax = table_lmax(a.noise_file, lread);
-        if (!(noise = read_spectrum_file(a.noise_file, so.noise_lmax, &status)))
+        so.noise_lmax = cli_table_lmax(a.noise_file, lread);
+        if (!(noise = cli_read_spectrum_file(a.noise_file, so.noise_lmax, &status)))
             goto fail;
         so.noise_cl = noise;
     }
     if (a.theory_file) {
-        if (!(theory = read_spectrum_file(a.theory_file, lread, &status)))
+        if (!(theory = cli_read_spectrum_file(a.theory_file, lread, &status)))
             goto fail;
         so.theory_cl = theory;
         /* A theory table that stops below lmax is refused by the estimator
          * rather than padded with zeros (zero errors above its end). */
-        const int last = text_last_l(a.theory_file);
+        const int last = cli_text_last_l(a.theory_file);
         so.theory_lmax = last >= 0 && last < lread ? last : lread;
     }
     if (a.bins_file || a.log_bins > 0) {
