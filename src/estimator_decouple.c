@@ -181,6 +181,7 @@ int clef_est_couplings(clef_estimator *e)
         }
         clef_progress("coupling", (k + 1.0) / e->nmasks);
     }
+    clef_est_stage_done(e, "coupling");
     return CLEF_OK;
 }
 

@@ -125,6 +125,7 @@ int clef_est_prepare(clef_estimator *e)
         field_weights(&e->fields[i], npix, w);
         CLEF_TRY(add_weights(e, i, w));
     }
+    clef_est_stage_done(e, "prepare");
     double *tmap = clef_alloc_large((size_t)npix * sizeof *tmap);
     if (!tmap)
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for a weighted map");

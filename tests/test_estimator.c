@@ -41,7 +41,7 @@ static void input_cl(int lmax, double *cs, double *ct)
 {
     for (int l = 0; l <= lmax; l++) {
         const double d = l < 2 ? 0 : 2 * M_PI / (l * (l + 1.0));
-        cs[l] = d * 800.0 * (1.0 + 0.4 * sin(l / 17.0));
+        cs[l] = d * 800.0 * (1.0 + 0.3 * sin(l / 60.0));
         ct[l] = d * 300.0;
     }
 }

@@ -12,7 +12,7 @@
  * decoupled with every binning through the public coupling API; the
  * band-power windows are W = K^-1 P M diag(F B^2 p^2 2 pi / (l (l + 1)))
  * (acting on D_l); the covariance of each binning is the one
- * clef_spectrum_compute quotes from the input spectrum (--theory), and the
+ * clef_spectrum_compute quotes from the input spectrum (--covariance-model), and the
  * staged band powers are checked against clef_spectrum_compute on the
  * first sky.  make check runs 30 skies, make check-long 200. */
 #include "check.h"

@@ -42,7 +42,7 @@ static void help(void)
            "                  in .fits or .fit, else text (docs/formats-spectrum.md);\n"
            "                  written atomically; '-': text on standard output, the\n"
            "                  summary then on standard error (default: no file, summary\n"
-           "                  only).  Both layouts are read back by --cl and --theory.\n"
+           "                  only).  Both layouts are read back by --cl, --covariance-model and plot --model-curve.\n"
            "  --quiet         print errors only (--output is still written)\n"
            "  --verbose       also print the model's internal scales\n"
            "  --help          show this help\n\n"

@@ -33,7 +33,7 @@ static void help(FILE *f)
             "  fitted with the default first-peak options.  Title from the table's header\n"
             "  (maps, mask, nside), else the file name.\n"
             "  --log-l              logarithmic l axis (default: linear from 0)\n"
-            "  --theory FILE        overlay a model curve: a spectrum text file as `clef\n"
+            "  --model-curve FILE   overlay a model curve: a spectrum text file as `clef\n"
             "                       model` writes it ('# columns: l C_l ...' line), or a\n"
             "                       plain two-column table 'l D_l' (uK^2)\n"
             "  --compare TABLE2     overlay a second band-power table\n"
@@ -79,7 +79,7 @@ static void help(FILE *f)
             "Exit codes: 0 ok, 2 usage, 3 invalid input (empty table, mask of another\n"
             "nside, empty range), 4 cannot read or write a file, 5 malformed input file,\n"
             "7 unknown output extension, 8 out of memory.\n"
-            "Example: clef plot spectrum bp.fits -o bp.png --theory model.txt\n");
+            "Example: clef plot spectrum bp.fits -o bp.png --model-curve model.txt\n");
 }
 
 enum {
@@ -150,7 +150,7 @@ static int parse_args(int argc, char **argv, args *a, int *done)
         {"height", required_argument, NULL, OPT_HEIGHT},
         {"title", required_argument, NULL, OPT_TITLE},
         {"log-l", no_argument, NULL, OPT_LOG_L},
-        {"theory", required_argument, NULL, OPT_THEORY},
+        {"model-curve", required_argument, NULL, OPT_THEORY},
         {"compare", required_argument, NULL, OPT_COMPARE},
         {"label", required_argument, NULL, OPT_LABEL},
         {"compare-label", required_argument, NULL, OPT_COMPARE_LABEL},

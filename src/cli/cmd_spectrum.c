@@ -33,8 +33,9 @@ static void help(void)
         "mask's mode coupling, the beam, the pixel window and a transfer function,\n"
         "with a Gaussian covariance and the first acoustic peak.\n\n"
         "Inputs:\n"
-        "  --mask FILE            mask (weights in [0,1]) for MAP, and for MAP2 unless --mask2\n"
-        "  --mask2 FILE           separate mask for MAP2\n"
+        "  --mask FILE            mask (weights in [0,1]) for MAP, and for MAP2 unless\n"
+        "                         --second-mask\n"
+        "  --second-mask FILE     separate mask for MAP2\n"
         "  --hdu H, --column C    table and column of the maps (default: first table,\n"
         "                         first value column)\n"
         "  --allow-coord-mismatch accept map and mask with different COORDSYS\n"
@@ -58,8 +59,10 @@ static void help(void)
         "  --beam-table FILE      tabulated beam, columns 'l B_l'\n"
         "  --no-pixel-window      do not correct for the pixel window (default: corrected)\n"
         "  --transfer FILE        transfer function, columns 'l F_l'\n"
-        "  --noise-cl FILE        noise spectrum N_l [uK^2] to subtract (auto-spectra)\n"
-        "  --theory FILE          C_l [uK^2] used in the covariance instead of the measured one\n\n"
+        "  --noise-spectrum FILE  noise spectrum N_l [uK^2] to subtract (auto-spectra)\n"
+        "  --covariance-model FILE\n"
+        "                         C_l [uK^2] of the sky used in the covariance instead of\n"
+        "                         the measured spectra\n\n"
         "Method:\n"
         "  --iterations N         analysis iterations (default %d)\n"
         "  --keep-multipoles      keep the monopole and dipole (default: fitted on the\n"
@@ -90,7 +93,9 @@ static void help(void)
         "No output may be an input file (same file under any name: exit 3); the output\n"
         "folders are checked before the computation (exit 4).\n"
         "Exit codes: 0 ok, 2 usage, 3 invalid input, 4 I/O, 5 bad file format,\n"
-        "6 numerical failure (e.g. singular coupling: widen the bins), 8 out of memory.\n",
+        "6 numerical failure (e.g. singular coupling: widen the bins), 8 out of memory.\n"
+        "Many fields in one run (maps, splits, masks, pairs from a run file):\n"
+        "clef spectrum --run FILE --help; docs/run-files.md.\n",
         CLEF_SPECTRUM_ITERATIONS);
 }
 
@@ -136,7 +141,7 @@ static int parse_args(int argc, char **argv, args *a)
 {
     static const struct option opts[] = {
         {"mask", required_argument, 0, OPT_MASK},
-        {"mask2", required_argument, 0, OPT_MASK2},
+        {"second-mask", required_argument, 0, OPT_MASK2},
         {"hdu", required_argument, 0, OPT_HDU},
         {"column", required_argument, 0, OPT_COLUMN},
         {"allow-coord-mismatch", no_argument, 0, OPT_COORD},
@@ -148,8 +153,8 @@ static int parse_args(int argc, char **argv, args *a)
         {"beam-table", required_argument, 0, OPT_BEAMF},
         {"no-pixel-window", no_argument, 0, OPT_NOPIX},
         {"transfer", required_argument, 0, OPT_TRANSFER},
-        {"noise-cl", required_argument, 0, OPT_NOISE},
-        {"theory", required_argument, 0, OPT_THEORY},
+        {"noise-spectrum", required_argument, 0, OPT_NOISE},
+        {"covariance-model", required_argument, 0, OPT_THEORY},
         {"iterations", required_argument, 0, OPT_ITER},
         {"keep-multipoles", no_argument, 0, OPT_KEEP},
         {"cache-dir", required_argument, 0, OPT_CACHE},
@@ -289,7 +294,7 @@ static int parse_args(int argc, char **argv, args *a)
     if (!a->mask[0])
         return cli_usage_error(CMD, "--mask is required");
     if (a->mask[1] && !a->map[1])
-        return cli_usage_error(CMD, "--mask2 needs a second map");
+        return cli_usage_error(CMD, "--second-mask needs a second map");
     if ((a->bins_file != NULL) + (a->log_bins > 0) + (a->bin_width > 0) > 1)
         return cli_usage_error(CMD, "choose one of --bins, --log-bins and --bin-width");
     if (a->beam_file && a->beam_fwhm > 0)
@@ -510,7 +515,7 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddNumberToObject(sky, "nside", (double)r->nside);
     const mask_moments mm1 = {r->fsky, r->w1, r->w2, r->w4, r->fsky_eff};
     moments_json(sky, &mm1);
-    if (mm2) /* --mask2: the second map's effective mask too */
+    if (mm2) /* --second-mask: the second map's effective mask too */
         moments_json(cJSON_AddObjectToObject(sky, "mask2"), mm2);
     cJSON *mp = cJSON_AddArrayToObject(sky, "removed_multipoles_uK");
     for (int i = 0; i <= r->cross; i++)
@@ -721,7 +726,7 @@ int cmd_spectrum(int argc, char **argv)
     if (a.map[1] && cli_same_file(a.map[0], a.map[1]))
         cli_warn("the two maps '%s' and '%s' are the same file: their cross-spectrum is the "
                  "auto-spectrum, with its noise bias (give two independent maps, or one map "
-                 "and --noise-cl)", a.map[0], a.map[1]);
+                 "and --noise-spectrum)", a.map[0], a.map[1]);
 
     clef_map_read_opts ro = {0};
     ro.hdu = a.hdu;

@@ -6,7 +6,7 @@
 # output and never create or replace a file; output folders are checked
 # before the computation; the warnings a run deserves (same map twice,
 # unknown unit, silent caps) reach stderr and the JSON "warnings"; a file
-# without ORDERING needs --ordering; --mask2 runs report both masks; the
+# without ORDERING needs --ordering; --second-mask runs report both masks; the
 # tables clef model writes are read back.  Exit codes: docs/exit-codes.md.
 set -u
 : "${CLEF_BIN:?}" "${CLEF_PYTHON:?}" "${CLEF_TEST_TMP:?}"
@@ -57,7 +57,7 @@ intact mask.fits "$sm" "spectrum --json onto the mask"
 run 3 "spectrum --json onto its own FITS output" "$C" spectrum $S1 --mask mask.fits -o out \
     --json out.fits
 [ ! -e out.fits ] || fail "a refused run wrote out.fits"
-run 3 "spectrum -o onto the theory table" "$C" spectrum $S1 --mask mask.fits --theory model.txt \
+run 3 "spectrum -o onto the theory table" "$C" spectrum $S1 --mask mask.fits --covariance-model model.txt \
     -o model --format csv --json model.txt
 intact model.txt "$smodel" "spectrum onto the theory table"
 no_temporaries "refused spectrum runs"
@@ -197,10 +197,10 @@ run 0 "plot --ordering" "$C" plot map --quiet noorder.fits --ordering RING -o or
 run 0 "mask --ordering" "$C" mask --quiet --from noorder.fits --ordering RING --output ord_mask.fits
 run 2 "--ordering SPIRAL" "$C" spectrum noorder.fits --mask mask.fits --ordering SPIRAL -o x
 
-# 9. --mask2: both masks in the JSON summary and the FITS keywords.
-"$C" spectrum --quiet $S1 $S2 --mask mask.fits --mask2 mask2.fits -o two --format fits,json \
-    --no-peak || fail "--mask2 run exit $?"
-"$CLEF_PYTHON" - <<'PY' || fail "--mask2 not reported"
+# 9. --second-mask: both masks in the JSON summary and the FITS keywords.
+"$C" spectrum --quiet $S1 $S2 --mask mask.fits --second-mask mask2.fits -o two --format fits,json \
+    --no-peak || fail "--second-mask run exit $?"
+"$CLEF_PYTHON" - <<'PY' || fail "--second-mask not reported"
 import json, math
 from astropy.io import fits
 j = json.load(open("two.json"))
@@ -216,12 +216,12 @@ with fits.open("two.fits") as h:
         assert k in hd, k
 PY
 
-# 10. clef model's FITS table is read by --cl, --theory and plot --theory.
+# 10. clef model's FITS table is read by --cl, --covariance-model and plot --model-curve.
 "$C" model --quiet --lmax 200 --output model.fits || fail "model FITS"
 run 0 "simulate --cl model.fits" "$C" simulate --quiet --nside 32 --cl model.fits --output fromfits.fits
-run 0 "spectrum --theory model.fits" "$C" spectrum --quiet $S1 --mask mask.fits \
-    --theory model.fits -o th --format fits --no-peak
-run 0 "plot --theory model.fits" "$C" plot spectrum --quiet th.fits --theory model.fits -o th.png
+run 0 "spectrum --covariance-model model.fits" "$C" spectrum --quiet $S1 --mask mask.fits \
+    --covariance-model model.fits -o th --format fits --no-peak
+run 0 "plot --model-curve model.fits" "$C" plot spectrum --quiet th.fits --model-curve model.fits -o th.png
 "$C" simulate --quiet --nside 32 --cl model.txt --output fromtext.fits || fail "simulate --cl text"
 "$CLEF_PYTHON" - <<'PY' || fail "the FITS and text model tables give different skies"
 import numpy as np

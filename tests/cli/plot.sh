@@ -79,9 +79,9 @@ PYEOF
 
 # spectrum
 expect 0 "$BIN" plot spectrum "$T/bp.txt" -o "$T/s.png" --width 640 --height 480 \
-    --theory "$T/theory.txt" --compare "$T/bp.txt" --compare-label again
+    --model-curve "$T/theory.txt" --compare "$T/bp.txt" --compare-label again
 [ "$(png_size "$T/s.png")" = "640 480" ] || fail "spectrum PNG size $(png_size "$T/s.png")"
-expect 0 "$BIN" plot spectrum "$T/bp.txt" -o "$T/s.svg" --log-l --quiet --theory "$T/model.txt"
+expect 0 "$BIN" plot spectrum "$T/bp.txt" -o "$T/s.svg" --log-l --quiet --model-curve "$T/model.txt"
 svg_ok "$T/s.svg" || fail "spectrum SVG not well-formed"
 expect 0 "$BIN" plot spectrum "$T/bp.txt" -o "$T/s.pdf" --no-peak --title "T"
 pdfinfo "$T/s.pdf" >/dev/null 2>&1 || fail "spectrum PDF does not open"
@@ -129,7 +129,7 @@ expect 4 "$BIN" plot map "$T/absent.fits" -o "$T/e9.png"
 expect 4 "$BIN" plot spectrum "$T/bp.txt" -o "$T/nodir/e10.png"
 expect 3 "$BIN" plot map "$T/map.fits" --mask "$T/mask8.fits" -o "$T/e11.png"
 printf '# columns: l C_l\n2 1.0\n4 1.0\n' > "$T/gap.txt"
-expect 5 "$BIN" plot spectrum "$T/bp.txt" -o "$T/e13.png" --theory "$T/gap.txt"
+expect 5 "$BIN" plot spectrum "$T/bp.txt" -o "$T/e13.png" --model-curve "$T/gap.txt"
 echo '{"omega_k": ' > "$T/bad.json"
 expect 5 "$BIN" plot curvature "$T/bad.json" -o "$T/e12.png"
 for i in 1 2 3 4 5 6 7 8 9 11 12 13; do

@@ -1,5 +1,5 @@
 /* Spectrum, noise, beam and transfer text tables: clef_theory_read_cl (the
- * --theory / --noise-cl / --cl reader) and clef_beam_read (--beam table and
+ * --covariance-model / --noise-spectrum / --cl reader) and clef_beam_read (--beam table and
  * --transfer), at a small and a larger lmax. */
 #include "fuzz.h"
 

@@ -28,6 +28,7 @@ for bin in "$out"/fuzz/fuzz_*; do
     dict=tests/fuzz/text.dict
     case "$short" in
     map|alm) dict=tests/fuzz/fits.dict ;;
+    runfile) dict=tests/fuzz/run.dict ;;
     table|spectrum_text)   # text and FITS readers behind one entry point
         dict="$out/both.dict"; cat tests/fuzz/text.dict tests/fuzz/fits.dict > "$dict" ;;
     esac
