@@ -314,13 +314,16 @@ static void test_bad_fields(void **state)
 static void test_ensemble(void **state)
 {
     (void)state;
-    const int64_t nside = test_long() ? 128 : 32;
-    const int nsim = test_long() ? 50 : (test_sanitize() ? 6 : 40);
+    /* nside 32 with 12-wide bins quotes variances 35% above the scatter at
+     * l < 40 (the narrow-kernel approximation on bins narrower than the
+     * mask's coupling); nside 64 came within 22%, nside 128 within 20%. */
+    const int64_t nside = test_long() ? 128 : 64;
+    const int nsim = test_long() ? 50 : (test_sanitize() ? 6 : 30);
     sky k;
     sky_init(&k, nside);
     clef_spectrum_opts o;
     base_opts(&o);
-    o.bin_width = test_long() ? 24 : 12;
+    o.bin_width = test_long() ? 24 : 16;
     o.use_cache = 1; /* fixed masks: the deprojection and couplings once (tests/run.sh: a private folder) */
     clef_field f[NF];
     one_map_fields(&k, f, 2);
