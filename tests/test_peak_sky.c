@@ -240,14 +240,8 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                 const double ml = t->sum_l / nf;
                 const double sd = sqrt(fmax(t->sum_l2 / nf - ml * ml, 0) * nf / fmax(nf - 1, 1));
                 const double flat = t->flat / nf;
-                /* Above the bar, errors are conservative: the shape prior
-                 * makes the quoted sigma up to ~16% larger than the scatter
-                 * (measured, docs/peak.md); coverage up to 80% is accepted
-                 * and reported; with 50-wide bins only the lower bar. */
-                const int conservative_ok = cover > 0.6827 && (cf->width[k] == 50 ||
-                                                               cover <= fmax(0.80, 0.6827 + cov_tol));
                 const int ok = t->found >= 0.95 * t->n && fabs(mp) <= pull_tol &&
-                               (fabs(cover - 0.6827) <= cov_tol || conservative_ok) &&
+                               fabs(cover - 0.6827) <= cov_tol &&
                                (i || flat >= flat_min);
                 print_message("| %s | %s | %d | %.0f | %d/%d | %+.3f | %.1f%% | %.2f / %.2f | ",
                               cf->name, input_names[i], cf->width[k], hw[k][w], t->found, t->n, mp,
@@ -256,8 +250,6 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                     print_message("%.1f%% |\n", 100 * flat);
                 else
                     print_message("- |\n");
-                if (ok && fabs(cover - 0.6827) > cov_tol)
-                    print_message("  ^ over-covers (conservative errors; docs/peak.md)\n");
                 if (!ok) {
                     bad++;
                     print_message("  ^ outside the bars (pull %.2f, coverage %.3f +- %.3f, flat "
