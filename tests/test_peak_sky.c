@@ -219,13 +219,14 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
         }
     }
     /* Tolerances: the issue's bars (mean pull within +-0.2, coverage 68 +-
-     * 7%, "flat" >= 93%) for the long ensemble of 100 or more skies; with
-     * fewer skies the bars widen to 3 sampling errors where that is larger
-     * (30 skies: 0.55, 26%). */
-    const int nsky = cf->nsky;
-    const double pull_tol = fmax(0.2, 3 / sqrt(nsky));
-    const double cov_tol = fmax(0.07, 3 * sqrt(0.6827 * 0.3173 / nsky));
-    const double flat_min = fmin(0.93, 1 - 3 * sqrt(0.05 * 0.95 / nsky) - 0.05);
+     * 7%, "flat" >= 93%), held as they are from 100 skies on (make
+     * check-long; at 100 skies the sampling errors are 0.10, 4.7% and
+     * 2.2%); the 30-sky version of make check widens them to 3 sampling
+     * errors where that is larger (0.55, 26%, 83%). */
+    const int nsky = cf->nsky, strict = nsky >= 100;
+    const double pull_tol = strict ? 0.2 : fmax(0.2, 3 / sqrt(nsky));
+    const double cov_tol = strict ? 0.07 : fmax(0.07, 3 * sqrt(0.6827 * 0.3173 / nsky));
+    const double flat_min = strict ? 0.93 : fmin(0.93, 1 - 3 * sqrt(0.05 * 0.95 / nsky) - 0.05);
     int bad = 0;
     print_message("[%s] %d skies, w2 = %.3f, noise %g uK-arcmin; mean pull, 1-sigma coverage, "
                   "mean quoted sigma / scatter, flat rate (Omega_k = 0 input)\n", cf->name, nsky,
