@@ -219,8 +219,9 @@ static int spd_inverse(const double *a, int m, double *inv)
     return CLEF_OK;
 }
 
-/* Levenberg-Marquardt from c; on return cov = inverse Hessian, *converged whether it stopped on the step
- * tolerance (or on a minimum to machine precision). */
+/* Levenberg-Marquardt from c; on return cov = inverse Hessian, *converged
+ * whether it stopped on the step tolerance (or on a minimum to machine
+ * precision). */
 static int lm(const fit *f, double *c, double *cov, double *chi2_data,
               int *converged)
 {
