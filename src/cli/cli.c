@@ -11,6 +11,7 @@
 #include <stdarg.h>
 #include <stdlib.h>
 #include <string.h>
+#include <time.h>
 #include <strings.h>
 #include <sys/stat.h>
 #include <unistd.h>
@@ -379,4 +380,22 @@ void cli_text_end(void)
     dup2(saved_stdout, STDOUT_FILENO);
     close(saved_stdout);
     saved_stdout = -1;
+}
+
+cJSON *cli_summary_begin(int argc, char **argv)
+{
+    cJSON *root = cJSON_CreateObject();
+    cJSON_AddStringToObject(root, "program", "clef");
+    cJSON_AddStringToObject(root, "version", CLEF_VERSION);
+    char cmd[4096] = "";
+    for (int i = 0; i < argc; i++) {
+        strncat(cmd, i ? " " : "clef ", sizeof cmd - strlen(cmd) - 1);
+        strncat(cmd, argv[i], sizeof cmd - strlen(cmd) - 1);
+    }
+    cJSON_AddStringToObject(root, "command", cmd);
+    char when[32];
+    time_t now = time(NULL);
+    strftime(when, sizeof when, "%Y-%m-%dT%H:%M:%SZ", gmtime(&now));
+    cJSON_AddStringToObject(root, "finished_utc", when);
+    return root;
 }

@@ -62,6 +62,9 @@ int cli_parse_double(const char *cmd, const char *opt, const char *s, double *ou
  * an exit code, having printed the error. */
 struct cJSON;
 int cli_write_json(const char *path, const struct cJSON *j);
+/* A run summary's first keys: program, version, command (the command line),
+ * finished_utc (now). */
+struct cJSON *cli_summary_begin(int argc, char **argv);
 
 /* The first-peak result and the settings that made it as members of a JSON
  * object, with the names every command uses (docs/peak.md, "JSON"). */

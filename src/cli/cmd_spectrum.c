@@ -457,19 +457,7 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
                           const clef_spectrum_opts *so, const clef_spectrum_result *r,
                           const mask_moments *mm2, double t_read, double t_total, const char *const *outputs, int nout)
 {
-    cJSON *root = cJSON_CreateObject();
-    cJSON_AddStringToObject(root, "program", "clef");
-    cJSON_AddStringToObject(root, "version", CLEF_VERSION);
-    char cmd[4096] = "";
-    for (int i = 0; i < argc; i++) {
-        strncat(cmd, i ? " " : "clef ", sizeof cmd - strlen(cmd) - 1);
-        strncat(cmd, argv[i], sizeof cmd - strlen(cmd) - 1);
-    }
-    cJSON_AddStringToObject(root, "command", cmd);
-    char when[32];
-    time_t now = time(NULL);
-    strftime(when, sizeof when, "%Y-%m-%dT%H:%M:%SZ", gmtime(&now));
-    cJSON_AddStringToObject(root, "finished_utc", when);
+    cJSON *root = cli_summary_begin(argc, argv);
     cJSON_AddStringToObject(root, "spectrum", r->cross ? "cross" : "auto");
 
     cJSON *in = cJSON_AddArrayToObject(root, "inputs");

@@ -183,19 +183,7 @@ static void pair_name(const job *j, int k, char *buf, size_t n)
 
 static cJSON *summary(int argc, char **argv, const job *j, double seconds)
 {
-    cJSON *root = cJSON_CreateObject();
-    cJSON_AddStringToObject(root, "program", "clef");
-    cJSON_AddStringToObject(root, "version", CLEF_VERSION);
-    char cmd[4096] = "";
-    for (int i = 0; i < argc; i++) {
-        strncat(cmd, i ? " " : "clef ", sizeof cmd - strlen(cmd) - 1);
-        strncat(cmd, argv[i], sizeof cmd - strlen(cmd) - 1);
-    }
-    cJSON_AddStringToObject(root, "command", cmd);
-    char when[32];
-    time_t now = time(NULL);
-    strftime(when, sizeof when, "%Y-%m-%dT%H:%M:%SZ", gmtime(&now));
-    cJSON_AddStringToObject(root, "finished_utc", when);
+    cJSON *root = cli_summary_begin(argc, argv);
     cJSON *rf = cJSON_AddObjectToObject(root, "run_file");
     cJSON_AddStringToObject(rf, "path", j->run->path);
     char hex[65];
