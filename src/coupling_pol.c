@@ -27,6 +27,8 @@
 
 #include <omp.h>
 
+#include "cache_impl.h"
+#include "clef/hash.h"
 #include "clef/wigner.h"
 #include "core_impl.h"
 #include "coupling_impl.h"
@@ -131,6 +133,84 @@ int clef_coupling_pol_create(clef_coupling_pol *out, int lmax, const double *w_t
         }
     return CLEF_OK;
 fail:
+    clef_coupling_pol_free(out);
+    return status;
+}
+
+/* Cache (docs/coupling.md, kind 5): the matrices as one entry keyed by
+ * everything they depend on: lmax, the used part of both mask spectra and
+ * the clef version.  Cache problems are warnings; the matrices are then
+ * computed. */
+static void pol_key(int lmax, const double *w_tp, const double *w_pp, int wl_lmax, char hex[65])
+{
+    const int wtop = wl_lmax < 2 * lmax ? wl_lmax : 2 * lmax;
+    const int64_t v[3] = {lmax, wtop, w_tp != NULL};
+    clef_sha256 h;
+    unsigned char d[CLEF_SHA256_BYTES];
+    clef_sha256_init(&h);
+    static const char tag[] = "clef polarized coupling M^TE M+ M-";
+    clef_sha256_update(&h, tag, sizeof tag);
+    clef_sha256_update(&h, CLEF_VERSION, strlen(CLEF_VERSION) + 1);
+    clef_sha256_update(&h, v, sizeof v);
+    if (w_tp)
+        clef_sha256_update(&h, w_tp, ((size_t)wtop + 1) * sizeof *w_tp);
+    clef_sha256_update(&h, w_pp, ((size_t)wtop + 1) * sizeof *w_pp);
+    clef_sha256_final(&h, d);
+    clef_sha256_hex(d, hex);
+}
+
+int clef_coupling_pol_create_cached(clef_coupling_pol *out, int lmax, const double *w_tp,
+                                    const double *w_pp, int wl_lmax, const char *cache_dir,
+                                    int *hit)
+{
+    int status = CLEF_OK;
+    char dir[4096], path[4096 + 160], key[65];
+    double *buf = NULL;
+    if (hit)
+        *hit = 0;
+    if (!out)
+        CLEF_FAIL(CLEF_EINVAL, "coupling (pol): output is NULL");
+    memset(out, 0, sizeof *out);
+    const char *why = clef_cache_resolve_dir(cache_dir, dir, sizeof dir);
+    if (!why) {
+        if (w_tp)
+            CLEF_TRY(check_cross(lmax, w_tp, wl_lmax, "T x P"));
+        CLEF_TRY(clef_coupling_check_wl(lmax, w_pp, wl_lmax));
+        pol_key(lmax, w_tp, w_pp, wl_lmax, key);
+        if (!clef_cache_path(path, sizeof path, dir, CLEF_CACHE_POL, key))
+            why = "path too long";
+    }
+    if (why) {
+        clef_log(CLEF_LOG_WARN, "coupling cache: disabled: %s", why);
+        return clef_coupling_pol_create(out, lmax, w_tp, w_pp, wl_lmax);
+    }
+    const size_t n = (size_t)lmax + 1, nm = w_tp ? 3 : 2;
+    if (!(buf = clef_alloc_large(nm * n * n * sizeof *buf)))
+        CLEF_FAIL(CLEF_ENOMEM, "coupling (pol): out of memory for the cache entry");
+    if (clef_cache_load(path, CLEF_CACHE_POL, key, nm * n, n, buf)) {
+        if (w_tp)
+            CLEF_CHECK(clef_coupling_alloc_empty(&out->te, lmax, w_pp, wl_lmax));
+        CLEF_CHECK(clef_coupling_alloc_empty(&out->pp, lmax, w_pp, wl_lmax));
+        CLEF_CHECK(clef_coupling_alloc_empty(&out->mm, lmax, w_pp, wl_lmax));
+        memcpy(out->pp->m, buf, n * n * sizeof *buf);
+        memcpy(out->mm->m, buf + n * n, n * n * sizeof *buf);
+        if (w_tp)
+            memcpy(out->te->m, buf + 2 * n * n, n * n * sizeof *buf);
+        if (hit)
+            *hit = 1;
+        free(buf);
+        return CLEF_OK;
+    }
+    CLEF_CHECK(clef_coupling_pol_create(out, lmax, w_tp, w_pp, wl_lmax));
+    memcpy(buf, out->pp->m, n * n * sizeof *buf);
+    memcpy(buf + n * n, out->mm->m, n * n * sizeof *buf);
+    if (w_tp)
+        memcpy(buf + 2 * n * n, out->te->m, n * n * sizeof *buf);
+    clef_cache_store(dir, path, CLEF_CACHE_POL, key, nm * n, n, buf);
+    free(buf);
+    return CLEF_OK;
+fail:
+    free(buf);
     clef_coupling_pol_free(out);
     return status;
 }

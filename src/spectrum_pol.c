@@ -373,7 +373,11 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     CLEF_CHECK(prepare(&r, f, mask_t, mask_p, &o));
     CLEF_CHECK(transforms(&r, &o));
     clef_progress("coupling-pol", 0.0);
-    CLEF_CHECK(clef_coupling_pol_create(&r.cp, r.lmax_ext, r.wl[0], r.wl[1], r.lmax_t));
+    if (o.use_cache)
+        CLEF_CHECK(clef_coupling_pol_create_cached(&r.cp, r.lmax_ext, r.wl[0], r.wl[1], r.lmax_t,
+                                                   o.cache_dir, &res->pol_cache_hit));
+    else
+        CLEF_CHECK(clef_coupling_pol_create(&r.cp, r.lmax_ext, r.wl[0], r.wl[1], r.lmax_t));
     clef_progress("coupling-pol", 1.0);
     if (!(r.tl = malloc(((size_t)r.lmax_ext + 1) * sizeof *r.tl))) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the filter");

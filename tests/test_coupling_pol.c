@@ -282,12 +282,44 @@ static void test_binned_joint(void **state)
     free(w);
 }
 
+/* The cache: a miss computes and stores, a hit gives the same matrices bit
+ * for bit; another mask spectrum is another entry. */
+static void test_cache(void **state)
+{
+    (void)state;
+    const int lmax = 30;
+    double w[61], w2[61];
+    for (int l = 0; l <= 60; l++) {
+        w[l] = 4 * M_PI * 0.4 * exp(-l * l / 40.0);
+        w2[l] = 0.9 * w[l];
+    }
+    const char *dir = test_path("polcache");
+    clef_coupling_pol ref, a, b, c;
+    int hit = -1;
+    assert_int_equal(clef_coupling_pol_create(&ref, lmax, w2, w, 60), CLEF_OK);
+    assert_int_equal(clef_coupling_pol_create_cached(&a, lmax, w2, w, 60, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_int_equal(clef_coupling_pol_create_cached(&b, lmax, w2, w, 60, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 1);
+    const size_t nn = (size_t)(lmax + 1) * (lmax + 1);
+    assert_memory_equal(clef_coupling_matrix(b.pp), clef_coupling_matrix(ref.pp), nn * sizeof(double));
+    assert_memory_equal(clef_coupling_matrix(b.mm), clef_coupling_matrix(ref.mm), nn * sizeof(double));
+    assert_memory_equal(clef_coupling_matrix(b.te), clef_coupling_matrix(ref.te), nn * sizeof(double));
+    assert_int_equal(clef_coupling_pol_create_cached(&c, lmax, w, w, 60, dir, &hit), CLEF_OK);
+    assert_int_equal(hit, 0);
+    clef_coupling_pol_free(&ref);
+    clef_coupling_pol_free(&a);
+    clef_coupling_pol_free(&b);
+    clef_coupling_pol_free(&c);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_full_sky),
         cmocka_unit_test(test_matrices_vs_transforms),
         cmocka_unit_test(test_binned_joint),
+        cmocka_unit_test(test_cache),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

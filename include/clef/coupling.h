@@ -151,6 +151,12 @@ typedef struct clef_coupling_pol {
 int clef_coupling_pol_create(clef_coupling_pol *out, int lmax, const double *w_tp,
                              const double *w_pp, int wl_lmax);
 void clef_coupling_pol_free(clef_coupling_pol *p); /* destroys the matrices */
+/* The same through the cache folder (clef_coupling_cache_dir; one entry of
+ * kind "coupling-pol" keyed by lmax, both mask spectra and the clef
+ * version); *hit (may be NULL) is 1 on a hit.  Cache problems are warnings. */
+int clef_coupling_pol_create_cached(clef_coupling_pol *out, int lmax, const double *w_tp,
+                                    const double *w_pp, int wl_lmax, const char *cache_dir,
+                                    int *hit);
 
 /* The 2 x 2 block binned and inverted jointly: K = [[K+, s K-], [s K-, K+]]
  * with K+- = P M+- T Q, s = +1 for (EE, BB) and -1 for (EB, BE); LU by

@@ -142,6 +142,7 @@ typedef struct clef_spectrum_pol_result {
                                   on D^BB_l (the E/B leakage windows) */
     int win_lmax, nbins, lmax, lmax_ext, cross;
     double rcond_eebb, rcond_ebbe; /* of the joint binned operators */
+    int pol_cache_hit;         /* 1 when M^TE, M+, M- came from the cache */
 } clef_spectrum_pol_result;
 
 int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
