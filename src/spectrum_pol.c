@@ -29,10 +29,12 @@
 #define _DEFAULT_SOURCE /* M_PI */
 #include <complex.h>
 #include <math.h>
+#include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
 
 #include "clef/coupling.h"
+#include "clef/hash.h"
 #include "clef/sht.h"
 #include "clef/spectrum.h"
 #include "core_impl.h"
@@ -228,9 +230,6 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
     }
     min[nm++] = r->prod[0];
     min[nm++] = r->prod[1];
-    for (int i = 0; i < nm; i++)
-        if (!(r->am[i] = malloc(nt * sizeof(double complex))))
-            CLEF_FAIL(CLEF_ENOMEM, "out of memory for mask a_lm (lmax %d)", LT);
     clef_sht *s0 = NULL;
     clef_sht_spin *s2 = NULL;
     clef_sht_opts so = {.nmaps = nf};
@@ -246,20 +245,67 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
                                         (const double *const *)r->umap, r->ae, r->ab,
                                         o->iterations);
     clef_sht_spin_destroy(s2);
-    if (status == CLEF_OK) {
+    CLEF_TRY(status);
+    for (int i = 0; i < 4; i++)
+        if (!(r->wl[i] = calloc((size_t)LT + 1, sizeof(double))))
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for mask spectra");
+    /* The mask spectra (W^TP with W[w_T w_P], W^PP with W[w_P w_P]) depend
+     * on the weights alone: cached like the temperature run's, under keys
+     * of their own (spectrum_cache.c, kind mask-spectra). */
+    char key[2][65] = {"", ""};
+    int hit[2] = {0, 0};
+    double *pay = NULL;
+    if (o->use_cache) {
+        if (!(pay = malloc(2 * ((size_t)LT + 1) * sizeof *pay)))
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for mask spectra");
+        for (int k = 0; k < 2; k++) {
+            char base[65], tagged[80];
+            clef_spectrum_mask_key(r->nside, LT, o->iterations, r->wp[r->cross],
+                                   k ? r->wp[0] : r->wt[0], base);
+            snprintf(tagged, sizeof tagged, "pol-%s-%s", k ? "PP" : "TP", base);
+            clef_sha256_buffer(tagged, strlen(tagged), key[k]);
+            hit[k] = clef_spectrum_mask_cache(o, key[k], LT, pay, 0);
+            if (hit[k]) {
+                memcpy(r->wl[k], pay, ((size_t)LT + 1) * sizeof *pay);
+                memcpy(r->wl[2 + k], pay + LT + 1, ((size_t)LT + 1) * sizeof *pay);
+            }
+        }
+    }
+    if (!hit[0] || !hit[1]) {
+        for (int i = 0; i < nm; i++)
+            if (!(r->am[i] = malloc(nt * sizeof(double complex)))) {
+                free(pay);
+                CLEF_FAIL(CLEF_ENOMEM, "out of memory for mask a_lm (lmax %d)", LT);
+            }
         so.nmaps = nm;
         status = clef_sht_create(&s0, r->nside, LT, &so);
+        if (status == CLEF_OK)
+            status = clef_sht_analysis(s0, nm, min, r->am, o->iterations);
+        clef_sht_destroy(s0);
+        const int it1 = 0, ip1 = 1, ip2 = r->cross ? 3 : 1, iprod = r->cross ? 4 : 2;
+        if (status == CLEF_OK)
+            status = clef_alm_cl(LT, LT, r->am[it1], r->am[ip2], r->wl[0]);
+        if (status == CLEF_OK)
+            status = clef_alm_cl(LT, LT, r->am[ip1], r->am[ip2], r->wl[1]);
+        if (status == CLEF_OK)
+            status = clef_alm_cl(LT, LT, r->am[iprod], NULL, r->wl[2]);
+        if (status == CLEF_OK)
+            status = clef_alm_cl(LT, LT, r->am[iprod + 1], NULL, r->wl[3]);
+        for (int l = 0; l <= LT && status == CLEF_OK; l++) /* round-off below 0 */
+            for (int k = 1; k < 4; k++)
+                if (r->wl[k][l] < 0)
+                    r->wl[k][l] = 0;
+        for (int k = 0; k < 2 && status == CLEF_OK && pay; k++) {
+            memcpy(pay, r->wl[k], ((size_t)LT + 1) * sizeof *pay);
+            memcpy(pay + LT + 1, r->wl[2 + k], ((size_t)LT + 1) * sizeof *pay);
+            clef_spectrum_mask_cache(o, key[k], LT, pay, 1);
+        }
     }
-    if (status == CLEF_OK)
-        status = clef_sht_analysis(s0, nm, min, r->am, o->iterations);
-    clef_sht_destroy(s0);
+    free(pay);
     CLEF_TRY(status);
     for (int i = 0; i < 12; i++)
         if (!(r->pcl[i] = calloc((size_t)L + 1, sizeof(double))))
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for spectra");
-    for (int i = 0; i < 4; i++)
-        if (!(r->wl[i] = calloc((size_t)LT + 1, sizeof(double))))
-            CLEF_FAIL(CLEF_ENOMEM, "out of memory for mask spectra");
     const int j = r->cross;
     double complex *const *t = r->at, *const *e = r->ae, *const *b = r->ab;
     CLEF_TRY(clef_alm_cl(L, L, t[0], e[j], r->pcl[P_TE]));
@@ -274,15 +320,6 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
         CLEF_TRY(clef_alm_cl(L, L, e[k], NULL, r->pcl[P_EE1 + i]));
         CLEF_TRY(clef_alm_cl(L, L, b[k], NULL, r->pcl[P_BB1 + i]));
     }
-    const int it1 = 0, ip1 = 1, ip2 = r->cross ? 3 : 1, iprod = r->cross ? 4 : 2;
-    CLEF_TRY(clef_alm_cl(LT, LT, r->am[it1], r->am[ip2], r->wl[0]));
-    CLEF_TRY(clef_alm_cl(LT, LT, r->am[ip1], r->am[ip2], r->wl[1]));
-    CLEF_TRY(clef_alm_cl(LT, LT, r->am[iprod], NULL, r->wl[2]));
-    CLEF_TRY(clef_alm_cl(LT, LT, r->am[iprod + 1], NULL, r->wl[3]));
-    for (int l = 0; l <= LT; l++) /* a cross W_l can dip below 0 by round-off */
-        for (int k = 1; k < 4; k++)
-            if (r->wl[k][l] < 0)
-                r->wl[k][l] = 0;
     return CLEF_OK;
 }
 

@@ -260,6 +260,22 @@ static void test_polcconv_files(void **state)
      * it: its projection on the true TE is small). */
     assert_true(minratio > 0.3);
     assert_true(fabs(ste / ste0) < 0.25);
+    /* Through the cache: a first run stores, a second one hits (mask
+     * spectra and matrices) and gives the same band powers bit for bit. */
+    o.use_cache = 1;
+    o.cache_dir = test_path("polcache");
+    clef_spectrum_pol_result r1, r2;
+    assert_int_equal(clef_spectrum_pol_compute(&fc, NULL, mask, NULL, &o, NULL, 0, &r1), CLEF_OK);
+    assert_int_equal(clef_spectrum_pol_compute(&fc, NULL, mask, NULL, &o, NULL, 0, &r2), CLEF_OK);
+    assert_int_equal(r1.pol_cache_hit, 0);
+    assert_int_equal(r2.pol_cache_hit, 1);
+    for (int k = 0; k < 6; k++) {
+        assert_memory_equal(r1.bp[k]->dl, rc.bp[k]->dl, nb * sizeof(double));
+        assert_memory_equal(r2.bp[k]->dl, rc.bp[k]->dl, nb * sizeof(double));
+        assert_memory_equal(r2.bp[k]->dl_err, r1.bp[k]->dl_err, nb * sizeof(double));
+    }
+    clef_spectrum_pol_result_free(&r1);
+    clef_spectrum_pol_result_free(&r2);
     clef_spectrum_pol_result_free(&rc);
     clef_spectrum_pol_result_free(&ri);
     clef_spectrum_pol_result_free(&rw);
