@@ -33,6 +33,10 @@ void clef_spectrum_result_free(clef_spectrum_result *res)
         return;
     clef_bandpowers_free(res->bp);
     res->bp = NULL;
+    for (int i = 0; i < 2; i++) {
+        free(res->alm[i]);
+        res->alm[i] = NULL;
+    }
 }
 
 static void stage_done(clef_spectrum_result *res, const char *name, double *t0)
@@ -927,6 +931,10 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
     if (status == CLEF_OK) {
         res->bp = r.bp;
         r.bp = NULL;
+        for (int i = 0; r.o.keep_alm && i <= r.cross; i++) {
+            res->alm[i] = r.alm[i];
+            r.alm[i] = NULL;
+        }
     }
     run_free(&r);
     return status;

@@ -62,7 +62,7 @@ typedef struct prun {
     int cross, lmax, lmax_ext, lmax_t, nb, nb_all;
     clef_bins *bins, *all_bins;
     int *rep;
-    double *wt[2], *wp[2], *tmap[2], *qmap[2], *umap[2], *prod[2];
+    double *wt[2], *wp[2], *qmap[2], *umap[2], *prod[2];
     double complex *at[2], *ae[2], *ab[2], *am[6];
     double *tl;
     double *wl[4];    /* W^{T1P2}, W^{P1P2}, W[w_T1 w_P2], W[w_P1 w_P2] to lmax_t */
@@ -90,7 +90,6 @@ static void prun_free(prun *r)
     for (int i = 0; i < 2; i++) {
         free(r->wt[i]);
         free(r->wp[i]);
-        free(r->tmap[i]);
         free(r->qmap[i]);
         free(r->umap[i]);
         free(r->prod[i]);
@@ -135,8 +134,8 @@ static int make_bins(prun *r, const clef_bandpowers *bp, int weighting)
         lo[nb + j] = r->lmax + 1 + j * w;
         hi[nb + j] = j == nh - 1 ? r->lmax_ext : lo[nb + j] + w - 1;
     }
-    if (!nh)
-        r->lmax_ext = r->lmax; /* nothing above lmax wide enough for a bin: couple to lmax */
+    /* A run above lmax shorter than a bin stays uncovered (a gap), as in
+     * the TT run (spectrum.c, make_all_bins). */
     CLEF_CHECK(clef_bins_create_ranges(&r->bins, nb, lo, hi, weighting));
     CLEF_CHECK(clef_bins_create_ranges(&r->all_bins, nb + nh, lo, hi, weighting));
     r->nb = nb;
@@ -168,29 +167,18 @@ static double unit_scale(const clef_map *m, const char *what)
 }
 
 static int prepare(prun *r, const clef_map_pol *const f[2], const clef_map *mask_t,
-                   const clef_map *mask_p, const clef_spectrum_opts *o)
+                   const clef_map *mask_p)
 {
     const int64_t np = r->npix;
     for (int i = 0; i <= r->cross; i++) {
         CLEF_TRY(clef_spectrum_make_weights(f[i]->t, mask_t, &r->wt[i]));
         CLEF_TRY(clef_spectrum_make_weights(f[i]->q, mask_p, &r->wp[i]));
-        r->tmap[i] = clef_alloc_large((size_t)np * sizeof(double));
         r->qmap[i] = clef_alloc_large((size_t)np * sizeof(double));
         r->umap[i] = clef_alloc_large((size_t)np * sizeof(double));
-        if (!r->tmap[i] || !r->qmap[i] || !r->umap[i])
+        if (!r->qmap[i] || !r->umap[i])
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for weighted maps");
-        const double st = unit_scale(f[i]->t, "T"), sp = unit_scale(f[i]->q, "Q");
-        for (int64_t p = 0; p < np; p++)
-            r->tmap[i][p] = st * f[i]->t->pix[p];
-        if (!o->keep_multipoles) {
-            /* As the TT run does (it also logs the fallback to a monopole). */
-            int status = clef_spectrum_remove_multipoles(r->tmap[i], r->wt[i], r->nside, 1, NULL);
-            if (status == CLEF_ENUMERIC)
-                status = clef_spectrum_remove_multipoles(r->tmap[i], r->wt[i], r->nside, 0, NULL);
-            CLEF_TRY(status);
-        }
+        const double sp = unit_scale(f[i]->q, "Q");
         for (int64_t p = 0; p < np; p++) {
-            r->tmap[i][p] *= r->wt[i][p];
             r->qmap[i][p] = sp * f[i]->q->pix[p] * r->wp[i][p];
             r->umap[i][p] = sp * f[i]->u->pix[p] * r->wp[i][p];
         }
@@ -213,10 +201,11 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
     const int L = r->lmax_ext, LT = r->lmax_t, nf = 1 + r->cross;
     const size_t na = clef_alm_size(L, L), nt = clef_alm_size(LT, LT);
     for (int i = 0; i < nf; i++) {
-        r->at[i] = malloc(na * sizeof(double complex));
+        if (!r->at[i])
+            CLEF_FAIL(CLEF_EINVAL, "polarized spectrum: the temperature run kept no a_lm");
         r->ae[i] = malloc(na * sizeof(double complex));
         r->ab[i] = malloc(na * sizeof(double complex));
-        if (!r->at[i] || !r->ae[i] || !r->ab[i])
+        if (!r->ae[i] || !r->ab[i])
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for a_lm (lmax %d)", L);
     }
     /* Masks: w_T1, w_P1, w_T2, w_P2 (cross), w_T1 w_P2, w_P1 w_P2. */
@@ -233,13 +222,7 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
     clef_sht *s0 = NULL;
     clef_sht_spin *s2 = NULL;
     clef_sht_opts so = {.nmaps = nf};
-    int status = clef_sht_create(&s0, r->nside, L, &so);
-    if (status == CLEF_OK)
-        status = clef_sht_analysis(s0, nf, (const double *const *)r->tmap, r->at, o->iterations);
-    clef_sht_destroy(s0);
-    s0 = NULL;
-    if (status == CLEF_OK)
-        status = clef_sht_spin_create(&s2, r->nside, L, &so);
+    int status = clef_sht_spin_create(&s2, r->nside, L, &so);
     if (status == CLEF_OK)
         status = clef_sht_spin_analysis(s2, nf, (const double *const *)r->qmap,
                                         (const double *const *)r->umap, r->ae, r->ab,
@@ -396,7 +379,14 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     r.npix = f1->t->npix;
     int status = CLEF_OK;
     /* TT: main's estimator, unchanged. */
+    o.keep_alm = 1;
     CLEF_CHECK(clef_spectrum_compute(f1->t, f2 ? f2->t : NULL, mask_t, NULL, &o, &res->tt));
+    /* The T a_lm of the TT run (weighted, multipoles removed, uK, to
+     * lmax_ext) serve the TE and TB pseudo-spectra: no second analysis. */
+    for (int i = 0; i < 2; i++) {
+        r.at[i] = res->tt.alm[i];
+        res->tt.alm[i] = NULL;
+    }
     res->bp[CLEF_POL_TT] = res->tt.bp;
     res->cross = r.cross;
     r.lmax = res->tt.lmax;
@@ -407,7 +397,7 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     res->lmax_ext = r.lmax_ext;
     res->nbins = r.nb;
     const clef_map_pol *const f[2] = {f1, f2 ? f2 : f1};
-    CLEF_CHECK(prepare(&r, f, mask_t, mask_p, &o));
+    CLEF_CHECK(prepare(&r, f, mask_t, mask_p));
     CLEF_CHECK(transforms(&r, &o));
     clef_progress("coupling-pol", 0.0);
     if (o.use_cache)

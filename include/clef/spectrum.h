@@ -71,6 +71,9 @@ typedef struct clef_spectrum_opts {
                                   automatic rule of peak.h, as clef peak uses) */
     const char *names[4];      /* map1, map2, mask1, mask2 names for messages (may be NULL) */
     int allow_coord_mismatch;  /* 1: accept map and mask with different COORDSYS */
+    int keep_alm;              /* 1: res->alm receives the a_lm of the weighted map(s), multipoles
+                                  removed, in uK, l, m <= lmax_ext (the polarized spectra reuse
+                                  them) */
 } clef_spectrum_opts;
 
 void clef_spectrum_opts_default(clef_spectrum_opts *o);
@@ -98,6 +101,8 @@ typedef struct clef_spectrum_result {
     double multipoles[2][4];   /* removed monopole and dipole (x, y, z) per map, uK */
     int nstages;
     struct { char name[24]; double seconds; } stage[CLEF_SPECTRUM_MAX_STAGES];
+    double _Complex *alm[2];   /* with opts->keep_alm: a_lm of map1 (and map2), else NULL; freed by
+                                  clef_spectrum_result_free */
 } clef_spectrum_result;
 
 /* Compute band powers.  map2 NULL: auto-spectrum of map1; else the cross-
