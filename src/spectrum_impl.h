@@ -37,6 +37,8 @@ typedef struct clef_spectrum_cov_in {
     const double *tl;           /* signal filter F B^2 p^2, l = 0..lmax */
     const double *wl2;          /* spectrum of the product mask w_a w_b, l = 0..lmax_t */
     const clef_spectrum_opts *opts;
+    const clef_coupling *m2;    /* NULL, or M[w_a w_b] already built from wl2 to lmax (the
+                                   polarized spectra share it between spectra) */
 } clef_spectrum_cov_in;
 
 /* Covariance of the decoupled band powers (nbins x nbins, row-major). */

@@ -69,6 +69,7 @@ typedef struct prun {
     double *pcl[12];  /* te tb ee bb eb be tt11 tt22 ee11 ee22 bb11 bb22 */
     clef_coupling_pol cp;
     clef_coupling_binned *kte, *kpp;
+    clef_coupling *m2[2];             /* M[w_T1 w_P2], M[w_P1 w_P2] for the covariances */
     clef_coupling_pol_binned *keb[2]; /* (EE, BB), (EB, BE) */
 } prun;
 
@@ -105,6 +106,8 @@ static void prun_free(prun *r)
     for (int i = 0; i < 12; i++)
         free(r->pcl[i]);
     clef_coupling_pol_free(&r->cp);
+    clef_coupling_destroy(r->m2[0]);
+    clef_coupling_destroy(r->m2[1]);
     clef_coupling_binned_destroy(r->kte);
     clef_coupling_binned_destroy(r->kpp);
     clef_coupling_pol_binned_destroy(r->keb[0]);
@@ -486,6 +489,9 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     clef_spectrum_cov_in ci = {.lmax = L, .lmax_t = r.lmax_t, .cross = 1, .bins = r.all_bins,
                                .kb = r.kte, .pcl = p3, .w2 = {w_tp, w_tt1, w_pp2}, .tl = r.tl,
                                .wl2 = r.wl[2], .opts = &oc};
+    CHECK_B(clef_spectrum_coupling(&r.m2[0], L, r.wl[2], r.lmax_t, &oc));
+    CHECK_B(clef_spectrum_coupling(&r.m2[1], L, r.wl[3], r.lmax_t, &oc));
+    ci.m2 = r.m2[0];
     CHECK_B(clef_coupling_binned_windows(r.kte, r.cp.te, r.all_bins, r.tl, win));
     p3[0] = r.pcl[P_TE];
     p3[1] = r.pcl[P_TT1];
@@ -498,6 +504,7 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     CHECK_B(clef_coupling_pol_binned_windows(r.keb[0], r.cp.pp, r.cp.mm, r.all_bins, r.tl, win));
     ci.kb = r.kpp;
     ci.wl2 = r.wl[3];
+    ci.m2 = r.m2[1];
     ci.cross = r.cross;
     ci.w2[0] = w_pp;
     ci.w2[1] = w_pp1;
