@@ -101,6 +101,12 @@ typedef struct clef_map_write_opts {
  * (cannot create, write or rename; the message has CFITSIO's status) or
  * CLEF_ENOMEM.  Written in chunks of 2^20 values; no other allocation. */
 int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opts *opts);
+/* The same for a polarized map: one table with columns TEMPERATURE,
+ * Q_POLARISATION, U_POLARISATION (opts->column ignored) and POLCCONV =
+ * 'COSMO' (clef's convention).  CLEF_EINVAL for a missing map or maps of
+ * different nside; otherwise as clef_map_write. */
+int clef_map_write_pol(const clef_map *t, const clef_map *q, const clef_map *u, const char *path,
+                       const clef_map_write_opts *opts);
 
 /* Summary of the valid pixels of a map: rms = sqrt(mean(x^2)), stddev
  * divides by nvalid (population convention, as numpy's default); min, max,

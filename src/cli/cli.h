@@ -119,6 +119,7 @@ void cli_verbose(const char *fmt, ...)
 int cmd_inspect(int argc, char **argv);
 int cmd_convert(int argc, char **argv);
 int cmd_simulate(int argc, char **argv);
+int cmd_simulate_pol(int argc, char **argv); /* clef simulate --polarization */
 int cmd_peak(int argc, char **argv);
 int cmd_spectrum(int argc, char **argv);
 int cmd_spectrum_pol(int argc, char **argv); /* clef spectrum --polarization */
