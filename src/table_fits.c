@@ -132,9 +132,12 @@ static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int primary, int 
     }
 }
 
-int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
+int clef_bandpowers_write_fits_set(const clef_bandpowers *const *bp, int n, const char *path)
 {
-    CLEF_TRY(clef_table_check(bp, path));
+    if (!bp || n < 1)
+        CLEF_FAIL(CLEF_EINVAL, "band-power set for '%s' is empty", path ? path : "");
+    for (int i = 0; i < n; i++)
+        CLEF_TRY(clef_table_check(bp[i], path));
     clef_outfile of;
     CLEF_TRY(clef_outfile_begin(&of, path));
     /* The disk-file entry point takes the name literally (no extended
@@ -145,7 +148,9 @@ int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
     fits_create_diskfile(&f, of.tmp_path, &st);
     if (st)
         return write_fits_fail(&of, st, path, "cannot create the FITS file");
-    write_hdus(f, bp, 1, 0, &st);
+    /* A single table keeps the plain layout (no EXTVER). */
+    for (int i = 0; i < n && !st; i++)
+        write_hdus(f, bp[i], i == 0, n > 1 ? i + 1 : 0, &st);
     int st_close = 0;
     fits_close_file(f, &st_close);
     if (st || st_close)
@@ -154,28 +159,9 @@ int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
     return clef_outfile_commit(&of);
 }
 
-int clef_bandpowers_write_fits_set(const clef_bandpowers *const *bp, int n, const char *path)
+int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
 {
-    if (!bp || n < 1)
-        CLEF_FAIL(CLEF_EINVAL, "band-power set for '%s' is empty", path ? path : "");
-    for (int i = 0; i < n; i++)
-        CLEF_TRY(clef_table_check(bp[i], path));
-    clef_outfile of;
-    CLEF_TRY(clef_outfile_begin(&of, path));
-    unlink(of.tmp_path);
-    fitsfile *f = NULL;
-    int st = 0;
-    fits_create_diskfile(&f, of.tmp_path, &st);
-    if (st)
-        return write_fits_fail(&of, st, path, "cannot create the FITS file");
-    for (int i = 0; i < n && !st; i++)
-        write_hdus(f, bp[i], i == 0, i + 1, &st);
-    int st_close = 0;
-    fits_close_file(f, &st_close);
-    if (st || st_close)
-        return write_fits_fail(&of, st ? st : st_close, path,
-                               "cannot write the band-power FITS file");
-    return clef_outfile_commit(&of);
+    return clef_bandpowers_write_fits_set(&bp, 1, path);
 }
 
 /* ---- reading ----------------------------------------------------------- */
