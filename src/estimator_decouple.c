@@ -258,20 +258,25 @@ int clef_est_windows(clef_estimator *r, est_pair *p)
     int status = clef_coupling_binned_windows(p->kb, r->masks[p->mp].m, p->all_bins, p->tl, all);
     if (status == CLEF_OK)
         status = clef_bandpowers_alloc_windows(p->res.bp, r->lmax_ext);
-    if (status == CLEF_OK) {
-        const int flat = clef_bins_weighting(r->bins) == CLEF_BINS_FLAT;
-        for (int b = 0; b < nb; b++) {
-            const double le = clef_bins_l_eff(r->bins, b);
-            const double scale = flat ? le * (le + 1) / (2 * M_PI) : 1.0;
-            const double *src = all + (size_t)p->rep[b] * n;
-            double *row = p->res.bp->win + (size_t)b * n;
-            row[0] = 0.0;
-            for (size_t l = 1; l < n; l++)
-                row[l] = src[l] * scale * 2 * M_PI / ((double)l * (double)(l + 1));
-        }
-    }
+    if (status == CLEF_OK)
+        clef_spectrum_windows_to_dl(r->bins, p->rep, nb, all, n, n, p->res.bp->win);
     free(all);
     return status;
+}
+
+void clef_spectrum_windows_to_dl(const clef_bins *bins, const int *rep, int nb, const double *all,
+                                 size_t stride, size_t n, double *win)
+{
+    const int flat = clef_bins_weighting(bins) == CLEF_BINS_FLAT;
+    for (int b = 0; b < nb; b++) {
+        const double le = clef_bins_l_eff(bins, b);
+        const double scale = flat ? le * (le + 1) / (2 * M_PI) : 1.0;
+        const double *src = all + (size_t)rep[b] * stride;
+        double *row = win + (size_t)b * n;
+        row[0] = 0.0;
+        for (size_t l = 1; l < n; l++)
+            row[l] = src[l] * scale * 2 * M_PI / ((double)l * (double)(l + 1));
+    }
 }
 
 
@@ -343,9 +348,7 @@ int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_co
     est_kernel *d = &nk[e->nkernels];
     memcpy(d->p, k, sizeof k);
     d->m = NULL;
-    int status = e->o.use_cache ? clef_coupling_create_cached(&d->m, e->lmax_ext, wl, lt,
-                                                              e->o.cache_dir, NULL)
-                                : clef_coupling_create(&d->m, e->lmax_ext, wl, lt);
+    int status = clef_spectrum_coupling(&d->m, e->lmax_ext, wl, lt, &e->o);
     free(own);
     CLEF_TRY(status);
     e->nkernels++;

@@ -9,6 +9,7 @@
 
 #include "core_impl.h"
 #include "estimator_impl.h"
+#include "spectrum_impl.h"
 
 static const char *name_or(const clef_spectrum_opts *o, int i, const char *fallback)
 {
@@ -66,8 +67,8 @@ static int record_meta(clef_bandpowers *bp, const clef_spectrum_opts *o,
 }
 
 /* Fill the table: D_b, C_b, l ranges, errors from the covariance. */
-static void fill_table(clef_bandpowers *bp, const clef_bins *bins, const double *band,
-                       const double *cov)
+void clef_spectrum_fill_table(clef_bandpowers *bp, const clef_bins *bins, const double *band,
+                              const double *cov)
 {
     const int nb = bp->nbins;
     const int flat = clef_bins_weighting(bins) == CLEF_BINS_FLAT;
@@ -112,7 +113,7 @@ int clef_est_tables(clef_estimator *e)
             for (int j = 0; j < nb; j++)
                 crep[(size_t)i * nb + j] = p->cov_all[(size_t)p->rep[i] * na + p->rep[j]];
         }
-        fill_table(p->res.bp, e->bins, band, crep);
+        clef_spectrum_fill_table(p->res.bp, e->bins, band, crep);
         free(crep);
         free(band);
     }

@@ -15,6 +15,7 @@
 #include "clef/estimator.h"
 #include "core_impl.h"
 #include "estimator_impl.h"
+#include "spectrum_impl.h"
 
 void clef_spectrum_opts_default(clef_spectrum_opts *o)
 {
@@ -31,11 +32,28 @@ void clef_spectrum_result_free(clef_spectrum_result *res)
         return;
     clef_bandpowers_free(res->bp);
     res->bp = NULL;
+    for (int i = 0; i < 2; i++) {
+        free(res->alm[i]);
+        res->alm[i] = NULL;
+    }
 }
 
 static const char *name_or(const clef_spectrum_opts *o, int i, const char *fallback)
 {
     return o->names[i] ? o->names[i] : fallback;
+}
+
+/* Effective weights: the mask where the map is valid, 0 elsewhere (the
+ * polarized spectra's Q/U weights, spectrum_pol.c). */
+int clef_spectrum_make_weights(const clef_map *map, const clef_map *mask, double **w_out)
+{
+    double *w = clef_alloc_large((size_t)map->npix * sizeof *w);
+    if (!w)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory for %lld mask weights", (long long)map->npix);
+    for (int64_t p = 0; p < map->npix; p++)
+        w[p] = (map->valid[p] && mask->valid[p]) ? mask->pix[p] : 0.0;
+    *w_out = w;
+    return CLEF_OK;
 }
 
 /* Beam x pixel window x transfer per multipole: the signal filter T_l =
@@ -214,8 +232,14 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
         status = clef_estimator_add_pair(e, fname[0], fname[cross]);
     if (status == CLEF_OK)
         status = clef_estimator_compute(e);
-    if (status == CLEF_OK)
+    if (status == CLEF_OK) {
         clef_estimator_take_result(e, 0, res);
+        /* The polarized spectra (spectrum_pol.c) reuse the T a_lm. */
+        for (int i = 0; o.keep_alm && i <= cross; i++) {
+            res->alm[i] = e->fields[i].alm[0];
+            e->fields[i].alm[0] = NULL;
+        }
+    }
     clef_estimator_destroy(e);
     return status;
 }

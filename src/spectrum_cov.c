@@ -41,6 +41,7 @@
 
 #include "core_impl.h"
 #include "estimator_impl.h"
+#include "spectrum_impl.h"
 
 /* Full-sky estimate of one measured pseudo-spectrum for the covariance
  * (docs/method.md section 7).  C_l = pcl_l / w2 (the "improved" narrow-
@@ -263,34 +264,22 @@ static void term_vector(const term *t, const double *u, const double *v, int n, 
     }
 }
 
-/* Covariance block of pairs p and q over their bins (nb_all_p x nb_all_q). */
-static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double *const *raw,
-                 double *out)
+/* G_ll' = sum_k s_kl s_kl' M^k_ll' / (2l'+1), M^k = k1 for terms of kind 1
+ * (or when k2 is k1), else k2, for nt vectors s (nt x n); then the band
+ * powers' block out = A_p G A_q^T (np x nq, A = K^-1 P of kp and kq),
+ * symmetrised when kp is kq. */
+static int propagate(int n, int nt, const double *s, const int *kind, const clef_coupling *k1,
+                     const clef_coupling *k2, const clef_coupling_binned *kp, int np,
+                     const clef_coupling_binned *kq, int nq, double *out)
 {
-    const int lmax = e->lmax_ext, n = lmax + 1;
-    const int np = p->nb_all, nq = q->nb_all;
-    term t[MAX_TERMS];
-    int nt = 0, status = CLEF_OK;
-    CLEF_TRY(collect_terms(e, p, q, t, &nt));
-    const int wa = e->fields[p->a].wid, wb = e->fields[p->b].wid;
-    const int wc = e->fields[q->a].wid, wd = e->fields[q->b].wid;
-    const clef_coupling *k1 = NULL, *k2 = NULL;
-    CLEF_TRY(clef_est_kernel(e, wa, wc, wb, wd, &k1));
-    CLEF_TRY(clef_est_kernel(e, wa, wd, wb, wc, &k2));
     const int one = k1 == k2;
-    const int theory_total = p == q && p->a == p->b && e->fields[p->a].f.nsplits == 1;
-    double *s = malloc((size_t)nt * n * sizeof *s), *u = malloc((size_t)n * sizeof *u);
-    double *v = malloc((size_t)n * sizeof *v), *inv = malloc((size_t)n * sizeof *inv);
+    int status = CLEF_OK;
+    double *inv = malloc((size_t)n * sizeof *inv);
     double *g = clef_alloc_large((size_t)n * n * sizeof *g);
     double *x = malloc((size_t)np * n * sizeof *x);
-    if (!s || !u || !v || !inv || !g || !x) {
-        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", lmax);
+    if (!inv || !g || !x) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", n - 1);
         goto fail;
-    }
-    for (int k = 0; k < nt; k++) {
-        CLEF_CHECK(estimate(e, p, t[k].u, theory_total, raw, u));
-        CLEF_CHECK(estimate(e, p, t[k].v, theory_total, raw, v));
-        term_vector(&t[k], u, v, n, s + (size_t)k * n);
     }
     for (int l = 0; l < n; l++)
         inv[l] = 1.0 / (2.0 * l + 1.0);
@@ -304,7 +293,7 @@ static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double
             for (int k = 0; k < nt; k++) {
                 const double *sk = s + (size_t)k * n;
                 const double z = sk[l] * sk[lp];
-                if (t[k].kind == 1 || one)
+                if (kind[k] == 1 || one)
                     a1 += z;
                 else
                     a2 += z;
@@ -312,25 +301,103 @@ static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double
             gl[lp] = one ? a1 * m1l[lp] * inv[lp] : (a1 * m1l[lp] + a2 * m2l[lp]) * inv[lp];
         }
     }
-    const double *ap = clef_coupling_binned_kinv_p(p->kb), *aq = clef_coupling_binned_kinv_p(q->kb);
+    const double *ap = clef_coupling_binned_kinv_p(kp), *aq = clef_coupling_binned_kinv_p(kq);
     /* x = A_p G, out = x A_q^T. */
     cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, np, n, n, 1.0, ap, n, g, n, 0.0, x, n);
     cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasTrans, np, nq, n, 1.0, x, n, aq, n, 0.0, out,
                 nq);
-    if (p == q)
+    if (kp == kq)
         for (int i = 0; i < np; i++)
             for (int j = i + 1; j < np; j++) {
                 double z = 0.5 * (out[(size_t)i * np + j] + out[(size_t)j * np + i]);
                 out[(size_t)i * np + j] = out[(size_t)j * np + i] = z;
             }
 fail:
-    free(s);
-    free(u);
-    free(v);
     free(inv);
     free(g);
     free(x);
     return status;
+}
+
+/* Covariance block of pairs p and q over their bins (nb_all_p x nb_all_q). */
+static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double *const *raw,
+                 double *out)
+{
+    const int lmax = e->lmax_ext, n = lmax + 1;
+    term t[MAX_TERMS];
+    int nt = 0, status = CLEF_OK;
+    CLEF_TRY(collect_terms(e, p, q, t, &nt));
+    const int wa = e->fields[p->a].wid, wb = e->fields[p->b].wid;
+    const int wc = e->fields[q->a].wid, wd = e->fields[q->b].wid;
+    const clef_coupling *k1 = NULL, *k2 = NULL;
+    CLEF_TRY(clef_est_kernel(e, wa, wc, wb, wd, &k1));
+    CLEF_TRY(clef_est_kernel(e, wa, wd, wb, wc, &k2));
+    const int theory_total = p == q && p->a == p->b && e->fields[p->a].f.nsplits == 1;
+    int kind[MAX_TERMS];
+    double *s = malloc((size_t)nt * n * sizeof *s), *u = malloc((size_t)n * sizeof *u);
+    double *v = malloc((size_t)n * sizeof *v);
+    if (!s || !u || !v) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", lmax);
+        goto fail;
+    }
+    for (int k = 0; k < nt; k++) {
+        CLEF_CHECK(estimate(e, p, t[k].u, theory_total, raw, u));
+        CLEF_CHECK(estimate(e, p, t[k].v, theory_total, raw, v));
+        term_vector(&t[k], u, v, n, s + (size_t)k * n);
+        kind[k] = t[k].kind;
+    }
+    status = propagate(n, nt, s, kind, k1, k2, p->kb, p->nb_all, q->kb, q->nb_all, out);
+fail:
+    free(s);
+    free(u);
+    free(v);
+    return status;
+}
+
+/* One pair with one given kernel (the polarized spectra): the terms C^aa
+ * C^bb (as s_l = sqrt|C^aa_l C^bb_l|) and C^ab C^ab of the expression
+ * above with both kernels M[w_a w_b], from measured pseudo-spectra. */
+int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
+{
+    const int lmax = in->lmax, n = lmax + 1;
+    const int nb = clef_bins_count(in->bins);
+    int status = CLEF_OK;
+    double *c[3] = {NULL, NULL, NULL};
+    double *s = malloc((size_t)2 * n * sizeof *s);
+    for (int k = 0; k < 3; k++)
+        c[k] = malloc((size_t)n * sizeof(double));
+    if (!s || !c[0] || !c[1] || !c[2]) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
+        goto fail;
+    }
+    /* c[0] = C^ab, c[1] = C^aa, c[2] = C^bb. */
+    smooth_estimate(in->bins, in->pcl[0], in->w2[0], lmax, !in->cross, c[0]);
+    if (in->cross) {
+        smooth_estimate(in->bins, in->pcl[1], in->w2[1], lmax, 1, c[1]);
+        smooth_estimate(in->bins, in->pcl[2], in->w2[2], lmax, 1, c[2]);
+    } else {
+        memcpy(c[1], c[0], (size_t)n * sizeof(double));
+        memcpy(c[2], c[0], (size_t)n * sizeof(double));
+    }
+    for (int l = 0; l < n; l++) {
+        s[l] = sqrt(fabs(c[1][l] * c[2][l]));
+        s[n + l] = c[0][l];
+    }
+    static const int kind[2] = {1, 1};
+    status = propagate(n, 2, s, kind, in->m2, in->m2, in->kb, nb, in->kb, nb, cov);
+fail:
+    free(s);
+    for (int k = 0; k < 3; k++)
+        free(c[k]);
+    return status;
+}
+
+int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
+                           const clef_spectrum_opts *o)
+{
+    if (o->use_cache)
+        return clef_coupling_create_cached(out, lmax, wl, wl_lmax, o->cache_dir, NULL);
+    return clef_coupling_create(out, lmax, wl, wl_lmax);
 }
 
 int clef_est_covariance(clef_estimator *e)

@@ -2,7 +2,47 @@
 #ifndef CLEF_SPECTRUM_IMPL_H
 #define CLEF_SPECTRUM_IMPL_H
 
+#include "clef/bins.h"
+#include "clef/coupling.h"
 #include "clef/spectrum.h"
+
+/* Effective weights: the mask where the map is valid, 0 elsewhere (new
+ * array; spectrum.c). */
+int clef_spectrum_make_weights(const clef_map *map, const clef_map *mask, double **w_out);
+
+/* Fill a table's D_b, C_b, l ranges and errors from band powers of `bins`
+ * and their covariance (nbins x nbins; estimator_result.c). */
+void clef_spectrum_fill_table(clef_bandpowers *bp, const clef_bins *bins, const double *band,
+                              const double *cov);
+
+/* Band-power windows acting on D_l (docs/formats-spectrum.md) from windows
+ * acting on C_l: row rep[b] of `all` (row length `stride`, first n columns
+ * used) into row b of win (nb x n); flat-weighted bands scaled to D_b
+ * (estimator_decouple.c). */
+void clef_spectrum_windows_to_dl(const clef_bins *bins, const int *rep, int nb, const double *all,
+                                 size_t stride, size_t n, double *win);
+
+/* One pair's band-power covariance from measured pseudo-spectra and a
+ * given kernel (spectrum_cov.c; the polarized spectra, spectrum_pol.c). */
+typedef struct clef_spectrum_cov_in {
+    int lmax;                   /* multipoles decoupled */
+    int cross;                  /* 1: cross-spectrum of two maps */
+    const clef_bins *bins;
+    const clef_coupling_binned *kb;
+    double *const *pcl;         /* pseudo-spectra before noise subtraction:
+                                   [0] map1 x map2 (or auto), [1] map1 auto, [2] map2 auto */
+    double w2[3];               /* mean of w_a w_b for the pairs of pcl[0..2] */
+    const clef_coupling *m2;    /* the kernel M[w_a w_b] to lmax */
+} clef_spectrum_cov_in;
+
+/* Covariance of the decoupled band powers (nbins x nbins, row-major):
+ * [C^aa C^bb + C^ab C^ab] M[w_a w_b] / (2l'+1), propagated through K. */
+int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov);
+
+/* Unbinned coupling matrix of a mask spectrum, through the cache when the
+ * options allow it (spectrum_cov.c). */
+int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
+                           const clef_spectrum_opts *o);
 
 /* Cache key of the mask spectra: the weights, nside, lmax_t, iterations. */
 void clef_spectrum_mask_key(int64_t nside, int lmax_t, int iterations, const double *w2,

@@ -68,9 +68,19 @@ static void write_primary(fitsfile *f, int *st)
     fits_write_date(f, st);
 }
 
+/* extver > 0: the HDUs of set extver of a file of several sets
+ * (clef_bandpowers_write_fits_set) carry EXTVER = extver (FITS standard
+ * 4.0, section 4.4.2.6). */
+static void write_extver(fitsfile *f, int extver, int *st)
+{
+    if (extver > 0)
+        fits_write_key_lng(f, "EXTVER", extver, "band-power set number in this file", st);
+}
+
 /* The table, covariance and window HDUs of one band-power set; ext NULL:
  * the names BANDPOWER, BANDCOV, BANDWIN, else those followed by " ext". */
-static void write_set(fitsfile *f, const clef_bandpowers *bp, const char *ext, int *st)
+static void write_set(fitsfile *f, const clef_bandpowers *bp, const char *ext, int extver,
+                      int *st)
 {
     const LONGLONG n = bp->nbins;
     char en[3][FLEN_VALUE];
@@ -90,6 +100,7 @@ static void write_set(fitsfile *f, const clef_bandpowers *bp, const char *ext, i
         snprintf(key, sizeof key, "TTYPE%d", k + 1);
         fits_modify_comment(f, key, fits_comments[k], st);
     }
+    write_extver(f, extver, st);
     fits_write_col(f, TINT, 1, 1, 1, n, bp->l_lo, st);
     fits_write_col(f, TINT, 2, 1, 1, n, bp->l_hi, st);
     fits_write_col(f, TDOUBLE, 3, 1, 1, n, bp->l_eff, st);
@@ -111,6 +122,7 @@ static void write_set(fitsfile *f, const clef_bandpowers *bp, const char *ext, i
         long naxes[2] = {bp->nbins, bp->nbins};
         fits_create_img(f, DOUBLE_IMG, 2, naxes, st);
         fits_write_key_str(f, "EXTNAME", en[1], "covariance of D_BAND between bins", st);
+        write_extver(f, extver, st);
         fits_write_key_str(f, "BUNIT", "uK^4", "unit of the covariance", st);
         fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
         fits_write_img(f, TDOUBLE, 1, n * n, bp->cov, st);
@@ -121,6 +133,7 @@ static void write_set(fitsfile *f, const clef_bandpowers *bp, const char *ext, i
         long naxes[2] = {bp->win_lmax + 1, bp->nbins};
         fits_create_img(f, DOUBLE_IMG, 2, naxes, st);
         fits_write_key_str(f, "EXTNAME", en[2], "band-power window functions W_bl", st);
+        write_extver(f, extver, st);
         fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
         fits_write_key_lng(f, "WINLMIN", 0, "multipole of the first column", st);
         fits_write_key_lng(f, "WINLMAX", bp->win_lmax, "multipole of the last column", st);
@@ -132,7 +145,7 @@ static void write_set(fitsfile *f, const clef_bandpowers *bp, const char *ext, i
 static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
 {
     write_primary(f, st);
-    write_set(f, bp, NULL, st);
+    write_set(f, bp, NULL, 0, st);
 }
 
 typedef struct fits_job {
@@ -151,9 +164,9 @@ static void write_job(fitsfile *f, const fits_job *j, int *st)
         return;
     }
     write_primary(f, st);
-    fits_write_key_lng(f, "NPAIRS", j->n, "band-power sets (pairs of fields) in this file", st);
+    fits_write_key_lng(f, "NPAIRS", j->n, "band-power sets (pairs, spectra) in this file", st);
     for (int k = 0; k < j->n && !*st; k++)
-        write_set(f, j->set[k], j->names[k], st);
+        write_set(f, j->set[k], j->names ? j->names[k] : NULL, k + 1, st);
     if (j->cov && !*st) {
         long naxes[2] = {j->ncov, j->ncov};
         fits_create_img(f, DOUBLE_IMG, 2, naxes, st);
@@ -203,8 +216,9 @@ int clef_bandpowers_write_fits_set(const clef_bandpowers *const *bp, const char 
     for (int k = 0; k < n; k++) {
         CLEF_TRY(clef_table_check(bp[k], path));
         if (bp[k]->nbins != bp[0]->nbins)
-            CLEF_FAIL(CLEF_EINVAL, "%s: pair '%s' has %d bins, pair '%s' %d", path, names[k],
-                      bp[k]->nbins, names[0], bp[0]->nbins);
+            CLEF_FAIL(CLEF_EINVAL, "%s: band-power set %d ('%s') has %d bins, set 1 ('%s') %d",
+                      path, k + 1, names ? names[k] : "", bp[k]->nbins, names ? names[0] : "",
+                      bp[0]->nbins);
     }
     if (cov && ncov != n * bp[0]->nbins)
         CLEF_FAIL(CLEF_EINVAL, "%s: joint covariance of %d rows for %d pairs of %d bins", path,

@@ -2,7 +2,7 @@
  * of a list of fields (field.h) as decoupled band powers, with the joint
  * Gaussian covariance of all of them (pseudo-C_l method, Hivon et al.
  * 2002, ApJ 567, 2; covariance after Garcia-Garcia, Alonso & Bellini 2019,
- * JCAP 10, 043, generalised to four fields: docs/method.md section 9).
+ * JCAP 10, 043, generalised to four fields: docs/method.md section 10).
  *
  * Plan, then execute:
  *   clef_estimator_create(&e, &opts);      run-wide options (spectrum.h)

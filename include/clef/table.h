@@ -70,10 +70,12 @@ const char *clef_bandpowers_meta_get(const clef_bandpowers *bp, const char *key)
 
 /* Write atomically (temporary file + rename).  FITS output passes fitsverify. */
 int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path);
-/* Several band-power sets of the same bins in one FITS file: for set k the
+/* Several band-power sets of the same bins in one FITS file (the pairs of
+ * fields of clef spectrum --run, the six polarized spectra): for set k the
  * HDUs "BANDPOWER names[k]", "BANDCOV names[k]", "BANDWIN names[k]" (names
- * cut to 56 characters), then, when cov is not NULL, the ncov x ncov joint
- * covariance "JOINTCOV" (ncov = n x nbins, sets in order). */
+ * cut to 56 characters; names NULL: plain BANDPOWER, BANDCOV, BANDWIN),
+ * each with EXTVER = k + 1, then, when cov is not NULL, the ncov x ncov
+ * joint covariance "JOINTCOV" (ncov = n x nbins, sets in order). */
 int clef_bandpowers_write_fits_set(const clef_bandpowers *const *bp, const char *const *names,
                                    int n, const double *cov, int ncov, const char *path);
 int clef_bandpowers_write_csv(const clef_bandpowers *bp, const char *path);

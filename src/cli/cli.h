@@ -122,8 +122,10 @@ void cli_verbose(const char *fmt, ...)
 int cmd_inspect(int argc, char **argv);
 int cmd_convert(int argc, char **argv);
 int cmd_simulate(int argc, char **argv);
+int cmd_simulate_pol(int argc, char **argv); /* clef simulate --polarization */
 int cmd_peak(int argc, char **argv);
 int cmd_spectrum(int argc, char **argv);
+int cmd_spectrum_pol(int argc, char **argv); /* clef spectrum --polarization */
 /* clef spectrum --run FILE: many fields from a run file (cmd_spectrum_run.c). */
 int cmd_spectrum_run(int argc, char **argv);
 /* Tables indexed by l for the spectrum command (cmd_spectrum.c): the last
