@@ -3,6 +3,7 @@
 #define CLEF_PY_MAIN
 #include "pyclef.h"
 
+#include <limits.h>
 #include <math.h>
 #include <stdlib.h>
 #include <string.h>
@@ -288,6 +289,36 @@ PyObject *pyclef_vec_int(const int *v, npy_intp n)
     if (a && n)
         memcpy(PyArray_DATA((PyArrayObject *)a), v, (size_t)n * sizeof(int));
     return a;
+}
+
+int pyclef_opt_int(PyObject *o, void *out)
+{
+    if (o == Py_None)
+        return 1;
+    if (!PyLong_Check(o)) {
+        PyErr_Format(PyExc_TypeError, "expected an int or None, got %.80s", Py_TYPE(o)->tp_name);
+        return 0;
+    }
+    const long v = PyLong_AsLong(o);
+    if (v == -1 && PyErr_Occurred())
+        return 0;
+    if (v < INT_MIN || v > INT_MAX) {
+        PyErr_Format(PyExc_OverflowError, "%ld does not fit in a C int", v);
+        return 0;
+    }
+    *(int *)out = (int)v;
+    return 1;
+}
+
+int pyclef_opt_double(PyObject *o, void *out)
+{
+    if (o == Py_None)
+        return 1;
+    const double v = PyFloat_AsDouble(o);
+    if (v == -1.0 && PyErr_Occurred())
+        return 0;
+    *(double *)out = v;
+    return 1;
 }
 
 int pyclef_set(PyObject *d, const char *key, PyObject *value)

@@ -75,6 +75,11 @@ PyObject *pyclef_vec_int(const int *v, npy_intp n);
 PyObject *pyclef_bandpowers_dict(const clef_bandpowers *bp);
 clef_bandpowers *pyclef_bandpowers_from(PyObject *obj, const char *what);
 
+/* PyArg "O&" converters: an int (or None, leaving the default) into an
+ * int; a float (or None) into a double. */
+int pyclef_opt_int(PyObject *o, void *out);
+int pyclef_opt_double(PyObject *o, void *out);
+
 /* Set a dict item and drop the value's reference; returns -1 on error
  * (also when value is NULL). */
 int pyclef_set(PyObject *d, const char *key, PyObject *value);
