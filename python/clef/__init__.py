@@ -15,3 +15,55 @@ from ._clef import __version__  # noqa: F401
 # A library must not print: without this handler Python's last-resort
 # handler would write the logger's warnings to stderr.
 _logging.getLogger("clef").addHandler(_logging.NullHandler())
+
+import math as _math
+
+import numpy as _np
+
+from . import _clef
+
+_DEG = _math.pi / 180.0
+
+
+def build_mask(nside=None, *, from_map=None, threshold=None, patch=None, latitude_cut=None,
+               holes=None, taper=None, taper_width=None, erode=0.0):
+    """A mask as `clef mask` builds it, in the same order and units (degrees).
+
+    Start from an all-observed mask of `nside`, or from the map `from_map`
+    (a float64 RING array: observed where the value is > 0, or >= threshold
+    when one is given; NaN pixels are unobserved); then keep only the disc
+    `patch` = (lon, lat, radius) [deg]; mask |latitude| < `latitude_cut`
+    [deg]; cut `holes` (a source-list path, or an (n, 3) array of lon [deg],
+    lat [deg], radius [arcmin]); finally taper: `taper` 'c1', 'c2' or
+    'gauss' with `taper_width` [deg] (apodization length, or FWHM for
+    gauss) and `erode` [deg] (gauss only).  Returns a float64 RING array.
+    """
+    if (nside is None) == (from_map is None):
+        raise ValueError("give exactly one of nside and from_map")
+    if from_map is not None:
+        m = _clef.mask_binarize(from_map, threshold=0.0 if threshold is None else float(threshold),
+                                inclusive=threshold is not None)
+    else:
+        m = _clef.mask_full(nside)
+    if patch is not None:
+        lon, lat, r = patch
+        m = _clef.mask_keep_disc(m, lon * _DEG, lat * _DEG, r * _DEG)
+    if latitude_cut is not None:
+        m = _clef.mask_cut_latitude(m, latitude_cut * _DEG)
+    if holes is not None:
+        if isinstance(holes, (str, bytes)) or hasattr(holes, "__fspath__"):
+            h = _clef.mask_holes_read(holes)
+        else:
+            h = _np.array(holes, dtype=_np.float64, ndmin=2)
+            if h.shape[1:] != (3,):
+                raise ValueError("holes must be an (n, 3) array: lon [deg], lat [deg], "
+                                 "radius [arcmin]")
+            h = _np.ascontiguousarray(h * [_DEG, _DEG, _DEG / 60.0])
+        m = _clef.mask_cut_holes(m, h)
+    if taper is not None:
+        if taper_width is None:
+            raise ValueError("taper needs taper_width [deg]")
+        m = _clef.mask_apodize(m, taper, taper_width * _DEG, erode=erode * _DEG)
+    elif taper_width is not None:
+        raise ValueError("taper_width given without taper ('c1', 'c2' or 'gauss')")
+    return m

@@ -80,6 +80,10 @@ clef_bandpowers *pyclef_bandpowers_from(PyObject *obj, const char *what);
 int pyclef_opt_int(PyObject *o, void *out);
 int pyclef_opt_double(PyObject *o, void *out);
 
+/* A first-peak result as a dict (py_peak.c). */
+struct clef_peak_result;
+PyObject *pyclef_peak_dict(const struct clef_peak_result *r);
+
 /* Set a dict item and drop the value's reference; returns -1 on error
  * (also when value is NULL). */
 int pyclef_set(PyObject *d, const char *key, PyObject *value);
