@@ -67,3 +67,29 @@ def build_mask(nside=None, *, from_map=None, threshold=None, patch=None, latitud
     elif taper_width is not None:
         raise ValueError("taper_width given without taper ('c1', 'c2' or 'gauss')")
     return m
+
+
+def _cosmo(quantity, doc):
+    def f(z, **params):
+        return _clef.cosmo_eval(quantity, float(z), **params)
+    f.__name__ = quantity
+    f.__qualname__ = quantity
+    f.__doc__ = doc + "\n\nParameters: keywords of clef.cosmo_params (default Planck 2018)."
+    return f
+
+
+hubble = _cosmo("hubble", "H(z) in km/s/Mpc.")
+baryon_loading = _cosmo("baryon_loading", "Baryon loading R(z) = 3 rho_b / (4 rho_gamma).")
+sound_speed = _cosmo("sound_speed", "Photon-baryon sound speed at z, in units of c.")
+sound_horizon = _cosmo("sound_horizon", "Comoving sound horizon r_s(z) [Mpc].")
+comoving_distance = _cosmo("comoving_distance", "Line-of-sight comoving distance chi(z) [Mpc].")
+transverse_distance = _cosmo("transverse_distance", "Transverse comoving distance D_M(z) [Mpc].")
+conformal_time = _cosmo("conformal_time", "Conformal time eta(z) times c [Mpc].")
+damping_scale = _cosmo("damping_scale", "Photon-diffusion damping wavenumber k_D(z) [1/Mpc].")
+
+
+def zstar(**params):
+    """Last-scattering redshift z_* (Hu & Sugiyama 1996, eq. E1).
+
+    Parameters: keywords of clef.cosmo_params (default Planck 2018)."""
+    return _clef.cosmo_eval("zstar", 0.0, **params)
