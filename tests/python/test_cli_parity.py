@@ -203,7 +203,7 @@ def test_peak_bad_input(model_table, tmp_path):
     with pytest.raises(clef.FileError):
         clef.peak_find(tmp_path / "missing.fits")
     t = clef.read_bandpowers(model_table)
-    t["dl_err"][:] = -1.0  # non-positive errors: unusable input (peak.h)
+    t["dl_err"][:] = 0.0  # zero errors: unusable input (peak.h)
     with pytest.raises(clef.InvalidArgumentError):
         clef.peak_find(t)
     with pytest.raises(ValueError, match="l_eff"):
