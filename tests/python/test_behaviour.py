@@ -1,0 +1,168 @@
+"""What a Python user expects of the module: the library's messages go to
+the logging logger "clef" and nothing is printed unless asked; errors carry
+the library's status and message; the GIL is released while the library
+computes; no memory is lost over 1000 create/destroy cycles."""
+import gc
+import logging
+import os
+import subprocess
+import sys
+import threading
+import time
+import tracemalloc
+
+import numpy as np
+import pytest
+
+import clef
+
+
+def test_error_hierarchy():
+    assert issubclass(clef.InvalidArgumentError, clef.Error)
+    assert issubclass(clef.InvalidArgumentError, ValueError)
+    assert issubclass(clef.FileError, OSError)
+    assert issubclass(clef.NumericalError, ArithmeticError)
+    with pytest.raises(clef.InvalidArgumentError) as e:
+        clef.Sht(16, 8, mmax=4, nmaps=1).ring_info(999)
+    assert e.value.status == 1 and e.value.message and str(e.value) == e.value.message
+    assert clef.strerror(3)
+
+
+def test_log_goes_to_logging(caplog):
+    m = clef.mask_full(8)
+    with caplog.at_level(logging.WARNING, logger="clef"):
+        clef.Sht(8, 30)  # lmax above 3 nside - 1: the library warns
+    assert any(r.name == "clef" and r.levelno == logging.WARNING and "not invertible" in r.message
+               for r in caplog.records), caplog.records
+    caplog.clear()
+    with caplog.at_level(logging.ERROR, logger="clef"):
+        clef.Sht(8, 30)
+    assert not caplog.records
+    assert clef.mask_moments(m)["fsky"] == 1.0
+
+
+def test_nothing_printed(tmp_path):
+    # A warning from the library, an error raised: neither is printed.
+    code = ("import clef\n"
+            "clef.Sht(8, 30)\n"
+            "try:\n    clef.read_map('/nonexistent.fits')\nexcept clef.FileError:\n    pass\n")
+    p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                       env=dict(os.environ))
+    assert p.returncode == 0, p.stderr
+    assert p.stdout == "" and p.stderr == ""
+    # ... unless asked: logging configured by the application.
+    p = subprocess.run([sys.executable, "-c", "import logging; logging.basicConfig()\n" + code],
+                       capture_output=True, text=True)
+    assert "WARNING:clef:" in p.stderr and "not invertible" in p.stderr
+
+
+def test_gil_released():
+    # While a transform runs in one thread, the main thread keeps running
+    # Python code: the longest pause it sees is far below the call's length.
+    plan = clef.Sht(128, 383)
+    m = np.random.default_rng(0).normal(size=plan.npix)
+    t0 = time.perf_counter()
+    plan.analysis(m, iterations=4)
+    single = time.perf_counter() - t0
+    done = threading.Event()
+
+    def work():
+        plan.analysis(m, iterations=4)
+        done.set()
+
+    th = threading.Thread(target=work)
+    last = time.perf_counter()
+    gap = 0.0
+    th.start()
+    while not done.is_set():
+        now = time.perf_counter()
+        gap = max(gap, now - last)
+        last = now
+    th.join()
+    assert single > 0.05, "transform too quick to tell"
+    assert gap < 0.5 * single, (gap, single)
+
+
+def test_plan_used_from_two_threads():
+    # One plan, two threads: calls wait for each other (sht.h forbids
+    # concurrent transforms on a plan) and give the same result.
+    plan = clef.Sht(32, 64)
+    m = np.random.default_rng(1).normal(size=plan.npix)
+    want = plan.analysis(m)
+    out = [None, None]
+
+    def work(i):
+        out[i] = plan.analysis(m)
+
+    ts = [threading.Thread(target=work, args=(i,)) for i in range(2)]
+    for t in ts:
+        t.start()
+    for t in ts:
+        t.join()
+    assert np.array_equal(out[0], want) and np.array_equal(out[1], want)
+
+
+def rss_kib():
+    with open("/proc/self/status") as f:
+        for line in f:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1])
+    raise RuntimeError("no VmRSS")
+
+
+def test_no_leaks(sky, tmp_path):
+    mask, _ = clef.read_map(sky / "mask.fits")
+    small = clef.mask_full(8)
+    cl = clef.theory_cl(lmax=30)
+    table = {"l_lo": [2], "l_hi": [10], "l_eff": [6.0], "dl": [1.0], "dl_err": [0.1]}
+
+    def cycle(i):
+        p = clef.Sht(8, 16)
+        a = p.analysis(small, iterations=0)
+        p.synthesis(a)
+        del p
+        clef.read_map(sky / "mask.fits")
+        clef.mask_moments(mask)
+        clef.simulate(8, cl, seed=i, lmax=16)
+        clef.mask_apodize(small, "c1", 0.3)
+        for bad in (lambda: clef.read_map("/nonexistent.fits"),
+                    lambda: clef.spectrum(small, small, lmax=1),
+                    lambda: clef.peak_find(table),
+                    lambda: clef.Sht(3, 8)):
+            try:
+                bad()
+            except (clef.Error, ValueError):
+                pass
+
+    for i in range(100):  # warm up: caches, pools, first-use allocations
+        cycle(i)
+    gc.collect()
+    tracemalloc.start()
+    r0 = rss_kib()
+    t0 = tracemalloc.get_traced_memory()[0]
+    for i in range(1000):
+        cycle(i)
+    gc.collect()
+    t1 = tracemalloc.get_traced_memory()[0]
+    r1 = rss_kib()
+    tracemalloc.stop()
+    # A leak of one small array or plan per cycle would be >= 1000 x 1.5 kB.
+    assert t1 - t0 < 200_000, f"Python-side growth {t1 - t0} bytes over 1000 cycles"
+    assert r1 - r0 < 4096, f"RSS grew by {r1 - r0} KiB over 1000 cycles"
+
+
+def test_no_leaks_spectrum(sky):
+    # The estimator's own result objects (band powers, windows, peak): 1000
+    # calls on a small sky with the coupling from the cache.
+    m = clef.simulate(8, clef.theory_cl(lmax=23), seed=2)
+    w = clef.mask_cut_latitude(clef.mask_full(8), 0.2)
+    for _ in range(20):
+        clef.spectrum(m, w, bin_width=4, peak=False)
+    gc.collect()
+    r0 = rss_kib()
+    for _ in range(1000):
+        r = clef.spectrum(m, w, bin_width=4, peak=False)
+    del r
+    gc.collect()
+    r1 = rss_kib()
+    assert r1 - r0 < 4096, f"RSS grew by {r1 - r0} KiB over 1000 spectra"
