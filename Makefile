@@ -161,7 +161,7 @@ fuzz-ci: fuzz-build
 	@sh tests/fuzz/run.sh ci 20
 
 bench: deps
-	@$(MAKE) --no-print-directory all $(BENCH_BIN)
+	@$(MAKE) --no-print-directory all python $(BENCH_BIN)
 	@sh bench/run.sh $(BUILD)
 
 demo: deps
