@@ -17,6 +17,7 @@ from ._clef import __version__  # noqa: F401
 _logging.getLogger("clef").addHandler(_logging.NullHandler())
 
 import math as _math
+from typing import Optional as _Optional
 
 import numpy as _np
 
@@ -25,8 +26,11 @@ from . import _clef
 _DEG = _math.pi / 180.0
 
 
-def build_mask(nside=None, *, from_map=None, threshold=None, patch=None, latitude_cut=None,
-               holes=None, taper=None, taper_width=None, erode=0.0):
+def build_mask(nside: _Optional[int] = None, *, from_map=None,
+               threshold: _Optional[float] = None, patch=None,
+               latitude_cut: _Optional[float] = None, holes=None,
+               taper: _Optional[str] = None, taper_width: _Optional[float] = None,
+               erode: float = 0.0) -> "_np.ndarray":
     """A mask as `clef mask` builds it, in the same order and units (degrees).
 
     Start from an all-observed mask of `nside`, or from the map `from_map`
@@ -70,7 +74,7 @@ def build_mask(nside=None, *, from_map=None, threshold=None, patch=None, latitud
 
 
 def _cosmo(quantity, doc):
-    def f(z, **params):
+    def f(z: float, **params: float) -> float:
         return _clef.cosmo_eval(quantity, float(z), **params)
     f.__name__ = quantity
     f.__qualname__ = quantity
@@ -88,7 +92,7 @@ conformal_time = _cosmo("conformal_time", "Conformal time eta(z) times c [Mpc]."
 damping_scale = _cosmo("damping_scale", "Photon-diffusion damping wavenumber k_D(z) [1/Mpc].")
 
 
-def zstar(**params):
+def zstar(**params: float) -> float:
     """Last-scattering redshift z_* (Hu & Sugiyama 1996, eq. E1).
 
     Parameters: keywords of clef.cosmo_params (default Planck 2018)."""

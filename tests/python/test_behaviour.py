@@ -166,3 +166,20 @@ def test_no_leaks_spectrum(sky):
     gc.collect()
     r1 = rss_kib()
     assert r1 - r0 < 4096, f"RSS grew by {r1 - r0} KiB over 1000 spectra"
+
+
+def test_stubs_and_signatures():
+    # The type stubs name exactly what the extension offers, and every
+    # function has a signature Python can read (keyword names, defaults).
+    import ast
+    import inspect
+
+    from clef import _clef
+    stub = ast.parse(open(os.path.join(os.path.dirname(clef.__file__), "_clef.pyi")).read())
+    names = {n.name for n in stub.body if isinstance(n, (ast.FunctionDef, ast.ClassDef))}
+    public = {n for n in dir(_clef) if not n.startswith("_") and n != "NSIDE_MAX"}
+    assert names == public, (names ^ public)
+    sig = inspect.signature(clef.spectrum)
+    assert sig.parameters["iterations"].default == 1
+    assert sig.parameters["peak_l_max"].default == 400.0
+    assert inspect.signature(clef.Sht.analysis).parameters["iterations"].default == 3
