@@ -24,6 +24,15 @@ static void sht_dealloc(ShtObject *self)
     Py_TYPE(self)->tp_free((PyObject *)self);
 }
 
+static void lock_plan(ShtObject *self)
+{
+    if (!PyThread_acquire_lock(self->lock, NOWAIT_LOCK)) {
+        Py_BEGIN_ALLOW_THREADS
+        PyThread_acquire_lock(self->lock, WAIT_LOCK);
+        Py_END_ALLOW_THREADS
+    }
+}
+
 static int sht_init(ShtObject *self, PyObject *args, PyObject *kw)
 {
     static char *kwl[] = {"nside", "lmax", "mmax", "nmaps", "no_ring_weights", NULL};
@@ -53,8 +62,13 @@ static int sht_init(ShtObject *self, PyObject *args, PyObject *kw)
         PyErr_NoMemory();
         return -1;
     }
-    clef_sht_destroy(self->p);
-    self->p = NULL;
+    if (self->p) {
+        /* __init__ called again: wait for a transform of the old plan. */
+        lock_plan(self);
+        clef_sht_destroy(self->p);
+        self->p = NULL;
+        PyThread_release_lock(self->lock);
+    }
     pyclef_log_refresh();
     clef_sht *p = NULL;
     int st;
@@ -77,15 +91,6 @@ static int sht_ready(ShtObject *self)
         return 0;
     }
     return 1;
-}
-
-static void lock_plan(ShtObject *self)
-{
-    if (!PyThread_acquire_lock(self->lock, NOWAIT_LOCK)) {
-        Py_BEGIN_ALLOW_THREADS
-        PyThread_acquire_lock(self->lock, WAIT_LOCK);
-        Py_END_ALLOW_THREADS
-    }
 }
 
 static PyObject *sht_analysis(ShtObject *self, PyObject *args, PyObject *kw)

@@ -157,7 +157,12 @@ static PyObject *py_sim_alm(PyObject *self, PyObject *args, PyObject *kw)
     npy_intp na = (npy_intp)clef_alm_size(lmax, lmax);
     PyObject *alm = PyArray_SimpleNew(1, &na, NPY_CDOUBLE);
     if (alm) {
-        const int st = clef_sim_alm(lmax, PyArray_DATA(cl), seed, PyArray_DATA((PyArrayObject *)alm));
+        const double *clv = PyArray_DATA(cl);
+        double complex *av = PyArray_DATA((PyArrayObject *)alm);
+        int st;
+        Py_BEGIN_ALLOW_THREADS
+        st = clef_sim_alm(lmax, clv, seed, av);
+        Py_END_ALLOW_THREADS
         if (st != CLEF_OK) {
             Py_CLEAR(alm);
             pyclef_raise(st);
