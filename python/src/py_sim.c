@@ -36,12 +36,12 @@ static PyObject *py_simulate(PyObject *self, PyObject *args, PyObject *kw)
                           "noise_depth", "hits", "splits", "return_alm", NULL};
     long long nside;
     PyObject *cl_o, *beam_o = Py_None, *hits_o = Py_None;
-    int lmax = -1, pixwin = 1, splits = 1, want_alm = 0;
+    int lmax = -1, with_pixel_window = 1, splits = 1, want_alm = 0;
     unsigned long long seed = 1;
     double fwhm = 0, depth = 0;
     if (!PyArg_ParseTupleAndKeywords(args, kw, "LO|$O&KdOpdOip:simulate", kwl, &nside, &cl_o,
-                                     pyclef_opt_int, &lmax, &seed, &fwhm, &beam_o, &pixwin, &depth,
-                                     &hits_o, &splits, &want_alm))
+                                     pyclef_opt_int, &lmax, &seed, &fwhm, &beam_o,
+                                     &with_pixel_window, &depth, &hits_o, &splits, &want_alm))
         return NULL;
     /* The CLI's checks (src/cli/cmd_simulate.c). */
     if (!clef_nside_valid(nside))
@@ -107,7 +107,7 @@ static PyObject *py_simulate(PyObject *self, PyObject *args, PyObject *kw)
     clef_sim_opts so = {0};
     so.seed = seed;
     so.beam = bl;
-    so.pixel_window = pixwin;
+    so.pixel_window = with_pixel_window;
     so.noise_depth = depth;
     so.hits = hits_a ? PyArray_DATA(hits_a) : NULL;
     so.nsplits = splits;

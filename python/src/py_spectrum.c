@@ -131,7 +131,8 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
     PyObject *bins_o = Py_None, *beam_o = Py_None, *transfer_o = Py_None, *noise_o = Py_None;
     PyObject *theory_o = Py_None;
     const char *unit = "", *coordsys = "", *mcoordsys = "", *cache_dir = NULL;
-    int lmax = 0, bin_width = 0, log_bins = 0, pixwin = 1, iterations = CLEF_SPECTRUM_ITERATIONS;
+    int lmax = 0, bin_width = 0, log_bins = 0, with_pixel_window = 1;
+    int iterations = CLEF_SPECTRUM_ITERATIONS;
     int keep = 0, cache = 1, peak = 1, coord = 0;
     double fwhm = 0.0;
     clef_spectrum_opts so;
@@ -141,9 +142,9 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
     if (!PyArg_ParseTupleAndKeywords(
             args, kw, "OO|OO$sssiiiOdOpOOOippzpdddO&p:spectrum", kwl, &map_o[0], &mask_o[0],
             &map_o[1], &mask_o[1], &unit, &coordsys, &mcoordsys, &lmax, &bin_width, &log_bins,
-            &bins_o, &fwhm, &beam_o, &pixwin, &transfer_o, &noise_o, &theory_o, &iterations,
-            &keep, &cache, &cache_dir, &peak, &plmin, &plmax, &phw, pyclef_opt_double, &pcurv,
-            &coord))
+            &bins_o, &fwhm, &beam_o, &with_pixel_window, &transfer_o, &noise_o, &theory_o,
+            &iterations, &keep, &cache, &cache_dir, &peak, &plmin, &plmax, &phw, pyclef_opt_double,
+            &pcurv, &coord))
         return NULL;
     /* The CLI's own argument checks (src/cli/cmd_spectrum.c), as ValueError. */
     if (lmax != 0 && lmax < 2)
@@ -183,7 +184,7 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
     so.lmax = lmax;
     so.bin_width = bin_width;
     so.beam_fwhm = fwhm;
-    so.pixel_window = pixwin;
+    so.pixel_window = with_pixel_window;
     so.iterations = iterations;
     so.keep_multipoles = keep;
     so.use_cache = cache;
