@@ -24,6 +24,7 @@
 #include <stdint.h>
 
 #include "clef/clef.h"
+#include "clef/kernel.h"
 
 #ifdef __cplusplus
 extern "C" {
@@ -37,6 +38,7 @@ typedef struct clef_sht_opts {
     int no_ring_weights;     /* 1: plain pixel sums in analysis (weights all 1) */
     unsigned fftw_flags;     /* 0 = FFTW_ESTIMATE (reproducible, fast to plan) */
     const char *wisdom_file; /* optional FFTW wisdom file, read if present and updated */
+    clef_kernel kernel;      /* Legendre kernel (clef/kernel.h); AUTO = CLEF_KERNEL or the CPU's best */
 } clef_sht_opts;
 
 /* Make a plan for maps of `nside` (power of two, <= CLEF_NSIDE_MAX) and
@@ -49,6 +51,7 @@ int64_t clef_sht_nside(const clef_sht *p);
 int clef_sht_lmax(const clef_sht *p);
 int clef_sht_mmax(const clef_sht *p);
 int clef_sht_nrings(const clef_sht *p); /* 4 nside - 1 */
+clef_kernel clef_sht_kernel_used(const clef_sht *p); /* never CLEF_KERNEL_AUTO */
 
 /* Geometry and quadrature weight of ring `ring` (1 .. 4 nside - 1, north
  * to south, as numbered by the HEALPix RING scheme): z = cos theta of its
