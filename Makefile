@@ -26,7 +26,8 @@ ALL_CPPFLAGS = -Iinclude -Isrc $(PKGCFLAGS) $(CPPFLAGS)
 ALL_LDFLAGS = -fopenmp $(LDFLAGS)
 ALL_LDLIBS  = $(PKGLIBS) -lm $(LDLIBS)
 
-# Per-width kernel objects (src/*_avx512.c, src/*_avx2.c, src/*_base.c).
+# Per-width kernel objects (src/*_avx512.c, src/*_avx2.c, src/*_base.c,
+# and the benchmark's FMA reference loops bench/fma_*.c).
 # On x86 each gets its instruction set, whatever ARCH says (AVX2 without
 # AVX-512, base without AVX), so every path is what a CPU of that width
 # runs; elsewhere they get no flags and only the baseline has code.
@@ -36,9 +37,9 @@ KFLAGS_avx512 := -mavx512f -mavx512dq -mavx512vl -mavx2 -mfma
 KFLAGS_avx2   := -mno-avx512f -mavx2 -mfma
 KFLAGS_base   := -mno-fma -mno-avx
 endif
-$(BUILD)/src/%_avx512.o: KFLAGS = $(KFLAGS_avx512)
-$(BUILD)/src/%_avx2.o: KFLAGS = $(KFLAGS_avx2)
-$(BUILD)/src/%_base.o: KFLAGS = $(KFLAGS_base)
+$(BUILD)/%_avx512.o: KFLAGS = $(KFLAGS_avx512)
+$(BUILD)/%_avx2.o: KFLAGS = $(KFLAGS_avx2)
+$(BUILD)/%_base.o: KFLAGS = $(KFLAGS_base)
 
 LIB_SRC   := $(wildcard src/*.c)
 CLI_SRC   := $(wildcard src/cli/*.c)
