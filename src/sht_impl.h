@@ -118,8 +118,10 @@ void clef_sht_ring_r2c(const clef_sht *p, clef_sht_thread *th, int n, const doub
 /* Result in th->ring; `in` (n/2 + 1 values) is overwritten. */
 void clef_sht_ring_c2r(const clef_sht *p, clef_sht_thread *th, int n, double complex *in);
 
-/* sht_weights.c: quadrature weights per ring (nrings values). */
-int clef_sht_ring_weights_compute(const clef_sht *p, double *w);
+/* sht_weights.c: quadrature weights per ring (nrings values), from the
+ * process's memory cache, else the cache folder (use_cache), else solved
+ * and stored in both. */
+int clef_sht_ring_weights(const clef_sht *p, int use_cache, const char *cache_dir, double *w);
 
 /* sht_legendre.c */
 int clef_sht_mtab_alloc(clef_sht_mtab *t, int lmax);

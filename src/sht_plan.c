@@ -177,7 +177,8 @@ int clef_sht_create(clef_sht **out, int64_t nside, int lmax, const clef_sht_opts
         for (size_t r = 0; r < nr; r++)
             p->ring_w[r] = 1.0;
     } else {
-        CLEF_CHECK(clef_sht_ring_weights_compute(p, p->ring_w));
+        CLEF_CHECK(clef_sht_ring_weights(p, opts && opts->use_cache, opts ? opts->cache_dir : NULL,
+                                         p->ring_w));
     }
 
     const unsigned flags = opts && opts->fftw_flags ? opts->fftw_flags : FFTW_ESTIMATE;

@@ -39,6 +39,12 @@ typedef struct clef_sht_opts {
     unsigned fftw_flags;     /* 0 = FFTW_ESTIMATE (reproducible, fast to plan) */
     const char *wisdom_file; /* optional FFTW wisdom file, read if present and updated */
     clef_kernel kernel;      /* Legendre kernel (clef/kernel.h); AUTO = CLEF_KERNEL or the CPU's best */
+    /* Ring weights (the slow part of create at large nside) are kept in
+     * memory for the process and, with use_cache = 1, in the cache folder
+     * cache_dir (NULL: $CLEF_CACHE_DIR, $XDG_CACHE_HOME/clef, ~/.cache/clef),
+     * in the coupling cache's file format (docs/coupling.md). */
+    int use_cache;
+    const char *cache_dir;
 } clef_sht_opts;
 
 /* Make a plan for maps of `nside` (power of two, <= CLEF_NSIDE_MAX) and
