@@ -104,8 +104,7 @@ tests: all $(TEST_BIN) $(REPLAY_BIN)
 # forced (CLEF_KERNEL=avx2, =base).
 check: deps
 	@$(MAKE) --no-print-directory tests
-	@sh tests/run.sh $(BUILD)
-	@sh tests/kernels.sh $(BUILD)
+	@s=0; sh tests/run.sh $(BUILD) || s=1; sh tests/kernels.sh $(BUILD) || s=1; exit $$s
 
 check-long: deps
 	@$(MAKE) --no-print-directory tests
