@@ -13,7 +13,8 @@ enum {
     CLEF_CACHE_K = 2,
     CLEF_CACHE_MASK_SPECTRA = 3,
     CLEF_CACHE_DEPROJ = 4,
-    CLEF_CACHE_RING_WEIGHTS = 5 /* transform ring weights (src/sht_weights.c) */
+    CLEF_CACHE_POL = 5,         /* the polarized matrices M^TE, M+, M- (coupling_pol.c) */
+    CLEF_CACHE_RING_WEIGHTS = 6 /* transform ring weights (src/sht_weights.c) */
 };
 
 /* The folder by the documented precedence; NULL on success, else why not. */
