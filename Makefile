@@ -3,9 +3,12 @@
 
 BUILD    ?= build
 CC       ?= cc
-# -march=native lets the compiler use the machine's widest vectors (the
-# transform and coupling kernels depend on it); set ARCH= for a portable build.
-ARCH     ?= -march=native
+# The default build runs on any CPU of the target architecture: the hot
+# kernels are built once per vector width with their own flags (KFLAGS
+# below) and chosen at run time (include/clef/kernel.h).  ARCH adds flags
+# for everything else, e.g. `make ARCH=-march=native` for a binary that
+# only runs on machines like this one.
+ARCH     ?=
 CFLAGS   ?= -O3 -g
 WERROR   ?=
 PREFIX   ?= /usr/local
@@ -22,6 +25,21 @@ ALL_CFLAGS  = -std=c11 $(ARCH) -fPIC -fopenmp -Wall -Wextra -Wshadow $(WERROR) $
 ALL_CPPFLAGS = -Iinclude -Isrc $(PKGCFLAGS) $(CPPFLAGS)
 ALL_LDFLAGS = -fopenmp $(LDFLAGS)
 ALL_LDLIBS  = $(PKGLIBS) -lm $(LDLIBS)
+
+# Per-width kernel objects (src/*_avx512.c, src/*_avx2.c, src/*_base.c,
+# and the benchmark's FMA reference loops bench/fma_*.c).
+# On x86 each gets its instruction set, whatever ARCH says (AVX2 without
+# AVX-512, base without AVX), so every path is what a CPU of that width
+# runs; elsewhere they get no flags and only the baseline has code.
+TARGET_MACHINE := $(shell $(CC) -dumpmachine 2>/dev/null)
+ifneq ($(filter x86_64% i386% i486% i586% i686% amd64%,$(TARGET_MACHINE)),)
+KFLAGS_avx512 := -mavx512f -mavx512dq -mavx512vl -mavx2 -mfma
+KFLAGS_avx2   := -mno-avx512f -mavx2 -mfma
+KFLAGS_base   := -mno-fma -mno-avx
+endif
+$(BUILD)/%_avx512.o: KFLAGS = $(KFLAGS_avx512)
+$(BUILD)/%_avx2.o: KFLAGS = $(KFLAGS_avx2)
+$(BUILD)/%_base.o: KFLAGS = $(KFLAGS_base)
 
 LIB_SRC   := $(wildcard src/*.c)
 CLI_SRC   := $(wildcard src/cli/*.c)
@@ -66,7 +84,7 @@ deps:
 
 $(BUILD)/%.o: %.c
 	@mkdir -p $(dir $@)
-	$(CC) $(ALL_CPPFLAGS) $(ALL_CFLAGS) -c $< -o $@
+	$(CC) $(ALL_CPPFLAGS) $(ALL_CFLAGS) $(KFLAGS) -c $< -o $@
 
 $(LIBA): $(LIB_OBJ)
 	@mkdir -p $(dir $@)
@@ -117,10 +135,12 @@ $(PY_DIR)/%: python/clef/%
 tests: all $(TEST_BIN) $(REPLAY_BIN) python
 
 # The test suite: every tests/test_*.c program (cmocka) and every
-# tests/cli/*.sh script; tests/run.sh prints "N passed, N failed".
+# tests/cli/*.sh script; tests/run.sh prints "N passed, N failed".  Then
+# tests/kernels.sh repeats the kernel-heavy part with each narrower kernel
+# forced (CLEF_KERNEL=avx2, =base).
 check: deps
 	@$(MAKE) --no-print-directory tests
-	@sh tests/run.sh $(BUILD)
+	@s=0; sh tests/run.sh $(BUILD) || s=1; sh tests/kernels.sh $(BUILD) || s=1; exit $$s
 
 check-long: deps
 	@$(MAKE) --no-print-directory tests

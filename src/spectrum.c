@@ -509,7 +509,7 @@ static int stage_transform(run *r)
     double complex *const *out = (double complex *const *)r->alm;
     clef_progress("analysis", 0.0);
     clef_sht *sht = NULL;
-    clef_sht_opts so = {0};
+    clef_sht_opts so = {.use_cache = r->o.use_cache, .cache_dir = r->o.cache_dir};
     const int shared = lmax_t == lmax ? n : nm;
     so.nmaps = shared;
     int status = clef_sht_create(&sht, r->nside, lmax, &so);
