@@ -3,9 +3,12 @@
 
 BUILD    ?= build
 CC       ?= cc
-# -march=native lets the compiler use the machine's widest vectors (the
-# transform and coupling kernels depend on it); set ARCH= for a portable build.
-ARCH     ?= -march=native
+# The default build runs on any CPU of the target architecture: the hot
+# kernels are built once per vector width with their own flags (KFLAGS
+# below) and chosen at run time (include/clef/kernel.h).  ARCH adds flags
+# for everything else, e.g. `make ARCH=-march=native` for a binary that
+# only runs on machines like this one.
+ARCH     ?=
 CFLAGS   ?= -O3 -g
 WERROR   ?=
 PREFIX   ?= /usr/local
@@ -23,6 +26,21 @@ ALL_CPPFLAGS = -Iinclude -Isrc $(PKGCFLAGS) $(CPPFLAGS)
 ALL_LDFLAGS = -fopenmp $(LDFLAGS)
 ALL_LDLIBS  = $(PKGLIBS) -lm $(LDLIBS)
 
+# Per-width kernel objects (src/*_avx512.c, src/*_avx2.c, src/*_base.c,
+# and the benchmark's FMA reference loops bench/fma_*.c).
+# On x86 each gets its instruction set, whatever ARCH says (AVX2 without
+# AVX-512, base without AVX), so every path is what a CPU of that width
+# runs; elsewhere they get no flags and only the baseline has code.
+TARGET_MACHINE := $(shell $(CC) -dumpmachine 2>/dev/null)
+ifneq ($(filter x86_64% i386% i486% i586% i686% amd64%,$(TARGET_MACHINE)),)
+KFLAGS_avx512 := -mavx512f -mavx512dq -mavx512vl -mavx2 -mfma
+KFLAGS_avx2   := -mno-avx512f -mavx2 -mfma
+KFLAGS_base   := -mno-fma -mno-avx
+endif
+$(BUILD)/%_avx512.o: KFLAGS = $(KFLAGS_avx512)
+$(BUILD)/%_avx2.o: KFLAGS = $(KFLAGS_avx2)
+$(BUILD)/%_base.o: KFLAGS = $(KFLAGS_base)
+
 LIB_SRC   := $(wildcard src/*.c)
 CLI_SRC   := $(wildcard src/cli/*.c)
 TEST_SRC  := $(wildcard tests/test_*.c)
@@ -37,11 +55,26 @@ BENCH_BIN := $(BENCH_SRC:bench/%.c=$(BUILD)/bench/%)
 REPLAY_BIN := $(FUZZ_SRC:tests/fuzz/%.c=$(BUILD)/fuzz-replay/%)
 BENCH_COMMON_OBJ := $(BENCH_COMMON:%.c=$(BUILD)/%.o)
 
+# The Python module (docs/python.md): an extension over libclef.a for
+# Debian's /usr/bin/python3, with numpy's C API, in $(BUILD)/python/clef.
+PYTHON    ?= /usr/bin/python3
+PY_INC    := $(shell $(PYTHON) -c "import sysconfig; print(sysconfig.get_paths()['include'])" 2>/dev/null)
+PY_NUMPY  := $(shell $(PYTHON) -c "import numpy; print(numpy.get_include())" 2>/dev/null)
+PY_EXT    := $(shell $(PYTHON) -c "import sysconfig; print(sysconfig.get_config_var('EXT_SUFFIX'))" 2>/dev/null)
+PY_SITE   := $(shell $(PYTHON) -c "import sys; print('python%d.%d' % sys.version_info[:2])" 2>/dev/null)
+PY_OK     := $(and $(PY_NUMPY),$(PY_EXT),$(wildcard $(PY_INC)/Python.h))
+PY_SRC    := $(wildcard python/src/*.c)
+PY_OBJ    := $(PY_SRC:%.c=$(BUILD)/%.o)
+PY_FILES  := $(wildcard python/clef/*.py python/clef/*.pyi python/clef/py.typed)
+PY_DIR    := $(BUILD)/python/clef
+PY_MOD    := $(PY_DIR)/_clef$(PY_EXT)
+PY_COPIES := $(PY_FILES:python/clef/%=$(PY_DIR)/%)
+
 LIBA  := $(BUILD)/libclef.a
 LIBSO := $(BUILD)/libclef.so
 CLEF  := $(BUILD)/clef
 
-.PHONY: all deps check check-long tests bench demo sanitize clean install fuzz fuzz-ci fuzz-build
+.PHONY: python all deps check check-long tests bench demo sanitize clean install fuzz fuzz-ci fuzz-build
 .DEFAULT_GOAL := all
 
 all: $(LIBA) $(LIBSO) $(CLEF)
@@ -51,7 +84,7 @@ deps:
 
 $(BUILD)/%.o: %.c
 	@mkdir -p $(dir $@)
-	$(CC) $(ALL_CPPFLAGS) $(ALL_CFLAGS) -c $< -o $@
+	$(CC) $(ALL_CPPFLAGS) $(ALL_CFLAGS) $(KFLAGS) -c $< -o $@
 
 $(LIBA): $(LIB_OBJ)
 	@mkdir -p $(dir $@)
@@ -78,13 +111,36 @@ $(BUILD)/fuzz-replay/%: tests/fuzz/%.c tests/fuzz/replay.c tests/fuzz/fuzz.h $(L
 	@mkdir -p $(dir $@)
 	$(CC) $(ALL_CPPFLAGS) $(ALL_CFLAGS) -Itests/fuzz tests/fuzz/replay.c $< -o $@ $(ALL_LDFLAGS) $(LIBA) $(ALL_LDLIBS)
 
-tests: all $(TEST_BIN) $(REPLAY_BIN)
+# `make python` builds the module when /usr/bin/python3 has its headers
+# and numpy (scripts/install-deps.sh installs both); otherwise it says why
+# and the Python tests skip (tests/cli/python.sh).
+ifneq ($(PY_OK),)
+python: $(PY_MOD) $(PY_COPIES)
+else
+python:
+	@echo "clef: Python module not built: $(PYTHON) lacks Python.h or numpy (install python3-dev and python3-numpy: scripts/install-deps.sh)"
+endif
+
+$(PY_OBJ): ALL_CPPFLAGS += -isystem $(PY_INC) -isystem $(PY_NUMPY) -Ipython/src
+$(PY_OBJ): python/src/pyclef.h
+
+$(PY_MOD): $(PY_OBJ) $(LIBA)
+	@mkdir -p $(dir $@)
+	$(CC) -shared $(ALL_LDFLAGS) -o $@ $(PY_OBJ) $(LIBA) $(ALL_LDLIBS)
+
+$(PY_DIR)/%: python/clef/%
+	@mkdir -p $(dir $@)
+	cp $< $@
+
+tests: all $(TEST_BIN) $(REPLAY_BIN) python
 
 # The test suite: every tests/test_*.c program (cmocka) and every
-# tests/cli/*.sh script; tests/run.sh prints "N passed, N failed".
+# tests/cli/*.sh script; tests/run.sh prints "N passed, N failed".  Then
+# tests/kernels.sh repeats the kernel-heavy part with each narrower kernel
+# forced (CLEF_KERNEL=avx2, =base).
 check: deps
 	@$(MAKE) --no-print-directory tests
-	@sh tests/run.sh $(BUILD)
+	@s=0; sh tests/run.sh $(BUILD) || s=1; sh tests/kernels.sh $(BUILD) || s=1; exit $$s
 
 check-long: deps
 	@$(MAKE) --no-print-directory tests
@@ -125,22 +181,27 @@ fuzz-ci: fuzz-build
 	@sh tests/fuzz/run.sh ci 20
 
 bench: deps
-	@$(MAKE) --no-print-directory all $(BENCH_BIN)
+	@$(MAKE) --no-print-directory all python $(BENCH_BIN)
 	@sh bench/run.sh $(BUILD)
 
 demo: deps
 	@$(MAKE) --no-print-directory all
 	@sh scripts/demo.sh $(BUILD)
 
-install: all
+install: all python
 	install -d $(DESTDIR)$(PREFIX)/bin $(DESTDIR)$(PREFIX)/lib $(DESTDIR)$(PREFIX)/include/clef $(DESTDIR)$(PREFIX)/lib/pkgconfig
 	install -m 755 $(CLEF) $(DESTDIR)$(PREFIX)/bin/clef
 	install -m 644 $(LIBA) $(LIBSO) $(DESTDIR)$(PREFIX)/lib/
 	install -m 644 include/clef/*.h $(DESTDIR)$(PREFIX)/include/clef/
 	sed -e 's|@PREFIX@|$(PREFIX)|' -e 's|@VERSION@|$(shell sed -n 's/^#define CLEF_VERSION "\(.*\)"/\1/p' include/clef/clef.h)|' \
 	    -e 's|@PKGS@|$(PKGS)|' clef.pc.in > $(DESTDIR)$(PREFIX)/lib/pkgconfig/clef.pc
+	@if [ -f $(PY_MOD) ]; then \
+	    echo install -d $(DESTDIR)$(PREFIX)/lib/$(PY_SITE)/dist-packages/clef; \
+	    install -d $(DESTDIR)$(PREFIX)/lib/$(PY_SITE)/dist-packages/clef && \
+	    install -m 644 $(PY_MOD) $(PY_COPIES) $(DESTDIR)$(PREFIX)/lib/$(PY_SITE)/dist-packages/clef/; \
+	fi
 
 clean:
 	rm -rf build build-san build-fuzz
 
--include $(LIB_OBJ:.o=.d) $(CLI_OBJ:.o=.d) $(BENCH_COMMON_OBJ:.o=.d)
+-include $(LIB_OBJ:.o=.d) $(CLI_OBJ:.o=.d) $(BENCH_COMMON_OBJ:.o=.d) $(PY_OBJ:.o=.d)

@@ -1,12 +1,16 @@
 /* Benchmark of the spherical harmonic transform (make bench).
  *
- * For nside 256..2048 and lmax = 2 nside and 3 nside - 1: wall time of
+ * For each Legendre kernel this machine can run (include/clef/kernel.h):
+ * the default kernel over nside 256..2048 with lmax = 2 nside and
+ * 3 nside - 1, every other kernel over nside 512..2048 with lmax = 2 nside
+ * (forced through the plan option).  Per case: wall time of
  * analysis (no iterations) and synthesis (best and median of k runs),
  * the Legendre stage separately, counted GFLOP/s from the FLOP model of
  * PERFORMANCE.md section 1 (without the l_min cut, so the cut shows as a
  * higher rate), and the ratio of those rates to references measured in
- * the same process: the FMA peak (interleaved with the transform runs,
- * A B A B) and OpenBLAS DGEMM n = 2048.  Also the 1 -> all threads
+ * the same process: the FMA peak of the kernel's own vector width
+ * (bench/fma_body.h, interleaved with the transform runs, A B A B) and
+ * OpenBLAS DGEMM n = 2048.  Also the 1 -> all threads
  * speed-up, the fitted exponent of time against lmax (nside 512..2048),
  * and peak memory against 1.5 (map + a_lm) + 200 MiB.
  *
@@ -25,10 +29,11 @@
 #include "clef/sht.h"
 #include "common.h"
 
-#define MAXCASES 8
+#define MAXCASES 24
 #define MAXRUNS 5
 
 typedef struct result {
+    clef_kernel kernel;
     int64_t nside;
     int lmax;
     double f_leg, f_fft, f_sht; /* GFLOP, model */
@@ -74,9 +79,11 @@ static timing time_call(const clef_sht *p, int analysis, const double *map, doub
     return t;
 }
 
-static int run_case(result *r, int64_t ns, int lmax, int nthreads, double budget, double peak0)
+static int run_case(result *r, clef_kernel kern, int64_t ns, int lmax, int nthreads,
+                    double budget, double peak0)
 {
     memset(r, 0, sizeof *r);
+    r->kernel = kern;
     r->nside = ns;
     r->lmax = lmax;
     r->f_leg = 7.0 * (double)ns * (lmax + 1.0) * (lmax + 2.0) * 1e-9;
@@ -87,7 +94,8 @@ static int run_case(result *r, int64_t ns, int lmax, int nthreads, double budget
 
     double t0 = bench_wtime();
     clef_sht *p;
-    if (clef_sht_create(&p, ns, lmax, NULL) != CLEF_OK) {
+    const clef_sht_opts so = {.kernel = kern};
+    if (clef_sht_create(&p, ns, lmax, &so) != CLEF_OK) {
         fprintf(stderr, "bench_sht: %s\n", clef_last_error());
         return -1;
     }
@@ -116,8 +124,8 @@ static int run_case(result *r, int64_t ns, int lmax, int nthreads, double budget
     timing xa[MAXRUNS], xs[MAXRUNS];
     for (int i = 0; i < k; i++) {
         /* A B A B: reference and transforms interleaved. */
-        pk[i] = bench_fma_peak(nthreads, 0.05, 1);
-        const double c = bench_fma_peak_cpu(1, 0.1, 1);
+        pk[i] = bench_fma_peak_kernel(kern, nthreads, 0.05, 1);
+        const double c = bench_fma_peak_kernel_cpu(kern, 1, 0.1, 1);
         pkc = c > pkc ? c : pkc;
         xa[i] = time_call(p, 1, map, alm2, NULL);
         xs[i] = time_call(p, 0, NULL, alm, map);
@@ -172,6 +180,8 @@ static int run_case(result *r, int64_t ns, int lmax, int nthreads, double budget
 static cJSON *case_json(const result *r, double dgemm)
 {
     cJSON *c = cJSON_CreateObject();
+    cJSON_AddStringToObject(c, "kernel", clef_kernel_name(r->kernel));
+    cJSON_AddNumberToObject(c, "lanes", bench_kernel_lanes(r->kernel));
     cJSON_AddNumberToObject(c, "nside", (double)r->nside);
     cJSON_AddNumberToObject(c, "lmax", r->lmax);
     cJSON_AddNumberToObject(c, "runs", r->runs);
@@ -227,93 +237,137 @@ int main(int argc, char **argv)
     cJSON_AddItemToObject(root, "machine", bench_machine_json());
     printf("clef transform benchmark: %d threads, OpenBLAS core %s\n", nt, bench_blas_core());
 
-    const double fma1 = bench_fma_peak(1, 0.2, 3), fman = bench_fma_peak(nt, 0.2, 3);
     const double dg1 = bench_dgemm(2048, 1, 5), dgn = bench_dgemm(2048, nt, 5);
-    printf("references: FMA peak %.1f GFLOP/s (1 thread), %.1f (%d threads); "
-           "DGEMM n=2048 %.1f (1 thread), %.1f (%d threads)\n",
-           fma1, fman, nt, dg1, dgn, nt);
+    printf("reference: DGEMM n=2048 %.1f GFLOP/s (1 thread), %.1f (%d threads)\n", dg1, dgn, nt);
     cJSON *refs = cJSON_AddObjectToObject(root, "references");
-    cJSON_AddNumberToObject(refs, "fma_peak_gflops_1_thread", fma1);
-    cJSON_AddNumberToObject(refs, "fma_peak_gflops_all_threads", fman);
     cJSON_AddNumberToObject(refs, "dgemm_2048_gflops_1_thread", dg1);
     cJSON_AddNumberToObject(refs, "dgemm_2048_gflops_all_threads", dgn);
     cJSON_AddNumberToObject(refs, "threads", nt);
+    cJSON *fmaj = cJSON_AddObjectToObject(refs, "fma_peak_gflops");
+
+    /* Kernels: the default first, then every other available one. */
+    const clef_kernel kdef = bench_default_kernel();
+    clef_kernel kl[3];
+    int nk = 0;
+    kl[nk++] = kdef;
+    for (int k = CLEF_KERNEL_AVX512; k >= CLEF_KERNEL_BASE; k--)
+        if ((clef_kernel)k != kdef && clef_kernel_available((clef_kernel)k))
+            kl[nk++] = (clef_kernel)k;
+    double fman[3];
+    for (int q = 0; q < nk; q++) {
+        const double f1 = bench_fma_peak_kernel(kl[q], 1, 0.2, 3);
+        fman[q] = bench_fma_peak_kernel(kl[q], nt, 0.2, 3);
+        printf("reference: FMA peak of %s width (%d lanes) %.1f GFLOP/s (1 thread), %.1f "
+               "(%d threads)\n", clef_kernel_name(kl[q]), bench_kernel_lanes(kl[q]), f1, fman[q], nt);
+        cJSON *o = cJSON_AddObjectToObject(fmaj, clef_kernel_name(kl[q]));
+        cJSON_AddNumberToObject(o, "lanes", bench_kernel_lanes(kl[q]));
+        cJSON_AddNumberToObject(o, "1_thread", f1);
+        cJSON_AddNumberToObject(o, "all_threads", fman[q]);
+    }
 
     result res[MAXCASES];
     int nres = 0;
     cJSON *cases = cJSON_AddArrayToObject(root, "cases");
-    printf("\n%6s %5s %8s | %8s %8s %7s %7s %7s | %8s %8s %7s %7s %7s | %7s %7s | %7s %7s\n",
-           "nside", "lmax", "GFLOP", "ana best", "median", "GF/s", "Leg/pk", "cpu", "syn best",
-           "median", "GF/s", "Leg/pk", "cpu", "spd ana", "spd syn", "RSS MiB", "bound");
-    for (int64_t ns = 256; ns <= max_ns && ns <= 2048; ns *= 2)
-        for (int w = 0; w < 2; w++) {
-            const int lmax = w ? 3 * (int)ns - 1 : 2 * (int)ns;
-            result *r = &res[nres];
-            if (run_case(r, ns, lmax, nt, ns >= 2048 ? 20.0 : 10.0, fman) != 0)
-                return 1;
-            nres++;
-            printf("%6lld %5d %8.2f | %8.3f %8.3f %7.1f %7.3f %7.3f | %8.3f %8.3f %7.1f %7.3f %7.3f "
-                   "| %7.2f %7.2f | %7.0f %7.0f\n",
-                   (long long)ns, lmax, r->f_sht, r->ana_best, r->ana_med, r->f_sht / r->ana_best,
-                   r->f_leg / r->ana_leg / r->peak_best, r->f_leg / r->ana_leg_cpu / r->peak_cpu,
-                   r->syn_best, r->syn_med, r->f_sht / r->syn_best,
-                   r->f_leg / r->syn_leg / r->peak_best, r->f_leg / r->syn_leg_cpu / r->peak_cpu,
-                   r->speedup_ana, r->speedup_syn, r->rss_mib, r->bound_mib);
-            fflush(stdout);
-            cJSON_AddItemToArray(cases, case_json(r, dgn));
-        }
+    printf("\n%-6s %6s %5s %8s | %8s %8s %7s %7s %7s | %8s %8s %7s %7s %7s | %7s %7s | %7s %7s\n",
+           "kernel", "nside", "lmax", "GFLOP", "ana best", "median", "GF/s", "Leg/pk", "cpu",
+           "syn best", "median", "GF/s", "Leg/pk", "cpu", "spd ana", "spd syn", "RSS MiB", "bound");
+    for (int q = 0; q < nk; q++)
+        for (int64_t ns = q ? 512 : 256; ns <= max_ns && ns <= 2048; ns *= 2)
+            for (int w = 0; w < (q ? 1 : 2); w++) {
+                const int lmax = w ? 3 * (int)ns - 1 : 2 * (int)ns;
+                result *r = &res[nres];
+                if (run_case(r, kl[q], ns, lmax, nt, ns >= 2048 ? 20.0 : 10.0, fman[q]) != 0)
+                    return 1;
+                nres++;
+                printf("%-6s %6lld %5d %8.2f | %8.3f %8.3f %7.1f %7.3f %7.3f | %8.3f %8.3f %7.1f "
+                       "%7.3f %7.3f | %7.2f %7.2f | %7.0f %7.0f\n",
+                       clef_kernel_name(kl[q]), (long long)ns, lmax, r->f_sht, r->ana_best,
+                       r->ana_med, r->f_sht / r->ana_best, r->f_leg / r->ana_leg / r->peak_best,
+                       r->f_leg / r->ana_leg_cpu / r->peak_cpu, r->syn_best, r->syn_med,
+                       r->f_sht / r->syn_best, r->f_leg / r->syn_leg / r->peak_best,
+                       r->f_leg / r->syn_leg_cpu / r->peak_cpu, r->speedup_ana, r->speedup_syn,
+                       r->rss_mib, r->bound_mib);
+                fflush(stdout);
+                cJSON_AddItemToArray(cases, case_json(r, dgn));
+            }
 
-    /* Scaling: log T = alpha log lmax + c over nside 512..2048, per family. */
+    /* Scaling: log T = alpha log lmax + c over nside 512..2048, per kernel and family. */
     cJSON *fits = cJSON_AddObjectToObject(root, "time_exponent_vs_lmax");
     const char *fam[2] = {"lmax_2nside", "lmax_3nside_minus_1"};
     printf("\nfitted exponent of time vs lmax (nside 512..%lld):", (long long)(max_ns < 512 ? 512 : max_ns));
-    for (int w = 0; w < 2; w++) {
-        double x[4], ya[4], ys[4], ca[4], cs[4];
-        int n = 0;
-        for (int i = 0; i < nres; i++)
-            if (res[i].nside >= 512 && (res[i].lmax == 2 * res[i].nside) == (w == 0)) {
-                x[n] = res[i].lmax;
-                ya[n] = res[i].ana_best;
-                ys[n] = res[i].syn_best;
-                ca[n] = res[i].ana_leg_cpu;
-                cs[n] = res[i].syn_leg_cpu;
-                n++;
+    for (int q = 0; q < nk; q++) {
+        cJSON *kj = cJSON_AddObjectToObject(fits, clef_kernel_name(kl[q]));
+        for (int w = 0; w < (q ? 1 : 2); w++) {
+            double x[4], ya[4], ys[4], ca[4], cs[4];
+            int n = 0;
+            for (int i = 0; i < nres; i++)
+                if (res[i].kernel == kl[q] && res[i].nside >= 512 &&
+                    (res[i].lmax == 2 * res[i].nside) == (w == 0)) {
+                    x[n] = res[i].lmax;
+                    ya[n] = res[i].ana_best;
+                    ys[n] = res[i].syn_best;
+                    ca[n] = res[i].ana_leg_cpu;
+                    cs[n] = res[i].syn_leg_cpu;
+                    n++;
+                }
+            cJSON *o = cJSON_AddObjectToObject(kj, fam[w]);
+            if (n >= 2) {
+                const double aa = bench_fit_exponent(x, ya, n), as = bench_fit_exponent(x, ys, n);
+                const double la = bench_fit_exponent(x, ca, n), ls = bench_fit_exponent(x, cs, n);
+                cJSON_AddNumberToObject(o, "analysis", aa);
+                cJSON_AddNumberToObject(o, "synthesis", as);
+                cJSON_AddNumberToObject(o, "analysis_legendre_cpu", la);
+                cJSON_AddNumberToObject(o, "synthesis_legendre_cpu", ls);
+                cJSON_AddNumberToObject(o, "points", n);
+                printf("\n  %s %s: wall analysis %.2f, synthesis %.2f; Legendre CPU time analysis "
+                       "%.2f, synthesis %.2f (%d points)", clef_kernel_name(kl[q]), fam[w], aa, as,
+                       la, ls, n);
+            } else {
+                printf("\n  %s %s: fewer than 2 sizes, no fit", clef_kernel_name(kl[q]), fam[w]);
             }
-        cJSON *o = cJSON_AddObjectToObject(fits, fam[w]);
-        if (n >= 2) {
-            const double aa = bench_fit_exponent(x, ya, n), as = bench_fit_exponent(x, ys, n);
-            const double la = bench_fit_exponent(x, ca, n), ls = bench_fit_exponent(x, cs, n);
-            cJSON_AddNumberToObject(o, "analysis", aa);
-            cJSON_AddNumberToObject(o, "synthesis", as);
-            cJSON_AddNumberToObject(o, "analysis_legendre_cpu", la);
-            cJSON_AddNumberToObject(o, "synthesis_legendre_cpu", ls);
-            cJSON_AddNumberToObject(o, "points", n);
-            printf("\n  %s: wall analysis %.2f, synthesis %.2f; Legendre CPU time analysis %.2f, "
-                   "synthesis %.2f (%d points)", fam[w], aa, as, la, ls, n);
-        } else {
-            printf("\n  %s: fewer than 2 sizes, no fit", fam[w]);
         }
     }
     printf("\n");
-    for (int i = 0; i < nres; i++)
-        if (res[i].nside == 2048 && res[i].lmax == 4096) {
-            const double ra = res[i].f_leg / res[i].ana_leg / res[i].peak_best;
-            const double rs = res[i].f_leg / res[i].syn_leg / res[i].peak_best;
-            const double ca = res[i].f_leg / res[i].ana_leg_cpu / res[i].peak_cpu;
-            const double cs = res[i].f_leg / res[i].syn_leg_cpu / res[i].peak_cpu;
-            cJSON *t = cJSON_AddObjectToObject(root, "target_legendre_nside2048");
-            cJSON_AddNumberToObject(t, "analysis_ratio_fma_peak", ra);
-            cJSON_AddNumberToObject(t, "synthesis_ratio_fma_peak", rs);
-            cJSON_AddNumberToObject(t, "analysis_ratio_fma_peak_per_cpu_second", ca);
-            cJSON_AddNumberToObject(t, "synthesis_ratio_fma_peak_per_cpu_second", cs);
-            cJSON_AddNumberToObject(t, "target", 0.30);
-            cJSON_AddNumberToObject(t, "goal", 0.50);
-            printf("Legendre stage at nside 2048, lmax 4096: %.1f%% (analysis), %.1f%% (synthesis) "
-                   "of the same-run FMA peak (target 30%%, goal 50%%); per CPU second %.1f%%, %.1f%%\n",
-                   100 * ra, 100 * rs, 100 * ca, 100 * cs);
+    /* Targets of issue 17: Legendre stage at nside 1024 and 2048 (lmax 2
+     * nside, all threads) >= 45%% of the same-width FMA peak; the baseline
+     * within 3x of the AVX2 kernel. */
+    cJSON *tg = cJSON_AddArrayToObject(root, "target_legendre");
+    double leg_t[CLEF_KERNEL_COUNT][2] = {{0}};
+    for (int i = 0; i < nres; i++) {
+        const result *r = &res[i];
+        if (r->lmax != 2 * r->nside || (r->nside != 1024 && r->nside != 2048))
+            continue;
+        const double ra = r->f_leg / r->ana_leg / r->peak_best;
+        const double rs = r->f_leg / r->syn_leg / r->peak_best;
+        const double ca = r->f_leg / r->ana_leg_cpu / r->peak_cpu;
+        const double cs = r->f_leg / r->syn_leg_cpu / r->peak_cpu;
+        leg_t[r->kernel][r->nside == 2048] = r->ana_leg_cpu + r->syn_leg_cpu;
+        cJSON *t = cJSON_CreateObject();
+        cJSON_AddStringToObject(t, "kernel", clef_kernel_name(r->kernel));
+        cJSON_AddNumberToObject(t, "nside", (double)r->nside);
+        cJSON_AddNumberToObject(t, "lmax", r->lmax);
+        cJSON_AddNumberToObject(t, "analysis_ratio_fma_peak", ra);
+        cJSON_AddNumberToObject(t, "synthesis_ratio_fma_peak", rs);
+        cJSON_AddNumberToObject(t, "analysis_ratio_fma_peak_per_cpu_second", ca);
+        cJSON_AddNumberToObject(t, "synthesis_ratio_fma_peak_per_cpu_second", cs);
+        cJSON_AddNumberToObject(t, "target", 0.45);
+        cJSON_AddItemToArray(tg, t);
+        printf("Legendre stage, %s kernel, nside %lld lmax %d: %.1f%% (analysis), %.1f%% "
+               "(synthesis) of the same-width FMA peak (target 45%%); per CPU second %.1f%%, %.1f%%\n",
+               clef_kernel_name(r->kernel), (long long)r->nside, r->lmax, 100 * ra, 100 * rs,
+               100 * ca, 100 * cs);
+    }
+    for (int h = 0; h < 2; h++)
+        if (leg_t[CLEF_KERNEL_AVX2][h] > 0 && leg_t[CLEF_KERNEL_BASE][h] > 0) {
+            const double ratio = leg_t[CLEF_KERNEL_BASE][h] / leg_t[CLEF_KERNEL_AVX2][h];
+            cJSON_AddNumberToObject(root, h ? "base_over_avx2_legendre_cpu_nside2048"
+                                            : "base_over_avx2_legendre_cpu_nside1024", ratio);
+            printf("baseline / AVX2 Legendre CPU time at nside %d: %.2f (target <= 3)\n",
+                   h ? 2048 : 1024, ratio);
         }
     cJSON_AddNumberToObject(root, "total_wall_s", bench_wtime() - t_start);
-    printf("columns: Leg/pk = Legendre-stage counted GFLOP/s / same-run FMA peak (wall clock); "
+    printf("columns: Leg/pk = Legendre-stage counted GFLOP/s / same-run FMA peak of the kernel's "
+           "width (wall clock); "
            "cpu = the same ratio per CPU second;\n  spd = speed-up 1 -> %d threads; RSS = peak "
            "resident memory so far.\n"
            "Timings on a shared machine are noisy: compare ratios measured in one run.\n", nt);

@@ -16,10 +16,6 @@
 
 #include "clef/clef.h"
 
-/* The FMA loop must compile to fused multiply-adds although -std=c11
- * disables contraction by default. */
-#pragma GCC optimize("fp-contract=fast")
-
 double bench_wtime(void) { return clef_wtime(); }
 
 double bench_cputime(void)
@@ -29,24 +25,26 @@ double bench_cputime(void)
     return (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec;
 }
 
-typedef double bench_vd __attribute__((vector_size(64)));
-
-/* BENCH_FMA_ACC independent chains a_k <- a_k * m + c; m slightly below 1
- * keeps every value normal.  Returns a value that depends on all chains. */
-__attribute__((noinline)) static double fma_loop(long iters, double seed)
+clef_kernel bench_default_kernel(void)
 {
-    bench_vd a[BENCH_FMA_ACC];
-    const bench_vd m = (bench_vd){0} + (1.0 - 1e-9), c = (bench_vd){0} + 1e-3 * seed;
-    for (int k = 0; k < BENCH_FMA_ACC; k++)
-        a[k] = (bench_vd){0} + (double)(k + 1);
-    for (long i = 0; i < iters; i++)
-        for (int k = 0; k < BENCH_FMA_ACC; k++)
-            a[k] = a[k] * m + c;
-    double s = 0.0;
-    for (int k = 0; k < BENCH_FMA_ACC; k++)
-        for (int j = 0; j < 8; j++)
-            s += a[k][j];
-    return s;
+    clef_kernel k = CLEF_KERNEL_BASE;
+    if (clef_kernel_resolve(CLEF_KERNEL_AUTO, &k) != CLEF_OK)
+        fprintf(stderr, "bench: %s; using the baseline kernel\n", clef_last_error());
+    return k;
+}
+
+int bench_kernel_lanes(clef_kernel k)
+{
+    return k == CLEF_KERNEL_AVX512 ? 8 : k == CLEF_KERNEL_AVX2 ? 4 : 2;
+}
+
+static bench_fma_fn fma_fn(clef_kernel k)
+{
+    if (!clef_kernel_available(k))
+        return NULL;
+    return k == CLEF_KERNEL_AVX512 ? bench_fma_avx512
+         : k == CLEF_KERNEL_AVX2   ? bench_fma_avx2
+                                   : bench_fma_base;
 }
 
 static double thread_cputime(void)
@@ -58,46 +56,60 @@ static double thread_cputime(void)
 
 /* One timed parallel run of fma_loop; GFLOP/s per wall second, or per CPU
  * second of the working threads (their own CPU clocks, summed). */
-static double fma_run(int nthreads, long iters, int per_cpu)
+static double fma_run(bench_fma_fn loop, int lanes, int nthreads, long iters, int per_cpu)
 {
     double sum = 0.0, cpu = 0.0;
     const double t0 = bench_wtime();
 #pragma omp parallel num_threads(nthreads) reduction(+ : sum, cpu)
     {
         const double c0 = thread_cputime();
-        sum += fma_loop(iters, 1.0 + omp_get_thread_num());
+        sum += loop(iters, 1.0 + omp_get_thread_num());
         cpu += thread_cputime() - c0;
     }
     const double t = per_cpu ? cpu : bench_wtime() - t0;
     volatile double sink = sum;
     (void)sink;
-    return nthreads * 2.0 * 8 * BENCH_FMA_ACC * (double)iters / t * 1e-9;
+    return nthreads * 2.0 * lanes * BENCH_FMA_ACC * (double)iters / t * 1e-9;
 }
 
-static double fma_peak(int nthreads, double seconds, int reps, int per_cpu)
+static double fma_peak(clef_kernel k, int nthreads, double seconds, int reps, int per_cpu)
 {
+    const bench_fma_fn loop = fma_fn(k);
+    const int lanes = bench_kernel_lanes(k);
+    if (!loop)
+        return NAN;
     /* Calibrate: iterations for about `seconds` at the single-run rate. */
     volatile long probe = 1 << 18;
-    const double g = fma_run(nthreads, probe, 0);
-    long iters = (long)(g * 1e9 * seconds / (nthreads * 2.0 * 8 * BENCH_FMA_ACC));
+    const double g = fma_run(loop, lanes, nthreads, probe, 0);
+    long iters = (long)(g * 1e9 * seconds / (nthreads * 2.0 * lanes * BENCH_FMA_ACC));
     if (iters < 1000)
         iters = 1000;
     double best = 0.0;
     for (int r = 0; r < reps; r++) {
-        const double v = fma_run(nthreads, iters, per_cpu);
+        const double v = fma_run(loop, lanes, nthreads, iters, per_cpu);
         best = v > best ? v : best;
     }
     return best;
 }
 
+double bench_fma_peak_kernel(clef_kernel k, int nthreads, double seconds, int reps)
+{
+    return fma_peak(k, nthreads, seconds, reps, 0);
+}
+
+double bench_fma_peak_kernel_cpu(clef_kernel k, int nthreads, double seconds, int reps)
+{
+    return fma_peak(k, nthreads, seconds, reps, 1);
+}
+
 double bench_fma_peak(int nthreads, double seconds, int reps)
 {
-    return fma_peak(nthreads, seconds, reps, 0);
+    return fma_peak(bench_default_kernel(), nthreads, seconds, reps, 0);
 }
 
 double bench_fma_peak_cpu(int nthreads, double seconds, int reps)
 {
-    return fma_peak(nthreads, seconds, reps, 1);
+    return fma_peak(bench_default_kernel(), nthreads, seconds, reps, 1);
 }
 
 double bench_dgemm(int n, int nthreads, int reps)
@@ -187,6 +199,31 @@ cJSON *bench_machine_json(void)
             }
         fclose(f);
     }
+    cJSON *flags = cJSON_CreateArray();
+    f = fopen("/proc/cpuinfo", "r");
+    if (f) {
+        static const char *const want[] = {"sse2", "avx", "fma", "avx2", "avx512f", "avx512dq",
+                                           "avx512vl", "asimd", "sve"};
+        char line[8192];
+        while (fgets(line, sizeof line, f)) {
+            if (strncmp(line, "flags", 5) && strncmp(line, "Features", 8))
+                continue;
+            for (size_t i = 0; i < sizeof want / sizeof *want; i++) {
+                char pat[32];
+                snprintf(pat, sizeof pat, " %s", want[i]);
+                const char *h = strstr(line, pat);
+                const size_t n = strlen(pat);
+                if (h && (h[n] == ' ' || h[n] == '\n' || h[n] == 0))
+                    cJSON_AddItemToArray(flags, cJSON_CreateString(want[i]));
+            }
+            break;
+        }
+        fclose(f);
+    }
+    cJSON *avail = cJSON_CreateArray();
+    for (int k = CLEF_KERNEL_COUNT - 1; k > CLEF_KERNEL_AUTO; k--)
+        if (clef_kernel_available((clef_kernel)k))
+            cJSON_AddItemToArray(avail, cJSON_CreateString(clef_kernel_name((clef_kernel)k)));
     double load[1] = {NAN};
     getloadavg(load, 1);
     cJSON_AddStringToObject(m, "cpu", model);
@@ -194,6 +231,9 @@ cJSON *bench_machine_json(void)
     cJSON_AddNumberToObject(m, "omp_max_threads", omp_get_max_threads());
     cJSON_AddStringToObject(m, "blas_core", bench_blas_core());
     cJSON_AddNumberToObject(m, "load_average_1min", load[0]);
+    cJSON_AddItemToObject(m, "cpu_flags", flags);
+    cJSON_AddItemToObject(m, "kernels_available", avail);
+    cJSON_AddStringToObject(m, "kernel_default", clef_kernel_name(bench_default_kernel()));
     return m;
 }
 

@@ -11,6 +11,12 @@ for b in "$BUILD"/bench/bench_*; do
     echo "== $(basename "$b")"
     "$b" || { echo "$(basename "$b") failed"; status=1; }
 done
+# The Python module's overhead over the library (docs/python.md).
+if ls "$BUILD"/python/clef/_clef*.so >/dev/null 2>&1; then
+    echo "== python_spectrum"
+    PYTHONPATH="$BUILD/python" /usr/bin/python3 bench/python_spectrum.py ||
+        { echo "python_spectrum failed"; status=1; }
+fi
 /usr/bin/python3 - <<'PY' || status=1
 import glob, json, os
 merged = {}

@@ -9,7 +9,7 @@ libchealpix-dev libcfitsio-dev libfftw3-dev
 liblapacke-dev libopenblas-dev libgsl-dev
 libcjson-dev libcairo2-dev libcmocka-dev nettle-dev libyaml-dev
 fitsverify poppler-utils
-python3 python3-numpy python3-astropy python3-scipy python3-colorspacious"
+python3 python3-dev python3-numpy python3-pytest python3-astropy python3-scipy python3-colorspacious"
 # --fuzz: only what the fuzz step needs (clang with libFuzzer and the
 # sanitizer runtimes, LLVM's OpenMP runtime for clang builds).
 if [ "${1:-}" = "--fuzz" ]; then

@@ -1,5 +1,5 @@
-/* The cache folder's file format, shared by the coupling module (M and K)
- * and the spectrum module (mask spectra).  One file per key: a versioned
+/* The cache folder's file format, shared by the coupling module (M and K),
+ * the spectrum module (mask spectra) and the transform (ring weights).  One file per key: a versioned
  * header, the key, a payload checksum and a matrix of doubles, written to a
  * temporary name and renamed (src/coupling_cache.c; docs/coupling.md).
  * Not installed. */
@@ -8,8 +8,14 @@
 
 #include <stddef.h>
 
-enum { CLEF_CACHE_M = 1, CLEF_CACHE_K = 2, CLEF_CACHE_MASK_SPECTRA = 3, CLEF_CACHE_DEPROJ = 4,
-       CLEF_CACHE_POL = 5 /* the polarized matrices M^TE, M+, M- (coupling_pol.c) */ };
+enum {
+    CLEF_CACHE_M = 1,
+    CLEF_CACHE_K = 2,
+    CLEF_CACHE_MASK_SPECTRA = 3,
+    CLEF_CACHE_DEPROJ = 4,
+    CLEF_CACHE_POL = 5,         /* the polarized matrices M^TE, M+, M- (coupling_pol.c) */
+    CLEF_CACHE_RING_WEIGHTS = 6 /* transform ring weights (src/sht_weights.c) */
+};
 
 /* The folder by the documented precedence; NULL on success, else why not. */
 const char *clef_cache_resolve_dir(const char *cache_dir, char *buf, size_t n);

@@ -10,12 +10,10 @@
 #include <string.h>
 #include <sys/mman.h>
 
+#include "clef/kernel.h"
 #include "clef/wigner.h"
 #include "core_impl.h"
 
-/* Block of l' values whose sums stay in vector registers while k runs
- * (four 8-lane vectors in coupling_row). */
-#define COUPLING_BLOCK 32
 
 void clef_coupling_opts_default(clef_coupling_opts *o)
 {
@@ -66,75 +64,6 @@ fail:
     return status;
 }
 
-/* One row l1 of the upper triangle: s[l2 - l1] = sum_l3 (2l3+1) W_l3
- * (l1 l2 l3; 0 0 0)^2 for l1 <= l2 <= lmax.  With l3 = l2 - l1 + 2k,
- * k = 0..l1 (the even-J terms; PERFORMANCE.md section 3) and g = l2 + k,
- *   f^2 = A(k) A(l1 - k) A(l2 - l1 + k) / ((2(l2 + k) + 1) A(l2 + k)).
- * The factors depending on l2 + k only through n = l2 + k are folded per
- * row into t[n] = A(n - l1) / ((2n + 1) A(n)), and wt[n] = (2n+1) W_n, so
- * each term is
- *   c_k * t[l2 + k] * wt[l2 - l1 + 2k],  c_k = A(k) A(l1 - k):
- * two contiguous loads in l2, one multiply and one multiply-add; no
- * square root, no division.  A block of COUPLING_BLOCK sums in l2 stays in
- * vector registers while k runs.  Tables are padded by COUPLING_BLOCK so
- * whole blocks can run past lmax; t is per-thread scratch of ntab. */
-static void coupling_row(int l1, int lmax, int wl_lmax, const double *restrict a,
-                         const double *restrict b, const double *restrict wt, size_t ntab,
-                         double *restrict t, double *restrict s)
-{
-    for (size_t n = (size_t)l1; n < ntab; n++)
-        t[n] = a[n - (size_t)l1] * b[n];
-    for (int j0 = l1; j0 <= lmax; j0 += COUPLING_BLOCK) {
-        double acc[COUPLING_BLOCK];
-        /* W_l3 = 0 beyond wl_lmax: stop k once l3 at the block start passes it. */
-        int kmax = l1;
-        if (wl_lmax - (j0 - l1) < 2 * kmax)
-            kmax = (wl_lmax - (j0 - l1)) / 2;
-#if defined(__GNUC__)
-        /* GNU C vector extension: four 8-lane accumulators the compiler
-         * keeps in registers (an array accumulator is spilled to the stack
-         * on every k; 1.7x slower measured). */
-        typedef double v8d __attribute__((vector_size(64)));
-        v8d s0 = {0}, s1 = {0}, s2 = {0}, s3 = {0};
-        for (int k = 0; k <= kmax; k++) {
-            const double c = a[k] * a[l1 - k];
-            const double *pt = t + (j0 + k);
-            const double *pw = wt + (j0 - l1 + 2 * k);
-            v8d t0, t1, t2, t3, w0, w1, w2, w3;
-            memcpy(&t0, pt, sizeof t0);
-            memcpy(&t1, pt + 8, sizeof t1);
-            memcpy(&t2, pt + 16, sizeof t2);
-            memcpy(&t3, pt + 24, sizeof t3);
-            memcpy(&w0, pw, sizeof w0);
-            memcpy(&w1, pw + 8, sizeof w1);
-            memcpy(&w2, pw + 16, sizeof w2);
-            memcpy(&w3, pw + 24, sizeof w3);
-            s0 += c * t0 * w0;
-            s1 += c * t1 * w1;
-            s2 += c * t2 * w2;
-            s3 += c * t3 * w3;
-        }
-        memcpy(acc, &s0, sizeof s0);
-        memcpy(acc + 8, &s1, sizeof s1);
-        memcpy(acc + 16, &s2, sizeof s2);
-        memcpy(acc + 24, &s3, sizeof s3);
-#else
-        for (int j = 0; j < COUPLING_BLOCK; j++)
-            acc[j] = 0.0;
-        for (int k = 0; k <= kmax; k++) {
-            const double c = a[k] * a[l1 - k];
-            const double *restrict pt = t + (j0 + k);
-            const double *restrict pw = wt + (j0 - l1 + 2 * k);
-            for (int j = 0; j < COUPLING_BLOCK; j++)
-                acc[j] += c * pt[j] * pw[j];
-        }
-#endif
-        const int nj = lmax - j0 + 1 < COUPLING_BLOCK ? lmax - j0 + 1 : COUPLING_BLOCK;
-        for (int j = 0; j < nj; j++)
-            s[j0 - l1 + j] = acc[j];
-    }
-}
-
 int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl_lmax)
 {
     int status;
@@ -143,11 +72,16 @@ int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl
     if (!out)
         CLEF_FAIL(CLEF_EINVAL, "coupling: output pointer is NULL");
     *out = NULL;
+    clef_kernel kid;
+    CLEF_TRY(clef_kernel_resolve(CLEF_KERNEL_AUTO, &kid));
+    clef_coupling_row_fn *coupling_row = kid == CLEF_KERNEL_AVX512 ? clef_coupling_row_avx512
+                                         : kid == CLEF_KERNEL_AVX2 ? clef_coupling_row_avx2
+                                                                   : clef_coupling_row_base;
     CLEF_TRY(clef_coupling_alloc_empty(&c, lmax, wl, wl_lmax));
     const int L = lmax;
     const size_t n = (size_t)L + 1;
     /* Index ranges (coupling_row): a up to L + block, b and wt up to 2L + block. */
-    const size_t ntab = 2 * (size_t)L + COUPLING_BLOCK + 2;
+    const size_t ntab = 2 * (size_t)L + CLEF_COUPLING_PAD + 2;
     a = malloc(ntab * sizeof *a);
     b = malloc(ntab * sizeof *b);
     wt = calloc(ntab, sizeof *wt);
@@ -170,7 +104,7 @@ int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl
     int alloc_failed = 0;
 #pragma omp parallel
     {
-        double *s = malloc((n + COUPLING_BLOCK) * sizeof *s);
+        double *s = malloc((n + CLEF_COUPLING_PAD) * sizeof *s);
         double *t = malloc(ntab * sizeof *t);
         if (!s || !t) {
 #pragma omp atomic write

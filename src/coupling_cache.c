@@ -6,7 +6,8 @@
  *   8   u32      format version (CACHE_FORMAT)
  *   12  u32      byte-order mark 0x01020304 (as written by this machine)
  *   16  u32      kind: 1 = unbinned M, 2 = binned K, 3 = mask spectra, 4 = deprojection
- *                 correction (spectrum module)
+ *                 correction (spectrum module), 5 = polarized matrices, 6 = ring weights
+ *                 (transform)
  *   20  u32      reserved, 0
  *   24  u64      rows
  *   32  u64      columns
@@ -147,6 +148,7 @@ int clef_cache_path(char *buf, size_t n, const char *dir, int kind, const char *
                  : kind == KIND_K ? "coupling-K"
                  : kind == CLEF_CACHE_MASK_SPECTRA ? "mask-spectra"
                  : kind == CLEF_CACHE_POL          ? "coupling-pol"
+                 : kind == CLEF_CACHE_RING_WEIGHTS ? "ring-weights"
                                                    : "deprojection",
                  key);
     return len >= 0 && (size_t)len < n;

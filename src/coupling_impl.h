@@ -24,6 +24,16 @@ struct clef_coupling_binned {
     double *kinv_p; /* nbins x (lmax+1), row-major */
 };
 
+/* Row kernels of M (src/coupling_row_body.h), one per vector width; NULL
+ * where the width was not built.  Tables and the row scratch are padded by
+ * CLEF_COUPLING_PAD doubles, the widest kernel's block. */
+#define CLEF_COUPLING_PAD 32
+typedef void clef_coupling_row_fn(int l1, int lmax, int wl_lmax, const double *restrict a,
+                                  const double *restrict b, const double *restrict wt,
+                                  size_t ntab, double *restrict t, double *restrict s);
+extern clef_coupling_row_fn *const clef_coupling_row_avx512, *const clef_coupling_row_avx2,
+    *const clef_coupling_row_base;
+
 /* lmax >= 0 and W_l[0..wl_lmax] present, finite and >= 0 (CLEF_EINVAL
  * naming the first bad l). */
 int clef_coupling_check_wl(int lmax, const double *wl, int wl_lmax);

@@ -133,7 +133,8 @@ int clef_est_prepare(clef_estimator *e)
     for (int i = 0; i < e->nfields; i++)
         nmaps += e->fields[i].f.nsplits;
     clef_sht *sht = NULL;
-    clef_sht_opts so = {0};
+    /* Ring weights through the cache folder (sht.h) when the run uses it. */
+    clef_sht_opts so = {.use_cache = e->o.use_cache, .cache_dir = e->o.cache_dir};
     so.nmaps = 1;
     const size_t na = clef_alm_size(e->lmax_ext, e->lmax_ext);
     clef_progress("analysis", 0.0);
@@ -247,7 +248,7 @@ int clef_est_weight_alms(clef_estimator *e)
             status = clef_fail(CLEF_ENOMEM, "out of memory for a_lm (lmax %d)", lt);
             goto fail;
         }
-    clef_sht_opts so = {0};
+    clef_sht_opts so = {.use_cache = e->o.use_cache, .cache_dir = e->o.cache_dir};
     so.nmaps = n;
     CLEF_CHECK(clef_sht_create(&sht, e->nside, lt, &so));
     CLEF_CHECK(clef_sht_analysis(sht, n, in, (double complex *const *)e->walm, e->o.iterations));

@@ -215,17 +215,18 @@ static void legendre_analysis(const clef_sht *p, int b0, int nb, int nmaps,
         clef_sht_thread *th = &p->thr[omp_get_thread_num()];
         clef_sht_mtab *t = &th->tab;
         clef_sht_mtab_fill(t, m, lmax);
-        const size_t row = (size_t)nmaps * 2 * CLEF_SHT_VL;
+        const int vl = p->kern->vl;
+        const size_t row = (size_t)nmaps * 2 * vl;
         memset(th->abuf + (size_t)m * row, 0, (size_t)(lmax - m + 1) * row * sizeof(double));
-        clef_sht_kernel_analysis(t, nb, p->pair_x + (size_t)b0 * BL, p->pair_sth + (size_t)b0 * BL,
+        p->kern->analysis(t, nb, p->pair_x + (size_t)b0 * BL, p->pair_sth + (size_t)b0 * BL,
                                  phase_at_m(p, 0, m, 0), p->phase_stride, nmaps, th->abuf);
         for (int l = m; l <= lmax; l++)
             for (int j = 0; j < nmaps; j++) {
-                const double *ab = th->abuf + ((size_t)l * nmaps + j) * 2 * CLEF_SHT_VL;
+                const double *ab = th->abuf + ((size_t)l * nmaps + j) * row / nmaps;
                 double re = 0.0, im = 0.0;
-                for (int i = 0; i < CLEF_SHT_VL; i++) {
+                for (int i = 0; i < vl; i++) {
                     re += ab[i];
-                    im += ab[CLEF_SHT_VL + i];
+                    im += ab[vl + i];
                 }
                 alm[j][clef_alm_index(lmax, l, m)] += t->sigma[l] * (re + I * im);
             }
@@ -252,7 +253,7 @@ static void legendre_synthesis(const clef_sht *p, int b0, int nb, int nmaps,
         for (int l = m; l <= lmax; l++)
             for (int j = 0; j < nmaps; j++)
                 th->bl[(size_t)l * nmaps + j] = t->sigma[l] * alm[j][clef_alm_index(lmax, l, m)];
-        clef_sht_kernel_synthesis(t, nb, p->pair_x + (size_t)b0 * BL, p->pair_sth + (size_t)b0 * BL,
+        p->kern->synthesis(t, nb, p->pair_x + (size_t)b0 * BL, p->pair_sth + (size_t)b0 * BL,
                                   phase_at_m(p, 0, m, 0), p->phase_stride, nmaps, th->bl);
     }
     const double dc = thread_cpu() - c0;

@@ -5,8 +5,9 @@
  * Layout of the work (Gorski et al. 2005; Reinecke 2011):
  *  - rings come in north/south pairs p = 0 .. 2 nside - 1 (north ring
  *    p + 1, south ring 4 nside - 1 - p; the equator pairs with itself);
- *  - pairs are grouped in blocks of CLEF_SHT_BLOCK, processed as
- *    CLEF_SHT_NV vectors of CLEF_SHT_VL lanes by the Legendre kernels;
+ *  - pairs are grouped in blocks of CLEF_SHT_BLOCK, processed by the
+ *    Legendre kernel chosen for the plan (one per vector width,
+ *    sht_kernel_body.h) as sub-blocks of its own vector count and width;
  *  - blocks are grouped in chunks, so the Fourier-coefficient array
  *    ("phase" array, [m][block][parity][re/im][lane]) stays bounded;
  *  - a transform runs chunk by chunk: FFT stage (parallel over pairs) and
@@ -23,15 +24,14 @@
 
 #include "clef/sht.h"
 
-/* Doubles per vector (8 = one AVX-512 register; on narrower machines GCC
- * splits the vector type into several registers). */
 #define CLEF_PI 3.14159265358979323846
 
-#define CLEF_SHT_VL 8
-/* Vectors in flight per block: enough independent recurrence chains to
- * cover the FMA latency (PERFORMANCE.md section 2 item 3). */
-#define CLEF_SHT_NV 4
-#define CLEF_SHT_BLOCK (CLEF_SHT_VL * CLEF_SHT_NV)
+/* Widest kernel vector in doubles (AVX-512); sizes the analysis lane sums. */
+#define CLEF_SHT_VLMAX 8
+/* Ring pairs per block of the phase array: a multiple of every kernel's
+ * sub-block (vectors x lanes), independent of the kernel so that the FFT
+ * stage and the data layout are the same for all of them. */
+#define CLEF_SHT_BLOCK 32
 /* Doubles per (m, block, map) in the phase array: 2 parities x re/im x lanes. */
 #define CLEF_SHT_BLOCKDBL (4 * CLEF_SHT_BLOCK)
 
@@ -42,8 +42,6 @@
 /* The per-m scale factor sigma_l is renormalised by 2^-CLEF_SHT_SIGSTEP
  * whenever it exceeds 2^CLEF_SHT_SIGSTEP. */
 #define CLEF_SHT_SIGSTEP 64
-
-typedef double clef_vd __attribute__((vector_size(CLEF_SHT_VL * sizeof(double))));
 
 /* Per-m recurrence tables (sht_legendre.c), filled in thread scratch. */
 typedef struct clef_sht_mtab {
@@ -68,7 +66,7 @@ typedef struct clef_sht_thread {
     double complex *fn;     /* (mmax+1) x nmaps: north-ring coefficients */
     double complex *fs;     /* (mmax+1) x nmaps: south-ring coefficients */
     clef_sht_mtab tab;
-    double *abuf;           /* analysis partial sums [l][map][re/im][VL lanes] */
+    double *abuf;           /* analysis partial sums [l][map][re/im][kernel lanes] */
     double complex *bl;     /* synthesis sigma_l a_lm, [l][map] */
 } clef_sht_thread;
 
@@ -105,6 +103,7 @@ struct clef_sht {
     double *phase;            /* nmaps x (mmax+1) x chunk_blocks x BLOCKDBL */
     size_t phase_stride;      /* doubles per map in phase */
     double complex *delta;    /* nmaps x alm: Jacobi increments */
+    const struct clef_sht_kernel *kern; /* Legendre kernel chosen at plan creation */
     int nthreads;
     clef_sht_thread *thr;
     clef_sht_state *state;
@@ -132,8 +131,10 @@ int clef_sht_create_impl(clef_sht **out, int64_t nside, int lmax, const clef_sht
 void clef_sht_analysis_pass(const clef_sht *p, int nmaps, const double *const *map,
                             const double complex *const *prev, double complex *const *acc);
 
-/* sht_weights.c: quadrature weights per ring (nrings values). */
-int clef_sht_ring_weights_compute(const clef_sht *p, double *w);
+/* sht_weights.c: quadrature weights per ring (nrings values), from the
+ * process's memory cache, else the cache folder (use_cache), else solved
+ * and stored in both. */
+int clef_sht_ring_weights(const clef_sht *p, int use_cache, const char *cache_dir, double *w);
 
 /* sht_legendre.c */
 int clef_sht_mtab_alloc(clef_sht_mtab *t, int lmax);
@@ -142,14 +143,21 @@ void clef_sht_mtab_fill(clef_sht_mtab *t, int m, int lmax);
 /* lambda_mm(theta) = mant * 2^exp2 with |mant| in [0.5, 1) (exact exponent). */
 void clef_sht_lambda_mm(const clef_sht_mtab *t, double sth, double *mant, int *exp2);
 
-/* sht_kernel.c: Legendre stage over one chunk for one m.  `ph` points at
- * the chunk's phase data for m (map j at ph + j * map_stride), block b at
- * b * BLOCKDBL; x, sth are the chunk's pair tables. */
-void clef_sht_kernel_analysis(const clef_sht_mtab *t, int nblocks, const double *x,
-                              const double *sth, const double *ph, size_t map_stride,
-                              int nmaps, double *abuf);
-void clef_sht_kernel_synthesis(const clef_sht_mtab *t, int nblocks, const double *x,
-                               const double *sth, double *ph, size_t map_stride, int nmaps,
-                               const double complex *bl);
+/* Legendre kernels (sht_kernel_body.h), one per vector width: the stage
+ * over one chunk for one m.  `ph` points at the chunk's phase data for m
+ * (map j at ph + j * map_stride), block b at b * BLOCKDBL; x, sth are the
+ * chunk's pair tables; analysis adds lane partial sums into
+ * abuf[l][map][re/im][vl]. */
+typedef struct clef_sht_kernel {
+    const char *name;
+    int vl; /* lanes of the analysis partial sums */
+    void (*analysis)(const clef_sht_mtab *t, int nblocks, const double *x, const double *sth,
+                     const double *ph, size_t map_stride, int nmaps, double *abuf);
+    void (*synthesis)(const clef_sht_mtab *t, int nblocks, const double *x, const double *sth,
+                      double *ph, size_t map_stride, int nmaps, const double complex *bl);
+} clef_sht_kernel;
+
+/* Present only where the compiler targets the width (Makefile KFLAGS). */
+extern const clef_sht_kernel clef_sht_avx512_kernel, clef_sht_avx2_kernel, clef_sht_base_kernel;
 
 #endif

@@ -77,7 +77,7 @@ static int alloc_threads(clef_sht *p)
         th->fs = malloc(sizeof *th->fs * mm * nm);
         th->ph1 = malloc(sizeof *th->ph1 * 64);
         th->ph2 = malloc(sizeof *th->ph2 * (mm / 64 + 1));
-        th->abuf = malloc(sizeof *th->abuf * lm * nm * 2 * CLEF_SHT_VL);
+        th->abuf = malloc(sizeof *th->abuf * lm * nm * 2 * CLEF_SHT_VLMAX);
         th->bl = malloc(sizeof *th->bl * lm * nm);
         if (!th->ring || !th->four || !th->fn || !th->fs || !th->ph1 || !th->ph2 || !th->abuf ||
             !th->bl)
@@ -138,9 +138,15 @@ int clef_sht_create_impl(clef_sht **out, int64_t nside, int lmax, const clef_sht
         clef_log(CLEF_LOG_WARN, "sht: lmax = %d above 3 nside - 1 = %lld: analysis is not invertible",
                  lmax, (long long)(3 * nside - 1));
 
+    clef_kernel kid;
+    CLEF_TRY(clef_kernel_resolve(opts ? opts->kernel : CLEF_KERNEL_AUTO, &kid));
     p = calloc(1, sizeof *p);
     if (!p)
         CLEF_FAIL(CLEF_ENOMEM, "sht: no memory for the plan");
+    p->kern = kid == CLEF_KERNEL_AVX512 ? &clef_sht_avx512_kernel
+            : kid == CLEF_KERNEL_AVX2   ? &clef_sht_avx2_kernel
+                                        : &clef_sht_base_kernel;
+    clef_log(CLEF_LOG_DEBUG, "sht: Legendre kernel %s (%d lanes)", p->kern->name, p->kern->vl);
     p->nside = nside;
     p->npix = 12 * nside * nside;
     p->lmax = lmax;
@@ -177,7 +183,8 @@ int clef_sht_create_impl(clef_sht **out, int64_t nside, int lmax, const clef_sht
         for (size_t r = 0; r < nr; r++)
             p->ring_w[r] = 1.0;
     } else {
-        CLEF_CHECK(clef_sht_ring_weights_compute(p, p->ring_w));
+        CLEF_CHECK(clef_sht_ring_weights(p, opts && opts->use_cache, opts ? opts->cache_dir : NULL,
+                                         p->ring_w));
     }
 
     const unsigned flags = opts && opts->fftw_flags ? opts->fftw_flags : FFTW_ESTIMATE;
@@ -256,6 +263,13 @@ int64_t clef_sht_nside(const clef_sht *p) { return p->nside; }
 int clef_sht_lmax(const clef_sht *p) { return p->lmax; }
 int clef_sht_mmax(const clef_sht *p) { return p->mmax; }
 int clef_sht_nrings(const clef_sht *p) { return p->nrings; }
+
+clef_kernel clef_sht_kernel_used(const clef_sht *p)
+{
+    return p->kern == &clef_sht_avx512_kernel ? CLEF_KERNEL_AVX512
+         : p->kern == &clef_sht_avx2_kernel   ? CLEF_KERNEL_AVX2
+                                              : CLEF_KERNEL_BASE;
+}
 
 int clef_sht_ring_info(const clef_sht *p, int ring, double *z, double *phi0, int64_t *npix,
                        int64_t *first, double *weight)

@@ -2,6 +2,8 @@
 # Run the whole test suite: every $BUILD/tests/test_* program (cmocka) and
 # every tests/cli/*.sh script.  Prints one line per program or script and a
 # closing "N passed, N failed" line counting individual tests.
+# CLEF_TEST_ONLY="test_sht spectrum.sh ..." runs only the named programs
+# and scripts (tests/kernels.sh uses it).
 BUILD=${1:-build}
 top=$(cd "$(dirname "$0")/.." && pwd)
 cd "$top" || exit 2
@@ -12,11 +14,18 @@ CLEF_CACHE_DIR="$CLEF_TEST_TMP/cache"; export CLEF_CACHE_DIR
 trap 'rm -rf "$CLEF_TEST_TMP"' EXIT
 : "${OMP_NUM_THREADS:=2}"; export OMP_NUM_THREADS
 
+selected() {
+    [ -z "${CLEF_TEST_ONLY:-}" ] && return 0
+    case " $CLEF_TEST_ONLY " in *" $1 "*) return 0 ;; esac
+    return 1
+}
+
 pass=0; fail=0; failed_names=""
 log="$CLEF_TEST_TMP/log"
 for t in "$BUILD"/tests/test_*; do
     [ -x "$t" ] || continue
     name=$(basename "$t")
+    selected "$name" || continue
     start=$(date +%s)
     if "$t" >"$log" 2>&1; then rc=0; else rc=$?; fi
     secs=$(( $(date +%s) - start ))
@@ -36,6 +45,7 @@ done
 for s in tests/cli/*.sh; do
     [ -f "$s" ] || continue
     name=$(basename "$s")
+    selected "$name" || continue
     start=$(date +%s)
     if sh "$s" >"$log" 2>&1; then rc=0; else rc=$?; fi
     secs=$(( $(date +%s) - start ))

@@ -17,6 +17,7 @@
 #include <gsl/gsl_sf_legendre.h>
 
 #include "clef/coupling.h"
+#include "clef/kernel.h"
 #include "clef/sht.h"
 #include "clef/wigner.h"
 
@@ -216,6 +217,56 @@ static void test_vs_direct_sum(void **state)
     }
     clef_coupling_destroy(c);
     gsl_rng_free(r);
+}
+
+/* The row kernel per vector width (include/clef/kernel.h, forced through
+ * CLEF_KERNEL): every available kernel gives M to 1e-14 relative of the
+ * baseline's (they differ only by fused multiply-adds), and each one is
+ * checked against the 3j sums above when make check reruns this program
+ * with the kernel forced (tests/kernels.sh). */
+static void test_kernels(void **state)
+{
+    (void)state;
+    enum { L = 300 };
+    static double wl[2 * L + 1];
+    gsl_rng *r = gsl_rng_alloc(gsl_rng_mt19937);
+    gsl_rng_set(r, 5);
+    random_wl(r, 2 * L, 2 * L + 1, wl);
+    gsl_rng_free(r);
+    char saved[64] = "";
+    const char *env = getenv("CLEF_KERNEL");
+    if (env)
+        snprintf(saved, sizeof saved, "%s", env);
+    const clef_kernel ks[] = {CLEF_KERNEL_BASE, CLEF_KERNEL_AVX2, CLEF_KERNEL_AVX512};
+    clef_coupling *base = NULL;
+    for (int q = 0; q < 3; q++) {
+        if (!clef_kernel_available(ks[q]))
+            continue;
+        setenv("CLEF_KERNEL", clef_kernel_name(ks[q]), 1);
+        clef_coupling *c;
+        const double *m = make_coupling(&c, L, wl, 2 * L);
+        if (!base) {
+            base = c;
+            continue;
+        }
+        const double *mb = clef_coupling_matrix(base);
+        double emax = 0.0;
+        for (int i = 0; i < (L + 1) * (L + 1); i++)
+            if (mb[i] != 0.0)
+                emax = fmax(emax, fabs(m[i] - mb[i]) / fabs(mb[i]));
+            else
+                assert_true(m[i] == 0.0);
+        printf("coupling kernel %s vs base, lmax %d: max rel diff %.3g\n",
+               clef_kernel_name(ks[q]), L, emax);
+        check_abs(emax, 0.0, 1e-14, "kernels agree to rounding (issue 17)");
+        clef_coupling_destroy(c);
+    }
+    assert_non_null(base);
+    clef_coupling_destroy(base);
+    if (saved[0])
+        setenv("CLEF_KERNEL", saved, 1);
+    else
+        unsetenv("CLEF_KERNEL");
 }
 
 static void test_binned_recovers_band_powers(void **state)
@@ -1050,6 +1101,7 @@ int main(void)
         cmocka_unit_test(test_hemisphere),
         cmocka_unit_test(test_row_sums_and_symmetry),
         cmocka_unit_test(test_vs_direct_sum),
+        cmocka_unit_test(test_kernels),
         cmocka_unit_test(test_binned_recovers_band_powers),
         cmocka_unit_test(test_ill_conditioned),
         cmocka_unit_test(test_singular_and_errors),

@@ -451,6 +451,218 @@ static void test_threads(void **state)
     free(m2);
 }
 
+/* ------------------------------------------------------------- kernels */
+
+/* One run of every available Legendre kernel (include/clef/kernel.h) on the
+ * same input: 3 maps (the kernels group maps in pairs, so one pair and one
+ * single), synthesis then analysis with 2 Jacobi iterations, at 1 and 2
+ * threads.  Per kernel the two thread counts must give the same bits;
+ * across kernels the results must agree to 1e-14 relative rms (the kernels
+ * differ only in rounding: the baseline has no fused multiply-add); and
+ * every kernel's synthesis must match the direct GSL sum. */
+typedef struct kernel_run {
+    double *map[3];
+    double complex *alm[3];
+} kernel_run;
+
+static void kernel_transform(clef_kernel k, int64_t ns, int lmax, int nthreads,
+                             double complex *const *in, kernel_run *out)
+{
+    const int64_t npix = 12 * ns * ns;
+    const size_t nalm = clef_alm_size(lmax, lmax);
+    for (int j = 0; j < 3; j++) {
+        out->map[j] = malloc(npix * sizeof(double));
+        out->alm[j] = malloc(nalm * sizeof(double complex));
+        assert_true(out->map[j] && out->alm[j]);
+    }
+    const int saved = omp_get_max_threads();
+    omp_set_num_threads(nthreads);
+    clef_sht *p;
+    clef_sht_opts o = {.nmaps = 3, .kernel = k};
+    assert_int_equal(clef_sht_create(&p, ns, lmax, &o), CLEF_OK);
+    assert_int_equal(clef_sht_kernel_used(p), k);
+    assert_int_equal(clef_sht_synthesis(p, 3, (const double complex *const *)in, out->map),
+                     CLEF_OK);
+    assert_int_equal(clef_sht_analysis(p, 3, (const double *const *)out->map, out->alm, 2),
+                     CLEF_OK);
+    clef_sht_destroy(p);
+    omp_set_num_threads(saved);
+}
+
+static void kernel_run_free(kernel_run *r)
+{
+    for (int j = 0; j < 3; j++) {
+        free(r->map[j]);
+        free(r->alm[j]);
+    }
+}
+
+static double rel_rms_real(const double *a, const double *ref, size_t n)
+{
+    double num = 0.0, den = 0.0;
+    for (size_t i = 0; i < n; i++) {
+        num += (a[i] - ref[i]) * (a[i] - ref[i]);
+        den += ref[i] * ref[i];
+    }
+    return sqrt(num / den);
+}
+
+static void test_kernels(void **state)
+{
+    (void)state;
+    const clef_kernel ks[] = {CLEF_KERNEL_BASE, CLEF_KERNEL_AVX2, CLEF_KERNEL_AVX512};
+    const int64_t ns = test_sanitize() ? 32 : 64;
+    const int lmax = 3 * (int)ns - 1;
+    const int64_t npix = 12 * ns * ns;
+    const size_t nalm = clef_alm_size(lmax, lmax);
+    double complex *in[3];
+    for (int j = 0; j < 3; j++)
+        in[j] = random_alm(lmax, lmax, 31 + j);
+    kernel_run base = {0};
+    int nrun = 0;
+    for (int q = 0; q < 3; q++) {
+        if (!clef_kernel_available(ks[q])) {
+            printf("kernel %s: not available on this build or CPU\n", clef_kernel_name(ks[q]));
+            continue;
+        }
+        kernel_run r1, r2;
+        kernel_transform(ks[q], ns, lmax, 1, in, &r1);
+        kernel_transform(ks[q], ns, lmax, 2, in, &r2);
+        double dmax = 0.0;
+        for (int j = 0; j < 3; j++) {
+            /* Bit-identical for one kernel at any thread count (sht.h). */
+            assert_memory_equal(r1.map[j], r2.map[j], npix * sizeof(double));
+            assert_memory_equal(r1.alm[j], r2.alm[j], nalm * sizeof(double complex));
+            if (q > 0) {
+                const double dm = rel_rms_real(r1.map[j], base.map[j], (size_t)npix);
+                const double da = rel_rms(r1.alm[j], base.alm[j], nalm);
+                dmax = fmax(dmax, fmax(dm, da));
+                check_abs(dm, 0.0, 1e-14, "kernel vs base kernel, synthesis (issue 17)");
+                check_abs(da, 0.0, 1e-14, "kernel vs base kernel, analysis (issue 17)");
+            }
+        }
+        printf("kernel %-6s nside %lld lmax %d: threads 1 = 2 bit for bit; rel rms vs base %.3g\n",
+               clef_kernel_name(ks[q]), (long long)ns, lmax, dmax);
+        kernel_run_free(&r2);
+        if (q == 0)
+            base = r1;
+        else
+            kernel_run_free(&r1);
+        nrun++;
+    }
+    assert_true(nrun >= 1 && base.map[0]); /* the baseline is always built */
+    kernel_run_free(&base);
+    for (int j = 0; j < 3; j++)
+        free(in[j]);
+
+    /* Each kernel against the direct sum of GSL Y_lm (outside reference). */
+    const int64_t ns2 = 16;
+    const int lmax2 = 3 * (int)ns2 - 1;
+    const int64_t npix2 = 12 * ns2 * ns2;
+    double complex *alm = random_alm(lmax2, lmax2, 41);
+    double *ref = malloc(npix2 * sizeof *ref), *map = malloc(npix2 * sizeof *map);
+    direct_synthesis(ns2, lmax2, alm, ref);
+    for (int q = 0; q < 3; q++) {
+        if (!clef_kernel_available(ks[q]))
+            continue;
+        clef_sht *p;
+        clef_sht_opts o = {.kernel = ks[q]};
+        assert_int_equal(clef_sht_create(&p, ns2, lmax2, &o), CLEF_OK);
+        assert_int_equal(clef_sht_synthesis(p, 1, (const double complex *const *)&alm, &map),
+                         CLEF_OK);
+        check_abs(rel_rms_real(map, ref, (size_t)npix2), 0.0, 1e-12,
+                  "direct sum of GSL Y_lm at chealpix centres");
+        clef_sht_destroy(p);
+    }
+    free(alm);
+    free(ref);
+    free(map);
+}
+
+/* Kernel choice: names, the CLEF_KERNEL variable, and the automatic
+ * choice against the CPU flags Linux lists in /proc/cpuinfo (outside
+ * reference: the kernel's own cpuid report). */
+static int cpuinfo_has(const char *flag)
+{
+    FILE *f = fopen("/proc/cpuinfo", "r");
+    if (!f)
+        return -1;
+    char line[8192];
+    int found = 0;
+    while (!found && fgets(line, sizeof line, f)) {
+        if (strncmp(line, "flags", 5))
+            continue;
+        for (char *t = strtok(strchr(line, ':') + 1, " \n"); t; t = strtok(NULL, " \n"))
+            found |= !strcmp(t, flag);
+        break;
+    }
+    fclose(f);
+    return found;
+}
+
+static void test_kernel_choice(void **state)
+{
+    (void)state;
+    for (int k = 0; k < CLEF_KERNEL_COUNT; k++) {
+        clef_kernel back;
+        assert_int_equal(clef_kernel_parse(clef_kernel_name((clef_kernel)k), &back), CLEF_OK);
+        assert_int_equal(back, k);
+    }
+    clef_kernel back;
+    assert_int_equal(clef_kernel_parse("AVX2", &back), CLEF_EINVAL);
+    assert_int_equal(clef_kernel_parse("sse9", &back), CLEF_EINVAL);
+    assert_true(clef_kernel_available(CLEF_KERNEL_BASE));
+
+    char saved[64] = "";
+    const char *env = getenv("CLEF_KERNEL");
+    if (env)
+        snprintf(saved, sizeof saved, "%s", env);
+    clef_sht *p = NULL;
+    setenv("CLEF_KERNEL", "avx3", 1);
+    assert_int_equal(clef_sht_create(&p, 4, 8, NULL), CLEF_EINVAL);
+    assert_non_null(strstr(clef_last_error(), "CLEF_KERNEL"));
+    assert_non_null(strstr(clef_last_error(), "avx3"));
+    setenv("CLEF_KERNEL", "base", 1);
+    assert_int_equal(clef_sht_create(&p, 4, 8, NULL), CLEF_OK);
+    assert_int_equal(clef_sht_kernel_used(p), CLEF_KERNEL_BASE);
+    clef_sht_destroy(p);
+    /* The plan option wins over the variable. */
+    if (clef_kernel_available(CLEF_KERNEL_AVX2)) {
+        clef_sht_opts o = {.kernel = CLEF_KERNEL_AVX2};
+        assert_int_equal(clef_sht_create(&p, 4, 8, &o), CLEF_OK);
+        assert_int_equal(clef_sht_kernel_used(p), CLEF_KERNEL_AVX2);
+        clef_sht_destroy(p);
+    }
+    unsetenv("CLEF_KERNEL");
+    clef_kernel k;
+    assert_int_equal(clef_kernel_resolve(CLEF_KERNEL_AUTO, &k), CLEF_OK);
+    const int has512 = cpuinfo_has("avx512f"), has2 = cpuinfo_has("avx2"), fma = cpuinfo_has("fma");
+    printf("auto kernel %s; /proc/cpuinfo: avx512f %d avx2 %d fma %d\n", clef_kernel_name(k),
+           has512, has2, fma);
+#if defined(__x86_64__)
+    if (has512 >= 0) {
+        clef_kernel want = (has512 && cpuinfo_has("avx512dq") && fma) ? CLEF_KERNEL_AVX512
+                           : (has2 && fma)                        ? CLEF_KERNEL_AVX2
+                                                                  : CLEF_KERNEL_BASE;
+        /* A build without a width (flags not applied) steps down from what
+         * the CPU offers; never above it. */
+        while (want > CLEF_KERNEL_BASE && !clef_kernel_available(want))
+            want = (clef_kernel)(want - 1);
+        assert_int_equal(k, want);
+    }
+#else
+    assert_int_equal(k, CLEF_KERNEL_BASE);
+#endif
+    /* A kernel this CPU lacks is refused, never silently replaced. */
+    for (int q = CLEF_KERNEL_AVX2; q <= CLEF_KERNEL_AVX512; q++)
+        if (!clef_kernel_available((clef_kernel)q)) {
+            clef_sht_opts o = {.kernel = (clef_kernel)q};
+            assert_int_equal(clef_sht_create(&p, 4, 8, &o), CLEF_EUNSUP);
+        }
+    if (saved[0])
+        setenv("CLEF_KERNEL", saved, 1);
+}
+
 /* Several maps per call share the recurrence and give the single-map
  * results (5 maps exercise the grouping of maps in the kernels); a plan
  * with mmax < lmax equals the full plan on a_lm truncated at mmax. */
@@ -640,6 +852,8 @@ int main(void)
         cmocka_unit_test(test_parseval),
         cmocka_unit_test(test_alm_cl),
         cmocka_unit_test(test_threads),
+        cmocka_unit_test(test_kernels),
+        cmocka_unit_test(test_kernel_choice),
         cmocka_unit_test(test_nmaps_mmax),
         cmocka_unit_test(test_create_errors),
         cmocka_unit_test(test_wisdom),

@@ -24,6 +24,7 @@
 #include <stdint.h>
 
 #include "clef/clef.h"
+#include "clef/kernel.h"
 
 #ifdef __cplusplus
 extern "C" {
@@ -37,6 +38,13 @@ typedef struct clef_sht_opts {
     int no_ring_weights;     /* 1: plain pixel sums in analysis (weights all 1) */
     unsigned fftw_flags;     /* 0 = FFTW_ESTIMATE (reproducible, fast to plan) */
     const char *wisdom_file; /* optional FFTW wisdom file, read if present and updated */
+    clef_kernel kernel;      /* Legendre kernel (clef/kernel.h); AUTO = CLEF_KERNEL or the CPU's best */
+    /* Ring weights (the slow part of create at large nside) are kept in
+     * memory for the process and, with use_cache = 1, in the cache folder
+     * cache_dir (NULL: $CLEF_CACHE_DIR, $XDG_CACHE_HOME/clef, ~/.cache/clef),
+     * in the coupling cache's file format (docs/coupling.md). */
+    int use_cache;
+    const char *cache_dir;
 } clef_sht_opts;
 
 /* Make a plan for maps of `nside` (power of two, <= CLEF_NSIDE_MAX) and
@@ -49,6 +57,7 @@ int64_t clef_sht_nside(const clef_sht *p);
 int clef_sht_lmax(const clef_sht *p);
 int clef_sht_mmax(const clef_sht *p);
 int clef_sht_nrings(const clef_sht *p); /* 4 nside - 1 */
+clef_kernel clef_sht_kernel_used(const clef_sht *p); /* never CLEF_KERNEL_AUTO */
 
 /* Geometry and quadrature weight of ring `ring` (1 .. 4 nside - 1, north
  * to south, as numbered by the HEALPix RING scheme): z = cos theta of its

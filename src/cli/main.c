@@ -6,6 +6,7 @@
 #include <unistd.h>
 
 #include "clef/clef.h"
+#include "clef/kernel.h"
 #include "cli.h"
 
 /* One line per subcommand; the table ends with an empty entry. */
@@ -86,6 +87,17 @@ int main(int argc, char **argv)
     }
     if (!strcmp(name, "--version") || !strcmp(name, "-V")) {
         printf("clef %s\n", CLEF_VERSION);
+        /* Kernels this binary can run here (include/clef/kernel.h), widest
+         * first, then the one plans use by default (CLEF_KERNEL or auto). */
+        printf("kernels:");
+        for (int k = CLEF_KERNEL_COUNT - 1; k > CLEF_KERNEL_AUTO; k--)
+            if (clef_kernel_available((clef_kernel)k))
+                printf(" %s", clef_kernel_name((clef_kernel)k));
+        clef_kernel k;
+        if (clef_kernel_resolve(CLEF_KERNEL_AUTO, &k) == CLEF_OK)
+            printf(" (in use: %s)\n", clef_kernel_name(k));
+        else
+            printf(" (in use: none: %s)\n", clef_last_error());
         return CLI_EXIT_OK;
     }
     for (int i = 0; commands[i].name; i++)

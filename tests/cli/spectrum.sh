@@ -75,6 +75,26 @@ PY
     "$T/again.json" || fail "second run did not use the coupling cache"
 [ ! -e "$T/again.fits" ] || fail "--format json wrote a FITS file"
 
+# The transform's ring weights went to the cache folder too (issue 17): one
+# entry of 2 nside = 128 doubles after the 184-byte header (docs/coupling.md);
+# a corrupted entry is reported, recomputed and rewritten, with the same
+# band powers (Python's json compares them).
+rw=$(ls "$CLEF_CACHE_DIR"/ring-weights-*.bin 2>/dev/null)
+[ "$(echo "$rw" | wc -w)" -eq 1 ] || fail "expected one ring-weight cache entry, found: $rw"
+[ "$(wc -c < "$rw")" -eq $((184 + 128 * 8)) ] || fail "ring-weight entry size $(wc -c < "$rw")"
+printf '\377' | dd of="$rw" bs=1 seek=300 conv=notrunc 2>/dev/null
+"$C" spectrum "$T/sky_split1.fits" "$T/sky_split2.fits" --mask "$T/mask.fits" --beam-fwhm 30 \
+    --format json --output "$T/rewt" > /dev/null 2> "$T/rewt.err" || fail "run with a corrupted ring-weight entry"
+grep -q "ring-weights-.*corrupted" "$T/rewt.err" || fail "no warning for the corrupted entry: $(cat "$T/rewt.err")"
+"$CLEF_PYTHON" - "$T/again.json" "$T/rewt.json" <<'PY' || fail "band powers changed with recomputed ring weights"
+import json, sys
+a, b = (json.load(open(f))["bandpowers"]["d_uK2"] for f in sys.argv[1:3])
+assert a == b, (a, b)
+PY
+"$C" spectrum "$T/sky_split1.fits" "$T/sky_split2.fits" --mask "$T/mask.fits" --beam-fwhm 30 \
+    --format json --output "$T/rewt2" > /dev/null 2> "$T/rewt2.err" || fail "run after the rewrite"
+! grep -q "ring-weights" "$T/rewt2.err" || fail "rewritten entry not used: $(cat "$T/rewt2.err")"
+
 # A beam table that stops below 2 nside caps the default lmax and the coupled
 # range, with a warning naming it (Gaussian beam B_l = exp(-l(l+1) sigma^2/2),
 # sigma = FWHM/sqrt(8 ln 2): METHODS.md 6).

@@ -1,4 +1,14 @@
-/* Legendre stage of the transform: for one m and a chunk of ring pairs,
+/* Legendre stage of the transform, written once for any vector width and
+ * included by one source file per width (sht_kernel_avx512.c,
+ * sht_kernel_avx2.c, sht_kernel_base.c), each compiled for its own
+ * instruction set; the including file defines
+ *   KVL      doubles per vector (lanes),
+ *   KNV      vectors per sub-block (independent recurrence chains),
+ *   KNAME(f) the per-width name of f, KSTR the kernel's name,
+ * and gets the descriptor KNAME(kernel) (sht_impl.h).  The plan picks one
+ * at run time (src/kernel.c).
+ *
+ * For one m and a chunk of ring pairs,
  * run the recurrence of sht_legendre.c vectorised across pairs and
  *  - analysis: accumulate sum_pairs mu_lm(pair) F_m(pair) into per-lane
  *    partial sums abuf[l][map][re/im][lane] (reduced once per m by the
@@ -7,10 +17,14 @@
  *    even (l - m even) and odd sums, so the north ring gets E + O and the
  *    south ring E - O (lambda_lm(-z) = (-1)^(l+m) lambda_lm(z); Schaeffer
  *    2013, G-cubed 14, 751).
- * A block holds NV = CLEF_SHT_NV vectors of VL pairs: NV independent
- * recurrence chains cover the FMA latency (4 cycles, 2 pipes: one
- * recurrence step per chain costs a multiply and an FMA, so 4 chains keep
- * both pipes busy; PERFORMANCE.md section 2 items 3-5).
+ * A block of the phase array (CLEF_SHT_BLOCK pairs) is run as sub-blocks
+ * of NV = KNV vectors of VL = KVL pairs: NV independent recurrence chains
+ * cover the FMA latency (4 cycles, 2 pipes: one recurrence step per chain
+ * costs a multiply and an FMA, so 4 chains keep both pipes busy;
+ * PERFORMANCE.md section 2 items 3-5); NV is chosen per width so that the
+ * chains' state (x, mu_{l-1}, mu_{l-2}: 3 NV registers) plus the
+ * accumulators fit the register file (32 vector registers with AVX-512,
+ * 16 with AVX2 and SSE2).  The lane partial sums in abuf have VL lanes.
  *
  * Each block starts in the scaled phase: lanes whose value is still below
  * 2^-RADIX (in mu units) carry an integer deficit and contribute nothing.
@@ -37,9 +51,13 @@
  * half the instructions), so allow contraction in this file. */
 #pragma GCC optimize("fp-contract=fast")
 
-#define VL CLEF_SHT_VL
-#define NV CLEF_SHT_NV
-#define BL CLEF_SHT_BLOCK
+#define VL KVL
+#define NV KNV
+#define BL CLEF_SHT_BLOCK /* layout stride of the phase array (sht_impl.h) */
+#define SB (VL * NV)      /* pairs per sub-block: one pass of the recurrence */
+_Static_assert(BL % SB == 0, "a block is a whole number of sub-blocks");
+
+typedef double clef_vd __attribute__((vector_size(VL * sizeof(double))));
 #define NMGROUP 2 /* maps sharing one pass of the recurrence */
 #define SKIP 8    /* steps between checks while no lane is in range */
 
@@ -53,7 +71,7 @@ typedef struct blockstate {
     clef_vd x[NV], mu1[NV], mu2[NV];
     clef_vd live[NV]; /* 1.0 where the lane's deficit is 0, else 0.0 */
     clef_vd thr[NV];  /* 1.0 where the lane is in deficit, else +inf */
-    int k[BL];        /* deficit per lane */
+    int k[SB];        /* deficit per lane */
     int kmax, nlive;
 } blockstate;
 
@@ -135,7 +153,7 @@ static void block_start(blockstate *s, const clef_sht_mtab *t, const double *x, 
 /* 1 if |mu| >= thr in any lane of any vector. */
 ALWAYS_INLINE int any_reached(const clef_vd *mu, const clef_vd *thr)
 {
-#if defined(__AVX512F__) && CLEF_SHT_VL == 8
+#if defined(__AVX512F__) && KVL == 8
     /* One compare into a mask register per vector, no lane extraction. */
     __mmask8 a = 0;
     for (int v = 0; v < NV; v++)
@@ -161,7 +179,7 @@ static void block_renorm(blockstate *s, clef_vd *mu)
     static const double down = 0x1p-200;
     _Static_assert(CLEF_SHT_RADIX == 200, "down must be 2^-RADIX");
     int kmax = 0;
-    for (int li = 0; li < BL; li++) {
+    for (int li = 0; li < SB; li++) {
         const int v = li / VL, i = li % VL;
         if (s->k[li] > 0 && fabs(mu[v][i]) >= 1.0) {
             mu[v][i] *= down;
@@ -357,23 +375,25 @@ ALWAYS_INLINE void ana_block(int nm, const clef_sht_mtab *t, const double *x, co
     }
 }
 
-void clef_sht_kernel_analysis(const clef_sht_mtab *t, int nblocks, const double *x,
-                              const double *sth, const double *ph, size_t map_stride,
-                              int nmaps, double *abuf)
+static void KNAME(analysis)(const clef_sht_mtab *t, int nblocks, const double *x,
+                           const double *sth, const double *ph, size_t map_stride, int nmaps,
+                           double *abuf)
 {
-    for (int b = 0; b < nblocks; b++) {
-        for (int j0 = 0; j0 < nmaps; j0 += NMGROUP) {
-            const int nm = nmaps - j0 < NMGROUP ? nmaps - j0 : NMGROUP;
-            const double *pb[NMGROUP];
-            for (int j = 0; j < nm; j++)
-                pb[j] = ph + (size_t)(j0 + j) * map_stride + (size_t)b * CLEF_SHT_BLOCKDBL;
-            const double *xb = x + (size_t)b * BL, *sb = sth + (size_t)b * BL;
-            if (nm == 1)
-                ana_block(1, t, xb, sb, pb, abuf, nmaps, j0);
-            else
-                ana_block(2, t, xb, sb, pb, abuf, nmaps, j0);
+    for (int b = 0; b < nblocks; b++)
+        for (int u = 0; u < BL; u += SB) {
+            const size_t off = (size_t)b * CLEF_SHT_BLOCKDBL + (size_t)u;
+            for (int j0 = 0; j0 < nmaps; j0 += NMGROUP) {
+                const int nm = nmaps - j0 < NMGROUP ? nmaps - j0 : NMGROUP;
+                const double *pb[NMGROUP];
+                for (int j = 0; j < nm; j++)
+                    pb[j] = ph + (size_t)(j0 + j) * map_stride + off;
+                const double *xb = x + (size_t)b * BL + u, *sb = sth + (size_t)b * BL + u;
+                if (nm == 1)
+                    ana_block(1, t, xb, sb, pb, abuf, nmaps, j0);
+                else
+                    ana_block(2, t, xb, sb, pb, abuf, nmaps, j0);
+            }
         }
-    }
 }
 
 /* --------------------------------------------------------------- synthesis */
@@ -481,21 +501,30 @@ ALWAYS_INLINE void syn_block(int nm, const clef_sht_mtab *t, const double *x, co
                     memcpy(pb[j] + (q * 2 + r) * BL + v * VL, &A.a[j][q][r][v], sizeof(clef_vd));
 }
 
-void clef_sht_kernel_synthesis(const clef_sht_mtab *t, int nblocks, const double *x,
-                               const double *sth, double *ph, size_t map_stride, int nmaps,
-                               const double complex *bl)
+static void KNAME(synthesis)(const clef_sht_mtab *t, int nblocks, const double *x,
+                            const double *sth, double *ph, size_t map_stride, int nmaps,
+                            const double complex *bl)
 {
-    for (int b = 0; b < nblocks; b++) {
-        for (int j0 = 0; j0 < nmaps; j0 += NMGROUP) {
-            const int nm = nmaps - j0 < NMGROUP ? nmaps - j0 : NMGROUP;
-            double *pb[NMGROUP];
-            for (int j = 0; j < nm; j++)
-                pb[j] = ph + (size_t)(j0 + j) * map_stride + (size_t)b * CLEF_SHT_BLOCKDBL;
-            const double *xb = x + (size_t)b * BL, *sb = sth + (size_t)b * BL;
-            if (nm == 1)
-                syn_block(1, t, xb, sb, pb, bl, nmaps, j0);
-            else
-                syn_block(2, t, xb, sb, pb, bl, nmaps, j0);
+    for (int b = 0; b < nblocks; b++)
+        for (int u = 0; u < BL; u += SB) {
+            const size_t off = (size_t)b * CLEF_SHT_BLOCKDBL + (size_t)u;
+            for (int j0 = 0; j0 < nmaps; j0 += NMGROUP) {
+                const int nm = nmaps - j0 < NMGROUP ? nmaps - j0 : NMGROUP;
+                double *pb[NMGROUP];
+                for (int j = 0; j < nm; j++)
+                    pb[j] = ph + (size_t)(j0 + j) * map_stride + off;
+                const double *xb = x + (size_t)b * BL + u, *sb = sth + (size_t)b * BL + u;
+                if (nm == 1)
+                    syn_block(1, t, xb, sb, pb, bl, nmaps, j0);
+                else
+                    syn_block(2, t, xb, sb, pb, bl, nmaps, j0);
+            }
         }
-    }
 }
+
+const clef_sht_kernel KNAME(kernel) = {KSTR, VL, KNAME(analysis), KNAME(synthesis)};
+
+#undef VL
+#undef NV
+#undef BL
+#undef SB

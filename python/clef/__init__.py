@@ -1,0 +1,99 @@
+"""clef: HEALPix sky maps to angular power spectra, from Python.
+
+A thin layer over the clef C library (docs/python.md): numpy float64 maps in
+RING order (NaN marks a missing pixel), complex128 a_lm in clef's m-major
+layout, results as numpy arrays and dicts.  The library does the work; its
+errors are raised as clef.Error subclasses carrying its message and status
+code, and its messages go to the logging logger "clef" (silent unless the
+application configures logging).
+"""
+import logging as _logging
+
+from ._clef import *  # noqa: F401,F403  (the C extension: every function and class)
+from ._clef import __version__  # noqa: F401
+
+# A library must not print: without this handler Python's last-resort
+# handler would write the logger's warnings to stderr.
+_logging.getLogger("clef").addHandler(_logging.NullHandler())
+
+import math as _math
+from typing import Optional as _Optional
+
+import numpy as _np
+
+from . import _clef
+
+_DEG = _math.pi / 180.0
+
+
+def build_mask(nside: _Optional[int] = None, *, from_map=None,
+               threshold: _Optional[float] = None, patch=None,
+               latitude_cut: _Optional[float] = None, holes=None,
+               taper: _Optional[str] = None, taper_width: _Optional[float] = None,
+               erode: float = 0.0) -> "_np.ndarray":
+    """A mask as `clef mask` builds it, in the same order and units (degrees).
+
+    Start from an all-observed mask of `nside`, or from the map `from_map`
+    (a float64 RING array: observed where the value is > 0, or >= threshold
+    when one is given; NaN pixels are unobserved); then keep only the disc
+    `patch` = (lon, lat, radius) [deg]; mask |latitude| < `latitude_cut`
+    [deg]; cut `holes` (a source-list path, or an (n, 3) array of lon [deg],
+    lat [deg], radius [arcmin]); finally taper: `taper` 'c1', 'c2' or
+    'gauss' with `taper_width` [deg] (apodization length, or FWHM for
+    gauss) and `erode` [deg] (gauss only).  Returns a float64 RING array.
+    """
+    if (nside is None) == (from_map is None):
+        raise ValueError("give exactly one of nside and from_map")
+    if from_map is not None:
+        m = _clef.mask_binarize(from_map, threshold=0.0 if threshold is None else float(threshold),
+                                inclusive=threshold is not None)
+    else:
+        m = _clef.mask_full(nside)
+    if patch is not None:
+        lon, lat, r = patch
+        m = _clef.mask_keep_disc(m, lon * _DEG, lat * _DEG, r * _DEG)
+    if latitude_cut is not None:
+        m = _clef.mask_cut_latitude(m, latitude_cut * _DEG)
+    if holes is not None:
+        if isinstance(holes, (str, bytes)) or hasattr(holes, "__fspath__"):
+            h = _clef.mask_holes_read(holes)
+        else:
+            h = _np.array(holes, dtype=_np.float64, ndmin=2)
+            if h.shape[1:] != (3,):
+                raise ValueError("holes must be an (n, 3) array: lon [deg], lat [deg], "
+                                 "radius [arcmin]")
+            h = _np.ascontiguousarray(h * [_DEG, _DEG, _DEG / 60.0])
+        m = _clef.mask_cut_holes(m, h)
+    if taper is not None:
+        if taper_width is None:
+            raise ValueError("taper needs taper_width [deg]")
+        m = _clef.mask_apodize(m, taper, taper_width * _DEG, erode=erode * _DEG)
+    elif taper_width is not None:
+        raise ValueError("taper_width given without taper ('c1', 'c2' or 'gauss')")
+    return m
+
+
+def _cosmo(quantity, doc):
+    def f(z: float, **params: float) -> float:
+        return _clef.cosmo_eval(quantity, float(z), **params)
+    f.__name__ = quantity
+    f.__qualname__ = quantity
+    f.__doc__ = doc + "\n\nParameters: keywords of clef.cosmo_params (default Planck 2018)."
+    return f
+
+
+hubble = _cosmo("hubble", "H(z) in km/s/Mpc.")
+baryon_loading = _cosmo("baryon_loading", "Baryon loading R(z) = 3 rho_b / (4 rho_gamma).")
+sound_speed = _cosmo("sound_speed", "Photon-baryon sound speed at z, in units of c.")
+sound_horizon = _cosmo("sound_horizon", "Comoving sound horizon r_s(z) [Mpc].")
+comoving_distance = _cosmo("comoving_distance", "Line-of-sight comoving distance chi(z) [Mpc].")
+transverse_distance = _cosmo("transverse_distance", "Transverse comoving distance D_M(z) [Mpc].")
+conformal_time = _cosmo("conformal_time", "Conformal time eta(z) times c [Mpc].")
+damping_scale = _cosmo("damping_scale", "Photon-diffusion damping wavenumber k_D(z) [1/Mpc].")
+
+
+def zstar(**params: float) -> float:
+    """Last-scattering redshift z_* (Hu & Sugiyama 1996, eq. E1).
+
+    Parameters: keywords of clef.cosmo_params (default Planck 2018)."""
+    return _clef.cosmo_eval("zstar", 0.0, **params)

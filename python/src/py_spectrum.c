@@ -1,0 +1,284 @@
+/* clef.spectrum over today's estimator API, clef_spectrum_compute of
+ * include/clef/spectrum.h: one or two maps and their masks -> band powers,
+ * covariance, windows, the first peak and the run summary.  (A wrapper of
+ * a many-fields estimator API would sit beside this file.) */
+#include "pyclef.h"
+
+#include <stdlib.h>
+#include <string.h>
+
+#include "clef/bins.h"
+#include "clef/peak.h"
+#include "clef/spectrum.h"
+
+/* An optional l-indexed table (B_l, F_l, N_l, C_l from l = 0): a finite
+ * float64 1-d array; *lmax = its length - 1. */
+static int table(PyObject *o, const char *what, PyArrayObject **arr, const double **v, int *lmax)
+{
+    *arr = NULL;
+    if (!o || o == Py_None)
+        return 0;
+    if (!(*arr = pyclef_double_array(o, what, 1, 1)))
+        return -1;
+    if (PyArray_DIM(*arr, 0) < 3) {
+        PyErr_Format(PyExc_ValueError, "%s must cover l = 0, 1, 2 at least (got %zd values)",
+                     what, (Py_ssize_t)PyArray_DIM(*arr, 0));
+        Py_CLEAR(*arr);
+        return -1;
+    }
+    *v = PyArray_DATA(*arr);
+    *lmax = (int)PyArray_DIM(*arr, 0) - 1;
+    return 0;
+}
+
+/* Bins: a file path, or an (n, 2) array of inclusive l ranges. */
+static int make_bins(PyObject *o, int lbins, clef_bins **out)
+{
+    int st;
+    if (PyUnicode_Check(o) || PyObject_HasAttrString(o, "__fspath__")) {
+        PyObject *p = NULL;
+        if (!PyUnicode_FSConverter(o, &p))
+            return -1;
+        st = clef_bins_read(out, PyBytes_AS_STRING(p), lbins, CLEF_BINS_DL);
+        Py_DECREF(p);
+    } else {
+        PyArrayObject *a = (PyArrayObject *)PyArray_FROMANY(o, NPY_INT64, 2, 2, NPY_ARRAY_CARRAY_RO);
+        if (!a || PyArray_DIM(a, 1) != 2) {
+            Py_XDECREF(a);
+            PyErr_Clear();
+            PyErr_SetString(PyExc_ValueError, "bins must be a bin-file path or an (n, 2) integer "
+                            "array of inclusive ranges l_lo, l_hi");
+            return -1;
+        }
+        const int n = (int)PyArray_DIM(a, 0);
+        int *lo = malloc(sizeof(int) * (size_t)(n + 1)), *hi = malloc(sizeof(int) * (size_t)(n + 1));
+        if (!lo || !hi) {
+            free(lo);
+            free(hi);
+            Py_DECREF(a);
+            PyErr_NoMemory();
+            return -1;
+        }
+        const int64_t *d = PyArray_DATA(a);
+        for (int i = 0; i < n; i++) {
+            /* out-of-range values become -1: the library names the bin */
+            lo[i] = d[2 * i] >= 0 && d[2 * i] < 1000000 ? (int)d[2 * i] : -1;
+            hi[i] = d[2 * i + 1] >= 0 && d[2 * i + 1] < 1000000 ? (int)d[2 * i + 1] : -1;
+        }
+        st = clef_bins_create_ranges(out, n, lo, hi, CLEF_BINS_DL);
+        free(lo);
+        free(hi);
+        Py_DECREF(a);
+    }
+    if (st != CLEF_OK) {
+        pyclef_raise(st);
+        return -1;
+    }
+    return 0;
+}
+
+/* t_call: wall seconds inside clef_spectrum_compute, for measuring the
+ * wrapper's own overhead (make bench). */
+static PyObject *summary(const clef_spectrum_result *r, double t_call)
+{
+    PyObject *s = PyDict_New();
+    if (!s)
+        return NULL;
+    npy_intp dims[2] = {r->cross + 1, 4};
+    PyObject *mp = PyArray_SimpleNew(2, dims, NPY_DOUBLE);
+    if (mp)
+        memcpy(PyArray_DATA((PyArrayObject *)mp), r->multipoles,
+               (size_t)(dims[0] * 4) * sizeof(double));
+    PyObject *t = PyDict_New();
+    for (int i = 0; t && i < r->nstages; i++)
+        if (pyclef_set(t, r->stage[i].name, PyFloat_FromDouble(r->stage[i].seconds)) < 0)
+            Py_CLEAR(t);
+    if (t && pyclef_set(t, "library_call", PyFloat_FromDouble(t_call)) < 0)
+        Py_CLEAR(t);
+    if (pyclef_set(s, "spectrum", PyUnicode_FromString(r->cross ? "cross" : "auto")) < 0 ||
+        pyclef_set(s, "nside", PyLong_FromLongLong(r->nside)) < 0 ||
+        pyclef_set(s, "lmax", PyLong_FromLong(r->lmax)) < 0 ||
+        pyclef_set(s, "lmax_coupled", PyLong_FromLong(r->lmax_ext)) < 0 ||
+        pyclef_set(s, "lmax_mask", PyLong_FromLong(r->lmax_mask)) < 0 ||
+        pyclef_set(s, "nbins", PyLong_FromLong(r->nbins)) < 0 ||
+        pyclef_set(s, "hidden_bins", PyLong_FromLong(r->nbins_hidden)) < 0 ||
+        pyclef_set(s, "bin_width", PyLong_FromLong(r->bin_width)) < 0 ||
+        pyclef_set(s, "removal_corrected_to_l", PyLong_FromLong(r->ldep)) < 0 ||
+        pyclef_set(s, "f_sky", PyFloat_FromDouble(r->fsky)) < 0 ||
+        pyclef_set(s, "w1", PyFloat_FromDouble(r->w1)) < 0 ||
+        pyclef_set(s, "w2", PyFloat_FromDouble(r->w2)) < 0 ||
+        pyclef_set(s, "w4", PyFloat_FromDouble(r->w4)) < 0 ||
+        pyclef_set(s, "f_sky_eff", PyFloat_FromDouble(r->fsky_eff)) < 0 ||
+        pyclef_set(s, "rcond", PyFloat_FromDouble(r->rcond)) < 0 ||
+        pyclef_set(s, "cache_hit", PyBool_FromLong(r->cache_hit)) < 0 ||
+        pyclef_set(s, "removed_multipoles_uK", mp) < 0 || pyclef_set(s, "timings_s", t) < 0) {
+        Py_DECREF(s);
+        return NULL;
+    }
+    return s;
+}
+
+static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
+{
+    (void)self;
+    static char *kwl[] = {"map1", "mask1", "map2", "mask2", "unit", "coordsys", "mask_coordsys",
+                          "lmax", "bin_width", "log_bins", "bins", "beam_fwhm", "beam",
+                          "pixel_window", "transfer", "noise_cl", "theory_cl", "iterations",
+                          "keep_multipoles", "cache", "cache_dir", "peak", "peak_l_min",
+                          "peak_l_max", "peak_half_width", "peak_curv_sigma",
+                          "allow_coord_mismatch", NULL};
+    PyObject *map_o[2] = {NULL, Py_None}, *mask_o[2] = {NULL, Py_None};
+    PyObject *bins_o = Py_None, *beam_o = Py_None, *transfer_o = Py_None, *noise_o = Py_None;
+    PyObject *theory_o = Py_None;
+    const char *unit = "", *coordsys = "", *mcoordsys = "", *cache_dir = NULL;
+    int lmax = 0, bin_width = 0, log_bins = 0, with_pixel_window = 1;
+    int iterations = CLEF_SPECTRUM_ITERATIONS;
+    int keep = 0, cache = 1, peak = 1, coord = 0;
+    double fwhm = 0.0;
+    clef_spectrum_opts so;
+    clef_spectrum_opts_default(&so);
+    double plmin = so.peak.l_min, plmax = so.peak.l_max, phw = so.peak.half_width;
+    double pcurv = so.peak.curv_nsigma;
+    if (!PyArg_ParseTupleAndKeywords(
+            args, kw, "OO|OO$sssiiiOdOpOOOippzpdddO&p:spectrum", kwl, &map_o[0], &mask_o[0],
+            &map_o[1], &mask_o[1], &unit, &coordsys, &mcoordsys, &lmax, &bin_width, &log_bins,
+            &bins_o, &fwhm, &beam_o, &with_pixel_window, &transfer_o, &noise_o, &theory_o,
+            &iterations, &keep, &cache, &cache_dir, &peak, &plmin, &plmax, &phw, pyclef_opt_double,
+            &pcurv, &coord))
+        return NULL;
+    /* The CLI's own argument checks (src/cli/cmd_spectrum.c), as ValueError. */
+    if (lmax != 0 && lmax < 2)
+        return PyErr_Format(PyExc_ValueError, "lmax must be at least 2 (0: automatic), got %d", lmax);
+    if (bin_width < 0 || log_bins < 0)
+        return PyErr_Format(PyExc_ValueError, "bin_width and log_bins must not be negative");
+    if ((bins_o != Py_None) + (log_bins > 0) + (bin_width > 0) > 1)
+        return PyErr_Format(PyExc_ValueError, "choose one of bins, log_bins and bin_width");
+    if (fwhm < 0)
+        return PyErr_Format(PyExc_ValueError, "beam_fwhm must not be negative, got %g", fwhm);
+    if (beam_o != Py_None && fwhm > 0)
+        return PyErr_Format(PyExc_ValueError, "choose one of beam_fwhm and beam");
+    if (iterations < 0 || iterations > 20)
+        return PyErr_Format(PyExc_ValueError, "iterations must be in 0..20, got %d", iterations);
+    if (!(phw >= 0))
+        return PyErr_Format(PyExc_ValueError, "peak_half_width must be positive (0: automatic), "
+                            "got %g", phw);
+    if (mask_o[1] != Py_None && map_o[1] == Py_None)
+        return PyErr_Format(PyExc_ValueError, "mask2 needs a second map (map2)");
+
+    pyclef_map mv[4];
+    memset(mv, 0, sizeof mv);
+    PyArrayObject *tabs[4] = {NULL, NULL, NULL, NULL};
+    clef_bins *bins = NULL;
+    clef_spectrum_result res;
+    memset(&res, 0, sizeof res);
+    PyObject *out = NULL;
+    static const char *names[4] = {"map1", "map2", "mask1", "mask2"};
+    PyObject *objs[4] = {map_o[0], map_o[1], mask_o[0], mask_o[1]};
+    for (int i = 0; i < 4; i++) {
+        if (objs[i] == Py_None)
+            continue;
+        if (pyclef_map_view(&mv[i], objs[i], names[i], i < 2, i < 2 ? coordsys : mcoordsys,
+                            i < 2 ? unit : NULL) < 0)
+            goto done;
+    }
+    so.lmax = lmax;
+    so.bin_width = bin_width;
+    so.beam_fwhm = fwhm;
+    so.pixel_window = with_pixel_window;
+    so.iterations = iterations;
+    so.keep_multipoles = keep;
+    so.use_cache = cache;
+    so.cache_dir = cache_dir;
+    so.find_peak = peak;
+    so.peak.l_min = plmin;
+    so.peak.l_max = plmax;
+    so.peak.half_width = phw;
+    so.peak.curv_nsigma = pcurv;
+    so.allow_coord_mismatch = coord;
+    for (int i = 0; i < 4; i++)
+        so.names[i] = names[i];
+    if (table(beam_o, "beam", &tabs[0], &so.beam, &so.beam_lmax) < 0 ||
+        table(transfer_o, "transfer", &tabs[1], &so.transfer, &so.transfer_lmax) < 0 ||
+        table(noise_o, "noise_cl", &tabs[2], &so.noise_cl, &so.noise_lmax) < 0 ||
+        table(theory_o, "theory_cl", &tabs[3], &so.theory_cl, &so.theory_lmax) < 0)
+        goto done;
+    if (bins_o != Py_None || log_bins > 0) {
+        /* As the CLI: explicit bins end at the given lmax or 3 nside - 1;
+         * logarithmic bins at the given or the default lmax. */
+        const int lbins = lmax ? lmax : (int)(3 * mv[0].m.nside - 1);
+        int st;
+        if (bins_o != Py_None) {
+            if (make_bins(bins_o, lbins, &bins) < 0)
+                goto done;
+        } else {
+            int ldef = lbins;
+            if (!lmax && (st = clef_spectrum_default_lmax(&so, mv[0].m.nside, &ldef)) != CLEF_OK) {
+                pyclef_raise(st);
+                goto done;
+            }
+            if ((st = clef_bins_create_log(&bins, 2, ldef, log_bins, CLEF_BINS_DL)) != CLEF_OK) {
+                pyclef_raise(st);
+                goto done;
+            }
+        }
+        if (!lmax)
+            so.lmax = clef_bins_lmax(bins);
+        so.bins = bins;
+    }
+    pyclef_log_refresh();
+    int st;
+    double t_call;
+    Py_BEGIN_ALLOW_THREADS
+    t_call = clef_wtime();
+    st = clef_spectrum_compute(&mv[0].m, map_o[1] != Py_None ? &mv[1].m : NULL, &mv[2].m,
+                               mask_o[1] != Py_None ? &mv[3].m : NULL, &so, &res);
+    t_call = clef_wtime() - t_call;
+    Py_END_ALLOW_THREADS
+    if (st != CLEF_OK) {
+        pyclef_raise(st);
+        goto done;
+    }
+    out = pyclef_bandpowers_dict(res.bp);
+    if (out && (pyclef_set(out, "summary", summary(&res, t_call)) < 0 ||
+                (res.peak_done ? pyclef_set(out, "peak", pyclef_peak_dict(&res.peak))
+                               : PyDict_SetItemString(out, "peak", Py_None)) < 0))
+        Py_CLEAR(out);
+done:
+    clef_spectrum_result_free(&res);
+    clef_bins_destroy(bins);
+    for (int i = 0; i < 4; i++) {
+        pyclef_map_release(&mv[i]);
+        Py_XDECREF(tabs[i]);
+    }
+    return out;
+}
+
+PyMethodDef pyclef_spectrum_methods[] = {
+    {"spectrum", PYCLEF_KW(py_spectrum), METH_VARARGS | METH_KEYWORDS,
+     "spectrum(map1, mask1, map2=None, mask2=None, *, unit='', coordsys='', mask_coordsys='',\n"
+     "         lmax=0, bin_width=0, log_bins=0, bins=None, beam_fwhm=0.0, beam=None,\n"
+     "         pixel_window=True, transfer=None, noise_cl=None, theory_cl=None, iterations=1,\n"
+     "         keep_multipoles=False, cache=True, cache_dir=None, peak=True, peak_l_min=100.0,\n"
+     "         peak_l_max=400.0, peak_half_width=0.0, peak_curv_sigma=2.0,\n"
+     "         allow_coord_mismatch=False)\n--\n\n"
+     "Decoupled band powers (pseudo-C_l, Hivon et al. 2002) as `clef spectrum` computes them,\n"
+     "with the same defaults.  map1, map2: float64 RING arrays (NaN = missing pixel), in\n"
+     "`unit` (K, mK or uK with or without _CMB; '' = uK); map2 given: the cross-spectrum.\n"
+     "mask1 (weights in [0, 1], no NaN) serves both maps unless mask2 is given.\n"
+     "coordsys, mask_coordsys: 'G', 'E', 'C' or '' (unknown) for the consistency check.\n"
+     "lmax: highest multipole reported (0: 2 nside, lowered by the beam and tables).\n"
+     "Bins (one of): bin_width [multipoles, 0 = automatic], log_bins (count), bins (a bin\n"
+     "file path or an (n, 2) array of inclusive l ranges).  beam_fwhm [arcmin] or beam\n"
+     "(B_l array from l = 0); pixel_window: correct for the HEALPix pixel window;\n"
+     "transfer (F_l), noise_cl (N_l [uK^2], subtracted from auto-spectra), theory_cl (C_l\n"
+     "[uK^2] for the covariance): arrays from l = 0.  iterations: analysis Jacobi steps;\n"
+     "keep_multipoles: do not remove the monopole and dipole; cache, cache_dir: the coupling\n"
+     "cache.  peak: fit the first peak in [peak_l_min, peak_l_max] (peak_half_width 0 =\n"
+     "automatic; docs/peak.md).\n\n"
+     "Returns a dict: l_lo, l_hi, l_eff, cl [uK^2], dl [uK^2], dl_err [uK^2], cov [uK^4],\n"
+     "windows (band-power windows, nbins x (win_lmax+1)), meta (the table keywords), peak\n"
+     "(a dict as clef.peak_find returns, or None) and summary (nside, lmax, lmax_coupled,\n"
+     "nbins, hidden_bins, bin_width, f_sky, w1, w2, w4, f_sky_eff, rcond, cache_hit,\n"
+     "removed_multipoles_uK, timings_s (the library's stages, and library_call: wall seconds\n"
+     "inside the library call), ...).  Releases the GIL while computing."},
+    {NULL, NULL, 0, NULL}};

@@ -1,0 +1,102 @@
+/* Shared helpers of the Python extension module clef._clef (docs/python.md):
+ * exceptions carrying the library's status and message, numpy argument
+ * checks, borrowed clef_map views of numpy arrays, and the registration
+ * tables of each wrapper file.  The C library does the work; these files
+ * only convert arguments and results. */
+#ifndef CLEF_PYCLEF_H
+#define CLEF_PYCLEF_H
+
+#define PY_SSIZE_T_CLEAN
+#include <Python.h>
+
+#define NPY_NO_DEPRECATED_API NPY_1_7_API_VERSION
+#define PY_ARRAY_UNIQUE_SYMBOL clef_py_ARRAY_API
+#ifndef CLEF_PY_MAIN
+#define NO_IMPORT_ARRAY
+#endif
+#include <numpy/arrayobject.h>
+
+#include "clef/clef.h"
+#include "clef/map.h"
+#include "clef/table.h"
+
+/* METH_VARARGS | METH_KEYWORDS functions in a PyMethodDef (the void cast
+ * keeps -Wcast-function-type quiet; CPython calls them with three args). */
+#define PYCLEF_KW(fn) ((PyCFunction)(void (*)(void))(fn))
+
+/* Raise the clef.Error subclass of `status` with clef_last_error() (or
+ * clef_strerror(status) when it is empty); returns NULL. */
+PyObject *pyclef_raise(int status);
+
+/* Refresh the log threshold from logging.getLogger("clef") (called with
+ * the GIL held at the start of every wrapper that runs library code, so
+ * the log hook can drop messages without taking the GIL). */
+void pyclef_log_refresh(void);
+
+/* A C-contiguous float64 array of `ndim` dimensions (1 or 2) from `obj`,
+ * refusing anything that needs a conversion: a wrong dtype is TypeError,
+ * a wrong ndim, a non-contiguous array, or NaN/inf when `finite` is set,
+ * ValueError; the message names `what`.  Returns a new reference (the
+ * same array) or NULL. */
+PyArrayObject *pyclef_double_array(PyObject *obj, const char *what, int ndim, int finite);
+/* The same for complex128 a_lm arrays (no finiteness check). */
+PyArrayObject *pyclef_complex_array(PyObject *obj, const char *what, int ndim);
+
+/* nside of a RING map of `npix` pixels, or -1 with ValueError naming
+ * `what` (npix must be 12 nside^2 with nside a power of two <= 8192). */
+int64_t pyclef_nside_of(npy_intp npix, const char *what);
+
+/* A borrowed view of a 1-d float64 map array as a clef_map: NaN pixels are
+ * missing (valid 0, value 0; the array is then copied, never changed).
+ * `allow_nan` 0 refuses NaN (ValueError; masks); inf is always refused.
+ * `coordsys`, `unit` may be NULL.  Free with pyclef_map_release. */
+typedef struct pyclef_map {
+    clef_map m;
+    PyArrayObject *arr;      /* reference kept while the view lives */
+    double *pix_copy;        /* owned copy when the array held NaN */
+    unsigned char *valid;    /* owned */
+} pyclef_map;
+int pyclef_map_view(pyclef_map *v, PyObject *obj, const char *what, int allow_nan,
+                    const char *coordsys, const char *unit);
+void pyclef_map_release(pyclef_map *v);
+
+/* A new 1-d float64 array with the pixels of a clef_map, NaN where
+ * invalid. */
+PyObject *pyclef_map_to_array(const clef_map *m);
+
+/* New 1-d arrays copied from C buffers. */
+PyObject *pyclef_vec_double(const double *v, npy_intp n);
+PyObject *pyclef_vec_int(const int *v, npy_intp n);
+
+/* Band-power tables: a dict with numpy arrays (l_lo, l_hi, l_eff, cl, dl,
+ * dl_err, cov or None, windows or None, meta) and back (from such a dict
+ * or a file path).  pyclef_bandpowers_from returns a table to free with
+ * clef_bandpowers_free, or NULL with an exception set. */
+PyObject *pyclef_bandpowers_dict(const clef_bandpowers *bp);
+clef_bandpowers *pyclef_bandpowers_from(PyObject *obj, const char *what);
+
+/* PyArg "O&" converters: an int (or None, leaving the default) into an
+ * int; a float (or None) into a double. */
+int pyclef_opt_int(PyObject *o, void *out);
+int pyclef_opt_double(PyObject *o, void *out);
+
+/* A first-peak result as a dict (py_peak.c). */
+struct clef_peak_result;
+PyObject *pyclef_peak_dict(const struct clef_peak_result *r);
+
+/* Set a dict item and drop the value's reference; returns -1 on error
+ * (also when value is NULL). */
+int pyclef_set(PyObject *d, const char *key, PyObject *value);
+
+/* Registration of each wrapper file's functions and types. */
+extern PyMethodDef pyclef_map_methods[];
+extern PyMethodDef pyclef_sht_methods[];
+extern PyMethodDef pyclef_mask_methods[];
+extern PyMethodDef pyclef_spectrum_methods[];
+extern PyMethodDef pyclef_peak_methods[];
+extern PyMethodDef pyclef_sim_methods[];
+extern PyMethodDef pyclef_theory_methods[];
+extern PyMethodDef pyclef_table_methods[];
+int pyclef_sht_register(PyObject *module);
+
+#endif

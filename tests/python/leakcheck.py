@@ -1,0 +1,85 @@
+"""Memory over 1000 create/destroy cycles of every kind of object the
+module makes, run by test_behaviour.py in its own process with one OpenMP
+thread (the tiny transforms here would otherwise spend their time in
+OpenMP barriers on a loaded machine; results do not depend on the thread
+count).  Prints one JSON object: growth of the C heap (glibc mallinfo2:
+bytes in use, arena and mmap), of Python's traced memory (tracemalloc,
+which also sees numpy's buffers) and of the resident set (/proc)."""
+import ctypes
+import gc
+import json
+import sys
+import tracemalloc
+
+import clef
+
+
+class _MallInfo2(ctypes.Structure):
+    _fields_ = [(n, ctypes.c_size_t) for n in ("arena", "ordblks", "smblks", "hblks", "hblkhd",
+                                               "usmblks", "fsmblks", "uordblks", "fordblks",
+                                               "keepcost")]
+
+
+_libc = ctypes.CDLL(None)
+_libc.mallinfo2.restype = _MallInfo2
+
+
+def heap():
+    i = _libc.mallinfo2()
+    return i.uordblks + i.hblkhd
+
+
+def rss_kib():
+    with open("/proc/self/status") as f:
+        for line in f:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1])
+    raise RuntimeError("no VmRSS")
+
+
+def main(mask_path, n=1000):
+    small = clef.mask_full(8)
+    cut = clef.mask_cut_latitude(small, 0.2)
+    sky = clef.simulate(8, clef.theory_cl(lmax=23), seed=2)
+    cl = clef.theory_cl(lmax=30)
+    table = {"l_lo": [2], "l_hi": [10], "l_eff": [6.0], "dl": [1.0], "dl_err": [0.1]}
+    bad_calls = (lambda: clef.read_map("/nonexistent.fits"),
+                 lambda: clef.spectrum(small, small, lmax=1),
+                 lambda: clef.spectrum(sky, cut * 2),
+                 lambda: clef.peak_find(table),
+                 lambda: clef.Sht(3, 8),
+                 lambda: clef.theory_cl(h=-1.0))
+
+    def cycle(i):
+        p = clef.Sht(8, 16)
+        p.synthesis(p.analysis(small, iterations=0))
+        del p
+        clef.read_map(mask_path)
+        clef.mask_moments(cut)
+        clef.simulate(8, cl, seed=i, lmax=16)
+        clef.mask_apodize(cut, "c1", 0.3)
+        clef.spectrum(sky, cut, bin_width=4)
+        for bad in bad_calls:
+            try:
+                bad()
+            except (clef.Error, ValueError):
+                pass
+
+    for i in range(100):  # warm up: caches, free lists, first-use allocations
+        cycle(i)
+    tracemalloc.start()
+    for i in range(300):  # tracemalloc's own tables and one-time buffers grow here
+        cycle(i)
+    gc.collect()
+    h0, t0, r0 = heap(), tracemalloc.get_traced_memory()[0], rss_kib()
+    for i in range(n):
+        cycle(i)
+    gc.collect()
+    h1, t1, r1 = heap(), tracemalloc.get_traced_memory()[0], rss_kib()
+    tracemalloc.stop()
+    print(json.dumps({"cycles": n, "heap_bytes": h1 - h0, "traced_bytes": t1 - t0,
+                      "rss_kib": r1 - r0}))
+
+
+if __name__ == "__main__":
+    main(sys.argv[1], int(sys.argv[2]) if len(sys.argv) > 2 else 1000)
