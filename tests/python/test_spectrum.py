@@ -87,7 +87,7 @@ def test_mask2_and_bins_array(sky, tmp_path):
     edges = tmp_path / "bins.txt"
     edges.write_text("2 30\n31 70\n71 110\n111 150\n151 190\n")
     files = [sky / "sky_split1.fits", sky / "sky_split2.fits"]
-    j, cov, _ = cli_run(sky, tmp_path, files, ["--mask2", str(tmp_path / "mask2.fits"),
+    j, cov, _ = cli_run(sky, tmp_path, files, ["--second-mask", str(tmp_path / "mask2.fits"),
                                                "--bins", str(edges)])
     m1, meta = clef.read_map(files[0])
     m2, _ = clef.read_map(files[1])
