@@ -15,7 +15,8 @@ enum cli_exit {
     CLI_EXIT_NUMERIC = 6,  /* CLEF_ENUMERIC: singular or ill-conditioned problem */
     CLI_EXIT_UNSUP = 7,    /* CLEF_EUNSUP: a request clef does not support */
     CLI_EXIT_NOMEM = 8,    /* CLEF_ENOMEM */
-    CLI_EXIT_NOPEAK = 9    /* clef peak --require: no peak found */
+    CLI_EXIT_NOPEAK = 9,   /* clef peak --require: no peak found */
+    CLI_EXIT_RUNDIR = 10   /* clef sims: the run folder belongs to another run description */
 };
 
 /* A subcommand: run() gets argv with argv[0] = the subcommand name. */
@@ -125,5 +126,6 @@ int cmd_model(int argc, char **argv);
 int cmd_geometry(int argc, char **argv);
 int cmd_mask(int argc, char **argv);
 int cmd_plot(int argc, char **argv);
+int cmd_sims(int argc, char **argv);
 
 #endif
