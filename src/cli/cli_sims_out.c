@@ -34,6 +34,7 @@ typedef struct products {
     int peak_truth_found;
     double l_true, d_true, l_pull, l_pull_sd, l_cov, d_pull, d_pull_sd, d_cov;
     int peak_used;
+    char peak_reason[300];          /* why there is no calibration, or "" */
     uint64_t *seeds, *nseeds;
     double t_stats;
 } products;
@@ -188,9 +189,13 @@ static int compute(sims_run *r, products *p)
         clef_peak_result pr;
         status = clef_peak_find(bp, &r->so.peak, &pr);
         clef_bandpowers_free(bp);
+        /* no peak in the expected band powers (e.g. the window beyond
+         * lmax): no calibration, and the reason in the summary */
         if (status)
-            return cli_fail(status);
-        p->peak_truth_found = pr.found;
+            snprintf(p->peak_reason, sizeof p->peak_reason, "%s", clef_last_error());
+        else if (!pr.found)
+            snprintf(p->peak_reason, sizeof p->peak_reason, "%s", pr.reason);
+        p->peak_truth_found = status == CLEF_OK && pr.found;
         if (pr.found) {
             p->l_true = pr.l_peak;
             p->d_true = pr.d_peak;
@@ -421,6 +426,9 @@ static cJSON *summary(const sims_run *r, const products *p, const char *const *o
         cJSON_AddNumberToObject(pk, "d_coverage_1sigma", p->d_cov);
         cJSON_AddNumberToObject(pk, "gaussian_coverage", 0.6826894921370859);
     }
+    else if (p->peak_reason[0])
+        cJSON_AddStringToObject(cJSON_AddObjectToObject(root, "peak_calibration"), "not_made",
+                                p->peak_reason);
     cJSON *ac = cJSON_AddObjectToObject(root, "accounting");
     cJSON_AddNumberToObject(ac, "ranks", r->nranks);
     cJSON_AddNumberToObject(ac, "threads_per_rank", r->nthreads);
