@@ -11,6 +11,8 @@ for b in "$BUILD"/bench/bench_*; do
     echo "== $(basename "$b")"
     "$b" || { echo "$(basename "$b") failed"; status=1; }
 done
+echo "== ensemble (clef sims)"
+sh bench/ensemble.sh "$BUILD" || { echo "ensemble failed"; status=1; }
 /usr/bin/python3 - <<'PY' || status=1
 import glob, json, os
 merged = {}

@@ -1,6 +1,6 @@
 /* clef sims: the covariance figure.  Left: the ratio of the Monte Carlo to
  * the analytic variance per bin against l_eff, with the +/-15% band of the
- * project's criterion and the ratio's own sampling error sqrt(2/(n-1));
+ * project's criterion (dashed) and the ratio's own sampling error sqrt(2/(n-1));
  * right: r_MC - r_analytic for every pair of bins, on a diverging scale
  * (blue negative, red positive, white zero). */
 #define _GNU_SOURCE
@@ -41,12 +41,18 @@ int sims_cov_figure(int nb, const double *l_eff, const double *ratio, const doub
 #define PX(l) (x0 + (x1 - x0) * (l) / lmax)
 #define PY(v) (y1 - (y1 - y0) * ((v) - rlo) / (rhi - rlo))
     const double se = sqrt(2.0 / (nreal - 1));
-    cairo_set_source_rgb(c, 0.88, 0.88, 0.88);
-    cairo_rectangle(c, x0, PY(1.15), x1 - x0, PY(0.85) - PY(1.15));
-    cairo_fill(c);
-    cairo_set_source_rgb(c, 0.75, 0.75, 0.75);
+    cairo_set_source_rgb(c, 0.85, 0.85, 0.85);
     cairo_rectangle(c, x0, PY(1 + se), x1 - x0, PY(1 - se) - PY(1 + se));
     cairo_fill(c);
+    const double dash[1] = {5.0};
+    cairo_set_source_rgb(c, 0.6, 0.1, 0.1);
+    cairo_set_dash(c, dash, 1, 0);
+    for (int k = -1; k <= 1; k += 2) {
+        cairo_move_to(c, x0, PY(1 + 0.15 * k));
+        cairo_line_to(c, x1, PY(1 + 0.15 * k));
+        cairo_stroke(c);
+    }
+    cairo_set_dash(c, NULL, 0, 0);
     cairo_set_source_rgb(c, 0, 0, 0);
     cairo_set_line_width(c, 1);
     cairo_rectangle(c, x0, y0, x1 - x0, y1 - y0);
@@ -73,7 +79,7 @@ int sims_cov_figure(int nb, const double *l_eff, const double *ratio, const doub
     text(c, (x0 + x1) / 2, y1 + 40, "multipole l (bin centre)", 0.5);
     snprintf(buf, sizeof buf, "variance ratio MC / analytic, %d realisations", nreal);
     text(c, (x0 + x1) / 2, y0 - 14, buf, 0.5);
-    text(c, x1 - 4, y0 + 16, "light: 15%, dark: sampling error", 1.0);
+    text(c, x1 - 4, y0 + 16, "dashed: +/-15%, grey: sampling error", 1.0);
     /* right panel: correlation differences */
     const double m0 = 600, m1 = 920, n0 = 40, cell = (m1 - m0) / nb;
     double dmax = 0.05;

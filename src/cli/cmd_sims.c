@@ -80,6 +80,7 @@ static void help(void)
         "Exit codes: 0 ok, 2 usage, 3 invalid input, 4 I/O, 5 bad file format,\n"
         "6 numerical failure, 7 MPI asked for but not built in, 8 out of memory,\n"
         "10 the run folder belongs to another run description.\n");
+    printf("\nThis clef: MPI %s\n", par_have_mpi() ? "yes (Open MPI)" : "no (built without ompi-c)");
 }
 
 enum {

@@ -65,9 +65,7 @@ OMP_NUM_THREADS=2 "$C" sims --run "$T/r2" $SIMS || fail "sims 2 threads"
 same "$T/r1" "$T/r2" || fail "1 thread and 2 threads differ"
 
 # ---- 2 MPI ranks ----
-if command -v mpirun >/dev/null 2>&1 && "$C" sims --run "$T/probe" --mpi --help >/dev/null 2>&1 \
-   && OMP_NUM_THREADS=1 mpirun -np 1 "$C" sims --run "$T/probe" --mpi --simulate 2 --nside 8 \
-        --model --mask "$T/mask.fits" --quiet 2>/dev/null; [ $? -ne 7 ]; then
+if command -v mpirun >/dev/null 2>&1 && "$C" sims --help | grep -q "^This clef: MPI yes"; then
     OMP_NUM_THREADS=1 mpirun -np 2 --oversubscribe "$C" sims --run "$T/m2" $SIMS 2> "$T/errm" \
         || fail "mpirun -np 2: $(cat "$T/errm")"
     same "$T/r1" "$T/m2" || fail "2 ranks differ from 1 rank"
