@@ -1,6 +1,6 @@
 #!/bin/sh
 # clef sims throughput: realisations per hour at nside 512 (and 1024 with
-# BENCH_ENSEMBLE_1024=1) for 1 rank x 2 threads and, when clef has MPI and
+# BENCH_ENSEMBLE_1024=1; BENCH_ENSEMBLE_SIZES and BENCH_ENSEMBLE_N choose) for 1 rank x 2 threads and, when clef has MPI and
 # mpirun is there, 2 ranks x 1 thread; and the ensemble's overhead over the
 # hand-written loop it replaces: N x (clef simulate + clef spectrum) with the
 # same options.  Ratios of one run (the machine is shared): bench/results-
@@ -11,7 +11,7 @@ T=$(mktemp -d "${TMPDIR:-/tmp}/clef-bench-ens-XXXXXX")
 trap 'rm -rf "$T"' EXIT
 export CLEF_CACHE_DIR="$T/cache" OMPI_ALLOW_RUN_AS_ROOT=1 OMPI_ALLOW_RUN_AS_ROOT_CONFIRM=1
 N=${BENCH_ENSEMBLE_N:-6}
-sizes="512"
+sizes=${BENCH_ENSEMBLE_SIZES:-512}
 [ -n "${BENCH_ENSEMBLE_1024:-}" ] && sizes="512 1024"
 mpi=0
 command -v mpirun >/dev/null 2>&1 && "$C" sims --help | grep -q "^This clef: MPI yes" && mpi=1
