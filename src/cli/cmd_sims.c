@@ -556,6 +556,7 @@ int cmd_sims(int argc, char **argv)
     char *desc = NULL;
     double *acct = NULL;
     long nacct = 0;
+    int agreed = 0;
 
     if (a.maps && (rc = load_map_list(&a)) != CLI_EXIT_OK)
         goto out;
@@ -572,8 +573,10 @@ int cmd_sims(int argc, char **argv)
         snprintf(r.prefix, sizeof r.prefix, "%s/ensemble", a.run);
     if (rank == 0)
         rc = open_run_folder(&a, desc, r.hash);
-    if ((rc = par_bcast_int(rc)) != CLI_EXIT_OK)
+    if ((rc = par_bcast_int(rc)) != CLI_EXIT_OK) {
+        agreed = 1; /* every rank has the same code: end without MPI_Abort */
         goto out;
+    }
 
     /* Masks and tables, once per rank. */
     for (int k = 0; k < 2; k++)
@@ -729,14 +732,15 @@ int cmd_sims(int argc, char **argv)
     free(all);
     free(counts);
     rc = par_bcast_int(rc);
+    agreed = 1;
 
 out:
     if (status != CLEF_OK && status > 0)
         rc = cli_fail(status);
     else if (status < 0)
         rc = -status;
-    if (rc != CLI_EXIT_OK)
-        par_abort(rc);
+    if (rc != CLI_EXIT_OK && !agreed)
+        par_abort(rc); /* one rank failed: take the job down */
     clef_ensemble_plan_destroy(plan);
     cli_analysis_tables_free(&tables);
     clef_map_free(masks[0]);
