@@ -234,10 +234,13 @@ static void sweep_once(const char *dir)
             pthread_mutex_unlock(&temps_lock);
             return;
         }
-    if (strlen(dir) < sizeof swept[0])
-        snprintf(swept[nswept++ % MAX_SWEPT], sizeof swept[0], "%s", dir);
-    if (nswept > MAX_SWEPT)
-        nswept = MAX_SWEPT;
+    /* A folder name too long for the table is swept again next time: harmless. */
+    size_t len = strlen(dir);
+    if (len < sizeof swept[0]) {
+        memcpy(swept[nswept % MAX_SWEPT], dir, len + 1);
+        if (nswept < MAX_SWEPT)
+            nswept++;
+    }
     pthread_mutex_unlock(&temps_lock);
     clef_temp_sweep(dir);
 }
