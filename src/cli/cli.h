@@ -64,6 +64,10 @@ int cli_parse_double(const char *cmd, const char *opt, const char *s, double *ou
 struct cJSON;
 int cli_write_json(const char *path, const struct cJSON *j);
 
+/* A JSON array of n numbers (a non-finite value is written as 0, as every
+ * summary has done so far). */
+struct cJSON *cli_json_numbers(const double *v, int n);
+
 /* The first-peak result and the settings that made it as members of a JSON
  * object, with the names every command uses (docs/peak.md, "JSON"). */
 struct clef_peak_result;

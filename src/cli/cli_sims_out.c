@@ -329,14 +329,6 @@ static int write_transfer(const sims_run *r, const products *p, const char *path
     return fclose(f) == 0 ? CLI_EXIT_OK : CLI_EXIT_IO;
 }
 
-static cJSON *arr(const double *v, int n)
-{
-    cJSON *a = cJSON_CreateArray();
-    for (int i = 0; i < n; i++)
-        cJSON_AddItemToArray(a, cJSON_CreateNumber(isfinite(v[i]) ? v[i] : 0.0));
-    return a;
-}
-
 static cJSON *summary(const sims_run *r, const products *p, const char *const *outs, int nout)
 {
     const sims_args *a = r->a;
@@ -380,13 +372,13 @@ static cJSON *summary(const sims_run *r, const products *p, const char *const *o
         cJSON_AddItemToArray(lo, cJSON_CreateNumber(p->w.l_lo[k]));
         cJSON_AddItemToArray(hi, cJSON_CreateNumber(p->w.l_hi[k]));
     }
-    cJSON_AddItemToObject(b, "l_eff", arr(p->w.l_eff, p->nb));
+    cJSON_AddItemToObject(b, "l_eff", cli_json_numbers(p->w.l_eff, p->nb));
 
     cJSON *m = cJSON_AddObjectToObject(root, "mean_vs_input");
-    cJSON_AddItemToObject(m, "d_mean_uK2", arr(p->mean, p->nb));
-    cJSON_AddItemToObject(m, "d_sem_uK2", arr(p->sem, p->nb));
-    cJSON_AddItemToObject(m, "d_expected_uK2", arr(p->expect, p->nb));
-    cJSON_AddItemToObject(m, "bias_in_standard_errors", arr(p->bias, p->nb));
+    cJSON_AddItemToObject(m, "d_mean_uK2", cli_json_numbers(p->mean, p->nb));
+    cJSON_AddItemToObject(m, "d_sem_uK2", cli_json_numbers(p->sem, p->nb));
+    cJSON_AddItemToObject(m, "d_expected_uK2", cli_json_numbers(p->expect, p->nb));
+    cJSON_AddItemToObject(m, "bias_in_standard_errors", cli_json_numbers(p->bias, p->nb));
     cJSON_AddBoolToObject(m, "noise_only_mean_subtracted", p->noise_subtracted);
     double worst = 0, chi2 = 0;
     for (int k = 0; k < p->nb; k++) {
@@ -398,11 +390,11 @@ static cJSON *summary(const sims_run *r, const products *p, const char *const *o
     cJSON_AddNumberToObject(m, "chi2_of_bias", chi2);
     if (p->nn) {
         cJSON *nb = cJSON_AddObjectToObject(root, "noise_bias");
-        cJSON_AddItemToObject(nb, "d_uK2", arr(p->nmean, p->nb));
-        cJSON_AddItemToObject(nb, "d_sem_uK2", arr(p->nsem, p->nb));
+        cJSON_AddItemToObject(nb, "d_uK2", cli_json_numbers(p->nmean, p->nb));
+        cJSON_AddItemToObject(nb, "d_sem_uK2", cli_json_numbers(p->nsem, p->nb));
     }
     cJSON *c = cJSON_AddObjectToObject(root, "covariance");
-    cJSON_AddItemToObject(c, "mc_over_analytic_diagonal", arr(p->ratio, p->nb));
+    cJSON_AddItemToObject(c, "mc_over_analytic_diagonal", cli_json_numbers(p->ratio, p->nb));
     cJSON_AddNumberToObject(c, "largest_diagonal_deviation", p->max_ratio_dev);
     cJSON_AddNumberToObject(c, "largest_correlation_difference", p->max_corr_diff);
     /* the ratio's own sampling error: a variance estimated from n draws
@@ -411,8 +403,8 @@ static cJSON *summary(const sims_run *r, const products *p, const char *const *o
     cJSON_AddStringToObject(c, "matrices", "PREFIX-products.fits HDUs MC_COV, AN_COV, CORRDIFF");
     cJSON *t = cJSON_AddObjectToObject(root, "transfer_function");
     cJSON_AddStringToObject(t, "method", "Hivon et al. 2002 eq. 18, binned, interpolated in l");
-    cJSON_AddItemToObject(t, "f_b", arr(p->fb, p->nb));
-    cJSON_AddItemToObject(t, "f_b_err", arr(p->fb_err, p->nb));
+    cJSON_AddItemToObject(t, "f_b", cli_json_numbers(p->fb, p->nb));
+    cJSON_AddItemToObject(t, "f_b_err", cli_json_numbers(p->fb_err, p->nb));
     if (p->peak_truth_found) {
         cJSON *pk = cJSON_AddObjectToObject(root, "peak_calibration");
         cJSON_AddNumberToObject(pk, "l_truth", p->l_true);

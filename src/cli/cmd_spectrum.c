@@ -186,13 +186,6 @@ static cJSON *peak_json(const clef_spectrum_result *r, const clef_spectrum_opts 
     return o;
 }
 
-static cJSON *array_json(const double *v, int n)
-{
-    cJSON *a = cJSON_CreateArray();
-    for (int i = 0; i < n; i++)
-        cJSON_AddItemToArray(a, cJSON_CreateNumber(isfinite(v[i]) ? v[i] : 0.0));
-    return a;
-}
 
 static cJSON *int_array_json(const int *v, int n)
 {
@@ -283,7 +276,7 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
         moments_json(cJSON_AddObjectToObject(sky, "mask2"), mm2);
     cJSON *mp = cJSON_AddArrayToObject(sky, "removed_multipoles_uK");
     for (int i = 0; i <= r->cross; i++)
-        cJSON_AddItemToArray(mp, array_json(r->multipoles[i], 4));
+        cJSON_AddItemToArray(mp, cli_json_numbers(r->multipoles[i], 4));
 
     cJSON *cp = cJSON_AddObjectToObject(root, "coupling");
     cJSON_AddNumberToObject(cp, "rcond", r->rcond);
@@ -299,10 +292,10 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON *b = cJSON_AddObjectToObject(root, "bandpowers");
     cJSON_AddItemToObject(b, "l_min", int_array_json(bp->l_lo, bp->nbins));
     cJSON_AddItemToObject(b, "l_max", int_array_json(bp->l_hi, bp->nbins));
-    cJSON_AddItemToObject(b, "l_eff", array_json(bp->l_eff, bp->nbins));
-    cJSON_AddItemToObject(b, "d_uK2", array_json(bp->dl, bp->nbins));
-    cJSON_AddItemToObject(b, "d_err_uK2", array_json(bp->dl_err, bp->nbins));
-    cJSON_AddItemToObject(b, "c_uK2", array_json(bp->cl, bp->nbins));
+    cJSON_AddItemToObject(b, "l_eff", cli_json_numbers(bp->l_eff, bp->nbins));
+    cJSON_AddItemToObject(b, "d_uK2", cli_json_numbers(bp->dl, bp->nbins));
+    cJSON_AddItemToObject(b, "d_err_uK2", cli_json_numbers(bp->dl_err, bp->nbins));
+    cJSON_AddItemToObject(b, "c_uK2", cli_json_numbers(bp->cl, bp->nbins));
     if (bp->win) {
         /* The windows themselves are in the FITS HDU BANDWIN and the
          * windows CSV; the summary records their range and row sums
@@ -317,7 +310,7 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
             for (int i = 0; i < bp->nbins; i++)
                 for (size_t l = 0; l < n; l++)
                     sums[i] += bp->win[(size_t)i * n + l];
-            cJSON_AddItemToObject(wj, "row_sums", array_json(sums, bp->nbins));
+            cJSON_AddItemToObject(wj, "row_sums", cli_json_numbers(sums, bp->nbins));
             free(sums);
         }
     }

@@ -60,6 +60,15 @@ assert open(a + "/ensemble-transfer.txt").read().split("\n")[5:] == \
 PY
 }
 
+wait_records() { # until 4 records are in $T/k (at most 60 s)
+    i=0
+    while [ $i -lt 600 ]; do
+        n=$(ls "$T/k/realisations" 2>/dev/null | grep -c '\.rec$')
+        [ "$n" -ge 4 ] && break
+        sleep 0.1; i=$((i + 1))
+    done
+}
+
 # ---- 1 rank x 2 threads: bit-identical ----
 OMP_NUM_THREADS=2 "$C" sims --run "$T/r2" $SIMS || fail "sims 2 threads"
 same "$T/r1" "$T/r2" || fail "1 thread and 2 threads differ"
@@ -80,12 +89,7 @@ PY
     # SIGKILL to mpirun after a few realisations, then the same command again
     OMP_NUM_THREADS=1 mpirun -np 2 --oversubscribe "$C" sims --run "$T/k" $SIMS 2>/dev/null &
     pid=$!
-    i=0
-    while [ $i -lt 600 ]; do
-        n=$(ls "$T/k/realisations" 2>/dev/null | grep -c '\.rec$')
-        [ "$n" -ge 4 ] && break
-        sleep 0.1; i=$((i + 1))
-    done
+    wait_records
     # SIGKILL to mpirun and, as a scheduler does, to the ranks it started
     # (by their process ids: a rank left alone would finish its share)
     kids=$(pgrep -P $pid 2>/dev/null)
@@ -105,12 +109,7 @@ else
     # still: SIGKILL of the serial run and resume
     OMP_NUM_THREADS=1 "$C" sims --run "$T/k" $SIMS 2>/dev/null &
     pid=$!
-    i=0
-    while [ $i -lt 600 ]; do
-        n=$(ls "$T/k/realisations" 2>/dev/null | grep -c '\.rec$')
-        [ "$n" -ge 4 ] && break
-        sleep 0.1; i=$((i + 1))
-    done
+    wait_records
     kill -9 $pid 2>/dev/null; wait $pid 2>/dev/null
     OMP_NUM_THREADS=1 "$C" sims --run "$T/k" $SIMS || fail "rerun after SIGKILL"
     same "$T/r1" "$T/k" || fail "resumed run differs from an uninterrupted one"
