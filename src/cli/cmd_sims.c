@@ -557,6 +557,7 @@ int cmd_sims(int argc, char **argv)
     double *acct = NULL;
     long nacct = 0;
     int agreed = 0;
+    double *beam_sim = NULL;
 
     if (a.maps && (rc = load_map_list(&a)) != CLI_EXIT_OK)
         goto out;
@@ -611,7 +612,6 @@ int cmd_sims(int argc, char **argv)
     clef_ensemble_analyser an;
     clef_ensemble_spectrum_analyser(&sctx, masks[0], masks[1], &r.so, &an);
     clef_ensemble_sim sim = {.nside = r.nside, .cl = r.cl};
-    double *beam_sim = NULL;
     if (!a.maps) {
         sim.sim.beam_fwhm = a.an.beam_fwhm;
         if (r.so.beam) {
@@ -642,7 +642,6 @@ int cmd_sims(int argc, char **argv)
         }
     }
     status = clef_ensemble_plan_create(&plan, a.maps ? NULL : &sim, &an);
-    free(beam_sim);
     if (status != CLEF_OK)
         goto out;
 
@@ -742,6 +741,7 @@ out:
     if (rc != CLI_EXIT_OK && !agreed)
         par_abort(rc); /* one rank failed: take the job down */
     clef_ensemble_plan_destroy(plan);
+    free(beam_sim);
     cli_analysis_tables_free(&tables);
     clef_map_free(masks[0]);
     clef_map_free(masks[1]);
