@@ -10,10 +10,11 @@
  * section 9.4), its length the peak's own Gaussian width.  The model is
  * evaluated at every multipole and summed with each bin's window
  * (<D_b> = sum_l W_bl D_l), so neither the bin width nor the placement of
- * the bins biases the position; the quoted error is marginalised over the
- * higher-order shape terms, which is what the fit window and the bin width
- * would otherwise do silently.  The peak is the maximum of the fitted
- * continuous D(l).
+ * the bins biases the position.  The quoted error is the sampling error of
+ * the fitted terms (the "sandwich" covariance of a penalised fit) combined
+ * with the estimated bias of the shape prior, what the fit window and the
+ * bin width do to the result (docs/peak.md, "Errors").  The peak is the
+ * maximum of the fitted continuous D(l).
  *
  * Works on any clef_bandpowers table (clef's own output or a user's file).
  * Thread safety: no shared state.
@@ -62,8 +63,9 @@ typedef struct clef_peak_result {
     int found;              /* 1: a peak was found; 0: none, `reason` says why */
     char reason[256];
     double l_peak, l_peak_err;       /* multipole and 1-sigma error (statistical and shape) */
-    double l_peak_err_stat;          /* part with the higher-order shape terms held fixed */
-    double l_peak_err_shape;         /* shape part: err^2 = stat^2 + shape^2 */
+    double l_peak_err_stat;          /* sampling part (sandwich covariance of the terms) */
+    double l_peak_err_shape;         /* shape part, the estimated shift by the shape prior:
+                                        err^2 = stat^2 + shape^2 */
     double d_peak, d_peak_err;       /* D at the peak and 1-sigma error, uK^2 */
     double corr;                     /* correlation coefficient of (l_peak, d_peak) */
     double theta_deg, theta_deg_err; /* angular scale 180 deg / l_peak and its error */
