@@ -15,7 +15,8 @@ enum cli_exit {
     CLI_EXIT_NUMERIC = 6,  /* CLEF_ENUMERIC: singular or ill-conditioned problem */
     CLI_EXIT_UNSUP = 7,    /* CLEF_EUNSUP: a request clef does not support */
     CLI_EXIT_NOMEM = 8,    /* CLEF_ENOMEM */
-    CLI_EXIT_NOPEAK = 9    /* clef peak --require: no peak found */
+    CLI_EXIT_NOPEAK = 9,   /* clef peak --require: no peak found */
+    CLI_EXIT_RUNDIR = 10   /* clef sims: the run folder belongs to another run description */
 };
 
 /* A subcommand: run() gets argv with argv[0] = the subcommand name. */
@@ -62,6 +63,10 @@ int cli_parse_double(const char *cmd, const char *opt, const char *s, double *ou
  * an exit code, having printed the error. */
 struct cJSON;
 int cli_write_json(const char *path, const struct cJSON *j);
+
+/* A JSON array of n numbers (a non-finite value is written as 0, as every
+ * summary has done so far). */
+struct cJSON *cli_json_numbers(const double *v, int n);
 
 /* The first-peak result and the settings that made it as members of a JSON
  * object, with the names every command uses (docs/peak.md, "JSON"). */
@@ -127,5 +132,6 @@ int cmd_model(int argc, char **argv);
 int cmd_geometry(int argc, char **argv);
 int cmd_mask(int argc, char **argv);
 int cmd_plot(int argc, char **argv);
+int cmd_sims(int argc, char **argv);
 
 #endif
