@@ -18,6 +18,17 @@ TESTPKGS := cmocka
 
 PKGCFLAGS := $(shell pkg-config --cflags $(PKGS) 2>/dev/null)
 PKGLIBS   := $(shell pkg-config --libs $(PKGS) 2>/dev/null) -lfftw3_omp
+# MPI (Open MPI from Debian: libopenmpi-dev) for `clef sims` across
+# processes; without it the command runs as one process (src/cli/cli_par.c,
+# the only file that includes mpi.h, says so when asked for MPI).
+MPI_CFLAGS := $(shell pkg-config --cflags ompi-c 2>/dev/null)
+MPI_LIBS   := $(shell pkg-config --libs ompi-c 2>/dev/null)
+ifeq ($(shell pkg-config --exists ompi-c 2>/dev/null && echo yes),yes)
+MPI_DEFS := -DCLEF_HAVE_MPI
+else
+$(info clef: pkg-config finds no ompi-c: clef sims is built without MPI (one process))
+MPI_DEFS :=
+endif
 TESTCFLAGS := $(shell pkg-config --cflags $(TESTPKGS) 2>/dev/null)
 TESTLIBS   := $(shell pkg-config --libs $(TESTPKGS) 2>/dev/null)
 
@@ -93,8 +104,12 @@ $(LIBA): $(LIB_OBJ)
 $(LIBSO): $(LIB_OBJ)
 	$(CC) -shared $(ALL_LDFLAGS) -o $@ $^ $(ALL_LDLIBS)
 
+$(BUILD)/src/cli/cli_par.o: src/cli/cli_par.c
+	@mkdir -p $(dir $@)
+	$(CC) $(ALL_CPPFLAGS) $(MPI_DEFS) $(MPI_CFLAGS) $(ALL_CFLAGS) -c $< -o $@
+
 $(CLEF): $(CLI_OBJ) $(LIBA)
-	$(CC) $(ALL_LDFLAGS) -o $@ $(CLI_OBJ) $(LIBA) $(ALL_LDLIBS)
+	$(CC) $(ALL_LDFLAGS) -o $@ $(CLI_OBJ) $(LIBA) $(ALL_LDLIBS) $(MPI_LIBS)
 
 $(BUILD)/tests/%: tests/%.c tests/check.h $(LIBA)
 	@mkdir -p $(dir $@)

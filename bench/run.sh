@@ -17,6 +17,8 @@ if ls "$BUILD"/python/clef/_clef*.so >/dev/null 2>&1; then
     PYTHONPATH="$BUILD/python" /usr/bin/python3 bench/python_spectrum.py ||
         { echo "python_spectrum failed"; status=1; }
 fi
+echo "== ensemble (clef sims)"
+sh bench/ensemble.sh "$BUILD" || { echo "ensemble failed"; status=1; }
 /usr/bin/python3 - <<'PY' || status=1
 import glob, json, os
 merged = {}

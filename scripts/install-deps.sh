@@ -8,6 +8,7 @@ PKGS="build-essential pkg-config
 libchealpix-dev libcfitsio-dev libfftw3-dev
 liblapacke-dev libopenblas-dev libgsl-dev
 libcjson-dev libcairo2-dev libcmocka-dev nettle-dev libyaml-dev
+libopenmpi-dev openmpi-bin
 fitsverify poppler-utils
 python3 python3-dev python3-numpy python3-pytest python3-astropy python3-scipy python3-colorspacious"
 # --fuzz: only what the fuzz step needs (clang with libFuzzer and the

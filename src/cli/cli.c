@@ -242,6 +242,14 @@ static void number_or_null(cJSON *o, const char *key, double v)
         cJSON_AddNullToObject(o, key);
 }
 
+cJSON *cli_json_numbers(const double *v, int n)
+{
+    cJSON *a = cJSON_CreateArray();
+    for (int i = 0; i < n; i++)
+        cJSON_AddItemToArray(a, cJSON_CreateNumber(isfinite(v[i]) ? v[i] : 0.0));
+    return a;
+}
+
 void cli_peak_json(cJSON *o, const clef_peak_result *r, const clef_peak_opts *po)
 {
     static const char *const windows[] = {"table", "top-hat", "point"};

@@ -15,7 +15,8 @@ enum cli_exit {
     CLI_EXIT_NUMERIC = 6,  /* CLEF_ENUMERIC: singular or ill-conditioned problem */
     CLI_EXIT_UNSUP = 7,    /* CLEF_EUNSUP: a request clef does not support */
     CLI_EXIT_NOMEM = 8,    /* CLEF_ENOMEM */
-    CLI_EXIT_NOPEAK = 9    /* clef peak --require: no peak found */
+    CLI_EXIT_NOPEAK = 9,   /* clef peak --require: no peak found */
+    CLI_EXIT_RUNDIR = 10   /* clef sims: the run folder belongs to another run description */
 };
 
 /* A subcommand: run() gets argv with argv[0] = the subcommand name. */
@@ -65,6 +66,10 @@ int cli_write_json(const char *path, const struct cJSON *j);
 /* A run summary's first keys: program, version, command (the command line),
  * finished_utc (now). */
 struct cJSON *cli_summary_begin(int argc, char **argv);
+
+/* A JSON array of n numbers (a non-finite value is written as 0, as every
+ * summary has done so far). */
+struct cJSON *cli_json_numbers(const double *v, int n);
 
 /* The first-peak result and the settings that made it as members of a JSON
  * object, with the names every command uses (docs/peak.md, "JSON"). */
@@ -128,11 +133,10 @@ int cmd_spectrum(int argc, char **argv);
 int cmd_spectrum_pol(int argc, char **argv); /* clef spectrum --polarization */
 /* clef spectrum --run FILE: many fields from a run file (cmd_spectrum_run.c). */
 int cmd_spectrum_run(int argc, char **argv);
-/* Tables indexed by l for the spectrum command (cmd_spectrum.c): the last
- * multipole of a file (-1: unreadable), the multipole to read it to (its
- * end when below lread), and readers of l = 0..lmax (NULL + *status on
- * failure). */
-int cli_text_last_l(const char *path);
+/* Tables indexed by l for the spectrum commands (cli_analysis.c; the last
+ * multipole of a file is cli_table_last_l of cli_analysis.h): the
+ * multipole to read a table to (its end when below lread), and readers of
+ * l = 0..lmax (NULL + *status on failure). */
 int cli_table_lmax(const char *path, int lread);
 double *cli_read_spectrum_file(const char *path, int lmax, int *status);
 double *cli_read_profile_file(const char *path, int lmax, int *status);
@@ -140,5 +144,6 @@ int cmd_model(int argc, char **argv);
 int cmd_geometry(int argc, char **argv);
 int cmd_mask(int argc, char **argv);
 int cmd_plot(int argc, char **argv);
+int cmd_sims(int argc, char **argv);
 
 #endif

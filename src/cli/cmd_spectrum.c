@@ -21,6 +21,7 @@
 #include "clef/table.h"
 #include "clef/theory.h"
 #include "cli.h"
+#include "cli_analysis.h"
 
 static const char *CMD = "spectrum";
 
@@ -32,54 +33,12 @@ static void help(void)
         "(cross-spectrum, e.g. two noise splits: no noise bias), corrected for the\n"
         "mask's mode coupling, the beam, the pixel window and a transfer function,\n"
         "with a Gaussian covariance and the first acoustic peak.\n\n"
-        "Inputs:\n"
-        "  --mask FILE            mask (weights in [0,1]) for MAP, and for MAP2 unless\n"
-        "                         --second-mask\n"
-        "  --second-mask FILE     separate mask for MAP2\n"
-        "  --hdu H, --column C    table and column of the maps (default: first table,\n"
-        "                         first value column)\n"
-        "  --allow-coord-mismatch accept map and mask with different COORDSYS\n"
-        "  --ordering RING|NESTED pixel order of map and mask files that have no ORDERING\n"
-        "                         keyword (default: such files are refused)\n"
-        "  --unit U               unit of the map values (K, mK or uK, with or without _CMB),\n"
-        "                         overriding the files' TUNIT (default: TUNIT; a unit clef\n"
-        "                         does not know is refused, no TUNIT is taken as uK)\n"
-        "  --calibration F        multiply the map values by F to get uK (instead of --unit)\n"
+        "Polarization:\n"
         "  --polarization         T, Q, U maps: the six spectra TT TE TB EE EB BB\n"
         "                         (clef spectrum --polarization --help)\n\n"
-        "Multipoles and bins:\n"
-        "  --lmax L               highest multipole reported (default 2*nside, lowered where\n"
-        "                         the beam x pixel window drops below 0.01 or a table ends,\n"
-        "                         then to the end of the last whole bin; at most 3*nside-1,\n"
-        "                         with a warning above 2*nside)\n"
-        "  --bin-width N          linear bins of N multipoles from l=2 (default: automatic,\n"
-        "                         max(20, the mask's coupling width))\n"
-        "  --log-bins N           N logarithmic bins from l=2 to lmax instead\n"
-        "  --bins FILE            bin edges from a text file (docs/coupling.md)\n\n"
-        "Instrument:\n"
-        "  --beam-fwhm ARCMIN     Gaussian beam full width at half maximum (default: none)\n"
-        "  --beam-table FILE      tabulated beam, columns 'l B_l'\n"
-        "  --no-pixel-window      do not correct for the pixel window (default: corrected)\n"
-        "  --transfer FILE        transfer function, columns 'l F_l'\n"
-        "  --noise-spectrum FILE  noise spectrum N_l [uK^2] to subtract (auto-spectra)\n"
-        "  --covariance-model FILE\n"
-        "                         C_l [uK^2] of the sky used in the covariance instead of\n"
-        "                         the measured spectra\n\n"
-        "Method:\n"
-        "  --iterations N         analysis iterations (default %d)\n"
-        "  --keep-multipoles      keep the monopole and dipole (default: fitted on the\n"
-        "                         observed sky and removed)\n"
-        "  --cache-dir DIR        coupling cache folder (default $CLEF_CACHE_DIR,\n"
-        "                         $XDG_CACHE_HOME/clef or ~/.cache/clef)\n"
-        "  --no-cache             neither read nor write the coupling cache\n"
-        "  --cache-limit SIZE     keep the cache folder under SIZE (e.g. 500M, 4G; 0: no\n"
-        "                         limit), removing least recently used entries\n"
-        "                         (default $CLEF_CACHE_LIMIT, else 4G)\n\n"
-        "First peak:\n"
-        "  --peak-l-min L, --peak-l-max L   search window (default 100..400)\n"
-        "  --peak-half-width L    multipoles each side of the fit centre used in the fit\n"
-        "                         (default: max(120, three bin widths); docs/peak.md)\n"
-        "  --no-peak              skip the peak fit\n\n"
+        );
+    cli_analysis_help(stdout);
+    printf(
         "Output:\n"
         "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv,\n"
         "                         PREFIX-windows.csv (band-power window functions), PREFIX.json\n"
@@ -97,25 +56,14 @@ static void help(void)
         "Exit codes: 0 ok, 2 usage, 3 invalid input, 4 I/O, 5 bad file format,\n"
         "6 numerical failure (e.g. singular coupling: widen the bins), 8 out of memory.\n"
         "Many fields in one run (maps, splits, masks, pairs from a run file):\n"
-        "clef spectrum --run FILE --help; docs/run-files.md.\n",
-        CLEF_SPECTRUM_ITERATIONS);
+        "clef spectrum --run FILE --help; docs/run-files.md.\n");
 }
 
-enum {
-    OPT_MASK = 256, OPT_MASK2, OPT_HDU, OPT_COLUMN, OPT_COORD, OPT_LMAX, OPT_BINW, OPT_LOGB,
-    OPT_BINS, OPT_FWHM, OPT_BEAMF, OPT_NOPIX, OPT_TRANSFER, OPT_NOISE, OPT_THEORY, OPT_ITER,
-    OPT_KEEP, OPT_CACHE, OPT_NOCACHE, OPT_CACHELIMIT, OPT_PLMIN, OPT_PLMAX, OPT_PHW,
-    OPT_NOPEAK, OPT_FORMAT, OPT_THREADS, OPT_QUIET, OPT_VERBOSE, OPT_HELP, OPT_JSON, OPT_ORDERING,
-    OPT_UNIT, OPT_CALIB
-};
+enum { OPT_FORMAT = CLI_ANALYSIS_OPT_END, OPT_THREADS, OPT_QUIET, OPT_VERBOSE, OPT_HELP, OPT_JSON };
 
 typedef struct args {
-    const char *map[2], *mask[2], *hdu, *column, *bins_file, *beam_file, *transfer_file;
-    const char *noise_file, *theory_file, *cache_dir, *output, *format, *threads;
-    const char *json, *ordering, *unit;
-    long lmax, bin_width, log_bins, iterations;
-    double beam_fwhm, peak_lmin, peak_lmax, peak_hw, calibration;
-    int no_peak, no_pixel_window, keep, no_cache, coord;
+    cli_analysis an;           /* the analysis options (shared with clef sims) */
+    const char *map[2], *output, *format, *threads, *json;
     int want_fits, want_csv, want_json;
 } args;
 
@@ -141,121 +89,30 @@ static int parse_format(args *a, const char *s)
 
 static int parse_args(int argc, char **argv, args *a)
 {
-    static const struct option opts[] = {
-        {"mask", required_argument, 0, OPT_MASK},
-        {"second-mask", required_argument, 0, OPT_MASK2},
-        {"hdu", required_argument, 0, OPT_HDU},
-        {"column", required_argument, 0, OPT_COLUMN},
-        {"allow-coord-mismatch", no_argument, 0, OPT_COORD},
-        {"lmax", required_argument, 0, OPT_LMAX},
-        {"bin-width", required_argument, 0, OPT_BINW},
-        {"log-bins", required_argument, 0, OPT_LOGB},
-        {"bins", required_argument, 0, OPT_BINS},
-        {"beam-fwhm", required_argument, 0, OPT_FWHM},
-        {"beam-table", required_argument, 0, OPT_BEAMF},
-        {"no-pixel-window", no_argument, 0, OPT_NOPIX},
-        {"transfer", required_argument, 0, OPT_TRANSFER},
-        {"noise-spectrum", required_argument, 0, OPT_NOISE},
-        {"covariance-model", required_argument, 0, OPT_THEORY},
-        {"iterations", required_argument, 0, OPT_ITER},
-        {"keep-multipoles", no_argument, 0, OPT_KEEP},
-        {"cache-dir", required_argument, 0, OPT_CACHE},
-        {"no-cache", no_argument, 0, OPT_NOCACHE},
-        {"cache-limit", required_argument, 0, OPT_CACHELIMIT},
-        {"peak-l-min", required_argument, 0, OPT_PLMIN},
-        {"peak-l-max", required_argument, 0, OPT_PLMAX},
-        {"peak-half-width", required_argument, 0, OPT_PHW},
-        {"no-peak", no_argument, 0, OPT_NOPEAK},
+    static const struct option own[] = {
         {"output", required_argument, 0, 'o'},
         {"format", required_argument, 0, OPT_FORMAT},
         {"json", required_argument, 0, OPT_JSON},
-        {"ordering", required_argument, 0, OPT_ORDERING},
-        {"unit", required_argument, 0, OPT_UNIT},
-        {"calibration", required_argument, 0, OPT_CALIB},
         {"threads", required_argument, 0, OPT_THREADS},
         {"quiet", no_argument, 0, OPT_QUIET},
         {"verbose", no_argument, 0, OPT_VERBOSE},
         {"help", no_argument, 0, OPT_HELP},
         {0, 0, 0, 0}};
+    struct option opts[CLI_ANALYSIS_NOPTS + sizeof own / sizeof own[0]];
+    memcpy(opts, cli_analysis_options, sizeof cli_analysis_options);
+    memcpy(opts + CLI_ANALYSIS_NOPTS, own, sizeof own);
     memset(a, 0, sizeof *a);
-    a->iterations = CLEF_SPECTRUM_ITERATIONS;
-    a->peak_lmin = -1;
-    a->peak_lmax = -1;
+    cli_analysis_init(&a->an);
     a->want_fits = a->want_csv = a->want_json = 1;
     int c;
     opterr = 0;
     while ((c = getopt_long(argc, argv, "o:", opts, NULL)) != -1) {
+        const int h = cli_analysis_option(CMD, c, optarg, &a->an);
+        if (h == 1)
+            continue;
+        if (h)
+            return h;
         switch (c) {
-        case OPT_MASK: a->mask[0] = optarg; break;
-        case OPT_MASK2: a->mask[1] = optarg; break;
-        case OPT_HDU: a->hdu = optarg; break;
-        case OPT_COLUMN: a->column = optarg; break;
-        case OPT_COORD: a->coord = 1; break;
-        case OPT_LMAX:
-            if (cli_parse_long(CMD, "--lmax", optarg, &a->lmax))
-                return CLI_EXIT_USAGE;
-            if (a->lmax < 2)
-                return cli_usage_error(CMD, "--lmax must be at least 2, got %ld", a->lmax);
-            break;
-        case OPT_BINW:
-            if (cli_parse_long(CMD, "--bin-width", optarg, &a->bin_width))
-                return CLI_EXIT_USAGE;
-            if (a->bin_width < 1)
-                return cli_usage_error(CMD, "--bin-width must be positive, got %ld",
-                                       a->bin_width);
-            break;
-        case OPT_LOGB:
-            if (cli_parse_long(CMD, "--log-bins", optarg, &a->log_bins))
-                return CLI_EXIT_USAGE;
-            if (a->log_bins < 1)
-                return cli_usage_error(CMD, "--log-bins must be positive, got %ld", a->log_bins);
-            break;
-        case OPT_BINS: a->bins_file = optarg; break;
-        case OPT_FWHM:
-            if (cli_parse_double(CMD, "--beam-fwhm", optarg, &a->beam_fwhm))
-                return CLI_EXIT_USAGE;
-            if (a->beam_fwhm < 0)
-                return cli_usage_error(CMD, "--beam-fwhm must not be negative, got %g",
-                                       a->beam_fwhm);
-            break;
-        case OPT_BEAMF: a->beam_file = optarg; break;
-        case OPT_NOPIX: a->no_pixel_window = 1; break;
-        case OPT_TRANSFER: a->transfer_file = optarg; break;
-        case OPT_NOISE: a->noise_file = optarg; break;
-        case OPT_THEORY: a->theory_file = optarg; break;
-        case OPT_ITER:
-            if (cli_parse_long(CMD, "--iterations", optarg, &a->iterations))
-                return CLI_EXIT_USAGE;
-            if (a->iterations < 0 || a->iterations > 20)
-                return cli_usage_error(CMD, "--iterations must be in 0..20, got %ld",
-                                       a->iterations);
-            break;
-        case OPT_KEEP: a->keep = 1; break;
-        case OPT_CACHE: a->cache_dir = optarg; break;
-        case OPT_NOCACHE: a->no_cache = 1; break;
-        case OPT_CACHELIMIT: {
-            long long bytes;
-            if (clef_cache_parse_size(optarg, &bytes) != CLEF_OK)
-                return cli_usage_error(CMD, "--cache-limit: %s", clef_last_error());
-            clef_cache_set_limit(bytes);
-            break;
-        }
-        case OPT_PLMIN:
-            if (cli_parse_double(CMD, "--peak-l-min", optarg, &a->peak_lmin))
-                return CLI_EXIT_USAGE;
-            break;
-        case OPT_PLMAX:
-            if (cli_parse_double(CMD, "--peak-l-max", optarg, &a->peak_lmax))
-                return CLI_EXIT_USAGE;
-            break;
-        case OPT_PHW:
-            if (cli_parse_double(CMD, "--peak-half-width", optarg, &a->peak_hw))
-                return CLI_EXIT_USAGE;
-            if (!(a->peak_hw > 0))
-                return cli_usage_error(CMD, "--peak-half-width must be positive, got %g",
-                                       a->peak_hw);
-            break;
-        case OPT_NOPEAK: a->no_peak = 1; break;
         case 'o':
             a->output = optarg;
             if (strlen(optarg) > 3000)
@@ -266,19 +123,6 @@ static int parse_args(int argc, char **argv, args *a)
                 return CLI_EXIT_USAGE;
             break;
         case OPT_JSON: a->json = optarg; break;
-        case OPT_ORDERING: a->ordering = optarg; break;
-        case OPT_UNIT:
-            if (clef_unit_to_uk(optarg) == 0)
-                return cli_usage_error(CMD, "--unit: '%s' is not a unit clef knows (K, mK, uK, "
-                                       "with or without _CMB)", optarg);
-            a->unit = optarg;
-            break;
-        case OPT_CALIB:
-            if (cli_parse_double(CMD, "--calibration", optarg, &a->calibration))
-                return CLI_EXIT_USAGE;
-            if (!(a->calibration > 0))
-                return cli_usage_error(CMD, "--calibration must be positive, got %s", optarg);
-            break;
         case OPT_THREADS: a->threads = optarg; break;
         case OPT_QUIET: cli_verbosity = 0; break;
         case OPT_VERBOSE: cli_verbosity = 2; break;
@@ -293,21 +137,11 @@ static int parse_args(int argc, char **argv, args *a)
         return cli_usage_error(CMD, "expected one or two map files, got %d", npos);
     a->map[0] = argv[optind];
     a->map[1] = npos == 2 ? argv[optind + 1] : NULL;
-    if (!a->mask[0])
-        return cli_usage_error(CMD, "--mask is required");
-    if (a->mask[1] && !a->map[1])
-        return cli_usage_error(CMD, "--second-mask needs a second map");
-    if ((a->bins_file != NULL) + (a->log_bins > 0) + (a->bin_width > 0) > 1)
-        return cli_usage_error(CMD, "choose one of --bins, --log-bins and --bin-width");
-    if (a->beam_file && a->beam_fwhm > 0)
-        return cli_usage_error(CMD, "choose one of --beam-fwhm and --beam-table");
-    if (a->unit && a->calibration > 0)
-        return cli_usage_error(CMD, "choose one of --unit and --calibration");
+    if (cli_analysis_check(CMD, &a->an, a->map[1] != NULL))
+        return CLI_EXIT_USAGE;
     if (a->output && !strcmp(a->output, "-"))
         return cli_usage_error(CMD, "--output takes a prefix for several files, not '-'; "
                                "use --json - for the summary on standard output");
-    if (cli_check_ordering(CMD, a->ordering))
-        return CLI_EXIT_USAGE;
     if (a->json)
         a->want_json = 1;
     if (a->threads && cli_set_threads(CMD, a->threads))
@@ -329,73 +163,6 @@ static void default_prefix(const char *map, char *buf, size_t n)
             buf[lb - le] = 0;
     }
     strncat(buf, "-bandpowers", n - strlen(buf) - 1);
-}
-
-/* The largest multipole of a spectrum file (text or FITS), else of the
- * first column of a text table ('#' comments), or -1 if none can be read;
- * the table's own reader reports any error in detail. */
-int cli_text_last_l(const char *path)
-{
-    /* Spectrum files (text or FITS) say it through their own reader. */
-    int flmax = -1;
-    if (clef_theory_read_cl(path, 0, NULL, &flmax) == CLEF_OK)
-        return flmax;
-    FILE *f = fopen(path, "r");
-    if (!f)
-        return -1;
-    char line[4096];
-    long best = -1;
-    while (fgets(line, sizeof line, f)) {
-        char *p = line;
-        while (*p == ' ' || *p == '\t')
-            p++;
-        if (*p == '#' || *p == '\n' || *p == '\0')
-            continue;
-        char *end;
-        long l = strtol(p, &end, 10);
-        if (end != p && l > best && l < 1000000)
-            best = l;
-    }
-    fclose(f);
-    return (int)best;
-}
-
-/* Tables indexed by l are read up to `lread`, or to their own end when that
- * comes first (the default lmax and the coupling range then stop there). */
-int cli_table_lmax(const char *path, int lread)
-{
-    int last = cli_text_last_l(path);
-    return last >= 2 && last < lread ? last : lread;
-}
-
-double *cli_read_spectrum_file(const char *path, int lmax, int *status)
-{
-    double *cl = calloc((size_t)lmax + 1, sizeof *cl);
-    if (!cl) {
-        *status = CLEF_ENOMEM;
-        return NULL;
-    }
-    *status = clef_theory_read_cl(path, lmax, cl, NULL);
-    if (*status != CLEF_OK) {
-        free(cl);
-        return NULL;
-    }
-    return cl;
-}
-
-double *cli_read_profile_file(const char *path, int lmax, int *status)
-{
-    double *v = calloc((size_t)lmax + 1, sizeof *v);
-    if (!v) {
-        *status = CLEF_ENOMEM;
-        return NULL;
-    }
-    *status = clef_beam_read(path, lmax, v);
-    if (*status != CLEF_OK) {
-        free(v);
-        return NULL;
-    }
-    return v;
 }
 
 static cJSON *input_json(const char *role, const char *path, const clef_map *m)
@@ -424,13 +191,6 @@ static cJSON *peak_json(const clef_spectrum_result *r, const clef_spectrum_opts 
     return o;
 }
 
-static cJSON *array_json(const double *v, int n)
-{
-    cJSON *a = cJSON_CreateArray();
-    for (int i = 0; i < n; i++)
-        cJSON_AddItemToArray(a, cJSON_CreateNumber(isfinite(v[i]) ? v[i] : 0.0));
-    return a;
-}
 
 static cJSON *int_array_json(const int *v, int n)
 {
@@ -466,12 +226,12 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddItemToArray(in, input_json("map1", a->map[0], maps[0]));
     if (a->map[1])
         cJSON_AddItemToArray(in, input_json("map2", a->map[1], maps[1]));
-    cJSON_AddItemToArray(in, input_json("mask1", a->mask[0], maps[2]));
-    if (a->mask[1])
-        cJSON_AddItemToArray(in, input_json("mask2", a->mask[1], maps[3]));
-    const char *files[][2] = {{"bins", a->bins_file}, {"beam", a->beam_file},
-                              {"transfer", a->transfer_file}, {"noise", a->noise_file},
-                              {"theory", a->theory_file}};
+    cJSON_AddItemToArray(in, input_json("mask1", a->an.mask[0], maps[2]));
+    if (a->an.mask[1])
+        cJSON_AddItemToArray(in, input_json("mask2", a->an.mask[1], maps[3]));
+    const char *files[][2] = {{"bins", a->an.bins_file}, {"beam", a->an.beam_file},
+                              {"transfer", a->an.transfer_file}, {"noise", a->an.noise_file},
+                              {"theory", a->an.theory_file}};
     for (int i = 0; i < 5; i++)
         if (files[i][1])
             cJSON_AddItemToArray(in, input_json(files[i][0], files[i][1], NULL));
@@ -494,12 +254,12 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddNumberToObject(op, "peak_l_min", so->peak.l_min);
     cJSON_AddNumberToObject(op, "peak_l_max", so->peak.l_max);
     cJSON_AddNumberToObject(op, "threads", omp_get_max_threads());
-    if (a->unit)
-        cJSON_AddStringToObject(op, "unit", a->unit);
-    if (a->calibration > 0)
-        cJSON_AddNumberToObject(op, "calibration", a->calibration);
-    if (a->ordering)
-        cJSON_AddStringToObject(op, "ordering_assumed", a->ordering);
+    if (a->an.unit)
+        cJSON_AddStringToObject(op, "unit", a->an.unit);
+    if (a->an.calibration > 0)
+        cJSON_AddNumberToObject(op, "calibration", a->an.calibration);
+    if (a->an.ordering)
+        cJSON_AddStringToObject(op, "ordering_assumed", a->an.ordering);
 
     cJSON *sky = cJSON_AddObjectToObject(root, "sky");
     cJSON_AddNumberToObject(sky, "nside", (double)r->nside);
@@ -509,7 +269,7 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
         moments_json(cJSON_AddObjectToObject(sky, "mask2"), mm2);
     cJSON *mp = cJSON_AddArrayToObject(sky, "removed_multipoles_uK");
     for (int i = 0; i <= r->cross; i++)
-        cJSON_AddItemToArray(mp, array_json(r->multipoles[i], 4));
+        cJSON_AddItemToArray(mp, cli_json_numbers(r->multipoles[i], 4));
 
     cJSON *cp = cJSON_AddObjectToObject(root, "coupling");
     cJSON_AddNumberToObject(cp, "rcond", r->rcond);
@@ -525,10 +285,10 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON *b = cJSON_AddObjectToObject(root, "bandpowers");
     cJSON_AddItemToObject(b, "l_min", int_array_json(bp->l_lo, bp->nbins));
     cJSON_AddItemToObject(b, "l_max", int_array_json(bp->l_hi, bp->nbins));
-    cJSON_AddItemToObject(b, "l_eff", array_json(bp->l_eff, bp->nbins));
-    cJSON_AddItemToObject(b, "d_uK2", array_json(bp->dl, bp->nbins));
-    cJSON_AddItemToObject(b, "d_err_uK2", array_json(bp->dl_err, bp->nbins));
-    cJSON_AddItemToObject(b, "c_uK2", array_json(bp->cl, bp->nbins));
+    cJSON_AddItemToObject(b, "l_eff", cli_json_numbers(bp->l_eff, bp->nbins));
+    cJSON_AddItemToObject(b, "d_uK2", cli_json_numbers(bp->dl, bp->nbins));
+    cJSON_AddItemToObject(b, "d_err_uK2", cli_json_numbers(bp->dl_err, bp->nbins));
+    cJSON_AddItemToObject(b, "c_uK2", cli_json_numbers(bp->cl, bp->nbins));
     if (bp->win) {
         /* The windows themselves are in the FITS HDU BANDWIN and the
          * windows CSV; the summary records their range and row sums
@@ -543,7 +303,7 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
             for (int i = 0; i < bp->nbins; i++)
                 for (size_t l = 0; l < n; l++)
                     sums[i] += bp->win[(size_t)i * n + l];
-            cJSON_AddItemToObject(wj, "row_sums", array_json(sums, bp->nbins));
+            cJSON_AddItemToObject(wj, "row_sums", cli_json_numbers(sums, bp->nbins));
             free(sums);
         }
     }
@@ -559,31 +319,11 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
 }
 
 
-/* A beam, transfer or noise table shorter than the map's multipole range
- * stops the coupled range (and below 2 nside the default lmax) at its last
- * l: say so, naming the file, in the warnings (stderr and the JSON
- * summary).  The library's own warning names the table kind only. */
-static void warn_table_caps(const args *a, const clef_spectrum_opts *so,
-                            const clef_spectrum_result *r, int lread)
-{
-    const struct { const char *what, *path; int last; } t[] = {
-        {"beam table", a->beam_file, so->beam_lmax},
-        {"transfer function", a->transfer_file, so->transfer_lmax},
-        {"noise spectrum", a->noise_file, so->noise_lmax},
-    };
-    for (int i = 0; i < 3; i++)
-        if (t[i].path && t[i].last < lread && r->lmax_ext == t[i].last)
-            cli_warn("lmax capped at %d: the %s '%s' ends at l = %d, below the map's l = %d; "
-                     "band powers stop at %d and the coupling (hidden bins) at %d; give a "
-                     "longer table to go further", t[i].last, t[i].what, t[i].path, t[i].last,
-                     lread, r->lmax, r->lmax_ext);
-}
-
 static void print_result(FILE *out, const args *a, const clef_spectrum_result *r)
 {
     const clef_bandpowers *bp = r->bp;
     fprintf(out, "%s-spectrum of %s%s%s with mask %s\n", r->cross ? "cross" : "auto", a->map[0],
-           r->cross ? " x " : "", r->cross ? a->map[1] : "", a->mask[0]);
+           r->cross ? " x " : "", r->cross ? a->map[1] : "", a->an.mask[0]);
     fprintf(out, "nside %lld, lmax %d, %d bins, sky fraction %.4f (effective %.4f), "
            "coupling 1/cond %.3g%s\n",
            (long long)r->nside, r->lmax, r->nbins, r->fsky, r->fsky_eff, r->rcond,
@@ -627,36 +367,6 @@ static void effective_moments(const clef_map *map, const clef_map *mask, mask_mo
     m->fsky_eff = s4 > 0 ? m->w2 * m->w2 / m->w4 : 0.0;
 }
 
-/* Units: --calibration scales the values to uK, --unit replaces TUNIT; else
- * a TUNIT clef does not know is refused rather than guessed. */
-static int apply_units(const args *a, clef_map *map, const char *path)
-{
-    if (a->calibration > 0) {
-        for (int64_t p = 0; p < map->npix; p++)
-            map->pix[p] *= a->calibration;
-        snprintf(map->unit, sizeof map->unit, "uK");
-        return CLI_EXIT_OK;
-    }
-    if (a->unit) {
-        snprintf(map->unit, sizeof map->unit, "%s", a->unit);
-        return CLI_EXIT_OK;
-    }
-    if (!map->unit[0]) {
-        cli_warn("map '%s' records no unit (no TUNIT for column '%s'): values taken as uK; "
-                 "give --unit or --calibration to state it", path, map->column);
-        return CLI_EXIT_OK;
-    }
-    if (clef_unit_to_uk(map->unit) == 0) {
-        fprintf(stderr,
-                "clef: error: map '%s' column '%s' has unit '%s' (TUNIT), not a temperature unit "
-                "clef knows (K, mK, uK, with or without _CMB); give --unit U to state the unit "
-                "or --calibration F to convert the values to uK\n",
-                path, map->column, map->unit);
-        return CLI_EXIT_INVALID;
-    }
-    return CLI_EXIT_OK;
-}
-
 int cmd_spectrum(int argc, char **argv)
 {
     /* A run file describes many fields: its own mode (cmd_spectrum_run.c);
@@ -676,8 +386,8 @@ int cmd_spectrum(int argc, char **argv)
     double t_begin = clef_wtime();
     int status = CLEF_OK;
     clef_map *maps[4] = {NULL, NULL, NULL, NULL};
-    clef_bins *bins = NULL;
-    double *beam = NULL, *transfer = NULL, *noise = NULL, *theory = NULL;
+    cli_analysis_tables tables;
+    memset(&tables, 0, sizeof tables);
     clef_spectrum_result res;
     memset(&res, 0, sizeof res);
     cJSON *json = NULL;
@@ -713,8 +423,9 @@ int cmd_spectrum(int argc, char **argv)
             snprintf(paths[4], sizeof paths[4], "%s.json", prefix);
         outs[4] = paths[4];
     }
-    const char *inputs[] = {a.map[0], a.map[1], a.mask[0], a.mask[1], a.bins_file,
-                            a.beam_file, a.transfer_file, a.noise_file, a.theory_file};
+    const char *inputs[] = {a.map[0], a.map[1], a.an.mask[0], a.an.mask[1], a.an.bins_file,
+                            a.an.beam_file, a.an.transfer_file, a.an.noise_file,
+                            a.an.theory_file};
     if ((rc = cli_check_outputs(inputs, 9, outs, 5)) != CLI_EXIT_OK)
         return rc;
     if (a.map[1] && cli_same_file(a.map[0], a.map[1]))
@@ -722,15 +433,9 @@ int cmd_spectrum(int argc, char **argv)
                  "auto-spectrum, with its noise bias (give two independent maps, or one map "
                  "and --noise-spectrum)", a.map[0], a.map[1]);
 
-    clef_map_read_opts ro = {0};
-    ro.hdu = a.hdu;
-    ro.column = a.column;
-    ro.ordering = a.ordering;
-    clef_map_read_opts mro = {0};
-    mro.ordering = a.ordering;
-    const char *files[4] = {a.map[0], a.map[1], a.mask[0], a.mask[1]};
-    const char *others[5] = {a.beam_file, a.transfer_file, a.noise_file, a.theory_file,
-                             a.bins_file};
+    const char *files[4] = {a.map[0], a.map[1], a.an.mask[0], a.an.mask[1]};
+    const char *others[5] = {a.an.beam_file, a.an.transfer_file, a.an.noise_file,
+                             a.an.theory_file, a.an.bins_file};
     for (int i = 0; i < 4; i++)
         cli_watch_input(files[i]);
     for (int i = 0; i < 5; i++)
@@ -738,12 +443,13 @@ int cmd_spectrum(int argc, char **argv)
     for (int i = 0; i < 4; i++) {
         if (!files[i])
             continue;
-        status = clef_map_read(&maps[i], files[i], i < 2 ? &ro : &mro);
-        if (status != CLEF_OK)
+        status = cli_analysis_read_map(&a.an, files[i], i >= 2, &maps[i]);
+        if (status < 0) {
+            rc = -status;
+            status = CLEF_OK;
             goto fail;
-        cli_verbose("read %s: nside %lld, %lld missing pixels", files[i],
-                    (long long)maps[i]->nside, (long long)maps[i]->nmissing);
-        if (i < 2 && (rc = apply_units(&a, maps[i], files[i])) != CLI_EXIT_OK)
+        }
+        if (status != CLEF_OK)
             goto fail;
     }
     if (a.map[1] && !cli_same_file(a.map[0], a.map[1]) && maps[0]->npix == maps[1]->npix &&
@@ -753,88 +459,20 @@ int cmd_spectrum(int argc, char **argv)
     double t_read = clef_wtime() - t_begin;
 
     const int64_t nside = maps[0]->nside;
-    const int lmax_pix = (int)(3 * nside - 1);
-    /* Files indexed by l are read up to 3 nside - 1 or their own end: the
-     * coupling runs past lmax (hidden bins, docs/method.md section 5); the
-     * estimator refuses a table that stops below lmax. */
-    const int lread = lmax_pix;
-
     clef_spectrum_opts so;
-    clef_spectrum_opts_default(&so);
-    so.lmax = (int)a.lmax;
-    so.iterations = (int)a.iterations;
-    so.keep_multipoles = a.keep;
-    so.use_cache = !a.no_cache;
-    so.cache_dir = a.cache_dir;
-    so.pixel_window = !a.no_pixel_window;
-    so.beam_fwhm = a.beam_fwhm;
-    so.allow_coord_mismatch = a.coord;
-    so.find_peak = !a.no_peak;
-    if (a.peak_lmin >= 0)
-        so.peak.l_min = a.peak_lmin;
-    if (a.peak_lmax >= 0)
-        so.peak.l_max = a.peak_lmax;
-    if (a.peak_hw > 0)
-        so.peak.half_width = a.peak_hw;
+    if ((status = cli_analysis_setup(&a.an, nside, &so, &tables)) != CLEF_OK)
+        goto fail;
+    const int lread = tables.lread;
     so.names[0] = a.map[0];
     so.names[1] = a.map[1];
-    so.names[2] = a.mask[0];
-    so.names[3] = a.mask[1];
-    so.bin_width = (int)a.bin_width;
-    if (a.beam_file) {
-        so.beam_lmax = cli_table_lmax(a.beam_file, lread);
-        if (!(beam = cli_read_profile_file(a.beam_file, so.beam_lmax, &status)))
-            goto fail;
-        so.beam = beam;
-    }
-    if (a.transfer_file) {
-        so.transfer_lmax = cli_table_lmax(a.transfer_file, lread);
-        if (!(transfer = cli_read_profile_file(a.transfer_file, so.transfer_lmax, &status)))
-            goto fail;
-        so.transfer = transfer;
-    }
-    if (a.noise_file) {
-        so.noise_lmax = cli_table_lmax(a.noise_file, lread);
-        if (!(noise = cli_read_spectrum_file(a.noise_file, so.noise_lmax, &status)))
-            goto fail;
-        so.noise_cl = noise;
-    }
-    if (a.theory_file) {
-        if (!(theory = cli_read_spectrum_file(a.theory_file, lread, &status)))
-            goto fail;
-        so.theory_cl = theory;
-        /* A theory table that stops below lmax is refused by the estimator
-         * rather than padded with zeros (zero errors above its end). */
-        const int last = cli_text_last_l(a.theory_file);
-        so.theory_lmax = last >= 0 && last < lread ? last : lread;
-    }
-    if (a.bins_file || a.log_bins > 0) {
-        /* Explicit bins need the lmax they end at: a bin file may reach
-         * the given lmax or 3 nside - 1; logarithmic bins end at the given
-         * lmax or the default one. */
-        const int lbins = a.lmax ? (int)a.lmax : lmax_pix;
-        if (a.bins_file) {
-            status = clef_bins_read(&bins, a.bins_file, lbins, CLEF_BINS_DL);
-        } else {
-            int ldef = lbins;
-            if (!a.lmax && (status = clef_spectrum_default_lmax(&so, nside, &ldef)) != CLEF_OK)
-                goto fail;
-            status = clef_bins_create_log(&bins, 2, ldef, (int)a.log_bins, CLEF_BINS_DL);
-        }
-        if (status != CLEF_OK)
-            goto fail;
-        if (!a.lmax)
-            so.lmax = clef_bins_lmax(bins);
-        so.bins = bins;
-    }
 
     status = clef_spectrum_compute(maps[0], maps[1], maps[2], maps[3], &so, &res);
     if (status != CLEF_OK)
         goto fail;
 
-    warn_table_caps(&a, &so, &res, lread);
+    cli_analysis_warn_caps(&a.an, &so, &res, lread);
     mask_moments mm2 = {0};
-    if (a.mask[1]) {
+    if (a.an.mask[1]) {
         /* The second mask, reported beside the first (JSON and keywords). */
         effective_moments(maps[1], maps[3], &mm2);
         if ((status = clef_bandpowers_meta_number(res.bp, "FSKY2", mm2.fsky,
@@ -875,7 +513,7 @@ int cmd_spectrum(int argc, char **argv)
         (status = clef_bandpowers_write_windows_csv(res.bp, ofs[3].tmp_path)) != CLEF_OK)
         goto fail;
     if (want[4]) {
-        json = summary_json(argc, argv, &a, maps, &so, &res, a.mask[1] ? &mm2 : NULL, t_read,
+        json = summary_json(argc, argv, &a, maps, &so, &res, a.an.mask[1] ? &mm2 : NULL, t_read,
                             clef_wtime() - t_begin, final, nfinal);
         const int rc_json = json ? cli_write_json(ofs[4].tmp_path, json) : CLI_EXIT_NOMEM;
         if (rc_json != CLI_EXIT_OK) {
@@ -911,11 +549,7 @@ fail:
                 remove(written[i]);
     cJSON_Delete(json);
     clef_spectrum_result_free(&res);
-    clef_bins_destroy(bins);
-    free(beam);
-    free(transfer);
-    free(noise);
-    free(theory);
+    cli_analysis_tables_free(&tables);
     for (int i = 0; i < 4; i++)
         clef_map_free(maps[i]);
     if (status == CLEF_OK)

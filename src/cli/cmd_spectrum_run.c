@@ -20,6 +20,7 @@
 #include "clef/spectrum.h"
 #include "clef/table.h"
 #include "cli.h"
+#include "cli_analysis.h"
 
 static const char *CMD = "spectrum";
 
@@ -450,7 +451,7 @@ int cmd_spectrum_run(int argc, char **argv)
             return cli_fail(status);
         }
         so.theory_cl = j.model;
-        const int last = cli_text_last_l(run->model);
+        const int last = cli_table_last_l(run->model);
         so.theory_lmax = last >= 0 && last < lread ? last : lread;
     }
     status = clef_estimator_create(&j.e, &so, run->joint != 0);

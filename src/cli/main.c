@@ -20,6 +20,7 @@ static const cli_command commands[] = {
     {"geometry", "curvature and acoustic scale from the first peak", cmd_geometry},
     {"mask", "build, cut, apodize and report a mask", cmd_mask},
     {"plot", "draw band powers, a map view or the curvature posterior", cmd_plot},
+    {"sims", "simulation ensemble: transfer function, covariance, bias, calibration (MPI)", cmd_sims},
     {NULL, NULL, NULL},
 };
 
@@ -34,7 +35,8 @@ static void usage(FILE *f)
     fprintf(f,
             "\nEvery command takes --help, --quiet, --verbose.\n"
             "Exit codes: 0 ok, 2 usage, 3 invalid input, 4 I/O error, 5 bad file format,\n"
-            "6 numerical failure, 7 unsupported, 8 out of memory, 9 no peak found (peak --require);\n"
+            "6 numerical failure, 7 unsupported, 8 out of memory, 9 no peak found (peak --require),\n"
+            "10 run folder of another run description (sims);\n"
             "killed by SIGINT/SIGTERM/SIGHUP after removing temporaries: 130/143/129.\n");
 }
 

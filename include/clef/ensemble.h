@@ -1,0 +1,155 @@
+/* Simulation ensembles (Hivon et al. 2002, ApJ 567, 2, sections 3-4): many
+ * realisations of a sky, each analysed exactly as the data, and what their
+ * scatter tells: the Monte Carlo transfer function, the Monte Carlo
+ * covariance against the analytic one, the bias of the mean band powers,
+ * the noise bias and the calibration of the first-peak errors.
+ *
+ * Pieces (docs/ensemble.md):
+ *  - clef_ensemble_seed: the seed of realisation i from (base seed, i, kind)
+ *    only, so a realisation does not depend on which process made it;
+ *  - an analyser ("one realisation -> band powers"): today
+ *    clef_ensemble_spectrum_analyser around clef_spectrum_compute; another
+ *    estimator fits the same interface;
+ *  - a plan (clef_ensemble_plan_create) that holds the synthesis plan and
+ *    the simulation settings, and makes realisation i (simulate) or takes
+ *    given maps, then analyses them (clef_ensemble_plan_analyse);
+ *  - statistics over the realisations in index order (deterministic):
+ *    mean and covariance, transfer function, bias, covariance comparison,
+ *    peak calibration.
+ *
+ * Thread safety: a plan runs one realisation at a time (its transforms
+ * use OpenMP threads); distinct plans may run concurrently.
+ */
+#ifndef CLEF_ENSEMBLE_H
+#define CLEF_ENSEMBLE_H
+
+#include <stdint.h>
+
+#include "clef/clef.h"
+#include "clef/map.h"
+#include "clef/peak.h"
+#include "clef/sim.h"
+#include "clef/spectrum.h"
+#include "clef/table.h"
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
+/* Kinds of realisation: sky plus noise, or noise only (the noise bias). */
+enum clef_ensemble_kind { CLEF_ENSEMBLE_SIGNAL = 0, CLEF_ENSEMBLE_NOISE_ONLY = 1 };
+
+/* The 64-bit simulation seed (clef_sim_opts.seed) of realisation i of a
+ * kind: splitmix64(splitmix64(base XOR kind constant) + i) (Steele, Lea and
+ * Flood 2014, "Fast splittable pseudorandom number generators"; the
+ * constants of Vigna's reference code).  Depends on (base, i, kind) only. */
+uint64_t clef_ensemble_seed(uint64_t base, uint64_t i, int kind);
+
+/* What an analyser returns for one realisation: band powers (with their
+ * analytic covariance and windows when the estimator has them) and the
+ * first-peak fit. */
+typedef struct clef_ensemble_result {
+    clef_bandpowers *bp;  /* owned */
+    clef_peak_result peak;
+    int peak_done;
+} clef_ensemble_result;
+void clef_ensemble_result_free(clef_ensemble_result *r);
+
+/* One realisation -> band powers.  maps[0] and, for a cross-spectrum,
+ * maps[1]; nmaps 1 or 2. */
+typedef struct clef_ensemble_analyser {
+    void *ctx;
+    int (*analyse)(void *ctx, const clef_map *const *maps, int nmaps, clef_ensemble_result *out);
+} clef_ensemble_analyser;
+
+/* The analyser of `clef spectrum`: clef_spectrum_compute with these masks
+ * and options (all kept by pointer: they must outlive the analyser). */
+typedef struct clef_ensemble_spectrum_ctx {
+    const clef_map *mask1, *mask2;
+    const clef_spectrum_opts *opts;
+} clef_ensemble_spectrum_ctx;
+void clef_ensemble_spectrum_analyser(clef_ensemble_spectrum_ctx *ctx, const clef_map *mask1,
+                                     const clef_map *mask2, const clef_spectrum_opts *opts,
+                                     clef_ensemble_analyser *out);
+
+/* Simulation settings of a plan (simulate-and-analyse mode). */
+typedef struct clef_ensemble_sim {
+    int64_t nside;
+    int lmax;              /* simulated multipoles; 0: 3 nside - 1 */
+    const double *cl;      /* input C_l in uK^2, l = 0..lmax (copied) */
+    clef_sim_opts sim;     /* beam, pixel window, noise, hits, splits (seed unused; the beam
+                              table, if any, covers 0..lmax and is copied; hits copied) */
+} clef_ensemble_sim;
+
+typedef struct clef_ensemble_plan clef_ensemble_plan;
+
+/* sim NULL: a plan for given maps (analysis only). */
+int clef_ensemble_plan_create(clef_ensemble_plan **out, const clef_ensemble_sim *sim,
+                              const clef_ensemble_analyser *an);
+void clef_ensemble_plan_destroy(clef_ensemble_plan *p);
+
+/* Maps of realisation i (simulate mode): nsplits maps, allocated into
+ * maps[0..nsplits-1] (the caller frees them); noise-only realisations have
+ * no sky.  Seconds spent in *seconds (may be NULL). */
+int clef_ensemble_plan_simulate(clef_ensemble_plan *p, uint64_t base_seed, uint64_t i, int kind,
+                                clef_map **maps, int *nmaps);
+
+/* Analyse maps with the plan's analyser. */
+int clef_ensemble_plan_analyse(clef_ensemble_plan *p, const clef_map *const *maps, int nmaps,
+                               clef_ensemble_result *out);
+
+/* Mean and covariance (divisor n - 1) of n vectors of length m, x[i m + j],
+ * summed in order of i (two passes): the same bits for the same inputs.
+ * cov may be NULL.  CLEF_EINVAL for n < 2. */
+int clef_ensemble_moments(int n, int m, const double *x, double *mean, double *cov);
+
+/* Expected band powers of an input spectrum through windows:
+ * out_b = sum_l win[b (win_lmax + 1) + l] f_l D_l, with f NULL = 1 and
+ * D_l = l(l+1) C_l / 2 pi for l <= cl_lmax (0 beyond). */
+void clef_ensemble_expected(int nbins, const double *win, int win_lmax, const double *cl,
+                            int cl_lmax, const double *f, double *out);
+
+/* Monte Carlo transfer function (Hivon et al. 2002, eq. 18 and section
+ * 3.2): with windows W of an analysis that assumed F = 1, the mean band
+ * powers satisfy <D_b> = sum_l W_bl F_l D_l.  F_l is modelled by its values
+ * F_b at the bins' effective multipoles, interpolated linearly in l
+ * (constant outside); Hivon et al.'s iteration F^{k+1}_b = F^k_b +
+ * (<D_b> - (W F^k D)_b) / (W D)_b from F^0_b = <D_b> / (W D)_b converges to
+ * the solution of the linear system <D> = A F_b, which is solved directly.
+ * sem: standard errors of the mean band powers, or cov_mean their full
+ * covariance (the ensemble covariance / N); fb_err from it.  fl: l =
+ * 0..fl_lmax.  *iters (may be NULL): Jacobi steps of the paper's iteration
+ * to reach the solution to 1e-3 of the errors (for the record). */
+typedef struct clef_ensemble_transfer {
+    int nbins;
+    const double *mean, *sem, *l_eff, *win; /* win: nbins x (win_lmax + 1) */
+    const double *cov_mean;                 /* nbins x nbins, or NULL (sem used) */
+    int win_lmax;
+    const double *cl;  /* input C_l, l = 0..cl_lmax */
+    int cl_lmax;
+} clef_ensemble_transfer;
+int clef_ensemble_transfer_compute(const clef_ensemble_transfer *t, double *fb, double *fb_err,
+                                   int fl_lmax, double *fl, int *iters);
+/* F_l of the bins (the interpolation above), l = 0..fl_lmax. */
+void clef_ensemble_transfer_interp(int nbins, const double *l_eff, const double *fb, int fl_lmax,
+                                   double *fl);
+
+/* Monte Carlo covariance against an analytic one (both m x m): ratio of
+ * the diagonals per bin, correlation difference r_mc - r_an (m x m, may be
+ * NULL), largest |ratio - 1| and largest off-diagonal |difference|. */
+void clef_ensemble_cov_compare(int m, const double *mc, const double *an, double *ratio,
+                               double *corr_diff, double *max_ratio_dev, double *max_corr_diff);
+
+/* Calibration of an estimate with errors against a truth: pull_i =
+ * (x_i - truth) / err_i over the n entries with ok[i] (ok may be NULL);
+ * mean and standard deviation of the pulls and the fraction with
+ * |pull| <= 1 (1-sigma coverage; 0.683 for Gaussian errors).  *used: the
+ * entries counted. */
+void clef_ensemble_calibration(int n, const double *x, const double *err, const int *ok,
+                               double truth, double *mean_pull, double *sd_pull,
+                               double *coverage, int *used);
+
+#ifdef __cplusplus
+}
+#endif
+#endif
