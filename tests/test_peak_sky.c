@@ -99,7 +99,7 @@ typedef struct config {
     double cut_deg, apod_deg;
     int apod_kind;
     double depth; /* uK-arcmin */
-    int nsky;
+    int nsky, sky0; /* skies sky0 .. sky0 + nsky - 1 (seeds) */
     int nwidth;
     int width[NW_MAX];
     int ninput;
@@ -144,7 +144,7 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
     so.noise_lmax = LSIM;
     so.find_peak = 0;
     so.theory_lmax = LSIM;
-    for (int s = 0; s < cf->nsky; s++) {
+    for (int s = cf->sky0; s < cf->sky0 + cf->nsky; s++) {
         for (int ii = 0; ii < cf->ninput; ii++) {
             const int i = cf->input[ii];
             clef_sim_opts sim = {0};
@@ -158,7 +158,7 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                 clef_spectrum_result res;
                 so.bins = bins[k];
                 so.theory_cl = cl[i];
-                so.find_peak = s == 0 && i == 0;
+                so.find_peak = s == cf->sky0 && ii == 0;
                 assert_int_equal(clef_spectrum_compute(map, NULL, mask, NULL, &so, &res), CLEF_OK);
                 const clef_bandpowers *bp = res.bp;
                 if (so.find_peak) {
@@ -178,7 +178,7 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                     clef_peak_opts_default(&po);
                     po.half_width = w ? 1.5 * clef_peak_half_width(bp, &po) : 0;
                     hw[k][w] = clef_peak_half_width(bp, &po);
-                    if (s == 0 && i == 0) {
+                    if (s == cf->sky0 && ii == 0) {
                         /* The curvature step for this binning and window:
                          * the forward model needs the windows, covariance
                          * and settings only (the same on every sky: the
@@ -205,7 +205,7 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                     t->sum_err += r.l_peak_err;
                     t->sum_l += r.l_peak;
                     t->sum_l2 += r.l_peak * r.l_peak;
-                    if (i == 0 && plan[k][w]) {
+                    if (i == 0 && plan[k][w]) { /* plans exist only for input 0 */
                         clef_geometry_result *g = NULL;
                         assert_int_equal(
                             clef_geometry_plan_execute(plan[k][w], r.l_peak, r.l_peak_err, &g),
@@ -244,9 +244,9 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                 const int ok = t->found >= 0.95 * t->n && fabs(mp) <= pull_tol &&
                                fabs(cover - 0.6827) <= cov_tol &&
                                (i || flat >= flat_min);
-                print_message("| %s | %s | %d | %.0f | %d/%d | %+.3f | %.1f%% | %.2f / %.2f | ",
-                              cf->name, input_names[i], cf->width[k], hw[k][w], t->found, t->n, mp,
-                              100 * cover, t->sum_err / nf, sd);
+                print_message("| %s | %s | %d | %.0f | %d/%d | %+.2f | %+.3f | %.1f%% | %.2f / %.2f | ",
+                              cf->name, input_names[i], cf->width[k], hw[k][w], t->found, t->n,
+                              ml - ltrue[i], mp, 100 * cover, t->sum_err / nf, sd);
                 if (i == 0)
                     print_message("%.1f%% |\n", 100 * flat);
                 else
@@ -294,12 +294,21 @@ static void run_ensemble(void **state)
         }
     }
     print_message("truth: %.3f %.3f %.3f %.3f\n", ltrue[0], ltrue[1], ltrue[2], ltrue[3]);
-    print_message("| setting | input | bins | half width | found | mean pull | 1-sigma coverage "
-                  "| quoted sigma / scatter | \"flat\" |\n");
+    print_message("| setting | input | bins | half width | found | mean l_peak - truth | mean pull "
+                  "| 1-sigma coverage | quoted sigma / scatter | \"flat\" |\n");
     clef_sht *sht_sim = NULL;
     assert_int_equal(clef_sht_create(&sht_sim, NSIDE, LSIM, NULL), CLEF_OK);
 
-    const config main_cut = {"cut 20, noise 30", 20, 8, CLEF_MASK_APOD_C2, DEPTH, nsky,
+    /* Development runs of check-long: CLEF_PEAK_SKY0 = first sky (seed
+     * offset, to add skies to an earlier run), CLEF_PEAK_SETTINGS = a
+     * subset of "main,cut30,noise60", CLEF_PEAK_INPUTS = a subset of the
+     * input indices 0-3 as digits ("0" for the Omega_k = 0 model only). */
+    const char *e0 = getenv("CLEF_PEAK_SKY0"), *eset = getenv("CLEF_PEAK_SETTINGS");
+    const char *ein = getenv("CLEF_PEAK_INPUTS");
+    const int sky0 = e0 && test_long() ? atoi(e0) : 0;
+    if (!test_long())
+        eset = ein = NULL;
+    const config main_cut = {"cut 20, noise 30", 20, 8, CLEF_MASK_APOD_C2, DEPTH, nsky, sky0,
                              NWIDTH, {10, 20, 30, 40, 50}, NINPUT, {0, 1, 2, 3}};
     int bad = 0;
     if (!test_long() || test_sanitize()) {
@@ -313,21 +322,29 @@ static void run_ensemble(void **state)
             c.nwidth = 1;
         bad += run_config(&c, cl, ltrue, sht_sim);
     } else {
-        bad += run_config(&main_cut, cl, ltrue, sht_sim);
-        config c = main_cut;
-        c.ninput = 2;
-        c.input[1] = 3;
-        c.name = "cut 30, noise 30";
-        c.cut_deg = 30;
-        c.apod_deg = 5;
-        c.apod_kind = CLEF_MASK_APOD_C1;
-        bad += run_config(&c, cl, ltrue, sht_sim);
-        c = main_cut;
-        c.ninput = 2;
-        c.input[1] = 3;
-        c.name = "cut 20, noise 60";
-        c.depth = 2 * DEPTH;
-        bad += run_config(&c, cl, ltrue, sht_sim);
+        config set[3] = {main_cut, main_cut, main_cut};
+        const char *const set_names[3] = {"main", "cut30", "noise60"};
+        set[1].ninput = set[2].ninput = 2;
+        set[1].input[1] = set[2].input[1] = 3;
+        set[1].name = "cut 30, noise 30";
+        set[1].cut_deg = 30;
+        set[1].apod_deg = 5;
+        set[1].apod_kind = CLEF_MASK_APOD_C1;
+        set[2].name = "cut 20, noise 60";
+        set[2].depth = 2 * DEPTH;
+        for (int c = 0; c < 3; c++) {
+            if (eset && !strstr(eset, set_names[c]))
+                continue;
+            if (ein) { /* keep the listed inputs, in their order */
+                int n = 0;
+                for (int ii = 0; ii < set[c].ninput; ii++)
+                    if (strchr(ein, '0' + set[c].input[ii]))
+                        set[c].input[n++] = set[c].input[ii];
+                set[c].ninput = n;
+            }
+            if (set[c].ninput > 0)
+                bad += run_config(&set[c], cl, ltrue, sht_sim);
+        }
     }
     for (int i = 0; i < NINPUT; i++)
         free(cl[i]);
