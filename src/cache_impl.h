@@ -8,7 +8,8 @@
 
 #include <stddef.h>
 
-enum { CLEF_CACHE_M = 1, CLEF_CACHE_K = 2, CLEF_CACHE_MASK_SPECTRA = 3, CLEF_CACHE_DEPROJ = 4 };
+enum { CLEF_CACHE_M = 1, CLEF_CACHE_K = 2, CLEF_CACHE_MASK_SPECTRA = 3, CLEF_CACHE_DEPROJ = 4,
+       CLEF_CACHE_POL = 5 /* the polarized matrices M^TE, M+, M- (coupling_pol.c) */ };
 
 /* The folder by the documented precedence; NULL on success, else why not. */
 const char *clef_cache_resolve_dir(const char *cache_dir, char *buf, size_t n);

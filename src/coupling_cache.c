@@ -146,6 +146,7 @@ int clef_cache_path(char *buf, size_t n, const char *dir, int kind, const char *
                  kind == KIND_M   ? "coupling-M"
                  : kind == KIND_K ? "coupling-K"
                  : kind == CLEF_CACHE_MASK_SPECTRA ? "mask-spectra"
+                 : kind == CLEF_CACHE_POL          ? "coupling-pol"
                                                    : "deprojection",
                  key);
     return len >= 0 && (size_t)len < n;

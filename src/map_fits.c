@@ -397,6 +397,10 @@ static int read_header(reader *r, const clef_map_read_opts *opts, clef_map *m)
                      "unknown", r->where, val);
     }
 
+    /* Polarization convention (clef_map_read_pol interprets it). */
+    CLEF_TRY(key_string(r, "POLCCONV", val, &found));
+    snprintf(m->polcconv, sizeof m->polcconv, "%s", found ? val : "");
+
     double bad;
     fits_read_key(r->f, TDOUBLE, "BAD_DATA", &bad, NULL, &st);
     r->bad_file = st == 0 ? bad : CLEF_BAD_VALUE;

@@ -67,8 +67,33 @@ static int gz_temp(const char *tmp_path, char *out, size_t n)
     return clef_temp_make(out, n, tmp_path, NULL, ".gz");
 }
 
+/* One table of ncol maps of the same nside (columns names[k]); polcconv
+ * non-NULL: the POLCCONV keyword of a T/Q/U table. */
+static int write_columns(const clef_map *const *mm, int ncol, const char *const *names,
+                         const char *polcconv, const char *path, const clef_map_write_opts *opts);
+
 int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opts *opts)
 {
+    const char *colname = opts && opts->column && *opts->column ? opts->column : "TEMPERATURE";
+    return write_columns(&m, 1, &colname, NULL, path, opts);
+}
+
+int clef_map_write_pol(const clef_map *t, const clef_map *q, const clef_map *u, const char *path,
+                       const clef_map_write_opts *opts)
+{
+    const clef_map *mm[3] = {t, q, u};
+    static const char *const names[3] = {"TEMPERATURE", "Q_POLARISATION", "U_POLARISATION"};
+    for (int k = 0; k < 3; k++)
+        if (!mm[k] || mm[k]->nside != t->nside)
+            CLEF_FAIL(CLEF_EINVAL, "cannot write '%s': T, Q and U maps missing or of different "
+                      "nside", path ? path : "");
+    return write_columns(mm, 3, names, "COSMO", path, opts);
+}
+
+static int write_columns(const clef_map *const *mm, int ncol, const char *const *names,
+                         const char *polcconv, const char *path, const clef_map_write_opts *opts)
+{
+    const clef_map *m = mm[0];
     if (!m || !m->pix || !m->valid)
         CLEF_FAIL(CLEF_EINVAL, "clef_map_write: map is NULL or empty");
     if (!path || !*path)
@@ -86,7 +111,6 @@ int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opt
                   "%lld",
                   path, (long long)rowlen, (long long)m->npix, (long long)m->nside);
     const int single = opts && opts->single_precision;
-    const char *colname = opts && opts->column && *opts->column ? opts->column : "TEMPERATURE";
     const char *unit = opts && opts->unit ? opts->unit : m->unit;
     const char *extname = opts && opts->extname && *opts->extname ? opts->extname : "SKYMAP";
 
@@ -111,11 +135,17 @@ int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opt
 
     char tform[32];
     snprintf(tform, sizeof tform, "%lld%c", (long long)rowlen, single ? 'E' : 'D');
-    char *ttype[] = {(char *)colname};
-    char *tforms[] = {tform};
-    char *tunit[] = {(char *)(unit ? unit : "")};
-    fits_create_tbl(f, BINARY_TBL, 0, 1, ttype, tforms, tunit, extname, &st);
+    char *ttype[3], *tforms[3], *tunit[3];
+    for (int k = 0; k < ncol; k++) {
+        ttype[k] = (char *)names[k];
+        tforms[k] = tform;
+        tunit[k] = (char *)(unit ? unit : "");
+    }
+    fits_create_tbl(f, BINARY_TBL, 0, ncol, ttype, tforms, tunit, extname, &st);
     write_header(f, m, opts, &st);
+    if (polcconv)
+        fits_write_key(f, TSTRING, "POLCCONV", (char *)polcconv,
+                       "Q/U convention (HEALPix COSMO: clef's internal one)", &st);
     if (st) {
         status = write_fail(st, path, "cannot write the header");
         goto fail;
@@ -127,17 +157,19 @@ int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opt
         status = clef_fail(CLEF_ENOMEM, "cannot allocate a write buffer for '%s'", path);
         goto fail;
     }
-    for (int64_t e0 = 0; e0 < m->npix; e0 += CHUNK) {
-        const int64_t n = m->npix - e0 < CHUNK ? m->npix - e0 : CHUNK;
-        for (int64_t i = 0; i < n; i++)
-            buf[i] = m->valid[e0 + i] ? m->pix[e0 + i] : CLEF_BAD_VALUE;
-        fits_write_col(f, TDOUBLE, 1, e0 / rowlen + 1, e0 % rowlen + 1, n, buf, &st);
-        if (st) {
-            status = write_fail(st, path, "cannot write the map values");
-            goto fail;
+    for (int k = 0; k < ncol; k++)
+        for (int64_t e0 = 0; e0 < m->npix; e0 += CHUNK) {
+            const clef_map *mk = mm[k];
+            const int64_t n = m->npix - e0 < CHUNK ? m->npix - e0 : CHUNK;
+            for (int64_t i = 0; i < n; i++)
+                buf[i] = mk->valid[e0 + i] ? mk->pix[e0 + i] : CLEF_BAD_VALUE;
+            fits_write_col(f, TDOUBLE, k + 1, e0 / rowlen + 1, e0 % rowlen + 1, n, buf, &st);
+            if (st) {
+                status = write_fail(st, path, "cannot write the map values");
+                goto fail;
+            }
+            clef_progress("writing map", (double)(k * m->npix + e0 + n) / (double)(ncol * m->npix));
         }
-        clef_progress("writing map", (double)(e0 + n) / (double)m->npix);
-    }
     fits_write_chksum(f, &st);
     fits_close_file(f, &st);
     f = NULL;

@@ -168,6 +168,9 @@ static void fft_stage(const clef_sht *p, enum fft_mode mode, int b0, int nb, int
                             I * (ph[1 * BL + lane] + sg * ph[3 * BL + lane]);
                     }
                     ring_synthesis(p, th, r, f + j, nmaps);
+                    if (p->ring_syn_scale)
+                        for (int i = 0; i < n; i++)
+                            th->ring[i] *= p->ring_syn_scale[r];
                     if (mode == FFT_SYNTHESIS) {
                         memcpy(out[j] + first, th->ring, (size_t)n * sizeof(double));
                         continue;
@@ -272,8 +275,9 @@ static int check_args(const clef_sht *p, int nmaps, const void *in, const void *
 }
 
 /* One analysis pass over all chunks into acc (zeroed first).  With a
- * non-NULL `prev`, analyses the residual map - S prev instead. */
-static void analysis_pass(const clef_sht *p, int nmaps, const double *const *map,
+ * non-NULL `prev`, analyses the residual map - S prev instead (declared in
+ * sht_impl.h: the spin-2 transform, sht_spin.c, iterates through it). */
+void clef_sht_analysis_pass(const clef_sht *p, int nmaps, const double *const *map,
                           const double complex *const *prev, double complex *const *acc)
 {
     const size_t nalm = clef_alm_size(p->lmax, p->mmax);
@@ -306,7 +310,7 @@ int clef_sht_analysis(const clef_sht *p, int nmaps, const double *const *map,
         if (!map[j] || !alm[j])
             CLEF_FAIL(CLEF_EINVAL, "sht analysis: map or a_lm array %d is NULL", j);
     memset(p->state, 0, sizeof *p->state);
-    analysis_pass(p, nmaps, map, NULL, alm);
+    clef_sht_analysis_pass(p, nmaps, map, NULL, alm);
     const size_t nalm = clef_alm_size(p->lmax, p->mmax);
     double complex *delta[64];
     for (int j = 0; j < nmaps; j++)
@@ -314,7 +318,7 @@ int clef_sht_analysis(const clef_sht *p, int nmaps, const double *const *map,
     /* Jacobi iteration a <- a + A (m - S a) (METHODS.md section 2). */
     for (int it = 0; it < iterations; it++) {
         clef_progress("sht-iterations", (double)it / iterations);
-        analysis_pass(p, nmaps, map, (const double complex *const *)alm, delta);
+        clef_sht_analysis_pass(p, nmaps, map, (const double complex *const *)alm, delta);
         for (int j = 0; j < nmaps; j++)
             for (size_t i = 0; i < nalm; i++)
                 alm[j][i] += delta[j][i];

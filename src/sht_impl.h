@@ -86,6 +86,9 @@ struct clef_sht {
     int chunk_blocks;         /* blocks per chunk */
     /* Per ring r = 0 .. nrings-1 (ring index i = r + 1). */
     double *ring_z, *ring_sth, *ring_phi0, *ring_w;
+    /* NULL, or a factor per ring applied to every synthesised ring value
+     * (the inner plan of a spin-2 transform: 1 / sin^2 theta, sht_spin.c). */
+    double *ring_syn_scale;
     int64_t *ring_first;
     int *ring_npix;
     int *ring_shift;          /* phi0 = ring_shift * pi / npix_r (0 or 1) */
@@ -118,6 +121,16 @@ void clef_sht_ring_r2c(const clef_sht *p, clef_sht_thread *th, int n, const doub
                        double complex *out);
 /* Result in th->ring; `in` (n/2 + 1 values) is overwritten. */
 void clef_sht_ring_c2r(const clef_sht *p, clef_sht_thread *th, int n, double complex *in);
+
+/* sht_plan.c: clef_sht_create with the lmax > 3 nside - 1 warning
+ * optional (inner plans that run past the band limit on purpose). */
+int clef_sht_create_impl(clef_sht **out, int64_t nside, int lmax, const clef_sht_opts *opts,
+                         int warn_lmax);
+
+/* sht_exec.c: one analysis pass into acc (zeroed first); with non-NULL
+ * prev, of the residual map - S prev (S including ring_syn_scale). */
+void clef_sht_analysis_pass(const clef_sht *p, int nmaps, const double *const *map,
+                            const double complex *const *prev, double complex *const *acc);
 
 /* sht_weights.c: quadrature weights per ring (nrings values). */
 int clef_sht_ring_weights_compute(const clef_sht *p, double *w);

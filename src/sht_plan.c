@@ -112,6 +112,12 @@ static void wisdom_export(const char *file)
 
 int clef_sht_create(clef_sht **out, int64_t nside, int lmax, const clef_sht_opts *opts)
 {
+    return clef_sht_create_impl(out, nside, lmax, opts, 1);
+}
+
+int clef_sht_create_impl(clef_sht **out, int64_t nside, int lmax, const clef_sht_opts *opts,
+                         int warn_lmax)
+{
     int status = CLEF_OK;
     clef_sht *p = NULL;
     if (!out)
@@ -128,7 +134,7 @@ int clef_sht_create(clef_sht **out, int64_t nside, int lmax, const clef_sht_opts
     const int nmaps = opts && opts->nmaps > 0 ? opts->nmaps : 1;
     if (nmaps > 64)
         CLEF_FAIL(CLEF_EINVAL, "sht: nmaps = %d above the supported 64", nmaps);
-    if (lmax > 3 * nside - 1)
+    if (warn_lmax && lmax > 3 * nside - 1)
         clef_log(CLEF_LOG_WARN, "sht: lmax = %d above 3 nside - 1 = %lld: analysis is not invertible",
                  lmax, (long long)(3 * nside - 1));
 
@@ -234,6 +240,7 @@ void clef_sht_destroy(clef_sht *p)
     free(p->ring_sth);
     free(p->ring_phi0);
     free(p->ring_w);
+    free(p->ring_syn_scale);
     free(p->ring_first);
     free(p->ring_npix);
     free(p->ring_shift);

@@ -16,10 +16,14 @@
 
 /* Family constants: arbitrary odd 64-bit words that separate the families
  * before mixing. */
-static const uint64_t family_key[3] = {
-    0x736b79a1c3e5f701ULL, /* sky */
+static const uint64_t family_key[CLEF_SIM_STREAM_NFAMILIES] = {
+    0x736b79a1c3e5f701ULL, /* sky (T) */
     0x6e6f697365310b0dULL, /* noise, split 1 */
     0x6e6f69736532a9b3ULL, /* noise, split 2 */
+    0x736b7945e1c3a575ULL, /* sky, the E part independent of T */
+    0x736b7942d3b19763ULL, /* sky, B */
+    0x6e6f697365510f2bULL, /* noise of Q */
+    0x6e6f697365553d49ULL, /* noise of U */
 };
 
 /* splitmix64 output function (Steele, Lea & Flood 2014, "Fast splittable
@@ -45,12 +49,22 @@ static uint32_t fmix32(uint32_t h)
 
 unsigned long clef_sim_stream_seed(uint64_t seed, int family, uint64_t number)
 {
-    const uint64_t key = family_key[family >= 0 && family <= 2 ? family : 0];
+    const uint64_t key =
+        family_key[family >= 0 && family < CLEF_SIM_STREAM_NFAMILIES ? family : 0];
     const uint32_t base = (uint32_t)splitmix64(seed ^ key);
     return (unsigned long)fmix32(base + (uint32_t)number);
 }
 
+static int sim_alm_family(int lmax, const double *cl, uint64_t seed, int family,
+                          double complex *alm);
+
 int clef_sim_alm(int lmax, const double *cl, uint64_t seed, double complex *alm)
+{
+    return sim_alm_family(lmax, cl, seed, CLEF_SIM_STREAM_SKY, alm);
+}
+
+static int sim_alm_family(int lmax, const double *cl, uint64_t seed, int family,
+                          double complex *alm)
 {
     if (lmax < 0)
         CLEF_FAIL(CLEF_EINVAL, "simulation lmax must be >= 0, got %d", lmax);
@@ -69,7 +83,7 @@ int clef_sim_alm(int lmax, const double *cl, uint64_t seed, double complex *alm)
         for (int m = 0; m <= lmax; m++) {
             if (!r)
                 continue;
-            gsl_rng_set(r, clef_sim_stream_seed(seed, CLEF_SIM_STREAM_SKY, (uint64_t)m));
+            gsl_rng_set(r, clef_sim_stream_seed(seed, family, (uint64_t)m));
             double complex *row = alm + clef_alm_index(lmax, m, m);
             if (m == 0) {
                 for (int l = 0; l <= lmax; l++)
@@ -117,7 +131,8 @@ int clef_sim_noise(int64_t nside, double depth_uk_arcmin, const double *hits, ui
     if (!isfinite(depth_uk_arcmin) || depth_uk_arcmin < 0)
         CLEF_FAIL(CLEF_EINVAL, "noise depth must be finite and >= 0 uK-arcmin, got %g",
                   depth_uk_arcmin);
-    if (family != CLEF_SIM_STREAM_NOISE1 && family != CLEF_SIM_STREAM_NOISE2)
+    if (family != CLEF_SIM_STREAM_NOISE1 && family != CLEF_SIM_STREAM_NOISE2 &&
+        family != CLEF_SIM_STREAM_NOISE_Q && family != CLEF_SIM_STREAM_NOISE_U)
         CLEF_FAIL(CLEF_EINVAL, "noise stream family %d is not a noise family", family);
     if (hits && !valid)
         CLEF_FAIL(CLEF_EINVAL, "noise from a hit map needs a validity array");
@@ -235,4 +250,55 @@ fail:
     free(bl);
     free(pl);
     return status;
+}
+
+/* Correlated T, E and independent B (the Cholesky factor of the 2 x 2
+ * T/E covariance per l; common practice, e.g. Zaldarriaga & Seljak 1997
+ * section IV): a_T = sqrt(TT) g1, a_E = TE/sqrt(TT) g1 + sqrt(EE - TE^2/TT) g2,
+ * a_B = sqrt(BB) g3, with g1 the sky stream of clef_sim_alm (so a_T is the
+ * temperature-only draw of the same seed up to rounding) and g2, g3 their
+ * own stream families. */
+int clef_sim_alm_pol(int lmax, const double *tt, const double *ee, const double *bb,
+                     const double *te, uint64_t seed, double complex *at, double complex *ae,
+                     double complex *ab)
+{
+    if (lmax < 2)
+        CLEF_FAIL(CLEF_EINVAL, "polarized simulation lmax must be >= 2, got %d", lmax);
+    for (int l = 0; l <= lmax; l++) {
+        const double v[4] = {tt[l], ee[l], bb[l], te[l]};
+        static const char *const n[4] = {"TT", "EE", "BB", "TE"};
+        for (int k = 0; k < 4; k++)
+            if (!isfinite(v[k]) || (k < 3 && v[k] < 0))
+                CLEF_FAIL(CLEF_EINVAL, "input spectrum %s at l = %d is %g: must be finite%s", n[k],
+                          l, v[k], k < 3 ? " and >= 0" : "");
+        if (te[l] * te[l] > tt[l] * ee[l] * (1 + 1e-12))
+            CLEF_FAIL(CLEF_EINVAL, "input spectra at l = %d: TE^2 = %g exceeds TT EE = %g (no "
+                      "Gaussian field has such a correlation)", l, te[l] * te[l], tt[l] * ee[l]);
+    }
+    double *one = malloc(((size_t)lmax + 1) * sizeof *one);
+    if (!one)
+        CLEF_FAIL(CLEF_ENOMEM, "no memory for the simulation");
+    for (int l = 0; l <= lmax; l++)
+        one[l] = 1.0;
+    int status = sim_alm_family(lmax, one, seed, CLEF_SIM_STREAM_SKY, at);
+    if (status == CLEF_OK)
+        status = sim_alm_family(lmax, one, seed, CLEF_SIM_STREAM_SKY_E, ae);
+    if (status == CLEF_OK)
+        status = sim_alm_family(lmax, one, seed, CLEF_SIM_STREAM_SKY_B, ab);
+    free(one);
+    CLEF_TRY(status);
+    for (int m = 0; m <= lmax; m++)
+        for (int l = m; l <= lmax; l++) {
+            const size_t i = clef_alm_index(lmax, l, m);
+            const double complex g1 = at[i], g2 = ae[i], g3 = ab[i];
+            const double st = sqrt(tt[l]);
+            const double r = st > 0 ? te[l] / st : 0.0;
+            const double rest = ee[l] - r * r;
+            at[i] = st * g1;
+            ae[i] = r * g1 + sqrt(rest > 0 ? rest : 0.0) * g2;
+            ab[i] = l >= 2 ? sqrt(bb[l]) * g3 : 0.0;
+            if (l < 2)
+                ae[i] = 0.0;
+        }
+    return CLEF_OK;
 }

@@ -33,6 +33,10 @@ void clef_spectrum_result_free(clef_spectrum_result *res)
         return;
     clef_bandpowers_free(res->bp);
     res->bp = NULL;
+    for (int i = 0; i < 2; i++) {
+        free(res->alm[i]);
+        res->alm[i] = NULL;
+    }
 }
 
 static void stage_done(clef_spectrum_result *res, const char *name, double *t0)
@@ -53,7 +57,7 @@ static const char *name_or(const clef_spectrum_opts *o, int i, const char *fallb
 }
 
 /* Effective weights: the mask where the map is valid, 0 elsewhere. */
-static int make_weights(const clef_map *map, const clef_map *mask, double **w_out)
+int clef_spectrum_make_weights(const clef_map *map, const clef_map *mask, double **w_out)
 {
     double *w = clef_alloc_large((size_t)map->npix * sizeof *w);
     if (!w)
@@ -66,7 +70,7 @@ static int make_weights(const clef_map *map, const clef_map *mask, double **w_ou
 
 /* Beam x pixel window x transfer per multipole: the signal filter T_l =
  * F_l B_l^2 p_l^2 (METHODS.md section 4), and b2p2 = B_l^2 p_l^2 alone. */
-static int signal_filter(const clef_spectrum_opts *o, int64_t nside, int lmax, double *tl)
+int clef_spectrum_signal_filter(const clef_spectrum_opts *o, int64_t nside, int lmax, double *tl)
 {
     double *tmp = malloc((size_t)(lmax + 1) * sizeof *tmp);
     if (!tmp)
@@ -144,7 +148,7 @@ static int option_limits(const clef_spectrum_opts *o, int64_t nside, int *l_tab,
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for the beam");
     clef_spectrum_opts tmp = *o;
     tmp.transfer = NULL; /* a filter's zeros are the user's business, not a reason to cut */
-    int status = signal_filter(&tmp, nside, l3, tl);
+    int status = clef_spectrum_signal_filter(&tmp, nside, l3, tl);
     if (status == CLEF_OK) {
         const double floor2 = CLEF_SPECTRUM_BEAM_FLOOR * CLEF_SPECTRUM_BEAM_FLOOR;
         int l = l3;
@@ -246,8 +250,8 @@ static int record_meta(clef_bandpowers *bp, const clef_spectrum_opts *o,
 }
 
 /* Fill the table: D_b, C_b, l ranges, errors from the covariance. */
-static void fill_table(clef_bandpowers *bp, const clef_bins *bins, const double *band,
-                       const double *cov)
+void clef_spectrum_fill_table(clef_bandpowers *bp, const clef_bins *bins, const double *band,
+                              const double *cov)
 {
     const int nb = bp->nbins;
     const int flat = clef_bins_weighting(bins) == CLEF_BINS_FLAT;
@@ -384,7 +388,7 @@ static int stage_prepare(run *r, const clef_map *const map[2], const clef_map *c
     const int64_t npix = r->npix;
     clef_spectrum_result *res = r->res;
     for (int i = 0; i <= r->cross; i++)
-        CLEF_TRY(make_weights(map[i], mask[i], &r->w[i]));
+        CLEF_TRY(clef_spectrum_make_weights(map[i], mask[i], &r->w[i]));
     double s1 = 0, s2 = 0, s4 = 0, sab = 0, sbb = 0;
     int64_t nobs[2] = {0, 0};
     const double *wa = r->w[0], *wb = r->w[r->cross];
@@ -733,7 +737,7 @@ static int stage_bins(run *r)
         r->res->bin_width = width;
     }
     r->nb = r->res->nbins = clef_bins_count(r->bins);
-    CLEF_TRY(signal_filter(&r->o, r->nside, r->lmax_ext, r->tl));
+    CLEF_TRY(clef_spectrum_signal_filter(&r->o, r->nside, r->lmax_ext, r->tl));
     return make_all_bins(r, cw);
 }
 
@@ -814,7 +818,7 @@ static int stage_covariance(run *r)
         for (int j = 0; j < nb; j++)
             crep[(size_t)i * nb + j] = cov[(size_t)r->rep[i] * na + r->rep[j]];
     }
-    fill_table(r->bp, r->bins, band, crep);
+    clef_spectrum_fill_table(r->bp, r->bins, band, crep);
     stage_done(r->res, "covariance", &r->t0);
 fail:
     free(cov);
@@ -841,20 +845,26 @@ static int stage_windows(run *r)
     if (status == CLEF_OK)
         status = clef_bandpowers_alloc_windows(r->bp, r->lmax_ext);
     if (status == CLEF_OK) {
-        const int flat = clef_bins_weighting(r->bins) == CLEF_BINS_FLAT;
-        for (int b = 0; b < nb; b++) {
-            const double le = clef_bins_l_eff(r->bins, b);
-            const double scale = flat ? le * (le + 1) / (2 * M_PI) : 1.0;
-            const double *src = all + (size_t)r->rep[b] * n;
-            double *row = r->bp->win + (size_t)b * n;
-            row[0] = 0.0;
-            for (size_t l = 1; l < n; l++)
-                row[l] = src[l] * scale * 2 * M_PI / ((double)l * (double)(l + 1));
-        }
+        clef_spectrum_windows_to_dl(r->bins, r->rep, nb, all, n, n, r->bp->win);
         stage_done(r->res, "windows", &r->t0);
     }
     free(all);
     return status;
+}
+
+void clef_spectrum_windows_to_dl(const clef_bins *bins, const int *rep, int nb, const double *all,
+                                 size_t stride, size_t n, double *win)
+{
+    const int flat = clef_bins_weighting(bins) == CLEF_BINS_FLAT;
+    for (int b = 0; b < nb; b++) {
+        const double le = clef_bins_l_eff(bins, b);
+        const double scale = flat ? le * (le + 1) / (2 * M_PI) : 1.0;
+        const double *src = all + (size_t)rep[b] * stride;
+        double *row = win + (size_t)b * n;
+        row[0] = 0.0;
+        for (size_t l = 1; l < n; l++)
+            row[l] = src[l] * scale * 2 * M_PI / ((double)l * (double)(l + 1));
+    }
 }
 
 /* The first peak, recorded in the table's keywords. */
@@ -921,6 +931,10 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
     if (status == CLEF_OK) {
         res->bp = r.bp;
         r.bp = NULL;
+        for (int i = 0; r.o.keep_alm && i <= r.cross; i++) {
+            res->alm[i] = r.alm[i];
+            r.alm[i] = NULL;
+        }
     }
     run_free(&r);
     return status;

@@ -161,8 +161,9 @@ int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
         }
     }
 
-    CLEF_CHECK(clef_spectrum_coupling(&m2, lmax, in->wl2, in->lmax_t, o));
-    const double *m = clef_coupling_matrix(m2);
+    if (!in->m2)
+        CLEF_CHECK(clef_spectrum_coupling(&m2, lmax, in->wl2, in->lmax_t, o));
+    const double *m = clef_coupling_matrix(in->m2 ? in->m2 : m2);
     g = clef_alloc_large((size_t)n * n * sizeof *g);
     x = malloc((size_t)nb * n * sizeof *x);
     if (!g || !x) {

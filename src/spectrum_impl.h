@@ -6,6 +6,24 @@
 #include "clef/coupling.h"
 #include "clef/spectrum.h"
 
+/* The signal filter T_l = F_l B_l^2 p_l^2 of the options for l = 0..lmax
+ * (spectrum.c; also used by the polarized spectra, spectrum_pol.c). */
+int clef_spectrum_signal_filter(const clef_spectrum_opts *o, int64_t nside, int lmax, double *tl);
+
+/* Effective weights: the mask where the map is valid, 0 elsewhere (new array). */
+int clef_spectrum_make_weights(const clef_map *map, const clef_map *mask, double **w_out);
+
+/* Fill a table's D_b, C_b, l ranges and errors from band powers of `bins`
+ * and their covariance (nbins x nbins). */
+void clef_spectrum_fill_table(clef_bandpowers *bp, const clef_bins *bins, const double *band,
+                              const double *cov);
+
+/* Band-power windows acting on D_l (docs/formats-spectrum.md) from windows
+ * acting on C_l: row rep[b] of `all` (row length `stride`, first n columns
+ * used) into row b of win (nb x n); flat-weighted bands scaled to D_b. */
+void clef_spectrum_windows_to_dl(const clef_bins *bins, const int *rep, int nb, const double *all,
+                                 size_t stride, size_t n, double *win);
+
 /* Inputs of the band-power covariance (spectrum_cov.c). */
 typedef struct clef_spectrum_cov_in {
     int lmax;                   /* multipoles decoupled */
@@ -19,6 +37,8 @@ typedef struct clef_spectrum_cov_in {
     const double *tl;           /* signal filter F B^2 p^2, l = 0..lmax */
     const double *wl2;          /* spectrum of the product mask w_a w_b, l = 0..lmax_t */
     const clef_spectrum_opts *opts;
+    const clef_coupling *m2;    /* NULL, or M[w_a w_b] already built from wl2 to lmax (the
+                                   polarized spectra share it between spectra) */
 } clef_spectrum_cov_in;
 
 /* Covariance of the decoupled band powers (nbins x nbins, row-major). */

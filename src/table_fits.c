@@ -61,12 +61,22 @@ static void write_meta_card(fitsfile *f, const clef_meta *m, int *st)
     }
 }
 
-static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
+/* extver > 0: the HDUs of one spectrum of a set (clef_bandpowers_write_fits_set)
+ * carry EXTVER = extver (FITS standard 4.0, section 4.4.2.6). */
+static void write_extver(fitsfile *f, int extver, int *st)
+{
+    if (extver > 0)
+        fits_write_key_lng(f, "EXTVER", extver, "spectrum number in this file", st);
+}
+
+static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int primary, int extver, int *st)
 {
     const LONGLONG n = bp->nbins;
-    fits_create_img(f, BYTE_IMG, 0, NULL, st);
-    fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
-    fits_write_date(f, st);
+    if (primary) {
+        fits_create_img(f, BYTE_IMG, 0, NULL, st);
+        fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
+        fits_write_date(f, st);
+    }
 
     char *ttype[CLEF_TABLE_NCOLS], *tform[CLEF_TABLE_NCOLS], *tunit[CLEF_TABLE_NCOLS];
     for (int k = 0; k < CLEF_TABLE_NCOLS; k++) {
@@ -80,6 +90,7 @@ static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
         snprintf(key, sizeof key, "TTYPE%d", k + 1);
         fits_modify_comment(f, key, fits_comments[k], st);
     }
+    write_extver(f, extver, st);
     fits_write_col(f, TINT, 1, 1, 1, n, bp->l_lo, st);
     fits_write_col(f, TINT, 2, 1, 1, n, bp->l_hi, st);
     fits_write_col(f, TDOUBLE, 3, 1, 1, n, bp->l_eff, st);
@@ -102,6 +113,7 @@ static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
         fits_create_img(f, DOUBLE_IMG, 2, naxes, st);
         fits_write_key_str(f, "EXTNAME", "BANDCOV", "covariance of D_BAND between bins", st);
         fits_write_key_str(f, "BUNIT", "uK^4", "unit of the covariance", st);
+        write_extver(f, extver, st);
         fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
         fits_write_img(f, TDOUBLE, 1, n * n, bp->cov, st);
     }
@@ -112,6 +124,7 @@ static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
         fits_create_img(f, DOUBLE_IMG, 2, naxes, st);
         fits_write_key_str(f, "EXTNAME", "BANDWIN", "band-power window functions W_bl", st);
         fits_write_key_str(f, "CLEFVERS", CLEF_VERSION, "clef version that wrote this file", st);
+        write_extver(f, extver, st);
         fits_write_key_lng(f, "WINLMIN", 0, "multipole of the first column", st);
         fits_write_key_lng(f, "WINLMAX", bp->win_lmax, "multipole of the last column", st);
         fits_write_comment(f, "<D_BAND of row b> = sum_l W_bl D_l, D_l = l(l+1)C_l/2pi of the sky", st);
@@ -119,9 +132,12 @@ static void write_hdus(fitsfile *f, const clef_bandpowers *bp, int *st)
     }
 }
 
-int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
+int clef_bandpowers_write_fits_set(const clef_bandpowers *const *bp, int n, const char *path)
 {
-    CLEF_TRY(clef_table_check(bp, path));
+    if (!bp || n < 1)
+        CLEF_FAIL(CLEF_EINVAL, "band-power set for '%s' is empty", path ? path : "");
+    for (int i = 0; i < n; i++)
+        CLEF_TRY(clef_table_check(bp[i], path));
     clef_outfile of;
     CLEF_TRY(clef_outfile_begin(&of, path));
     /* The disk-file entry point takes the name literally (no extended
@@ -132,13 +148,20 @@ int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
     fits_create_diskfile(&f, of.tmp_path, &st);
     if (st)
         return write_fits_fail(&of, st, path, "cannot create the FITS file");
-    write_hdus(f, bp, &st);
+    /* A single table keeps the plain layout (no EXTVER). */
+    for (int i = 0; i < n && !st; i++)
+        write_hdus(f, bp[i], i == 0, n > 1 ? i + 1 : 0, &st);
     int st_close = 0;
     fits_close_file(f, &st_close);
     if (st || st_close)
         return write_fits_fail(&of, st ? st : st_close, path,
                                "cannot write the band-power FITS file");
     return clef_outfile_commit(&of);
+}
+
+int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path)
+{
+    return clef_bandpowers_write_fits_set(&bp, 1, path);
 }
 
 /* ---- reading ----------------------------------------------------------- */

@@ -484,3 +484,102 @@ int clef_theory_write_cl(const char *path, int lmax, const double *cl, const cle
     }
     return clef_outfile_commit(&o);
 }
+
+/* Polarized spectra text file (docs/formats-spectrum.md, "Polarized input
+ * spectra"): '#' comments, data lines "l TT EE BB TE" (C_l in uK^2,
+ * whitespace- or comma-separated). */
+int clef_theory_read_cl_pol(const char *path, int lmax, double *tt, double *ee, double *bb,
+                            double *te)
+{
+    if (!path || !tt || !ee || !bb || !te)
+        CLEF_FAIL(CLEF_EINVAL, "polarized spectrum reader: NULL argument");
+    if (lmax < 2 || lmax > CLEF_THEORY_LMAX_MAX)
+        CLEF_FAIL(CLEF_EINVAL, "polarized spectrum reader: lmax = %d must be in [2, %d]", lmax,
+                  CLEF_THEORY_LMAX_MAX);
+    FILE *f = fopen(path, "r");
+    if (!f)
+        CLEF_FAIL(CLEF_EIO, "cannot open spectrum file '%s': %s", path, strerror(errno));
+    unsigned char *seen = calloc((size_t)lmax + 1, 1);
+    if (!seen) {
+        fclose(f);
+        CLEF_FAIL(CLEF_ENOMEM, "polarized spectrum reader: out of memory");
+    }
+    double *col[4] = {tt, ee, bb, te};
+    for (int k = 0; k < 4; k++)
+        for (int l = 0; l <= lmax; l++)
+            col[k][l] = 0.0;
+    char line[4096];
+    int lineno = 0, last = -1, status = CLEF_OK;
+    while (fgets(line, sizeof line, f)) {
+        lineno++;
+        for (char *c = line; *c; c++)
+            if (*c == ',')
+                *c = ' ';
+        char *p = line;
+        while (*p == ' ' || *p == '\t')
+            p++;
+        if (*p == '#' || *p == '\n' || *p == '\r' || !*p)
+            continue;
+        double v[5];
+        char *end = p;
+        int n = 0;
+        for (; n < 5; n++) {
+            v[n] = strtod(p, &end);
+            if (end == p)
+                break;
+            p = end;
+        }
+        while (*p == ' ' || *p == '\t' || *p == '\r' || *p == '\n')
+            p++;
+        if (n < 5 || *p) {
+            status = clef_fail(CLEF_EFORMAT, "'%s' line %d: expected 5 numbers 'l TT EE BB TE'",
+                               path, lineno);
+            goto done;
+        }
+        if (v[0] != floor(v[0]) || v[0] < 0 || v[0] > CLEF_THEORY_LMAX_MAX) {
+            status = clef_fail(CLEF_EFORMAT, "'%s' line %d: multipole %g is not an integer in "
+                               "0..%d", path, lineno, v[0], CLEF_THEORY_LMAX_MAX);
+            goto done;
+        }
+        const int l = (int)v[0];
+        for (int k = 1; k < 5; k++)
+            if (!isfinite(v[k]) || (k < 4 && v[k] < 0)) {
+                static const char *const nm[5] = {"", "TT", "EE", "BB", "TE"};
+                status = clef_fail(CLEF_EFORMAT, "'%s' line %d: %s = %g %s", path, lineno, nm[k],
+                                   v[k], k < 4 ? "(must be finite and >= 0)" : "(not finite)");
+                goto done;
+            }
+        if (l > last)
+            last = l;
+        if (l > lmax)
+            continue;
+        if (seen[l]) {
+            status = clef_fail(CLEF_EFORMAT, "'%s' line %d: multipole %d repeated", path, lineno,
+                               l);
+            goto done;
+        }
+        seen[l] = 1;
+        for (int k = 0; k < 4; k++)
+            col[k][l] = v[k + 1];
+    }
+    if (ferror(f)) {
+        status = clef_fail(CLEF_EIO, "cannot read '%s'", path);
+        goto done;
+    }
+    for (int l = 2; l <= lmax && l <= last; l++)
+        if (!seen[l]) {
+            status = clef_fail(CLEF_EFORMAT, "'%s': multipole %d is missing", path, l);
+            goto done;
+        }
+    if (last < 2) {
+        status = clef_fail(CLEF_EFORMAT, "'%s': no multipole l >= 2", path);
+        goto done;
+    }
+    if (last < lmax)
+        clef_log(CLEF_LOG_WARN, "'%s' ends at l = %d: spectra above are taken as 0 up to lmax = "
+                 "%d", path, last, lmax);
+done:
+    free(seen);
+    fclose(f);
+    return status;
+}

@@ -246,3 +246,24 @@ int clef_wigner_3j_row(int l2, int l3, int m2, int m3, double *out, int *jmin_ou
         f[i] *= s;
     return CLEF_OK;
 }
+
+int clef_wigner_3j22_row(int l1, int l2, double *out, int *l3min, int *l3max)
+{
+    if (l1 < 0 || l2 < 0)
+        CLEF_FAIL(CLEF_EINVAL, "3j (2 -2 0) row: negative multipole (l1 = %d, l2 = %d)", l1, l2);
+    if (!out)
+        CLEF_FAIL(CLEF_EINVAL, "3j (2 -2 0) row: output array is NULL");
+    const int lo = abs(l1 - l2), hi = l1 + l2;
+    if (l3min)
+        *l3min = lo;
+    if (l3max)
+        *l3max = hi;
+    for (int j = lo; j <= hi; j++)
+        out[j - lo] = 0.0;
+    if (l1 < 2 || l2 < 2)
+        return CLEF_OK;
+    /* m1 = 0 here, so the row starts at jmin = |l1 - l2| = lo. */
+    int jmin, jmax;
+    CLEF_TRY(clef_wigner_3j_row(l1, l2, 2, -2, out, &jmin, &jmax));
+    return CLEF_OK;
+}

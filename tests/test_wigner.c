@@ -286,6 +286,31 @@ static void test_general_m_large(void **state)
     }
 }
 
+/* (l1 l2 l3; 2 -2 0) rows against GSL gsl_sf_coupling_3j, including
+ * l < 2 (all zero) and the odd-J entries (nonzero, unlike m = 0). */
+static void test_3j22_vs_gsl(void **state)
+{
+    (void)state;
+    const int pairs[][2] = {{0, 5}, {1, 1}, {2, 2}, {2, 7}, {3, 3}, {10, 4}, {37, 41}, {120, 95}};
+    double buf[512];
+    for (size_t k = 0; k < sizeof pairs / sizeof *pairs; k++) {
+        const int l1 = pairs[k][0], l2 = pairs[k][1];
+        int lo, hi;
+        assert_int_equal(clef_wigner_3j22_row(l1, l2, buf, &lo, &hi), CLEF_OK);
+        assert_int_equal(lo, abs(l1 - l2));
+        assert_int_equal(hi, l1 + l2);
+        for (int l3 = lo; l3 <= hi; l3++) {
+            gsl_sf_result ref;
+            assert_int_equal(gsl_sf_coupling_3j_e(2 * l1, 2 * l2, 2 * l3, 4, -4, 0, &ref),
+                             GSL_SUCCESS);
+            /* Same tolerance rule as test_general_m_vs_gsl: GSL's own error estimate. */
+            const double tol = fmax(1e-12 * fabs(ref.val), ref.err) + 1e-15;
+            check_abs(buf[l3 - lo], ref.val, tol, "GSL gsl_sf_coupling_3j (l1 l2 l3; 2 -2 0)");
+        }
+    }
+    assert_int_equal(clef_wigner_3j22_row(-1, 2, buf, NULL, NULL), CLEF_EINVAL);
+}
+
 static void test_errors(void **state)
 {
     (void)state;
@@ -302,7 +327,7 @@ int main(void)
         cmocka_unit_test(test_vs_edmonds),   cmocka_unit_test(test_orthogonality),
         cmocka_unit_test(test_squared_form), cmocka_unit_test(test_errors),
         cmocka_unit_test(test_general_m_exact), cmocka_unit_test(test_general_m_vs_gsl),
-        cmocka_unit_test(test_general_m_large),
+        cmocka_unit_test(test_general_m_large), cmocka_unit_test(test_3j22_vs_gsl),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

@@ -131,6 +131,57 @@ void clef_coupling_binned_decouple(const clef_coupling_binned *k, const double *
 int clef_coupling_binned_windows(const clef_coupling_binned *k, const clef_coupling *m,
                                  const clef_bins *bins, const double *transfer, double *out);
 
+/* ---- polarization (src/coupling_pol.c; docs/coupling.md) ----
+ * Coupling matrices of spin 0 x 2 and 2 x 2 fields (Kogut et al. 2003;
+ * Brown, Castro & Taylor 2005), J = l1 + l2 + l3:
+ *   M^TE_ll' = (2l'+1)/(4 pi) sum (2l''+1) W^TP_l'' (l l' l''; 0 0 0)(l l' l''; 2 -2 0),
+ *   M^+-_ll' = (2l'+1)/(8 pi) sum (2l''+1) W^PP_l'' (l l' l''; 2 -2 0)^2 (1 +- (-1)^J),
+ * <C~^TE> = M^TE C^TE (TB likewise), <C~^EE> = M+ C^EE + M- C^BB,
+ * <C~^BB> = M- C^EE + M+ C^BB, <C~^EB> = M+ C^EB - M- C^BE (BE likewise).
+ * W^TP is the cross spectrum of the T and P masks (may be negative; NULL:
+ * no TE matrix), W^PP the P mask's spectrum, both to wl_lmax (>= 2 lmax
+ * for the exact matrices).  Each matrix is a clef_coupling (so the
+ * spin-0 binning, windows and decoupling apply to M^TE); clef_coupling_pol
+ * owns them.  Cost ~ lmax^3 3j terms (Schulten-Gordon rows). */
+typedef struct clef_coupling_pol {
+    clef_coupling *te;  /* M^TE (NULL if w_tp was NULL) */
+    clef_coupling *pp;  /* M^+ */
+    clef_coupling *mm;  /* M^- */
+} clef_coupling_pol;
+int clef_coupling_pol_create(clef_coupling_pol *out, int lmax, const double *w_tp,
+                             const double *w_pp, int wl_lmax);
+void clef_coupling_pol_free(clef_coupling_pol *p); /* destroys the matrices */
+/* The same through the cache folder (clef_coupling_cache_dir; one entry of
+ * kind "coupling-pol" keyed by lmax, both mask spectra and the clef
+ * version); *hit (may be NULL) is 1 on a hit.  Cache problems are warnings. */
+int clef_coupling_pol_create_cached(clef_coupling_pol *out, int lmax, const double *w_tp,
+                                    const double *w_pp, int wl_lmax, const char *cache_dir,
+                                    int *hit);
+
+/* The 2 x 2 block binned and inverted jointly: K = [[K+, s K-], [s K-, K+]]
+ * with K+- = P M+- T Q, s = +1 for (EE, BB) and -1 for (EB, BE); LU by
+ * LAPACK dgetrf, rcond by dgecon (CLEF_ENUMERIC below opts->rcond_min). */
+typedef struct clef_coupling_pol_binned clef_coupling_pol_binned;
+int clef_coupling_pol_binned_create(clef_coupling_pol_binned **out, const clef_coupling *mplus,
+                                    const clef_coupling *mminus, const clef_bins *bins,
+                                    const double *transfer, int sign,
+                                    const clef_coupling_opts *opts);
+void clef_coupling_pol_binned_destroy(clef_coupling_pol_binned *k);
+int clef_coupling_pol_binned_nbins(const clef_coupling_pol_binned *k);
+double clef_coupling_pol_binned_rcond(const clef_coupling_pol_binned *k);
+/* K^-1 blockdiag(P, P): 2 nbins rows x 2 (lmax+1) columns (a then b). */
+const double *clef_coupling_pol_binned_kinv_p(const clef_coupling_pol_binned *k);
+/* (pcl_a, pcl_b)[0..lmax] (EE, BB or EB, BE pseudo-spectra, noise removed)
+ * -> band_a, band_b [nbins]. */
+void clef_coupling_pol_binned_decouple(const clef_coupling_pol_binned *k, const double *pcl_a,
+                                       const double *pcl_b, double *band_a, double *band_b);
+/* Band-power windows incl. the leakage ones: out[(h nbins + b) 2 (lmax+1) +
+ * h' (lmax+1) + l] is the response of band b of spectrum h (0 = a, 1 = b)
+ * to C_l of spectrum h' (e.g. EE -> BB leakage at h = 1, h' = 0). */
+int clef_coupling_pol_binned_windows(const clef_coupling_pol_binned *k,
+                                     const clef_coupling *mplus, const clef_coupling *mminus,
+                                     const clef_bins *bins, const double *transfer, double *out);
+
 /* ---- cache (src/coupling_cache.c) ---- */
 
 /* The cache folder: cache_dir if non-NULL and non-empty, else

@@ -46,6 +46,7 @@ typedef struct clef_map {
     char unit[64];          /* TUNIT of the column read, or "" */
     char column[72];        /* name of the column read, or "" */
     int hdu;                /* extension read (1 = first after the primary), 0 if made in memory */
+    char polcconv[72];      /* POLCCONV keyword of that HDU as written (trimmed), "" if absent */
 } clef_map;
 
 /* Which table and column to read.  All fields may be 0/NULL for defaults. */
@@ -100,6 +101,12 @@ typedef struct clef_map_write_opts {
  * (cannot create, write or rename; the message has CFITSIO's status) or
  * CLEF_ENOMEM.  Written in chunks of 2^20 values; no other allocation. */
 int clef_map_write(const clef_map *m, const char *path, const clef_map_write_opts *opts);
+/* The same for a polarized map: one table with columns TEMPERATURE,
+ * Q_POLARISATION, U_POLARISATION (opts->column ignored) and POLCCONV =
+ * 'COSMO' (clef's convention).  CLEF_EINVAL for a missing map or maps of
+ * different nside; otherwise as clef_map_write. */
+int clef_map_write_pol(const clef_map *t, const clef_map *q, const clef_map *u, const char *path,
+                       const clef_map_write_opts *opts);
 
 /* Summary of the valid pixels of a map: rms = sqrt(mean(x^2)), stddev
  * divides by nvalid (population convention, as numpy's default); min, max,
@@ -128,6 +135,39 @@ int clef_map_check_mask(const clef_map *map, const char *map_name, const clef_ma
  * blanks ignored.  Returns 0 for an empty or unrecognised unit (the caller
  * decides; clef's estimator then assumes uK and warns). */
 double clef_unit_to_uk(const char *unit);
+
+/* Polarized maps (src/map_pol.c).  Q and U come from the columns named
+ * Q_POLARISATION and U_POLARISATION (HEALPix; also Q_POLARIZATION,
+ * Q_STOKES and the U forms), T from TEMPERATURE (or I_STOKES), of the same
+ * HDU in any layout clef_map_read reads; or Q and U from separate files
+ * (u_path).  Columns may be given by name or number instead.
+ * Internal convention COSMO (docs/transforms.md): POLCCONV = 'COSMO' is
+ * read as is, 'IAU' has U negated, a missing POLCCONV is read as COSMO
+ * with a warning through the log hook (polcconv_missing = 1), any other
+ * value is CLEF_EFORMAT naming file, HDU, keyword and value.  Q and U
+ * share one validity (a pixel missing in either is missing in both); T
+ * keeps its own.  Errors: a missing column is CLEF_EINVAL naming the file,
+ * HDU and the columns present; Q and U of different nside, COORDSYS or
+ * POLCCONV are CLEF_EINVAL.  On failure every map is freed. */
+typedef struct clef_map_pol_opts {
+    const char *hdu, *ordering;   /* as clef_map_read_opts, for every file */
+    const char *t_column, *q_column, *u_column; /* NULL = the conventional names */
+    const char *u_path;           /* NULL = U from the same file as Q */
+    const char *polcconv;         /* NULL = from the file; "COSMO"/"IAU" overrides it */
+    int want_t;                   /* 1: read T too (CLEF_EINVAL if absent) */
+} clef_map_pol_opts;
+
+typedef struct clef_map_pol {
+    clef_map *t, *q, *u;          /* t NULL unless want_t */
+    int iau;                      /* 1: the file said IAU and U was negated */
+    int polcconv_missing;         /* 1: no POLCCONV, COSMO assumed (warning logged) */
+} clef_map_pol;
+
+int clef_map_read_pol(clef_map_pol *out, const char *path, const clef_map_pol_opts *opts);
+void clef_map_pol_free(clef_map_pol *p); /* frees the maps, NULL is a no-op */
+/* 1 if a column name is one of the Q/U names above (the estimator warns
+ * when a polarized table is read as temperature only). */
+int clef_map_column_is_pol(const char *name);
 
 /* Pixel geometry helpers (RING scheme, 64-bit indices). */
 int64_t clef_nside_npix(int64_t nside);

@@ -88,6 +88,35 @@ int clef_sht_synthesis(const clef_sht *p, int nmaps, const double complex *const
 int clef_sht_analysis(const clef_sht *p, int nmaps, const double *const *map,
                       double complex *const *alm, int iterations);
 
+/* Spin-2 transforms of Stokes Q, U (docs/transforms.md): conventions of
+ * Zaldarriaga & Seljak 1997 (PRD 55, 1830) as used by HEALPix,
+ *   Q +- iU = sum_lm a_{+-2,lm} _{+-2}Y_lm,  a_{+-2,lm} = -(a_E,lm +- i a_B,lm),
+ * _{+-2}Y_lm = sqrt((l-2)!/(l+2)!) eth^2 Y_lm (eth-bar^2 for -2), eth as
+ * Newman & Penrose 1966 with eth f = -sin^s(d_theta + i/sin d_phi) sin^-s f.
+ * Q, U in the COSMO convention (clef's internal one; map.h converts IAU).
+ * a_E, a_B are stored like spin-0 a_lm (m >= 0, a_{l,-m} = (-1)^m conj(a_lm),
+ * l = 0, 1 entries zero).  A plan wraps a spin-0 plan to lmax + 2 (same
+ * FFTs, kernels, ring weights; results independent of the thread count);
+ * opts->nmaps is the number of Q/U pairs per call.  Same rules as the
+ * spin-0 plan: create serially, one call at a time per plan. */
+typedef struct clef_sht_spin clef_sht_spin;
+int clef_sht_spin_create(clef_sht_spin **out, int64_t nside, int lmax, const clef_sht_opts *opts);
+void clef_sht_spin_destroy(clef_sht_spin *p); /* NULL is a no-op */
+int clef_sht_spin_lmax(const clef_sht_spin *p);
+int clef_sht_spin_mmax(const clef_sht_spin *p);
+/* The inner spin-0 plan (ring info, clef_sht_timings of the last call). */
+const clef_sht *clef_sht_spin_plan(const clef_sht_spin *p);
+/* npairs (a_E, a_B) sets -> npairs (Q, U) RING maps. */
+int clef_sht_spin_synthesis(const clef_sht_spin *p, int npairs, const double complex *const *alm_e,
+                            const double complex *const *alm_b, double *const *q,
+                            double *const *u);
+/* npairs (Q, U) RING maps -> (a_E, a_B), with ring weights and
+ * `iterations` Jacobi steps as clef_sht_analysis.  Masked pixels must be
+ * zero in both Q and U. */
+int clef_sht_spin_analysis(const clef_sht_spin *p, int npairs, const double *const *q,
+                           const double *const *u, double complex *const *alm_e,
+                           double complex *const *alm_b, int iterations);
+
 /* Normalised associated Legendre functions lambda_lm(z) = Y_lm(theta, 0),
  * z = cos theta, for fixed m and l = m..lmax into out[l - m] (lmax - m + 1
  * doubles), using the same scaled recurrence as the transform (no

@@ -39,7 +39,12 @@ extern "C" {
 enum clef_sim_stream {
     CLEF_SIM_STREAM_SKY = 0,
     CLEF_SIM_STREAM_NOISE1 = 1, /* noise of split 1 (or of the only map) */
-    CLEF_SIM_STREAM_NOISE2 = 2  /* noise of split 2 */
+    CLEF_SIM_STREAM_NOISE2 = 2, /* noise of split 2 */
+    CLEF_SIM_STREAM_SKY_E = 3,  /* polarization: the part of E independent of T */
+    CLEF_SIM_STREAM_SKY_B = 4,  /* polarization: B */
+    CLEF_SIM_STREAM_NOISE_Q = 5, /* noise of Q */
+    CLEF_SIM_STREAM_NOISE_U = 6, /* noise of U */
+    CLEF_SIM_STREAM_NFAMILIES = 7
 };
 
 /* The 32-bit GSL seed of stream `number` of `family` for the user's seed
@@ -54,6 +59,16 @@ unsigned long clef_sim_stream_seed(uint64_t seed, int family, uint64_t number);
  * lower multipoles unchanged.  CLEF_EINVAL (lmax < 0, bad C_l). */
 int clef_sim_alm(int lmax, const double *cl, uint64_t seed, double complex *alm);
 
+/* Polarized a_lm (src/sim.c): T and E correlated through TE, B
+ * independent (tt, ee, bb, te [0..lmax], uK^2): a_T = sqrt(TT) g1,
+ * a_E = TE/sqrt(TT) g1 + sqrt(EE - TE^2/TT) g2, a_B = sqrt(BB) g3, the unit
+ * deviates g1, g2, g3 from the stream families SKY, SKY_E, SKY_B; E and B
+ * are zero for l < 2.  CLEF_EINVAL (lmax < 2, negative or non-finite
+ * spectra, TE^2 > TT EE naming l). */
+int clef_sim_alm_pol(int lmax, const double *tt, const double *ee, const double *bb,
+                     const double *te, uint64_t seed, double complex *at, double complex *ae,
+                     double complex *ab);
+
 /* Multiply a_lm (mmax = lmax) by f_l = bl[l] * pl[l]; either may be NULL
  * (factor 1). */
 void clef_sim_alm_scale(int lmax, const double *bl, const double *pl, double complex *alm);
@@ -63,7 +78,7 @@ void clef_sim_alm_scale(int lmax, const double *bl, const double *pl, double com
 double clef_sim_sigma_pix(int64_t nside, double depth_uk_arcmin);
 
 /* Add pixel noise to a RING map of 12 nside^2 pixels, stream family
- * CLEF_SIM_STREAM_NOISE1 or NOISE2.  White noise: sigma_pix of the depth in
+ * CLEF_SIM_STREAM_NOISE1, NOISE2 (splits), NOISE_Q or NOISE_U.  White noise: sigma_pix of the depth in
  * every pixel.  With hits (npix values, NULL for white noise):
  * sigma_p = sigma_pix / sqrt(hits_p / mean hits), the mean taken over the
  * pixels with hits > 0, so the depth is that of a pixel with the mean hit

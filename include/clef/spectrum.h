@@ -71,6 +71,9 @@ typedef struct clef_spectrum_opts {
                                   automatic rule of peak.h, as clef peak uses) */
     const char *names[4];      /* map1, map2, mask1, mask2 names for messages (may be NULL) */
     int allow_coord_mismatch;  /* 1: accept map and mask with different COORDSYS */
+    int keep_alm;              /* 1: res->alm receives the a_lm of the weighted map(s), multipoles
+                                  removed, in uK, l, m <= lmax_ext (the polarized spectra reuse
+                                  them) */
 } clef_spectrum_opts;
 
 void clef_spectrum_opts_default(clef_spectrum_opts *o);
@@ -98,6 +101,8 @@ typedef struct clef_spectrum_result {
     double multipoles[2][4];   /* removed monopole and dipole (x, y, z) per map, uK */
     int nstages;
     struct { char name[24]; double seconds; } stage[CLEF_SPECTRUM_MAX_STAGES];
+    double _Complex *alm[2];   /* with opts->keep_alm: a_lm of map1 (and map2), else NULL; freed by
+                                  clef_spectrum_result_free */
 } clef_spectrum_result;
 
 /* Compute band powers.  map2 NULL: auto-spectrum of map1; else the cross-
@@ -117,6 +122,39 @@ void clef_spectrum_result_free(clef_spectrum_result *res); /* frees res->bp; res
  * beam floor, the tables' ends).  opts may be NULL (defaults).  Errors:
  * CLEF_EINVAL (bad nside, tables ending below l = 2), CLEF_ENOMEM. */
 int clef_spectrum_default_lmax(const clef_spectrum_opts *opts, int64_t nside, int *lmax);
+
+/* ---- polarization (src/spectrum_pol.c; docs/method.md "Polarization") ----
+ * Six spectra of one T/Q/U field (f2 NULL) or a pair of fields: TT by
+ * clef_spectrum_compute unchanged (its bins, lmax, warnings, covariance,
+ * windows); TE (T1 x E2), TB, EE, EB (E1 x B2 jointly with B1 x E2; their
+ * mean for one field), BB decoupled with the spin-2 coupling matrices of
+ * coupling.h on the same bins.  mask_t weights T, mask_p (NULL: mask_t)
+ * weights Q and U; both fields share the masks.  Q/U in the COSMO
+ * convention (clef_map_read_pol).  noise_p: N_l of Q/U noise
+ * (N^EE = N^BB, uK^2, unbeamed) subtracted from the auto EE and BB
+ * through M+ + M- (ignored with a warning for a pair).  The beam, pixel
+ * window and transfer function of opts apply to every spectrum (the
+ * temperature pixel window stands in for the polarization one). */
+enum { CLEF_POL_TT, CLEF_POL_TE, CLEF_POL_TB, CLEF_POL_EE, CLEF_POL_EB, CLEF_POL_BB,
+       CLEF_POL_NSPEC };
+const char *clef_spectrum_pol_name(int k); /* "TT", "TE", ... */
+
+typedef struct clef_spectrum_pol_result {
+    clef_spectrum_result tt;   /* the temperature run; owns bp[CLEF_POL_TT] */
+    clef_bandpowers *bp[CLEF_POL_NSPEC]; /* band powers, covariance (per spectrum), windows on D_l;
+                                            keyword SPECTRUM names the spectrum */
+    double *leak_win;          /* 2 nbins x (win_lmax + 1): BB bands on D^EE_l, then EE bands
+                                  on D^BB_l (the E/B leakage windows) */
+    int win_lmax, nbins, lmax, lmax_ext, cross;
+    double rcond_eebb, rcond_ebbe; /* of the joint binned operators */
+    int pol_cache_hit;         /* 1 when M^TE, M+, M- came from the cache */
+} clef_spectrum_pol_result;
+
+int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
+                              const clef_map *mask_t, const clef_map *mask_p,
+                              const clef_spectrum_opts *opts, const double *noise_p,
+                              int noise_p_lmax, clef_spectrum_pol_result *res);
+void clef_spectrum_pol_result_free(clef_spectrum_pol_result *res);
 
 /* Fit and remove the monopole and dipole of a map by weighted least squares
  * on the pixels with w > 0: min sum_p w_p (T_p - a - d . n_p)^2.  coeffs

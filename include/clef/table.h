@@ -71,6 +71,11 @@ const char *clef_bandpowers_meta_get(const clef_bandpowers *bp, const char *key)
 /* Write atomically (temporary file + rename).  FITS output passes fitsverify. */
 int clef_bandpowers_write_fits(const clef_bandpowers *bp, const char *path);
 int clef_bandpowers_write_csv(const clef_bandpowers *bp, const char *path);
+/* Several tables in one FITS file (e.g. the six polarized spectra): one
+ * primary HDU, then each table's BANDPOWER, BANDCOV and BANDWIN HDUs with
+ * EXTVER = 1..n (readers pick a spectrum by EXTNAME and EXTVER, or by the
+ * SPECTRUM keyword).  Written atomically. */
+int clef_bandpowers_write_fits_set(const clef_bandpowers *const *bp, int n, const char *path);
 /* Covariance as CSV: one row per bin, nbins comma-separated values. */
 int clef_bandpowers_write_cov_csv(const clef_bandpowers *bp, const char *path);
 

@@ -75,6 +75,15 @@ int clef_theory_first_peak(const clef_cosmo_params *p, double *l_peak, double *d
  * set only reports the file's largest l (no warning, lmax ignored). */
 int clef_theory_read_cl(const char *path, int lmax, double *cl, int *lmax_file);
 
+/* Read the polarized input spectra of clef simulate --polarization: a
+ * text file (docs/formats-spectrum.md, "Polarized input spectra") of
+ * '#' comments and data lines "l TT EE BB TE", C_l in uK^2 (TT, EE, BB
+ * >= 0).  Fills tt, ee, bb, te [0..lmax]; l from 2 to min(lmax, the last
+ * l) must all be present; multipoles above the last l are 0 (warning).
+ * Errors name the file and line: CLEF_EIO, CLEF_EFORMAT, CLEF_EINVAL. */
+int clef_theory_read_cl_pol(const char *path, int lmax, double *tt, double *ee, double *bb,
+                            double *te);
+
 /* Write C_l (l = 0..lmax, uK^2) atomically: a FITS binary table when the
  * path ends in .fits, .fit or .fits.gz (HDU "SPECTRUM", columns L, CL, DL
  * with TUNIT uK^2), a text file otherwise (columns l C_l D_l under a

@@ -62,6 +62,14 @@ static inline double clef_wigner_3j000_sq(const double *a, int l1, int l2, int l
  * Errors: CLEF_EINVAL for negative l2, l3 or NULL pointers. */
 int clef_wigner_3j_row(int l2, int l3, int m2, int m3, double *out, int *jmin, int *jmax);
 
+/* (l1 l2 l3; 2 -2 0) for l3 = |l1 - l2| .. l1 + l2 into out[l3 - |l1 - l2|]
+ * (l1 + l2 - |l1 - l2| + 1 doubles), the symbols of the spin-2 coupling
+ * matrices (Kogut et al. 2003; Brown, Castro & Taylor 2005): the row of
+ * clef_wigner_3j_row for (l3 l1 l2; 0 2 -2), equal by the even (cyclic)
+ * column permutation (DLMF 34.3.8).  All zero when l1 < 2 or l2 < 2.
+ * l3min/l3max may be NULL.  Errors: CLEF_EINVAL (negative l, NULL out). */
+int clef_wigner_3j22_row(int l1, int l2, double *out, int *l3min, int *l3max);
+
 #ifdef __cplusplus
 }
 #endif

@@ -119,8 +119,10 @@ void cli_verbose(const char *fmt, ...)
 int cmd_inspect(int argc, char **argv);
 int cmd_convert(int argc, char **argv);
 int cmd_simulate(int argc, char **argv);
+int cmd_simulate_pol(int argc, char **argv); /* clef simulate --polarization */
 int cmd_peak(int argc, char **argv);
 int cmd_spectrum(int argc, char **argv);
+int cmd_spectrum_pol(int argc, char **argv); /* clef spectrum --polarization */
 int cmd_model(int argc, char **argv);
 int cmd_geometry(int argc, char **argv);
 int cmd_mask(int argc, char **argv);

@@ -32,7 +32,9 @@ static void help(FILE *f)
             "asked, and write it as a\n"
             "HEALPix map (RING, full sky).  The same seed gives the same map whatever the\n"
             "number of threads.  Random numbers, beam, pixel window and noise model are\n"
-            "described in docs/simulation.md.\n\n"
+            "described in docs/simulation.md.\n"
+            "With --polarization: T, Q, U from TT, EE, BB, TE (clef simulate --polarization\n"
+            "--help).\n\n"
             "Spectrum (one of):\n"
             "  --cl FILE            C_l or D_l text file in uK^2 (docs/formats-spectrum.md)\n"
             "  --model              the analytic model (docs/theory.md); its parameters\n"
@@ -297,6 +299,10 @@ static int load_spectrum(const sim_args *a, const clef_cosmo_params *p, double *
 
 int cmd_simulate(int argc, char **argv)
 {
+    /* T, Q, U skies: cmd_simulate_pol.c. */
+    for (int i = 1; i < argc && strcmp(argv[i], "--"); i++)
+        if (!strcmp(argv[i], "--polarization"))
+            return cmd_simulate_pol(argc, argv);
     sim_args a = {0};
     a.seed = 1;
     a.splits = 1;

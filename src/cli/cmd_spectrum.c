@@ -43,7 +43,9 @@ static void help(void)
         "  --unit U               unit of the map values (K, mK or uK, with or without _CMB),\n"
         "                         overriding the files' TUNIT (default: TUNIT; a unit clef\n"
         "                         does not know is refused, no TUNIT is taken as uK)\n"
-        "  --calibration F        multiply the map values by F to get uK (instead of --unit)\n\n"
+        "  --calibration F        multiply the map values by F to get uK (instead of --unit)\n"
+        "  --polarization         T, Q, U maps: the six spectra TT TE TB EE EB BB\n"
+        "                         (clef spectrum --polarization --help)\n\n"
         "Multipoles and bins:\n"
         "  --lmax L               highest multipole reported (default 2*nside, lowered where\n"
         "                         the beam x pixel window drops below 0.01 or a table ends,\n"
@@ -664,6 +666,10 @@ static int apply_units(const args *a, clef_map *map, const char *path)
 
 int cmd_spectrum(int argc, char **argv)
 {
+    /* T/Q/U maps: the six polarized spectra (cmd_spectrum_pol.c). */
+    for (int i = 1; i < argc && strcmp(argv[i], "--"); i++)
+        if (!strcmp(argv[i], "--polarization"))
+            return cmd_spectrum_pol(argc, argv);
     args a;
     int rc = parse_args(argc, argv, &a);
     if (rc)

@@ -1,0 +1,331 @@
+/* clef spectrum --polarization: the six spectra TT, TE, TB, EE, EB, BB of a
+ * T/Q/U map (or of two, as a pair) through clef_spectrum_pol_compute
+ * (docs/method.md, "Polarization").  Outputs: PREFIX.fits (one set of
+ * BANDPOWER/BANDCOV/BANDWIN HDUs per spectrum, EXTVER 1..6), PREFIX-XY.csv
+ * per spectrum, PREFIX.json (docs/json.md). */
+#define _POSIX_C_SOURCE 200809L
+#include <cjson/cJSON.h>
+#include <getopt.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "clef/bins.h"
+#include "clef/map.h"
+#include "clef/spectrum.h"
+#include "clef/table.h"
+#include "cli.h"
+
+static const char *CMD = "spectrum";
+
+static void help(void)
+{
+    printf(
+        "Usage: clef spectrum --polarization MAP [MAP2] --mask MASK [options]\n\n"
+        "Band powers TT, TE, TB, EE, EB, BB of a map with T, Q and U columns\n"
+        "(TEMPERATURE, Q_POLARISATION, U_POLARISATION), or the six cross-spectra of\n"
+        "two such maps (T1 x E2, ...), decoupled with the spin-2 coupling matrices\n"
+        "(E and B jointly), with Gaussian errors and window functions. TT is exactly\n"
+        "what clef spectrum gives without --polarization.\n\n"
+        "Inputs:\n"
+        "  --mask FILE            mask of the temperature map (weights in [0,1])\n"
+        "  --pol-mask FILE        mask of Q and U (default: --mask)\n"
+        "  --u-map FILE           U from this file (column U_POLARISATION or the first\n"
+        "                         value column) instead of MAP (one field only)\n"
+        "  --hdu H                table of the maps (default: the first)\n"
+        "  --polcconv COSMO|IAU   convention of Q/U, overriding the files' POLCCONV\n"
+        "                         (default: POLCCONV; missing = COSMO with a warning)\n"
+        "  --ordering RING|NESTED pixel order of files without ORDERING\n\n"
+        "Multipoles, bins, instrument, method: as clef spectrum\n"
+        "  --lmax L, --bin-width N, --beam-fwhm ARCMIN, --no-pixel-window,\n"
+        "  --iterations N (default %d), --no-cache\n\n"
+        "Output:\n"
+        "  -o, --output PREFIX    PREFIX.fits (six spectra, EXTVER 1..6 in the order\n"
+        "                         TT TE TB EE EB BB), PREFIX-TT.csv ... PREFIX-BB.csv,\n"
+        "                         PREFIX.json (default: the map's name + -bandpowers)\n"
+        "  --format LIST          comma-separated subset of fits,csv,json (default all)\n"
+        "  --json FILE            the JSON summary to FILE ('-': standard output)\n"
+        "  --threads N, --quiet, --verbose, --help\n\n"
+        "Exit codes: 0 ok, 2 usage, 3 invalid input (e.g. a missing Q or U column),\n"
+        "4 I/O, 5 bad file format (e.g. POLCCONV neither COSMO nor IAU), 6 numerical\n"
+        "failure (widen the bins), 8 out of memory.\n",
+        CLEF_SPECTRUM_ITERATIONS);
+}
+
+enum {
+    OPT_POL = 256, OPT_MASK, OPT_PMASK, OPT_UMAP, OPT_HDU, OPT_CONV, OPT_ORDERING, OPT_LMAX,
+    OPT_BINW, OPT_FWHM, OPT_NOPIX, OPT_ITER, OPT_NOCACHE, OPT_FORMAT, OPT_JSON, OPT_THREADS,
+    OPT_QUIET, OPT_VERBOSE, OPT_HELP
+};
+
+typedef struct pargs {
+    const char *map[2], *mask, *pmask, *umap, *hdu, *conv, *ordering, *output, *json, *threads;
+    long lmax, bin_width, iterations;
+    double fwhm;
+    int no_pix, no_cache, want_fits, want_csv, want_json;
+} pargs;
+
+static int parse(int argc, char **argv, pargs *a)
+{
+    static const struct option opts[] = {
+        {"polarization", no_argument, 0, OPT_POL}, {"mask", required_argument, 0, OPT_MASK},
+        {"pol-mask", required_argument, 0, OPT_PMASK}, {"u-map", required_argument, 0, OPT_UMAP},
+        {"hdu", required_argument, 0, OPT_HDU}, {"polcconv", required_argument, 0, OPT_CONV},
+        {"ordering", required_argument, 0, OPT_ORDERING},
+        {"lmax", required_argument, 0, OPT_LMAX}, {"bin-width", required_argument, 0, OPT_BINW},
+        {"beam-fwhm", required_argument, 0, OPT_FWHM},
+        {"no-pixel-window", no_argument, 0, OPT_NOPIX},
+        {"iterations", required_argument, 0, OPT_ITER}, {"no-cache", no_argument, 0, OPT_NOCACHE},
+        {"output", required_argument, 0, 'o'}, {"format", required_argument, 0, OPT_FORMAT},
+        {"json", required_argument, 0, OPT_JSON}, {"threads", required_argument, 0, OPT_THREADS},
+        {"quiet", no_argument, 0, OPT_QUIET}, {"verbose", no_argument, 0, OPT_VERBOSE},
+        {"help", no_argument, 0, OPT_HELP}, {0, 0, 0, 0}};
+    memset(a, 0, sizeof *a);
+    a->iterations = CLEF_SPECTRUM_ITERATIONS;
+    a->want_fits = a->want_csv = a->want_json = 1;
+    int c;
+    optind = 1;
+    opterr = 0;
+    while ((c = getopt_long(argc, argv, "o:", opts, NULL)) != -1) {
+        switch (c) {
+        case OPT_POL: break;
+        case OPT_MASK: a->mask = optarg; break;
+        case OPT_PMASK: a->pmask = optarg; break;
+        case OPT_UMAP: a->umap = optarg; break;
+        case OPT_HDU: a->hdu = optarg; break;
+        case OPT_CONV:
+            if (strcmp(optarg, "COSMO") && strcmp(optarg, "IAU"))
+                return cli_usage_error(CMD, "--polcconv: '%s' (expected COSMO or IAU)", optarg);
+            a->conv = optarg;
+            break;
+        case OPT_ORDERING:
+            if (cli_check_ordering(CMD, optarg))
+                return CLI_EXIT_USAGE;
+            a->ordering = optarg;
+            break;
+        case OPT_LMAX:
+            if (cli_parse_long(CMD, "--lmax", optarg, &a->lmax))
+                return CLI_EXIT_USAGE;
+            break;
+        case OPT_BINW:
+            if (cli_parse_long(CMD, "--bin-width", optarg, &a->bin_width) || a->bin_width < 1)
+                return cli_usage_error(CMD, "--bin-width: '%s' (a positive integer)", optarg);
+            break;
+        case OPT_FWHM:
+            if (cli_parse_double(CMD, "--beam-fwhm", optarg, &a->fwhm) || a->fwhm < 0)
+                return cli_usage_error(CMD, "--beam-fwhm: '%s' (arcmin, >= 0)", optarg);
+            break;
+        case OPT_NOPIX: a->no_pix = 1; break;
+        case OPT_ITER:
+            if (cli_parse_long(CMD, "--iterations", optarg, &a->iterations) || a->iterations < 0)
+                return cli_usage_error(CMD, "--iterations: '%s' (>= 0)", optarg);
+            break;
+        case OPT_NOCACHE: a->no_cache = 1; break;
+        case 'o': a->output = optarg; break;
+        case OPT_FORMAT: {
+            a->want_fits = a->want_csv = a->want_json = 0;
+            char buf[256];
+            snprintf(buf, sizeof buf, "%s", optarg);
+            for (char *t = strtok(buf, ","); t; t = strtok(NULL, ",")) {
+                if (!strcmp(t, "fits"))
+                    a->want_fits = 1;
+                else if (!strcmp(t, "csv"))
+                    a->want_csv = 1;
+                else if (!strcmp(t, "json"))
+                    a->want_json = 1;
+                else
+                    return cli_usage_error(CMD, "--format: unknown format '%s' (fits, csv, json)",
+                                           t);
+            }
+            break;
+        }
+        case OPT_JSON: a->json = optarg; a->want_json = 1; break;
+        case OPT_THREADS: a->threads = optarg; break;
+        case OPT_QUIET: cli_verbosity = 0; break;
+        case OPT_VERBOSE: cli_verbosity = 2; break;
+        case OPT_HELP: help(); return -1;
+        default:
+            return cli_usage_error(CMD, "unknown option or missing value: '%s'", argv[optind - 1]);
+        }
+    }
+    int n = 0;
+    for (; optind < argc; optind++) {
+        if (n == 2)
+            return cli_usage_error(CMD, "too many maps (one or two with --polarization)");
+        a->map[n++] = argv[optind];
+    }
+    if (!n)
+        return cli_usage_error(CMD, "no map given");
+    if (!a->mask)
+        return cli_usage_error(CMD, "--mask is required");
+    if (a->umap && a->map[1])
+        return cli_usage_error(CMD, "--u-map applies to a single map");
+    if (a->threads && cli_set_threads(CMD, a->threads))
+        return CLI_EXIT_USAGE;
+    return 0;
+}
+
+static cJSON *spectrum_json(const clef_bandpowers *bp)
+{
+    cJSON *o = cJSON_CreateObject();
+    cJSON *lo = cJSON_AddArrayToObject(o, "l_lo"), *hi = cJSON_AddArrayToObject(o, "l_hi");
+    cJSON *le = cJSON_AddArrayToObject(o, "l_eff"), *d = cJSON_AddArrayToObject(o, "d_l");
+    cJSON *e = cJSON_AddArrayToObject(o, "d_l_err");
+    for (int b = 0; b < bp->nbins; b++) {
+        cJSON_AddItemToArray(lo, cJSON_CreateNumber(bp->l_lo[b]));
+        cJSON_AddItemToArray(hi, cJSON_CreateNumber(bp->l_hi[b]));
+        cJSON_AddItemToArray(le, cJSON_CreateNumber(bp->l_eff[b]));
+        cJSON_AddItemToArray(d, cJSON_CreateNumber(bp->dl[b]));
+        cJSON_AddItemToArray(e, cJSON_CreateNumber(bp->dl_err[b]));
+    }
+    return o;
+}
+
+int cmd_spectrum_pol(int argc, char **argv)
+{
+    pargs a;
+    int rc = parse(argc, argv, &a);
+    if (rc)
+        return rc < 0 ? CLI_EXIT_OK : rc;
+    cli_setup_logging();
+    char prefix[3900], paths[8][4096];
+    if (a.output) {
+        snprintf(prefix, sizeof prefix, "%s", a.output);
+    } else {
+        const char *base = strrchr(a.map[0], '/');
+        base = base ? base + 1 : a.map[0];
+        snprintf(prefix, sizeof prefix, "%s", base);
+        char *dot = strstr(prefix, ".fits");
+        if (dot)
+            *dot = '\0';
+        strncat(prefix, "-bandpowers", sizeof prefix - strlen(prefix) - 1);
+    }
+    const char *outs[8] = {0};
+    if (a.want_fits) {
+        snprintf(paths[0], sizeof paths[0], "%s.fits", prefix);
+        outs[0] = paths[0];
+    }
+    if (a.want_csv)
+        for (int k = 0; k < CLEF_POL_NSPEC; k++) {
+            snprintf(paths[1 + k], sizeof paths[1 + k], "%s-%s.csv", prefix,
+                     clef_spectrum_pol_name(k));
+            outs[1 + k] = paths[1 + k];
+        }
+    if (a.want_json) {
+        snprintf(paths[7], sizeof paths[7], "%s", a.json ? a.json : "");
+        if (!a.json)
+            snprintf(paths[7], sizeof paths[7], "%s.json", prefix);
+        outs[7] = paths[7];
+    }
+    const char *inputs[5] = {a.map[0], a.map[1], a.mask, a.pmask, a.umap};
+    if ((rc = cli_check_outputs(inputs, 5, outs, 8)) != CLI_EXIT_OK)
+        return rc;
+    for (int i = 0; i < 5; i++)
+        if (inputs[i])
+            cli_watch_input(inputs[i]);
+
+    clef_map_pol f[2];
+    memset(f, 0, sizeof f);
+    clef_map *mask = NULL, *pmask = NULL;
+    clef_bins *bins = NULL;
+    clef_spectrum_pol_result res;
+    memset(&res, 0, sizeof res);
+    cJSON *json = NULL;
+    int status = CLEF_OK, missing_conv[2] = {0, 0}, iau[2] = {0, 0};
+    clef_map_pol_opts po = {.hdu = a.hdu, .ordering = a.ordering, .u_path = a.umap,
+                            .polcconv = a.conv, .want_t = 1};
+    for (int i = 0; i < 2 && a.map[i] && status == CLEF_OK; i++) {
+        status = clef_map_read_pol(&f[i], a.map[i], &po);
+        missing_conv[i] = f[i].polcconv_missing;
+        iau[i] = f[i].iau;
+    }
+    clef_map_read_opts mo = {.ordering = a.ordering};
+    if (status == CLEF_OK)
+        status = clef_map_read(&mask, a.mask, &mo);
+    if (status == CLEF_OK && a.pmask)
+        status = clef_map_read(&pmask, a.pmask, &mo);
+    clef_spectrum_opts so;
+    clef_spectrum_opts_default(&so);
+    so.lmax = (int)a.lmax;
+    so.bin_width = (int)a.bin_width;
+    so.beam_fwhm = a.fwhm;
+    so.pixel_window = !a.no_pix;
+    so.iterations = (int)a.iterations;
+    so.use_cache = !a.no_cache;
+    so.find_peak = 0;
+    so.names[0] = a.map[0];
+    so.names[1] = a.map[1];
+    so.names[2] = a.mask;
+    if (status == CLEF_OK)
+        status = clef_spectrum_pol_compute(&f[0], a.map[1] ? &f[1] : NULL, mask, pmask, &so, NULL,
+                                           0, &res);
+    if (status != CLEF_OK) {
+        rc = cli_fail(status);
+        goto done;
+    }
+    if ((rc = cli_check_inputs()) != CLI_EXIT_OK)
+        goto done;
+    if (a.want_fits) {
+        const clef_bandpowers *set[CLEF_POL_NSPEC];
+        for (int k = 0; k < CLEF_POL_NSPEC; k++)
+            set[k] = res.bp[k];
+        if ((status = clef_bandpowers_write_fits_set(set, CLEF_POL_NSPEC, paths[0])) != CLEF_OK) {
+            rc = cli_fail(status);
+            goto done;
+        }
+    }
+    if (a.want_csv)
+        for (int k = 0; k < CLEF_POL_NSPEC; k++)
+            if ((status = clef_bandpowers_write_csv(res.bp[k], paths[1 + k])) != CLEF_OK) {
+                rc = cli_fail(status);
+                goto done;
+            }
+    if (a.want_json) {
+        json = cJSON_CreateObject();
+        cJSON_AddStringToObject(json, "program", "clef spectrum --polarization");
+        cJSON_AddStringToObject(json, "version", CLEF_VERSION);
+        cJSON_AddStringToObject(json, "kind", res.cross ? "cross" : "auto");
+        cJSON *conv = cJSON_AddArrayToObject(json, "polcconv");
+        for (int i = 0; i < (a.map[1] ? 2 : 1); i++)
+            cJSON_AddItemToArray(conv, cJSON_CreateString(a.conv ? a.conv
+                                                          : missing_conv[i] ? "missing (COSMO)"
+                                                          : iau[i] ? "IAU (converted)"
+                                                                   : "COSMO"));
+        cJSON_AddNumberToObject(json, "nside", (double)res.tt.nside);
+        cJSON_AddNumberToObject(json, "lmax", res.lmax);
+        cJSON_AddNumberToObject(json, "lmax_ext", res.lmax_ext);
+        cJSON_AddNumberToObject(json, "rcond_ee_bb", res.rcond_eebb);
+        cJSON_AddNumberToObject(json, "rcond_eb_be", res.rcond_ebbe);
+        cJSON *sp = cJSON_AddObjectToObject(json, "spectra");
+        for (int k = 0; k < CLEF_POL_NSPEC; k++)
+            cJSON_AddItemToObject(sp, clef_spectrum_pol_name(k), spectrum_json(res.bp[k]));
+        cJSON *w = cJSON_AddArrayToObject(json, "warnings");
+        for (int i = 0; i < cli_nwarnings(); i++)
+            cJSON_AddItemToArray(w, cJSON_CreateString(cli_warning(i)));
+        if ((rc = cli_write_json(paths[7], json)) != CLI_EXIT_OK)
+            goto done;
+    }
+    if (cli_verbosity > 0) {
+        FILE *out = cli_text_stream();
+        fprintf(out, "%-4s", "bin");
+        for (int k = 0; k < CLEF_POL_NSPEC; k++)
+            fprintf(out, " %12s", clef_spectrum_pol_name(k));
+        fprintf(out, "   (D_b, uK^2)\n");
+        for (int b = 0; b < res.nbins; b++) {
+            fprintf(out, "%4d", res.bp[0]->l_lo[b]);
+            for (int k = 0; k < CLEF_POL_NSPEC; k++)
+                fprintf(out, " %12.5g", res.bp[k]->dl[b]);
+            fprintf(out, "\n");
+        }
+    }
+    rc = CLI_EXIT_OK;
+done:
+    cJSON_Delete(json);
+    clef_spectrum_pol_result_free(&res);
+    clef_map_pol_free(&f[0]);
+    clef_map_pol_free(&f[1]);
+    clef_map_free(mask);
+    clef_map_free(pmask);
+    clef_bins_destroy(bins);
+    return rc;
+}
