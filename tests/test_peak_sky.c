@@ -19,7 +19,8 @@
  * Omega_k = 0 and the invented input.  make check-long: CLEF_PEAK_SKIES
  * skies (default 100) of every setting, and a second mask (|b| < 30 deg,
  * C1 over 5 deg) and a second noise level (60 uK-arcmin) with the Omega_k
- * = 0 and the invented input. */
+ * = 0 and the invented input.  On the first sky of each setting every
+ * binning is also fitted on its mean band powers (noise_free). */
 #include "check.h"
 
 #include <complex.h>
@@ -99,12 +100,47 @@ typedef struct config {
     double cut_deg, apod_deg;
     int apod_kind;
     double depth; /* uK-arcmin */
-    int nsky;
+    int nsky, sky0; /* skies sky0 .. sky0 + nsky - 1 (seeds) */
     int nwidth;
     int width[NW_MAX];
     int ninput;
     int input[NIN_MAX]; /* indices into input_names; 0 (flat) must come first if present */
 } config;
+
+/* The estimator on the mean band powers, sum_l W_bl D_l over every l of the
+ * windows (multipoles outside the fitted bins included), with this
+ * binning's covariance (from the input spectrum, the same on every sky):
+ * its offset from the truth is the estimator's own bias, free of sampling
+ * noise.  Bar: within 0.2 quoted sigma (the issue's mean-pull bar). */
+static int noise_free(const clef_bandpowers *bp, const double *cl, double ltrue,
+                      const config *cf, const char *input, int width)
+{
+    const int wl = bp->win_lmax + 1;
+    double *mean = malloc((size_t)bp->nbins * sizeof *mean);
+    assert_non_null(mean);
+    for (int b = 0; b < bp->nbins; b++) {
+        mean[b] = 0;
+        for (int l = 2; l < wl && l <= LSIM; l++)
+            mean[b] += bp->win[(size_t)b * wl + (size_t)l] * cl[l] * l * (l + 1.0) / (2 * M_PI);
+    }
+    clef_bandpowers nf = *bp; /* shallow: only the band powers differ */
+    nf.dl = mean;
+    int bad = 0;
+    for (int w = 0; w < NWIN; w++) {
+        clef_peak_opts po;
+        clef_peak_opts_default(&po);
+        po.half_width = w ? 1.5 * clef_peak_half_width(&nf, &po) : 0;
+        clef_peak_result r;
+        assert_int_equal(clef_peak_find(&nf, &po, &r), CLEF_OK);
+        const double pull = r.found ? (r.l_peak - ltrue) / r.l_peak_err : NAN;
+        print_message("noise-free [%s] %s, bins %d, half width %.0f: l_peak - truth %+.3f, "
+                      "sigma %.2f, offset / sigma %+.3f\n", cf->name, input, width,
+                      clef_peak_half_width(&nf, &po), r.l_peak - ltrue, r.l_peak_err, pull);
+        bad += !(fabs(pull) <= 0.2);
+    }
+    free(mean);
+    return bad;
+}
 
 /* Run one configuration; returns the number of settings outside the bars. */
 static int run_config(const config *cf, double *const cl[NINPUT], const double ltrue[NINPUT],
@@ -130,6 +166,7 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
     clef_map *map = NULL;
     assert_int_equal(clef_map_alloc(&map, NSIDE), CLEF_OK);
 
+    int bad_nf = 0; /* noise-free offsets beyond 0.2 sigma */
     acc a[NIN_MAX][NW_MAX][NWIN];
     memset(a, 0, sizeof a);
     clef_geometry_plan *plan[NW_MAX][NWIN];
@@ -144,7 +181,7 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
     so.noise_lmax = LSIM;
     so.find_peak = 0;
     so.theory_lmax = LSIM;
-    for (int s = 0; s < cf->nsky; s++) {
+    for (int s = cf->sky0; s < cf->sky0 + cf->nsky; s++) {
         for (int ii = 0; ii < cf->ninput; ii++) {
             const int i = cf->input[ii];
             clef_sim_opts sim = {0};
@@ -158,7 +195,7 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                 clef_spectrum_result res;
                 so.bins = bins[k];
                 so.theory_cl = cl[i];
-                so.find_peak = s == 0 && i == 0;
+                so.find_peak = s == cf->sky0 && ii == 0;
                 assert_int_equal(clef_spectrum_compute(map, NULL, mask, NULL, &so, &res), CLEF_OK);
                 const clef_bandpowers *bp = res.bp;
                 if (so.find_peak) {
@@ -173,12 +210,14 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                     if (rr.found)
                         check_abs(res.peak.l_peak, rr.l_peak, 0, "same fit, same table");
                 }
+                if (s == cf->sky0)
+                    bad_nf += noise_free(bp, cl[i], ltrue[i], cf, input_names[i], cf->width[k]);
                 for (int w = 0; w < NWIN; w++) {
                     clef_peak_opts po;
                     clef_peak_opts_default(&po);
                     po.half_width = w ? 1.5 * clef_peak_half_width(bp, &po) : 0;
                     hw[k][w] = clef_peak_half_width(bp, &po);
-                    if (s == 0 && i == 0) {
+                    if (s == cf->sky0 && ii == 0) {
                         /* The curvature step for this binning and window:
                          * the forward model needs the windows, covariance
                          * and settings only (the same on every sky: the
@@ -205,7 +244,7 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                     t->sum_err += r.l_peak_err;
                     t->sum_l += r.l_peak;
                     t->sum_l2 += r.l_peak * r.l_peak;
-                    if (i == 0 && plan[k][w]) {
+                    if (i == 0 && plan[k][w]) { /* plans exist only for input 0 */
                         clef_geometry_result *g = NULL;
                         assert_int_equal(
                             clef_geometry_plan_execute(plan[k][w], r.l_peak, r.l_peak_err, &g),
@@ -227,7 +266,7 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
     const double pull_tol = strict ? 0.2 : fmax(0.2, 3 / sqrt(nsky));
     const double cov_tol = strict ? 0.07 : fmax(0.07, 3 * sqrt(0.6827 * 0.3173 / nsky));
     const double flat_min = strict ? 0.93 : fmin(0.93, 1 - 3 * sqrt(0.05 * 0.95 / nsky) - 0.05);
-    int bad = 0;
+    int bad = bad_nf;
     print_message("[%s] %d skies, w2 = %.3f, noise %g uK-arcmin; mean pull, 1-sigma coverage, "
                   "mean quoted sigma / scatter, flat rate (Omega_k = 0 input)\n", cf->name, nsky,
                   mom.w2, cf->depth);
@@ -244,9 +283,9 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                 const int ok = t->found >= 0.95 * t->n && fabs(mp) <= pull_tol &&
                                fabs(cover - 0.6827) <= cov_tol &&
                                (i || flat >= flat_min);
-                print_message("| %s | %s | %d | %.0f | %d/%d | %+.3f | %.1f%% | %.2f / %.2f | ",
-                              cf->name, input_names[i], cf->width[k], hw[k][w], t->found, t->n, mp,
-                              100 * cover, t->sum_err / nf, sd);
+                print_message("| %s | %s | %d | %.0f | %d/%d | %+.2f | %+.3f | %.1f%% | %.2f / %.2f | ",
+                              cf->name, input_names[i], cf->width[k], hw[k][w], t->found, t->n,
+                              ml - ltrue[i], mp, 100 * cover, t->sum_err / nf, sd);
                 if (i == 0)
                     print_message("%.1f%% |\n", 100 * flat);
                 else
@@ -294,12 +333,21 @@ static void run_ensemble(void **state)
         }
     }
     print_message("truth: %.3f %.3f %.3f %.3f\n", ltrue[0], ltrue[1], ltrue[2], ltrue[3]);
-    print_message("| setting | input | bins | half width | found | mean pull | 1-sigma coverage "
-                  "| quoted sigma / scatter | \"flat\" |\n");
+    print_message("| setting | input | bins | half width | found | mean l_peak - truth | mean pull "
+                  "| 1-sigma coverage | quoted sigma / scatter | \"flat\" |\n");
     clef_sht *sht_sim = NULL;
     assert_int_equal(clef_sht_create(&sht_sim, NSIDE, LSIM, NULL), CLEF_OK);
 
-    const config main_cut = {"cut 20, noise 30", 20, 8, CLEF_MASK_APOD_C2, DEPTH, nsky,
+    /* Development runs of check-long: CLEF_PEAK_SKY0 = first sky (seed
+     * offset, to add skies to an earlier run), CLEF_PEAK_SETTINGS = a
+     * subset of "main,cut30,noise60", CLEF_PEAK_INPUTS = a subset of the
+     * input indices 0-3 as digits ("0" for the Omega_k = 0 model only). */
+    const char *e0 = getenv("CLEF_PEAK_SKY0"), *eset = getenv("CLEF_PEAK_SETTINGS");
+    const char *ein = getenv("CLEF_PEAK_INPUTS");
+    const int sky0 = e0 && test_long() ? atoi(e0) : 0;
+    if (!test_long())
+        eset = ein = NULL;
+    const config main_cut = {"cut 20, noise 30", 20, 8, CLEF_MASK_APOD_C2, DEPTH, nsky, sky0,
                              NWIDTH, {10, 20, 30, 40, 50}, NINPUT, {0, 1, 2, 3}};
     int bad = 0;
     if (!test_long() || test_sanitize()) {
@@ -313,21 +361,29 @@ static void run_ensemble(void **state)
             c.nwidth = 1;
         bad += run_config(&c, cl, ltrue, sht_sim);
     } else {
-        bad += run_config(&main_cut, cl, ltrue, sht_sim);
-        config c = main_cut;
-        c.ninput = 2;
-        c.input[1] = 3;
-        c.name = "cut 30, noise 30";
-        c.cut_deg = 30;
-        c.apod_deg = 5;
-        c.apod_kind = CLEF_MASK_APOD_C1;
-        bad += run_config(&c, cl, ltrue, sht_sim);
-        c = main_cut;
-        c.ninput = 2;
-        c.input[1] = 3;
-        c.name = "cut 20, noise 60";
-        c.depth = 2 * DEPTH;
-        bad += run_config(&c, cl, ltrue, sht_sim);
+        config set[3] = {main_cut, main_cut, main_cut};
+        const char *const set_names[3] = {"main", "cut30", "noise60"};
+        set[1].ninput = set[2].ninput = 2;
+        set[1].input[1] = set[2].input[1] = 3;
+        set[1].name = "cut 30, noise 30";
+        set[1].cut_deg = 30;
+        set[1].apod_deg = 5;
+        set[1].apod_kind = CLEF_MASK_APOD_C1;
+        set[2].name = "cut 20, noise 60";
+        set[2].depth = 2 * DEPTH;
+        for (int c = 0; c < 3; c++) {
+            if (eset && !strstr(eset, set_names[c]))
+                continue;
+            if (ein) { /* keep the listed inputs, in their order */
+                int n = 0;
+                for (int ii = 0; ii < set[c].ninput; ii++)
+                    if (strchr(ein, '0' + set[c].input[ii]))
+                        set[c].input[n++] = set[c].input[ii];
+                set[c].ninput = n;
+            }
+            if (set[c].ninput > 0)
+                bad += run_config(&set[c], cl, ltrue, sht_sim);
+        }
     }
     for (int i = 0; i < NINPUT; i++)
         free(cl[i]);
