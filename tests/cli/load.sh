@@ -147,9 +147,10 @@ print("runs %d: peak RSS first fifth %d-%d kB, last fifth %d-%d kB; open files f
 assert max(rss[-q:]) <= max(rss[:q]) * 1.05 + 1024, "peak memory grew"
 # The open-file count is sampled every 2 ms, so a run may or may not be caught
 # while it holds one more file for a moment (seen: 6 in the first fifth, 6 or
-# 7 in the last): compare medians, which a real accumulation still moves.
-med = lambda v: sorted(v)[len(v) // 2]
-assert med(fds[-q:]) <= med(fds[:q]), "open files grew"
+# 7 in the last).
+# Medians still flip between 5 and 6 (seen in CI); one file of slack over the
+# first fifth's highest count, which anything accumulating over 50 runs exceeds.
+assert max(fds[-q:]) <= max(fds[:q]) + 1, "open files grew"
 PY
 
 [ "$failures" -eq 0 ] || { echo "$failures load check(s) failed"; exit 1; }
