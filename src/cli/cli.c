@@ -407,3 +407,21 @@ cJSON *cli_summary_begin(int argc, char **argv)
     cJSON_AddStringToObject(root, "finished_utc", when);
     return root;
 }
+
+int cli_parse_formats(const char *cmd, const char *s, int *fits, int *csv, int *json)
+{
+    *fits = *csv = *json = 0;
+    char buf[256];
+    snprintf(buf, sizeof buf, "%s", s);
+    for (char *tok = strtok(buf, ","); tok; tok = strtok(NULL, ",")) {
+        if (!strcmp(tok, "fits"))
+            *fits = 1;
+        else if (!strcmp(tok, "csv"))
+            *csv = 1;
+        else if (!strcmp(tok, "json"))
+            *json = 1;
+        else
+            return cli_usage_error(cmd, "--format: unknown format '%s' (fits, csv, json)", tok);
+    }
+    return 0;
+}

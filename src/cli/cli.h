@@ -47,6 +47,9 @@ int cli_fail(int status);
 /* The same, with each of the n temporary paths tmps[i] in the message
  * replaced by the output it stands for, targets[i]. */
 int cli_fail_as(int status, int n, const char *const *tmps, const char *const *targets);
+/* Parse a --format list "fits,csv,json" into the three flags (each set to 0
+ * first); an unknown name is a usage error. */
+int cli_parse_formats(const char *cmd, const char *s, int *fits, int *csv, int *json);
 /* Print "clef <cmd>: <message>" and return CLI_EXIT_USAGE. */
 int cli_usage_error(const char *cmd, const char *fmt, ...)
 #if defined(__GNUC__)

@@ -69,19 +69,9 @@ typedef struct args {
 
 static int parse_format(args *a, const char *s)
 {
-    a->want_fits = a->want_csv = a->want_json = 0;
-    char buf[256];
-    snprintf(buf, sizeof buf, "%s", s);
-    for (char *tok = strtok(buf, ","); tok; tok = strtok(NULL, ",")) {
-        if (!strcmp(tok, "fits"))
-            a->want_fits = 1;
-        else if (!strcmp(tok, "csv"))
-            a->want_csv = 1;
-        else if (!strcmp(tok, "json"))
-            a->want_json = 1;
-        else
-            return cli_usage_error(CMD, "--format: unknown format '%s' (fits, csv, json)", tok);
-    }
+    int rc = cli_parse_formats(CMD, s, &a->want_fits, &a->want_csv, &a->want_json);
+    if (rc)
+        return rc;
     if (!a->want_fits && !a->want_csv && !a->want_json)
         return cli_usage_error(CMD, "--format: no format given");
     return 0;

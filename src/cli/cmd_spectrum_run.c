@@ -73,20 +73,9 @@ static int parse(int argc, char **argv, rargs *a)
         case O_RUN: a->run = optarg; break;
         case 'o': a->output = optarg; break;
         case O_FORMAT: {
-            a->want_fits = a->want_csv = a->want_json = 0;
-            char buf[256];
-            snprintf(buf, sizeof buf, "%s", optarg);
-            for (char *t = strtok(buf, ","); t; t = strtok(NULL, ",")) {
-                if (!strcmp(t, "fits"))
-                    a->want_fits = 1;
-                else if (!strcmp(t, "csv"))
-                    a->want_csv = 1;
-                else if (!strcmp(t, "json"))
-                    a->want_json = 1;
-                else
-                    return cli_usage_error(CMD, "--format: unknown format '%s' (fits, csv, json)",
-                                           t);
-            }
+            int rc = cli_parse_formats(CMD, optarg, &a->want_fits, &a->want_csv, &a->want_json);
+            if (rc)
+                return rc;
             break;
         }
         case O_JSON: a->json = optarg; a->want_json = 1; break;
