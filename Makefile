@@ -85,7 +85,7 @@ LIBA  := $(BUILD)/libclef.a
 LIBSO := $(BUILD)/libclef.so
 CLEF  := $(BUILD)/clef
 
-.PHONY: python all deps check check-long tests bench demo sanitize clean install fuzz fuzz-ci fuzz-build
+.PHONY: python all deps check check-long tests bench demo diag-peak sanitize clean install fuzz fuzz-ci fuzz-build
 .DEFAULT_GOAL := all
 
 all: $(LIBA) $(LIBSO) $(CLEF)
@@ -156,6 +156,9 @@ tests: all $(TEST_BIN) $(REPLAY_BIN) python
 check: deps
 	@$(MAKE) --no-print-directory tests
 	@s=0; sh tests/run.sh $(BUILD) || s=1; sh tests/kernels.sh $(BUILD) || s=1; exit $$s
+
+# Diagnostic behind docs/peak.md's first-peak error figures (asserts nothing).
+diag-peak: $(BUILD)/tests/diag/peak_cov
 
 check-long: deps
 	@$(MAKE) --no-print-directory tests
