@@ -7,6 +7,8 @@
 #include "clef/ensemble.h"
 #include "clef/sht.h"
 #include "core_impl.h"
+#include "estimator_impl.h"
+#include "spectrum_impl.h"
 
 /* splitmix64 output function (Steele, Lea & Flood 2014, "Fast splittable
  * pseudorandom number generators", OOPSLA; constants of Vigna's reference
@@ -34,6 +36,10 @@ void clef_ensemble_result_free(clef_ensemble_result *r)
         return;
     clef_bandpowers_free(r->bp);
     r->bp = NULL;
+    free(r->pcl);
+    free(r->filter);
+    free(r->coupling);
+    r->pcl = r->filter = r->coupling = NULL;
 }
 
 static int spectrum_analyse(void *ctx, const clef_map *const *maps, int nmaps,
@@ -43,12 +49,36 @@ static int spectrum_analyse(void *ctx, const clef_map *const *maps, int nmaps,
     clef_spectrum_result res;
     memset(&res, 0, sizeof res);
     memset(out, 0, sizeof *out);
-    const int status = clef_spectrum_compute(maps[0], nmaps > 1 ? maps[1] : NULL, c->mask1,
-                                             c->mask2, c->opts, &res);
+    clef_estimator *e = NULL;
+    const int status = clef_spectrum_compute_keep(maps[0], nmaps > 1 ? maps[1] : NULL, c->mask1,
+                                                  c->mask2, c->opts, &res, &e);
     if (status != CLEF_OK) {
         clef_spectrum_result_free(&res);
         return status;
     }
+    /* The pair's pseudo-spectrum, filter and coupling (Hivon et al.'s
+     * transfer function needs them; the band powers do not carry them). */
+    const est_pair *pr = &e->pairs[0];
+    const est_masks *mk = &e->masks[pr->mp];
+    const int L = e->lmax_ext;
+    const size_t n1 = (size_t)L + 1;
+    out->pcl = malloc(sizeof *out->pcl * n1);
+    out->filter = malloc(sizeof *out->filter * n1);
+    if (c->keep_coupling)
+        out->coupling = malloc(sizeof *out->coupling * n1 * n1);
+    if (!out->pcl || !out->filter || (c->keep_coupling && !out->coupling)) {
+        clef_estimator_destroy(e);
+        clef_spectrum_result_free(&res);
+        clef_ensemble_result_free(out);
+        CLEF_FAIL(CLEF_ENOMEM, "no memory for a realisation's pseudo-spectrum (lmax %d)", L);
+    }
+    memcpy(out->pcl, pr->pcl, sizeof *out->pcl * n1);
+    memcpy(out->filter, pr->tl, sizeof *out->filter * n1);
+    if (out->coupling)
+        memcpy(out->coupling, clef_coupling_matrix(mk->m), sizeof *out->coupling * n1 * n1);
+    out->pcl_lmax = L;
+    out->wab = mk->wab;
+    clef_estimator_destroy(e);
     out->bp = res.bp; /* ownership moves to the ensemble result */
     res.bp = NULL;
     out->peak = res.peak;
@@ -64,6 +94,7 @@ void clef_ensemble_spectrum_analyser(clef_ensemble_spectrum_ctx *ctx, const clef
     ctx->mask1 = mask1;
     ctx->mask2 = mask2;
     ctx->opts = opts;
+    ctx->keep_coupling = 0;
     out->ctx = ctx;
     out->analyse = spectrum_analyse;
 }

@@ -236,3 +236,190 @@ void clef_ensemble_calibration(int n, const double *x, const double *err, const 
     *sd_pull = k > 1 ? sqrt(fmax(0.0, (s2 - s * s / k) / (k - 1))) : NAN;
     *coverage = k ? (double)in / k : NAN;
 }
+
+static double bin_weight(int weighting, int l)
+{
+    return weighting == CLEF_BINS_FLAT ? 1.0 : l * (l + 1.0);
+}
+
+void clef_ensemble_pcl_bins(int nbins, const int *l_lo, const int *l_hi, int weighting,
+                            const double *pcl, double *cb)
+{
+    for (int b = 0; b < nbins; b++) {
+        double s = 0.0;
+        for (int l = l_lo[b]; l <= l_hi[b]; l++)
+            s += bin_weight(weighting, l) * pcl[l];
+        cb[b] = s;
+    }
+}
+
+void clef_ensemble_hivon_fl(const clef_ensemble_hivon *h, const double *fb, int fl_lmax,
+                            double *fl)
+{
+    const int nb = h->nbins;
+    if (h->smooth) {
+        clef_ensemble_transfer_interp(nb, h->l_eff, fb, fl_lmax, fl);
+        return;
+    }
+    int b = 0;
+    for (int l = 0; l <= fl_lmax; l++) {
+        while (b + 1 < nb && l > h->l_hi[b])
+            b++;
+        fl[l] = fb[b];
+    }
+}
+
+int clef_ensemble_hivon_system(const clef_ensemble_hivon *h, double *a, double *den)
+{
+    const int nb = h->nbins, L = h->lmax;
+    if (nb < 1 || L < 2 || !h->coupling || !h->filter || !h->cl)
+        CLEF_FAIL(CLEF_EINVAL, "transfer function (Hivon et al.): no bins or no coupling");
+    for (int b = 0; b < nb; b++) {
+        if (h->l_lo[b] < 0 || h->l_hi[b] > L || h->l_hi[b] < h->l_lo[b])
+            CLEF_FAIL(CLEF_EINVAL, "transfer function: bin %d (l %d-%d) outside 0..%d", b,
+                      h->l_lo[b], h->l_hi[b], L);
+        if (b && !(h->l_eff[b] > h->l_eff[b - 1]))
+            CLEF_FAIL(CLEF_EINVAL, "transfer function: effective multipoles not increasing at "
+                      "bin %d", b);
+    }
+    const size_t n1 = (size_t)L + 1;
+    /* g_b(l') = sum_{l in b} M_ll' T_l' C_l': the bin sums of M's rows times
+     * the filtered input, one pass over M (cost (lmax+1)^2). */
+    double *g = calloc((size_t)nb * n1, sizeof *g), *e = calloc((size_t)nb, sizeof *e);
+    double *phi = malloc(sizeof *phi * n1);
+    int status = CLEF_OK;
+    if (!g || !e || !phi) {
+        status = clef_fail(CLEF_ENOMEM, "no memory for the transfer function (%d bins)", nb);
+        goto done;
+    }
+    for (int b = 0; b < nb; b++) {
+        double *gb = g + (size_t)b * n1;
+        for (int l = h->l_lo[b]; l <= h->l_hi[b]; l++) {
+            const double *row = h->coupling + (size_t)l * n1;
+            const double pw = bin_weight(h->weighting, l);
+            for (int k = 0; k <= L && k <= h->cl_lmax; k++)
+                gb[k] += pw * row[k];
+        }
+        for (int k = 0; k <= L; k++)
+            gb[k] *= k <= h->cl_lmax ? h->filter[k] * h->cl[k] : 0.0;
+        double s = 0.0;
+        for (int l = h->l_lo[b]; l <= h->l_hi[b] && l <= h->cl_lmax; l++)
+            s += bin_weight(h->weighting, l) * h->filter[l] * h->cl[l];
+        den[b] = h->wab * s;
+        if (!(den[b] > 0)) {
+            status = clef_fail(CLEF_EINVAL, "transfer function: the filtered input spectrum has "
+                               "no power in bin %d (l %d-%d)", b, h->l_lo[b], h->l_hi[b]);
+            goto done;
+        }
+    }
+    for (int c = 0; c < nb; c++) {
+        e[c] = 1.0;
+        clef_ensemble_hivon_fl(h, e, L, phi);
+        e[c] = 0.0;
+        for (int b = 0; b < nb; b++) {
+            const double *gb = g + (size_t)b * n1;
+            double s = 0.0;
+            for (int k = 0; k <= L; k++)
+                s += gb[k] * phi[k];
+            a[(size_t)b * nb + c] = s;
+        }
+    }
+done:
+    free(g);
+    free(e);
+    free(phi);
+    return status;
+}
+
+/* k steps of Hivon et al.'s iteration on bin sums c (the map is linear). */
+static void hivon_steps(int nb, const double *a, const double *den, const double *c, int k,
+                        double *f, double *tmp, double *change)
+{
+    for (int b = 0; b < nb; b++)
+        f[b] = c[b] / den[b];
+    double worst = 0.0;
+    for (int it = 0; it < k; it++) {
+        worst = 0.0;
+        for (int b = 0; b < nb; b++) {
+            double s = 0.0;
+            for (int q = 0; q < nb; q++)
+                s += a[(size_t)b * nb + q] * f[q];
+            tmp[b] = (c[b] - s) / den[b];
+        }
+        for (int b = 0; b < nb; b++) {
+            f[b] += tmp[b];
+            worst = fabs(tmp[b]) > worst ? fabs(tmp[b]) : worst;
+        }
+    }
+    if (change)
+        *change = worst;
+}
+
+int clef_ensemble_transfer_hivon(int nbins, const double *a, const double *den, const double *c,
+                                 const double *cov_c, int max_iter, double tol, double *fb,
+                                 double *fb_err, int *iters)
+{
+    const int nb = nbins;
+    if (nb < 1)
+        CLEF_FAIL(CLEF_EINVAL, "transfer function: no bins");
+    if (tol <= 0)
+        tol = 1e-10;
+    if (max_iter <= 0)
+        max_iter = 200;
+    double *tmp = malloc(sizeof *tmp * (size_t)nb), *lmap = malloc(sizeof *lmap * nb * nb);
+    double *unit = calloc((size_t)nb, sizeof *unit);
+    if (!tmp || !lmap || !unit) {
+        free(tmp);
+        free(lmap);
+        free(unit);
+        CLEF_FAIL(CLEF_ENOMEM, "no memory for the transfer function (%d bins)", nb);
+    }
+    /* Steps one at a time until the change is below tol. */
+    int k = 0;
+    double change = INFINITY;
+    for (int b = 0; b < nb; b++)
+        fb[b] = c[b] / den[b];
+    while (k < max_iter && !(change < tol)) {
+        change = 0.0;
+        for (int b = 0; b < nb; b++) {
+            double s = 0.0;
+            for (int q = 0; q < nb; q++)
+                s += a[(size_t)b * nb + q] * fb[q];
+            tmp[b] = (c[b] - s) / den[b];
+        }
+        for (int b = 0; b < nb; b++) {
+            fb[b] += tmp[b];
+            change = fabs(tmp[b]) > change ? fabs(tmp[b]) : change;
+        }
+        k++;
+    }
+    int status = CLEF_OK;
+    if (!(change < tol)) {
+        status = clef_fail(CLEF_ENUMERIC, "transfer function (Hivon et al. iteration): no "
+                           "convergence in %d steps (last change %.3g)", k, change);
+        goto done;
+    }
+    /* Columns of the linear map c -> F^(k): L e_q. */
+    for (int q = 0; q < nb; q++) {
+        unit[q] = 1.0;
+        hivon_steps(nb, a, den, unit, k, tmp, lmap + (size_t)q * nb, NULL);
+        unit[q] = 0.0;
+        for (int b = 0; b < nb; b++) /* lmap row q holds column q of L: store L^T */
+            lmap[(size_t)q * nb + b] = tmp[b];
+    }
+    for (int b = 0; b < nb; b++) {
+        double v = 0.0;
+        for (int i = 0; i < nb; i++)
+            for (int j = 0; j < nb; j++)
+                v += lmap[(size_t)i * nb + b] * cov_c[(size_t)i * nb + j] *
+                     lmap[(size_t)j * nb + b];
+        fb_err[b] = sqrt(fmax(v, 0.0));
+    }
+    if (iters)
+        *iters = k;
+done:
+    free(tmp);
+    free(lmap);
+    free(unit);
+    return status;
+}

@@ -191,6 +191,15 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
                           const clef_map *mask2, const clef_spectrum_opts *opts,
                           clef_spectrum_result *res)
 {
+    return clef_spectrum_compute_keep(map1, map2, mask1, mask2, opts, res, NULL);
+}
+
+int clef_spectrum_compute_keep(const clef_map *map1, const clef_map *map2, const clef_map *mask1,
+                               const clef_map *mask2, const clef_spectrum_opts *opts,
+                               clef_spectrum_result *res, clef_estimator **keep)
+{
+    if (keep)
+        *keep = NULL;
     clef_spectrum_opts o;
     if (opts)
         o = *opts;
@@ -240,6 +249,9 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
             e->fields[i].alm[0] = NULL;
         }
     }
-    clef_estimator_destroy(e);
+    if (keep && status == CLEF_OK)
+        *keep = e;
+    else
+        clef_estimator_destroy(e);
     return status;
 }

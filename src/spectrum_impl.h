@@ -8,6 +8,14 @@
 
 /* Effective weights: the mask where the map is valid, 0 elsewhere (new
  * array; spectrum.c). */
+/* clef_spectrum_compute, also handing over its estimator (keep non-NULL,
+ * on success: the caller destroys it) for what the result does not carry:
+ * the pseudo-spectrum, the coupling M and the filter of the pair (the
+ * ensemble's transfer function, ensemble.c). */
+struct clef_estimator;
+int clef_spectrum_compute_keep(const clef_map *map1, const clef_map *map2, const clef_map *mask1,
+                               const clef_map *mask2, const clef_spectrum_opts *opts,
+                               clef_spectrum_result *res, struct clef_estimator **keep);
 int clef_spectrum_make_weights(const clef_map *map, const clef_map *mask, double **w_out);
 
 /* Fill a table's D_b, C_b, l ranges and errors from band powers of `bins`

@@ -25,6 +25,7 @@
 
 #include <stdint.h>
 
+#include "clef/bins.h"
 #include "clef/clef.h"
 #include "clef/map.h"
 #include "clef/peak.h"
@@ -52,6 +53,16 @@ typedef struct clef_ensemble_result {
     clef_bandpowers *bp;  /* owned */
     clef_peak_result peak;
     int peak_done;
+    /* What the Monte Carlo transfer function of Hivon et al. needs (NULL /
+     * 0 when the analyser has no pseudo-spectra), l = 0..pcl_lmax, owned:
+     * the pseudo-spectrum C~_l before any noise subtraction; the filter the
+     * analysis assumed, T_l = F_l B_l^2 p_l^2 (sqrt(F_a F_b) B_a B_b p^2 for
+     * two maps); wab, the mean over the sphere of the product of the two
+     * maps' weights (w2 of the paper); and, when the analyser was asked for
+     * it, the coupling M (row-major, (pcl_lmax + 1)^2) the analysis used. */
+    double *pcl, *filter, *coupling;
+    int pcl_lmax;
+    double wab;
 } clef_ensemble_result;
 void clef_ensemble_result_free(clef_ensemble_result *r);
 
@@ -67,6 +78,7 @@ typedef struct clef_ensemble_analyser {
 typedef struct clef_ensemble_spectrum_ctx {
     const clef_map *mask1, *mask2;
     const clef_spectrum_opts *opts;
+    int keep_coupling; /* 1: results carry the coupling M (0 after the init below) */
 } clef_ensemble_spectrum_ctx;
 void clef_ensemble_spectrum_analyser(clef_ensemble_spectrum_ctx *ctx, const clef_map *mask1,
                                      const clef_map *mask2, const clef_spectrum_opts *opts,
@@ -130,6 +142,61 @@ typedef struct clef_ensemble_transfer {
 } clef_ensemble_transfer;
 int clef_ensemble_transfer_compute(const clef_ensemble_transfer *t, double *fb, double *fb_err,
                                    int fl_lmax, double *fl, int *iters);
+/* The Monte Carlo transfer function as Hivon et al. (2002, ApJ 567, 2,
+ * eq. 18) estimate it, from the mean pseudo-spectrum against the coupled
+ * input:
+ *     F^(0)_l   = <C~_l> / (w2 B_l^2 C_l),
+ *     F^(k+1)_l = F^(k)_l + [<C~_l> - sum_l' M_ll' F^(k)_l' B_l'^2 C_l'] / (w2 B_l^2 C_l),
+ * binned: each update is the ratio of the sums over a bin's multipoles with
+ * the band powers' binning weights P_bl (the paper estimates F_l in bins),
+ * so F enters only through its bin values F_b and <C~> only through its
+ * bin sums c_b = sum_l P_bl C~_l:
+ *     F^(k+1) = F^(k) + (c - A F^(k)) / den,
+ * A_bc = sum_l P_bl sum_l' M_ll' phi_c(l') T_l' C_l', den_b = w2 sum_l P_bl
+ * T_l C_l (T the analysis' filter B^2 p^2, phi_c the basis of F_l).
+ * Basis: smooth = 0, F_l constant in each bin (F_b from l_lo to l_hi;
+ * below the first bin the first value, above the last the last): an
+ * analysis with the same bins and this F_l then has <D_b> = (W D^in)_b
+ * exactly (its K = P M F B^2 Q and P<C~> = P M F B^2 C at the fixed
+ * point), whatever F_true does inside a bin; smooth = 1, the linear
+ * interpolation through l_eff of clef_ensemble_transfer_interp (smoother,
+ * but biased where F_true has a step inside a bin).
+ * clef_ensemble_hivon_system builds A and den once;
+ * clef_ensemble_transfer_hivon iterates on the ensemble's c_b
+ * (clef_ensemble_pcl_bins); clef_ensemble_hivon_fl expands F_b to F_l. */
+typedef struct clef_ensemble_hivon {
+    int nbins;
+    const int *l_lo, *l_hi;   /* bins (inclusive) */
+    const double *l_eff;      /* increasing */
+    int smooth;               /* basis: 0 constant per bin, 1 linear through l_eff */
+    int weighting;            /* binning weights: CLEF_BINS_DL (l(l+1)) or CLEF_BINS_FLAT */
+    const double *coupling;   /* M, (lmax + 1)^2 row-major */
+    const double *filter;     /* T_l, l = 0..lmax */
+    int lmax;
+    double wab;               /* w2 */
+    const double *cl;         /* input C_l, l = 0..cl_lmax (0 beyond) */
+    int cl_lmax;
+} clef_ensemble_hivon;
+/* a: nbins^2 row-major, den: nbins.  CLEF_EINVAL (bins outside 0..lmax,
+ * l_eff not increasing, no input power in a bin). */
+int clef_ensemble_hivon_system(const clef_ensemble_hivon *h, double *a, double *den);
+/* c_b = sum_{l = l_lo[b]}^{l_hi[b]} P_l pcl_l with P_l = l(l+1) for
+ * CLEF_BINS_DL weighting, 1 for CLEF_BINS_FLAT (the band powers' P_bl up to
+ * a constant per bin, which cancels in the iteration). */
+void clef_ensemble_pcl_bins(int nbins, const int *l_lo, const int *l_hi, int weighting,
+                            const double *pcl, double *cb);
+/* F_l, l = 0..fl_lmax, from the bin values in the basis of h->smooth. */
+void clef_ensemble_hivon_fl(const clef_ensemble_hivon *h, const double *fb, int fl_lmax,
+                            double *fl);
+/* Iterate from F^(0) = c / den until the largest change of F_b is below
+ * tol (1e-10 when tol <= 0), at most max_iter steps (200 when <= 0):
+ * CLEF_ENUMERIC if it does not converge.  The map c -> F after k steps is
+ * linear, so fb_err = sqrt(diag(L S L^T)) with L that map (applied to the
+ * unit vectors) and S cov_c, the covariance of the mean c (nbins^2).
+ * *iters (may be NULL): the steps taken. */
+int clef_ensemble_transfer_hivon(int nbins, const double *a, const double *den, const double *c,
+                                 const double *cov_c, int max_iter, double tol, double *fb,
+                                 double *fb_err, int *iters);
 /* F_l of the bins (the interpolation above), l = 0..fl_lmax. */
 void clef_ensemble_transfer_interp(int nbins, const double *l_eff, const double *fb, int fl_lmax,
                                    double *fl);

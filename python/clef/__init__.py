@@ -97,3 +97,119 @@ def zstar(**params: float) -> float:
 
     Parameters: keywords of clef.cosmo_params (default Planck 2018)."""
     return _clef.cosmo_eval("zstar", 0.0, **params)
+
+
+def _table_last_l(path) -> int:
+    """The last multipole of an l-indexed table, as `clef spectrum` finds it
+    (src/cli/cli_analysis.c cli_table_last_l): the spectrum reader's own end
+    when it reads the file, else the largest integer starting a line of
+    text ('#' comments), -1 if none."""
+    try:
+        return len(_clef.read_cl(path)) - 1
+    except (Error, ValueError):
+        pass
+    best = -1
+    try:
+        with open(path, "rb") as f:
+            for line in f:
+                tok = line.lstrip(b" \t")
+                if not tok or tok[:1] in (b"#", b"\n"):
+                    continue
+                digits = len(tok) - len(tok.lstrip(b"+-")) if tok[:1] in (b"+", b"-") else 0
+                j = digits
+                while j < len(tok) and tok[j:j + 1].isdigit():
+                    j += 1
+                if j > digits:
+                    val = int(tok[:j])
+                    if best < val < 1000000:
+                        best = val
+    except OSError:
+        return -1
+    return best
+
+
+def _run_error(run, f, line, key, exc):
+    """A library error while reading a run file's input, re-raised with the
+    run file, line, field and key in front (as `clef spectrum --run`)."""
+    msg = f"{run['path']} line {line}: field '{f['name']}' key '{key}': " + \
+        getattr(exc, "message", str(exc))
+    err = type(exc)(msg)
+    if isinstance(exc, Error):
+        err.status, err.message = exc.status, msg
+    return err
+
+
+def spectrum_run(path, *, cache: bool = True, cache_dir: _Optional[str] = None,
+                 peak: bool = True) -> dict:
+    """Every spectrum of a YAML run file (docs/run-files.md), as
+    `clef spectrum --run FILE` computes it: the run file's fields, pairs and
+    settings (read by clef.run_read), each field's maps, mask, beam table,
+    transfer function and noise spectrum read as the command reads them,
+    then clef.Estimator.  cache, cache_dir, peak: the command's --no-cache,
+    --cache-dir and --no-peak.  Returns the dict of Estimator.compute() with
+    run (the run_read dict) added.  Errors reading an input name the run
+    file's line, the field and the key."""
+    run = _clef.run_read(path)
+    kw = dict(lmax=run["lmax"], bin_width=run["bin_width"], keep_multipoles=run["keep_multipoles"],
+              joint=run["joint"] != 0, cache=cache, cache_dir=cache_dir, peak=peak,
+              pixel_window=run["pixel_window"] != 0)
+    if run["iterations"] >= 0:
+        kw["iterations"] = run["iterations"]
+    maps, masks, nside = [], [], None
+    for f in run["fields"]:
+        fm = []
+        for p in f["maps"]:
+            try:
+                fm.append(_clef.read_map(p))
+            except Error as e:
+                raise _run_error(run, f, f["maps_line"], "maps", e) from None
+            ns = fm[-1][1]["nside"]
+            if nside is None:
+                nside = ns
+            elif ns != nside:
+                raise _run_error(run, f, f["maps_line"], "maps", InvalidArgumentError(
+                    f"map '{p}' has nside {ns}, the first field's maps nside {nside}: every "
+                    "field must be on one grid"))
+        try:
+            mask = _clef.read_map(f["mask"])
+        except Error as e:
+            raise _run_error(run, f, f["line"], "mask", e) from None
+        if mask[1]["nside"] != nside:
+            raise _run_error(run, f, f["line"], "mask", InvalidArgumentError(
+                f"mask '{f['mask']}' has nside {mask[1]['nside']}, the maps nside {nside}"))
+        maps.append(fm)
+        masks.append(mask)
+    lread = 3 * nside - 1
+    if run["covariance_model"]:
+        model = _clef.read_cl(run["covariance_model"], lmax=lread)
+        last = _table_last_l(run["covariance_model"])
+        kw["theory_cl"] = model[:(last if 0 <= last < lread else lread) + 1]
+    est = _clef.Estimator(**kw)
+
+    def table(f, key, reader):
+        p = f[key]
+        if p is None:
+            return None
+        last = _table_last_l(p)
+        try:
+            return reader(p, last if 2 <= last < lread else lread)
+        except Error as e:
+            raise _run_error(run, f, f["line"], {"beam_table": "beam-table",
+                                                 "noise_spectrum": "noise-spectrum"}.get(key, key),
+                             e) from None
+
+    for f, fm, mask in zip(run["fields"], maps, masks):
+        pix = mask[0]
+        if _np.isnan(pix).any():  # a pixel missing from the mask file is unobserved
+            pix = _np.where(_np.isnan(pix), 0.0, pix)
+        est.add_field(f["name"], [m[0] for m in fm], pix, beam_fwhm=f["beam_fwhm"],
+                      beam=table(f, "beam_table", _clef.read_beam),
+                      transfer=table(f, "transfer", _clef.read_beam),
+                      noise_cl=table(f, "noise_spectrum", lambda p, l: _clef.read_cl(p, lmax=l)),
+                      unit=[m[1]["unit"] for m in fm], coordsys=[m[1]["coordsys"] for m in fm],
+                      mask_coordsys=mask[1]["coordsys"])
+    for a, b in run["pairs"] or ():
+        est.add_pair(a, b)
+    out = est.compute()
+    out["run"] = run
+    return out

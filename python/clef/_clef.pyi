@@ -85,6 +85,27 @@ def spectrum(map1: npt.ArrayLike, mask1: npt.ArrayLike, map2: Optional[npt.Array
              peak_half_width: float = ..., peak_curv_sigma: Optional[float] = ...,
              allow_coord_mismatch: bool = ...) -> dict: ...
 
+# many fields and run files (estimator.h, field.h, run.h)
+class Estimator:
+    nfields: int
+    computed: bool
+    field_names: Tuple[str, ...]
+    def __init__(self, *, lmax: int = ..., bin_width: int = ...,
+                 bins: Union[_Path, npt.ArrayLike, None] = ..., pixel_window: bool = ...,
+                 theory_cl: Optional[npt.ArrayLike] = ..., iterations: int = ...,
+                 keep_multipoles: bool = ..., joint: bool = ..., cache: bool = ...,
+                 cache_dir: Optional[str] = ..., peak: bool = ..., peak_l_min: float = ...,
+                 peak_l_max: float = ..., peak_half_width: float = ...,
+                 peak_curv_sigma: Optional[float] = ..., allow_coord_mismatch: bool = ...) -> None: ...
+    def add_field(self, name: str, maps: Union[npt.ArrayLike, Sequence[npt.ArrayLike]],
+                  mask: npt.ArrayLike, *, beam_fwhm: float = ...,
+                  beam: Optional[npt.ArrayLike] = ..., transfer: Optional[npt.ArrayLike] = ...,
+                  noise_cl: Optional[npt.ArrayLike] = ..., unit: Union[str, Sequence[str]] = ...,
+                  coordsys: Union[str, Sequence[str]] = ..., mask_coordsys: str = ...) -> None: ...
+    def add_pair(self, a: str, b: str, /) -> None: ...
+    def compute(self) -> dict: ...
+def run_read(path: _Path, /) -> dict: ...
+
 # tables, peak, geometry (table.h, peak.h, geometry.h)
 def read_bandpowers(path: _Path, *, cov: Optional[_Path] = ...,
                     windows: Optional[_Path] = ...) -> dict: ...

@@ -101,9 +101,71 @@ void pyclef_log_refresh(void)
 
 /* The library's log hook: may run on any thread with or without the GIL
  * (wrappers release it around library calls), so it takes it. */
+/* Warnings of the library call in progress on this thread (library
+ * warnings come from the calling thread, clef.h), kept for the result's
+ * summary without needing the GIL. */
+static _Thread_local pyclef_warnings *warn_capture;
+
+void pyclef_warnings_begin(pyclef_warnings *w)
+{
+    memset(w, 0, sizeof *w);
+    warn_capture = w;
+}
+
+void pyclef_warnings_end(pyclef_warnings *w)
+{
+    if (warn_capture == w)
+        warn_capture = NULL;
+}
+
+PyObject *pyclef_warnings_list(pyclef_warnings *w)
+{
+    pyclef_warnings_end(w);
+    PyObject *l = PyList_New(0);
+    for (int i = 0; l && i < w->n; i++) {
+        PyObject *s = PyUnicode_DecodeUTF8(w->msg[i], (Py_ssize_t)strlen(w->msg[i]), "replace");
+        if (!s || PyList_Append(l, s) < 0)
+            Py_CLEAR(l);
+        Py_XDECREF(s);
+    }
+    pyclef_warnings_free(w);
+    return l;
+}
+
+void pyclef_warnings_free(pyclef_warnings *w)
+{
+    pyclef_warnings_end(w);
+    for (int i = 0; i < w->n; i++)
+        free(w->msg[i]);
+    free(w->msg);
+    memset(w, 0, sizeof *w);
+}
+
+static void capture(int level, const char *msg)
+{
+    pyclef_warnings *w = warn_capture;
+    if (level != CLEF_LOG_WARN || !w)
+        return;
+    if (w->n == w->cap) {
+        const int cap = w->cap ? 2 * w->cap : 8;
+        char **m = realloc(w->msg, (size_t)cap * sizeof *m);
+        if (!m)
+            return;
+        w->msg = m;
+        w->cap = cap;
+    }
+    const size_t len = strlen(msg) + 1;
+    char *c = malloc(len);
+    if (c) {
+        memcpy(c, msg, len);
+        w->msg[w->n++] = c;
+    }
+}
+
 static void log_hook(void *user, int level, const char *msg)
 {
     (void)user;
+    capture(level, msg);
     if (level == CLEF_LOG_ERROR || level > log_threshold || !logger || !Py_IsInitialized())
         return;
     PyGILState_STATE g = PyGILState_Ensure();
@@ -373,11 +435,11 @@ PyMODINIT_FUNC PyInit__clef(void)
         goto fail;
     PyMethodDef *tables[] = {pyclef_map_methods,      pyclef_sht_methods,  pyclef_mask_methods,
                              pyclef_spectrum_methods, pyclef_peak_methods, pyclef_sim_methods,
-                             pyclef_theory_methods,   pyclef_table_methods};
+                             pyclef_theory_methods,   pyclef_table_methods, pyclef_estimator_methods};
     for (size_t i = 0; i < sizeof tables / sizeof *tables; i++)
         if (add_methods(mod, tables[i]) < 0)
             goto fail;
-    if (pyclef_sht_register(mod) < 0)
+    if (pyclef_sht_register(mod) < 0 || pyclef_estimator_register(mod) < 0)
         goto fail;
     if (PyModule_AddStringConstant(mod, "__version__", CLEF_VERSION) < 0 ||
         PyModule_AddIntConstant(mod, "NSIDE_MAX", CLEF_NSIDE_MAX) < 0)

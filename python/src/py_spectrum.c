@@ -1,7 +1,8 @@
-/* clef.spectrum over today's estimator API, clef_spectrum_compute of
- * include/clef/spectrum.h: one or two maps and their masks -> band powers,
- * covariance, windows, the first peak and the run summary.  (A wrapper of
- * a many-fields estimator API would sit beside this file.) */
+/* clef.spectrum over clef_spectrum_compute of include/clef/spectrum.h: one
+ * or two maps and their masks -> band powers, covariance, windows, the
+ * first peak and the run summary; and the argument helpers the estimator
+ * of many fields (py_estimator.c) and the polarized spectra (py_pol.c)
+ * share with it. */
 #include "pyclef.h"
 
 #include <stdlib.h>
@@ -13,7 +14,7 @@
 
 /* An optional l-indexed table (B_l, F_l, N_l, C_l from l = 0): a finite
  * float64 1-d array; *lmax = its length - 1. */
-static int table(PyObject *o, const char *what, PyArrayObject **arr, const double **v, int *lmax)
+int pyclef_table(PyObject *o, const char *what, PyArrayObject **arr, const double **v, int *lmax)
 {
     *arr = NULL;
     if (!o || o == Py_None)
@@ -32,7 +33,7 @@ static int table(PyObject *o, const char *what, PyArrayObject **arr, const doubl
 }
 
 /* Bins: a file path, or an (n, 2) array of inclusive l ranges. */
-static int make_bins(PyObject *o, int lbins, clef_bins **out)
+int pyclef_make_bins(PyObject *o, int lbins, clef_bins **out)
 {
     int st;
     if (PyUnicode_Check(o) || PyObject_HasAttrString(o, "__fspath__")) {
@@ -79,7 +80,7 @@ static int make_bins(PyObject *o, int lbins, clef_bins **out)
 
 /* t_call: wall seconds inside clef_spectrum_compute, for measuring the
  * wrapper's own overhead (make bench). */
-static PyObject *summary(const clef_spectrum_result *r, double t_call)
+PyObject *pyclef_spectrum_summary(const clef_spectrum_result *r, double t_call)
 {
     PyObject *s = PyDict_New();
     if (!s)
@@ -118,6 +119,40 @@ static PyObject *summary(const clef_spectrum_result *r, double t_call)
     return s;
 }
 
+int pyclef_check_opts(int lmax, int bin_width, int iterations, double peak_half_width)
+{
+    if (lmax != 0 && lmax < 2)
+        PyErr_Format(PyExc_ValueError, "lmax must be at least 2 (0: automatic), got %d", lmax);
+    else if (bin_width < 0)
+        PyErr_Format(PyExc_ValueError, "bin_width must not be negative, got %d", bin_width);
+    else if (iterations < 0 || iterations > 20)
+        PyErr_Format(PyExc_ValueError, "iterations must be in 0..20, got %d", iterations);
+    else if (!(peak_half_width >= 0))
+        PyErr_Format(PyExc_ValueError, "peak_half_width must be positive (0: automatic), got %g",
+                     peak_half_width);
+    else
+        return 0;
+    return -1;
+}
+
+PyObject *pyclef_spectrum_result_dict(const clef_spectrum_result *r, double t_call,
+                                      PyObject *warnings)
+{
+    PyObject *out = warnings ? pyclef_bandpowers_dict(r->bp) : NULL;
+    PyObject *s = out ? pyclef_spectrum_summary(r, t_call) : NULL;
+    int ok = s && PyDict_SetItemString(s, "warnings", warnings) == 0;
+    if (!ok)
+        Py_XDECREF(s);
+    else
+        ok = pyclef_set(out, "summary", s) == 0 &&
+             (r->peak_done ? pyclef_set(out, "peak", pyclef_peak_dict(&r->peak))
+                           : PyDict_SetItemString(out, "peak", Py_None)) == 0;
+    if (!ok)
+        Py_CLEAR(out);
+    Py_XDECREF(warnings);
+    return out;
+}
+
 static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
 {
     (void)self;
@@ -147,21 +182,16 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
             &pcurv, &coord))
         return NULL;
     /* The CLI's own argument checks (src/cli/cmd_spectrum.c), as ValueError. */
-    if (lmax != 0 && lmax < 2)
-        return PyErr_Format(PyExc_ValueError, "lmax must be at least 2 (0: automatic), got %d", lmax);
-    if (bin_width < 0 || log_bins < 0)
-        return PyErr_Format(PyExc_ValueError, "bin_width and log_bins must not be negative");
+    if (pyclef_check_opts(lmax, bin_width, iterations, phw) < 0)
+        return NULL;
+    if (log_bins < 0)
+        return PyErr_Format(PyExc_ValueError, "log_bins must not be negative");
     if ((bins_o != Py_None) + (log_bins > 0) + (bin_width > 0) > 1)
         return PyErr_Format(PyExc_ValueError, "choose one of bins, log_bins and bin_width");
     if (fwhm < 0)
         return PyErr_Format(PyExc_ValueError, "beam_fwhm must not be negative, got %g", fwhm);
     if (beam_o != Py_None && fwhm > 0)
         return PyErr_Format(PyExc_ValueError, "choose one of beam_fwhm and beam");
-    if (iterations < 0 || iterations > 20)
-        return PyErr_Format(PyExc_ValueError, "iterations must be in 0..20, got %d", iterations);
-    if (!(phw >= 0))
-        return PyErr_Format(PyExc_ValueError, "peak_half_width must be positive (0: automatic), "
-                            "got %g", phw);
     if (mask_o[1] != Py_None && map_o[1] == Py_None)
         return PyErr_Format(PyExc_ValueError, "mask2 needs a second map (map2)");
 
@@ -197,10 +227,10 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
     so.allow_coord_mismatch = coord;
     for (int i = 0; i < 4; i++)
         so.names[i] = names[i];
-    if (table(beam_o, "beam", &tabs[0], &so.beam, &so.beam_lmax) < 0 ||
-        table(transfer_o, "transfer", &tabs[1], &so.transfer, &so.transfer_lmax) < 0 ||
-        table(noise_o, "noise_cl", &tabs[2], &so.noise_cl, &so.noise_lmax) < 0 ||
-        table(theory_o, "theory_cl", &tabs[3], &so.theory_cl, &so.theory_lmax) < 0)
+    if (pyclef_table(beam_o, "beam", &tabs[0], &so.beam, &so.beam_lmax) < 0 ||
+        pyclef_table(transfer_o, "transfer", &tabs[1], &so.transfer, &so.transfer_lmax) < 0 ||
+        pyclef_table(noise_o, "noise_cl", &tabs[2], &so.noise_cl, &so.noise_lmax) < 0 ||
+        pyclef_table(theory_o, "theory_cl", &tabs[3], &so.theory_cl, &so.theory_lmax) < 0)
         goto done;
     if (bins_o != Py_None || log_bins > 0) {
         /* As the CLI: explicit bins end at the given lmax or 3 nside - 1;
@@ -208,7 +238,7 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
         const int lbins = lmax ? lmax : (int)(3 * mv[0].m.nside - 1);
         int st;
         if (bins_o != Py_None) {
-            if (make_bins(bins_o, lbins, &bins) < 0)
+            if (pyclef_make_bins(bins_o, lbins, &bins) < 0)
                 goto done;
         } else {
             int ldef = lbins;
@@ -228,6 +258,8 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
     pyclef_log_refresh();
     int st;
     double t_call;
+    pyclef_warnings warn;
+    pyclef_warnings_begin(&warn);
     Py_BEGIN_ALLOW_THREADS
     t_call = clef_wtime();
     st = clef_spectrum_compute(&mv[0].m, map_o[1] != Py_None ? &mv[1].m : NULL, &mv[2].m,
@@ -235,14 +267,11 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
     t_call = clef_wtime() - t_call;
     Py_END_ALLOW_THREADS
     if (st != CLEF_OK) {
+        pyclef_warnings_free(&warn);
         pyclef_raise(st);
         goto done;
     }
-    out = pyclef_bandpowers_dict(res.bp);
-    if (out && (pyclef_set(out, "summary", summary(&res, t_call)) < 0 ||
-                (res.peak_done ? pyclef_set(out, "peak", pyclef_peak_dict(&res.peak))
-                               : PyDict_SetItemString(out, "peak", Py_None)) < 0))
-        Py_CLEAR(out);
+    out = pyclef_spectrum_result_dict(&res, t_call, pyclef_warnings_list(&warn));
 done:
     clef_spectrum_result_free(&res);
     clef_bins_destroy(bins);
@@ -280,5 +309,6 @@ PyMethodDef pyclef_spectrum_methods[] = {
      "(a dict as clef.peak_find returns, or None) and summary (nside, lmax, lmax_coupled,\n"
      "nbins, hidden_bins, bin_width, f_sky, w1, w2, w4, f_sky_eff, rcond, cache_hit,\n"
      "removed_multipoles_uK, timings_s (the library's stages, and library_call: wall seconds\n"
-     "inside the library call), ...).  Releases the GIL while computing."},
+     "inside the library call), warnings (the library's warnings, as the CLI's summary\n"
+     "lists them), ...).  Releases the GIL while computing."},
     {NULL, NULL, 0, NULL}};

@@ -33,6 +33,19 @@ PyObject *pyclef_raise(int status);
  * the log hook can drop messages without taking the GIL). */
 void pyclef_log_refresh(void);
 
+/* The library's warnings (CLEF_LOG_WARN) during a wrapper's call, for the
+ * "warnings" list of its summary.  begin() starts collecting on this
+ * thread (with or without the GIL), list() stops, returns a new list of
+ * str and frees; free() stops and frees without a list (error paths). */
+typedef struct pyclef_warnings {
+    char **msg;
+    int n, cap;
+} pyclef_warnings;
+void pyclef_warnings_begin(pyclef_warnings *w);
+void pyclef_warnings_end(pyclef_warnings *w);
+PyObject *pyclef_warnings_list(pyclef_warnings *w);
+void pyclef_warnings_free(pyclef_warnings *w);
+
 /* A C-contiguous float64 array of `ndim` dimensions (1 or 2) from `obj`,
  * refusing anything that needs a conversion: a wrong dtype is TypeError,
  * a wrong ndim, a non-contiguous array, or NaN/inf when `finite` is set,
@@ -88,6 +101,26 @@ PyObject *pyclef_peak_dict(const struct clef_peak_result *r);
  * (also when value is NULL). */
 int pyclef_set(PyObject *d, const char *key, PyObject *value);
 
+/* Shared by the spectrum wrappers (py_spectrum.c). */
+struct clef_bins;
+struct clef_spectrum_result;
+/* An optional l-indexed table (B_l, F_l, N_l, C_l from l = 0; None: none):
+ * a finite float64 1-d array of 3 values at least, *lmax = its length - 1;
+ * *arr keeps it alive (release with Py_XDECREF). */
+int pyclef_table(PyObject *o, const char *what, PyArrayObject **arr, const double **v, int *lmax);
+/* Bins from a bin-file path or an (n, 2) array of inclusive l ranges,
+ * ending at most at lbins. */
+int pyclef_make_bins(PyObject *o, int lbins, struct clef_bins **out);
+/* The CLI's checks of lmax, bin_width, iterations and the peak half width
+ * (ValueError, -1). */
+int pyclef_check_opts(int lmax, int bin_width, int iterations, double peak_half_width);
+/* The summary dict of one result (t_call: seconds in the library call). */
+PyObject *pyclef_spectrum_summary(const struct clef_spectrum_result *r, double t_call);
+/* Band powers, summary (with the list `warnings`, a reference stolen;
+ * NULL = an error already set) and peak of one result as a dict. */
+PyObject *pyclef_spectrum_result_dict(const struct clef_spectrum_result *r, double t_call,
+                                      PyObject *warnings);
+
 /* Registration of each wrapper file's functions and types. */
 extern PyMethodDef pyclef_map_methods[];
 extern PyMethodDef pyclef_sht_methods[];
@@ -98,5 +131,8 @@ extern PyMethodDef pyclef_sim_methods[];
 extern PyMethodDef pyclef_theory_methods[];
 extern PyMethodDef pyclef_table_methods[];
 int pyclef_sht_register(PyObject *module);
+int pyclef_estimator_register(PyObject *module);
+extern PyMethodDef pyclef_estimator_methods[];
+extern PyMethodDef pyclef_pol_methods[];
 
 #endif

@@ -40,6 +40,7 @@ typedef struct sims_run {
     int argc;
     char **argv;
     const char *desc;
+    clef_ensemble_spectrum_ctx *sctx; /* the analyser's (asked for M once, for the windows) */
 } sims_run;
 
 /* 1 when a valid record of realisation (kind, i) of this run exists. */
@@ -58,6 +59,7 @@ typedef struct sims_record {
     int32_t peak_done, peak_found;
     double l_peak, l_peak_err, d_peak, d_peak_err;
     double *dl, *cov; /* nbins, nbins^2 */
+    double *cb;       /* nbins: pseudo-spectrum bin sums c_b (clef_ensemble_pcl_bins) */
 } sims_record;
 int sims_record_read(const sims_run *r, int kind, long i, sims_record *rec);
 void sims_record_free(sims_record *rec);
@@ -67,6 +69,12 @@ typedef struct sims_windows {
     int32_t nbins, win_lmax;
     int32_t *l_lo, *l_hi;
     double *l_eff, *win;
+    /* Hivon et al.'s transfer system (clef_ensemble_hivon_system): A
+     * (nbins^2), den, and the bin sums of the coupled noise spectrum M N
+     * taken off an auto-spectrum by --noise-spectrum (zeros otherwise);
+     * weighting of the bin sums. */
+    int32_t weighting;
+    double *h_a, *h_den, *h_noise;
 } sims_windows;
 int sims_windows_read(const sims_run *r, sims_windows *w);
 void sims_windows_free(sims_windows *w);

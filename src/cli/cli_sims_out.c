@@ -26,7 +26,10 @@ typedef struct products {
     sims_windows w;
     double *d, *dn;                 /* n x nb signal, nn x nb noise-only band powers */
     double *mean, *sem, *mc_cov, *an_cov, *expect, *bias, *nmean, *nsem, *ratio, *corr_diff;
-    double *fb, *fb_err, *fl;
+    double *fb, *fb_err, *fl;      /* Hivon et al.'s iteration on the pseudo-spectra */
+    double *c, *cn;                 /* n x nb, nn x nb pseudo-spectrum bin sums */
+    double *fb_bp, *fb_bp_err;      /* cross-check: the solve on the decoupled band powers */
+    int hivon_iters;
     double max_ratio_dev, max_corr_diff;
     int noise_subtracted;           /* the noise-only mean was taken off before bias and F */
     double *pl, *ple, *pd, *pde;    /* first peak per realisation */
@@ -44,12 +47,49 @@ static void products_free(products *p)
     sims_windows_free(&p->w);
     double *arr[] = {p->d, p->dn, p->mean, p->sem, p->mc_cov, p->an_cov, p->expect, p->bias,
                      p->nmean, p->nsem, p->ratio, p->corr_diff, p->fb, p->fb_err, p->fl, p->pl,
-                     p->ple, p->pd, p->pde};
+                     p->ple, p->pd, p->pde, p->c, p->cn, p->fb_bp, p->fb_bp_err};
     for (size_t i = 0; i < sizeof arr / sizeof arr[0]; i++)
         free(arr[i]);
     free(p->pok);
     free(p->seeds);
     free(p->nseeds);
+}
+
+/* The Monte Carlo transfer function of Hivon et al. (2002, eq. 18) from
+ * the mean pseudo-spectrum bin sums: the noise-only mean taken off when the
+ * bias is (p->noise_subtracted), the coupled --noise-spectrum when the
+ * analysis takes it off an auto-spectrum; F_l constant per bin (the basis
+ * for which a later analysis with the same bins is exactly unbiased,
+ * include/clef/ensemble.h). */
+static int hivon_transfer(products *p, const sims_run *r)
+{
+    const int nb = p->nb, n = p->n, nn = p->nn;
+    const size_t b1 = (size_t)nb, b2 = b1 * b1;
+    double *cm = malloc(sizeof(double) * b1), *cc = malloc(sizeof(double) * b2);
+    double *nm = malloc(sizeof(double) * b1), *ncv = malloc(sizeof(double) * b2);
+    int status = cm && cc && nm && ncv ? CLEF_OK : CLEF_ENOMEM;
+    if (status == CLEF_OK)
+        status = clef_ensemble_moments(n, nb, p->c, cm, cc);
+    if (status == CLEF_OK && p->noise_subtracted)
+        status = clef_ensemble_moments(nn, nb, p->cn, nm, ncv);
+    if (status == CLEF_OK) {
+        for (size_t k = 0; k < b2; k++)
+            cc[k] = cc[k] / n + (p->noise_subtracted ? ncv[k] / nn : 0.0);
+        for (int b = 0; b < nb; b++)
+            cm[b] -= (p->noise_subtracted ? nm[b] : 0.0) + p->w.h_noise[b];
+        status = clef_ensemble_transfer_hivon(nb, p->w.h_a, p->w.h_den, cm, cc, 0, 0, p->fb,
+                                              p->fb_err, &p->hivon_iters);
+    }
+    if (status == CLEF_OK) {
+        clef_ensemble_hivon h = {.nbins = nb, .l_lo = p->w.l_lo, .l_hi = p->w.l_hi,
+                                 .l_eff = p->w.l_eff, .smooth = 0};
+        clef_ensemble_hivon_fl(&h, p->fb, r->lsim, p->fl);
+    }
+    free(cm);
+    free(cc);
+    free(nm);
+    free(ncv);
+    return status;
 }
 
 static int compute(sims_run *r, products *p)
@@ -63,8 +103,10 @@ static int compute(sims_run *r, products *p)
     const size_t b1 = (size_t)nb, b2 = b1 * b1;
     p->d = malloc(sizeof(double) * b1 * (size_t)n);
     p->dn = nn ? malloc(sizeof(double) * b1 * (size_t)nn) : NULL;
+    p->c = malloc(sizeof(double) * b1 * (size_t)n);
+    p->cn = nn ? malloc(sizeof(double) * b1 * (size_t)nn) : NULL;
     double **vec[] = {&p->mean, &p->sem, &p->expect, &p->bias, &p->nmean, &p->nsem, &p->ratio,
-                      &p->fb, &p->fb_err};
+                      &p->fb, &p->fb_err, &p->fb_bp, &p->fb_bp_err};
     for (size_t i = 0; i < sizeof vec / sizeof vec[0]; i++)
         *vec[i] = calloc(b1, sizeof(double));
     p->mc_cov = calloc(b2, sizeof(double));
@@ -78,7 +120,8 @@ static int compute(sims_run *r, products *p)
     p->pok = calloc((size_t)n, sizeof(int));
     p->seeds = calloc((size_t)n, sizeof(uint64_t));
     p->nseeds = calloc((size_t)(nn ? nn : 1), sizeof(uint64_t));
-    if (!p->d || (nn && !p->dn) || !p->mean || !p->sem || !p->expect || !p->bias || !p->nmean ||
+    if (!p->d || (nn && !p->dn) || !p->c || (nn && !p->cn) || !p->fb_bp || !p->fb_bp_err ||
+        !p->mean || !p->sem || !p->expect || !p->bias || !p->nmean ||
         !p->nsem || !p->ratio || !p->fb || !p->fb_err || !p->mc_cov || !p->an_cov ||
         !p->corr_diff || !p->fl || !p->pl || !p->ple || !p->pd || !p->pde || !p->pok ||
         !p->seeds || !p->nseeds)
@@ -95,6 +138,7 @@ static int compute(sims_run *r, products *p)
             return CLI_EXIT_FORMAT;
         }
         memcpy(p->d + (size_t)i * b1, rec.dl, sizeof(double) * b1);
+        memcpy(p->c + (size_t)i * b1, rec.cb, sizeof(double) * b1);
         /* mean of the analytic covariances, summed in index order */
         for (size_t k = 0; k < b2; k++)
             p->an_cov[k] += rec.cov[k] / n;
@@ -116,6 +160,7 @@ static int compute(sims_run *r, products *p)
             return CLI_EXIT_FORMAT;
         }
         memcpy(p->dn + (size_t)i * b1, rec.dl, sizeof(double) * b1);
+        memcpy(p->cn + (size_t)i * b1, rec.cb, sizeof(double) * b1);
         p->nseeds[i] = rec.seed;
         sims_record_free(&rec);
     }
@@ -160,7 +205,15 @@ static int compute(sims_run *r, products *p)
     clef_ensemble_transfer t = {.nbins = nb, .mean = target, .sem = p->sem,
                                 .l_eff = p->w.l_eff, .win = p->w.win, .win_lmax = p->wl,
                                 .cl = r->cl, .cl_lmax = r->lsim, .cov_mean = cov_mean};
-    status = clef_ensemble_transfer_compute(&t, p->fb, p->fb_err, r->lsim, p->fl, NULL);
+    /* Cross-check: the linear system on the decoupled band powers (F_l
+     * linear through l_eff), reported in the JSON only. */
+    double *fl_bp = malloc(sizeof(double) * ((size_t)r->lsim + 1));
+    status = fl_bp ? clef_ensemble_transfer_compute(&t, p->fb_bp, p->fb_bp_err, r->lsim, fl_bp,
+                                                    NULL)
+                   : CLEF_ENOMEM;
+    free(fl_bp);
+    if (status == CLEF_OK)
+        status = hivon_transfer(p, r);
     free(target);
     free(cov_mean);
     if (status)
@@ -320,9 +373,10 @@ static int write_transfer(const sims_run *r, const products *p, const char *path
     FILE *f = fopen(path, "w");
     if (!f)
         return CLI_EXIT_IO;
-    fprintf(f, "# Monte Carlo transfer function F_l (Hivon et al. 2002), clef sims %s\n"
-            "# %d realisations; bins' F_b interpolated linearly between their effective\n"
-            "# multipoles (constant outside); read by clef spectrum --transfer.\n"
+    fprintf(f, "# Monte Carlo transfer function F_l (Hivon et al. 2002, eq. 18: iterated on\n"
+            "# the mean pseudo-spectrum against the coupled input), clef sims %s\n"
+            "# %d realisations; F_b constant over each analysis bin (the first below, the\n"
+            "# last above); read by clef spectrum --transfer with the same bins.\n"
             "# run description sha256 %s\n# l F_l\n", CLEF_VERSION, p->n, r->hash);
     for (int l = 0; l <= r->lsim; l++)
         fprintf(f, "%d %.10g\n", l, p->fl[l]);
@@ -402,9 +456,18 @@ static cJSON *summary(const sims_run *r, const products *p, const char *const *o
     cJSON_AddNumberToObject(c, "ratio_sampling_error", sqrt(2.0 / (p->n - 1)));
     cJSON_AddStringToObject(c, "matrices", "PREFIX-products.fits HDUs MC_COV, AN_COV, CORRDIFF");
     cJSON *t = cJSON_AddObjectToObject(root, "transfer_function");
-    cJSON_AddStringToObject(t, "method", "Hivon et al. 2002 eq. 18, binned, interpolated in l");
+    cJSON_AddStringToObject(t, "method", "Hivon et al. 2002 eq. 18: iteration on the mean "
+                            "pseudo-spectrum against the coupled input, binned with the band "
+                            "powers' weights, F_l constant per bin");
+    cJSON_AddNumberToObject(t, "iterations", p->hivon_iters);
     cJSON_AddItemToObject(t, "f_b", cli_json_numbers(p->fb, p->nb));
     cJSON_AddItemToObject(t, "f_b_err", cli_json_numbers(p->fb_err, p->nb));
+    cJSON *x = cJSON_AddObjectToObject(t, "bandpower_solve");
+    cJSON_AddStringToObject(x, "method", "cross-check: <D_b> = sum_l W_bl F_l D_l solved for F "
+                            "linear in l through the bins' l_eff (a different basis: differs "
+                            "where F varies within a bin)");
+    cJSON_AddItemToObject(x, "f_b", cli_json_numbers(p->fb_bp, p->nb));
+    cJSON_AddItemToObject(x, "f_b_err", cli_json_numbers(p->fb_bp_err, p->nb));
     if (p->peak_truth_found) {
         cJSON *pk = cJSON_AddObjectToObject(root, "peak_calibration");
         cJSON_AddNumberToObject(pk, "l_truth", p->l_true);

@@ -12,8 +12,8 @@
 #include "cli.h"
 #include "cli_sims.h"
 
-static const char REC_MAGIC[8] = {'C', 'L', 'E', 'F', 'R', 'E', 'C', '1'};
-static const char WIN_MAGIC[8] = {'C', 'L', 'E', 'F', 'W', 'I', 'N', '1'};
+static const char REC_MAGIC[8] = {'C', 'L', 'E', 'F', 'R', 'E', 'C', '2'};
+static const char WIN_MAGIC[8] = {'C', 'L', 'E', 'F', 'W', 'I', 'N', '2'};
 
 static void record_path(const sims_run *r, int kind, long i, char *buf, size_t n)
 {
@@ -29,7 +29,8 @@ void sims_record_free(sims_record *rec)
 {
     free(rec->dl);
     free(rec->cov);
-    rec->dl = rec->cov = NULL;
+    free(rec->cb);
+    rec->dl = rec->cov = rec->cb = NULL;
 }
 
 #define RD(f, p, n) (fread((p), sizeof *(p), (size_t)(n), (f)) == (size_t)(n))
@@ -59,8 +60,9 @@ static int record_load(const sims_run *r, int kind, long i, sims_record *rec, ch
         const size_t nb = (size_t)rec->nbins;
         rec->dl = malloc(sizeof *rec->dl * nb);
         rec->cov = malloc(sizeof *rec->cov * nb * nb);
-        ok = rec->dl && rec->cov && RD(f, rec->dl, nb) && RD(f, rec->cov, nb * nb) &&
-             fgetc(f) == EOF;
+        rec->cb = malloc(sizeof *rec->cb * nb);
+        ok = rec->dl && rec->cov && rec->cb && RD(f, rec->dl, nb) && RD(f, rec->cov, nb * nb) &&
+             RD(f, rec->cb, nb) && fgetc(f) == EOF;
     }
     fclose(f);
     if (!ok) {
@@ -118,8 +120,48 @@ static int commit_file(clef_outfile *of, wbuf *w, const char *path)
     return status == CLEF_OK ? CLI_EXIT_OK : cli_fail(status);
 }
 
-static int write_windows(const sims_run *r, const clef_bandpowers *bp)
+static int bins_weighting(const sims_run *r)
 {
+    return r->so.bins ? clef_bins_weighting(r->so.bins) : CLEF_BINS_DL;
+}
+
+/* Hivon et al.'s transfer system of the run (A, den; include/clef/ensemble.h)
+ * from the first realisation's coupling and filter, and the bin sums of the
+ * coupled noise spectrum an auto-spectrum's --noise-spectrum takes off. */
+static int hivon_system(const sims_run *r, const clef_ensemble_result *res, double *a,
+                        double *den, double *noise)
+{
+    const clef_bandpowers *bp = res->bp;
+    const int nb = bp->nbins, L = res->pcl_lmax;
+    if (!res->coupling || !res->filter) {
+        fprintf(stderr, "clef: error: the analysis gave no coupling matrix for the transfer "
+                "function\n");
+        return CLI_EXIT_NUMERIC;
+    }
+    clef_ensemble_hivon h = {.nbins = nb, .l_lo = bp->l_lo, .l_hi = bp->l_hi,
+                             .l_eff = bp->l_eff, .smooth = 0, .weighting = bins_weighting(r),
+                             .coupling = res->coupling, .filter = res->filter, .lmax = L,
+                             .wab = res->wab, .cl = r->cl, .cl_lmax = r->lsim};
+    int status = clef_ensemble_hivon_system(&h, a, den);
+    if (status != CLEF_OK)
+        return cli_fail(status);
+    memset(noise, 0, sizeof *noise * (size_t)nb);
+    if (r->so.noise_cl && r->a->splits == 1) {
+        double *mn = calloc((size_t)L + 1, sizeof *mn);
+        if (!mn)
+            return CLI_EXIT_NOMEM;
+        for (int l = 0; l <= L; l++)
+            for (int k = 0; k <= L && k <= r->so.noise_lmax; k++)
+                mn[l] += res->coupling[(size_t)l * (L + 1) + k] * r->so.noise_cl[k];
+        clef_ensemble_pcl_bins(nb, bp->l_lo, bp->l_hi, h.weighting, mn, noise);
+        free(mn);
+    }
+    return CLI_EXIT_OK;
+}
+
+static int write_windows(const sims_run *r, const clef_ensemble_result *res)
+{
+    const clef_bandpowers *bp = res->bp;
     char path[4400];
     windows_path(r, path, sizeof path);
     if (access(path, F_OK) == 0)
@@ -127,6 +169,16 @@ static int write_windows(const sims_run *r, const clef_bandpowers *bp)
     if (!bp->win) {
         fprintf(stderr, "clef: error: the analysis gave no band-power windows\n");
         return CLI_EXIT_NUMERIC;
+    }
+    const size_t nbs = (size_t)bp->nbins;
+    double *ha = malloc(sizeof *ha * nbs * nbs), *hd = malloc(sizeof *hd * nbs);
+    double *hn = malloc(sizeof *hn * nbs);
+    int rc = ha && hd && hn ? hivon_system(r, res, ha, hd, hn) : CLI_EXIT_NOMEM;
+    if (rc) {
+        free(ha);
+        free(hd);
+        free(hn);
+        return rc;
     }
     clef_outfile of;
     int status = clef_outfile_begin(&of, path);
@@ -150,6 +202,14 @@ static int write_windows(const sims_run *r, const clef_bandpowers *bp)
     }
     put(&w, bp->l_eff, sizeof *bp->l_eff, (size_t)nb);
     put(&w, bp->win, sizeof *bp->win, (size_t)nb * ((size_t)wl + 1));
+    const int32_t wt = bins_weighting(r);
+    put(&w, &wt, sizeof wt, 1);
+    put(&w, ha, sizeof *ha, nbs * nbs);
+    put(&w, hd, sizeof *hd, nbs);
+    put(&w, hn, sizeof *hn, nbs);
+    free(ha);
+    free(hd);
+    free(hn);
     return commit_file(&of, &w, path);
 }
 
@@ -159,6 +219,9 @@ void sims_windows_free(sims_windows *w)
     free(w->l_hi);
     free(w->l_eff);
     free(w->win);
+    free(w->h_a);
+    free(w->h_den);
+    free(w->h_noise);
     memset(w, 0, sizeof *w);
 }
 
@@ -178,10 +241,15 @@ int sims_windows_read(const sims_run *r, sims_windows *w)
         w->l_hi = malloc(sizeof *w->l_hi * nb);
         w->l_eff = malloc(sizeof *w->l_eff * nb);
         w->win = malloc(sizeof *w->win * nw);
-        ok = w->l_lo && w->l_hi && w->l_eff && w->win;
+        w->h_a = malloc(sizeof *w->h_a * nb * nb);
+        w->h_den = malloc(sizeof *w->h_den * nb);
+        w->h_noise = malloc(sizeof *w->h_noise * nb);
+        ok = w->l_lo && w->l_hi && w->l_eff && w->win && w->h_a && w->h_den && w->h_noise;
         for (size_t b = 0; ok && b < nb; b++)
             ok = RD(f, &w->l_lo[b], 1) && RD(f, &w->l_hi[b], 1);
-        ok = ok && RD(f, w->l_eff, nb) && RD(f, w->win, nw) && fgetc(f) == EOF;
+        ok = ok && RD(f, w->l_eff, nb) && RD(f, w->win, nw) && RD(f, &w->weighting, 1) &&
+             RD(f, w->h_a, nb * nb) && RD(f, w->h_den, nb) && RD(f, w->h_noise, nb) &&
+             fgetc(f) == EOF;
     }
     if (f)
         fclose(f);
@@ -224,11 +292,23 @@ int sims_do_one(sims_run *r, clef_ensemble_plan *plan, int kind, long i, double 
     }
     *t_sim = clef_wtime() - t0;
     t0 = clef_wtime();
+    /* The coupling M is handed over only while the windows file (which
+     * keeps the transfer system made from it) is still to be written. */
+    {
+        char wpath[4400];
+        windows_path(r, wpath, sizeof wpath);
+        r->sctx->keep_coupling = access(wpath, F_OK) != 0;
+    }
     status = clef_ensemble_plan_analyse(plan, (const clef_map *const *)maps, nmaps, &res);
     *t_an = clef_wtime() - t0;
     if (status != CLEF_OK)
         goto done;
-    if ((rc = write_windows(r, res.bp)) != CLI_EXIT_OK)
+    if (!res.pcl) {
+        fprintf(stderr, "clef: error: the analysis gave no pseudo-spectrum\n");
+        rc = CLI_EXIT_NUMERIC;
+        goto done;
+    }
+    if ((rc = write_windows(r, &res)) != CLI_EXIT_OK)
         goto done;
 
     char path[4400];
@@ -269,6 +349,16 @@ int sims_do_one(sims_run *r, clef_ensemble_plan *plan, int kind, long i, double 
             put(&w, &zero, sizeof zero, 1);
         }
     }
+    double *cb = malloc(sizeof *cb * (size_t)nb);
+    if (!cb) {
+        fclose(w.f);
+        clef_outfile_abort(&of);
+        rc = CLI_EXIT_NOMEM;
+        goto done;
+    }
+    clef_ensemble_pcl_bins(nb, bp->l_lo, bp->l_hi, bins_weighting(r), res.pcl, cb);
+    put(&w, cb, sizeof *cb, (size_t)nb);
+    free(cb);
     rc = commit_file(&of, &w, path);
 done:
     clef_ensemble_result_free(&res);

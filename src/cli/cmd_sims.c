@@ -611,6 +611,7 @@ int cmd_sims(int argc, char **argv)
     clef_ensemble_spectrum_ctx sctx;
     clef_ensemble_analyser an;
     clef_ensemble_spectrum_analyser(&sctx, masks[0], masks[1], &r.so, &an);
+    r.sctx = &sctx;
     clef_ensemble_sim sim = {.nside = r.nside, .cl = r.cl};
     if (!a.maps) {
         sim.sim.beam_fwhm = a.an.beam_fwhm;

@@ -38,6 +38,11 @@ def rss_kib():
 
 
 def main(mask_path, n=1000):
+    import os
+    run_path = os.path.join(os.path.dirname(mask_path), "leak-run.yaml")
+    with open(run_path, "w") as f:
+        f.write(f"fields:\n  - name: a\n    maps: {os.path.basename(mask_path)}\n"
+                f"    mask: {os.path.basename(mask_path)}\n")
     small = clef.mask_full(8)
     cut = clef.mask_cut_latitude(small, 0.2)
     sky = clef.simulate(8, clef.theory_cl(lmax=23), seed=2)
@@ -48,7 +53,10 @@ def main(mask_path, n=1000):
                  lambda: clef.spectrum(sky, cut * 2),
                  lambda: clef.peak_find(table),
                  lambda: clef.Sht(3, 8),
-                 lambda: clef.theory_cl(h=-1.0))
+                 lambda: clef.theory_cl(h=-1.0),
+                 lambda: clef.Estimator(lmax=1),
+                 lambda: clef.Estimator().add_field("a", sky, cut * 2),
+                 lambda: clef.run_read("/nonexistent.yaml"))
 
     def cycle(i):
         p = clef.Sht(8, 16)
@@ -59,6 +67,13 @@ def main(mask_path, n=1000):
         clef.simulate(8, cl, seed=i, lmax=16)
         clef.mask_apodize(cut, "c1", 0.3)
         clef.spectrum(sky, cut, bin_width=4)
+        e = clef.Estimator(bin_width=4, theory_cl=cl, peak=False)
+        e.add_field("a", [sky, sky], cut, beam=cl[:20] * 0 + 1)
+        e.add_field("b", sky, small, noise_cl=cl)
+        e.add_pair("a", "b")
+        e.compute()
+        del e
+        clef.run_read(run_path)
         for bad in bad_calls:
             try:
                 bad()
