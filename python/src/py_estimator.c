@@ -39,18 +39,22 @@ typedef struct {
     PyObject *warnings;        /* of compute() */
 } EstimatorObject;
 
+/* Releases one field's maps, mask and tables (used on add failure and dealloc). */
+static void field_free(est_field *f)
+{
+    for (int s = 0; s < CLEF_FIELD_MAX_SPLITS; s++)
+        pyclef_map_release(&f->maps[s]);
+    pyclef_map_release(&f->mask);
+    for (int k = 0; k < 3; k++)
+        Py_XDECREF(f->tabs[k]);
+    free(f);
+}
+
 static void est_dealloc(EstimatorObject *self)
 {
     clef_estimator_destroy(self->e);
-    for (int i = 0; i < self->nf; i++) {
-        est_field *f = self->fields[i];
-        for (int s = 0; s < CLEF_FIELD_MAX_SPLITS; s++)
-            pyclef_map_release(&f->maps[s]);
-        pyclef_map_release(&f->mask);
-        for (int k = 0; k < 3; k++)
-            Py_XDECREF(f->tabs[k]);
-        free(f);
-    }
+    for (int i = 0; i < self->nf; i++)
+        field_free(self->fields[i]);
     clef_bins_destroy(self->bins);
     Py_XDECREF(self->bins_o);
     Py_XDECREF(self->theory);
@@ -242,12 +246,7 @@ static PyObject *est_add_field(EstimatorObject *self, PyObject *args, PyObject *
     Py_RETURN_NONE;
 fail:
     Py_DECREF(seq);
-    for (int s = 0; s < CLEF_FIELD_MAX_SPLITS; s++)
-        pyclef_map_release(&f->maps[s]);
-    pyclef_map_release(&f->mask);
-    for (int k = 0; k < 3; k++)
-        Py_XDECREF(f->tabs[k]);
-    free(f);
+    field_free(f);
     return NULL;
 }
 
