@@ -331,6 +331,25 @@ done:
     return status;
 }
 
+/* One step of the iteration of Hivon et al. 2002, eq. 18:
+ * F += (C - A F) / den. Returns the largest change in this step. */
+static double hivon_step(int nb, const double *a, const double *den, const double *c, double *f,
+                         double *tmp)
+{
+    double worst = 0.0;
+    for (int b = 0; b < nb; b++) {
+        double s = 0.0;
+        for (int q = 0; q < nb; q++)
+            s += a[(size_t)b * nb + q] * f[q];
+        tmp[b] = (c[b] - s) / den[b];
+    }
+    for (int b = 0; b < nb; b++) {
+        f[b] += tmp[b];
+        worst = fabs(tmp[b]) > worst ? fabs(tmp[b]) : worst;
+    }
+    return worst;
+}
+
 /* k steps of Hivon et al.'s iteration on bin sums c (the map is linear). */
 static void hivon_steps(int nb, const double *a, const double *den, const double *c, int k,
                         double *f, double *tmp, double *change)
@@ -339,17 +358,7 @@ static void hivon_steps(int nb, const double *a, const double *den, const double
         f[b] = c[b] / den[b];
     double worst = 0.0;
     for (int it = 0; it < k; it++) {
-        worst = 0.0;
-        for (int b = 0; b < nb; b++) {
-            double s = 0.0;
-            for (int q = 0; q < nb; q++)
-                s += a[(size_t)b * nb + q] * f[q];
-            tmp[b] = (c[b] - s) / den[b];
-        }
-        for (int b = 0; b < nb; b++) {
-            f[b] += tmp[b];
-            worst = fabs(tmp[b]) > worst ? fabs(tmp[b]) : worst;
-        }
+        worst = hivon_step(nb, a, den, c, f, tmp);
     }
     if (change)
         *change = worst;
@@ -380,17 +389,7 @@ int clef_ensemble_transfer_hivon(int nbins, const double *a, const double *den, 
     for (int b = 0; b < nb; b++)
         fb[b] = c[b] / den[b];
     while (k < max_iter && !(change < tol)) {
-        change = 0.0;
-        for (int b = 0; b < nb; b++) {
-            double s = 0.0;
-            for (int q = 0; q < nb; q++)
-                s += a[(size_t)b * nb + q] * fb[q];
-            tmp[b] = (c[b] - s) / den[b];
-        }
-        for (int b = 0; b < nb; b++) {
-            fb[b] += tmp[b];
-            change = fabs(tmp[b]) > change ? fabs(tmp[b]) : change;
-        }
+        change = hivon_step(nb, a, den, c, fb, tmp);
         k++;
     }
     int status = CLEF_OK;
