@@ -187,8 +187,11 @@ static int forward_offset(const clef_geometry_opts *o, forward_work *fw, const c
         }
         fw->pred[b] = s;
     }
+    /* Only the position enters the forward model, not its error draws. */
+    clef_peak_opts po = o->forward_peak;
+    po.draws = 0;
     clef_peak_result r;
-    const int st = clef_peak_find_quiet(&fw->bp, &o->forward_peak, &r);
+    const int st = clef_peak_find_quiet(&fw->bp, &po, &r);
     if (st == CLEF_EINVAL)
         return CLEF_OK; /* e.g. the model's bins carry no error in the window: no peak */
     CLEF_TRY(st);

@@ -32,6 +32,8 @@
 #include "clef/peak.h"
 
 #include <gsl/gsl_cdf.h>
+#include <gsl/gsl_randist.h>
+#include <gsl/gsl_rng.h>
 #include <lapacke.h>
 #include <math.h>
 #include <stdarg.h>
@@ -54,6 +56,10 @@ static _Thread_local int quiet;
 #define LM_LAMBDA_MAX 1e16
 #define NORMAL_RCOND_MIN 1e-13
 #define SCAN_POINTS 400    /* grid for the maximum of the fitted ln D before Newton */
+#define CLEF_PEAK_DRAWS_MAX 100000
+#define CLEF_PEAK_DRAWS_MIN 20 /* fewer draws with a peak: keep the first-order error */
+#define Q_LO 0.15865525393145705 /* Phi(-1): the central 68.27% range */
+#define Q_HI 0.84134474606854293
 
 void clef_peak_opts_default(clef_peak_opts *o)
 {
@@ -63,6 +69,7 @@ void clef_peak_opts_default(clef_peak_opts *o)
     o->half_width = 0;
     o->curv_nsigma = 2;
     o->shape_prior = 0;
+    o->draws = CLEF_PEAK_DRAWS;
 }
 
 static double shape_prior_of(const clef_peak_opts *o)
@@ -300,6 +307,7 @@ static void result_init(clef_peak_result *r)
 {
     memset(r, 0, sizeof *r);
     r->l_peak = r->l_peak_err = r->l_peak_err_stat = r->l_peak_err_shape = NAN;
+    r->l_peak_err_lin = NAN;
     r->d_peak = r->d_peak_err = r->corr = r->width = NAN;
     r->theta_deg = r->theta_deg_err = r->chi2 = r->p_value = r->curv_signif = NAN;
     r->half_width = r->shape_prior = NAN;
@@ -321,6 +329,9 @@ static int check_input(const clef_bandpowers *bp, const clef_peak_opts *o, int *
     if (!(o->shape_prior >= 0) || !isfinite(o->shape_prior))
         CLEF_FAIL(CLEF_EINVAL, "peak: shape prior %g must be positive (or 0: default)",
                   o->shape_prior);
+    if (o->draws < 0 || o->draws > CLEF_PEAK_DRAWS_MAX)
+        CLEF_FAIL(CLEF_EINVAL, "peak: %d error draws: give 0 (first-order errors only) to %d",
+                  o->draws, CLEF_PEAK_DRAWS_MAX);
     if (bp->win && bp->win_lmax < 0)
         CLEF_FAIL(CLEF_EINVAL, "peak: the table's windows have lmax %d", bp->win_lmax);
     *w0 = -1;
@@ -476,9 +487,71 @@ static double poly_max(const double *c, double xa, double xb)
     return bx;
 }
 
-/* Fit the bins within hw of lc and fill r (found or a reason). */
+/* The fit's first-order response, for the parametric draws: the fitted
+ * bins b0..b0+n-1, the model's prediction for them and the response a of
+ * l_peak to their band powers, d l_peak = sum_i a_i dD_i. */
+typedef struct lin_resp {
+    int b0, n;
+    double *pred, *a;
+} lin_resp;
+
+static void lin_resp_free(lin_resp *lr)
+{
+    free(lr->pred);
+    free(lr->a);
+    lr->pred = lr->a = NULL;
+    lr->n = 0;
+}
+
+/* Prediction and response of a found fit.  The maximum a posteriori terms
+ * solve J^T C^-1 (y - m(c)) = P c; to first order in the data, dc = S J^T
+ * C^-1 dy with S = (F + P)^-1, so d l_peak = hw g^T S J^T C^-1 dy: with
+ * the whitened Jacobian Jw = L^-1 J, a = L^-T (hw Jw S g).  Its variance
+ * under the covariance C is hw^2 g^T S F S g, the first-order error. */
+static int lin_resp_fill(const fit *f, const double *c, const double *sg, lin_resp *lr)
+{
+    const int n = f->n;
+    lin_resp_free(lr);
+    lr->b0 = f->b0;
+    lr->pred = malloc((size_t)n * sizeof *lr->pred);
+    lr->a = malloc((size_t)n * sizeof *lr->a);
+    double *r = malloc((size_t)n * sizeof *r), *jac = malloc((size_t)n * NP * sizeof *jac);
+    double *scratch = malloc((size_t)f->nl * sizeof *scratch), obj, chi2;
+    int status = CLEF_OK;
+    if (!lr->pred || !lr->a || !r || !jac || !scratch) {
+        status = clef_fail(CLEF_ENOMEM, "peak: out of memory for the error draws");
+        goto done;
+    }
+    lr->n = n;
+    CLEF_CHECK(evaluate(f, c, r, jac, &obj, &chi2, scratch));
+    for (int i = 0; i < n; i++) {
+        double lrv = 0, u = 0; /* (L r)_i: the unwhitened residual */
+        for (int j = 0; j <= i; j++)
+            lrv += f->chol[(size_t)i * n + j] * r[j];
+        lr->pred[i] = f->y[i] - lrv;
+        for (int k = 0; k < NP; k++)
+            u += jac[(size_t)i * NP + k] * sg[k];
+        lr->a[i] = f->hw * u;
+    }
+    const lapack_int info = LAPACKE_dtrtrs(LAPACK_ROW_MAJOR, 'L', 'T', 'N', n, 1, f->chol, n,
+                                           lr->a, 1);
+    if (info != 0)
+        status = clef_fail(CLEF_ENUMERIC, "peak: triangular solve failed (LAPACK dtrtrs info %d)",
+                           (int)info);
+fail:
+done:
+    free(r);
+    free(jac);
+    free(scratch);
+    if (status != CLEF_OK)
+        lin_resp_free(lr);
+    return status;
+}
+
+/* Fit the bins within hw of lc and fill r (found or a reason); lr (may be
+ * NULL) receives the first-order response of a found fit. */
 static int fit_at(const clef_bandpowers *bp, const clef_peak_opts *o, double lc, double hw,
-                  int w0, int w1, clef_peak_result *r)
+                  int w0, int w1, clef_peak_result *r, lin_resp *lr)
 {
     result_init(r);
     r->half_width = hw;
@@ -604,9 +677,12 @@ static int fit_at(const clef_bandpowers *bp, const clef_peak_opts *o, double lc,
     if (!(var_samp > 0))
         var_samp = 0;
     const double dp = exp(poly(c, x, 0));
+    if (lr)
+        CLEF_CHECK(lin_resp_fill(&f, c, sg, lr));
     r->found = 1;
     r->l_peak = lp;
-    r->l_peak_err_stat = hw * sqrt(var_samp);
+    r->l_peak_err_lin = hw * sqrt(var_samp);
+    r->l_peak_err_stat = r->l_peak_err_lin;
     r->l_peak_err_shape = hw * fabs(bias);
     r->l_peak_err = hypot(r->l_peak_err_stat, r->l_peak_err_shape);
     r->d_peak = dp;
@@ -623,6 +699,190 @@ fail:
     return status;
 }
 
+/* The whole procedure on one table: start at the highest bin of the
+ * window, then re-centre on the fitted peak until the set of fitted bins
+ * and the centre stop changing, so a single noisy highest bin does not
+ * decide which bins enter.  lr (may be NULL) receives the last fit's
+ * first-order response. */
+static int search(const clef_bandpowers *bp, const clef_peak_opts *o, double hw, int w0, int w1,
+                  clef_peak_result *r, lin_resp *lr)
+{
+    int top = w0;
+    for (int b = w0; b <= w1; b++)
+        if (bp->dl[b] > bp->dl[top])
+            top = b;
+    if (top == w0 || top == w1) {
+        result_init(r);
+        r->half_width = hw;
+        r->shape_prior = shape_prior_of(o);
+        r->windows = windows_kind(bp, w0, w1);
+        not_found(r, "the highest band power in the window [%g, %g] is at its %s edge (l_eff %g): "
+                  "D does not turn over inside the window", o->l_min, o->l_max,
+                  top == w0 ? "lower" : "upper", bp->l_eff[top]);
+        return CLEF_OK;
+    }
+    double lc = bp->l_eff[top];
+    int last0 = -1, last1 = -1;
+    for (int pass = 0; pass < MAX_PASSES; pass++) {
+        CLEF_TRY(fit_at(bp, o, lc, hw, w0, w1, r, lr));
+        if (!r->found)
+            break;
+        const int same = r->bin_first == last0 && r->bin_last == last1;
+        const double moved = fabs(r->l_peak - lc);
+        last0 = r->bin_first;
+        last1 = r->bin_last;
+        lc = r->l_peak;
+        if (same && moved < 1e-3 * hw)
+            break;
+    }
+    return CLEF_OK;
+}
+
+static int cmp_double(const void *a, const void *b)
+{
+    const double x = *(const double *)a, y = *(const double *)b;
+    return (x > y) - (x < y);
+}
+
+/* Quantile p of the sorted v[0..n-1], linear between order statistics
+ * (Hyndman & Fan 1996, Am. Stat. 50, 361, definition 7). */
+static double quantile(const double *v, int n, double p)
+{
+    const double h = p * (n - 1);
+    const int i = (int)h;
+    return i + 1 < n ? v[i] + (h - i) * (v[i + 1] - v[i]) : v[n - 1];
+}
+
+/* Y = beta X + R over the draws: beta the Theil-Sen slope, the median of
+ * the pairwise slopes (Sen 1968, JASA 63, 1379; robust to the few draws
+ * whose refit lands far away; beyond 2000 draws over the pairs of draws
+ * at most 1000 apart in the sequence, which the estimator allows: it is
+ * the median over any fixed set of pairs), and *sr half the central 68%
+ * range of the residuals R. */
+static int split_response(const double *xs, const double *ys, int n, double *beta, double *sr)
+{
+    const int reach = n - 1 < 1000 ? n - 1 : 1000;
+    const size_t np = (size_t)n * (size_t)reach;
+    double *sl = malloc((np > (size_t)n ? np : (size_t)n) * sizeof *sl);
+    if (!sl)
+        CLEF_FAIL(CLEF_ENOMEM, "peak: out of memory for %d error draws", n);
+    size_t m = 0;
+    for (int i = 0; i < n; i++)
+        for (int j = i + 1; j < n && j <= i + reach; j++)
+            if (xs[j] != xs[i])
+                sl[m++] = (ys[j] - ys[i]) / (xs[j] - xs[i]);
+    qsort(sl, m, sizeof *sl, cmp_double);
+    *beta = m ? quantile(sl, (int)m, 0.5) : 1;
+    for (int i = 0; i < n; i++)
+        sl[i] = ys[i] - *beta * xs[i];
+    qsort(sl, (size_t)n, sizeof *sl, cmp_double);
+    *sr = 0.5 * (quantile(sl, n, Q_HI) - quantile(sl, n, Q_LO));
+    free(sl);
+    return CLEF_OK;
+}
+
+/* Sampling error from parametric draws (docs/peak.md, "Errors").  The
+ * first-order error misses what the procedure does beyond its linear
+ * response: the re-centring, the bin set and the prior's length that the
+ * data choose, and the ratio-like dependence of the position on the terms
+ * (5-8% of sigma at the automatic window on 60%-sky ensembles).  So the
+ * band powers of the search window are drawn from N(mu, C) (mu: the fitted
+ * model over the fitted bins, the table's values elsewhere; C the table's
+ * covariance) and every draw goes through the whole procedure: a
+ * parametric bootstrap (Efron & Tibshirani 1993, An Introduction to the
+ * Bootstrap, section 6.5).  With a few hundred draws the bootstrap's own
+ * scatter would be 5-8% noisy; but each draw's first-order shift X = a . dD
+ * is exactly Gaussian with the known sigma_lin, and the refitted shift Y is
+ * nearly proportional to it, draw by draw.  So the quoted sigma is
+ * sigma_lin times the ratio of the two samples' central 68% ranges: a ratio
+ * estimator with X as the auxiliary variable (Cochran 1977, Sampling
+ * Techniques, 3rd ed., chapter 6), whose noise is that of the non-linear
+ * part only, and whose 68% ranges target the 1-sigma interval itself and
+ * are not moved by the few draws in which the refit lands far away (the
+ * percentile interval, Efron & Tibshirani 1993, chapter 13). */
+static int draw_error(const clef_bandpowers *bp, const clef_peak_opts *o, double hw, int w0,
+                      int w1, const lin_resp *lr, clef_peak_result *r)
+{
+    const int nw = w1 - w0 + 1, nd = o->draws, nb = bp->nbins;
+    double *chol = calloc((size_t)nw * (size_t)nw, sizeof *chol);
+    double *mu = malloc((size_t)nw * sizeof *mu), *z = malloc((size_t)nw * sizeof *z);
+    double *dl = malloc((size_t)nb * sizeof *dl);
+    double *ys = malloc((size_t)nd * sizeof *ys), *xs = malloc((size_t)nd * sizeof *xs);
+    gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+    int status = CLEF_OK;
+    if (!chol || !mu || !z || !dl || !ys || !xs || !rng) {
+        status = clef_fail(CLEF_ENOMEM, "peak: out of memory for %d error draws", nd);
+        goto fail;
+    }
+    for (int i = 0; i < nw; i++) {
+        const int b = w0 + i;
+        mu[i] = bp->dl[b];
+        if (b >= lr->b0 && b < lr->b0 + lr->n)
+            mu[i] = lr->pred[b - lr->b0];
+        for (int j = 0; j <= i; j++)
+            chol[(size_t)i * nw + j] = bp->cov ? bp->cov[(size_t)b * nb + (size_t)(w0 + j)]
+                                       : (i == j ? bp->dl_err[b] * bp->dl_err[b] : 0);
+    }
+    const lapack_int info = LAPACKE_dpotrf(LAPACK_ROW_MAJOR, 'L', nw, chol, nw);
+    if (info != 0) {
+        status = clef_fail(CLEF_EINVAL, "peak: the covariance of the search window's bins %d-%d "
+                           "is not positive definite (LAPACK dpotrf info %d)", w0, w1, (int)info);
+        goto fail;
+    }
+    gsl_rng_set(rng, CLEF_PEAK_DRAW_SEED);
+    memcpy(dl, bp->dl, (size_t)nb * sizeof *dl);
+    clef_bandpowers t = *bp;
+    t.dl = dl;
+    const int was_quiet = quiet;
+    quiet = 1;
+    int found = 0;
+    for (int k = 0; k < nd && status == CLEF_OK; k++) {
+        for (int i = 0; i < nw; i++)
+            z[i] = gsl_ran_gaussian_ziggurat(rng, 1.0);
+        double x = 0; /* the first-order shift of this draw */
+        for (int i = 0; i < nw; i++) {
+            double v = 0; /* dD = L z */
+            for (int j = 0; j <= i; j++)
+                v += chol[(size_t)i * nw + j] * z[j];
+            const int b = w0 + i;
+            dl[b] = mu[i] + v;
+            if (b >= lr->b0 && b < lr->b0 + lr->n)
+                x += lr->a[b - lr->b0] * v;
+        }
+        clef_peak_result rk;
+        status = search(&t, o, hw, w0, w1, &rk, NULL);
+        if (status == CLEF_OK && rk.found) {
+            ys[found] = rk.l_peak - r->l_peak;
+            xs[found] = x;
+            found++;
+        }
+    }
+    quiet = was_quiet;
+    if (status != CLEF_OK)
+        goto fail;
+    r->draws = nd;
+    r->draws_found = found;
+    if (found >= CLEF_PEAK_DRAWS_MIN) {
+        double beta = 1, sr = 0;
+        status = split_response(xs, ys, found, &beta, &sr);
+        if (status != CLEF_OK)
+            goto fail;
+        const double lin = r->l_peak_err_lin;
+        r->l_peak_err_stat = sqrt(beta * beta * lin * lin + sr * sr);
+        r->l_peak_err = hypot(r->l_peak_err_stat, r->l_peak_err_shape);
+        r->theta_deg_err = 180.0 * r->l_peak_err / (r->l_peak * r->l_peak);
+    }
+fail:
+    free(chol);
+    free(mu);
+    free(z);
+    free(dl);
+    free(ys);
+    free(xs);
+    gsl_rng_free(rng);
+    return status;
+}
+
 int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak_result *r)
 {
     if (!o || !r)
@@ -631,47 +891,24 @@ int clef_peak_find(const clef_bandpowers *bp, const clef_peak_opts *o, clef_peak
     int w0 = -1, w1 = -2;
     CLEF_TRY(check_input(bp, o, &w0, &w1));
     const double hw = clef_peak_half_width(bp, o);
-    r->half_width = hw;
-    r->shape_prior = shape_prior_of(o);
-    r->windows = windows_kind(bp, w0, w1);
-
-    int top = w0;
-    for (int b = w0; b <= w1; b++)
-        if (bp->dl[b] > bp->dl[top])
-            top = b;
-    if (top == w0 || top == w1) {
-        not_found(r, "the highest band power in the window [%g, %g] is at its %s edge (l_eff %g): "
-                  "D does not turn over inside the window", o->l_min, o->l_max,
-                  top == w0 ? "lower" : "upper", bp->l_eff[top]);
-        return CLEF_OK;
-    }
-    /* The fit is centred on the highest bin, then on the fitted peak until
-     * the set of fitted bins and the centre stop changing: a single noisy
-     * highest bin then does not decide which bins enter the fit. */
-    double lc = bp->l_eff[top];
-    int last0 = -1, last1 = -1;
-    clef_peak_result res;
-    for (int pass = 0; pass < MAX_PASSES; pass++) {
-        CLEF_TRY(fit_at(bp, o, lc, hw, w0, w1, &res));
-        if (!res.found)
-            break;
-        const int same = res.bin_first == last0 && res.bin_last == last1;
-        const double moved = fabs(res.l_peak - lc);
-        last0 = res.bin_first;
-        last1 = res.bin_last;
-        lc = res.l_peak;
-        if (same && moved < 1e-3 * hw)
-            break;
-    }
-    *r = res;
-    if (!r->found || quiet)
-        return CLEF_OK;
+    lin_resp lr = {0};
+    int status = search(bp, o, hw, w0, w1, r, o->draws > 0 ? &lr : NULL);
+    if (status == CLEF_OK && r->found && o->draws > 0)
+        status = draw_error(bp, o, hw, w0, w1, &lr, r);
+    lin_resp_free(&lr);
+    if (status != CLEF_OK || !r->found || quiet)
+        return status;
+    if (r->draws > 0 && r->draws_found < r->draws * 9 / 10)
+        clef_log(CLEF_LOG_WARN, "first peak: only %d of %d error draws found a peak; the peak is "
+                 "barely resolved and its error is uncertain (docs/peak.md)", r->draws_found,
+                 r->draws);
     if (r->curv_signif > -CLEF_PEAK_RELIABLE_SIGNIF)
         clef_log(CLEF_LOG_WARN, "first peak: the curvature is only %.1f sigma below zero; the quoted "
                  "errors may underestimate the scatter of l_peak (docs/peak.md)", -r->curv_signif);
-    clef_log(CLEF_LOG_INFO, "first peak: l = %.2f +- %.2f (statistical %.2f, shape %.2f), D = %.1f "
-             "+- %.1f uK^2 (%d bins, half width %g)", r->l_peak, r->l_peak_err,
-             r->l_peak_err_stat, r->l_peak_err_shape, r->d_peak, r->d_peak_err, r->nbins_used, hw);
+    clef_log(CLEF_LOG_INFO, "first peak: l = %.2f +- %.2f (statistical %.2f, first order %.2f, "
+             "shape %.2f), D = %.1f +- %.1f uK^2 (%d bins, half width %g)", r->l_peak,
+             r->l_peak_err, r->l_peak_err_stat, r->l_peak_err_lin, r->l_peak_err_shape, r->d_peak,
+             r->d_peak_err, r->nbins_used, hw);
     return CLEF_OK;
 }
 
@@ -710,6 +947,7 @@ int clef_peak_to_meta(const clef_peak_result *r, const clef_peak_opts *o, clef_b
         {"PK_LERR", r->l_peak_err, "1-sigma error of PK_L (statistical + shape)"},
         {"PK_LSTAT", r->l_peak_err_stat, "statistical part of PK_LERR"},
         {"PK_LSHAP", r->l_peak_err_shape, "shape part of PK_LERR"},
+        {"PK_LLIN", r->l_peak_err_lin, "first-order value of PK_LSTAT"},
         {"PK_D", r->d_peak, "[uK^2] D_l at the peak"},
         {"PK_DERR", r->d_peak_err, "[uK^2] 1-sigma error of PK_D"},
         {"PK_CORR", r->corr, "correlation of PK_L and PK_D"},
@@ -727,6 +965,9 @@ int clef_peak_to_meta(const clef_peak_result *r, const clef_peak_opts *o, clef_b
         for (size_t i = 0; i < sizeof items / sizeof items[0]; i++)
             if (isfinite(items[i].v))
                 CLEF_TRY(clef_bandpowers_meta_number(bp, items[i].key, items[i].v, items[i].comment));
+    if (r->found && r->draws > 0)
+        CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_DRAWF", r->draws_found,
+                                             "error draws that found a peak"));
     if (r->nbins_used > 0) {
         CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_NBIN", r->nbins_used, "bins in the peak fit"));
         CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_BIN1", r->bin_first, "first fitted bin (from 0)"));
@@ -744,6 +985,8 @@ int clef_peak_to_meta(const clef_peak_result *r, const clef_peak_opts *o, clef_b
                                              "curvature significance required"));
         CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_SHAPE", shape_prior_of(o),
                                              "prior rms of the peak shape terms"));
+        CLEF_TRY(clef_bandpowers_meta_number(bp, "PK_DRAWS", o->draws,
+                                             "error draws requested (0: first order)"));
     }
     return CLEF_OK;
 }
@@ -777,6 +1020,7 @@ int clef_peak_from_meta(const clef_bandpowers *bp, clef_peak_result *r, clef_pea
     r->l_peak_err = meta_double(bp, "PK_LERR");
     r->l_peak_err_stat = meta_double(bp, "PK_LSTAT");
     r->l_peak_err_shape = meta_double(bp, "PK_LSHAP");
+    r->l_peak_err_lin = meta_double(bp, "PK_LLIN");
     r->d_peak = meta_double(bp, "PK_D");
     r->d_peak_err = meta_double(bp, "PK_DERR");
     r->corr = meta_double(bp, "PK_CORR");
@@ -803,7 +1047,8 @@ int clef_peak_from_meta(const clef_bandpowers *bp, clef_peak_result *r, clef_pea
     clef_peak_opts_default(&d);
     const double lmin = meta_double(bp, "PK_LMIN"), lmax = meta_double(bp, "PK_LMAX");
     const double hw = meta_double(bp, "PK_HW"), cs = meta_double(bp, "PK_CSMIN");
-    const double sh = meta_double(bp, "PK_SHAPE");
+    const double sh = meta_double(bp, "PK_SHAPE"), ndr = meta_double(bp, "PK_DRAWS");
+    const double ndf = meta_double(bp, "PK_DRAWF");
     if (isfinite(lmin))
         d.l_min = lmin;
     if (isfinite(lmax))
@@ -814,6 +1059,12 @@ int clef_peak_from_meta(const clef_bandpowers *bp, clef_peak_result *r, clef_pea
         d.curv_nsigma = cs;
     if (isfinite(sh) && sh > 0)
         d.shape_prior = sh;
+    if (isfinite(ndr) && ndr >= 0 && ndr <= CLEF_PEAK_DRAWS_MAX)
+        d.draws = (int)ndr;
+    if (r->found && isfinite(ndf) && ndf >= 0) {
+        r->draws = d.draws;
+        r->draws_found = (int)ndf;
+    }
     r->half_width = clef_peak_half_width(bp, &d);
     r->shape_prior = shape_prior_of(&d);
     if (o)

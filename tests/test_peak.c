@@ -52,6 +52,7 @@ static void defaults_documented(void **state)
     check_abs(o.l_min, 100, 0, "issue 6 default window");
     check_abs(o.l_max, 400, 0, "issue 6 default window");
     check_abs(o.curv_nsigma, 2, 0, "peak.h default");
+    assert_int_equal(o.draws, CLEF_PEAK_DRAWS);
     clef_bandpowers *bp = make_bins(0);
     check_abs(clef_peak_half_width(bp, &o), 120, 0, "max(120, 3 x 20)");
     for (int b = 0; b < NB; b++) /* one 50-wide bin in the window widens the fit */
@@ -225,8 +226,13 @@ static mc_stats run_mc(const clef_bandpowers *truth, const clef_peak_opts *o, in
     return st;
 }
 
-/* Noise realisations (each fit takes about a millisecond). */
+/* Noise realisations (each fit takes about a millisecond), and the error
+ * draws of each (the default 200 would make these ensembles cost four
+ * times as much; with 50 the control-variate estimate of each sigma is
+ * within a few percent, which moves a coverage by well under its 2%
+ * sampling error). */
 #define NREAL (test_sanitize() ? 100 : 500)
+#define MC_DRAWS 50
 
 /* Calibration (issue 11): mean pull within +-0.2, 1-sigma coverage 68 +-
  * 7% with 500 realisations (sampling errors 0.045 and 2.1%); with fewer
@@ -252,6 +258,7 @@ static void mc_toy(void **state)
     set_cov(truth, 0.01, 60, 0.3);
     clef_peak_opts o;
     test_opts(&o);
+    o.draws = MC_DRAWS;
     for (int k = 0; k < 2; k++) {
         o.half_width = k ? 180 : 0;
         const mc_stats st = run_mc(truth, &o, NREAL, 4242 + k, G_LP);
@@ -291,6 +298,7 @@ static void mc_flat(void **state)
     set_cov(truth, 0.0, 100, 0.3);
     clef_peak_opts o;
     test_opts(&o);
+    o.draws = MC_DRAWS;
     const mc_stats s2 = run_mc(truth, &o, NREAL, 7, 250);
     o.curv_nsigma = 3;
     const mc_stats s3 = run_mc(truth, &o, NREAL, 7, 250);
@@ -380,8 +388,30 @@ static void scipy_reference(void **state)
     assert_int_equal(r.bin_first, (int)v[6]);
     assert_int_equal(r.bin_last, (int)v[7]);
     check_rel(r.l_peak, v[0], 1e-8, "scipy least_squares maximum");
-    check_rel(r.l_peak_err, v[1], 1e-5, "scipy: sampling error and plug-in shape bias");
-    check_rel(r.l_peak_err_stat, v[2], 1e-5, "scipy: sandwich S F S of the MAP terms");
+    /* scipy propagates to first order; clef's draws correct that (checked
+     * for calibration by the ensembles above and for convergence below). */
+    check_rel(hypot(r.l_peak_err_lin, r.l_peak_err_shape), v[1], 1e-5,
+              "scipy: sampling error and plug-in shape bias");
+    check_rel(r.l_peak_err_lin, v[2], 1e-5, "scipy: sandwich S F S of the MAP terms");
+    check_rel(r.l_peak_err, hypot(r.l_peak_err_stat, r.l_peak_err_shape), 1e-14, "err^2 = stat^2 + shape^2");
+    assert_int_equal(r.draws, CLEF_PEAK_DRAWS);
+    assert_true(r.draws_found >= CLEF_PEAK_DRAWS * 9 / 10);
+    /* The draws' estimate against many more draws (control-variate
+     * estimate: its noise is that of the non-linear part only; 200 against
+     * 5000 draws agree to a few percent, common practice for a bootstrap
+     * of this size), and a deterministic result. */
+    clef_peak_result r2, r3, r0;
+    assert_int_equal(clef_peak_find(bp, &o, &r2), CLEF_OK);
+    assert_true(r2.l_peak_err_stat == r.l_peak_err_stat && r2.l_peak == r.l_peak);
+    o.draws = 5000;
+    assert_int_equal(clef_peak_find(bp, &o, &r3), CLEF_OK);
+    print_message("draws: first order %.4f, 200 draws %.4f, 5000 draws %.4f\n", r.l_peak_err_lin,
+                  r.l_peak_err_stat, r3.l_peak_err_stat);
+    check_rel(r.l_peak_err_stat, r3.l_peak_err_stat, 0.04, "5000 draws");
+    o.draws = 0;
+    assert_int_equal(clef_peak_find(bp, &o, &r0), CLEF_OK);
+    assert_true(r0.l_peak_err_stat == r.l_peak_err_lin && r0.l_peak == r.l_peak);
+    assert_int_equal(r0.draws, 0);
     check_rel(r.d_peak, v[3], 1e-8, "scipy height");
     check_rel(r.chi2, v[4], 1e-5, "scipy chi^2");
     check_rel(r.p_value, v[5], 1e-4, "scipy.stats.chi2.sf");

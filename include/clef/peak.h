@@ -39,6 +39,11 @@ extern "C" {
 #define CLEF_PEAK_SHAPE_PRIOR 1.0
 /* Fewest bins in a fit: the four free terms plus one degree of freedom. */
 #define CLEF_PEAK_MIN_BINS 5
+/* Default number of parametric draws for the sampling error (docs/peak.md,
+ * "Errors"), and the fixed seed that makes the error a deterministic
+ * function of the table. */
+#define CLEF_PEAK_DRAWS 200
+#define CLEF_PEAK_DRAW_SEED 20021u
 
 typedef struct clef_peak_opts {
     double l_min, l_max;    /* search window: bins with l_min <= l_eff <= l_max (default 100..400) */
@@ -48,6 +53,9 @@ typedef struct clef_peak_opts {
                                standard errors below zero, else "no peak" (default 2) */
     double shape_prior;     /* prior rms s of the higher-order terms; 0 (default):
                                CLEF_PEAK_SHAPE_PRIOR */
+    int draws;              /* parametric draws of the band powers around the fit, each refitted
+                               by the whole procedure, for the sampling error (default
+                               CLEF_PEAK_DRAWS); 0: first-order propagation only */
 } clef_peak_opts;
 
 void clef_peak_opts_default(clef_peak_opts *o);
@@ -63,7 +71,11 @@ typedef struct clef_peak_result {
     int found;              /* 1: a peak was found; 0: none, `reason` says why */
     char reason[256];
     double l_peak, l_peak_err;       /* multipole and 1-sigma error (statistical and shape) */
-    double l_peak_err_stat;          /* sampling part (sandwich covariance of the terms) */
+    double l_peak_err_stat;          /* sampling part: the first-order part corrected by the
+                                        parametric draws (l_peak_err_lin when draws = 0) */
+    double l_peak_err_lin;           /* first-order sampling error (sandwich covariance of the
+                                        terms) */
+    int draws, draws_found;          /* draws made, and those in which a peak was found */
     double l_peak_err_shape;         /* shape part, the estimated shift by the shape prior:
                                         err^2 = stat^2 + shape^2 */
     double d_peak, d_peak_err;       /* D at the peak and 1-sigma error, uK^2 */
@@ -92,8 +104,12 @@ typedef struct clef_peak_result {
  * dl_err^2 on the diagonal when bp->cov is NULL) and the prior; the centre
  * moves to the fitted peak until the set of bins stops changing.  Windows:
  * bp->win when present (it must cover every fitted bin's multipoles),
- * else the fallbacks of enum clef_peak_windows.  Errors by first-order
- * propagation of the posterior covariance of the terms.
+ * else the fallbacks of enum clef_peak_windows.  Sampling error: first-
+ * order propagation, corrected by o->draws Gaussian draws of the band
+ * powers around the fitted model that are refitted by the same procedure
+ * (a parametric bootstrap with the first-order response as control
+ * variate; docs/peak.md "Errors"); the draws are seeded with
+ * CLEF_PEAK_DRAW_SEED, so the result depends on the table only.
  * "No peak" is not an error: the call returns CLEF_OK with found = 0 and a
  * reason (highest bin on the window edge, too few bins, ln D not concave
  * or the curvature not significant, fit not converged, maximum outside the

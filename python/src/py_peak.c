@@ -13,7 +13,7 @@ PyObject *pyclef_peak_dict(const clef_peak_result *r)
     static const char *const win[] = {"table", "top-hat", "point"};
     return Py_BuildValue(
         "{s:O,s:s,s:d,s:d,s:d,s:d,s:d,s:d,s:d,s:d,s:d,s:d,s:d,s:i,s:d,s:i,s:i,s:i,s:d,s:d,s:d,"
-        "s:s}",
+        "s:s,s:d,s:i,s:i}",
         "found", r->found ? Py_True : Py_False, "reason", r->reason, "l_peak", r->l_peak,
         "l_peak_err", r->l_peak_err, "l_peak_err_stat", r->l_peak_err_stat, "l_peak_err_shape",
         r->l_peak_err_shape, "d_peak", r->d_peak, "d_peak_err", r->d_peak_err, "corr", r->corr,
@@ -21,19 +21,21 @@ PyObject *pyclef_peak_dict(const clef_peak_result *r)
         r->chi2, "dof", r->dof, "p_value", r->p_value, "nbins_used", r->nbins_used, "bin_first",
         r->bin_first, "bin_last", r->bin_last, "curv_signif", r->curv_signif, "half_width",
         r->half_width, "shape_prior", r->shape_prior, "windows",
-        r->windows >= 0 && r->windows <= 2 ? win[r->windows] : "");
+        r->windows >= 0 && r->windows <= 2 ? win[r->windows] : "", "l_peak_err_first_order",
+        r->l_peak_err_lin, "error_draws", r->draws, "error_draws_found", r->draws_found);
 }
 
 static PyObject *py_peak_find(PyObject *self, PyObject *args, PyObject *kw)
 {
     (void)self;
     static char *kwl[] = {"table", "l_min", "l_max", "half_width", "curv_sigma", "shape_prior",
-                          NULL};
+                          "error_draws", NULL};
     PyObject *tab;
     clef_peak_opts o;
     clef_peak_opts_default(&o);
-    if (!PyArg_ParseTupleAndKeywords(args, kw, "O|$ddddd:peak_find", kwl, &tab, &o.l_min,
-                                     &o.l_max, &o.half_width, &o.curv_nsigma, &o.shape_prior))
+    if (!PyArg_ParseTupleAndKeywords(args, kw, "O|$dddddi:peak_find", kwl, &tab, &o.l_min,
+                                     &o.l_max, &o.half_width, &o.curv_nsigma, &o.shape_prior,
+                                     &o.draws))
         return NULL;
     /* The CLI's checks (src/cli/cmd_peak.c). */
     if (!(o.l_min < o.l_max))
@@ -43,6 +45,8 @@ static PyObject *py_peak_find(PyObject *self, PyObject *args, PyObject *kw)
                             o.half_width);
     if (o.curv_nsigma < 0)
         return PyErr_Format(PyExc_ValueError, "curv_sigma must be >= 0, got %g", o.curv_nsigma);
+    if (o.draws < 0 || o.draws > 100000)
+        return PyErr_Format(PyExc_ValueError, "error_draws must be 0 to 100000, got %d", o.draws);
     clef_bandpowers *bp = pyclef_bandpowers_from(tab, "table");
     if (!bp)
         return NULL;
@@ -112,13 +116,15 @@ static PyObject *py_geometry_infer(PyObject *self, PyObject *args, PyObject *kw)
 PyMethodDef pyclef_peak_methods[] = {
     {"peak_find", PYCLEF_KW(py_peak_find), METH_VARARGS | METH_KEYWORDS,
      "peak_find(table, *, l_min=100.0, l_max=400.0, half_width=0.0, curv_sigma=2.0, "
-     "shape_prior=0.0)\n--\n\n"
+     "shape_prior=0.0, error_draws=200)\n--\n\n"
      "The first acoustic peak of a band-power table (a dict as clef.spectrum or\n"
      "clef.read_bandpowers return, or a file path), as `clef peak` fits it (docs/peak.md):\n"
      "search window l_min..l_max [multipoles], half_width of the fit [multipoles, 0 =\n"
      "automatic], curv_sigma (required significance of the curvature), shape_prior (rms of\n"
-     "the higher-order terms of ln D, 0 = default).  Returns a dict: found, reason, l_peak,\n"
-     "l_peak_err (stat and shape parts), d_peak, d_peak_err [uK^2], corr, theta_deg,\n"
+     "the higher-order terms of ln D, 0 = default), error_draws (refitted draws for the\n"
+     "statistical error, 0 = first order only).  Returns a dict: found, reason, l_peak,\n"
+     "l_peak_err (stat and shape parts, l_peak_err_first_order, error_draws,\n"
+     "error_draws_found), d_peak, d_peak_err [uK^2], corr, theta_deg,\n"
      "theta_deg_err [deg], width [multipoles], chi2, dof, p_value, nbins_used, bin_first,\n"
      "bin_last, curv_signif, half_width, shape_prior, windows.  No peak is not an error\n"
      "(found False, a reason, NaN numbers)."},

@@ -261,6 +261,7 @@ void cli_peak_json(cJSON *o, const clef_peak_result *r, const clef_peak_opts *po
         number_or_null(s, "half_width", r->half_width);
         cJSON_AddNumberToObject(s, "curvature_sigma_min", po->curv_nsigma);
         number_or_null(s, "shape_prior", r->shape_prior);
+        cJSON_AddNumberToObject(s, "error_draws", po->draws);
         if (r->windows >= 0 && r->windows <= 2)
             cJSON_AddStringToObject(s, "windows", windows[r->windows]);
     }
@@ -280,6 +281,9 @@ void cli_peak_json(cJSON *o, const clef_peak_result *r, const clef_peak_opts *po
     cJSON_AddNumberToObject(o, "l_peak_err", r->l_peak_err);
     number_or_null(o, "l_peak_err_stat", r->l_peak_err_stat);
     number_or_null(o, "l_peak_err_shape", r->l_peak_err_shape);
+    number_or_null(o, "l_peak_err_first_order", r->l_peak_err_lin);
+    if (r->draws > 0)
+        cJSON_AddNumberToObject(o, "error_draws_found", r->draws_found);
     cJSON_AddNumberToObject(o, "d_peak_uK2", r->d_peak);
     cJSON_AddNumberToObject(o, "d_peak_err_uK2", r->d_peak_err);
     number_or_null(o, "corr_l_d", r->corr);

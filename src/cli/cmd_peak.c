@@ -37,6 +37,9 @@ static void help(void)
            "                      (default: max(%g, %g bin widths))\n"
            "  --curv-sigma N      report no peak unless the curvature of ln D at the peak\n"
            "                      is at least N standard errors below zero (default %g)\n"
+           "  --error-draws N     refit N Gaussian draws of the band powers around the fit\n"
+           "                      for the statistical error (default %d; 0: first-order\n"
+           "                      propagation only; docs/peak.md)\n"
            "  --cov FILE          covariance of D (uK^4) for the table's bins, a text\n"
            "                      matrix (default: the table's own, else its errors alone)\n"
            "  --output FILE       write the table with the result as PK_* keywords to FILE\n"
@@ -52,7 +55,8 @@ static void help(void)
            "missing or zero, no bin in the window, --output naming the input), 4 cannot\n"
            "read or write a file, 5 bad file format, 8 out of memory, 9 no peak found with\n"
            "--require.\n",
-           o.l_min, o.l_max, CLEF_PEAK_HALF_WIDTH_MIN, CLEF_PEAK_HALF_WIDTH_BINS, o.curv_nsigma);
+           o.l_min, o.l_max, CLEF_PEAK_HALF_WIDTH_MIN, CLEF_PEAK_HALF_WIDTH_BINS, o.curv_nsigma,
+           o.draws);
 }
 
 /* The result as a JSON object (numbers only where defined). */
@@ -90,6 +94,9 @@ static void print_result(const char *table, const clef_bandpowers *bp, const cle
     printf("  curvature      %.1f sigma below zero\n", -r->curv_signif);
     printf("  l_peak         %.2f +- %.2f (statistical %.2f, shape %.2f)\n", r->l_peak,
            r->l_peak_err, r->l_peak_err_stat, r->l_peak_err_shape);
+    if (r->draws > 0)
+        printf("                 statistical error from %d of %d refitted draws (first order "
+               "%.2f)\n", r->draws_found, r->draws, r->l_peak_err_lin);
     printf("  D_peak         %.1f +- %.1f uK^2\n", r->d_peak, r->d_peak_err);
     printf("  correlation    %.3f (l_peak with D_peak)\n", r->corr);
     printf("  angular scale  %.4f +- %.4f deg (180 deg / l_peak)\n", r->theta_deg,
@@ -107,6 +114,8 @@ int cmd_peak(int argc, char **argv)
     static const struct option longopts[] = {
         {"l-min", required_argument, NULL, 'a'},      {"l-max", required_argument, NULL, 'b'},
         {"half-width", required_argument, NULL, 'w'}, {"curv-sigma", required_argument, NULL, 's'},
+        {"error-draws", required_argument, NULL, 'e'},
+        {"error-draws", required_argument, NULL, 'e'},
         {"cov", required_argument, NULL, 'c'},        {"output", required_argument, NULL, 'o'},
         {"json", required_argument, NULL, 'j'},       {"require", no_argument, NULL, 'r'},
         {"quiet", no_argument, NULL, 'q'},            {"verbose", no_argument, NULL, 'v'},
@@ -136,6 +145,16 @@ int cmd_peak(int argc, char **argv)
             if (cli_parse_double("peak", "--curv-sigma", optarg, &o.curv_nsigma))
                 return CLI_EXIT_USAGE;
             break;
+        case 'e':
+        {
+            long v;
+            if (cli_parse_long("peak", "--error-draws", optarg, &v))
+                return CLI_EXIT_USAGE;
+            if (v < 0 || v > 100000)
+                return cli_usage_error("peak", "--error-draws must be 0 to 100000, got %ld", v);
+            o.draws = (int)v;
+            break;
+        }
         case 'c': cov_path = optarg; break;
         case 'o': out_path = optarg; break;
         case 'j': json_path = optarg; break;

@@ -181,6 +181,8 @@ def model_table(tmp_path_factory):
     ([], {}),
     (["--l-min", "150", "--l-max", "350", "--half-width", "100", "--curv-sigma", "1"],
      dict(l_min=150.0, l_max=350.0, half_width=100.0, curv_sigma=1.0)),
+    (["--error-draws", "0"], dict(error_draws=0)),
+    (["--error-draws", "57"], dict(error_draws=57)),
 ])
 def test_peak(tmp_path, model_table, extra, kw):
     run_cli("peak", "--quiet", model_table, "--json", tmp_path / "p.json", *extra)
@@ -190,8 +192,12 @@ def test_peak(tmp_path, model_table, extra, kw):
         assert p["found"] and j["found"]
         for a, b in (("l_peak", "l_peak"), ("l_peak_err", "l_peak_err"), ("d_peak", "d_peak_uK2"),
                      ("d_peak_err", "d_peak_err_uK2"), ("chi2", "chi2"),
-                     ("curv_signif", "curvature_signif")):
+                     ("curv_signif", "curvature_signif"),
+                     ("l_peak_err_first_order", "l_peak_err_first_order")):
             close(p[a], j[b])
+        assert p["error_draws"] == j["settings"]["error_draws"]
+        if p["error_draws"]:
+            assert p["error_draws_found"] == j["error_draws_found"]
         assert p["dof"] == j["dof"] and p["nbins_used"] == j["bins_used"]
     # The model's own first peak is within the fit's error (docs/peak.md).
     assert abs(p["l_peak"] - clef.theory_first_peak()[0]) < 3 * p["l_peak_err"]
