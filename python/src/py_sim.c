@@ -463,8 +463,9 @@ PyMethodDef pyclef_sim_methods[] = {
      "by the spin-2 transform, COSMO convention), plus white noise of noise_depth\n"
      "[uK-arcmin] in T and pol_noise_depth [uK-arcmin] in Q and U each (default\n"
      "sqrt(2) noise_depth).  T is the temperature-only sky of clef.simulate with the same\n"
-     "seed.  Returns maps [uK] (3, npix) T, Q, U; with return_alm, (maps, alm) where alm\n"
-     "(3, alm_size) holds a_T, a_E, a_B before beam and pixel window.  Releases the GIL."},
+     "seed (to rounding, ~1e-15 relative).  Returns maps [uK] (3, npix) T, Q, U; with\n"
+     "return_alm, (maps, alm) where alm (3, alm_size) holds a_T, a_E, a_B before beam\n"
+     "and pixel window.  Releases the GIL."},
     {"sim_alm_pol", PYCLEF_KW(py_sim_alm_pol), KW,
      "sim_alm_pol(cl, *, seed=1, lmax=None)\n--\n\n"
      "Gaussian a_T, a_E, a_B (a (3, alm_size) complex128 array, mmax = lmax) from `cl`\n"
