@@ -435,11 +435,13 @@ PyMODINIT_FUNC PyInit__clef(void)
         goto fail;
     PyMethodDef *tables[] = {pyclef_map_methods,      pyclef_sht_methods,  pyclef_mask_methods,
                              pyclef_spectrum_methods, pyclef_peak_methods, pyclef_sim_methods,
-                             pyclef_theory_methods,   pyclef_table_methods, pyclef_estimator_methods};
+                             pyclef_theory_methods,   pyclef_table_methods, pyclef_estimator_methods,
+                             pyclef_spectrum_pol_methods};
     for (size_t i = 0; i < sizeof tables / sizeof *tables; i++)
         if (add_methods(mod, tables[i]) < 0)
             goto fail;
-    if (pyclef_sht_register(mod) < 0 || pyclef_estimator_register(mod) < 0)
+    if (pyclef_sht_register(mod) < 0 || pyclef_sht_spin_register(mod) < 0 ||
+        pyclef_estimator_register(mod) < 0)
         goto fail;
     if (PyModule_AddStringConstant(mod, "__version__", CLEF_VERSION) < 0 ||
         PyModule_AddIntConstant(mod, "NSIDE_MAX", CLEF_NSIDE_MAX) < 0)

@@ -1,7 +1,8 @@
-/* clef.read_map, clef.write_map, clef.map_stats, clef.unit_to_uk over
- * include/clef/map.h. */
+/* clef.read_map, clef.write_map, clef.read_map_pol, clef.write_map_pol,
+ * clef.map_stats, clef.unit_to_uk over include/clef/map.h. */
 #include "pyclef.h"
 
+#include <math.h>
 #include <string.h>
 
 /* An HDU or column selector: None, an int (1-based) or a str. */
@@ -86,28 +87,177 @@ static PyObject *py_read_map(PyObject *self, PyObject *args, PyObject *kw)
     return NULL;
 }
 
-static PyObject *py_write_map(PyObject *self, PyObject *args, PyObject *kw)
+/* clef_map_read_pol: T (optional), Q, U in the COSMO convention. */
+static PyObject *py_read_map_pol(PyObject *self, PyObject *args, PyObject *kw)
 {
     (void)self;
-    static char *kwl[] = {"path",      "map",     "coordsys", "unit",    "column",
-                          "extname",   "row_length", "float32", "history", NULL};
+    static char *kwl[] = {"path", "u_path", "hdu", "t_column", "q_column", "u_column",
+                          "ordering", "polcconv", "temperature", NULL};
+    PyObject *path_o, *upath_o = NULL, *hdu_o = NULL, *col_o[3] = {NULL, NULL, NULL};
+    const char *ordering = NULL, *conv = NULL;
+    int want_t = 1;
+    if (!PyArg_ParseTupleAndKeywords(args, kw, "O&|$O&OOOOzzp:read_map_pol", kwl,
+                                     PyUnicode_FSConverter, &path_o, PyUnicode_FSConverter,
+                                     &upath_o, &hdu_o, &col_o[0], &col_o[1], &col_o[2], &ordering,
+                                     &conv, &want_t))
+        return NULL;
+    char hb[64], cb[3][80];
+    clef_map_pol_opts po = {0};
+    const char **cols[3] = {&po.t_column, &po.q_column, &po.u_column};
+    static const char *const cnames[3] = {"t_column", "q_column", "u_column"};
+    PyObject *res = NULL;
+    if (conv && strcmp(conv, "COSMO") && strcmp(conv, "IAU")) {
+        /* as clef spectrum --polcconv */
+        PyErr_Format(PyExc_ValueError, "polcconv must be 'COSMO', 'IAU' or None (from the "
+                     "file), got '%s'", conv);
+        goto done;
+    }
+    if (selector(hdu_o, hb, sizeof hb, "hdu", &po.hdu) < 0)
+        goto done;
+    for (int i = 0; i < 3; i++)
+        if (selector(col_o[i], cb[i], sizeof cb[i], cnames[i], cols[i]) < 0)
+            goto done;
+    po.ordering = ordering;
+    po.u_path = upath_o ? PyBytes_AS_STRING(upath_o) : NULL;
+    po.polcconv = conv;
+    po.want_t = want_t;
+    pyclef_log_refresh();
+    clef_map_pol mp;
+    int st;
+    const char *path = PyBytes_AS_STRING(path_o);
+    Py_BEGIN_ALLOW_THREADS
+    st = clef_map_read_pol(&mp, path, &po);
+    Py_END_ALLOW_THREADS
+    if (st != CLEF_OK) {
+        pyclef_raise(st);
+        goto done;
+    }
+    const clef_map *m[3] = {mp.t, mp.q, mp.u};
+    const int first = want_t ? 0 : 1, nmap = 3 - first;
+    const npy_intp npix = (npy_intp)mp.q->npix;
+    npy_intp dims[2] = {nmap, npix};
+    PyObject *pix = PyArray_SimpleNew(2, dims, NPY_DOUBLE), *valid = NULL, *meta = NULL;
+    PyObject *units = PyTuple_New(nmap), *colnames = PyTuple_New(nmap), *nmiss = PyTuple_New(nmap);
+    if (!pix || !units || !colnames || !nmiss ||
+        !(valid = PyArray_SimpleNew(2, dims, NPY_BOOL)) || !(meta = PyDict_New()))
+        goto fail;
+    double *d = PyArray_DATA((PyArrayObject *)pix);
+    unsigned char *v = PyArray_DATA((PyArrayObject *)valid);
+    for (int k = 0; k < nmap; k++) {
+        const clef_map *mk = m[first + k];
+        for (npy_intp p = 0; p < npix; p++)
+            d[k * npix + p] = mk->valid[p] ? mk->pix[p] : NAN;
+        memcpy(v + k * npix, mk->valid, (size_t)npix);
+        PyObject *a = PyUnicode_FromString(mk->unit), *b = PyUnicode_FromString(mk->column);
+        PyObject *c = PyLong_FromLongLong(mk->nmissing);
+        if (!a || !b || !c) {
+            Py_XDECREF(a);
+            Py_XDECREF(b);
+            Py_XDECREF(c);
+            goto fail;
+        }
+        PyTuple_SET_ITEM(units, k, a);
+        PyTuple_SET_ITEM(colnames, k, b);
+        PyTuple_SET_ITEM(nmiss, k, c);
+    }
+    const clef_map *q = mp.q;
+    /* Every item is set (|, not ||): pyclef_set consumes its value even on failure. */
+    const int bad =
+        (pyclef_set(meta, "valid", valid) | pyclef_set(meta, "units", units) |
+         pyclef_set(meta, "columns", colnames) | pyclef_set(meta, "nmissing", nmiss) |
+         pyclef_set(meta, "nside", PyLong_FromLongLong(q->nside)) |
+         pyclef_set(meta, "npix", PyLong_FromLongLong(q->npix)) |
+         pyclef_set(meta, "ordering",
+                    PyUnicode_FromString(q->file_ordering == CLEF_NESTED ? "NESTED" : "RING")) |
+         pyclef_set(meta, "coordsys", PyUnicode_FromString(q->coordsys)) |
+         pyclef_set(meta, "hdu", PyLong_FromLong(q->hdu)) |
+         pyclef_set(meta, "polcconv", PyUnicode_FromString(q->polcconv)) |
+         pyclef_set(meta, "iau", PyBool_FromLong(mp.iau)) |
+         pyclef_set(meta, "polcconv_missing", PyBool_FromLong(mp.polcconv_missing))) != 0;
+    valid = units = colnames = nmiss = NULL; /* consumed by pyclef_set */
+    if (!bad) {
+        res = Py_BuildValue("(NN)", pix, meta);
+        pix = meta = NULL;
+    }
+fail:
+    Py_XDECREF(pix);
+    Py_XDECREF(valid);
+    Py_XDECREF(units);
+    Py_XDECREF(colnames);
+    Py_XDECREF(nmiss);
+    Py_XDECREF(meta);
+    clef_map_pol_free(&mp);
+done:
+    Py_DECREF(path_o);
+    Py_XDECREF(upath_o);
+    return res;
+}
+
+/* Views of three maps T, Q, U from a (3, npix) array or a sequence of three
+ * 1-d arrays (pyclef.h). */
+int pyclef_map_views3(PyObject *obj, const char *what, pyclef_map v[3], const char *coordsys,
+                      const char *unit)
+{
+    static const char *const comp[3] = {"T", "Q", "U"};
+    memset(v, 0, 3 * sizeof *v);
+    PyObject *seq = PySequence_Check(obj) ? PySequence_Fast(obj, what) : NULL;
+    if (!seq || PySequence_Fast_GET_SIZE(seq) != 3) {
+        Py_XDECREF(seq);
+        PyErr_Clear();
+        PyErr_Format(PyExc_ValueError, "%s must be a (3, npix) float64 array or three RING maps "
+                     "(T, Q, U)", what);
+        return -1;
+    }
+    for (int k = 0; k < 3; k++) {
+        char name[96];
+        snprintf(name, sizeof name, "%s[%d] (%s)", what, k, comp[k]);
+        if (pyclef_map_view(&v[k], PySequence_Fast_GET_ITEM(seq, k), name, 1, coordsys, unit) < 0)
+            goto fail;
+        if (k && v[k].m.nside != v[0].m.nside) {
+            PyErr_Format(PyExc_ValueError, "%s: map %s has nside %lld, T has %lld", what, comp[k],
+                         (long long)v[k].m.nside, (long long)v[0].m.nside);
+            goto fail;
+        }
+    }
+    Py_DECREF(seq);
+    return 0;
+fail:
+    Py_DECREF(seq);
+    for (int k = 0; k < 3; k++)
+        pyclef_map_release(&v[k]);
+    return -1;
+}
+
+/* clef_map_write (pol 0: one map, a column name) or clef_map_write_pol
+ * (pol 1: T, Q, U; the columns are fixed). */
+static PyObject *write_maps(PyObject *args, PyObject *kw, int pol)
+{
+    static char *kw1[] = {"path",    "map",        "coordsys", "unit",    "column",
+                          "extname", "row_length", "float32",  "history", NULL};
+    static char *kw3[] = {"path",       "maps",    "coordsys", "unit", "extname",
+                          "row_length", "float32", "history",  NULL};
     PyObject *path_o, *map_o;
     const char *coordsys = "", *unit = "", *column = NULL, *extname = NULL, *history = NULL;
     int row_length = 0, float32 = 0;
-    if (!PyArg_ParseTupleAndKeywords(args, kw, "O&O|$sszzipz:write_map", kwl,
-                                     PyUnicode_FSConverter, &path_o, &map_o, &coordsys, &unit,
-                                     &column, &extname, &row_length, &float32, &history))
+    if (!(pol ? PyArg_ParseTupleAndKeywords(args, kw, "O&O|$sszipz:write_map_pol", kw3,
+                                            PyUnicode_FSConverter, &path_o, &map_o, &coordsys,
+                                            &unit, &extname, &row_length, &float32, &history)
+              : PyArg_ParseTupleAndKeywords(args, kw, "O&O|$sszzipz:write_map", kw1,
+                                            PyUnicode_FSConverter, &path_o, &map_o, &coordsys,
+                                            &unit, &column, &extname, &row_length, &float32,
+                                            &history)))
         return NULL;
+    pyclef_map v[3];
+    memset(v, 0, sizeof v);
+    PyObject *res = NULL;
     if (strlen(coordsys) > 1 || (coordsys[0] && !strchr("GEC", coordsys[0]))) {
-        Py_DECREF(path_o);
-        return PyErr_Format(PyExc_ValueError, "coordsys must be 'G', 'E', 'C' or '', got '%s'",
-                            coordsys);
+        PyErr_Format(PyExc_ValueError, "coordsys must be 'G', 'E', 'C' or '', got '%s'",
+                     coordsys);
+        goto done;
     }
-    pyclef_map v;
-    if (pyclef_map_view(&v, map_o, "map", 1, coordsys, unit) < 0) {
-        Py_DECREF(path_o);
-        return NULL;
-    }
+    if ((pol ? pyclef_map_views3(map_o, "maps", v, coordsys, unit)
+             : pyclef_map_view(&v[0], map_o, "map", 1, coordsys, unit)) < 0)
+        goto done;
     clef_map_write_opts wo = {0};
     wo.row_length = row_length;
     wo.single_precision = float32;
@@ -118,13 +268,27 @@ static PyObject *py_write_map(PyObject *self, PyObject *args, PyObject *kw)
     int st;
     const char *path = PyBytes_AS_STRING(path_o);
     Py_BEGIN_ALLOW_THREADS
-    st = clef_map_write(&v.m, path, &wo);
+    st = pol ? clef_map_write_pol(&v[0].m, &v[1].m, &v[2].m, path, &wo)
+             : clef_map_write(&v[0].m, path, &wo);
     Py_END_ALLOW_THREADS
+    res = st != CLEF_OK ? pyclef_raise(st) : Py_NewRef(Py_None);
+done:
     Py_DECREF(path_o);
-    pyclef_map_release(&v);
-    if (st != CLEF_OK)
-        return pyclef_raise(st);
-    Py_RETURN_NONE;
+    for (int k = 0; k < 3; k++)
+        pyclef_map_release(&v[k]);
+    return res;
+}
+
+static PyObject *py_write_map(PyObject *self, PyObject *args, PyObject *kw)
+{
+    (void)self;
+    return write_maps(args, kw, 0);
+}
+
+static PyObject *py_write_map_pol(PyObject *self, PyObject *args, PyObject *kw)
+{
+    (void)self;
+    return write_maps(args, kw, 1);
 }
 
 static PyObject *py_map_stats(PyObject *self, PyObject *args)
@@ -192,6 +356,31 @@ PyMethodDef pyclef_map_methods[] = {
      "(default 'TEMPERATURE'); extname (default 'SKYMAP'); row_length: values per row\n"
      "(0 = one pixel per row, e.g. 1024; must divide npix); float32: write 32-bit floats;\n"
      "history: a HISTORY line."},
+    {"read_map_pol", PYCLEF_KW(py_read_map_pol), METH_VARARGS | METH_KEYWORDS,
+     "read_map_pol(path, *, u_path=None, hdu=None, t_column=None, q_column=None,\n"
+     "             u_column=None, ordering=None, polcconv=None, temperature=True)\n--\n\n"
+     "Read a polarized HEALPix map: T, Q, U from the columns TEMPERATURE (or I_STOKES),\n"
+     "Q_POLARISATION and U_POLARISATION (also Q_POLARIZATION, Q_STOKES and the U forms) of\n"
+     "one table, or U from the file u_path; columns may be given by number or name.\n"
+     "Q and U are returned in the COSMO convention, as clef computes with them: a table\n"
+     "with POLCCONV = 'IAU' has U negated, a table without POLCCONV is read as COSMO with a\n"
+     "library warning (logger 'clef'), any other value is clef.FormatError; polcconv\n"
+     "'COSMO' or 'IAU' overrides the file.  Q and U share one validity (a pixel missing\n"
+     "in either is missing in both); T keeps its own.\n\n"
+     "Returns (maps, meta): maps, float64 array (3, npix) T, Q, U (or (2, npix) Q, U with\n"
+     "temperature=False) in RING order and the file's units, NaN where missing; meta, a\n"
+     "dict with nside, npix, ordering (of the file), coordsys, hdu, polcconv (the keyword\n"
+     "as written, '' if absent), iau (U was negated), polcconv_missing, and per map\n"
+     "(tuples in the order of the rows) units, columns, nmissing; valid (bool, the shape\n"
+     "of maps).  Errors: clef.FileError, clef.FormatError, clef.InvalidArgumentError (a\n"
+     "missing column: the message lists the columns present)."},
+    {"write_map_pol", PYCLEF_KW(py_write_map_pol), METH_VARARGS | METH_KEYWORDS,
+     "write_map_pol(path, maps, *, coordsys='', unit='', extname=None, row_length=0,\n"
+     "              float32=False, history=None)\n--\n\n"
+     "Write T, Q, U (a (3, npix) float64 array or three RING maps; NaN = missing) as one\n"
+     "HEALPix table with columns TEMPERATURE, Q_POLARISATION, U_POLARISATION and\n"
+     "POLCCONV = 'COSMO' (Q, U must be in that convention), atomically; options as\n"
+     "clef.write_map."},
     {"map_stats", py_map_stats, METH_VARARGS,
      "map_stats(map, /)\n--\n\n"
      "Summary of the valid (non-NaN) pixels: dict nvalid, nmissing, fsky, min, max, mean,\n"

@@ -2,8 +2,8 @@
 #include "pyclef.h"
 
 #include <complex.h>
+#include <limits.h>
 #include <math.h>
-#include <pythread.h>
 #include <stdlib.h>
 #include <string.h>
 
@@ -24,13 +24,60 @@ static void sht_dealloc(ShtObject *self)
     Py_TYPE(self)->tp_free((PyObject *)self);
 }
 
-static void lock_plan(ShtObject *self)
+void pyclef_lock_wait(PyThread_type_lock lock)
 {
-    if (!PyThread_acquire_lock(self->lock, NOWAIT_LOCK)) {
+    if (!PyThread_acquire_lock(lock, NOWAIT_LOCK)) {
         Py_BEGIN_ALLOW_THREADS
-        PyThread_acquire_lock(self->lock, WAIT_LOCK);
+        PyThread_acquire_lock(lock, WAIT_LOCK);
         Py_END_ALLOW_THREADS
     }
+}
+
+int pyclef_plan_opts(int lmax, int mmax, int nmaps, int nmaps_max, int no_ring_weights,
+                     clef_sht_opts *o)
+{
+    if (nmaps < 1 || nmaps > nmaps_max) {
+        if (nmaps_max == INT_MAX)
+            PyErr_Format(PyExc_ValueError, "nmaps must be at least 1, got %d", nmaps);
+        else
+            PyErr_Format(PyExc_ValueError, "nmaps (Q/U pairs per call) must be in 1..%d, got %d",
+                         nmaps_max, nmaps);
+        return -1;
+    }
+    if (mmax == 0) {
+        /* The library reads 0 as "mmax = lmax"; m = 0 alone is not offered. */
+        PyErr_SetString(PyExc_ValueError, "mmax must be at least 1 (None: mmax = lmax)");
+        return -1;
+    }
+    if (mmax > lmax) {
+        PyErr_Format(PyExc_ValueError, "mmax (%d) must not exceed lmax (%d)", mmax, lmax);
+        return -1;
+    }
+    memset(o, 0, sizeof *o);
+    o->mmax = mmax < 0 ? 0 : mmax;
+    o->nmaps = nmaps;
+    o->no_ring_weights = no_ring_weights;
+    return 0;
+}
+
+int pyclef_plan_reset(PyThread_type_lock *lock, void (*drop)(PyObject *), PyObject *self)
+{
+    if (!*lock && !(*lock = PyThread_allocate_lock())) {
+        PyErr_NoMemory();
+        return -1;
+    }
+    /* __init__ called again: wait for a transform of the old plan. */
+    pyclef_lock_wait(*lock);
+    drop(self);
+    PyThread_release_lock(*lock);
+    return 0;
+}
+
+static void sht_drop(PyObject *o)
+{
+    ShtObject *self = (ShtObject *)o;
+    clef_sht_destroy(self->p);
+    self->p = NULL;
 }
 
 static int sht_init(ShtObject *self, PyObject *args, PyObject *kw)
@@ -41,34 +88,10 @@ static int sht_init(ShtObject *self, PyObject *args, PyObject *kw)
     if (!PyArg_ParseTupleAndKeywords(args, kw, "Li|$O&ip:Sht", kwl, &nside, &lmax, pyclef_opt_int, &mmax, &nmaps,
                                      &noweights))
         return -1;
-    if (nmaps < 1) {
-        PyErr_Format(PyExc_ValueError, "nmaps must be at least 1, got %d", nmaps);
+    clef_sht_opts o;
+    if (pyclef_plan_opts(lmax, mmax, nmaps, INT_MAX, noweights, &o) < 0 ||
+        pyclef_plan_reset(&self->lock, sht_drop, (PyObject *)self) < 0)
         return -1;
-    }
-    if (mmax > lmax) {
-        PyErr_Format(PyExc_ValueError, "mmax (%d) must not exceed lmax (%d)", mmax, lmax);
-        return -1;
-    }
-    clef_sht_opts o = {0};
-    o.mmax = mmax < 0 ? 0 : mmax;
-    o.nmaps = nmaps;
-    o.no_ring_weights = noweights;
-    if (mmax == 0) {
-        /* The library reads 0 as "mmax = lmax"; m = 0 alone is not offered. */
-        PyErr_SetString(PyExc_ValueError, "mmax must be at least 1 (None: mmax = lmax)");
-        return -1;
-    }
-    if (!self->lock && !(self->lock = PyThread_allocate_lock())) {
-        PyErr_NoMemory();
-        return -1;
-    }
-    if (self->p) {
-        /* __init__ called again: wait for a transform of the old plan. */
-        lock_plan(self);
-        clef_sht_destroy(self->p);
-        self->p = NULL;
-        PyThread_release_lock(self->lock);
-    }
     pyclef_log_refresh();
     clef_sht *p = NULL;
     int st;
@@ -131,7 +154,7 @@ static PyObject *sht_analysis(ShtObject *self, PyObject *args, PyObject *kw)
     const int chunk = self->nmaps < 64 ? self->nmaps : 64;
     int st = CLEF_OK;
     pyclef_log_refresh();
-    lock_plan(self);
+    pyclef_lock_wait(self->lock);
     Py_BEGIN_ALLOW_THREADS
     for (npy_intp i = 0; i < k && st == CLEF_OK; i += chunk) {
         const int n = (int)(k - i < chunk ? k - i : chunk);
@@ -185,7 +208,7 @@ static PyObject *sht_synthesis(ShtObject *self, PyObject *args, PyObject *kw)
     const int chunk = self->nmaps < 64 ? self->nmaps : 64;
     int st = CLEF_OK;
     pyclef_log_refresh();
-    lock_plan(self);
+    pyclef_lock_wait(self->lock);
     Py_BEGIN_ALLOW_THREADS
     for (npy_intp i = 0; i < k && st == CLEF_OK; i += chunk) {
         const int n = (int)(k - i < chunk ? k - i : chunk);

@@ -1,7 +1,7 @@
 /* clef.spectrum over clef_spectrum_compute of include/clef/spectrum.h: one
  * or two maps and their masks -> band powers, covariance, windows, the
  * first peak and the run summary; and the argument helpers the estimator
- * of many fields (py_estimator.c) and the polarized spectra (py_pol.c)
+ * of many fields (py_estimator.c) and the polarized spectra (py_spectrum_pol.c)
  * share with it. */
 #include "pyclef.h"
 
@@ -119,6 +119,33 @@ PyObject *pyclef_spectrum_summary(const clef_spectrum_result *r, double t_call)
     return s;
 }
 
+int pyclef_spectrum_bins(PyObject *bins_o, int log_bins, int64_t nside, clef_spectrum_opts *so,
+                         clef_bins **bins)
+{
+    *bins = NULL;
+    if (bins_o == Py_None && log_bins <= 0)
+        return 0;
+    /* As the CLI: explicit bins end at the given lmax or 3 nside - 1;
+     * logarithmic bins at the given or the default lmax. */
+    const int lbins = so->lmax ? so->lmax : (int)(3 * nside - 1);
+    int st;
+    if (bins_o != Py_None) {
+        if (pyclef_make_bins(bins_o, lbins, bins) < 0)
+            return -1;
+    } else {
+        int ldef = lbins;
+        if ((!so->lmax && (st = clef_spectrum_default_lmax(so, nside, &ldef)) != CLEF_OK) ||
+            (st = clef_bins_create_log(bins, 2, ldef, log_bins, CLEF_BINS_DL)) != CLEF_OK) {
+            pyclef_raise(st);
+            return -1;
+        }
+    }
+    if (!so->lmax)
+        so->lmax = clef_bins_lmax(*bins);
+    so->bins = *bins;
+    return 0;
+}
+
 int pyclef_check_opts(int lmax, int bin_width, int iterations, double peak_half_width)
 {
     if (lmax != 0 && lmax < 2)
@@ -133,6 +160,60 @@ int pyclef_check_opts(int lmax, int bin_width, int iterations, double peak_half_
     else
         return 0;
     return -1;
+}
+
+void pyclef_spectrum_kw_init(pyclef_spectrum_kw *k)
+{
+    memset(k, 0, sizeof *k);
+    k->unit = k->coordsys = k->mask_coordsys = "";
+    k->pixel_window = 1;
+    k->iterations = CLEF_SPECTRUM_ITERATIONS;
+    k->cache = 1;
+    k->bins = k->beam = k->transfer = k->noise_cl = k->theory_cl = Py_None;
+}
+
+int pyclef_spectrum_kw_apply(const pyclef_spectrum_kw *k, double peak_half_width,
+                             clef_spectrum_opts *so, PyArrayObject *tabs[4])
+{
+    for (int i = 0; i < 4; i++)
+        tabs[i] = NULL;
+    /* The CLI's own argument checks (src/cli/cmd_spectrum.c), as ValueError. */
+    if (pyclef_check_opts(k->lmax, k->bin_width, k->iterations, peak_half_width) < 0)
+        return -1;
+    if (k->log_bins < 0) {
+        PyErr_SetString(PyExc_ValueError, "log_bins must not be negative");
+        return -1;
+    }
+    if ((k->bins != Py_None) + (k->log_bins > 0) + (k->bin_width > 0) > 1) {
+        PyErr_SetString(PyExc_ValueError, "choose one of bins, log_bins and bin_width");
+        return -1;
+    }
+    if (!(k->fwhm >= 0)) {
+        PyErr_Format(PyExc_ValueError, "beam_fwhm must not be negative, got %g", k->fwhm);
+        return -1;
+    }
+    if (k->beam != Py_None && k->fwhm > 0) {
+        PyErr_SetString(PyExc_ValueError, "choose one of beam_fwhm and beam");
+        return -1;
+    }
+    so->lmax = k->lmax;
+    so->bin_width = k->bin_width;
+    so->beam_fwhm = k->fwhm;
+    so->pixel_window = k->pixel_window;
+    so->iterations = k->iterations;
+    so->keep_multipoles = k->keep_multipoles;
+    so->use_cache = k->cache;
+    so->cache_dir = k->cache_dir;
+    so->allow_coord_mismatch = k->allow_coord_mismatch;
+    if (pyclef_table(k->beam, "beam", &tabs[0], &so->beam, &so->beam_lmax) < 0 ||
+        pyclef_table(k->transfer, "transfer", &tabs[1], &so->transfer, &so->transfer_lmax) < 0 ||
+        pyclef_table(k->noise_cl, "noise_cl", &tabs[2], &so->noise_cl, &so->noise_lmax) < 0 ||
+        pyclef_table(k->theory_cl, "theory_cl", &tabs[3], &so->theory_cl, &so->theory_lmax) < 0) {
+        for (int i = 0; i < 4; i++)
+            Py_CLEAR(tabs[i]);
+        return -1;
+    }
+    return 0;
 }
 
 PyObject *pyclef_spectrum_result_dict(const clef_spectrum_result *r, double t_call,
@@ -163,41 +244,28 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
                           "peak_l_max", "peak_half_width", "peak_curv_sigma",
                           "allow_coord_mismatch", NULL};
     PyObject *map_o[2] = {NULL, Py_None}, *mask_o[2] = {NULL, Py_None};
-    PyObject *bins_o = Py_None, *beam_o = Py_None, *transfer_o = Py_None, *noise_o = Py_None;
-    PyObject *theory_o = Py_None;
-    const char *unit = "", *coordsys = "", *mcoordsys = "", *cache_dir = NULL;
-    int lmax = 0, bin_width = 0, log_bins = 0, with_pixel_window = 1;
-    int iterations = CLEF_SPECTRUM_ITERATIONS;
-    int keep = 0, cache = 1, peak = 1, coord = 0;
-    double fwhm = 0.0;
+    pyclef_spectrum_kw k;
+    pyclef_spectrum_kw_init(&k);
+    int peak = 1;
     clef_spectrum_opts so;
     clef_spectrum_opts_default(&so);
     double plmin = so.peak.l_min, plmax = so.peak.l_max, phw = so.peak.half_width;
     double pcurv = so.peak.curv_nsigma;
     if (!PyArg_ParseTupleAndKeywords(
             args, kw, "OO|OO$sssiiiOdOpOOOippzpdddO&p:spectrum", kwl, &map_o[0], &mask_o[0],
-            &map_o[1], &mask_o[1], &unit, &coordsys, &mcoordsys, &lmax, &bin_width, &log_bins,
-            &bins_o, &fwhm, &beam_o, &with_pixel_window, &transfer_o, &noise_o, &theory_o,
-            &iterations, &keep, &cache, &cache_dir, &peak, &plmin, &plmax, &phw, pyclef_opt_double,
-            &pcurv, &coord))
+            &map_o[1], &mask_o[1], &k.unit, &k.coordsys, &k.mask_coordsys, &k.lmax,
+            &k.bin_width, &k.log_bins, &k.bins, &k.fwhm, &k.beam, &k.pixel_window, &k.transfer,
+            &k.noise_cl, &k.theory_cl, &k.iterations, &k.keep_multipoles, &k.cache, &k.cache_dir,
+            &peak, &plmin, &plmax, &phw, pyclef_opt_double, &pcurv, &k.allow_coord_mismatch))
         return NULL;
-    /* The CLI's own argument checks (src/cli/cmd_spectrum.c), as ValueError. */
-    if (pyclef_check_opts(lmax, bin_width, iterations, phw) < 0)
-        return NULL;
-    if (log_bins < 0)
-        return PyErr_Format(PyExc_ValueError, "log_bins must not be negative");
-    if ((bins_o != Py_None) + (log_bins > 0) + (bin_width > 0) > 1)
-        return PyErr_Format(PyExc_ValueError, "choose one of bins, log_bins and bin_width");
-    if (fwhm < 0)
-        return PyErr_Format(PyExc_ValueError, "beam_fwhm must not be negative, got %g", fwhm);
-    if (beam_o != Py_None && fwhm > 0)
-        return PyErr_Format(PyExc_ValueError, "choose one of beam_fwhm and beam");
     if (mask_o[1] != Py_None && map_o[1] == Py_None)
         return PyErr_Format(PyExc_ValueError, "mask2 needs a second map (map2)");
+    PyArrayObject *tabs[4];
+    if (pyclef_spectrum_kw_apply(&k, phw, &so, tabs) < 0)
+        return NULL;
 
     pyclef_map mv[4];
     memset(mv, 0, sizeof mv);
-    PyArrayObject *tabs[4] = {NULL, NULL, NULL, NULL};
     clef_bins *bins = NULL;
     clef_spectrum_result res;
     memset(&res, 0, sizeof res);
@@ -207,54 +275,19 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
     for (int i = 0; i < 4; i++) {
         if (objs[i] == Py_None)
             continue;
-        if (pyclef_map_view(&mv[i], objs[i], names[i], i < 2, i < 2 ? coordsys : mcoordsys,
-                            i < 2 ? unit : NULL) < 0)
+        if (pyclef_map_view(&mv[i], objs[i], names[i], i < 2,
+                            i < 2 ? k.coordsys : k.mask_coordsys, i < 2 ? k.unit : NULL) < 0)
             goto done;
     }
-    so.lmax = lmax;
-    so.bin_width = bin_width;
-    so.beam_fwhm = fwhm;
-    so.pixel_window = with_pixel_window;
-    so.iterations = iterations;
-    so.keep_multipoles = keep;
-    so.use_cache = cache;
-    so.cache_dir = cache_dir;
     so.find_peak = peak;
     so.peak.l_min = plmin;
     so.peak.l_max = plmax;
     so.peak.half_width = phw;
     so.peak.curv_nsigma = pcurv;
-    so.allow_coord_mismatch = coord;
     for (int i = 0; i < 4; i++)
         so.names[i] = names[i];
-    if (pyclef_table(beam_o, "beam", &tabs[0], &so.beam, &so.beam_lmax) < 0 ||
-        pyclef_table(transfer_o, "transfer", &tabs[1], &so.transfer, &so.transfer_lmax) < 0 ||
-        pyclef_table(noise_o, "noise_cl", &tabs[2], &so.noise_cl, &so.noise_lmax) < 0 ||
-        pyclef_table(theory_o, "theory_cl", &tabs[3], &so.theory_cl, &so.theory_lmax) < 0)
+    if (pyclef_spectrum_bins(k.bins, k.log_bins, mv[0].m.nside, &so, &bins) < 0)
         goto done;
-    if (bins_o != Py_None || log_bins > 0) {
-        /* As the CLI: explicit bins end at the given lmax or 3 nside - 1;
-         * logarithmic bins at the given or the default lmax. */
-        const int lbins = lmax ? lmax : (int)(3 * mv[0].m.nside - 1);
-        int st;
-        if (bins_o != Py_None) {
-            if (pyclef_make_bins(bins_o, lbins, &bins) < 0)
-                goto done;
-        } else {
-            int ldef = lbins;
-            if (!lmax && (st = clef_spectrum_default_lmax(&so, mv[0].m.nside, &ldef)) != CLEF_OK) {
-                pyclef_raise(st);
-                goto done;
-            }
-            if ((st = clef_bins_create_log(&bins, 2, ldef, log_bins, CLEF_BINS_DL)) != CLEF_OK) {
-                pyclef_raise(st);
-                goto done;
-            }
-        }
-        if (!lmax)
-            so.lmax = clef_bins_lmax(bins);
-        so.bins = bins;
-    }
     pyclef_log_refresh();
     int st;
     double t_call;

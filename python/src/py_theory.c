@@ -235,6 +235,38 @@ done:
     return a;
 }
 
+static PyObject *py_read_cl_pol(PyObject *self, PyObject *args)
+{
+    (void)self;
+    PyObject *path_o;
+    int lmax;
+    if (!PyArg_ParseTuple(args, "O&i:read_cl_pol", PyUnicode_FSConverter, &path_o, &lmax))
+        return NULL;
+    PyObject *a = NULL;
+    if (lmax < 2) {
+        PyErr_Format(PyExc_ValueError, "lmax must be at least 2, got %d", lmax);
+        goto done;
+    }
+    npy_intp dims[2] = {4, (npy_intp)lmax + 1};
+    if (!(a = PyArray_SimpleNew(2, dims, NPY_DOUBLE)))
+        goto done;
+    double *c = PyArray_DATA((PyArrayObject *)a);
+    const size_t n = (size_t)lmax + 1;
+    const char *path = PyBytes_AS_STRING(path_o);
+    int st;
+    pyclef_log_refresh();
+    Py_BEGIN_ALLOW_THREADS
+    st = clef_theory_read_cl_pol(path, lmax, c, c + n, c + 2 * n, c + 3 * n);
+    Py_END_ALLOW_THREADS
+    if (st != CLEF_OK) {
+        Py_CLEAR(a);
+        pyclef_raise(st);
+    }
+done:
+    Py_DECREF(path_o);
+    return a;
+}
+
 static PyObject *py_write_cl(PyObject *self, PyObject *args, PyObject *kw)
 {
     (void)self;
@@ -291,6 +323,12 @@ PyMethodDef pyclef_theory_methods[] = {
      "A background quantity at redshift z: 'hubble' [km/s/Mpc], 'baryon_loading',\n"
      "'sound_speed' [c], 'sound_horizon', 'comoving_distance', 'transverse_distance',\n"
      "'conformal_time' [Mpc], 'damping_scale' [1/Mpc], 'zstar' (z ignored). " PARAMS_DOC},
+    {"read_cl_pol", py_read_cl_pol, METH_VARARGS,
+     "read_cl_pol(path, lmax, /)\n--\n\n"
+     "The polarized spectra of a text file of rows 'l TT EE BB TE' (C_l [uK^2];\n"
+     "docs/formats-spectrum.md, as clef simulate --polarization --cl reads it): a float64\n"
+     "array (4, lmax + 1), rows TT, EE, BB, TE for l = 0..lmax (zero above the file's\n"
+     "last l, with a library warning).  Errors name the file and line."},
     {"read_cl", PYCLEF_KW(py_read_cl), KW,
      "read_cl(path, *, lmax=None)\n--\n\n"
      "C_l [uK^2], l = 0..lmax (default the file's last l), from a spectrum file (text with a\n"

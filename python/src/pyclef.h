@@ -8,6 +8,7 @@
 
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
+#include <pythread.h>
 
 #define NPY_NO_DEPRECATED_API NPY_1_7_API_VERSION
 #define PY_ARRAY_UNIQUE_SYMBOL clef_py_ARRAY_API
@@ -72,6 +73,11 @@ typedef struct pyclef_map {
 int pyclef_map_view(pyclef_map *v, PyObject *obj, const char *what, int allow_nan,
                     const char *coordsys, const char *unit);
 void pyclef_map_release(pyclef_map *v);
+/* Views of T, Q, U from a (3, npix) array or a sequence of three 1-d
+ * arrays, named "what[k] (T)" etc. in messages; all of one nside.  On
+ * failure nothing is held. */
+int pyclef_map_views3(PyObject *obj, const char *what, pyclef_map v[3], const char *coordsys,
+                      const char *unit);
 
 /* A new 1-d float64 array with the pixels of a clef_map, NaN where
  * invalid. */
@@ -111,6 +117,30 @@ int pyclef_table(PyObject *o, const char *what, PyArrayObject **arr, const doubl
 /* Bins from a bin-file path or an (n, 2) array of inclusive l ranges,
  * ending at most at lbins. */
 int pyclef_make_bins(PyObject *o, int lbins, struct clef_bins **out);
+/* Bins of the options bins (None, a path or an array) or log_bins (> 0:
+ * that many logarithmic bins), as clef spectrum makes them for maps of
+ * `nside`: sets so->bins (and so->lmax when it was 0, the bins' end) from
+ * the other fields of so; *bins (NULL when neither is given) is the
+ * caller's to destroy.  Returns 0, or -1 with an exception. */
+struct clef_spectrum_opts;
+int pyclef_spectrum_bins(PyObject *bins_o, int log_bins, int64_t nside,
+                         struct clef_spectrum_opts *so, struct clef_bins **bins);
+/* The keywords clef.spectrum and clef.spectrum_pol share, as parsed
+ * (objects borrowed, Py_None when not given).  init() sets the CLI's
+ * defaults; apply() makes the CLI's checks (ValueError, with
+ * peak_half_width) and fills so (not bins, names, peak) with the tables
+ * beam, transfer, noise_cl, theory_cl kept alive in tabs (Py_XDECREF
+ * each; all NULL after a failure). */
+typedef struct pyclef_spectrum_kw {
+    const char *unit, *coordsys, *mask_coordsys, *cache_dir;
+    int lmax, bin_width, log_bins, pixel_window, iterations, keep_multipoles, cache;
+    int allow_coord_mismatch;
+    double fwhm;
+    PyObject *bins, *beam, *transfer, *noise_cl, *theory_cl;
+} pyclef_spectrum_kw;
+void pyclef_spectrum_kw_init(pyclef_spectrum_kw *k);
+int pyclef_spectrum_kw_apply(const pyclef_spectrum_kw *k, double peak_half_width,
+                             struct clef_spectrum_opts *so, PyArrayObject *tabs[4]);
 /* The CLI's checks of lmax, bin_width, iterations and the peak half width
  * (ValueError, -1). */
 int pyclef_check_opts(int lmax, int bin_width, int iterations, double peak_half_width);
@@ -120,6 +150,19 @@ PyObject *pyclef_spectrum_summary(const struct clef_spectrum_result *r, double t
  * NULL = an error already set) and peak of one result as a dict. */
 PyObject *pyclef_spectrum_result_dict(const struct clef_spectrum_result *r, double t_call,
                                       PyObject *warnings);
+
+/* Take a plan's lock (one transform at a time per plan, sht.h), waiting
+ * without the GIL when another thread holds it (py_sht.c). */
+void pyclef_lock_wait(PyThread_type_lock lock);
+/* The keywords of a plan object (clef.Sht, clef.ShtSpin): nmaps in
+ * 1..nmaps_max (INT_MAX: no limit), mmax None (-1) or 1..lmax; fills o
+ * (ValueError, -1).  reset(): the object's lock on first use, then
+ * drop(self) (destroying a plan of an earlier __init__) once a running
+ * transform of it is done. */
+struct clef_sht_opts;
+int pyclef_plan_opts(int lmax, int mmax, int nmaps, int nmaps_max, int no_ring_weights,
+                     struct clef_sht_opts *o);
+int pyclef_plan_reset(PyThread_type_lock *lock, void (*drop)(PyObject *), PyObject *self);
 
 /* Registration of each wrapper file's functions and types. */
 extern PyMethodDef pyclef_map_methods[];
@@ -131,8 +174,9 @@ extern PyMethodDef pyclef_sim_methods[];
 extern PyMethodDef pyclef_theory_methods[];
 extern PyMethodDef pyclef_table_methods[];
 int pyclef_sht_register(PyObject *module);
+int pyclef_sht_spin_register(PyObject *module);
 int pyclef_estimator_register(PyObject *module);
 extern PyMethodDef pyclef_estimator_methods[];
-extern PyMethodDef pyclef_pol_methods[];
+extern PyMethodDef pyclef_spectrum_pol_methods[];
 
 #endif

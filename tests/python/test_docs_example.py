@@ -19,3 +19,4 @@ def test_docs_example(tmp_path, monkeypatch, capsys):
     assert "(2, 49152) float64" in out
     assert "l_peak = " in out and "Omega_k = " in out
     assert "3 cannot open" in out  # the FileError's status and message
+    assert "C_l^EE / C_l^BB, l = 50..100: " in out  # the polarization block ran
