@@ -105,7 +105,7 @@ def spectrum(map1: npt.ArrayLike, mask1: npt.ArrayLike, map2: Optional[npt.Array
              keep_multipoles: bool = ..., cache: bool = ..., cache_dir: Optional[str] = ...,
              peak: bool = ..., peak_l_min: float = ..., peak_l_max: float = ...,
              peak_half_width: float = ..., peak_curv_sigma: Optional[float] = ...,
-             allow_coord_mismatch: bool = ...) -> dict: ...
+             allow_coord_mismatch: bool = ..., peak_error_draws: int = ...) -> dict: ...
 
 def spectrum_pol(map1: Union[npt.ArrayLike, Sequence[npt.ArrayLike]], mask: npt.ArrayLike,
                  map2: Union[npt.ArrayLike, Sequence[npt.ArrayLike], None] = ..., *,
@@ -130,7 +130,8 @@ class Estimator:
                  keep_multipoles: bool = ..., joint: bool = ..., cache: bool = ...,
                  cache_dir: Optional[str] = ..., peak: bool = ..., peak_l_min: float = ...,
                  peak_l_max: float = ..., peak_half_width: float = ...,
-                 peak_curv_sigma: Optional[float] = ..., allow_coord_mismatch: bool = ...) -> None: ...
+                 peak_curv_sigma: Optional[float] = ..., allow_coord_mismatch: bool = ...,
+                 peak_error_draws: int = ...) -> None: ...
     def add_field(self, name: str, maps: Union[npt.ArrayLike, Sequence[npt.ArrayLike]],
                   mask: npt.ArrayLike, *, beam_fwhm: float = ...,
                   beam: Optional[npt.ArrayLike] = ..., transfer: Optional[npt.ArrayLike] = ...,

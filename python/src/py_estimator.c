@@ -78,7 +78,7 @@ static int est_init(EstimatorObject *self, PyObject *args, PyObject *kw)
     static char *kwl[] = {"lmax", "bin_width", "bins", "pixel_window", "theory_cl", "iterations",
                           "keep_multipoles", "joint", "cache", "cache_dir", "peak", "peak_l_min",
                           "peak_l_max", "peak_half_width", "peak_curv_sigma",
-                          "allow_coord_mismatch", NULL};
+                          "allow_coord_mismatch", "peak_error_draws", NULL};
     if (self->inited) {
         PyErr_SetString(PyExc_RuntimeError, "clef.Estimator cannot be initialised twice");
         return -1;
@@ -90,12 +90,17 @@ static int est_init(EstimatorObject *self, PyObject *args, PyObject *kw)
     PyObject *bins_o = Py_None, *theory_o = Py_None;
     const char *cache_dir = NULL;
     if (!PyArg_ParseTupleAndKeywords(
-            args, kw, "|$iiOpOipppzpdddO&p:Estimator", kwl, &so.lmax, &so.bin_width, &bins_o,
+            args, kw, "|$iiOpOipppzpdddO&pi:Estimator", kwl, &so.lmax, &so.bin_width, &bins_o,
             &so.pixel_window, &theory_o, &so.iterations, &so.keep_multipoles, &joint,
             &so.use_cache, &cache_dir, &so.find_peak, &so.peak.l_min, &so.peak.l_max,
             &so.peak.half_width, pyclef_opt_double, &so.peak.curv_nsigma,
-            &so.allow_coord_mismatch))
+            &so.allow_coord_mismatch, &so.peak.draws))
         return -1;
+    if (so.peak.draws < 0 || so.peak.draws > 100000) {
+        PyErr_Format(PyExc_ValueError, "peak_error_draws must be 0 to 100000, got %d",
+                     so.peak.draws);
+        return -1;
+    }
     if (pyclef_check_opts(so.lmax, so.bin_width, so.iterations, so.peak.half_width) < 0)
         return -1;
     if (bins_o != Py_None && so.bin_width > 0) {
@@ -419,7 +424,7 @@ static PyTypeObject EstimatorType = {
         "Estimator(*, lmax=0, bin_width=0, bins=None, pixel_window=True, theory_cl=None,\n"
         "          iterations=1, keep_multipoles=False, joint=True, cache=True, cache_dir=None,\n"
         "          peak=True, peak_l_min=100.0, peak_l_max=400.0, peak_half_width=0.0,\n"
-        "          peak_curv_sigma=2.0, allow_coord_mismatch=False)\n--\n\n"
+        "          peak_curv_sigma=2.0, allow_coord_mismatch=False, peak_error_draws=200)\n--\n\n"
         "The estimator of many fields (include/clef/estimator.h; docs/run-files.md), with the\n"
         "run-wide settings of `clef spectrum --run` and its defaults: lmax (0: 2 nside,\n"
         "lowered by the beams and tables), bin_width (0: automatic) or bins (a bin file or an\n"

@@ -242,7 +242,7 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
                           "pixel_window", "transfer", "noise_cl", "theory_cl", "iterations",
                           "keep_multipoles", "cache", "cache_dir", "peak", "peak_l_min",
                           "peak_l_max", "peak_half_width", "peak_curv_sigma",
-                          "allow_coord_mismatch", NULL};
+                          "allow_coord_mismatch", "peak_error_draws", NULL};
     PyObject *map_o[2] = {NULL, Py_None}, *mask_o[2] = {NULL, Py_None};
     pyclef_spectrum_kw k;
     pyclef_spectrum_kw_init(&k);
@@ -251,13 +251,18 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
     clef_spectrum_opts_default(&so);
     double plmin = so.peak.l_min, plmax = so.peak.l_max, phw = so.peak.half_width;
     double pcurv = so.peak.curv_nsigma;
+    int pdraws = so.peak.draws;
     if (!PyArg_ParseTupleAndKeywords(
-            args, kw, "OO|OO$sssiiiOdOpOOOippzpdddO&p:spectrum", kwl, &map_o[0], &mask_o[0],
+            args, kw, "OO|OO$sssiiiOdOpOOOippzpdddO&pi:spectrum", kwl, &map_o[0], &mask_o[0],
             &map_o[1], &mask_o[1], &k.unit, &k.coordsys, &k.mask_coordsys, &k.lmax,
             &k.bin_width, &k.log_bins, &k.bins, &k.fwhm, &k.beam, &k.pixel_window, &k.transfer,
             &k.noise_cl, &k.theory_cl, &k.iterations, &k.keep_multipoles, &k.cache, &k.cache_dir,
-            &peak, &plmin, &plmax, &phw, pyclef_opt_double, &pcurv, &k.allow_coord_mismatch))
+            &peak, &plmin, &plmax, &phw, pyclef_opt_double, &pcurv, &k.allow_coord_mismatch,
+            &pdraws))
         return NULL;
+    if (pdraws < 0 || pdraws > 100000)
+        return PyErr_Format(PyExc_ValueError, "peak_error_draws must be 0 to 100000, got %d",
+                            pdraws);
     if (mask_o[1] != Py_None && map_o[1] == Py_None)
         return PyErr_Format(PyExc_ValueError, "mask2 needs a second map (map2)");
     PyArrayObject *tabs[4];
@@ -284,6 +289,7 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
     so.peak.l_max = plmax;
     so.peak.half_width = phw;
     so.peak.curv_nsigma = pcurv;
+    so.peak.draws = pdraws;
     for (int i = 0; i < 4; i++)
         so.names[i] = names[i];
     if (pyclef_spectrum_bins(k.bins, k.log_bins, mv[0].m.nside, &so, &bins) < 0)
@@ -322,7 +328,7 @@ PyMethodDef pyclef_spectrum_methods[] = {
      "         pixel_window=True, transfer=None, noise_cl=None, theory_cl=None, iterations=1,\n"
      "         keep_multipoles=False, cache=True, cache_dir=None, peak=True, peak_l_min=100.0,\n"
      "         peak_l_max=400.0, peak_half_width=0.0, peak_curv_sigma=2.0,\n"
-     "         allow_coord_mismatch=False)\n--\n\n"
+     "         allow_coord_mismatch=False, peak_error_draws=200)\n--\n\n"
      "Decoupled band powers (pseudo-C_l, Hivon et al. 2002) as `clef spectrum` computes them,\n"
      "with the same defaults.  map1, map2: float64 RING arrays (NaN = missing pixel), in\n"
      "`unit` (K, mK or uK with or without _CMB; '' = uK); map2 given: the cross-spectrum.\n"

@@ -34,6 +34,7 @@ const struct option cli_analysis_options[CLI_ANALYSIS_NOPTS] = {
     {"peak-l-min", required_argument, 0, CLI_AOPT_PLMIN},
     {"peak-l-max", required_argument, 0, CLI_AOPT_PLMAX},
     {"peak-half-width", required_argument, 0, CLI_AOPT_PHW},
+    {"peak-error-draws", required_argument, 0, CLI_AOPT_PDRAWS},
     {"no-peak", no_argument, 0, CLI_AOPT_NOPEAK},
     {"ordering", required_argument, 0, CLI_AOPT_ORDERING},
     {"unit", required_argument, 0, CLI_AOPT_UNIT},
@@ -46,6 +47,7 @@ void cli_analysis_init(cli_analysis *a)
     a->iterations = CLEF_SPECTRUM_ITERATIONS;
     a->peak_lmin = -1;
     a->peak_lmax = -1;
+    a->peak_draws = -1;
 }
 
 void cli_analysis_help(FILE *f)
@@ -96,8 +98,10 @@ void cli_analysis_help(FILE *f)
         "  --peak-l-min L, --peak-l-max L   search window (default 100..400)\n"
         "  --peak-half-width L    multipoles each side of the fit centre used in the fit\n"
         "                         (default: max(120, three bin widths); docs/peak.md)\n"
+        "  --peak-error-draws N   refitted draws for the peak's statistical error\n"
+        "                         (default %d; 0: first-order propagation only)\n"
         "  --no-peak              skip the peak fit\n\n",
-        CLEF_SPECTRUM_ITERATIONS);
+        CLEF_SPECTRUM_ITERATIONS, CLEF_PEAK_DRAWS);
 }
 
 int cli_analysis_option(const char *cmd, int c, const char *arg, cli_analysis *a)
@@ -163,6 +167,13 @@ int cli_analysis_option(const char *cmd, int c, const char *arg, cli_analysis *a
             return CLI_EXIT_USAGE;
         if (!(a->peak_hw > 0))
             return cli_usage_error(cmd, "--peak-half-width must be positive, got %g", a->peak_hw);
+        return 1;
+    case CLI_AOPT_PDRAWS:
+        if (cli_parse_long(cmd, "--peak-error-draws", arg, &a->peak_draws))
+            return CLI_EXIT_USAGE;
+        if (a->peak_draws < 0 || a->peak_draws > 100000)
+            return cli_usage_error(cmd, "--peak-error-draws must be 0 to 100000, got %ld",
+                                   a->peak_draws);
         return 1;
     case CLI_AOPT_NOPEAK: a->no_peak = 1; return 1;
     case CLI_AOPT_ORDERING: a->ordering = arg; return 1;
@@ -304,6 +315,8 @@ int cli_analysis_setup(const cli_analysis *a, int64_t nside, clef_spectrum_opts 
         so->peak.l_max = a->peak_lmax;
     if (a->peak_hw > 0)
         so->peak.half_width = a->peak_hw;
+    if (a->peak_draws >= 0)
+        so->peak.draws = (int)a->peak_draws;
     so->names[2] = a->mask[0];
     so->names[3] = a->mask[1];
     so->bin_width = (int)a->bin_width;

@@ -21,18 +21,18 @@ enum {
     CLI_AOPT_NOPIX, CLI_AOPT_TRANSFER, CLI_AOPT_NOISE, CLI_AOPT_THEORY, CLI_AOPT_ITER,
     CLI_AOPT_KEEP, CLI_AOPT_CACHE, CLI_AOPT_NOCACHE, CLI_AOPT_CACHELIMIT, CLI_AOPT_PLMIN,
     CLI_AOPT_PLMAX, CLI_AOPT_PHW, CLI_AOPT_NOPEAK, CLI_AOPT_ORDERING, CLI_AOPT_UNIT,
-    CLI_AOPT_CALIB,
+    CLI_AOPT_CALIB, CLI_AOPT_PDRAWS,
     CLI_ANALYSIS_OPT_END
 };
 
 /* Number of entries of cli_analysis_options (without a terminator). */
-#define CLI_ANALYSIS_NOPTS 27
+#define CLI_ANALYSIS_NOPTS 28
 extern const struct option cli_analysis_options[CLI_ANALYSIS_NOPTS];
 
 typedef struct cli_analysis {
     const char *mask[2], *hdu, *column, *bins_file, *beam_file, *transfer_file;
     const char *noise_file, *theory_file, *cache_dir, *ordering, *unit;
-    long lmax, bin_width, log_bins, iterations;
+    long lmax, bin_width, log_bins, iterations, peak_draws;
     double beam_fwhm, peak_lmin, peak_lmax, peak_hw, calibration;
     int no_peak, no_pixel_window, keep, no_cache, coord;
 } cli_analysis;

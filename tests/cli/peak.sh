@@ -50,6 +50,11 @@ check_json "$T/para.json" "j['settings']['half_width'] == 120 and j['settings'][
 "$CLEF_BIN" peak --quiet --cov "$T/para_cov.csv" --json "$T/g.json" "$T/para.csv" > /dev/null \
     || fail "peak with --cov exit $?"
 check_json "$T/g.json" "j['found'] and j['covariance'] == 'full' and abs(j['l_peak'] - 231.7) < 1e-6"
+check_json "$T/g.json" "j['settings']['error_draws'] == 200 and j['error_draws_found'] >= 180 and 0.8 < j['l_peak_err_stat'] / j['l_peak_err_first_order'] < 1.25"
+# --error-draws 0: the first-order error alone (docs/peak.md, step 11).
+"$CLEF_BIN" peak --quiet --error-draws 0 --cov "$T/para_cov.csv" --json "$T/g0.json" "$T/para.csv" \
+    > /dev/null || fail "peak --error-draws 0 exit $?"
+check_json "$T/g0.json" "j['l_peak_err_stat'] == j['l_peak_err_first_order'] and j['settings']['error_draws'] == 0 and 'error_draws_found' not in j"
 
 # --output: the table with the result as PK_* keywords; read back by clef
 # peak (same numbers) and refused when it names the input.
@@ -98,6 +103,8 @@ printf '1,0\n0,1\n' > "$T/badcov.csv"
 expect 5 "covariance of the wrong size" "$CLEF_BIN" peak --cov "$T/badcov.csv" "$T/para.csv"
 expect 2 "the removed --model option" "$CLEF_BIN" peak --model parabola "$T/para.csv"
 expect 2 "half width not positive" "$CLEF_BIN" peak --half-width 0 "$T/para.csv"
+expect 2 "negative error draws" "$CLEF_BIN" peak --error-draws -1 "$T/para.csv"
+expect 2 "error draws not a number" "$CLEF_BIN" peak --error-draws many "$T/para.csv"
 expect 2 "window reversed" "$CLEF_BIN" peak --l-min 400 --l-max 100 "$T/para.csv"
 expect 2 "bad number option" "$CLEF_BIN" peak --half-width x "$T/para.csv"
 expect 2 "no table" "$CLEF_BIN" peak
