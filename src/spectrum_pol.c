@@ -185,6 +185,11 @@ static int prepare(prun *r, const clef_map_pol *const f[2], const clef_map *mask
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for weighted maps");
         const double sp = unit_scale(f[i]->q, "Q");
         for (int64_t p = 0; p < np; p++) {
+            /* Q and U are one spin-2 field: a pixel missing in either is
+             * missing in both (clef_map_read_pol joins them already; a
+             * caller's own maps may not). */
+            if (f[i]->u->valid && !f[i]->u->valid[p])
+                r->wp[i][p] = 0;
             r->qmap[i][p] = sp * f[i]->q->pix[p] * r->wp[i][p];
             r->umap[i][p] = sp * f[i]->u->pix[p] * r->wp[i][p];
         }

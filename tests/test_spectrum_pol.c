@@ -287,6 +287,51 @@ static void test_polcconv_files(void **state)
     clef_bins_destroy(bins);
 }
 
+/* Q and U are one field: a pixel missing in U only is missing in both
+ * (the spin-2 weight takes the validity of Q and of U), so the spectra
+ * equal those of the maps with the pixels missing in both, bit for bit
+ * (common practice: a Stokes pixel without U has no polarization). */
+static void test_qu_validity_joined(void **state)
+{
+    (void)state;
+    const int lmax = 41;
+    double ones[42];
+    for (int l = 0; l <= lmax; l++)
+        ones[l] = 1.0;
+    clef_bins *bins;
+    assert_int_equal(clef_bins_create_linear(&bins, 2, 8, lmax, CLEF_BINS_DL), CLEF_OK);
+    clef_map *mask;
+    assert_int_equal(clef_mask_full(&mask, NS), CLEF_OK);
+    sky s;
+    draw(&s, lmax, 91, 1.0, 1);
+    clef_map_pol fu, fb;
+    field_of(&s, &fu);
+    field_of(&s, &fb);
+    for (int64_t p = 0; p < fu.u->npix / 7; p++) { /* a polar cap missing */
+        fu.u->valid[p] = 0;
+        fu.u->pix[p] = 0;
+        fu.u->nmissing++;
+        fb.u->valid[p] = fb.q->valid[p] = 0;
+        fb.u->pix[p] = fb.q->pix[p] = 0;
+        fb.u->nmissing++;
+        fb.q->nmissing++;
+    }
+    clef_spectrum_opts o;
+    opts_for(&o, bins, lmax, ones);
+    clef_spectrum_pol_result ru, rb;
+    assert_int_equal(clef_spectrum_pol_compute(&fu, NULL, mask, NULL, &o, NULL, 0, &ru), CLEF_OK);
+    assert_int_equal(clef_spectrum_pol_compute(&fb, NULL, mask, NULL, &o, NULL, 0, &rb), CLEF_OK);
+    for (int k = 0; k < 6; k++)
+        assert_memory_equal(ru.bp[k]->dl, rb.bp[k]->dl, (size_t)ru.nbins * sizeof(double));
+    clef_spectrum_pol_result_free(&ru);
+    clef_spectrum_pol_result_free(&rb);
+    clef_map_pol_free(&fu);
+    clef_map_pol_free(&fb);
+    sky_free(&s);
+    clef_map_free(mask);
+    clef_bins_destroy(bins);
+}
+
 /* Masked ensemble: an apodized latitude cut (C2, Grain et al. 2009).  Mean
  * band powers against the input through the windows (incl. the E/B
  * leakage windows) within 3 standard errors; quoted errors against the
@@ -390,6 +435,7 @@ int main(void)
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_full_sky_exact),
         cmocka_unit_test(test_polcconv_files),
+        cmocka_unit_test(test_qu_validity_joined),
         cmocka_unit_test(test_masked_ensemble),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
