@@ -40,9 +40,12 @@ extern "C" {
 /* Fewest bins in a fit: the four free terms plus one degree of freedom. */
 #define CLEF_PEAK_MIN_BINS 5
 /* Default number of parametric draws for the sampling error (docs/peak.md,
- * "Errors"), and the fixed seed that makes the error a deterministic
- * function of the table. */
-#define CLEF_PEAK_DRAWS 200
+ * step 11: 0, the first-order error; on the sky ensembles the draws did not
+ * improve the calibration), the number docs/peak.md suggests when asking for
+ * them, and the fixed seed that makes the error a deterministic function of
+ * the table. */
+#define CLEF_PEAK_DRAWS 0
+#define CLEF_PEAK_DRAWS_SUGGESTED 200
 #define CLEF_PEAK_DRAW_SEED 20021u
 
 typedef struct clef_peak_opts {
@@ -54,8 +57,8 @@ typedef struct clef_peak_opts {
     double shape_prior;     /* prior rms s of the higher-order terms; 0 (default):
                                CLEF_PEAK_SHAPE_PRIOR */
     int draws;              /* parametric draws of the band powers around the fit, each refitted
-                               by the whole procedure, for the sampling error (default
-                               CLEF_PEAK_DRAWS); 0: first-order propagation only */
+                               by the whole procedure, for the sampling error; 0 (default,
+                               CLEF_PEAK_DRAWS): first-order propagation only */
 } clef_peak_opts;
 
 void clef_peak_opts_default(clef_peak_opts *o);
@@ -105,11 +108,11 @@ typedef struct clef_peak_result {
  * moves to the fitted peak until the set of bins stops changing.  Windows:
  * bp->win when present (it must cover every fitted bin's multipoles),
  * else the fallbacks of enum clef_peak_windows.  Sampling error: first-
- * order propagation, corrected by o->draws Gaussian draws of the band
- * powers around the fitted model that are refitted by the same procedure
- * (a parametric bootstrap with the first-order response as control
- * variate; docs/peak.md "Errors"); the draws are seeded with
- * CLEF_PEAK_DRAW_SEED, so the result depends on the table only.
+ * order propagation; with o->draws > 0, from that many Gaussian draws of
+ * the band powers around the fitted model, each refitted by the same
+ * procedure (a parametric bootstrap split along the first-order response;
+ * docs/peak.md, Method step 11), seeded with CLEF_PEAK_DRAW_SEED so that
+ * the result depends on the table only.
  * "No peak" is not an error: the call returns CLEF_OK with found = 0 and a
  * reason (highest bin on the window edge, too few bins, ln D not concave
  * or the curvature not significant, fit not converged, maximum outside the

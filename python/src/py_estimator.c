@@ -424,7 +424,7 @@ static PyTypeObject EstimatorType = {
         "Estimator(*, lmax=0, bin_width=0, bins=None, pixel_window=True, theory_cl=None,\n"
         "          iterations=1, keep_multipoles=False, joint=True, cache=True, cache_dir=None,\n"
         "          peak=True, peak_l_min=100.0, peak_l_max=400.0, peak_half_width=0.0,\n"
-        "          peak_curv_sigma=2.0, allow_coord_mismatch=False, peak_error_draws=200)\n--\n\n"
+        "          peak_curv_sigma=2.0, allow_coord_mismatch=False, peak_error_draws=0)\n--\n\n"
         "The estimator of many fields (include/clef/estimator.h; docs/run-files.md), with the\n"
         "run-wide settings of `clef spectrum --run` and its defaults: lmax (0: 2 nside,\n"
         "lowered by the beams and tables), bin_width (0: automatic) or bins (a bin file or an\n"

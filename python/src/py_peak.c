@@ -116,13 +116,13 @@ static PyObject *py_geometry_infer(PyObject *self, PyObject *args, PyObject *kw)
 PyMethodDef pyclef_peak_methods[] = {
     {"peak_find", PYCLEF_KW(py_peak_find), METH_VARARGS | METH_KEYWORDS,
      "peak_find(table, *, l_min=100.0, l_max=400.0, half_width=0.0, curv_sigma=2.0, "
-     "shape_prior=0.0, error_draws=200)\n--\n\n"
+     "shape_prior=0.0, error_draws=0)\n--\n\n"
      "The first acoustic peak of a band-power table (a dict as clef.spectrum or\n"
      "clef.read_bandpowers return, or a file path), as `clef peak` fits it (docs/peak.md):\n"
      "search window l_min..l_max [multipoles], half_width of the fit [multipoles, 0 =\n"
      "automatic], curv_sigma (required significance of the curvature), shape_prior (rms of\n"
      "the higher-order terms of ln D, 0 = default), error_draws (refitted draws for the\n"
-     "statistical error, 0 = first order only).  Returns a dict: found, reason, l_peak,\n"
+     "statistical error; 0 = first-order propagation, docs/peak.md suggests 200).  Returns a dict: found, reason, l_peak,\n"
      "l_peak_err (stat and shape parts, l_peak_err_first_order, error_draws,\n"
      "error_draws_found), d_peak, d_peak_err [uK^2], corr, theta_deg,\n"
      "theta_deg_err [deg], width [multipoles], chi2, dof, p_value, nbins_used, bin_first,\n"

@@ -328,7 +328,7 @@ PyMethodDef pyclef_spectrum_methods[] = {
      "         pixel_window=True, transfer=None, noise_cl=None, theory_cl=None, iterations=1,\n"
      "         keep_multipoles=False, cache=True, cache_dir=None, peak=True, peak_l_min=100.0,\n"
      "         peak_l_max=400.0, peak_half_width=0.0, peak_curv_sigma=2.0,\n"
-     "         allow_coord_mismatch=False, peak_error_draws=200)\n--\n\n"
+     "         allow_coord_mismatch=False, peak_error_draws=0)\n--\n\n"
      "Decoupled band powers (pseudo-C_l, Hivon et al. 2002) as `clef spectrum` computes them,\n"
      "with the same defaults.  map1, map2: float64 RING arrays (NaN = missing pixel), in\n"
      "`unit` (K, mK or uK with or without _CMB; '' = uK); map2 given: the cross-spectrum.\n"

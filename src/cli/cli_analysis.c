@@ -98,10 +98,11 @@ void cli_analysis_help(FILE *f)
         "  --peak-l-min L, --peak-l-max L   search window (default 100..400)\n"
         "  --peak-half-width L    multipoles each side of the fit centre used in the fit\n"
         "                         (default: max(120, three bin widths); docs/peak.md)\n"
-        "  --peak-error-draws N   refitted draws for the peak's statistical error\n"
-        "                         (default %d; 0: first-order propagation only)\n"
+        "  --peak-error-draws N   refit N draws of the band powers for the peak's\n"
+        "                         statistical error (default %d: first-order\n"
+        "                         propagation; docs/peak.md suggests %d)\n"
         "  --no-peak              skip the peak fit\n\n",
-        CLEF_SPECTRUM_ITERATIONS, CLEF_PEAK_DRAWS);
+        CLEF_SPECTRUM_ITERATIONS, CLEF_PEAK_DRAWS, CLEF_PEAK_DRAWS_SUGGESTED);
 }
 
 int cli_analysis_option(const char *cmd, int c, const char *arg, cli_analysis *a)

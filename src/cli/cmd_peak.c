@@ -38,8 +38,8 @@ static void help(void)
            "  --curv-sigma N      report no peak unless the curvature of ln D at the peak\n"
            "                      is at least N standard errors below zero (default %g)\n"
            "  --error-draws N     refit N Gaussian draws of the band powers around the fit\n"
-           "                      for the statistical error (default %d; 0: first-order\n"
-           "                      propagation only; docs/peak.md)\n"
+           "                      for the statistical error (default %d: first-order\n"
+           "                      propagation; docs/peak.md suggests %d)\n"
            "  --cov FILE          covariance of D (uK^4) for the table's bins, a text\n"
            "                      matrix (default: the table's own, else its errors alone)\n"
            "  --output FILE       write the table with the result as PK_* keywords to FILE\n"
@@ -56,7 +56,7 @@ static void help(void)
            "read or write a file, 5 bad file format, 8 out of memory, 9 no peak found with\n"
            "--require.\n",
            o.l_min, o.l_max, CLEF_PEAK_HALF_WIDTH_MIN, CLEF_PEAK_HALF_WIDTH_BINS, o.curv_nsigma,
-           o.draws);
+           o.draws, CLEF_PEAK_DRAWS_SUGGESTED);
 }
 
 /* The result as a JSON object (numbers only where defined). */
