@@ -300,7 +300,7 @@ static int read_columns(fitsfile *f, clef_bandpowers *bp, const char *path, cons
     for (int k = 0; k < 4; k++)
         fits_read_col(f, TDOUBLE, col[k + 2], 1, 1, n, NULL, dcols[k], &anynul, &st);
     if (st)
-        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the band-power columns");
+        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDPOWER columns");
     for (LONGLONG b = 0; b < n; b++) {
         for (int k = 0; k < 4; k++)
             if (!isfinite(dcols[k][b]))
@@ -332,7 +332,7 @@ static int find_image(fitsfile *f, const char *name, int extver, const char *pat
     if (!st && *naxis == 2)
         fits_get_img_size(f, 2, naxes, &st);
     if (st) {
-        char what[96];
+        char what[FLEN_VALUE + 40];
         snprintf(what, sizeof what, "cannot read HDU %s", name);
         return fits_fail(CLEF_EFORMAT, st, path, what);
     }
@@ -363,7 +363,9 @@ static int read_cov(fitsfile *f, clef_bandpowers *bp, const char *path, const ch
     fits_read_img(f, TDOUBLE, 1, (LONGLONG)nn, NULL, cov, &anynul, &st);
     if (st) {
         free(cov);
-        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the covariance image");
+        char what[FLEN_VALUE + 40];
+        snprintf(what, sizeof what, "cannot read the %s image", name);
+        return fits_fail(CLEF_EFORMAT, st, path, what);
     }
     const int status = clef_table_check_cov(cov, (size_t)bp->nbins, path);
     if (status != CLEF_OK) {
@@ -398,7 +400,7 @@ static int read_win(fitsfile *f, clef_bandpowers *bp, const char *path, const ch
         lmin = 0;
     }
     if (st)
-        return fits_fail(CLEF_EFORMAT, st, path, "band-power windows: cannot read keyword WINLMIN");
+        return fits_fail(CLEF_EFORMAT, st, path, "HDU BANDWIN: cannot read keyword WINLMIN");
     if (lmin != 0)
         CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s keyword WINLMIN = %ld: only 0 is supported",
                   path, name, lmin);
@@ -406,8 +408,11 @@ static int read_win(fitsfile *f, clef_bandpowers *bp, const char *path, const ch
     const size_t nn = (size_t)bp->nbins * (size_t)naxes[0];
     int anynul = 0;
     fits_read_img(f, TDOUBLE, 1, (LONGLONG)nn, NULL, bp->win, &anynul, &st);
-    if (st)
-        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the window image");
+    if (st) {
+        char what[FLEN_VALUE + 40];
+        snprintf(what, sizeof what, "cannot read the %s image", name);
+        return fits_fail(CLEF_EFORMAT, st, path, what);
+    }
     for (size_t i = 0; i < nn; i++)
         if (!isfinite(bp->win[i]))
             CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s: element (bin %zu, l %zu) is not finite",
@@ -426,7 +431,7 @@ static int read_table_hdu(fitsfile *f, clef_bandpowers **out, const char *path, 
     LONGLONG nrows = 0;
     fits_get_num_rowsll(f, &nrows, &st);
     if (st)
-        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the band-power row count");
+        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDPOWER row count");
     if (nrows < 1 || nrows > ((LONGLONG)1 << 30))
         CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s: %lld rows", path, hdu, nrows);
     CLEF_CHECK(clef_bandpowers_alloc(&bp, (int)nrows, 0));
