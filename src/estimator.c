@@ -85,9 +85,6 @@ static void free_pair(est_pair *p)
     clef_spectrum_result_free(&p->res);
     free(p->tl);
     free(p->pcl);
-    clef_bins_destroy(p->all_bins);
-    free(p->rep);
-    clef_coupling_binned_destroy(p->kb);
     free(p->band);
     free(p->cov_all);
 }
@@ -112,6 +109,13 @@ void clef_estimator_destroy(clef_estimator *e)
     }
     for (int k = 0; k < e->nkernels; k++)
         clef_coupling_destroy(e->kernels[k].m);
+    for (int k = 0; k < e->nops; k++) {
+        clef_bins_destroy(e->ops[k].all_bins);
+        free(e->ops[k].rep);
+        clef_coupling_binned_destroy(e->ops[k].kb);
+        free(e->ops[k].win);
+    }
+    free(e->ops);
     if (e->walm) {
         const int nw = e->nweights, n = nw + nw * (nw + 1) / 2;
         for (int k = 0; k < n; k++)
@@ -353,6 +357,14 @@ const double *clef_estimator_covariance(const clef_estimator *e, int *n)
     if (n)
         *n = e->cov ? e->ncov : 0;
     return e->cov;
+}
+
+void clef_estimator_shared(const clef_estimator *e, int *mask_pairs, int *operators)
+{
+    if (mask_pairs)
+        *mask_pairs = e && e->computed ? e->nmasks : 0;
+    if (operators)
+        *operators = e && e->computed ? e->nops : 0;
 }
 
 void clef_estimator_transforms(const clef_estimator *e, int *maps, int *masks)

@@ -1,7 +1,7 @@
 /* Stage "bins": the reported bins, common to every pair (given, or
  * linear bins as wide as the widest coupling of the run's mask pairs
- * needs), and per pair the hidden bins around them (docs/method.md
- * section 5). */
+ * needs), and the hidden bins around them per distinct pair of weights
+ * and filter (docs/method.md section 5). */
 #define _DEFAULT_SOURCE
 #include <math.h>
 #include <stdlib.h>
@@ -54,7 +54,7 @@ static int auto_bins(clef_estimator *r, int width)
  * Hidden bins where the signal filter vanishes are left out (no signal
  * reaches them; K would be singular).  Their band powers take part in the
  * decoupling and are not reported. */
-static int make_all_bins(const clef_estimator *r, est_pair *p, int cw)
+static int make_all_bins(const clef_estimator *r, est_op *p, int cw)
 {
     const clef_bins *b = r->bins;
     const int nb = clef_bins_count(b);
@@ -108,7 +108,6 @@ static int make_all_bins(const clef_estimator *r, est_pair *p, int cw)
         if (isrep[j])
             p->rep[k++] = j;
     p->nb_all = n;
-    p->res.nbins_hidden = n - nb;
 fail:
     free(lo);
     free(hi);
@@ -151,7 +150,8 @@ int clef_est_bins(clef_estimator *r)
 
 /* The pair filter T_l = sqrt(F_a F_b) B_a B_b p_l^2 (one field's filter
  * when both fields have the same) and the hidden bins where it does not
- * vanish. */
+ * vanish: those of an earlier pair with the same weights and filter
+ * (est_op), else new ones. */
 int clef_est_pair_bins(clef_estimator *r, est_pair *p)
 {
     const int n = r->lmax_ext + 1;
@@ -163,6 +163,28 @@ int clef_est_pair_bins(clef_estimator *r, est_pair *p)
     else
         for (int l = 0; l < n; l++)
             p->tl[l] = sqrt(fa[l] * fb[l]);
-    const int cw = r->masks[p->mp].cw;
-    return make_all_bins(r, p, cw);
+    p->op = -1;
+    for (int k = 0; k < r->nops && p->op < 0; k++)
+        if (r->ops[k].mp == p->mp && !memcmp(r->ops[k].tl, p->tl, (size_t)n * sizeof *p->tl))
+            p->op = k;
+    if (p->op < 0) {
+        est_op *no = realloc(r->ops, (size_t)(r->nops + 1) * sizeof *no);
+        if (!no)
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for the binned operators");
+        r->ops = no;
+        est_op *op = &no[r->nops];
+        memset(op, 0, sizeof *op);
+        op->mp = p->mp;
+        op->tl = p->tl;
+        /* Counted before the bins are made, so that destroy frees them on
+         * failure too. */
+        p->op = r->nops++;
+        CLEF_TRY(make_all_bins(r, op, r->masks[p->mp].cw));
+    }
+    const est_op *op = &r->ops[p->op];
+    p->all_bins = op->all_bins;
+    p->rep = op->rep;
+    p->nb_all = op->nb_all;
+    p->res.nbins_hidden = op->nb_all - r->nb;
+    return CLEF_OK;
 }

@@ -1,9 +1,11 @@
 /* Stages "masks", "coupling", "decouple" and "windows" of the estimator.
  * What depends on two sets of weights alone (mask spectra, deprojection
  * correction, coupling matrix M) lives in one est_masks per distinct pair
- * of weights, computed once for all pairs of fields sharing it, and goes
- * through the cache folder; what depends on the two fields' filters as
- * well (the binned operator K, band powers, windows) lives in the pair. */
+ * of weights (in either order), computed once for all pairs of fields
+ * sharing it, and goes through the cache folder; what depends on the pair
+ * filter as well (hidden bins, the binned operator K, the windows) in one
+ * est_op per distinct (weights pair, filter); the band powers in the
+ * pair. */
 #define _DEFAULT_SOURCE
 #include <complex.h>
 #include <math.h>
@@ -46,9 +48,13 @@ int clef_est_mask_pairs(clef_estimator *e)
     for (int k = 0; k < e->npairs; k++) {
         est_pair *p = &e->pairs[k];
         const int wa = e->fields[p->a].wid, wb = e->fields[p->b].wid;
+        /* M, W_l, the kernels and the deprojection correction are symmetric
+         * in the two weights (a cross-spectrum of real maps: C^ab = C^ba):
+         * (w_b, w_a) is the pair of masks (w_a, w_b). */
         int found = -1;
         for (int j = 0; j < e->nmasks; j++)
-            if (e->masks[j].wa == wa && e->masks[j].wb == wb)
+            if ((e->masks[j].wa == wa && e->masks[j].wb == wb) ||
+                (e->masks[j].wa == wb && e->masks[j].wb == wa))
                 found = j;
         if (found >= 0) {
             p->mp = found;
@@ -193,10 +199,14 @@ int clef_est_decouple(clef_estimator *e, est_pair *p)
     const clef_spectrum_opts *o = &e->o;
     const est_masks *mk = &e->masks[p->mp];
     const est_field *fa = &e->fields[p->a];
-    clef_coupling_opts co;
-    co.rcond_min = o->rcond_min > 0 ? o->rcond_min : CLEF_COUPLING_RCOND_MIN;
-    co.width_level = CLEF_COUPLING_WIDTH_LEVEL;
-    CLEF_TRY(clef_coupling_binned_create(&p->kb, mk->m, p->all_bins, p->tl, &co));
+    est_op *op = &e->ops[p->op];
+    if (!op->kb) { /* the first pair of its operator builds K */
+        clef_coupling_opts co;
+        co.rcond_min = o->rcond_min > 0 ? o->rcond_min : CLEF_COUPLING_RCOND_MIN;
+        co.width_level = CLEF_COUPLING_WIDTH_LEVEL;
+        CLEF_TRY(clef_coupling_binned_create(&op->kb, mk->m, op->all_bins, op->tl, &co));
+    }
+    p->kb = op->kb;
     p->res.rcond = clef_coupling_binned_rcond(p->kb);
 
     /* The pseudo-spectrum: a single map's auto-spectrum, or the mean of the
@@ -250,18 +260,33 @@ int clef_est_decouple(clef_estimator *e, est_pair *p)
  * monopole is removed by default). */
 int clef_est_windows(clef_estimator *r, est_pair *p)
 {
-    const int nb = r->nb, na = p->nb_all;
+    const int nb = r->nb;
     const size_t n = (size_t)r->lmax_ext + 1;
-    double *all = malloc((size_t)na * n * sizeof *all);
-    if (!all)
-        CLEF_FAIL(CLEF_ENOMEM, "out of memory for %d x %zu window functions", na, n);
-    int status = clef_coupling_binned_windows(p->kb, r->masks[p->mp].m, p->all_bins, p->tl, all);
-    if (status == CLEF_OK)
-        status = clef_bandpowers_alloc_windows(p->res.bp, r->lmax_ext);
-    if (status == CLEF_OK)
-        clef_spectrum_windows_to_dl(r->bins, p->rep, nb, all, n, n, p->res.bp->win);
-    free(all);
-    return status;
+    est_op *op = &r->ops[p->op];
+    if (!op->win) { /* once per operator: W depends on K, M and the filter alone */
+        const int na = op->nb_all;
+        double *all = malloc((size_t)na * n * sizeof *all);
+        op->win = malloc((size_t)nb * n * sizeof *op->win);
+        if (!all || !op->win) {
+            free(all);
+            free(op->win);
+            op->win = NULL;
+            CLEF_FAIL(CLEF_ENOMEM, "out of memory for %d x %zu window functions", na, n);
+        }
+        const int status = clef_coupling_binned_windows(op->kb, r->masks[op->mp].m,
+                                                        op->all_bins, op->tl, all);
+        if (status == CLEF_OK)
+            clef_spectrum_windows_to_dl(r->bins, op->rep, nb, all, n, n, op->win);
+        free(all);
+        if (status != CLEF_OK) {
+            free(op->win);
+            op->win = NULL;
+            return status;
+        }
+    }
+    CLEF_TRY(clef_bandpowers_alloc_windows(p->res.bp, r->lmax_ext));
+    memcpy(p->res.bp->win, op->win, (size_t)nb * n * sizeof *op->win);
+    return CLEF_OK;
 }
 
 void clef_spectrum_windows_to_dl(const clef_bins *bins, const int *rep, int nb, const double *all,

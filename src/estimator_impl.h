@@ -45,15 +45,31 @@ typedef struct est_masks {
     double wab;                /* mean of w_a w_b */
 } est_masks;
 
-typedef struct est_pair {
-    int a, b;                  /* fields */
+/* What depends on a pair of weights and the pair filter alone: the hidden
+ * bins, the binned operator K and the band-power windows.  One per distinct
+ * (weights pair, filter), shared by every pair of fields that has them (the
+ * N(N+1)/2 pairs of N fields with a few masks and one beam need a few). */
+typedef struct est_op {
     int mp;                    /* its est_masks */
-    double *tl;                /* pair filter sqrt(F_a F_b) B_a B_b p^2, l = 0..lmax_ext */
-    double *pcl;               /* pseudo-spectrum to decouple (split mean), before the noise */
-    int noise_sub;             /* the field's noise spectrum was subtracted */
+    const double *tl;          /* the filter (the first pair's, borrowed) */
     clef_bins *all_bins;       /* reported and hidden bins */
     int *rep, nb_all;
     clef_coupling_binned *kb;  /* K over all_bins */
+    double *win;               /* windows on D_l, nb x (lmax_ext + 1), once computed */
+} est_op;
+
+typedef struct est_pair {
+    int a, b;                  /* fields */
+    int mp;                    /* its est_masks */
+    int op;                    /* its est_op */
+    double *tl;                /* pair filter sqrt(F_a F_b) B_a B_b p^2, l = 0..lmax_ext */
+    double *pcl;               /* pseudo-spectrum to decouple (split mean), before the noise */
+    int noise_sub;             /* the field's noise spectrum was subtracted */
+    /* Borrowed from ops[op] (which owns them), for the stages that read them. */
+    const clef_bins *all_bins; /* reported and hidden bins */
+    const int *rep;
+    int nb_all;
+    const clef_coupling_binned *kb;  /* K over all_bins */
     double *band;              /* decoupled band powers of all_bins */
     double *cov_all;           /* the pair's own covariance block over all_bins */
     clef_spectrum_result res;
@@ -68,12 +84,13 @@ typedef struct est_kernel {
 struct clef_estimator {
     clef_spectrum_opts o;
     int joint;
-    int nfields, npairs, nweights, nmasks, nkernels, user_pairs;
+    int nfields, npairs, nweights, nmasks, nkernels, nops, user_pairs;
     est_field *fields;
     est_pair *pairs;
     est_weights *weights;
     est_masks *masks;
     est_kernel *kernels;
+    est_op *ops;
     int64_t nside, npix;
     int lmax, lmax_ext, lmax_t, lmax_auto;
     const clef_bins *bins;     /* reported bins (common to all pairs) */

@@ -7,9 +7,15 @@
 #include <stddef.h>
 
 #include "clef/plot.h"
+#include "clef/table.h"
 
 /* -std=c11 hides M_PI. */
 #define PLOT_PI 3.14159265358979323846
+
+/* An sRGB colour, components in [0, 1]. */
+typedef struct plot_rgb {
+    double r, g, b;
+} plot_rgb;
 
 /* A figure being drawn: the cairo surface writes into the temporary file of
  * `out` (vector formats) or is written there by plot_canvas_close (PNG). */
@@ -61,12 +67,31 @@ double plot_text_width(cairo_t *cr, const char *s);
 void plot_draw_axes(cairo_t *cr, const clef_plot_frame *f, const char *xlabel,
                     const char *ylabel, double font);
 
+/* Band-power drawing shared by the figure of one table (plot_spectrum.c)
+ * and the figure of several (plot_pairs.c). */
+extern const plot_rgb plot_colour_main, plot_colour_theory;
+/* CLEF_EINVAL for an empty table, non-finite values, negative errors, or
+ * l_eff <= 0 on a logarithmic axis; `what` names the table. */
+int plot_check_table(const clef_bandpowers *bp, const char *what, int log_l);
+/* Widen [lo, hi] to the table's l range (bin edges, l_eff) and D +- err. */
+void plot_table_x_range(const clef_bandpowers *bp, int log_l, double *lo, double *hi);
+void plot_table_y_range(const clef_bandpowers *bp, double *lo, double *hi);
+enum plot_mark {
+    PLOT_MARK_DISC = 0, PLOT_MARK_OPEN_SQUARE, PLOT_MARK_SQUARE, PLOT_MARK_TRIANGLE,
+    PLOT_MARK_DIAMOND
+};
+/* A marker of radius r centred on (x, y) in the current source colour. */
+void plot_draw_marker(cairo_t *cr, double x, double y, double r, int shape);
+/* The table's points with error bars, moved by `shift` device units along x,
+ * with the bins' l ranges as thin bars when bin_bars; fs: font size. */
+void plot_draw_table(cairo_t *cr, const clef_plot_frame *f, const clef_bandpowers *bp,
+                     plot_rgb c, int shape, double shift, int bin_bars, double fs);
+/* A theory curve as a line in plot_colour_theory. */
+void plot_draw_curve(cairo_t *cr, const clef_plot_frame *f, const clef_plot_curve *t, double fs);
+
 /* Colour scales of our own (plot_util.c: construction; docs/figures.md):
  * a table of PLOT_SCALE_N sRGB colours at equal CIE 1976 colour
  * differences, built once per figure (no shared state). */
-typedef struct plot_rgb {
-    double r, g, b;
-} plot_rgb;
 #define PLOT_SCALE_N 513
 typedef struct plot_scale {
     plot_rgb c[PLOT_SCALE_N];
@@ -75,6 +100,11 @@ typedef struct plot_scale {
 void plot_scale_build(int scale, plot_scale *s);
 /* t in [0, 1] (clamped): 0 = low end, 1 = high end, 0.5 = diverging centre. */
 plot_rgb plot_scale_colour(const plot_scale *s, double t);
+/* Colour of series k of n in a figure of several band-power sets: hues
+ * evenly spaced around the CIELAB hue circle at chroma 52, lightness
+ * alternating between L* 42 and 62, so that neighbours in the legend
+ * differ in lightness as well as hue (plot_util.c). */
+plot_rgb plot_series_colour(int k, int n);
 /* Missing pixels: hatch of these two greys. */
 extern const plot_rgb plot_missing_light, plot_missing_dark;
 

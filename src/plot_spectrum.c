@@ -10,10 +10,11 @@
 #define DEFAULT_WIDTH 900
 #define DEFAULT_HEIGHT 600
 
-/* Colours of the figure's elements. */
-static const plot_rgb colour_main = {0.10, 0.22, 0.55};
+/* Colours of the figure's elements (the main and theory colours are shared
+ * with the figure of several pairs, plot_pairs.c). */
+const plot_rgb plot_colour_main = {0.10, 0.22, 0.55};
+const plot_rgb plot_colour_theory = {0.88, 0.42, 0.08};
 static const plot_rgb colour_compare = {0.05, 0.55, 0.50};
-static const plot_rgb colour_theory = {0.88, 0.42, 0.08};
 static const plot_rgb colour_peak = {0.80, 0.10, 0.45};
 
 static double font_size(const clef_plot_frame *f)
@@ -22,7 +23,7 @@ static double font_size(const clef_plot_frame *f)
     return s < 7 ? 7 : s;
 }
 
-static int check_table(const clef_bandpowers *bp, const char *what, int log_l)
+int plot_check_table(const clef_bandpowers *bp, const char *what, int log_l)
 {
     if (!bp || bp->nbins < 1)
         CLEF_FAIL(CLEF_EINVAL, "%s: band-power table has no bins", what);
@@ -38,7 +39,7 @@ static int check_table(const clef_bandpowers *bp, const char *what, int log_l)
     return CLEF_OK;
 }
 
-static void table_x_range(const clef_bandpowers *bp, int log_l, double *lo, double *hi)
+void plot_table_x_range(const clef_bandpowers *bp, int log_l, double *lo, double *hi)
 {
     for (int b = 0; b < bp->nbins; b++) {
         double a = bp->l_eff[b], z = bp->l_eff[b];
@@ -52,7 +53,7 @@ static void table_x_range(const clef_bandpowers *bp, int log_l, double *lo, doub
     }
 }
 
-static void table_y_range(const clef_bandpowers *bp, double *lo, double *hi)
+void plot_table_y_range(const clef_bandpowers *bp, double *lo, double *hi)
 {
     for (int b = 0; b < bp->nbins; b++) {
         *lo = fmin(*lo, bp->dl[b] - bp->dl_err[b]);
@@ -70,18 +71,18 @@ int clef_plot_spectrum_layout(const clef_bandpowers *bp, const clef_plot_spectru
     f->width = o->width > 0 ? o->width : DEFAULT_WIDTH;
     f->height = o->height > 0 ? o->height : DEFAULT_HEIGHT;
     CLEF_TRY(plot_check_size("band-power figure", f->width, f->height));
-    CLEF_TRY(check_table(bp, "band-power figure", o->log_l));
+    CLEF_TRY(plot_check_table(bp, "band-power figure", o->log_l));
     if (o->compare)
-        CLEF_TRY(check_table(o->compare, "comparison table", o->log_l));
+        CLEF_TRY(plot_check_table(o->compare, "comparison table", o->log_l));
     f->log_x = o->log_l != 0;
 
     double xlo = INFINITY, xhi = -INFINITY, ylo = 0, yhi = -INFINITY;
-    table_x_range(bp, f->log_x, &xlo, &xhi);
+    plot_table_x_range(bp, f->log_x, &xlo, &xhi);
     if (o->compare)
-        table_x_range(o->compare, f->log_x, &xlo, &xhi);
-    table_y_range(bp, &ylo, &yhi);
+        plot_table_x_range(o->compare, f->log_x, &xlo, &xhi);
+    plot_table_y_range(bp, &ylo, &yhi);
     if (o->compare)
-        table_y_range(o->compare, &ylo, &yhi);
+        plot_table_y_range(o->compare, &ylo, &yhi);
     if (o->theory) {
         /* The theory curve is shown over the data's l range only. */
         for (size_t i = 0; i < o->theory->n; i++) {
@@ -123,27 +124,51 @@ static void set_rgb(cairo_t *cr, plot_rgb c, double alpha)
     cairo_set_source_rgba(cr, c.r, c.g, c.b, alpha);
 }
 
-/* A data point: filled circle (main table) or open square (comparison). */
-static void draw_point(cairo_t *cr, double x, double y, double r, int square)
+void plot_draw_marker(cairo_t *cr, double x, double y, double r, int shape)
 {
-    if (square) {
+    switch (shape) {
+    case PLOT_MARK_OPEN_SQUARE:
         cairo_rectangle(cr, x - r, y - r, 2 * r, 2 * r);
         cairo_stroke(cr);
-    } else {
+        return;
+    case PLOT_MARK_SQUARE:
+        cairo_rectangle(cr, x - 0.9 * r, y - 0.9 * r, 1.8 * r, 1.8 * r);
+        break;
+    case PLOT_MARK_TRIANGLE:
+        /* Equal area to the disc's: side 2.69 r; centroid at (x, y). */
+        cairo_move_to(cr, x, y - 1.55 * r);
+        cairo_line_to(cr, x + 1.345 * r, y + 0.78 * r);
+        cairo_line_to(cr, x - 1.345 * r, y + 0.78 * r);
+        cairo_close_path(cr);
+        break;
+    case PLOT_MARK_DIAMOND:
+        cairo_move_to(cr, x, y - 1.25 * r);
+        cairo_line_to(cr, x + 1.25 * r, y);
+        cairo_line_to(cr, x, y + 1.25 * r);
+        cairo_line_to(cr, x - 1.25 * r, y);
+        cairo_close_path(cr);
+        break;
+    default:
         cairo_new_sub_path(cr);
         cairo_arc(cr, x, y, r, 0, 2 * PLOT_PI);
-        cairo_fill(cr);
+        break;
     }
+    cairo_fill(cr);
 }
 
-static void draw_table(cairo_t *cr, const clef_plot_frame *f, const clef_bandpowers *bp,
-                       plot_rgb c, int square, double fs)
+static void draw_point(cairo_t *cr, double x, double y, double r, int square)
+{
+    plot_draw_marker(cr, x, y, r, square ? PLOT_MARK_OPEN_SQUARE : PLOT_MARK_DISC);
+}
+
+void plot_draw_table(cairo_t *cr, const clef_plot_frame *f, const clef_bandpowers *bp,
+                     plot_rgb c, int shape, double shift, int bin_bars, double fs)
 {
     const double r = 0.28 * fs, cap = 0.3 * fs;
     set_rgb(cr, c, 1);
     cairo_set_line_width(cr, 0.09 * fs);
     for (int b = 0; b < bp->nbins; b++) {
-        const double x = clef_plot_frame_x(f, bp->l_eff[b]);
+        const double x = clef_plot_frame_x(f, bp->l_eff[b]) + shift;
         const double y = clef_plot_frame_y(f, bp->dl[b]);
         const double y0 = clef_plot_frame_y(f, bp->dl[b] - bp->dl_err[b]);
         const double y1 = clef_plot_frame_y(f, bp->dl[b] + bp->dl_err[b]);
@@ -156,19 +181,24 @@ static void draw_table(cairo_t *cr, const clef_plot_frame *f, const clef_bandpow
             cairo_line_to(cr, x + cap, y1);
         }
         /* The bin's l range as a thin horizontal bar. */
-        if (bp->l_hi[b] > bp->l_lo[b] && (!f->log_x || bp->l_lo[b] > 0)) {
+        if (bin_bars && bp->l_hi[b] > bp->l_lo[b] && (!f->log_x || bp->l_lo[b] > 0)) {
             cairo_move_to(cr, clef_plot_frame_x(f, bp->l_lo[b]), y);
             cairo_line_to(cr, clef_plot_frame_x(f, bp->l_hi[b]), y);
         }
         cairo_stroke(cr);
-        draw_point(cr, x, y, r, square);
+        plot_draw_marker(cr, x, y, r, shape);
     }
 }
 
-static void draw_theory(cairo_t *cr, const clef_plot_frame *f, const clef_plot_curve *t,
-                        double fs)
+static void draw_table(cairo_t *cr, const clef_plot_frame *f, const clef_bandpowers *bp,
+                       plot_rgb c, int square, double fs)
 {
-    set_rgb(cr, colour_theory, 1);
+    plot_draw_table(cr, f, bp, c, square ? PLOT_MARK_OPEN_SQUARE : PLOT_MARK_DISC, 0, 1, fs);
+}
+
+void plot_draw_curve(cairo_t *cr, const clef_plot_frame *f, const clef_plot_curve *t, double fs)
+{
+    set_rgb(cr, plot_colour_theory, 1);
     cairo_set_line_width(cr, 0.13 * fs);
     int started = 0;
     for (size_t i = 0; i < t->n; i++) {
@@ -241,7 +271,7 @@ static void draw_legend(cairo_t *cr, const clef_plot_frame *f, const legend_item
         switch (it[i].kind) {
         case 0:
         case 1:
-            set_rgb(cr, it[i].kind ? colour_compare : colour_main, 1);
+            set_rgb(cr, it[i].kind ? colour_compare : plot_colour_main, 1);
             cairo_set_line_width(cr, 0.09 * fs);
             cairo_move_to(cr, sx, cy);
             cairo_line_to(cr, sx + sample, cy);
@@ -249,7 +279,7 @@ static void draw_legend(cairo_t *cr, const clef_plot_frame *f, const legend_item
             draw_point(cr, sx + 0.5 * sample, cy, 0.28 * fs, it[i].kind);
             break;
         case 2:
-            set_rgb(cr, colour_theory, 1);
+            set_rgb(cr, plot_colour_theory, 1);
             cairo_set_line_width(cr, 0.13 * fs);
             cairo_move_to(cr, sx, cy);
             cairo_line_to(cr, sx + sample, cy);
@@ -352,10 +382,10 @@ int clef_plot_spectrum(const clef_bandpowers *bp, const clef_plot_spectrum_opts 
     if (peak)
         draw_peak_band(cr, &f, o->peak);
     if (o->theory && o->theory->n > 1)
-        draw_theory(cr, &f, o->theory, fs);
+        plot_draw_curve(cr, &f, o->theory, fs);
     if (o->compare)
         draw_table(cr, &f, o->compare, colour_compare, 1, fs);
-    draw_table(cr, &f, bp, colour_main, 0, fs);
+    draw_table(cr, &f, bp, plot_colour_main, 0, fs);
     cairo_restore(cr);
     if (peak)
         draw_peak_line(cr, &f, o->peak, fs);

@@ -420,6 +420,16 @@ int clef_plot_scale_rgb(int scale, double t, double rgb[3])
     return CLEF_OK;
 }
 
+plot_rgb plot_series_colour(int k, int n)
+{
+    double lab[3];
+    /* An odd count spaces the hues for n + 1, so that the last set (of the
+     * lightness of the first) is two steps round the circle from it. */
+    const double h = 20.0 + 360.0 * k / (n > 0 ? n + n % 2 : 1);
+    lch_point(k % 2 ? 62 : 42, 52, fmod(h, 360.0), lab);
+    return lab_to_srgb(lab);
+}
+
 /* Missing pixels: light grey hatched with a darker grey, so that they are
  * told apart from the scale's near-white centre and from any value. */
 const plot_rgb plot_missing_light = {0.80, 0.80, 0.80};

@@ -9,6 +9,7 @@
 #include <math.h>
 #include <stdio.h>
 #include <stdlib.h>
+#include <errno.h>
 #include <string.h>
 #include <unistd.h>
 
@@ -280,7 +281,7 @@ static int read_meta(fitsfile *f, clef_bandpowers *bp, const char *path)
     return CLEF_OK;
 }
 
-static int read_columns(fitsfile *f, clef_bandpowers *bp, const char *path)
+static int read_columns(fitsfile *f, clef_bandpowers *bp, const char *path, const char *hdu)
 {
     const LONGLONG n = bp->nbins;
     int col[CLEF_TABLE_NCOLS];
@@ -289,7 +290,7 @@ static int read_columns(fitsfile *f, clef_bandpowers *bp, const char *path)
         fits_get_colnum(f, CASEINSEN, (char *)clef_table_fits_names[k], &col[k], &st);
         if (st) {
             char what[128];
-            snprintf(what, sizeof what, "HDU BANDPOWER has no column %s", clef_table_fits_names[k]);
+            snprintf(what, sizeof what, "HDU %s has no column %s", hdu, clef_table_fits_names[k]);
             return fits_fail(CLEF_EFORMAT, st, path, what);
         }
     }
@@ -303,26 +304,26 @@ static int read_columns(fitsfile *f, clef_bandpowers *bp, const char *path)
     for (LONGLONG b = 0; b < n; b++) {
         for (int k = 0; k < 4; k++)
             if (!isfinite(dcols[k][b]))
-                CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDPOWER row %lld column %s: not a finite number",
-                          path, b + 1, clef_table_fits_names[k + 2]);
+                CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s row %lld column %s: not a finite number",
+                          path, hdu, b + 1, clef_table_fits_names[k + 2]);
         if (bp->l_lo[b] < 0 || bp->l_hi[b] < bp->l_lo[b])
-            CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDPOWER row %lld: l range [%d, %d] is invalid", path,
-                      b + 1, bp->l_lo[b], bp->l_hi[b]);
+            CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s row %lld: l range [%d, %d] is invalid", path,
+                      hdu, b + 1, bp->l_lo[b], bp->l_hi[b]);
         if (bp->dl_err[b] < 0)
-            CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDPOWER row %lld column D_SIGMA: %g is negative",
-                      path, b + 1, bp->dl_err[b]);
+            CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s row %lld column D_SIGMA: %g is negative",
+                      path, hdu, b + 1, bp->dl_err[b]);
     }
     return CLEF_OK;
 }
 
 /* Move to the image HDU `name`; *present = 0 when the file has none.  A
  * 2-dimensional image fills naxes. */
-static int find_image(fitsfile *f, const char *name, const char *path, int *present, int *naxis,
-                      long naxes[2])
+static int find_image(fitsfile *f, const char *name, int extver, const char *path, int *present,
+                      int *naxis, long naxes[2])
 {
     int st = 0;
     *present = 0;
-    fits_movnam_hdu(f, IMAGE_HDU, (char *)name, 0, &st);
+    fits_movnam_hdu(f, IMAGE_HDU, (char *)name, extver, &st);
     if (st == BAD_HDU_NUM) {
         fits_clear_errmsg();
         return CLEF_OK;
@@ -331,7 +332,7 @@ static int find_image(fitsfile *f, const char *name, const char *path, int *pres
     if (!st && *naxis == 2)
         fits_get_img_size(f, 2, naxes, &st);
     if (st) {
-        char what[64];
+        char what[FLEN_VALUE + 40];
         snprintf(what, sizeof what, "cannot read HDU %s", name);
         return fits_fail(CLEF_EFORMAT, st, path, what);
     }
@@ -339,26 +340,32 @@ static int find_image(fitsfile *f, const char *name, const char *path, int *pres
     return CLEF_OK;
 }
 
-/* HDU 'BANDCOV', when present: an nbins x nbins double image. */
-static int read_cov(fitsfile *f, clef_bandpowers *bp, const char *path)
+/* HDU 'BANDCOV<suffix>' of EXTVER extver (0: any), when present: an nbins x
+ * nbins double image. */
+static int read_cov(fitsfile *f, clef_bandpowers *bp, const char *path, const char *suffix,
+                    int extver)
 {
     int st = 0, naxis = 0, present = 0;
     long naxes[2] = {0, 0};
-    CLEF_TRY(find_image(f, "BANDCOV", path, &present, &naxis, naxes));
+    char name[FLEN_VALUE + 16];
+    snprintf(name, sizeof name, "BANDCOV%s", suffix);
+    CLEF_TRY(find_image(f, name, extver, path, &present, &naxis, naxes));
     if (!present)
         return CLEF_OK;
     if (naxis != 2 || naxes[0] != bp->nbins || naxes[1] != bp->nbins)
-        CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDCOV: image is %d-dimensional %ld x %ld, the table has "
-                  "%d bins", path, naxis, naxes[0], naxes[1], bp->nbins);
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s: image is %d-dimensional %ld x %ld, the table has "
+                  "%d bins", path, name, naxis, naxes[0], naxes[1], bp->nbins);
     const size_t nn = (size_t)bp->nbins * (size_t)bp->nbins;
     double *cov = malloc(nn * sizeof *cov);
     if (!cov)
-        CLEF_FAIL(CLEF_ENOMEM, "'%s' HDU BANDCOV: out of memory", path);
+        CLEF_FAIL(CLEF_ENOMEM, "'%s' HDU %s: out of memory", path, name);
     int anynul = 0;
     fits_read_img(f, TDOUBLE, 1, (LONGLONG)nn, NULL, cov, &anynul, &st);
     if (st) {
         free(cov);
-        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDCOV image");
+        char what[FLEN_VALUE + 40];
+        snprintf(what, sizeof what, "cannot read the %s image", name);
+        return fits_fail(CLEF_EFORMAT, st, path, what);
     }
     const int status = clef_table_check_cov(cov, (size_t)bp->nbins, path);
     if (status != CLEF_OK) {
@@ -369,18 +376,22 @@ static int read_cov(fitsfile *f, clef_bandpowers *bp, const char *path)
     return CLEF_OK;
 }
 
-/* HDU 'BANDWIN', when present: an (win_lmax + 1) x nbins double image whose
- * columns start at l = 0 (WINLMIN, if given, must be 0). */
-static int read_win(fitsfile *f, clef_bandpowers *bp, const char *path)
+/* HDU 'BANDWIN<suffix>' of EXTVER extver (0: any), when present: an
+ * (win_lmax + 1) x nbins double image whose columns start at l = 0
+ * (WINLMIN, if given, must be 0). */
+static int read_win(fitsfile *f, clef_bandpowers *bp, const char *path, const char *suffix,
+                    int extver)
 {
     int st = 0, naxis = 0, present = 0;
     long naxes[2] = {0, 0};
-    CLEF_TRY(find_image(f, "BANDWIN", path, &present, &naxis, naxes));
+    char name[FLEN_VALUE + 16];
+    snprintf(name, sizeof name, "BANDWIN%s", suffix);
+    CLEF_TRY(find_image(f, name, extver, path, &present, &naxis, naxes));
     if (!present)
         return CLEF_OK;
     if (naxis != 2 || naxes[1] != bp->nbins || naxes[0] < 1 || naxes[0] > (1L << 20) + 1)
-        CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDWIN: image is %d-dimensional %ld x %ld, expected "
-                  "(lmax + 1) x %d bins", path, naxis, naxes[0], naxes[1], bp->nbins);
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s: image is %d-dimensional %ld x %ld, expected "
+                  "(lmax + 1) x %d bins", path, name, naxis, naxes[0], naxes[1], bp->nbins);
     long lmin = 0;
     fits_read_key_lng(f, "WINLMIN", &lmin, NULL, &st);
     if (st == KEY_NO_EXIST) {
@@ -391,19 +402,67 @@ static int read_win(fitsfile *f, clef_bandpowers *bp, const char *path)
     if (st)
         return fits_fail(CLEF_EFORMAT, st, path, "HDU BANDWIN: cannot read keyword WINLMIN");
     if (lmin != 0)
-        CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDWIN keyword WINLMIN = %ld: only 0 is supported",
-                  path, lmin);
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s keyword WINLMIN = %ld: only 0 is supported",
+                  path, name, lmin);
     CLEF_TRY(clef_bandpowers_alloc_windows(bp, (int)naxes[0] - 1));
     const size_t nn = (size_t)bp->nbins * (size_t)naxes[0];
     int anynul = 0;
     fits_read_img(f, TDOUBLE, 1, (LONGLONG)nn, NULL, bp->win, &anynul, &st);
-    if (st)
-        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDWIN image");
+    if (st) {
+        char what[FLEN_VALUE + 40];
+        snprintf(what, sizeof what, "cannot read the %s image", name);
+        return fits_fail(CLEF_EFORMAT, st, path, what);
+    }
     for (size_t i = 0; i < nn; i++)
         if (!isfinite(bp->win[i]))
-            CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU BANDWIN: element (bin %zu, l %zu) is not finite",
-                      path, i / (size_t)naxes[0], i % (size_t)naxes[0]);
+            CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s: element (bin %zu, l %zu) is not finite",
+                      path, name, i / (size_t)naxes[0], i % (size_t)naxes[0]);
     return CLEF_OK;
+}
+
+/* The band-power table at the current HDU (named `hdu`), then its
+ * covariance and windows, the HDUs named like it with "BANDPOWER" replaced
+ * (suffix: the rest of the name) and of the same EXTVER (0: any). */
+static int read_table_hdu(fitsfile *f, clef_bandpowers **out, const char *path, const char *hdu,
+                          const char *suffix, int extver)
+{
+    int st = 0, status = CLEF_OK;
+    clef_bandpowers *bp = NULL;
+    LONGLONG nrows = 0;
+    fits_get_num_rowsll(f, &nrows, &st);
+    if (st)
+        return fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDPOWER row count");
+    if (nrows < 1 || nrows > ((LONGLONG)1 << 30))
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %s: %lld rows", path, hdu, nrows);
+    CLEF_CHECK(clef_bandpowers_alloc(&bp, (int)nrows, 0));
+    CLEF_CHECK(read_columns(f, bp, path, hdu));
+    CLEF_CHECK(read_meta(f, bp, path));
+    CLEF_CHECK(read_cov(f, bp, path, suffix, extver));
+    CLEF_CHECK(read_win(f, bp, path, suffix, extver));
+    *out = bp;
+    return CLEF_OK;
+fail:
+    clef_bandpowers_free(bp);
+    return status;
+}
+
+static int open_fits(fitsfile **f, const char *path)
+{
+    int st = 0;
+    CLEF_TRY(clef_fits_check_gzip_file(path));
+    fits_open_diskfile(f, path, READONLY, &st);
+    if (st)
+        return fits_fail(st == FILE_NOT_OPENED ? CLEF_EIO : CLEF_EFORMAT, st, path,
+                         "cannot open the FITS file");
+    return CLEF_OK;
+}
+
+static void close_fits(fitsfile *f)
+{
+    int st = 0;
+    if (f)
+        fits_close_file(f, &st);
+    fits_clear_errmsg();
 }
 
 int clef_table_read_fits(clef_bandpowers **out, const char *path)
@@ -411,39 +470,152 @@ int clef_table_read_fits(clef_bandpowers **out, const char *path)
     *out = NULL;
     fitsfile *f = NULL;
     int st = 0, status = CLEF_OK;
-    clef_bandpowers *bp = NULL;
-    CLEF_TRY(clef_fits_check_gzip_file(path));
-    fits_open_diskfile(&f, path, READONLY, &st);
-    if (st)
-        return fits_fail(st == FILE_NOT_OPENED ? CLEF_EIO : CLEF_EFORMAT, st, path,
-                         "cannot open the FITS file");
+    CLEF_TRY(open_fits(&f, path));
     CLEF_CHECK(clef_fits_check_headers(f, path));
     fits_movnam_hdu(f, BINARY_TBL, "BANDPOWER", 0, &st);
     if (st) {
         status = fits_fail(CLEF_EFORMAT, st, path, "no binary table HDU with EXTNAME 'BANDPOWER'");
         goto fail;
     }
-    LONGLONG nrows = 0;
-    fits_get_num_rowsll(f, &nrows, &st);
-    if (st) {
-        status = fits_fail(CLEF_EFORMAT, st, path, "cannot read the BANDPOWER row count");
-        goto fail;
-    }
-    if (nrows < 1 || nrows > ((LONGLONG)1 << 30)) {
-        status = clef_fail(CLEF_EFORMAT, "'%s' HDU BANDPOWER: %lld rows", path, nrows);
-        goto fail;
-    }
-    CLEF_CHECK(clef_bandpowers_alloc(&bp, (int)nrows, 0));
-    CLEF_CHECK(read_columns(f, bp, path));
-    CLEF_CHECK(read_meta(f, bp, path));
-    CLEF_CHECK(read_cov(f, bp, path));
-    CLEF_CHECK(read_win(f, bp, path));
-    *out = bp;
-    bp = NULL;
+    status = read_table_hdu(f, out, path, "BANDPOWER", "", 0);
 fail:
-    clef_bandpowers_free(bp);
-    st = 0;
-    fits_close_file(f, &st);
-    fits_clear_errmsg();
+    close_fits(f);
+    return status;
+}
+
+/* ---- files of several band-power sets ---------------------------------- */
+
+void clef_bandpowers_set_free(clef_bandpowers_set *s)
+{
+    if (!s)
+        return;
+    for (int k = 0; k < s->n; k++)
+        clef_bandpowers_free(s->tables[k]);
+    free(s->tables);
+    free(s->names);
+    free(s);
+}
+
+/* EXTNAME and EXTVER of the current HDU; *is_bp = 1 for a binary table named
+ * "BANDPOWER" or "BANDPOWER <name>". */
+static int hdu_identity(fitsfile *f, const char *path, int hdu, char extname[FLEN_VALUE],
+                        int *extver, int *is_bp)
+{
+    int st = 0, type = 0;
+    *is_bp = 0;
+    *extver = 0;
+    extname[0] = '\0';
+    fits_get_hdu_type(f, &type, &st);
+    if (!st && type == BINARY_TBL)
+        fits_read_key_str(f, "EXTNAME", extname, NULL, &st);
+    if (st == KEY_NO_EXIST) {
+        fits_clear_errmsg();
+        return CLEF_OK;
+    }
+    if (st) {
+        char what[64];
+        snprintf(what, sizeof what, "cannot read the header of HDU %d", hdu);
+        return fits_fail(CLEF_EFORMAT, st, path, what);
+    }
+    if (type != BINARY_TBL || strncmp(extname, "BANDPOWER", 9) || (extname[9] && extname[9] != ' '))
+        return CLEF_OK;
+    *is_bp = 1;
+    long v = 0;
+    fits_read_key_lng(f, "EXTVER", &v, NULL, &st);
+    if (st == KEY_NO_EXIST) {
+        fits_clear_errmsg();
+        v = 0;
+    } else if (st) {
+        return fits_fail(CLEF_EFORMAT, st, path, "cannot read keyword EXTVER");
+    }
+    *extver = v > 0 && v < 1000000 ? (int)v : 0;
+    return CLEF_OK;
+}
+
+/* Name of set k: the EXTNAME after "BANDPOWER ", else its SPECTRUM keyword
+ * (the polarized files), else "set K". */
+static void set_name(const clef_bandpowers *bp, const char *extname, int k, char *out, size_t n)
+{
+    const char *spec = clef_bandpowers_meta_get(bp, "SPECTRUM");
+    if (extname[9] == ' ' && extname[10])
+        snprintf(out, n, "%s", extname + 10);
+    else if (spec && *spec)
+        snprintf(out, n, "%s", spec);
+    else
+        snprintf(out, n, "set %d", k + 1);
+}
+
+static int set_append(clef_bandpowers_set *s, clef_bandpowers *bp, const char *extname)
+{
+    clef_bandpowers **t = realloc(s->tables, ((size_t)s->n + 1) * sizeof *t);
+    if (t)
+        s->tables = t;
+    char(*nm)[72] = t ? realloc(s->names, ((size_t)s->n + 1) * sizeof *nm) : NULL;
+    if (!nm) {
+        clef_bandpowers_free(bp);
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory reading band-power set %d", s->n + 1);
+    }
+    s->names = nm;
+    set_name(bp, extname, s->n, s->names[s->n], sizeof s->names[s->n]);
+    s->tables[s->n++] = bp;
+    return CLEF_OK;
+}
+
+int clef_bandpowers_read_set(clef_bandpowers_set **out, const char *path)
+{
+    *out = NULL;
+    if (!path || !*path)
+        CLEF_FAIL(CLEF_EINVAL, "band-power file path is empty");
+    FILE *fp = fopen(path, "rb");
+    if (!fp)
+        CLEF_FAIL(CLEF_EIO, "cannot open band-power file '%s': %s", path, strerror(errno));
+    char head[9];
+    const size_t got = fread(head, 1, sizeof head, fp);
+    fclose(fp);
+    /* Every FITS file starts with the card "SIMPLE  =" (FITS 4.0 4.4.1.1). */
+    if (got != sizeof head || memcmp(head, "SIMPLE  =", sizeof head))
+        CLEF_FAIL(CLEF_EFORMAT, "'%s' is not a FITS file: the band powers of several pairs "
+                  "or spectra come in one FITS file (docs/formats-spectrum.md)", path);
+    fitsfile *f = NULL;
+    int st = 0, status = CLEF_OK, nhdu = 0, unnumbered = 0;
+    clef_bandpowers_set *s = calloc(1, sizeof *s);
+    if (!s)
+        CLEF_FAIL(CLEF_ENOMEM, "out of memory reading '%s'", path);
+    CLEF_CHECK(open_fits(&f, path));
+    CLEF_CHECK(clef_fits_check_headers(f, path));
+    fits_get_num_hdus(f, &nhdu, &st);
+    if (st) {
+        status = fits_fail(CLEF_EFORMAT, st, path, "cannot count the HDUs");
+        goto fail;
+    }
+    for (int h = 2; h <= nhdu; h++) {
+        char extname[FLEN_VALUE];
+        int extver = 0, is_bp = 0;
+        fits_movabs_hdu(f, h, NULL, &st);
+        if (st) {
+            status = fits_fail(CLEF_EFORMAT, st, path, "cannot move to the next HDU");
+            goto fail;
+        }
+        CLEF_CHECK(hdu_identity(f, path, h, extname, &extver, &is_bp));
+        if (!is_bp)
+            continue;
+        unnumbered += extver == 0;
+        clef_bandpowers *bp = NULL;
+        CLEF_CHECK(read_table_hdu(f, &bp, path, extname, extname + 9, extver));
+        CLEF_CHECK(set_append(s, bp, extname));
+    }
+    if (s->n == 0)
+        status = clef_fail(CLEF_EFORMAT, "'%s' has no band-power HDU (a binary table with "
+                           "EXTNAME 'BANDPOWER ...')", path);
+    else if (unnumbered)
+        status = clef_fail(CLEF_EFORMAT, "'%s' holds a single band-power table (HDU BANDPOWER "
+                           "without EXTVER), not a file of several pairs or spectra", path);
+    if (status == CLEF_OK) {
+        *out = s;
+        s = NULL;
+    }
+fail:
+    clef_bandpowers_set_free(s);
+    close_fits(f);
     return status;
 }

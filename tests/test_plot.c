@@ -454,6 +454,265 @@ static void test_spectrum_cli_peak(void **state)
     free_table(src);
 }
 
+/* ------------------------------------------------------- several pairs */
+
+/* n band-power sets of nb bins of width 12 from l = 2, as the run writer
+ * makes them: set k scaled by (1 + k / 4) so that panels differ, named
+ * "fK x fK+1", written to `path` by clef_bandpowers_write_fits_set. */
+static clef_bandpowers **make_sets(int n, int nb, char names[][16], const char *path)
+{
+    clef_bandpowers **bp = calloc((size_t)n, sizeof *bp);
+    const char *nm[CLEF_PLOT_PAIRS_MAX];
+    for (int k = 0; k < n; k++) {
+        assert_int_equal(clef_bandpowers_alloc(&bp[k], nb, 0), CLEF_OK);
+        for (int b = 0; b < nb; b++) {
+            bp[k]->l_lo[b] = 2 + 12 * b;
+            bp[k]->l_hi[b] = 13 + 12 * b;
+            bp[k]->l_eff[b] = 7.5 + 12 * b;
+            bp[k]->dl[b] = (1 + 0.25 * k) * (800 + 20 * b);
+            bp[k]->dl_err[b] = 60 + 5 * b;
+            bp[k]->cl[b] = 2 * pi * bp[k]->dl[b] / (bp[k]->l_eff[b] * (bp[k]->l_eff[b] + 1));
+        }
+        snprintf(names[k], 16, "f%d x f%d", k, k + 1);
+        nm[k] = names[k];
+    }
+    if (path)
+        assert_int_equal(clef_bandpowers_write_fits_set((const clef_bandpowers *const *)bp, nm,
+                                                        n, NULL, 0, path), CLEF_OK);
+    return bp;
+}
+
+static void free_sets(clef_bandpowers **bp, int n)
+{
+    for (int k = 0; k < n; k++)
+        clef_bandpowers_free(bp[k]);
+    free(bp);
+}
+
+/* Number of binary tables whose EXTNAME starts with "BANDPOWER", counted by
+ * astropy (the outside reader): the exit status of the probe is 0 iff it
+ * equals `expect`. */
+static int astropy_count_is(const char *fits, int expect)
+{
+    return run_cmd("%s -c \"import sys; from astropy.io import fits; "
+                   "h = fits.open(sys.argv[1]); "
+                   "n = sum(1 for x in h if x.name.startswith('BANDPOWER')); "
+                   "sys.exit(0 if n == int(sys.argv[2]) else 1)\" %s %d",
+                   ref_python(), fits, expect);
+}
+
+static void test_pairs_read_set(void **state)
+{
+    (void)state;
+    char names[7][16];
+    const char *fits = test_path("sets7.fits");
+    clef_bandpowers **bp = make_sets(7, 9, names, fits);
+    assert_int_equal(astropy_count_is(fits, 7), 0);
+    clef_bandpowers_set *set;
+    assert_int_equal(clef_bandpowers_read_set(&set, fits), CLEF_OK);
+    assert_int_equal(set->n, 7);
+    for (int k = 0; k < 7; k++) {
+        assert_string_equal(set->names[k], names[k]);
+        assert_int_equal(set->tables[k]->nbins, 9);
+        for (int b = 0; b < 9; b++)
+            check_abs(set->tables[k]->dl[b], bp[k]->dl[b], 0, "FITS round trip (exact)");
+    }
+    clef_bandpowers_set_free(set);
+
+    /* A single table (no EXTVER), a CSV, no file: refused, named. */
+    const char *one = test_path("one.fits"), *csv = test_path("one.csv");
+    assert_int_equal(clef_bandpowers_write_fits(bp[0], one), CLEF_OK);
+    assert_int_equal(clef_bandpowers_write_csv(bp[0], csv), CLEF_OK);
+    assert_int_equal(clef_bandpowers_read_set(&set, one), CLEF_EFORMAT);
+    assert_non_null(strstr(clef_last_error(), "single band-power table"));
+    assert_null(set);
+    assert_int_equal(clef_bandpowers_read_set(&set, csv), CLEF_EFORMAT);
+    assert_non_null(strstr(clef_last_error(), "not a FITS file"));
+    assert_int_equal(clef_bandpowers_read_set(&set, test_path("absent.fits")), CLEF_EIO);
+    free_sets(bp, 7);
+}
+
+/* The PNG has the size of the layout (IHDR read directly), then its pixels. */
+static void load_png_of_size(image *im, const char *png, int width, int height)
+{
+    int w, h;
+    assert_int_equal(png_size(png, &w, &h), 0);
+    assert_int_equal(w, width);
+    assert_int_equal(h, height);
+    image_load(im, png);
+}
+
+static int dark(const image *im, double x, double y)
+{
+    int rgb[3];
+    image_rgb(im, (int)floor(x), (int)floor(y), rgb);
+    return rgb[0] < 110 && rgb[1] < 110 && rgb[2] < 110;
+}
+
+static int white_at(const image *im, double x, double y)
+{
+    const int w[3] = {255, 255, 255};
+    int rgb[3];
+    image_rgb(im, (int)floor(x), (int)floor(y), rgb);
+    return rgb_close(rgb, w, 0);
+}
+
+static void expect_colour(const image *im, double x, double y, const double c[3], const char *what)
+{
+    int rgb[3];
+    image_rgb(im, (int)floor(x), (int)floor(y), rgb);
+    const int want[3] = {(int)lround(255 * c[0]), (int)lround(255 * c[1]), (int)lround(255 * c[2])};
+    if (!rgb_close(rgb, want, 12))
+        fail_msg("%s: pixel (%.0f, %.0f) is (%d, %d, %d), expected (%d, %d, %d)", what, x, y,
+                 rgb[0], rgb[1], rgb[2], want[0], want[1], want[2]);
+}
+
+/* Grid: one panel per HDU.  Each panel's frame is drawn (dark box edge) and
+ * holds its set's first point in the points' colour; the grid cells past the
+ * last set are empty. */
+static void test_pairs_grid(void **state)
+{
+    (void)state;
+    char names[7][16];
+    const char *fits = test_path("grid7.fits"), *png = test_path("grid7.png");
+    clef_bandpowers **bp = make_sets(7, 9, names, fits);
+    assert_int_equal(astropy_count_is(fits, 7), 0);
+    /* Through the command line: auto arrangement for 7 sets is the grid. */
+    assert_int_equal(run_cmd("%s plot pairs %s -o %s --quiet", clef_bin(), fits, png), 0);
+    const char *nm[7];
+    for (int k = 0; k < 7; k++)
+        nm[k] = names[k];
+    clef_plot_pairs_frame *f = malloc(sizeof *f);
+    clef_plot_pairs_opts o = {0};
+    o.source = fits;
+    assert_int_equal(clef_plot_pairs_layout((const clef_bandpowers *const *)bp, nm, 7, &o, f),
+                     CLEF_OK);
+    assert_int_equal(f->arrange, CLEF_PLOT_ARRANGE_GRID);
+    assert_int_equal(f->npanels, 7);
+    assert_int_equal(f->columns, 3);
+    assert_int_equal(f->rows, 3);
+    image im;
+    load_png_of_size(&im, png, f->width, f->height);
+    int drawn = 0;
+    for (int k = 0; k < f->npanels; k++) {
+        const clef_plot_frame *p = &f->panel[k];
+        const double mid = 0.5 * (p->top + p->bottom);
+        if (!dark(&im, p->left, mid) || !dark(&im, p->right, mid))
+            fail_msg("panel %d: no frame at x = %.0f, %.0f", k, p->left, p->right);
+        expect_colour(&im, clef_plot_frame_x(p, bp[k]->l_eff[0]),
+                      clef_plot_frame_y(p, bp[k]->dl[0]), f->rgb[k], "grid point");
+        drawn++;
+    }
+    assert_int_equal(drawn, 7);
+    /* Cells 7 and 8 (row 2, columns 1 and 2): blank where a panel would be. */
+    const double dx = f->panel[1].left - f->panel[0].left, dy = f->panel[3].top - f->panel[0].top;
+    for (int k = 7; k < 9; k++) {
+        const clef_plot_frame *p0 = &f->panel[k % 3 + 3];   /* the panel above, one row up */
+        const double x = 0.5 * (p0->left + p0->right), y = 0.5 * (p0->top + p0->bottom) + dy;
+        assert_true(dx > 0);
+        if (!white_at(&im, x, y) || !white_at(&im, p0->left, y))
+            fail_msg("cell %d is not empty", k);
+    }
+    cairo_surface_destroy(im.s);
+    free(f);
+    free_sets(bp, 7);
+}
+
+/* Overlay: one legend entry per HDU, its marker in the set's colour, nothing
+ * after the last; the colours of the sets are distinct. */
+static void overlay_case(int n, int arrange)
+{
+    char names[CLEF_PLOT_PAIRS_MAX][16];
+    const char *fits = test_path("over.fits"), *png = test_path("over.png");
+    clef_bandpowers **bp = make_sets(n, 10, names, fits);
+    assert_int_equal(astropy_count_is(fits, n), 0);
+    assert_int_equal(run_cmd("%s plot pairs %s -o %s --quiet%s", clef_bin(), fits, png,
+                             arrange == CLEF_PLOT_ARRANGE_OVERLAY ? " --arrange overlay" : ""),
+                     0);
+    clef_bandpowers_set *set;
+    assert_int_equal(clef_bandpowers_read_set(&set, fits), CLEF_OK);
+    const char *nm[CLEF_PLOT_PAIRS_MAX];
+    for (int k = 0; k < set->n; k++)
+        nm[k] = set->names[k];
+    clef_plot_pairs_frame *f = malloc(sizeof *f);
+    clef_plot_pairs_opts o = {0};
+    o.arrange = arrange;
+    o.source = fits;
+    assert_int_equal(clef_plot_pairs_layout((const clef_bandpowers *const *)set->tables, nm,
+                                            set->n, &o, f), CLEF_OK);
+    assert_int_equal(f->arrange, CLEF_PLOT_ARRANGE_OVERLAY);
+    assert_int_equal(f->nkeys, n);
+    image im;
+    load_png_of_size(&im, png, f->width, f->height);
+    for (int k = 0; k < f->nkeys; k++)
+        expect_colour(&im, f->key_x[k], f->key_y[k], f->rgb[k], "legend marker");
+    /* Where entry n would be: blank. */
+    const double step = n > 1 ? f->key_y[1] - f->key_y[0] : 20;
+    assert_true(white_at(&im, f->key_x[n - 1], f->key_y[n - 1] + step));
+    for (int a = 0; a < n; a++)
+        for (int b = a + 1; b < n; b++) {
+            const double d = fabs(f->rgb[a][0] - f->rgb[b][0]) + fabs(f->rgb[a][1] - f->rgb[b][1]) +
+                             fabs(f->rgb[a][2] - f->rgb[b][2]);
+            if (d < 0.05)
+                fail_msg("sets %d and %d share a colour", a, b);
+        }
+    cairo_surface_destroy(im.s);
+    free(f);
+    clef_bandpowers_set_free(set);
+    free_sets(bp, n);
+}
+
+static void test_pairs_overlay_6(void **state)
+{
+    (void)state;
+    overlay_case(6, CLEF_PLOT_ARRANGE_AUTO);
+}
+
+static void test_pairs_overlay_20(void **state)
+{
+    (void)state;
+    overlay_case(20, CLEF_PLOT_ARRANGE_OVERLAY);
+}
+
+/* Bad input through the command line: documented exit codes
+ * (docs/figures.md), no figure left behind. */
+static void test_pairs_errors(void **state)
+{
+    (void)state;
+    char names[2][16];
+    const char *one = test_path("single.fits"), *csv = test_path("single.csv");
+    const char *out = test_path("never.png");
+    clef_bandpowers **bp = make_sets(2, 6, names, NULL);
+    assert_int_equal(clef_bandpowers_write_fits(bp[0], one), CLEF_OK);
+    assert_int_equal(clef_bandpowers_write_csv(bp[0], csv), CLEF_OK);
+    const char *q = "2>/dev/null";
+    assert_int_equal(run_cmd("%s plot pairs %s -o %s %s", clef_bin(), one, out, q), 5);
+    assert_int_equal(run_cmd("%s plot pairs %s -o %s %s", clef_bin(), csv, out, q), 5);
+    assert_int_equal(run_cmd("%s plot pairs %s -o %s %s", clef_bin(), test_path("none.fits"),
+                             out, q), 4);
+    assert_int_equal(run_cmd("%s plot pairs %s -o %s --arrange diagonal %s", clef_bin(), one,
+                             out, q), 2);
+    assert_int_equal(run_cmd("%s plot spectrum %s -o %s --arrange grid %s", clef_bin(), one,
+                             out, q), 2);
+    assert_int_equal(run_cmd("%s plot pairs %s -o %s --compare %s %s", clef_bin(), one, out,
+                             csv, q), 2);
+    assert_false(file_exists(out));
+    assert_false(leftover_tmp());
+    /* The library: no sets, too many, columns < 0. */
+    clef_plot_pairs_frame *f = malloc(sizeof *f);
+    const char *nm[2] = {names[0], names[1]};
+    assert_int_equal(clef_plot_pairs_layout((const clef_bandpowers *const *)bp, nm, 0, NULL, f),
+                     CLEF_EINVAL);
+    assert_int_equal(clef_plot_pairs_layout((const clef_bandpowers *const *)bp, nm,
+                                            CLEF_PLOT_PAIRS_MAX + 1, NULL, f), CLEF_EINVAL);
+    clef_plot_pairs_opts o = {0};
+    o.columns = -1;
+    assert_int_equal(clef_plot_pairs_layout((const clef_bandpowers *const *)bp, nm, 2, &o, f),
+                     CLEF_EINVAL);
+    free(f);
+    free_sets(bp, 2);
+}
+
 /* ----------------------------------------------------------------- map */
 
 /* Forward Mollweide projection, written here independently of the module
@@ -1060,6 +1319,11 @@ int main(void)
         cmocka_unit_test(test_spectrum_pdf),
         cmocka_unit_test(test_spectrum_errors),
         cmocka_unit_test(test_spectrum_cli_peak),
+        cmocka_unit_test(test_pairs_read_set),
+        cmocka_unit_test(test_pairs_grid),
+        cmocka_unit_test(test_pairs_overlay_6),
+        cmocka_unit_test(test_pairs_overlay_20),
+        cmocka_unit_test(test_pairs_errors),
         cmocka_unit_test(test_map_unproject_roundtrip),
         cmocka_unit_test(test_map_hemispheres),
         cmocka_unit_test(test_map_hot_pixel),

@@ -17,8 +17,10 @@
  * The run-wide options are those of clef_spectrum_opts except the beam,
  * transfer and noise entries, which belong to each field.  What depends on
  * two masks (mask spectra, coupling, deprojection correction, covariance
- * kernels) is computed once per distinct pair of effective weights, and the
- * coupling and mask spectra go through the cache folder as for one pair.
+ * kernels) is computed once per distinct pair of effective weights (in
+ * either order), the binned operator K and the band-power windows once per
+ * distinct pair of weights and pair filter, and the coupling and mask
+ * spectra go through the cache folder as for one pair.
  *
  * The pair (a, a) of a field with k >= 2 splits is the mean of its
  * k (k - 1) / 2 split crosses; a pair (a, b) of two fields the mean of all
@@ -75,6 +77,12 @@ const double *clef_estimator_covariance(const clef_estimator *e, int *n);
 /* Spherical-harmonic analyses of maps (each split map once) and of
  * weights and weight products (0 when the mask spectra came from the cache). */
 void clef_estimator_transforms(const clef_estimator *e, int *maps, int *masks);
+
+/* How much work the pairs shared: the distinct pairs of weights (mask
+ * spectra, deprojection correction, coupling M; a pair and its reverse are
+ * one) and the distinct (weights pair, pair filter) behind the binned
+ * operators K and the windows.  0 before compute. */
+void clef_estimator_shared(const clef_estimator *e, int *mask_pairs, int *operators);
 
 #ifdef __cplusplus
 }

@@ -89,6 +89,66 @@ int clef_plot_spectrum_layout(const clef_bandpowers *bp, const clef_plot_spectru
 int clef_plot_spectrum(const clef_bandpowers *bp, const clef_plot_spectrum_opts *o,
                        const char *path);
 
+/* ------------------------------------------------------ several pairs */
+
+/* The band powers of several pairs of fields (or spectra) in one figure:
+ * one panel per set in a grid, or all sets overlaid in one frame with a
+ * legend (docs/figures.md, "Several pairs"). */
+enum clef_plot_arrange {
+    CLEF_PLOT_ARRANGE_AUTO = 0,     /* overlay up to CLEF_PLOT_OVERLAY_AUTO_MAX sets, else grid */
+    CLEF_PLOT_ARRANGE_GRID = 1,
+    CLEF_PLOT_ARRANGE_OVERLAY = 2
+};
+#define CLEF_PLOT_OVERLAY_AUTO_MAX 6
+/* At most this many sets in one figure (the 78 pairs of 12 fields). */
+#define CLEF_PLOT_PAIRS_MAX 78
+
+typedef struct clef_plot_pairs_opts {
+    int width, height;          /* 0: grid 300 x 230 per panel (at least 900 wide) plus the
+                                   margins; overlay 1000 x 620 */
+    int arrange;                /* enum clef_plot_arrange */
+    int columns;                /* grid columns; 0 = ceil(sqrt(n)) */
+    int log_l;                  /* 1: logarithmic l axis */
+    const char *title;          /* NULL: "<n> spectra" and the file name `source` */
+    const char *source;         /* name of the file the sets come from, may be NULL */
+    const clef_plot_curve *theory;   /* optional model curve, drawn in every panel */
+} clef_plot_pairs_opts;
+
+/* Where everything goes.  Panel k (grid) sits in row k / columns, column
+ * k % columns; the overlay has one frame, panel[0].  Every frame has the
+ * same l range. */
+typedef struct clef_plot_pairs_frame {
+    int width, height;          /* whole figure */
+    int arrange;                /* CLEF_PLOT_ARRANGE_GRID or _OVERLAY, as drawn */
+    int n;                      /* sets drawn */
+    int rows, columns;          /* grid shape (1 x 1 for the overlay) */
+    int npanels;                /* n (grid) or 1 (overlay) */
+    clef_plot_frame panel[CLEF_PLOT_PAIRS_MAX];
+    double rgb[CLEF_PLOT_PAIRS_MAX][3];   /* sRGB colour of set k's points */
+    double shift[CLEF_PLOT_PAIRS_MAX];    /* overlay: x offset of set k's points (device units) */
+    int nkeys;                  /* legend entries: overlay n (+ 1 with a model curve);
+                                   grid 1 with a model curve, else 0 */
+    double key_x[CLEF_PLOT_PAIRS_MAX + 1], key_y[CLEF_PLOT_PAIRS_MAX + 1];
+                                /* centre of legend entry k's marker (the curve's: its line) */
+} clef_plot_pairs_frame;
+
+/* Layout of clef_plot_pairs for these n sets.  Errors: CLEF_EINVAL (n outside
+ * 1..CLEF_PLOT_PAIRS_MAX, a table as for clef_plot_spectrum_layout, size
+ * out of range or too small for the panels, columns < 0), CLEF_ENOMEM. */
+int clef_plot_pairs_layout(const clef_bandpowers *const *bp, const char *const *names, int n,
+                           const clef_plot_pairs_opts *o, clef_plot_pairs_frame *f);
+
+/* Draw the n sets: D_b with error bars against l.  Grid: each panel titled
+ * with the set's name, the points in the main colour with the bins' l
+ * ranges, shared l axis, its own D range (including 0).  Overlay: set k in
+ * colour rgb[k] and one of four filled markers (disc, square, triangle,
+ * diamond, in turn), moved sideways by shift[k] so that error bars do not
+ * cover each other, and a legend to the right of the frame naming every
+ * set (in more columns when it would not fit).  o may be NULL.  Errors:
+ * as for the layout, CLEF_EUNSUP (extension), CLEF_EIO, CLEF_ENOMEM. */
+int clef_plot_pairs(const clef_bandpowers *const *bp, const char *const *names, int n,
+                    const clef_plot_pairs_opts *o, const char *path);
+
 /* -------------------------------------------------------------------- map */
 
 enum clef_plot_scale {

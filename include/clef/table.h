@@ -93,6 +93,26 @@ int clef_bandpowers_write_windows_csv(const clef_bandpowers *bp, const char *pat
  * Errors name the file, line or column at fault. */
 int clef_bandpowers_read(clef_bandpowers **out, const char *path);
 
+/* The band-power sets of one FITS file written by
+ * clef_bandpowers_write_fits_set (the pairs of `clef spectrum --run`, the six
+ * spectra of a polarized run), in HDU order. */
+typedef struct clef_bandpowers_set {
+    int n;                      /* number of sets, >= 1 */
+    clef_bandpowers **tables;   /* n tables, each with its BANDCOV / BANDWIN when present */
+    char (*names)[72];          /* set k's name: the EXTNAME after "BANDPOWER " ("a x b"),
+                                   else the SPECTRUM keyword ("TE"), else "set K" */
+} clef_bandpowers_set;
+
+/* Read every binary-table HDU named "BANDPOWER" or "BANDPOWER <name>" with
+ * its covariance and windows (the image HDUs "BANDCOV<same suffix>",
+ * "BANDWIN<same suffix>" of the same EXTVER).  Errors: CLEF_EIO (cannot
+ * open), CLEF_EFORMAT (not a FITS file; no band-power HDU; a single table
+ * without EXTVER, as clef_bandpowers_write_fits writes: read that with
+ * clef_bandpowers_read; a bad HDU, named in the message), CLEF_ENOMEM.
+ * Free with clef_bandpowers_set_free. */
+int clef_bandpowers_read_set(clef_bandpowers_set **out, const char *path);
+void clef_bandpowers_set_free(clef_bandpowers_set *s); /* NULL is a no-op */
+
 /* Read a covariance of D (uK^4) for the table's bins from a text file:
  * nbins rows of nbins comma- or whitespace-separated numbers, '#' comment
  * lines (the layout clef_bandpowers_write_cov_csv writes).  The matrix must

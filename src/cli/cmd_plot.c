@@ -1,5 +1,6 @@
 /* clef plot KIND INPUT -o FILE: figures from clef's own outputs.
  *   spectrum  band powers with errors, overlays and the first peak
+ *   pairs     the band powers of every pair of a run (clef spectrum --run)
  *   map       Mollweide view of a map, a mask, or map x mask
  *   curvature the Omega_k posterior from `clef geometry --json`
  * The format follows the output's extension (.png, .svg, .pdf). */
@@ -21,6 +22,7 @@ static void help(FILE *f)
 {
     fprintf(f,
             "Usage: clef plot spectrum TABLE -o FILE [OPTIONS]\n"
+            "       clef plot pairs RUN.fits -o FILE [OPTIONS]\n"
             "       clef plot map MAP -o FILE [OPTIONS]\n"
             "       clef plot curvature GEOMETRY.json -o FILE [OPTIONS]\n\n"
             "Draw a figure with cairo.  The format follows FILE's extension: .png (sizes\n"
@@ -41,6 +43,16 @@ static void help(FILE *f)
             "  --compare-label TEXT legend text for TABLE2 (default: its file name)\n"
             "  --no-peak            do not mark the first peak\n"
             "  --width N, --height N  figure size (default 900 x 600)\n\n"
+            "pairs: the band powers of every pair in the FITS file of `clef spectrum --run`\n"
+            "  (one BANDPOWER HDU per pair; also the six spectra of --polarization), in a\n"
+            "  grid of panels titled with the pair's name, or overlaid in one frame with a\n"
+            "  legend (each pair its own colour and marker, moved sideways a little).\n"
+            "  --arrange A          auto, grid or overlay (default auto: overlay up to 6\n"
+            "                       pairs, grid above)\n"
+            "  --columns N          grid columns (default: ceil(sqrt(pairs)))\n"
+            "  --log-l, --model-curve FILE  as for spectrum (the curve in every panel)\n"
+            "  --width N, --height N  figure size (default: grid 300 x 230 per panel,\n"
+            "                       overlay 1000 x 620)\n\n"
             "map: Mollweide equal-area view of the whole sky, longitude 0 at the centre\n"
             "  and increasing to the left, a vertical colour bar at its right with the unit\n"
             "  above it, title and caption (coordinate system) under the map, meridians\n"
@@ -77,7 +89,8 @@ static void help(FILE *f)
             "  --verbose            also print what is read and drawn\n"
             "  --help               show this help\n\n"
             "Exit codes: 0 ok, 2 usage, 3 invalid input (empty table, mask of another\n"
-            "nside, empty range), 4 cannot read or write a file, 5 malformed input file,\n"
+            "nside, empty range, more than 78 pairs), 4 cannot read or write a file,\n"
+            "5 malformed input file (for pairs: a file without pair HDUs),\n"
             "7 unknown output extension, 8 out of memory.\n"
             "Example: clef plot spectrum bp.fits -o bp.png --model-curve model.txt\n");
 }
@@ -86,16 +99,18 @@ enum {
     OPT_WIDTH = 256, OPT_HEIGHT, OPT_TITLE, OPT_LOG_L, OPT_THEORY, OPT_COMPARE, OPT_LABEL,
     OPT_COMPARE_LABEL, OPT_NO_PEAK, OPT_MASK, OPT_RANGE, OPT_PERCENTILE, OPT_SCALE, OPT_UNIT,
     OPT_COLUMN, OPT_HDU, OPT_TRANSPARENT, OPT_NO_GRID, OPT_OMEGA_TOTAL, OPT_QUIET, OPT_VERBOSE,
-    OPT_HELP, OPT_MASK_COLUMN, OPT_ORDERING
+    OPT_HELP, OPT_MASK_COLUMN, OPT_ORDERING, OPT_ARRANGE, OPT_COLUMNS
 };
 
-enum kind { KIND_SPECTRUM, KIND_MAP, KIND_CURVATURE };
+enum kind { KIND_SPECTRUM, KIND_MAP, KIND_CURVATURE, KIND_PAIRS, NKINDS };
+static const char *const kind_names[NKINDS] = {"spectrum", "map", "curvature", "pairs"};
 
 typedef struct args {
     int kind;
     const char *input, *output, *title;
     long width, height;
-    int log_l, no_peak, transparent, no_grid, have_range, scale, omega_total;
+    int log_l, no_peak, transparent, no_grid, have_range, scale, omega_total, arrange;
+    long columns;
     const char *theory, *compare, *label, *compare_label, *mask, *unit, *column, *hdu;
     const char *mask_column, *ordering;
     double vmin, vmax, percentile;
@@ -124,21 +139,37 @@ static int parse_range(const char *s, args *a)
     return 0;
 }
 
-/* Options that only one kind of figure takes. */
-static int option_kind(int opt)
+/* One of three words, e.g. --scale auto|diverging|sequential. */
+static int parse_choice(const char *opt, const char *s, const char *const words[3],
+                        const int values[3], int *out)
+{
+    for (int i = 0; i < 3; i++)
+        if (!strcmp(s, words[i])) {
+            *out = values[i];
+            return 0;
+        }
+    return cli_usage_error("plot", "%s must be %s, %s or %s, got '%s'", opt, words[0], words[1],
+                           words[2], s);
+}
+
+/* The kinds of figure an option applies to, one bit per enum kind. */
+static unsigned option_kinds(int opt)
 {
     switch (opt) {
-    case OPT_LOG_L: case OPT_THEORY: case OPT_COMPARE: case OPT_LABEL: case OPT_COMPARE_LABEL:
-    case OPT_NO_PEAK:
-        return KIND_SPECTRUM;
+    case OPT_LOG_L: case OPT_THEORY:
+        return 1u << KIND_SPECTRUM | 1u << KIND_PAIRS;
+    case OPT_COMPARE: case OPT_LABEL: case OPT_COMPARE_LABEL: case OPT_NO_PEAK:
+        return 1u << KIND_SPECTRUM;
     case OPT_MASK: case OPT_RANGE: case OPT_PERCENTILE: case OPT_SCALE: case OPT_UNIT:
     case OPT_COLUMN: case OPT_HDU: case OPT_TRANSPARENT: case OPT_NO_GRID:
     case OPT_MASK_COLUMN: case OPT_ORDERING:
-        return KIND_MAP;
+        return 1u << KIND_MAP;
     case OPT_OMEGA_TOTAL:
-        return KIND_CURVATURE;
+        return 1u << KIND_CURVATURE;
+    case OPT_ARRANGE: case OPT_COLUMNS:
+        return 1u << KIND_PAIRS;
     default:
-        return -1;
+        return ~0u;
     }
 }
 
@@ -167,19 +198,22 @@ static int parse_args(int argc, char **argv, args *a, int *done)
         {"transparent", no_argument, NULL, OPT_TRANSPARENT},
         {"no-grid", no_argument, NULL, OPT_NO_GRID},
         {"omega-total", no_argument, NULL, OPT_OMEGA_TOTAL},
+        {"arrange", required_argument, NULL, OPT_ARRANGE},
+        {"columns", required_argument, NULL, OPT_COLUMNS},
         {"quiet", no_argument, NULL, OPT_QUIET},
         {"verbose", no_argument, NULL, OPT_VERBOSE},
         {"help", no_argument, NULL, OPT_HELP},
         {NULL, 0, NULL, 0},
     };
-    /* The first option given of each figure kind, to refuse it for another. */
-    const char *kind_opt[3] = {NULL, NULL, NULL};
+    /* For each figure kind, the first option given that it does not take. */
+    const char *foreign_opt[NKINDS] = {NULL};
     int c;
     opterr = 0;
     optind = 1;
     while ((c = getopt_long(argc, argv, "o:", opts, NULL)) != -1) {
-        if (option_kind(c) >= 0 && !kind_opt[option_kind(c)])
-            kind_opt[option_kind(c)] = argv[optind - 1];
+        for (int k = 0; k < NKINDS; k++)
+            if (!(option_kinds(c) >> k & 1u) && !foreign_opt[k])
+                foreign_opt[k] = argv[optind - 1];
         switch (c) {
         case 'o': a->output = optarg; break;
         case OPT_WIDTH:
@@ -213,18 +247,14 @@ static int parse_args(int argc, char **argv, args *a, int *done)
                 return cli_usage_error("plot", "--percentile must be in (0, 100], got %s",
                                        optarg);
             break;
-        case OPT_SCALE:
-            if (!strcmp(optarg, "auto"))
-                a->scale = CLEF_PLOT_SCALE_AUTO;
-            else if (!strcmp(optarg, "diverging"))
-                a->scale = CLEF_PLOT_SCALE_DIVERGING;
-            else if (!strcmp(optarg, "sequential"))
-                a->scale = CLEF_PLOT_SCALE_SEQUENTIAL;
-            else
-                return cli_usage_error("plot",
-                                       "--scale must be auto, diverging or sequential, got '%s'",
-                                       optarg);
+        case OPT_SCALE: {
+            static const char *const words[3] = {"auto", "diverging", "sequential"};
+            static const int values[3] = {CLEF_PLOT_SCALE_AUTO, CLEF_PLOT_SCALE_DIVERGING,
+                                          CLEF_PLOT_SCALE_SEQUENTIAL};
+            if (parse_choice("--scale", optarg, words, values, &a->scale))
+                return CLI_EXIT_USAGE;
             break;
+        }
         case OPT_UNIT: a->unit = optarg; break;
         case OPT_COLUMN: a->column = optarg; break;
         case OPT_HDU: a->hdu = optarg; break;
@@ -233,6 +263,21 @@ static int parse_args(int argc, char **argv, args *a, int *done)
         case OPT_TRANSPARENT: a->transparent = 1; break;
         case OPT_NO_GRID: a->no_grid = 1; break;
         case OPT_OMEGA_TOTAL: a->omega_total = 1; break;
+        case OPT_ARRANGE: {
+            static const char *const words[3] = {"auto", "grid", "overlay"};
+            static const int values[3] = {CLEF_PLOT_ARRANGE_AUTO, CLEF_PLOT_ARRANGE_GRID,
+                                          CLEF_PLOT_ARRANGE_OVERLAY};
+            if (parse_choice("--arrange", optarg, words, values, &a->arrange))
+                return CLI_EXIT_USAGE;
+            break;
+        }
+        case OPT_COLUMNS:
+            if (cli_parse_long("plot", "--columns", optarg, &a->columns))
+                return CLI_EXIT_USAGE;
+            if (a->columns < 1 || a->columns > CLEF_PLOT_PAIRS_MAX)
+                return cli_usage_error("plot", "--columns must be 1..%d, got %ld",
+                                       CLEF_PLOT_PAIRS_MAX, a->columns);
+            break;
         case OPT_QUIET: cli_verbosity = 0; break;
         case OPT_VERBOSE: cli_verbosity = 2; break;
         case OPT_HELP:
@@ -244,24 +289,22 @@ static int parse_args(int argc, char **argv, args *a, int *done)
         }
     }
     if (argc - optind != 2)
-        return cli_usage_error("plot", "expected KIND (spectrum, map or curvature) and one "
-                               "input file, got %d argument(s)", argc - optind);
+        return cli_usage_error("plot", "expected KIND (spectrum, pairs, map or curvature) and "
+                               "one input file, got %d argument(s)", argc - optind);
     const char *kind = argv[optind];
     a->input = argv[optind + 1];
-    if (!strcmp(kind, "spectrum"))
-        a->kind = KIND_SPECTRUM;
-    else if (!strcmp(kind, "map"))
-        a->kind = KIND_MAP;
-    else if (!strcmp(kind, "curvature"))
-        a->kind = KIND_CURVATURE;
-    else
-        return cli_usage_error("plot", "unknown figure '%s' (spectrum, map or curvature)", kind);
+    a->kind = -1;
+    for (int k = 0; k < NKINDS; k++)
+        if (!strcmp(kind, kind_names[k]))
+            a->kind = k;
+    if (a->kind < 0)
+        return cli_usage_error("plot", "unknown figure '%s' (spectrum, pairs, map or curvature)",
+                               kind);
     if (!a->output)
         return cli_usage_error("plot", "--output FILE is required");
-    for (int k = 0; k < 3; k++)
-        if (k != a->kind && kind_opt[k])
-            return cli_usage_error("plot", "option '%s' does not apply to 'plot %s'",
-                                   kind_opt[k], kind);
+    if (foreign_opt[a->kind])
+        return cli_usage_error("plot", "option '%s' does not apply to 'plot %s'",
+                               foreign_opt[a->kind], kind);
     if (cli_check_ordering("plot", a->ordering))
         return CLI_EXIT_USAGE;
     if (a->kind == KIND_MAP && a->height)
@@ -366,6 +409,19 @@ static int read_theory(const char *path, int lmax, theory_curve *t)
     return status;
 }
 
+/* The --model-curve as the figures take it (NULL without one). */
+static const clef_plot_curve *model_curve(const args *a, const theory_curve *th,
+                                          clef_plot_curve *curve)
+{
+    if (!a->theory)
+        return NULL;
+    curve->l = th->l;
+    curve->dl = th->dl;
+    curve->n = th->n;
+    curve->label = base_name(a->theory);
+    return curve;
+}
+
 /* Largest multipole a table shows. */
 static int table_lmax(const clef_bandpowers *bp)
 {
@@ -403,14 +459,8 @@ static int run_spectrum(const args *a)
     o.label = a->label ? a->label : base_name(a->input);
     o.compare = cmp;
     o.compare_label = a->compare_label ? a->compare_label : a->compare ? base_name(a->compare) : NULL;
-    clef_plot_curve curve = {0};
-    if (a->theory) {
-        curve.l = th.l;
-        curve.dl = th.dl;
-        curve.n = th.n;
-        curve.label = base_name(a->theory);
-        o.theory = &curve;
-    }
+    clef_plot_curve curve;
+    o.theory = model_curve(a, &th, &curve);
     clef_peak_result peak;
     if (!a->no_peak && table_peak(bp, a->input, &peak))
         o.peak = &peak;
@@ -418,6 +468,49 @@ static int run_spectrum(const args *a)
 done:
     clef_bandpowers_free(bp);
     clef_bandpowers_free(cmp);
+    free(th.l);
+    free(th.dl);
+    return status;
+}
+
+/* Every pair of a run file's FITS output (or the spectra of a polarized
+ * run), in a grid or overlaid. */
+static int run_pairs(const args *a)
+{
+    clef_bandpowers_set *set = NULL;
+    theory_curve th = {0};
+    /* More sets than a figure takes are refused by clef_plot_pairs (exit 3). */
+    const char *names[CLEF_PLOT_PAIRS_MAX];
+    int status = clef_bandpowers_read_set(&set, a->input);
+    if (status == CLEF_EFORMAT)
+        cli_info("hint: 'clef plot pairs' draws the FITS file of 'clef spectrum --run' (one "
+                 "BANDPOWER HDU per pair); a table of one pair is drawn by 'clef plot spectrum'");
+    if (status != CLEF_OK)
+        goto done;
+    int lmax = 0;
+    for (int k = 0; k < set->n; k++) {
+        if (k < CLEF_PLOT_PAIRS_MAX)
+            names[k] = set->names[k];
+        if (table_lmax(set->tables[k]) > lmax)
+            lmax = table_lmax(set->tables[k]);
+    }
+    cli_verbose("%s: %d band-power sets", a->input, set->n);
+    if (a->theory && (status = read_theory(a->theory, (int)(1.2 * lmax) + 2, &th)) != CLEF_OK)
+        goto done;
+    clef_plot_pairs_opts o = {0};
+    o.width = (int)a->width;
+    o.height = (int)a->height;
+    o.arrange = a->arrange;
+    o.columns = (int)a->columns;
+    o.log_l = a->log_l;
+    o.title = a->title;
+    o.source = a->input;
+    clef_plot_curve curve;
+    o.theory = model_curve(a, &th, &curve);
+    status = clef_plot_pairs((const clef_bandpowers *const *)set->tables, names, set->n, &o,
+                             a->output);
+done:
+    clef_bandpowers_set_free(set);
     free(th.l);
     free(th.dl);
     return status;
@@ -499,6 +592,7 @@ int cmd_plot(int argc, char **argv)
     int status;
     switch (a.kind) {
     case KIND_SPECTRUM: status = run_spectrum(&a); break;
+    case KIND_PAIRS: status = run_pairs(&a); break;
     case KIND_MAP: status = run_map(&a); break;
     default: status = run_curvature(&a); break;
     }

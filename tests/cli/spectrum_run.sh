@@ -83,6 +83,23 @@ assert np.allclose(h["BANDPOWER b x b"].data["D_BAND"], one, rtol=1e-10, atol=0)
     (h["BANDPOWER b x b"].data["D_BAND"], one)
 PY
 
+# The run's figure (docs/figures.md, "Several pairs"): 6 pairs overlaid with
+# a legend by default, a grid on request; PNG sizes as documented.
+"$C" plot pairs --quiet "$T/out/night.fits" -o "$T/night.png" 2> "$T/plot.err" \
+    || fail "plot pairs: $(cat "$T/plot.err")"
+"$C" plot pairs --quiet "$T/out/night.fits" -o "$T/night-grid.png" --arrange grid \
+    --columns 2 2> "$T/plot.err" || fail "plot pairs grid: $(cat "$T/plot.err")"
+"$CLEF_PYTHON" - "$T" <<'PY' || fail "figure sizes"
+import struct, sys
+def size(p):  # PNG IHDR: width, height (ISO/IEC 15948)
+    b = open(p, "rb").read(24)
+    assert b[:8] == b"\x89PNG\r\n\x1a\n", p
+    return struct.unpack(">II", b[16:24])
+assert size(sys.argv[1] + "/night.png") == (1000, 620), size(sys.argv[1] + "/night.png")
+# 6 pairs in 2 columns: 3 rows of 300 x 230, at least 900 wide, margins 60 x 90
+assert size(sys.argv[1] + "/night-grid.png") == (900, 3 * 230 + 90)
+PY
+
 # Bad run files: exit 3, the line and key named, nothing written.
 bad() {  # name, expected text, yaml
     printf '%s\n' "$3" > "$T/$1.yaml"
