@@ -95,6 +95,11 @@ static int map_weights(clef_estimator *e)
                                                                 bytes))
                 e->prev_wid[k] = j;
     }
+    /* The map is all that was needed of prev's weights (npix doubles each). */
+    for (int j = 0; j < p->nweights; j++) {
+        free(p->weights[j].w);
+        p->weights[j].w = NULL;
+    }
     return CLEF_OK;
 }
 
