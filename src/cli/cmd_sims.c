@@ -692,41 +692,39 @@ int cmd_sims(int argc, char **argv)
     /* synced: this rank passed the barrier after rank 0's first realisation
      * (none without the cache: there is nothing to wait for). */
     int synced = !r.so.use_cache;
-    {
-        for (long k = rank; k < ntodo; k += size) {
-            const long g = todo[k];
-            const int kind = g >= a.nreal;
-            const long i = kind ? g - a.nreal : g;
-            double ts = 0, ta = 0;
-            if (!synced && rank != 0) {
-                sctx.after_maps = sims_wait_rank0;
-                sctx.after_maps_arg = &synced;
-            }
-            rc = sims_do_one(&r, plan, kind, i, &ts, &ta);
-            if (rc != CLI_EXIT_OK) {
-                free(todo);
-                par_abort(rc);
-                goto out;
-            }
-            if (!synced) { /* rank 0 after its first realisation (the others passed it) */
-                par_barrier();
-                synced = 1;
-            }
-            double *ac = acct + SIMS_ACCT * nacct++;
-            ac[0] = (double)g;
-            ac[1] = ts;
-            ac[2] = ta;
-            ac[3] = (double)rank;
-            done_here++;
-            if (cli_verbosity >= 2)
-                fprintf(stderr, "clef sims: rank %d: %s realisation %ld in %.2f s (simulate %.2f, "
-                        "analyse %.2f)\n", rank, kind ? "noise-only" : "signal", i, ts + ta, ts,
-                        ta);
-            progress(&r, done_here, t_loop, k + size >= ntodo);
+    for (long k = rank; k < ntodo; k += size) {
+        const long g = todo[k];
+        const int kind = g >= a.nreal;
+        const long i = kind ? g - a.nreal : g;
+        double ts = 0, ta = 0;
+        if (!synced && rank != 0) {
+            sctx.after_maps = sims_wait_rank0;
+            sctx.after_maps_arg = &synced;
         }
-        if (!synced) /* a rank without realisations */
+        rc = sims_do_one(&r, plan, kind, i, &ts, &ta);
+        if (rc != CLI_EXIT_OK) {
+            free(todo);
+            par_abort(rc);
+            goto out;
+        }
+        if (!synced) { /* rank 0 after its first realisation (the others passed it) */
             par_barrier();
+            synced = 1;
+        }
+        double *ac = acct + SIMS_ACCT * nacct++;
+        ac[0] = (double)g;
+        ac[1] = ts;
+        ac[2] = ta;
+        ac[3] = (double)rank;
+        done_here++;
+        if (cli_verbosity >= 2)
+            fprintf(stderr, "clef sims: rank %d: %s realisation %ld in %.2f s (simulate %.2f, "
+                    "analyse %.2f)\n", rank, kind ? "noise-only" : "signal", i, ts + ta, ts,
+                    ta);
+        progress(&r, done_here, t_loop, k + size >= ntodo);
     }
+    if (!synced) /* a rank without realisations */
+        par_barrier();
     free(todo);
     r.t_loop = clef_wtime() - t_loop;
     double *all = NULL;
