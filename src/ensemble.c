@@ -45,17 +45,24 @@ void clef_ensemble_result_free(clef_ensemble_result *r)
 static int spectrum_analyse(void *ctx, const clef_map *const *maps, int nmaps,
                             clef_ensemble_result *out)
 {
-    const clef_ensemble_spectrum_ctx *c = ctx;
+    clef_ensemble_spectrum_ctx *c = ctx;
     clef_spectrum_result res;
     memset(&res, 0, sizeof res);
     memset(out, 0, sizeof *out);
-    clef_estimator *e = NULL;
+    /* The last realisation's estimator lends this one what depends on the
+     * masks alone (clef_estimator_reuse); this one is kept for the next. */
+    clef_spectrum_keep k = {.prev = c->state, .after_maps = c->after_maps,
+                            .arg = c->after_maps_arg};
+    c->state = NULL;
+    c->after_maps = NULL;
     const int status = clef_spectrum_compute_keep(maps[0], nmaps > 1 ? maps[1] : NULL, c->mask1,
-                                                  c->mask2, c->opts, &res, &e);
+                                                  c->mask2, c->opts, &res, &k);
     if (status != CLEF_OK) {
         clef_spectrum_result_free(&res);
         return status;
     }
+    clef_estimator *e = k.e;
+    c->state = e;
     /* The pair's pseudo-spectrum, filter and coupling (Hivon et al.'s
      * transfer function needs them; the band powers do not carry them). */
     const est_pair *pr = &e->pairs[0];
@@ -67,7 +74,6 @@ static int spectrum_analyse(void *ctx, const clef_map *const *maps, int nmaps,
     if (c->keep_coupling)
         out->coupling = malloc(sizeof *out->coupling * n1 * n1);
     if (!out->pcl || !out->filter || (c->keep_coupling && !out->coupling)) {
-        clef_estimator_destroy(e);
         clef_spectrum_result_free(&res);
         clef_ensemble_result_free(out);
         CLEF_FAIL(CLEF_ENOMEM, "no memory for a realisation's pseudo-spectrum (lmax %d)", L);
@@ -78,7 +84,6 @@ static int spectrum_analyse(void *ctx, const clef_map *const *maps, int nmaps,
         memcpy(out->coupling, clef_coupling_matrix(mk->m), sizeof *out->coupling * n1 * n1);
     out->pcl_lmax = L;
     out->wab = mk->wab;
-    clef_estimator_destroy(e);
     out->bp = res.bp; /* ownership moves to the ensemble result */
     res.bp = NULL;
     out->peak = res.peak;
@@ -87,16 +92,24 @@ static int spectrum_analyse(void *ctx, const clef_map *const *maps, int nmaps,
     return CLEF_OK;
 }
 
+static void spectrum_release(void *ctx)
+{
+    clef_ensemble_spectrum_ctx *c = ctx;
+    clef_estimator_destroy(c->state);
+    c->state = NULL;
+}
+
 void clef_ensemble_spectrum_analyser(clef_ensemble_spectrum_ctx *ctx, const clef_map *mask1,
                                      const clef_map *mask2, const clef_spectrum_opts *opts,
                                      clef_ensemble_analyser *out)
 {
+    memset(ctx, 0, sizeof *ctx);
     ctx->mask1 = mask1;
     ctx->mask2 = mask2;
     ctx->opts = opts;
-    ctx->keep_coupling = 0;
     out->ctx = ctx;
     out->analyse = spectrum_analyse;
+    out->release = spectrum_release;
 }
 
 struct clef_ensemble_plan {
@@ -113,6 +126,8 @@ void clef_ensemble_plan_destroy(clef_ensemble_plan *p)
 {
     if (!p)
         return;
+    if (p->an.release)
+        p->an.release(p->an.ctx);
     clef_sht_destroy(p->sht);
     free(p->cl);
     free(p->zero_cl);

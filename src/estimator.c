@@ -20,6 +20,7 @@
 #include <stdlib.h>
 #include <string.h>
 
+#include "clef/sht.h"
 #include "core_impl.h"
 #include "estimator_impl.h"
 
@@ -123,6 +124,9 @@ void clef_estimator_destroy(clef_estimator *e)
         free(e->walm);
     }
     clef_bins_destroy(e->own_bins);
+    clef_estimator_destroy(e->prev);
+    free(e->prev_wid);
+    clef_sht_destroy(e->sht);
     free(e->fields);
     free(e->pairs);
     free(e->weights);
@@ -305,6 +309,8 @@ int clef_estimator_compute(clef_estimator *e)
     e->t0 = clef_wtime();
     CLEF_TRY(stage_lmax(e));
     CLEF_TRY(clef_est_prepare(e));
+    if (e->after_maps) /* nothing below the map transforms has been read or made yet */
+        e->after_maps(e->after_maps_arg);
     CLEF_TRY(clef_est_mask_pairs(e));
     CLEF_TRY(clef_est_bins(e));
     CLEF_TRY(clef_est_couplings(e));
@@ -317,6 +323,9 @@ int clef_estimator_compute(clef_estimator *e)
     for (int k = 0; k < e->npairs; k++)
         CLEF_TRY(clef_est_windows(e, &e->pairs[k]));
     clef_est_stage_done(e, "windows");
+    /* What was not taken from an earlier estimator is not needed. */
+    clef_estimator_destroy(e->prev);
+    e->prev = NULL;
     return clef_est_results(e);
 }
 

@@ -70,6 +70,10 @@ int clef_est_mask_pairs(clef_estimator *e)
         mk->wa = wa;
         mk->wb = wb;
         mk->nrows = wa == wb ? 2 : 3;
+        int taken = 0;
+        CLEF_TRY(clef_est_reuse_masks(e, mk, &taken));
+        if (taken)
+            continue;
         const double *w0 = e->weights[wa].w, *w1 = e->weights[wb].w;
         double sab = 0;
         for (int64_t q = 0; q < e->npix; q++)
@@ -104,7 +108,7 @@ int clef_est_mask_pairs(clef_estimator *e)
  * bin 2-24 came out 61% low (docs/method.md section 2). */
 static int deproject(clef_estimator *r, est_masks *mk)
 {
-    if (r->o.keep_multipoles)
+    if (r->o.keep_multipoles || mk->m) /* or taken, corrected, from an earlier estimator */
         return CLEF_OK;
     /* One side when both maps have the same weights (and so templates). */
     const int same = mk->wa == mk->wb;
@@ -171,6 +175,8 @@ int clef_est_couplings(clef_estimator *e)
     for (int k = 0; k < e->nmasks; k++) {
         est_masks *mk = &e->masks[k];
         const clef_spectrum_opts *o = &e->o;
+        if (mk->m) /* taken from an earlier estimator, corrected */
+            continue;
         if (o->use_cache)
             CLEF_TRY(clef_coupling_create_cached(&mk->m, e->lmax_ext, mk->wl, e->lmax_t,
                                                  o->cache_dir, &mk->cache_hit));
@@ -200,7 +206,9 @@ int clef_est_decouple(clef_estimator *e, est_pair *p)
     const est_masks *mk = &e->masks[p->mp];
     const est_field *fa = &e->fields[p->a];
     est_op *op = &e->ops[p->op];
-    if (!op->kb) { /* the first pair of its operator builds K */
+    if (!op->kb) /* the first pair of its operator takes K from an earlier estimator, */
+        clef_est_reuse_op(e, op);
+    if (!op->kb) { /* or builds it */
         clef_coupling_opts co;
         co.rcond_min = o->rcond_min > 0 ? o->rcond_min : CLEF_COUPLING_RCOND_MIN;
         co.width_level = CLEF_COUPLING_WIDTH_LEVEL;
@@ -306,7 +314,7 @@ void clef_spectrum_windows_to_dl(const clef_bins *bins, const int *rep, int nb, 
 
 
 /* Normalised kernel indices: each product sorted, then the two products. */
-static void kernel_key(int x, int y, int z, int u, int k[4])
+void clef_est_kernel_key(int x, int y, int z, int u, int k[4])
 {
     int p0 = x < y ? x : y, p1 = x < y ? y : x, q0 = z < u ? z : u, q1 = z < u ? u : z;
     if (q0 < p0 || (q0 == p0 && q1 < p1)) {
@@ -329,7 +337,7 @@ static void kernel_key(int x, int y, int z, int u, int k[4])
 int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_coupling **m)
 {
     int k[4];
-    kernel_key(x, y, z, u, k);
+    clef_est_kernel_key(x, y, z, u, k);
     for (int j = 0; j < e->nkernels; j++)
         if (!memcmp(e->kernels[j].p, k, sizeof k)) {
             *m = e->kernels[j].m;
@@ -338,17 +346,18 @@ int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_co
     const int lt = e->lmax_t;
     const double *wl = NULL;
     double *own = NULL;
-    for (int j = 0; j < e->nmasks && !wl; j++) {
+    clef_coupling *taken = clef_est_reuse_kernel(e, k); /* from an earlier estimator */
+    for (int j = 0; j < e->nmasks && !wl && !taken; j++) {
         const est_masks *mk = &e->masks[j];
         int k1[4], k2[4];
-        kernel_key(mk->wa, mk->wb, mk->wa, mk->wb, k2); /* W[w_a w_b] */
-        kernel_key(mk->wa, mk->wa, mk->wb, mk->wb, k1); /* W[w_a^2, w_b^2] */
+        clef_est_kernel_key(mk->wa, mk->wb, mk->wa, mk->wb, k2); /* W[w_a w_b] */
+        clef_est_kernel_key(mk->wa, mk->wa, mk->wb, mk->wb, k1); /* W[w_a^2, w_b^2] */
         if (!memcmp(k, k2, sizeof k))
             wl = mk->wl + lt + 1;
         else if (!memcmp(k, k1, sizeof k))
             wl = mk->wl + (size_t)(mk->nrows - 1) * (lt + 1);
     }
-    if (!wl) {
+    if (!wl && !taken) {
         CLEF_TRY(clef_est_weight_alms(e));
         if (!(own = malloc(((size_t)lt + 1) * sizeof *own)))
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for a covariance kernel");
@@ -367,13 +376,14 @@ int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_co
     est_kernel *nk = realloc(e->kernels, (size_t)(e->nkernels + 1) * sizeof *nk);
     if (!nk) {
         free(own);
+        clef_coupling_destroy(taken);
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for covariance kernels");
     }
     e->kernels = nk;
     est_kernel *d = &nk[e->nkernels];
     memcpy(d->p, k, sizeof k);
-    d->m = NULL;
-    int status = clef_spectrum_coupling(&d->m, e->lmax_ext, wl, lt, &e->o);
+    d->m = taken;
+    int status = taken ? CLEF_OK : clef_spectrum_coupling(&d->m, e->lmax_ext, wl, lt, &e->o);
     free(own);
     CLEF_TRY(status);
     e->nkernels++;

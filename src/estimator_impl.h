@@ -43,6 +43,7 @@ typedef struct est_masks {
     int cache_hit;             /* M from the cache */
     int cw;                    /* coupling width of W_l */
     double wab;                /* mean of w_a w_b */
+    int from;                  /* the earlier estimator's mask pair it was taken from, or -1 */
 } est_masks;
 
 /* What depends on a pair of weights and the pair filter alone: the hidden
@@ -104,6 +105,14 @@ struct clef_estimator {
     struct { char name[24]; double seconds; } stage[CLEF_SPECTRUM_MAX_STAGES];
     double t0;
     int computed;
+    /* Reuse between estimators of the same masks (estimator_reuse.c). */
+    clef_estimator *prev;      /* the earlier estimator pieces are taken from (owned) */
+    int *prev_wid;             /* this run's weights k equal prev's prev_wid[k] (-1: none) */
+    int keep;                  /* keep the plan, kernels and windows for a later estimator */
+    int nreused;               /* pieces taken from prev */
+    struct clef_sht *sht;      /* the maps' analysis plan, kept with keep */
+    void (*after_maps)(void *arg); /* called once after the map transforms (may be NULL) */
+    void *after_maps_arg;
 };
 
 /* spectrum.c: the limits the options of one field put on lmax, and its
@@ -132,6 +141,13 @@ int clef_est_couplings(clef_estimator *e);
 int clef_est_decouple(clef_estimator *e, est_pair *p);
 int clef_est_windows(clef_estimator *e, est_pair *p);
 int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_coupling **m);
+void clef_est_kernel_key(int x, int y, int z, int u, int k[4]); /* normalised kernel ids */
+
+/* estimator_reuse.c: NULL / 0 when nothing matches */
+struct clef_sht *clef_est_reuse_sht(clef_estimator *e);
+int clef_est_reuse_masks(clef_estimator *e, est_masks *mk, int *taken);
+clef_coupling *clef_est_reuse_kernel(clef_estimator *e, const int key[4]);
+void clef_est_reuse_op(clef_estimator *e, est_op *op);
 
 /* spectrum_cov.c */
 int clef_est_covariance(clef_estimator *e);

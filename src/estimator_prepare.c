@@ -138,7 +138,8 @@ int clef_est_prepare(clef_estimator *e)
     so.nmaps = 1;
     const size_t na = clef_alm_size(e->lmax_ext, e->lmax_ext);
     clef_progress("analysis", 0.0);
-    CLEF_CHECK(clef_sht_create(&sht, e->nside, e->lmax_ext, &so));
+    if (!(sht = clef_est_reuse_sht(e)))
+        CLEF_CHECK(clef_sht_create(&sht, e->nside, e->lmax_ext, &so));
     for (int i = 0; i < e->nfields; i++) {
         est_field *f = &e->fields[i];
         for (int s = 0; s < f->f.nsplits; s++) {
@@ -156,7 +157,10 @@ int clef_est_prepare(clef_estimator *e)
     }
     clef_est_stage_done(e, "transform");
 fail:
-    clef_sht_destroy(sht);
+    if (e->keep && status == CLEF_OK)
+        e->sht = sht; /* for the next estimator of a series (clef_estimator_reuse) */
+    else
+        clef_sht_destroy(sht);
     free(tmap);
     return status;
 }

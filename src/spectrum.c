@@ -196,17 +196,22 @@ int clef_spectrum_compute(const clef_map *map1, const clef_map *map2, const clef
 
 int clef_spectrum_compute_keep(const clef_map *map1, const clef_map *map2, const clef_map *mask1,
                                const clef_map *mask2, const clef_spectrum_opts *opts,
-                               clef_spectrum_result *res, clef_estimator **keep)
+                               clef_spectrum_result *res, clef_spectrum_keep *keep)
 {
+    clef_estimator *prev = keep ? keep->prev : NULL;
     if (keep)
-        *keep = NULL;
+        keep->prev = keep->e = NULL;
     clef_spectrum_opts o;
     if (opts)
         o = *opts;
     else
         clef_spectrum_opts_default(&o);
     memset(res, 0, sizeof *res);
-    CLEF_TRY(check_inputs(map1, map2, mask1, mask2, &o));
+    int status = check_inputs(map1, map2, mask1, mask2, &o);
+    if (status != CLEF_OK) {
+        clef_estimator_destroy(prev);
+        return status;
+    }
     const int cross = map2 != NULL;
     if (o.noise_cl && cross)
         clef_log(CLEF_LOG_WARN, "noise spectrum ignored: a cross-spectrum of maps with "
@@ -234,7 +239,14 @@ int clef_spectrum_compute_keep(const clef_map *map1, const clef_map *map2, const
         f[i].noise_lmax = o.noise_lmax;
     }
     clef_estimator *e = NULL;
-    int status = clef_estimator_create(&e, &o, 0);
+    status = clef_estimator_create(&e, &o, 0);
+    if (status == CLEF_OK && keep) {
+        status = clef_estimator_reuse(e, prev); /* e owns prev from here */
+        prev = NULL;
+        e->after_maps = keep->after_maps;
+        e->after_maps_arg = keep->arg;
+    }
+    clef_estimator_destroy(prev);
     for (int i = 0; status == CLEF_OK && i <= cross; i++)
         status = clef_estimator_add_field(e, &f[i]);
     if (status == CLEF_OK)
@@ -250,7 +262,7 @@ int clef_spectrum_compute_keep(const clef_map *map1, const clef_map *map2, const
         }
     }
     if (keep && status == CLEF_OK)
-        *keep = e;
+        keep->e = e;
     else
         clef_estimator_destroy(e);
     return status;

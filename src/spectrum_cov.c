@@ -449,9 +449,12 @@ fail:
             free(raw[k]);
     free(raw);
     free(tmp);
-    /* The kernels are done with: the memory of a few n x n matrices. */
-    for (int k = 0; k < e->nkernels; k++)
-        clef_coupling_destroy(e->kernels[k].m);
-    e->nkernels = 0;
+    /* The kernels are done with: the memory of a few n x n matrices
+     * (kept for the next estimator of a series, clef_estimator_reuse). */
+    if (!e->keep) {
+        for (int k = 0; k < e->nkernels; k++)
+            clef_coupling_destroy(e->kernels[k].m);
+        e->nkernels = 0;
+    }
     return status;
 }

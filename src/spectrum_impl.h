@@ -8,14 +8,24 @@
 
 /* Effective weights: the mask where the map is valid, 0 elsewhere (new
  * array; spectrum.c). */
-/* clef_spectrum_compute, also handing over its estimator (keep non-NULL,
- * on success: the caller destroys it) for what the result does not carry:
- * the pseudo-spectrum, the coupling M and the filter of the pair (the
- * ensemble's transfer function, ensemble.c). */
+/* clef_spectrum_compute for a series of maps with the same masks (the
+ * ensemble, ensemble.c).  k NULL: as clef_spectrum_compute.  Else the call
+ * takes k->prev (an estimator of an earlier call, or NULL) for
+ * clef_estimator_reuse and always consumes it (k->prev is NULL on return);
+ * calls k->after_maps(k->arg), when set, once the maps are transformed and
+ * before anything that depends on the masks is read or made; on success
+ * k->e is this call's estimator, for what the result does not carry (the
+ * pseudo-spectrum, the coupling M and the filter of the pair) and as the
+ * next call's k->prev (the caller destroys the last one). */
 struct clef_estimator;
+typedef struct clef_spectrum_keep {
+    struct clef_estimator *prev, *e;
+    void (*after_maps)(void *arg);
+    void *arg;
+} clef_spectrum_keep;
 int clef_spectrum_compute_keep(const clef_map *map1, const clef_map *map2, const clef_map *mask1,
                                const clef_map *mask2, const clef_spectrum_opts *opts,
-                               clef_spectrum_result *res, struct clef_estimator **keep);
+                               clef_spectrum_result *res, clef_spectrum_keep *k);
 int clef_spectrum_make_weights(const clef_map *map, const clef_map *mask, double **w_out);
 
 /* Fill a table's D_b, C_b, l ranges and errors from band powers of `bins`

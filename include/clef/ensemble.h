@@ -71,14 +71,28 @@ void clef_ensemble_result_free(clef_ensemble_result *r);
 typedef struct clef_ensemble_analyser {
     void *ctx;
     int (*analyse)(void *ctx, const clef_map *const *maps, int nmaps, clef_ensemble_result *out);
+    void (*release)(void *ctx); /* what ctx holds between analyses (may be NULL); called by
+                                   clef_ensemble_plan_destroy */
 } clef_ensemble_analyser;
 
 /* The analyser of `clef spectrum`: clef_spectrum_compute with these masks
- * and options (all kept by pointer: they must outlive the analyser). */
+ * and options (all kept by pointer: they must outlive the analyser).  It
+ * keeps the last realisation's estimator and hands it to the next
+ * (clef_estimator_reuse, estimator.h): the analysis plan, mask spectra,
+ * deprojection correction, coupling, covariance kernels, binned operator
+ * and windows are read from the cache (or made) once per process, not once
+ * per realisation, with the same bits as without. */
 typedef struct clef_ensemble_spectrum_ctx {
     const clef_map *mask1, *mask2;
     const clef_spectrum_opts *opts;
     int keep_coupling; /* 1: results carry the coupling M (0 after the init below) */
+    /* Called once in the next analysis, after the maps are transformed and
+     * before anything that depends on the masks is read or made, then
+     * cleared (NULL: none).  clef sims' ranks wait there for rank 0 to fill
+     * the coupling cache, their own transforms done meanwhile. */
+    void (*after_maps)(void *arg);
+    void *after_maps_arg;
+    void *state; /* private: the estimator kept for the next analysis */
 } clef_ensemble_spectrum_ctx;
 void clef_ensemble_spectrum_analyser(clef_ensemble_spectrum_ctx *ctx, const clef_map *mask1,
                                      const clef_map *mask2, const clef_spectrum_opts *opts,
@@ -106,7 +120,8 @@ void clef_ensemble_plan_destroy(clef_ensemble_plan *p);
 int clef_ensemble_plan_simulate(clef_ensemble_plan *p, uint64_t base_seed, uint64_t i, int kind,
                                 clef_map **maps, int *nmaps);
 
-/* Analyse maps with the plan's analyser. */
+/* Analyse maps with the plan's analyser (clef_ensemble_plan_destroy calls
+ * its release). */
 int clef_ensemble_plan_analyse(clef_ensemble_plan *p, const clef_map *const *maps, int nmaps,
                                clef_ensemble_result *out);
 

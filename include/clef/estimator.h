@@ -74,6 +74,23 @@ void clef_estimator_take_result(clef_estimator *e, int k, clef_spectrum_result *
  * order, n x n row-major (n = npairs x nbins); NULL before compute.
  * Cross-pair blocks are 0 unless the estimator was created with joint = 1. */
 const double *clef_estimator_covariance(const clef_estimator *e, int *n);
+/* Reuse, for ensembles of maps with the same masks: before compute, hand
+ * e an estimator computed before (prev, or NULL for the first of a
+ * series); e takes from it what depends on the masks alone wherever
+ * everything that piece depends on is equal in value (the effective
+ * weights pixel by pixel, nside, the multipole ranges, iterations and the
+ * options that enter it; for a pair's binned operator and windows also its
+ * bins and filter): the analysis plan, mask spectra, deprojection
+ * correction, coupling matrix, covariance kernels, binned operator and
+ * windows.  Results are the same bits as without reuse; what does not
+ * match is computed as usual.  e owns prev from this call on, also when it
+ * fails (it frees
+ * prev's map transforms at once and the rest during compute or destroy),
+ * and e keeps its own pieces for the next estimator of the series.
+ * Errors: CLEF_EINVAL (e already computed, prev not computed). */
+int clef_estimator_reuse(clef_estimator *e, clef_estimator *prev);
+/* Pieces e took from its earlier estimator. */
+int clef_estimator_reused(const clef_estimator *e);
 /* Spherical-harmonic analyses of maps (each split map once) and of
  * weights and weight products (0 when the mask spectra came from the cache). */
 void clef_estimator_transforms(const clef_estimator *e, int *maps, int *masks);

@@ -10,6 +10,7 @@
 
 #include "clef/clef.h"
 #include "cli.h"
+#include "cli_par.h"
 #include "cli_sims.h"
 
 static const char REC_MAGIC[8] = {'C', 'L', 'E', 'F', 'R', 'E', 'C', '2'};
@@ -293,11 +294,12 @@ int sims_do_one(sims_run *r, clef_ensemble_plan *plan, int kind, long i, double 
     *t_sim = clef_wtime() - t0;
     t0 = clef_wtime();
     /* The coupling M is handed over only while the windows file (which
-     * keeps the transfer system made from it) is still to be written. */
+     * keeps the transfer system made from it) is still to be written: by
+     * rank 0, whose first realisation the other ranks wait for. */
     {
         char wpath[4400];
         windows_path(r, wpath, sizeof wpath);
-        r->sctx->keep_coupling = access(wpath, F_OK) != 0;
+        r->sctx->keep_coupling = par_rank() == 0 && access(wpath, F_OK) != 0;
     }
     status = clef_ensemble_plan_analyse(plan, (const clef_map *const *)maps, nmaps, &res);
     *t_an = clef_wtime() - t0;
@@ -308,8 +310,8 @@ int sims_do_one(sims_run *r, clef_ensemble_plan *plan, int kind, long i, double 
         rc = CLI_EXIT_NUMERIC;
         goto done;
     }
-    if ((rc = write_windows(r, &res)) != CLI_EXIT_OK)
-        goto done;
+    if (par_rank() == 0 && (rc = write_windows(r, &res)) != CLI_EXIT_OK)
+        goto done; /* rank 0 writes it: it always makes the first realisation to do */
 
     char path[4400];
     record_path(r, kind, i, path, sizeof path);

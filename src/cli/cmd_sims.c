@@ -499,6 +499,14 @@ static int load_input_cl(const sims_args *a, int lmax, double *cl)
     return clef_theory_read_cl(a->cl_file, lmax, cl, NULL);
 }
 
+/* The analyser's after_maps on ranks other than 0 (their first
+ * realisation): wait for rank 0 to have filled the coupling cache. */
+static void sims_wait_rank0(void *arg)
+{
+    par_barrier();
+    *(int *)arg = 1;
+}
+
 static void progress(const sims_run *r, long done_here, double t0, int last)
 {
     static double t_last = -1e30;
@@ -666,10 +674,13 @@ int cmd_sims(int argc, char **argv)
         fprintf(stderr, "clef sims: %ld of %ld realisations already in '%s', %ld to do\n",
                 r.nskipped, total, a.run, ntodo);
 
-    /* Rank 0 does the first realisation alone: it fills the coupling cache
-     * (and writes the windows) that the other ranks then read instead of
-     * computing the coupling again.  Then ranks take realisations in turn
-     * (position k of the to-do list goes to rank k mod size). */
+    /* Ranks take realisations in turn (position k of the to-do list goes
+     * to rank k mod size).  Rank 0's first realisation fills the coupling
+     * cache (and writes the windows) that the other ranks then read instead
+     * of computing the coupling again: they make and transform their first
+     * realisation meanwhile, and wait (one barrier, in the analyser's
+     * after_maps) only before what depends on the masks.  From then on
+     * each rank keeps the mask pieces in memory (clef_estimator_reuse). */
     acct = malloc(sizeof *acct * (size_t)(SIMS_ACCT * (ntodo / size + 2)));
     if (!acct) {
         free(todo);
@@ -678,35 +689,42 @@ int cmd_sims(int argc, char **argv)
     }
     const double t_loop = clef_wtime();
     long done_here = 0;
-    for (int phase = 0; phase < 2; phase++) {
-        for (long k = phase ? 1 : 0; k < (phase ? ntodo : (ntodo > 0)); k++) {
-            if (k % size != rank)
-                continue;
-            const long g = todo[k];
-            const int kind = g >= a.nreal;
-            const long i = kind ? g - a.nreal : g;
-            double ts = 0, ta = 0;
-            rc = sims_do_one(&r, plan, kind, i, &ts, &ta);
-            if (rc != CLI_EXIT_OK) {
-                free(todo);
-                par_abort(rc);
-                goto out;
-            }
-            double *ac = acct + SIMS_ACCT * nacct++;
-            ac[0] = (double)g;
-            ac[1] = ts;
-            ac[2] = ta;
-            ac[3] = (double)rank;
-            done_here++;
-            if (cli_verbosity >= 2)
-                fprintf(stderr, "clef sims: rank %d: %s realisation %ld in %.2f s (simulate %.2f, "
-                        "analyse %.2f)\n", rank, kind ? "noise-only" : "signal", i, ts + ta, ts,
-                        ta);
-            progress(&r, done_here, t_loop, k + size >= ntodo);
+    /* synced: this rank passed the barrier after rank 0's first realisation
+     * (none without the cache: there is nothing to wait for). */
+    int synced = !r.so.use_cache;
+    for (long k = rank; k < ntodo; k += size) {
+        const long g = todo[k];
+        const int kind = g >= a.nreal;
+        const long i = kind ? g - a.nreal : g;
+        double ts = 0, ta = 0;
+        if (!synced && rank != 0) {
+            sctx.after_maps = sims_wait_rank0;
+            sctx.after_maps_arg = &synced;
         }
-        if (phase == 0)
+        rc = sims_do_one(&r, plan, kind, i, &ts, &ta);
+        if (rc != CLI_EXIT_OK) {
+            free(todo);
+            par_abort(rc);
+            goto out;
+        }
+        if (!synced) { /* rank 0 after its first realisation (the others passed it) */
             par_barrier();
+            synced = 1;
+        }
+        double *ac = acct + SIMS_ACCT * nacct++;
+        ac[0] = (double)g;
+        ac[1] = ts;
+        ac[2] = ta;
+        ac[3] = (double)rank;
+        done_here++;
+        if (cli_verbosity >= 2)
+            fprintf(stderr, "clef sims: rank %d: %s realisation %ld in %.2f s (simulate %.2f, "
+                    "analyse %.2f)\n", rank, kind ? "noise-only" : "signal", i, ts + ta, ts,
+                    ta);
+        progress(&r, done_here, t_loop, k + size >= ntodo);
     }
+    if (!synced) /* a rank without realisations */
+        par_barrier();
     free(todo);
     r.t_loop = clef_wtime() - t_loop;
     double *all = NULL;

@@ -95,6 +95,11 @@ done = [r for d in j["ranks_detail"] for r in d["realisations"]]
 assert all(len(d["realisations"]) > 0 for d in j["ranks_detail"]), j["ranks_detail"]
 assert len(done) == len(set(done)) == j["realisations_done_now"]
 PY
+    # without the cache: no barrier, each rank makes the coupling once; the
+    # windows still from rank 0 alone
+    OMP_NUM_THREADS=1 mpirun -np 2 --oversubscribe "$C" sims --run "$T/m2n" $SIMS --no-cache \
+        2> "$T/errn" || fail "mpirun -np 2 --no-cache: $(cat "$T/errn")"
+    same "$T/r1" "$T/m2n" || fail "2 ranks without the cache differ from 1 rank"
     # SIGKILL to mpirun after a few realisations, then the same command again
     OMP_NUM_THREADS=1 mpirun -np 2 --oversubscribe "$C" sims --run "$T/k" $SIMS 2>/dev/null &
     pid=$!
