@@ -155,6 +155,16 @@ def geometry_infer(l_peak: float, l_peak_err: float, *, omega_b: float = ...,
                    nnodes: int = ..., seed: int = ..., forward_table: Optional[_Table] = ...,
                    peak_l_min: float = ..., peak_l_max: float = ..., peak_half_width: float = ...,
                    peak_curv_sigma: float = ...) -> dict: ...
+class GeometryPlan:
+    def __init__(self, *, omega_b: float = ..., omega_b_err: float = ..., omega_c: float = ...,
+                 omega_c_err: float = ..., h: float = ..., h_err: float = ...,
+                 model_err: float = ..., n_eff: float = ..., m_nu: float = ..., t_cmb: float = ...,
+                 omega_k_min: float = ..., omega_k_max: float = ..., ngrid: int = ...,
+                 nsamples: int = ..., nnodes: int = ..., seed: int = ...,
+                 forward_table: Optional[_Table] = ..., peak_l_min: float = ...,
+                 peak_l_max: float = ..., peak_half_width: float = ...,
+                 peak_curv_sigma: float = ...) -> None: ...
+    def execute(self, l_peak: float, l_peak_err: float) -> dict: ...
 
 # simulations and instrument (sim.h, beam.h)
 @overload

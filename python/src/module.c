@@ -441,7 +441,7 @@ PyMODINIT_FUNC PyInit__clef(void)
         if (add_methods(mod, tables[i]) < 0)
             goto fail;
     if (pyclef_sht_register(mod) < 0 || pyclef_sht_spin_register(mod) < 0 ||
-        pyclef_estimator_register(mod) < 0)
+        pyclef_estimator_register(mod) < 0 || pyclef_geometry_register(mod) < 0)
         goto fail;
     if (PyModule_AddStringConstant(mod, "__version__", CLEF_VERSION) < 0 ||
         PyModule_AddIntConstant(mod, "NSIDE_MAX", CLEF_NSIDE_MAX) < 0)

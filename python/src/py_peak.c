@@ -62,39 +62,53 @@ static PyObject *py_peak_find(PyObject *self, PyObject *args, PyObject *kw)
     return pyclef_peak_dict(&r);
 }
 
-static PyObject *py_geometry_infer(PyObject *self, PyObject *args, PyObject *kw)
+/* The options of clef.geometry_infer and clef.GeometryPlan.  The plan takes
+ * the same keywords without l_peak and l_peak_err (placeholders are parsed
+ * in their place and not used: clef_geometry_plan_create ignores them).
+ * *bp is the forward table (NULL when none), to free after the call. */
+static int geometry_opts(PyObject *args, PyObject *kw, int with_peak, const char *name,
+                         clef_geometry_opts *o, clef_bandpowers **bp)
 {
-    (void)self;
     static char *kwl[] = {"l_peak", "l_peak_err", "omega_b", "omega_b_err", "omega_c",
                           "omega_c_err", "h", "h_err", "model_err", "n_eff", "m_nu", "t_cmb",
                           "omega_k_min", "omega_k_max", "ngrid", "nsamples", "nnodes", "seed",
                           "forward_table", "peak_l_min", "peak_l_max", "peak_half_width",
                           "peak_curv_sigma", NULL};
-    clef_geometry_opts o;
-    clef_geometry_opts_default(&o);
-    unsigned long long seed = o.seed;
-    PyObject *ftab = Py_None;
-    if (!PyArg_ParseTupleAndKeywords(
-            args, kw, "dd|$ddddddddddddiiiKOdddd:geometry_infer", kwl, &o.l_peak, &o.l_peak_err,
-            &o.omega_b.mean, &o.omega_b.sigma, &o.omega_c.mean, &o.omega_c.sigma, &o.h.mean,
-            &o.h.sigma, &o.model_err, &o.base.n_eff, &o.base.m_nu, &o.base.t_cmb, &o.omega_k_min,
-            &o.omega_k_max, &o.ngrid, &o.nsamples, &o.nnodes, &seed, &ftab, &o.forward_peak.l_min,
-            &o.forward_peak.l_max, &o.forward_peak.half_width, &o.forward_peak.curv_nsigma))
-        return NULL;
-    o.seed = (unsigned long)seed;
-    clef_bandpowers *bp = NULL;
-    if (ftab != Py_None && !(bp = pyclef_bandpowers_from(ftab, "forward_table")))
-        return NULL;
-    o.forward_table = bp;
-    clef_geometry_result *r = NULL;
-    int st;
-    pyclef_log_refresh();
-    Py_BEGIN_ALLOW_THREADS
-    st = clef_geometry_infer(&o, &r);
-    Py_END_ALLOW_THREADS
-    clef_bandpowers_free(bp);
-    if (st != CLEF_OK)
-        return pyclef_raise(st);
+    clef_geometry_opts_default(o);
+    *bp = NULL;
+    unsigned long long seed = o->seed;
+    PyObject *ftab = Py_None, *pargs = args;
+    if (!with_peak) {
+        if (PyTuple_GET_SIZE(args) > 0 ||
+            (kw && (PyDict_GetItemString(kw, "l_peak") || PyDict_GetItemString(kw, "l_peak_err")))) {
+            PyErr_Format(PyExc_TypeError, "%s takes keyword options only, without l_peak and "
+                         "l_peak_err (give those to execute())", name);
+            return -1;
+        }
+        if (!(pargs = Py_BuildValue("(dd)", 1.0, 1.0)))
+            return -1;
+    }
+    char fmt[64];
+    snprintf(fmt, sizeof fmt, "dd|$ddddddddddddiiiKOdddd:%s", name);
+    const int ok = PyArg_ParseTupleAndKeywords(
+        pargs, kw, fmt, kwl, &o->l_peak, &o->l_peak_err, &o->omega_b.mean, &o->omega_b.sigma,
+        &o->omega_c.mean, &o->omega_c.sigma, &o->h.mean, &o->h.sigma, &o->model_err,
+        &o->base.n_eff, &o->base.m_nu, &o->base.t_cmb, &o->omega_k_min, &o->omega_k_max,
+        &o->ngrid, &o->nsamples, &o->nnodes, &seed, &ftab, &o->forward_peak.l_min,
+        &o->forward_peak.l_max, &o->forward_peak.half_width, &o->forward_peak.curv_nsigma);
+    if (pargs != args)
+        Py_DECREF(pargs);
+    if (!ok)
+        return -1;
+    o->seed = (unsigned long)seed;
+    if (ftab != Py_None && !(*bp = pyclef_bandpowers_from(ftab, "forward_table")))
+        return -1;
+    o->forward_table = *bp;
+    return 0;
+}
+
+static PyObject *geometry_dict(clef_geometry_result *r)
+{
     PyObject *out = Py_BuildValue(
         "{s:N,s:N,s:d,s:d,s:d,s:d,s:d,s:d,s:d,s:s,s:O,s:d,s:d,s:d,s:d,s:d,s:d,s:i,s:O,s:d,s:d,"
         "s:d,s:d,s:i}",
@@ -111,6 +125,114 @@ static PyObject *py_geometry_infer(PyObject *self, PyObject *args, PyObject *kw)
         r->forward_nodes_failed);
     clef_geometry_result_free(r);
     return out;
+}
+
+static PyObject *py_geometry_infer(PyObject *self, PyObject *args, PyObject *kw)
+{
+    (void)self;
+    clef_geometry_opts o;
+    clef_bandpowers *bp;
+    if (geometry_opts(args, kw, 1, "geometry_infer", &o, &bp) < 0)
+        return NULL;
+    clef_geometry_result *r = NULL;
+    int st;
+    pyclef_log_refresh();
+    Py_BEGIN_ALLOW_THREADS
+    st = clef_geometry_infer(&o, &r);
+    Py_END_ALLOW_THREADS
+    clef_bandpowers_free(bp);
+    if (st != CLEF_OK)
+        return pyclef_raise(st);
+    return geometry_dict(r);
+}
+
+/* clef.GeometryPlan: clef_geometry_plan_create once (prior samples and the
+ * forward-modelled model l_1 at the nodes), then execute(l_peak,
+ * l_peak_err) per measurement; a plan may be executed from several threads
+ * (geometry.h), so no lock. */
+typedef struct {
+    PyObject_HEAD
+    clef_geometry_plan *p;
+} GeometryPlanObject;
+
+static void gplan_dealloc(GeometryPlanObject *self)
+{
+    clef_geometry_plan_destroy(self->p);
+    Py_TYPE(self)->tp_free((PyObject *)self);
+}
+
+static int gplan_init(GeometryPlanObject *self, PyObject *args, PyObject *kw)
+{
+    clef_geometry_opts o;
+    clef_bandpowers *bp;
+    if (geometry_opts(args, kw, 0, "GeometryPlan", &o, &bp) < 0)
+        return -1;
+    clef_geometry_plan *p = NULL;
+    int st;
+    pyclef_log_refresh();
+    Py_BEGIN_ALLOW_THREADS
+    st = clef_geometry_plan_create(&p, &o);
+    Py_END_ALLOW_THREADS
+    clef_bandpowers_free(bp);
+    if (st != CLEF_OK) {
+        pyclef_raise(st);
+        return -1;
+    }
+    clef_geometry_plan_destroy(self->p);
+    self->p = p;
+    return 0;
+}
+
+static PyObject *gplan_execute(GeometryPlanObject *self, PyObject *args)
+{
+    double lp, le;
+    if (!PyArg_ParseTuple(args, "dd:execute", &lp, &le))
+        return NULL;
+    if (!self->p) {
+        PyErr_SetString(PyExc_RuntimeError, "clef.GeometryPlan was not initialised");
+        return NULL;
+    }
+    clef_geometry_result *r = NULL;
+    int st;
+    pyclef_log_refresh();
+    Py_BEGIN_ALLOW_THREADS
+    st = clef_geometry_plan_execute(self->p, lp, le, &r);
+    Py_END_ALLOW_THREADS
+    if (st != CLEF_OK)
+        return pyclef_raise(st);
+    return geometry_dict(r);
+}
+
+static PyMethodDef gplan_methods[] = {
+    {"execute", (PyCFunction)gplan_execute, METH_VARARGS,
+     "execute(l_peak, l_peak_err)\n--\n\n"
+     "The curvature posterior for one measured first peak [multipoles], as\n"
+     "clef.geometry_infer returns it for the plan's options.  Releases the GIL; one plan\n"
+     "may be executed from several threads."},
+    {NULL, NULL, 0, NULL}};
+
+static PyTypeObject GeometryPlanType = {
+    PyVarObject_HEAD_INIT(NULL, 0)
+    .tp_name = "clef.GeometryPlan",
+    .tp_basicsize = sizeof(GeometryPlanObject),
+    .tp_dealloc = (destructor)gplan_dealloc,
+    .tp_flags = Py_TPFLAGS_DEFAULT,
+    .tp_doc = "GeometryPlan(*, omega_b=0.0224, ..., peak_curv_sigma=2.0)\n--\n\n"
+              "The curvature inference of clef.geometry_infer in two steps, for many measured\n"
+              "peaks with one set of bins and options (e.g. an ensemble of skies): the keywords\n"
+              "are those of clef.geometry_infer without l_peak and l_peak_err; the prior samples\n"
+              "and the model l_1 at the nodes (forward-modelled through forward_table when given)\n"
+              "are computed once here (include/clef/geometry.h, clef_geometry_plan_create).",
+    .tp_methods = gplan_methods,
+    .tp_init = (initproc)gplan_init,
+    .tp_new = PyType_GenericNew,
+};
+
+int pyclef_geometry_register(PyObject *module)
+{
+    if (PyType_Ready(&GeometryPlanType) < 0)
+        return -1;
+    return PyModule_AddObjectRef(module, "GeometryPlan", (PyObject *)&GeometryPlanType);
 }
 
 PyMethodDef pyclef_peak_methods[] = {

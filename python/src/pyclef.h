@@ -175,6 +175,7 @@ extern PyMethodDef pyclef_theory_methods[];
 extern PyMethodDef pyclef_table_methods[];
 int pyclef_sht_register(PyObject *module);
 int pyclef_sht_spin_register(PyObject *module);
+int pyclef_geometry_register(PyObject *module);
 int pyclef_estimator_register(PyObject *module);
 extern PyMethodDef pyclef_estimator_methods[];
 extern PyMethodDef pyclef_spectrum_pol_methods[];

@@ -60,6 +60,7 @@ def main(mask_path, n=1000):
     clef.write_map_pol(pol_path, tqu, unit="uK")
     bad_te = cl4.copy()
     bad_te[3, 5] = 10 * cl4[0, 5]
+    gplan = clef.GeometryPlan(nsamples=50, ngrid=101, nnodes=5)
     bad_calls = (lambda: clef.read_map("/nonexistent.fits"),
                  lambda: clef.spectrum(small, small, lmax=1),
                  lambda: clef.spectrum(sky, cut * 2),
@@ -76,7 +77,9 @@ def main(mask_path, n=1000):
                  lambda: clef.simulate_pol(8, bad_te, lmax=16),
                  lambda: clef.spectrum_pol(tqu, cut * 2),
                  lambda: clef.spectrum_pol(tqu, cut, pol_noise_cl=cl[:5]),
-                 lambda: clef.write_map_pol(pol_out, [small, small]))
+                 lambda: clef.write_map_pol(pol_out, [small, small]),
+                 lambda: clef.GeometryPlan(ngrid=1),
+                 lambda: gplan.execute(220.0, -1.0))
 
     def cycle(i):
         p = clef.Sht(8, 16)
@@ -104,6 +107,9 @@ def main(mask_path, n=1000):
         # a pair with a polarization mask; its noise spectrum is ignored with
         # a warning (spectrum.h), which the summary's list carries
         clef.spectrum_pol(tqu, cut, tqu, pol_mask=small, bin_width=4, pol_noise_cl=cl)
+        g = clef.GeometryPlan(nsamples=50, ngrid=101, nnodes=5)
+        g.execute(220.0 + i % 7, 3.0)
+        del g
         for bad in bad_calls:
             try:
                 bad()

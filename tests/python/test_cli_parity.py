@@ -237,6 +237,29 @@ def test_geometry(tmp_path, model_table, forward):
     for k in ("best", "lo68", "hi68", "lo95", "hi95", "mean", "sd"):
         close(r[k], j["omega_k"][k])
     assert r["classification"] == j["classification"] and r["forward"] == forward
+    # The two-step form (clef_geometry_plan_create / _execute): the same
+    # posterior as the one-call form, and as the CLI.
+    kw = dict(forward_table=model_table) if forward else dict(h=0.7)
+    plan = clef.GeometryPlan(nsamples=300, ngrid=301, **kw)
+    q = plan.execute(p["l_peak"], p["l_peak_err"])
+    close(q["posterior"], j["curve"]["posterior"], rtol=1e-10)
+    for k in ("best", "lo68", "hi68", "lo95", "hi95", "mean", "sd"):
+        close(q[k], j["omega_k"][k])
+    assert q["classification"] == j["classification"] and q["forward"] == forward
+
+
+def test_geometry_plan_bad_input():
+    with pytest.raises(TypeError, match="keyword options only"):
+        clef.GeometryPlan(l_peak=220.0)
+    with pytest.raises(TypeError):
+        clef.GeometryPlan(220.0)
+    with pytest.raises(clef.InvalidArgumentError):
+        clef.GeometryPlan(ngrid=1)
+    plan = clef.GeometryPlan(nsamples=200, ngrid=201)
+    with pytest.raises(clef.InvalidArgumentError):
+        plan.execute(220.0, -1.0)
+    with pytest.raises(TypeError):
+        plan.execute(220.0)
 
 
 def test_geometry_bad_input():
