@@ -459,7 +459,7 @@ static void test_spectrum_cli_peak(void **state)
 /* n band-power sets of nb bins of width 12 from l = 2, as the run writer
  * makes them: set k scaled by (1 + k / 4) so that panels differ, named
  * "fK x fK+1", written to `path` by clef_bandpowers_write_fits_set. */
-static clef_bandpowers **make_sets(int n, int nb, char names[][16], const char *path)
+static clef_bandpowers **make_sets(int n, int nb, char names[][32], const char *path)
 {
     clef_bandpowers **bp = calloc((size_t)n, sizeof *bp);
     const char *nm[CLEF_PLOT_PAIRS_MAX];
@@ -473,7 +473,7 @@ static clef_bandpowers **make_sets(int n, int nb, char names[][16], const char *
             bp[k]->dl_err[b] = 60 + 5 * b;
             bp[k]->cl[b] = 2 * pi * bp[k]->dl[b] / (bp[k]->l_eff[b] * (bp[k]->l_eff[b] + 1));
         }
-        snprintf(names[k], 16, "f%d x f%d", k, k + 1);
+        snprintf(names[k], sizeof names[k], "f%d x f%d", k, k + 1);
         nm[k] = names[k];
     }
     if (path)
@@ -504,7 +504,7 @@ static int astropy_count_is(const char *fits, int expect)
 static void test_pairs_read_set(void **state)
 {
     (void)state;
-    char names[7][16];
+    char names[7][32];
     const char *fits = test_path("sets7.fits");
     clef_bandpowers **bp = make_sets(7, 9, names, fits);
     assert_int_equal(astropy_count_is(fits, 7), 0);
@@ -573,7 +573,7 @@ static void expect_colour(const image *im, double x, double y, const double c[3]
 static void test_pairs_grid(void **state)
 {
     (void)state;
-    char names[7][16];
+    char names[7][32];
     const char *fits = test_path("grid7.fits"), *png = test_path("grid7.png");
     clef_bandpowers **bp = make_sets(7, 9, names, fits);
     assert_int_equal(astropy_count_is(fits, 7), 0);
@@ -622,7 +622,7 @@ static void test_pairs_grid(void **state)
  * after the last; the colours of the sets are distinct. */
 static void overlay_case(int n, int arrange)
 {
-    char names[CLEF_PLOT_PAIRS_MAX][16];
+    char names[CLEF_PLOT_PAIRS_MAX][32];
     const char *fits = test_path("over.fits"), *png = test_path("over.png");
     clef_bandpowers **bp = make_sets(n, 10, names, fits);
     assert_int_equal(astropy_count_is(fits, n), 0);
@@ -679,7 +679,7 @@ static void test_pairs_overlay_20(void **state)
 static void test_pairs_errors(void **state)
 {
     (void)state;
-    char names[2][16];
+    char names[2][32];
     const char *one = test_path("single.fits"), *csv = test_path("single.csv");
     const char *out = test_path("never.png");
     clef_bandpowers **bp = make_sets(2, 6, names, NULL);
