@@ -8,11 +8,6 @@ set -u
 BIN=${CLEF_BIN:-build/clef}
 PY=${CLEF_PYTHON:-/usr/bin/python3}
 T=$(mktemp -d "${CLEF_TEST_TMP:-/tmp}/plot-XXXXXX")
-# Under the leak checker (make sanitize): fontconfig, used by cairo's text
-# calls, never frees a few hundred bytes of its configuration and caches;
-# that is not ours to fix.
-printf 'leak:libfontconfig.so\n' > "$T/lsan.supp"
-LSAN_OPTIONS="suppressions=$T/lsan.supp${LSAN_OPTIONS:+:$LSAN_OPTIONS}"; export LSAN_OPTIONS
 fails=0
 fail() { echo "FAIL: $*"; fails=$((fails + 1)); }
 

@@ -13,10 +13,6 @@ T="$CLEF_TEST_TMP/sims-cli"
 mkdir -p "$T" || exit 1
 fail() { echo "FAIL: $*"; exit 1; }
 C="$CLEF_BIN"
-# Under the leak checker (make sanitize): fontconfig, used by the cairo text
-# of the covariance figure, keeps a few hundred bytes (as tests/cli/plot.sh)
-printf 'leak:libfontconfig.so\n' > "$T/lsan.supp"
-LSAN_OPTIONS="suppressions=$T/lsan.supp${LSAN_OPTIONS:+:$LSAN_OPTIONS}"; export LSAN_OPTIONS
 P="$CLEF_PYTHON"
 export OMPI_ALLOW_RUN_AS_ROOT=1 OMPI_ALLOW_RUN_AS_ROOT_CONFIRM=1 OMPI_MCA_rmaps_base_oversubscribe=1
 if [ -n "${CLEF_LONG:-}" ]; then NS=128; N=100; else NS=64; N=24; fi
