@@ -586,7 +586,7 @@ static int lin_resp_fill(const fit *f, const double *c, const double *sg, lin_re
     int status = CLEF_OK;
     if (!lr->pred || !lr->a || !r || !jac || !scratch) {
         status = clef_fail(CLEF_ENOMEM, "peak: out of memory for the error draws");
-        goto done;
+        goto fail;
     }
     lr->n = n;
     CLEF_CHECK(evaluate(f, c, r, jac, &obj, &chi2, scratch));
@@ -601,7 +601,6 @@ static int lin_resp_fill(const fit *f, const double *c, const double *sg, lin_re
     }
     tri_solve(f->chol, n, lr->a, 1, 1);
 fail:
-done:
     free(r);
     free(jac);
     free(scratch);
