@@ -170,6 +170,12 @@ static int check_header(fitsfile *f, const char *name, int hdu, long long *pos, 
                 ok_size &= card_int(c, &naxis);
             } else if (key_is(c, "GROUPS")) {
                 groups = c[29] == 'T';
+            } else if (key_indexed(c, "NAXIS") && !card_int(c, &v)) {
+                /* CFITSIO misreads such a value and may then allocate
+                 * gigabytes for the table (fuzz_map finding); the standard
+                 * asks for an integer (section 4.4.1). */
+                CLEF_FAIL(CLEF_EFORMAT, "'%s' HDU %d header card %d: keyword %.*s is not an "
+                          "integer: %.70s", name, hdu, card_no, key_len(c), c, c + 10);
             } else if (key_is(c, "NAXIS1")) {
                 if (!card_int(c, &naxis1) || naxis1 < 0)
                     ok_size = 0;
