@@ -44,16 +44,16 @@
 #include "sht_impl.h"
 
 struct clef_sht_spin {
-    clef_sht *inner;         /* lmax + 2, nmaps = 2 npairs, weights w/s^2, synthesis x 1/s^2 */
-    int lmax, mmax, npairs;
+    clef_sht *inner;         /* lmax + spin, nmaps = 2 npairs, weights w/s^spin, synthesis x 1/s^spin */
+    int lmax, mmax, npairs, spin;
     size_t nalm, nalm_ext;
     double complex *ext;     /* 2 npairs x nalm_ext: inner a_lm (Q then U per pair) */
     double complex *ext2;    /* the inner plan's own delta array, reused (same size) */
 };
 
-/* Coefficients of s^2 W_lm = sum_k w[k] lambda_{l-2+2k} (k = 0, 1, 2) and
- * s^2 X_lm = sum_k x[k] lambda_{l-1+2k} (k = 0, 1); entries with an index
- * below m are zero (lambda_{l'm} = 0 for l' < m). */
+/* Coefficients of s^S W_lm = sum_k w[k] lambda_{l-S+2k} (k = 0..S) and
+ * s^S X_lm = sum_k x[k] lambda_{l-S+1+2k} (k = 0..S-1), S the spin;
+ * entries with an index below m are zero (lambda_{l'm} = 0 for l' < m). */
 typedef struct spin_coef {
     double w[3], x[2];
 } spin_coef;
@@ -72,7 +72,7 @@ static inline double beta_lm(int l, int m)
     return sqrt(a / ((2.0 * l - 1.0) * (2.0 * l + 1.0)));
 }
 
-static spin_coef coef_lm(int l, int m)
+static spin_coef coef_lm2(int l, int m)
 {
     spin_coef c;
     const double dl = l, dm = m;
@@ -94,14 +94,50 @@ static spin_coef coef_lm(int l, int m)
     return c;
 }
 
+/* Spin 1 (the eth derivative of a scalar, as the B-mode purification
+ * needs; src/purify.c).  With _{+-1}Y_lm = (+-eth, -eth-bar) Y_lm / n_l,
+ * n_l = sqrt(l(l+1)) (Goldberg et al. 1967), and lambda' = d lambda / d theta:
+ *   _1lambda = (m lambda / s - lambda') / n_l,  _-1lambda = (m lambda / s + lambda') / n_l.
+ * For a real pair (Q, U) of odd spin the conjugate relation
+ * conj(_sY_lm) = (-1)^(s+m) _{-s}Y_{l,-m} requires
+ * a_{-s} = -(-1)^s (a_E - i a_B): a_1 = -(a_E + i a_B), a_{-1} = +(a_E - i a_B).
+ * Then the roles of the even and odd parts swap: Q = -sum (a_E W + i a_B X)
+ * e^{i m phi}, U = -sum (a_B W - i a_E X) e^{i m phi} hold with
+ *   W = (_1lambda - _-1lambda)/2 = -lambda'/n_l,  X = (_1lambda + _-1lambda)/2 = m lambda/(s n_l).
+ * With s lambda' = l z lambda_l - e_l lambda_{l-1} and z lambda_l =
+ * alpha_l lambda_{l+1} + beta_l lambda_{l-1}:
+ *   s W = ((l+1) beta_l lambda_{l-1} - l alpha_l lambda_{l+1}) / n_l,   s X = m lambda_l / n_l. */
+static spin_coef coef_lm1(int l, int m)
+{
+    spin_coef c = {{0, 0, 0}, {0, 0}};
+    const double dl = l, inv = 1.0 / sqrt(dl * (dl + 1.0));
+    c.w[0] = (dl + 1.0) * beta_lm(l, m) * inv;
+    c.w[1] = -dl * alpha_lm(l, m) * inv;
+    c.x[0] = (double)m * inv;
+    return c;
+}
+
+static inline spin_coef coef_lm(int spin, int l, int m)
+{
+    return spin == 1 ? coef_lm1(l, m) : coef_lm2(l, m);
+}
+
 int clef_sht_spin_create(clef_sht_spin **out, int64_t nside, int lmax, const clef_sht_opts *opts)
+{
+    return clef_sht_spin_create_s(out, nside, lmax, 2, opts);
+}
+
+int clef_sht_spin_create_s(clef_sht_spin **out, int64_t nside, int lmax, int spin,
+                           const clef_sht_opts *opts)
 {
     int status = CLEF_OK;
     if (!out)
         CLEF_FAIL(CLEF_EINVAL, "clef_sht_spin_create: output pointer is NULL");
     *out = NULL;
-    if (lmax < 2 || lmax > 65533)
-        CLEF_FAIL(CLEF_EINVAL, "sht spin-2: lmax = %d outside [2, 65533]", lmax);
+    if (spin != 1 && spin != 2)
+        CLEF_FAIL(CLEF_EINVAL, "sht spin: spin %d (1 or 2 supported)", spin);
+    if (lmax < spin || lmax > 65533)
+        CLEF_FAIL(CLEF_EINVAL, "sht spin-%d: lmax = %d outside [%d, 65533]", spin, lmax, spin);
     const int mmax = opts && opts->mmax > 0 ? opts->mmax : lmax;
     if (mmax > lmax)
         CLEF_FAIL(CLEF_EINVAL, "sht spin-2: mmax = %d above lmax = %d", mmax, lmax);
@@ -118,7 +154,7 @@ int clef_sht_spin_create(clef_sht_spin **out, int64_t nside, int lmax, const cle
     clef_sht_opts io = opts ? *opts : (clef_sht_opts){0};
     io.mmax = mmax;
     io.nmaps = 2 * npairs;
-    CLEF_CHECK(clef_sht_create_impl(&p->inner, nside, lmax + 2, &io, 0));
+    CLEF_CHECK(clef_sht_create_impl(&p->inner, nside, lmax + spin, &io, 0));
     clef_sht *in = p->inner;
     in->ring_syn_scale = malloc((size_t)in->nrings * sizeof(double));
     if (!in->ring_syn_scale) {
@@ -127,15 +163,16 @@ int clef_sht_spin_create(clef_sht_spin **out, int64_t nside, int lmax, const cle
     }
     for (int r = 0; r < in->nrings; r++) {
         /* HEALPix ring centres are never at a pole: sin theta >= ~0.8/nside. */
-        const double s2 = in->ring_sth[r] * in->ring_sth[r];
+        const double s2 = spin == 2 ? in->ring_sth[r] * in->ring_sth[r] : in->ring_sth[r];
         in->ring_w[r] /= s2;
         in->ring_syn_scale[r] = 1.0 / s2;
     }
+    p->spin = spin;
     p->lmax = lmax;
     p->mmax = mmax;
     p->npairs = npairs;
     p->nalm = clef_alm_size(lmax, mmax);
-    p->nalm_ext = clef_alm_size(lmax + 2, mmax);
+    p->nalm_ext = clef_alm_size(lmax + spin, mmax);
     p->ext = malloc(p->nalm_ext * 2 * (size_t)npairs * sizeof(double complex));
     p->ext2 = in->delta;
     if (!p->ext) {
@@ -166,7 +203,7 @@ int clef_sht_spin_mmax(const clef_sht_spin *p) { return p->mmax; }
 static void to_ext(const clef_sht_spin *p, int npairs, const double complex *const *ae,
                    const double complex *const *ab, double complex *ext)
 {
-    const int lmax = p->lmax, lx = lmax + 2;
+    const int lmax = p->lmax, S = p->spin, lx = lmax + S;
 #pragma omp parallel for schedule(dynamic, 4)
     for (int m = 0; m <= p->mmax; m++)
         for (int j = 0; j < npairs; j++) {
@@ -174,19 +211,19 @@ static void to_ext(const clef_sht_spin *p, int npairs, const double complex *con
             double complex *du = dq + p->nalm_ext;
             for (int l = m; l <= lx; l++)
                 dq[l] = du[l] = 0.0;
-            for (int l = m > 2 ? m : 2; l <= lmax; l++) {
-                const spin_coef c = coef_lm(l, m);
+            for (int l = m > S ? m : S; l <= lmax; l++) {
+                const spin_coef c = coef_lm(S, l, m);
                 const double complex e = ae[j][clef_alm_index(lmax, l, m)];
                 const double complex b = ab[j][clef_alm_index(lmax, l, m)];
-                for (int k = 0; k < 3; k++) {
-                    const int lp = l - 2 + 2 * k;
+                for (int k = 0; k <= S; k++) {
+                    const int lp = l - S + 2 * k;
                     if (lp < m)
                         continue;
                     dq[lp] -= c.w[k] * e;
                     du[lp] -= c.w[k] * b;
                 }
-                for (int k = 0; k < 2; k++) {
-                    const int lp = l - 1 + 2 * k;
+                for (int k = 0; k < S; k++) {
+                    const int lp = l - S + 1 + 2 * k;
                     if (lp < m)
                         continue;
                     dq[lp] -= I * c.x[k] * b;
@@ -200,7 +237,7 @@ static void to_ext(const clef_sht_spin *p, int npairs, const double complex *con
 static void from_ext(const clef_sht_spin *p, int npairs, const double complex *ext,
                      double complex *const *ae, double complex *const *ab, int add)
 {
-    const int lmax = p->lmax, lx = lmax + 2;
+    const int lmax = p->lmax, S = p->spin, lx = lmax + S;
 #pragma omp parallel for schedule(dynamic, 4)
     for (int m = 0; m <= p->mmax; m++)
         for (int j = 0; j < npairs; j++) {
@@ -208,17 +245,17 @@ static void from_ext(const clef_sht_spin *p, int npairs, const double complex *e
             const double complex *u = q + p->nalm_ext;
             for (int l = m; l <= lmax; l++) {
                 double complex e = 0.0, b = 0.0;
-                if (l >= 2) {
-                    const spin_coef c = coef_lm(l, m);
-                    for (int k = 0; k < 3; k++) {
-                        const int lp = l - 2 + 2 * k;
+                if (l >= S) {
+                    const spin_coef c = coef_lm(S, l, m);
+                    for (int k = 0; k <= S; k++) {
+                        const int lp = l - S + 2 * k;
                         if (lp < m)
                             continue;
                         e -= c.w[k] * q[lp];
                         b -= c.w[k] * u[lp];
                     }
-                    for (int k = 0; k < 2; k++) {
-                        const int lp = l - 1 + 2 * k;
+                    for (int k = 0; k < S; k++) {
+                        const int lp = l - S + 1 + 2 * k;
                         if (lp < m)
                             continue;
                         e -= I * c.x[k] * u[lp];

@@ -150,6 +150,118 @@ static void test_synthesis_direct(void **state)
     }
 }
 
+/* Spin 1 (clef_sht_spin_create_s, used by the B-mode purification):
+ * synthesis against a direct sum over every m, -l..l, of
+ *   _1Y_lm = eth Y_lm / sqrt(l(l+1)),  eth Y = -(d_theta + i/sin d_phi) Y
+ * (Newman & Penrose 1966) from GSL's lambda_lm and d lambda/d theta, with
+ * a_1 = -(a_E + i a_B) and a_E,l-m = (-1)^m conj(a_E,lm) (likewise a_B):
+ * Q + iU must equal that sum.  The same sum of _{-1}Y = -ethbar Y / sqrt(l(l+1))
+ * with a_{-1} = +(a_E - i a_B) must give Q - iU, which checks the odd-spin
+ * convention of sht.h independently of the transform's algebra. */
+static void gsl_spin1(int lmax, double theta, double *p1, double *m1)
+{
+    const size_t n = gsl_sf_legendre_array_n((size_t)lmax);
+    double *v = malloc(n * sizeof *v), *d1 = malloc(n * sizeof *d1);
+    const double z = cos(theta), s = sin(theta);
+    assert_int_equal(gsl_sf_legendre_deriv_alt_array_e(GSL_SF_LEGENDRE_SPHARM, (size_t)lmax, z,
+                                                       -1.0, v, d1),
+                     0);
+    /* p1, m1 [l][m + lmax]: _{+1}lambda, _{-1}lambda for every m. */
+    for (int l = 0; l <= lmax; l++)
+        for (int m = -l; m <= l; m++) {
+            const size_t i = gsl_sf_legendre_array_index((size_t)l, (size_t)abs(m));
+            const double sg = (m < 0 && (m & 1)) ? -1.0 : 1.0; /* lambda_{l,-m} = (-1)^m lambda_lm */
+            const double lam = sg * v[i], dl = sg * d1[i];
+            const size_t o = (size_t)l * (2 * lmax + 1) + (size_t)(m + lmax);
+            if (l < 1) {
+                p1[o] = m1[o] = 0.0;
+                continue;
+            }
+            const double nl = 1.0 / sqrt(l * (l + 1.0));
+            p1[o] = -nl * (dl - m * lam / s);  /* eth: -(d_theta - m/s) */
+            m1[o] = nl * (dl + m * lam / s);   /* -ethbar: (d_theta + m/s) */
+        }
+    free(v);
+    free(d1);
+}
+
+static void test_spin1_direct(void **state)
+{
+    (void)state;
+    const int64_t ns = 8;
+    const int lmax = 3 * (int)ns - 1;
+    const int64_t npix = 12 * ns * ns;
+    double complex *ae = random_alm2(lmax, 71), *ab = random_alm2(lmax, 72);
+    for (int m = 0; m <= 1; m++) { /* spin 1 has l = 1 modes */
+        ae[clef_alm_index(lmax, 1, m)] = 0.3 - 0.2 * I * m;
+        ab[clef_alm_index(lmax, 1, m)] = -0.4 + 0.5 * I * m;
+    }
+    double *q = malloc(npix * sizeof *q), *u = malloc(npix * sizeof *u);
+    clef_sht_spin *p;
+    assert_int_equal(clef_sht_spin_create_s(&p, ns, lmax, 1, NULL), CLEF_OK);
+    assert_int_equal(clef_sht_spin_synthesis(p, 1, (const double complex *const *)&ae,
+                                             (const double complex *const *)&ab, &q, &u),
+                     CLEF_OK);
+    const size_t nl = (size_t)(lmax + 1) * (2 * lmax + 1);
+    double *p1 = malloc(nl * sizeof *p1), *m1 = malloc(nl * sizeof *m1);
+    double last = -1.0, dp = 0.0, dm = 0.0, rms = 0.0;
+    for (int64_t i = 0; i < npix; i++) {
+        double th, ph;
+        pix2ang_ring64(ns, i, &th, &ph);
+        if (th != last) {
+            gsl_spin1(lmax, th, p1, m1);
+            last = th;
+        }
+        double complex fp = 0.0, fm = 0.0;
+        for (int l = 1; l <= lmax; l++)
+            for (int m = -l; m <= l; m++) {
+                const size_t o = clef_alm_index(lmax, l, abs(m));
+                double complex e = ae[o], b = ab[o];
+                if (m < 0) {
+                    const double sg = (m & 1) ? -1.0 : 1.0;
+                    e = sg * conj(e);
+                    b = sg * conj(b);
+                }
+                const double complex ph_m = cexp(I * m * ph);
+                const size_t k = (size_t)l * (2 * lmax + 1) + (size_t)(m + lmax);
+                fp += -(e + I * b) * p1[k] * ph_m;
+                fm += (e - I * b) * m1[k] * ph_m;
+            }
+        const double complex f = q[i] + I * u[i];
+        dp = fmax(dp, cabs(f - fp));
+        dm = fmax(dm, cabs(conj(f) - fm));
+        rms += q[i] * q[i] + u[i] * u[i];
+    }
+    rms = sqrt(rms / (double)npix);
+    printf("spin-1 synthesis nside %lld lmax %d: max |Q+iU - sum a_1 _1Y| / rms %.3g, "
+           "|Q-iU - sum a_-1 _-1Y| / rms %.3g\n", (long long)ns, lmax, dp / rms, dm / rms);
+    check_abs(dp / rms, 0.0, 1e-12, "direct sum of GSL lambda_lm through eth (spin +1)");
+    check_abs(dm / rms, 0.0, 1e-12, "direct sum through ethbar (spin -1, a_-1 = +(a_E - i a_B))");
+    /* Analysis inverts the synthesis of a band-limited field (iterated). */
+    double complex *re = calloc(clef_alm_size(lmax, lmax), sizeof *re);
+    double complex *rb = calloc(clef_alm_size(lmax, lmax), sizeof *rb);
+    clef_sht_spin_destroy(p);
+    const int lb = lmax / 2;
+    assert_int_equal(clef_sht_spin_create_s(&p, ns, lb, 1, NULL), CLEF_OK);
+    double complex *be = random_alm2(lb, 73), *bb = random_alm2(lb, 74);
+    be[clef_alm_index(lb, 1, 1)] = 0.7 + 0.1 * I;
+    assert_int_equal(clef_sht_spin_synthesis(p, 1, (const double complex *const *)&be,
+                                             (const double complex *const *)&bb, &q, &u),
+                     CLEF_OK);
+    assert_int_equal(clef_sht_spin_analysis(p, 1, (const double *const *)&q,
+                                            (const double *const *)&u, &re, &rb, 8),
+                     CLEF_OK);
+    double worst = 0.0;
+    for (size_t i = 0; i < clef_alm_size(lb, lb); i++)
+        worst = fmax(worst, fmax(cabs(re[i] - be[i]), cabs(rb[i] - bb[i])));
+    printf("spin-1 round trip nside %lld lmax %d, 8 iterations: max |a - a0| %.3g\n",
+           (long long)ns, lb, worst);
+    check_abs(worst, 0.0, 1e-10, "spin-1 analysis of its own synthesis (exact a_lm)");
+    clef_sht_spin_destroy(p);
+    free(ae); free(ab); free(be); free(bb); free(re); free(rb);
+    free(q); free(u); free(p1); free(m1);
+}
+
 /* Goldberg et al. 1967 explicit form (as quoted e.g. in the Wikipedia
  * article on spin-weighted harmonics, from memory), at phi = 0:
  * _sY_lm = (-1)^m sqrt((l+m)!(l-m)!(2l+1) / (4 pi (l+s)!(l-s)!)) sin^{2l}(theta/2)
@@ -372,6 +484,7 @@ int main(void)
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_closed_forms),
         cmocka_unit_test(test_synthesis_direct),
+        cmocka_unit_test(test_spin1_direct),
         cmocka_unit_test(test_roundtrip),
         cmocka_unit_test(test_threads_pairs),
     };

@@ -113,6 +113,14 @@ int clef_sht_spin_create(clef_sht_spin **out, int64_t nside, int lmax, const cle
 void clef_sht_spin_destroy(clef_sht_spin *p); /* NULL is a no-op */
 int clef_sht_spin_lmax(const clef_sht_spin *p);
 int clef_sht_spin_mmax(const clef_sht_spin *p);
+/* The same engine for spin 1 or 2 (clef_sht_spin_create is spin 2):
+ * Q +- iU = sum a_{+-s,lm} _{+-s}Y_lm with a_s = -(a_E + i a_B),
+ * a_{-s} = -(-1)^s (a_E - i a_B) (real Q, U for either parity of s),
+ * _{+-1}Y_lm = (eth, -eth-bar) Y_lm / sqrt(l(l+1)).  Spin 1 serves the
+ * eth derivatives of a weight map in B-mode purification (src/purify.c);
+ * l < s entries are zero. */
+int clef_sht_spin_create_s(clef_sht_spin **out, int64_t nside, int lmax, int spin,
+                           const clef_sht_opts *opts);
 /* The inner spin-0 plan (ring info, clef_sht_timings of the last call). */
 const clef_sht *clef_sht_spin_plan(const clef_sht_spin *p);
 /* npairs (a_E, a_B) sets -> npairs (Q, U) RING maps. */
