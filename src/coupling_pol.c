@@ -218,9 +218,11 @@ fail:
 /* ------------------------------------------------------------------ binned */
 
 struct clef_coupling_pol_binned {
-    int nbins, lmax, sign;
+    int nbins, lmax;
+    const clef_coupling *m[4]; /* blocks aa, ab, ba, bb (borrowed; NULL = zero), for the windows */
+    double sg[4];              /* their signs */
     double rcond;
-    double *lu;       /* (2 nb)^2 LU factors of [[K+, s K-], [s K-, K+]] */
+    double *lu;       /* (2 nb)^2 LU factors of [[K_aa, K_ab], [K_ba, K_bb]] */
     lapack_int *ipiv;
     double *kinv_p;   /* 2 nb x 2 (lmax + 1): K^-1 blockdiag(P, P) */
 };
@@ -242,40 +244,45 @@ const double *clef_coupling_pol_binned_kinv_p(const clef_coupling_pol_binned *k)
     return k->kinv_p;
 }
 
-int clef_coupling_pol_binned_create(clef_coupling_pol_binned **out, const clef_coupling *mplus,
-                                    const clef_coupling *mminus, const clef_bins *bins,
-                                    const double *transfer, int sign,
-                                    const clef_coupling_opts *opts)
+/* The joint operator of two spectra (a, b) whose pseudo-spectra obey
+ * <C~^a> = M_aa C^a + M_ab C^b, <C~^b> = M_ba C^a + M_bb C^b (blocks as
+ * m[0..3] = aa, ab, ba, bb, each scaled by sg[]; a NULL block is zero). */
+static int binned_rows(clef_coupling_pol_binned **out, const clef_coupling *const m[4],
+                       const double sg[4], const clef_bins *bins, const double *transfer,
+                       const char *what, const clef_coupling_opts *opts)
 {
     int status = CLEF_OK;
     clef_coupling_pol_binned *k = NULL;
-    double *kp = NULL, *km = NULL;
+    double *kb[4] = {NULL, NULL, NULL, NULL};
     if (!out)
         CLEF_FAIL(CLEF_EINVAL, "coupling (pol): output pointer is NULL");
     *out = NULL;
-    if (!mplus || !mminus || !bins)
+    if (!m[0] || !m[3] || !bins)
         CLEF_FAIL(CLEF_EINVAL, "coupling (pol): NULL matrix or bins");
-    if (mplus->lmax != mminus->lmax)
-        CLEF_FAIL(CLEF_EINVAL, "coupling (pol): M+ lmax %d differs from M- lmax %d", mplus->lmax,
-                  mminus->lmax);
-    if (sign != 1 && sign != -1)
-        CLEF_FAIL(CLEF_EINVAL, "coupling (pol): block sign %d (expected +1 for EE/BB, -1 for "
-                  "EB/BE)", sign);
+    for (int i = 1; i < 4; i++)
+        if (m[i] && m[i]->lmax != m[0]->lmax)
+            CLEF_FAIL(CLEF_EINVAL, "coupling (pol): %s blocks of lmax %d and %d", what,
+                      m[0]->lmax, m[i]->lmax);
     const double rmin = opts && opts->rcond_min > 0 ? opts->rcond_min : CLEF_COUPLING_RCOND_MIN;
     const int nb = clef_bins_count(bins), nb2 = 2 * nb;
-    const size_t n = (size_t)mplus->lmax + 1, n2 = 2 * n;
-    kp = malloc((size_t)nb * nb * sizeof *kp);
-    km = malloc((size_t)nb * nb * sizeof *km);
+    const size_t n = (size_t)m[0]->lmax + 1, n2 = 2 * n;
     k = calloc(1, sizeof *k);
-    if (!kp || !km || !k) {
+    if (!k) {
         status = clef_fail(CLEF_ENOMEM, "coupling (pol): out of memory for %d bins", nb);
         goto fail;
     }
-    CLEF_CHECK(clef_coupling_build_k(mplus, bins, transfer, kp));
-    CLEF_CHECK(clef_coupling_build_k(mminus, bins, transfer, km));
+    for (int i = 0; i < 4; i++) {
+        if (!(kb[i] = calloc((size_t)nb * nb, sizeof *kb[i]))) {
+            status = clef_fail(CLEF_ENOMEM, "coupling (pol): out of memory for %d bins", nb);
+            goto fail;
+        }
+        if (m[i])
+            CLEF_CHECK(clef_coupling_build_k(m[i], bins, transfer, kb[i]));
+        k->m[i] = m[i];
+        k->sg[i] = sg[i];
+    }
     k->nbins = nb;
-    k->lmax = mplus->lmax;
-    k->sign = sign;
+    k->lmax = m[0]->lmax;
     k->lu = malloc((size_t)nb2 * nb2 * sizeof *k->lu);
     k->ipiv = malloc((size_t)nb2 * sizeof *k->ipiv);
     k->kinv_p = calloc((size_t)nb2 * n2, sizeof *k->kinv_p);
@@ -285,25 +292,25 @@ int clef_coupling_pol_binned_create(clef_coupling_pol_binned **out, const clef_c
     }
     for (int i = 0; i < nb; i++)
         for (int j = 0; j < nb; j++) {
-            const double a = kp[(size_t)i * nb + j], b = sign * km[(size_t)i * nb + j];
-            k->lu[(size_t)i * nb2 + j] = a;
-            k->lu[(size_t)i * nb2 + nb + j] = b;
-            k->lu[(size_t)(nb + i) * nb2 + j] = b;
-            k->lu[(size_t)(nb + i) * nb2 + nb + j] = a;
+            const size_t e = (size_t)i * nb + j;
+            k->lu[(size_t)i * nb2 + j] = sg[0] * kb[0][e];
+            k->lu[(size_t)i * nb2 + nb + j] = sg[1] * kb[1][e];
+            k->lu[(size_t)(nb + i) * nb2 + j] = sg[2] * kb[2][e];
+            k->lu[(size_t)(nb + i) * nb2 + nb + j] = sg[3] * kb[3][e];
         }
     const double anorm = LAPACKE_dlange(LAPACK_ROW_MAJOR, '1', nb2, nb2, k->lu, nb2);
     lapack_int info = LAPACKE_dgetrf(LAPACK_ROW_MAJOR, nb2, nb2, k->lu, nb2, k->ipiv);
     if (info != 0) {
         status = clef_fail(CLEF_ENUMERIC, "coupling (pol): the binned %s coupling matrix is "
                            "singular (LAPACK dgetrf info %d): use wider bins",
-                           sign > 0 ? "EE/BB" : "EB/BE", (int)info);
+                           what, (int)info);
         goto fail;
     }
     info = LAPACKE_dgecon(LAPACK_ROW_MAJOR, '1', nb2, k->lu, nb2, anorm, &k->rcond);
     if (info != 0 || !(k->rcond >= rmin)) {
         status = clef_fail(CLEF_ENUMERIC, "coupling (pol): the binned %s coupling matrix is "
                            "ill-conditioned (rcond %.3g < %.3g, %d bins): use wider bins",
-                           sign > 0 ? "EE/BB" : "EB/BE", k->rcond, rmin, nb);
+                           what, k->rcond, rmin, nb);
         goto fail;
     }
     for (int h = 0; h < 2; h++)
@@ -317,15 +324,43 @@ int clef_coupling_pol_binned_create(clef_coupling_pol_binned **out, const clef_c
                            (int)info);
         goto fail;
     }
-    free(kp);
-    free(km);
+    for (int i = 0; i < 4; i++)
+        free(kb[i]);
     *out = k;
     return CLEF_OK;
 fail:
-    free(kp);
-    free(km);
+    for (int i = 0; i < 4; i++)
+        free(kb[i]);
     clef_coupling_pol_binned_destroy(k);
     return status;
+}
+
+int clef_coupling_pol_binned_create(clef_coupling_pol_binned **out, const clef_coupling *mplus,
+                                    const clef_coupling *mminus, const clef_bins *bins,
+                                    const double *transfer, int sign,
+                                    const clef_coupling_opts *opts)
+{
+    if (out)
+        *out = NULL;
+    if (!mplus || !mminus)
+        CLEF_FAIL(CLEF_EINVAL, "coupling (pol): NULL matrix or bins");
+    if (sign != 1 && sign != -1)
+        CLEF_FAIL(CLEF_EINVAL, "coupling (pol): block sign %d (expected +1 for EE/BB, -1 for "
+                  "EB/BE)", sign);
+    const clef_coupling *const m[4] = {mplus, mminus, mminus, mplus};
+    const double sg[4] = {1.0, sign, sign, 1.0};
+    return binned_rows(out, m, sg, bins, transfer, sign > 0 ? "EE/BB" : "EB/BE", opts);
+}
+
+int clef_coupling_pol_binned_create_rows(clef_coupling_pol_binned **out,
+                                         const clef_coupling *m_aa, const clef_coupling *m_ab,
+                                         const clef_coupling *m_ba, const clef_coupling *m_bb,
+                                         const clef_bins *bins, const double *transfer,
+                                         const clef_coupling_opts *opts)
+{
+    const clef_coupling *const m[4] = {m_aa, m_ab, m_ba, m_bb};
+    const double sg[4] = {1.0, 1.0, 1.0, 1.0};
+    return binned_rows(out, m, sg, bins, transfer, "EE/BB (pure B)", opts);
 }
 
 void clef_coupling_pol_binned_decouple(const clef_coupling_pol_binned *k, const double *pcl_a,
@@ -348,24 +383,38 @@ int clef_coupling_pol_binned_windows(const clef_coupling_pol_binned *k,
 {
     if (!k || !mplus || !mminus || !bins || !out)
         CLEF_FAIL(CLEF_EINVAL, "coupling (pol) windows: NULL argument");
-    if (mplus->lmax != k->lmax || mminus->lmax != k->lmax || clef_bins_count(bins) != k->nbins)
-        CLEF_FAIL(CLEF_EINVAL, "coupling (pol) windows: matrices or bins do not match the "
-                  "binned operator");
+    if (mplus != k->m[0] || mminus != k->m[1])
+        CLEF_FAIL(CLEF_EINVAL, "coupling (pol) windows: matrices do not match the binned "
+                  "operator");
+    return clef_coupling_pol_binned_windows_rows(k, bins, transfer, out);
+}
+
+int clef_coupling_pol_binned_windows_rows(const clef_coupling_pol_binned *k,
+                                          const clef_bins *bins, const double *transfer,
+                                          double *out)
+{
+    if (!k || !bins || !out)
+        CLEF_FAIL(CLEF_EINVAL, "coupling (pol) windows: NULL argument");
+    if (clef_bins_count(bins) != k->nbins)
+        CLEF_FAIL(CLEF_EINVAL, "coupling (pol) windows: bins do not match the binned operator");
     CLEF_TRY(clef_coupling_check_transfer(transfer, k->lmax));
     const int nb = k->nbins;
     const size_t n = (size_t)k->lmax + 1, n2 = 2 * n;
-    /* Rows (h, b): sum_{l'' in b} P_bl'' [M^{h h'}]_{l'' l}, columns (h', l);
-     * M^{aa} = M+, M^{ab} = sign M-. */
+    /* Rows (h, b): sum_{l'' in b} P_bl'' [M^{h h'}]_{l'' l}, columns (h', l). */
     for (int h = 0; h < 2; h++)
         for (int b = 0; b < nb; b++) {
             double *row = out + (size_t)(h * nb + b) * n2;
             memset(row, 0, n2 * sizeof *row);
-            for (int l2 = clef_bins_l_lo(bins, b); l2 <= clef_bins_l_hi(bins, b); l2++) {
-                const double p = clef_bins_p(bins, b, l2);
-                const double *a = mplus->m + (size_t)l2 * n, *c = mminus->m + (size_t)l2 * n;
-                for (size_t l = 0; l < n; l++) {
-                    row[h * n + l] += p * a[l];
-                    row[(1 - h) * n + l] += p * k->sign * c[l];
+            for (int hp = 0; hp < 2; hp++) {
+                const clef_coupling *mb = k->m[2 * h + hp];
+                if (!mb)
+                    continue;
+                const double sg = k->sg[2 * h + hp];
+                for (int l2 = clef_bins_l_lo(bins, b); l2 <= clef_bins_l_hi(bins, b); l2++) {
+                    const double p = sg * clef_bins_p(bins, b, l2);
+                    const double *a = mb->m + (size_t)l2 * n;
+                    for (size_t l = 0; l < n; l++)
+                        row[hp * n + l] += p * a[l];
                 }
             }
         }

@@ -37,6 +37,7 @@
 
 #include "clef/coupling.h"
 #include "clef/hash.h"
+#include "clef/purify.h"
 #include "clef/sht.h"
 #include "clef/spectrum.h"
 #include "core_impl.h"
@@ -69,7 +70,10 @@ typedef struct prun {
     double complex *at[2], *ae[2], *ab[2], *am[6];
     double *tl;
     double *wl[4];    /* W^{T1P2}, W^{P1P2}, W[w_T1 w_P2], W[w_P1 w_P2] to lmax_t */
-    double *pcl[12];  /* te tb ee bb eb be tt11 tt22 ee11 ee22 bb11 bb22 */
+    double *pcl[15];  /* te tb ee bb eb be tt11 tt22 ee11 ee22 bb11 bb22, pure bb bb11 bb22 */
+    double complex *abp[2];           /* pure-B a_lm (opts pure_b) */
+    clef_coupling *mpure;             /* M of the pure BB (coupling_pure.c) */
+    clef_coupling_binned *kpure;
     clef_coupling_pol cp;
     clef_coupling_binned *kte, *kpp;
     clef_coupling *m2[2];             /* M[w_T1 w_P2], M[w_P1 w_P2] for the covariances */
@@ -84,7 +88,8 @@ typedef struct prun {
             goto fail_b;                                                                     \
     } while (0)
 
-enum { P_TE, P_TB, P_EE, P_BB, P_EB, P_BE, P_TT1, P_TT2, P_EE1, P_EE2, P_BB1, P_BB2 };
+enum { P_TE, P_TB, P_EE, P_BB, P_EB, P_BE, P_TT1, P_TT2, P_EE1, P_EE2, P_BB1, P_BB2, P_BBP,
+       P_BBP1, P_BBP2, P_N };
 
 static void prun_free(prun *r)
 {
@@ -100,13 +105,16 @@ static void prun_free(prun *r)
         free(r->at[i]);
         free(r->ae[i]);
         free(r->ab[i]);
+        free(r->abp[i]);
     }
+    clef_coupling_destroy(r->mpure);
+    clef_coupling_binned_destroy(r->kpure);
     for (int i = 0; i < 6; i++)
         free(r->am[i]);
     free(r->tl);
     for (int i = 0; i < 4; i++)
         free(r->wl[i]);
-    for (int i = 0; i < 12; i++)
+    for (int i = 0; i < P_N; i++)
         free(r->pcl[i]);
     clef_coupling_pol_free(&r->cp);
     clef_coupling_destroy(r->m2[0]);
@@ -297,7 +305,7 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
     }
     free(pay);
     CLEF_TRY(status);
-    for (int i = 0; i < 12; i++)
+    for (int i = 0; i < P_N; i++)
         if (!(r->pcl[i] = calloc((size_t)L + 1, sizeof(double))))
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for spectra");
     const int j = r->cross;
@@ -315,6 +323,62 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
         CLEF_TRY(clef_alm_cl(L, L, b[k], NULL, r->pcl[P_BB1 + i]));
     }
     return CLEF_OK;
+}
+
+/* B-mode purification (purify.h): pure-B a_lm of each field from its own P
+ * weight (one plan when the two fields' weights are equal), then the pure
+ * BB pseudo-spectra.  Q, U enter unweighted (uK), zero outside the weight. */
+static int purify_fields(prun *r, const clef_map_pol *const f[2], const clef_spectrum_opts *o,
+                         clef_spectrum_pol_result *res)
+{
+    const int L = r->lmax_ext, nf = 1 + r->cross;
+    const int64_t np = r->npix;
+    double *q = clef_alloc_large((size_t)np * sizeof *q), *u = clef_alloc_large((size_t)np * sizeof *u);
+    clef_purify *pl = NULL;
+    int status = CLEF_OK;
+    if (!q || !u) {
+        status = clef_fail(CLEF_ENOMEM, "purification: out of memory for Stokes maps");
+        goto done;
+    }
+    for (int i = 0; i < nf; i++) {
+        if (!(r->abp[i] = malloc(clef_alm_size(L, L) * sizeof(double complex)))) {
+            status = clef_fail(CLEF_ENOMEM, "purification: out of memory for a_lm");
+            goto done;
+        }
+        const int same = i > 0 && !memcmp(r->wp[0], r->wp[i], (size_t)np * sizeof(double));
+        if (!same) {
+            clef_purify_destroy(pl);
+            pl = NULL;
+            char name[160];
+            snprintf(name, sizeof name, "the polarization weight of %s (mask x valid Q/U)",
+                     o->names[i] ? o->names[i] : (i ? "map 2" : "map 1"));
+            /* The window's expansion: to 2 nside (the quadrature's accurate
+             * range), at least lmax_ext. */
+            const int lw0 = r->lmax_t < 2 * r->nside ? r->lmax_t : (int)(2 * r->nside);
+            CLEF_CHECK(clef_purify_create(&pl, r->wp[i], r->nside, L, lw0 > L ? lw0 : L,
+                                          o->iterations, name));
+        }
+        res->pure_tail[i] = clef_purify_tail(pl);
+        const double sp = unit_scale(f[i]->q, "Q");
+        for (int64_t p = 0; p < np; p++) {
+            const int in = r->wp[i][p] > 0;
+            q[p] = in ? sp * f[i]->q->pix[p] : 0.0;
+            u[p] = in ? sp * f[i]->u->pix[p] : 0.0;
+        }
+        CLEF_CHECK(clef_purify_b(pl, q, u, r->ab[i], r->abp[i]));
+    }
+    if (!r->cross)
+        res->pure_tail[1] = res->pure_tail[0];
+    const int j = r->cross;
+    CLEF_CHECK(clef_alm_cl(L, L, r->abp[0], r->abp[j], r->pcl[P_BBP]));
+    CLEF_CHECK(clef_alm_cl(L, L, r->abp[0], NULL, r->pcl[P_BBP1]));
+    CLEF_CHECK(clef_alm_cl(L, L, r->abp[j], NULL, r->pcl[P_BBP2]));
+done:
+fail:
+    clef_purify_destroy(pl);
+    free(q);
+    free(u);
+    return status;
 }
 
 /* One table: band powers of the reported bins, covariance, windows. */
@@ -410,6 +474,9 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     const clef_map_pol *const f[2] = {f1, f2 ? f2 : f1};
     CLEF_CHECK(prepare(&r, f, mask_t, mask_p));
     CLEF_CHECK(transforms(&r, &o));
+    res->pure_b = o.pure_b != 0;
+    if (o.pure_b)
+        CLEF_CHECK(purify_fields(&r, f, &o, res));
     clef_progress("coupling-pol", 0.0);
     if (o.use_cache)
         CLEF_CHECK(clef_coupling_pol_create_cached(&r.cp, r.lmax_ext, r.wl[0], r.wl[1], r.lmax_t,
@@ -425,8 +492,17 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     clef_coupling_opts co = {.rcond_min = o.rcond_min, .width_level = 0};
     CLEF_CHECK(clef_coupling_binned_create(&r.kte, r.cp.te, r.all_bins, r.tl, &co));
     CLEF_CHECK(clef_coupling_binned_create(&r.kpp, r.cp.pp, r.all_bins, r.tl, &co));
-    CLEF_CHECK(clef_coupling_pol_binned_create(&r.keb[0], r.cp.pp, r.cp.mm, r.all_bins, r.tl, 1,
-                                               &co));
+    if (o.pure_b) {
+        /* Standard EE with the pure BB: <C~^EE> = M+ C^EE + M- C^BB,
+         * <C~^BB_pure> = M_pure C^BB (no E term: coupling_pure.c). */
+        CLEF_CHECK(clef_coupling_pure_create(&r.mpure, r.lmax_ext, r.wl[1], r.lmax_t));
+        CLEF_CHECK(clef_coupling_binned_create(&r.kpure, r.mpure, r.all_bins, r.tl, &co));
+        CLEF_CHECK(clef_coupling_pol_binned_create_rows(&r.keb[0], r.cp.pp, r.cp.mm, NULL,
+                                                        r.mpure, r.all_bins, r.tl, &co));
+    } else {
+        CLEF_CHECK(clef_coupling_pol_binned_create(&r.keb[0], r.cp.pp, r.cp.mm, r.all_bins, r.tl,
+                                                   1, &co));
+    }
     CLEF_CHECK(clef_coupling_pol_binned_create(&r.keb[1], r.cp.pp, r.cp.mm, r.all_bins, r.tl, -1,
                                                &co));
     res->rcond_eebb = clef_coupling_pol_binned_rcond(r.keb[0]);
@@ -449,7 +525,7 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
             goto fail_b;
         }
     memcpy(dec[0], r.pcl[P_EE], n * sizeof(double));
-    memcpy(dec[1], r.pcl[P_BB], n * sizeof(double));
+    memcpy(dec[1], r.pcl[o.pure_b ? P_BBP : P_BB], n * sizeof(double));
     if (noise_p && !r.cross) {
         if (noise_p_lmax < L) {
             status = clef_fail(CLEF_EINVAL, "the polarization noise spectrum stops at l = %d, "
@@ -465,9 +541,15 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
         }
         clef_coupling_apply(r.cp.pp, noise_p, b1);
         clef_coupling_apply(r.cp.mm, noise_p, b2);
-        for (size_t l = 0; l < n; l++) {
+        for (size_t l = 0; l < n; l++)
             dec[0][l] -= b1[l] + b2[l];
-            dec[1][l] -= b1[l] + b2[l];
+        if (r.mpure) { /* <N~^BB_pure> = M_pure N^BB (the E column is zero) */
+            clef_coupling_apply(r.mpure, noise_p, b1);
+            for (size_t l = 0; l < n; l++)
+                dec[1][l] -= b1[l];
+        } else {
+            for (size_t l = 0; l < n; l++)
+                dec[1][l] -= b1[l] + b2[l];
         }
         free(b1);
         free(b2);
@@ -505,7 +587,7 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     p3[2] = r.pcl[P_BB2];
     CHECK_B(make_table(&r, &res->bp[CLEF_POL_TB], btb, &ci, win, n, "TB", res->tt.bp));
     /* EE, BB: joint windows; errors through K+. */
-    CHECK_B(clef_coupling_pol_binned_windows(r.keb[0], r.cp.pp, r.cp.mm, r.all_bins, r.tl, win));
+    CHECK_B(clef_coupling_pol_binned_windows_rows(r.keb[0], r.all_bins, r.tl, win));
     ci.kb = r.kpp;
     ci.m2 = r.m2[1];
     ci.cross = r.cross;
@@ -516,12 +598,21 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     p3[1] = r.pcl[P_EE1];
     p3[2] = r.pcl[P_EE2];
     CHECK_B(make_table(&r, &res->bp[CLEF_POL_EE], bee, &ci, win, 2 * n, "EE", res->tt.bp));
-    p3[0] = r.pcl[P_BB];
-    p3[1] = r.pcl[P_BB1];
-    p3[2] = r.pcl[P_BB2];
+    /* Pure BB: the same narrow-kernel covariance of the measured pseudo-
+     * spectra, propagated through the pure operator (an approximation:
+     * the counter-terms' weights are not in M[w_P w_P]; docs/method.md). */
+    if (r.kpure)
+        ci.kb = r.kpure;
+    p3[0] = r.pcl[o.pure_b ? P_BBP : P_BB];
+    p3[1] = r.pcl[o.pure_b ? P_BBP1 : P_BB1];
+    p3[2] = r.pcl[o.pure_b ? P_BBP2 : P_BB2];
     /* BB rows start at row na; their BB columns at offset n. */
     CHECK_B(make_table(&r, &res->bp[CLEF_POL_BB], bbb, &ci, win + (size_t)na * 2 * n + n, 2 * n,
                           "BB", res->tt.bp));
+    ci.kb = r.kpp;
+    if (o.pure_b)
+        CHECK_B(clef_bandpowers_meta_number(res->bp[CLEF_POL_BB], "PURE_B", 1,
+                                            "BB from pure-B multipoles (purification)"));
     /* Leakage windows on D_l: BB bands on C^EE, then EE bands on C^BB. */
     res->win_lmax = L;
     if (!(res->leak_win = malloc((size_t)2 * r.nb * n * sizeof *res->leak_win))) {

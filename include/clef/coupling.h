@@ -166,6 +166,16 @@ int clef_coupling_pol_binned_create(clef_coupling_pol_binned **out, const clef_c
                                     const clef_coupling *mminus, const clef_bins *bins,
                                     const double *transfer, int sign,
                                     const clef_coupling_opts *opts);
+/* The same for two spectra with blocks of their own, <C~^a> = M_aa C^a +
+ * M_ab C^b, <C~^b> = M_ba C^a + M_bb C^b (NULL m_ab or m_ba: zero), e.g.
+ * the standard EE with the pure-B BB (m_ba NULL, m_bb the matrix of
+ * clef_coupling_pure_create).  The matrices are borrowed: keep them alive
+ * while the operator's windows are computed. */
+int clef_coupling_pol_binned_create_rows(clef_coupling_pol_binned **out,
+                                         const clef_coupling *m_aa, const clef_coupling *m_ab,
+                                         const clef_coupling *m_ba, const clef_coupling *m_bb,
+                                         const clef_bins *bins, const double *transfer,
+                                         const clef_coupling_opts *opts);
 void clef_coupling_pol_binned_destroy(clef_coupling_pol_binned *k);
 int clef_coupling_pol_binned_nbins(const clef_coupling_pol_binned *k);
 double clef_coupling_pol_binned_rcond(const clef_coupling_pol_binned *k);
@@ -181,6 +191,21 @@ void clef_coupling_pol_binned_decouple(const clef_coupling_pol_binned *k, const 
 int clef_coupling_pol_binned_windows(const clef_coupling_pol_binned *k,
                                      const clef_coupling *mplus, const clef_coupling *mminus,
                                      const clef_bins *bins, const double *transfer, double *out);
+/* The same from the blocks the operator was made of (either constructor). */
+int clef_coupling_pol_binned_windows_rows(const clef_coupling_pol_binned *k,
+                                          const clef_bins *bins, const double *transfer,
+                                          double *out);
+
+/* ---- pure-B coupling (src/coupling_pure.c; docs/coupling.md) ----
+ * <C~^BB_pure> = M C^BB for the pure-B multipoles of purify.h (Smith 2006;
+ * Grain, Tristram & Stompor 2009):
+ *   M_ll' = (2l'+1)/(8 pi) sum_L (2L+1) W_L G_ll'L^2 (1 + (-1)^(l+l'+L)),
+ *   G_ll'L = (l l' L; 2 -2 0) + 2 sqrt(L(L+1)/((l-1)(l+2))) (l l' L; 1 -2 1)
+ *          + sqrt((L+2)!(l-2)!/((L-2)!(l+2)!)) (l l' L; 0 -2 2),
+ * W_L the P mask's spectrum (W^{P1P2} for two fields) to wl_lmax.  The E ->
+ * B block is identically zero (G vanishes for odd l+l'+L).  Rows and
+ * columns l < 2 are zero.  Cost ~ 3 lmax^3 3j terms (not symmetric). */
+int clef_coupling_pure_create(clef_coupling **out, int lmax, const double *w_pp, int wl_lmax);
 
 /* ---- cache (src/coupling_cache.c) ---- */
 

@@ -74,6 +74,8 @@ typedef struct clef_spectrum_opts {
     int keep_alm;              /* 1: res->alm receives the a_lm of the weighted map(s), multipoles
                                   removed, in uK, l, m <= lmax_ext (the polarized spectra reuse
                                   them) */
+    int pure_b;                /* polarized spectra only (clef_spectrum_pol_compute): 1 = BB
+                                  from pure-B multipoles (B-mode purification, purify.h) */
 } clef_spectrum_opts;
 
 void clef_spectrum_opts_default(clef_spectrum_opts *o);
@@ -148,6 +150,8 @@ typedef struct clef_spectrum_pol_result {
     int win_lmax, nbins, lmax, lmax_ext, cross;
     double rcond_eebb, rcond_ebbe; /* of the joint binned operators */
     int pol_cache_hit;         /* 1 when M^TE, M+, M- came from the cache */
+    int pure_b;                /* 1: BB is the pure-B estimate (opts->pure_b) */
+    double pure_tail[2];       /* per field: clef_purify_tail of its P weight (pure_b only) */
 } clef_spectrum_pol_result;
 
 int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
