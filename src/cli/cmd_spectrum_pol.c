@@ -38,7 +38,12 @@ static void help(void)
         "  --ordering RING|NESTED pixel order of files without ORDERING\n\n"
         "Multipoles, bins, instrument, method: as clef spectrum\n"
         "  --lmax L, --bin-width N, --beam-fwhm ARCMIN, --no-pixel-window,\n"
-        "  --iterations N (default %d), --no-cache\n\n"
+        "  --iterations N (default %d), --no-cache\n"
+        "  --pure-b               BB from pure-B multipoles (B-mode purification,\n"
+        "                         Smith 2006): removes the E-to-B leakage of the mask's\n"
+        "                         edges, for small patches; the Q/U weight must be\n"
+        "                         tapered (clef mask --taper c1|c2), a hard-edged one\n"
+        "                         is refused (exit 3); TB and EB stay standard\n\n"
         "Output:\n"
         "  -o, --output PREFIX    PREFIX.fits (six spectra, EXTVER 1..6 in the order\n"
         "                         TT TE TB EE EB BB), PREFIX-TT.csv ... PREFIX-BB.csv,\n"
@@ -55,14 +60,14 @@ static void help(void)
 enum {
     OPT_POL = 256, OPT_MASK, OPT_PMASK, OPT_UMAP, OPT_HDU, OPT_CONV, OPT_ORDERING, OPT_LMAX,
     OPT_BINW, OPT_FWHM, OPT_NOPIX, OPT_ITER, OPT_NOCACHE, OPT_FORMAT, OPT_JSON, OPT_THREADS,
-    OPT_QUIET, OPT_VERBOSE, OPT_HELP
+    OPT_QUIET, OPT_VERBOSE, OPT_HELP, OPT_PURE
 };
 
 typedef struct pargs {
     const char *map[2], *mask, *pmask, *umap, *hdu, *conv, *ordering, *output, *json, *threads;
     long lmax, bin_width, iterations;
     double fwhm;
-    int no_pix, no_cache, want_fits, want_csv, want_json;
+    int no_pix, no_cache, want_fits, want_csv, want_json, pure_b;
 } pargs;
 
 static int parse(int argc, char **argv, pargs *a)
@@ -76,6 +81,7 @@ static int parse(int argc, char **argv, pargs *a)
         {"beam-fwhm", required_argument, 0, OPT_FWHM},
         {"no-pixel-window", no_argument, 0, OPT_NOPIX},
         {"iterations", required_argument, 0, OPT_ITER}, {"no-cache", no_argument, 0, OPT_NOCACHE},
+        {"pure-b", no_argument, 0, OPT_PURE},
         {"output", required_argument, 0, 'o'}, {"format", required_argument, 0, OPT_FORMAT},
         {"json", required_argument, 0, OPT_JSON}, {"threads", required_argument, 0, OPT_THREADS},
         {"quiet", no_argument, 0, OPT_QUIET}, {"verbose", no_argument, 0, OPT_VERBOSE},
@@ -121,6 +127,7 @@ static int parse(int argc, char **argv, pargs *a)
                 return cli_usage_error(CMD, "--iterations: '%s' (>= 0)", optarg);
             break;
         case OPT_NOCACHE: a->no_cache = 1; break;
+        case OPT_PURE: a->pure_b = 1; break;
         case 'o': a->output = optarg; break;
         case OPT_FORMAT: {
             int rc = cli_parse_formats(CMD, optarg, &a->want_fits, &a->want_csv, &a->want_json);
@@ -241,6 +248,7 @@ int cmd_spectrum_pol(int argc, char **argv)
     so.pixel_window = !a.no_pix;
     so.iterations = (int)a.iterations;
     so.use_cache = !a.no_cache;
+    so.pure_b = a.pure_b;
     so.find_peak = 0;
     so.names[0] = a.map[0];
     so.names[1] = a.map[1];
@@ -286,6 +294,10 @@ int cmd_spectrum_pol(int argc, char **argv)
         cJSON_AddNumberToObject(json, "lmax_ext", res.lmax_ext);
         cJSON_AddNumberToObject(json, "rcond_ee_bb", res.rcond_eebb);
         cJSON_AddNumberToObject(json, "rcond_eb_be", res.rcond_ebbe);
+        cJSON_AddBoolToObject(json, "pure_b", res.pure_b);
+        if (res.pure_b)
+            cJSON_AddItemToObject(json, "pure_b_window_tail",
+                                  cli_json_numbers(res.pure_tail, a.map[1] ? 2 : 1));
         cJSON *sp = cJSON_AddObjectToObject(json, "spectra");
         for (int k = 0; k < CLEF_POL_NSPEC; k++)
             cJSON_AddItemToObject(sp, clef_spectrum_pol_name(k), spectrum_json(res.bp[k]));

@@ -78,5 +78,32 @@ for p in w m b; do
     ls $p.* $p-* >/dev/null 2>&1 && fail "a failed run ($p) left an output"
 done
 
+# --pure-b: a tapered patch gives a pure BB (JSON flag, PURE_B keyword); the
+# hard-edged patch it was made from is refused (exit 3) and writes nothing.
+"$CLEF_BIN" mask --nside 16 --patch 30,-40,45 --output hard.fits --quiet || fail "clef mask (hard)"
+"$CLEF_BIN" mask --nside 16 --patch 30,-40,45 --taper c2 --taper-width 20 --output soft.fits --quiet \
+    || fail "clef mask (tapered)"
+"$CLEF_BIN" spectrum --polarization tqu.fits --mask soft.fits --bin-width 8 --no-cache --pure-b \
+    -o pure --quiet || fail "--pure-b on a tapered patch"
+"$CLEF_PYTHON" - <<'PY' || fail "pure-B outputs"
+import json
+from astropy.io import fits
+j = json.load(open("pure.json"))
+assert j["pure_b"] is True and len(j["pure_b_window_tail"]) == 1, j
+assert 0 <= j["pure_b_window_tail"][0] < 0.45
+with fits.open("pure.fits") as h:
+    bb = [x for x in h if x.name == "BANDPOWER" and x.header["SPECTRUM"] == "BB"][0]
+    assert bb.header["PURE_B"] == 1
+    ee = [x for x in h if x.name == "BANDPOWER" and x.header["SPECTRUM"] == "EE"][0]
+    assert "PURE_B" not in ee.header
+PY
+set +e
+"$CLEF_BIN" spectrum --polarization tqu.fits --mask hard.fits --bin-width 8 --no-cache --pure-b \
+    -o hardout --quiet 2>err.txt
+[ $? -eq 3 ] || fail "--pure-b with a hard-edged mask: expected exit 3"
+grep -q "not smooth enough" err.txt || fail "the refusal says why: $(cat err.txt)"
+set -e
+ls hardout.* hardout-* >/dev/null 2>&1 && fail "the refused --pure-b run left an output"
+
 [ "$failures" -eq 0 ] || exit 1
 echo "spectrum_pol.sh: all checks passed"
