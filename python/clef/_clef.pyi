@@ -117,7 +117,7 @@ def spectrum_pol(map1: Union[npt.ArrayLike, Sequence[npt.ArrayLike]], mask: npt.
                  noise_cl: Optional[npt.ArrayLike] = ..., pol_noise_cl: Optional[npt.ArrayLike] = ...,
                  theory_cl: Optional[npt.ArrayLike] = ..., iterations: int = ...,
                  keep_multipoles: bool = ..., cache: bool = ..., cache_dir: Optional[str] = ...,
-                 allow_coord_mismatch: bool = ...) -> dict: ...
+                 allow_coord_mismatch: bool = ..., pure_b: bool = ...) -> dict: ...
 
 # many fields and run files (estimator.h, field.h, run.h)
 class Estimator:

@@ -70,6 +70,10 @@ static PyObject *result_dict(const clef_spectrum_pol_result *r, double t_call, P
     int ok = s && pyclef_set(s, "rcond_ee_bb", PyFloat_FromDouble(r->rcond_eebb)) == 0 &&
              pyclef_set(s, "rcond_eb_be", PyFloat_FromDouble(r->rcond_ebbe)) == 0 &&
              pyclef_set(s, "pol_cache_hit", PyBool_FromLong(r->pol_cache_hit)) == 0 &&
+             pyclef_set(s, "pure_b", PyBool_FromLong(r->pure_b)) == 0 &&
+             (!r->pure_b ||
+              pyclef_set(s, "pure_b_window_tail",
+                         Py_BuildValue("(dd)", r->pure_tail[0], r->pure_tail[1])) == 0) &&
              PyDict_SetItemString(s, "warnings", warnings) == 0;
     if (!ok)
         Py_XDECREF(s);
@@ -88,22 +92,24 @@ static PyObject *py_spectrum_pol(PyObject *self, PyObject *args, PyObject *kw)
                           "mask_coordsys", "lmax", "bin_width", "log_bins", "bins", "beam_fwhm",
                           "beam", "pixel_window", "transfer", "noise_cl", "pol_noise_cl",
                           "theory_cl", "iterations", "keep_multipoles", "cache", "cache_dir",
-                          "allow_coord_mismatch", NULL};
+                          "allow_coord_mismatch", "pure_b", NULL};
     PyObject *map_o[2] = {NULL, Py_None}, *mask_o[2] = {NULL, Py_None}, *pnoise_o = Py_None;
     pyclef_spectrum_kw k;
     pyclef_spectrum_kw_init(&k);
+    int pure_b = 0;
     if (!PyArg_ParseTupleAndKeywords(
-            args, kw, "OO|OO$sssiiiOdOpOOOOippzp:spectrum_pol", kwl, &map_o[0], &mask_o[0],
+            args, kw, "OO|OO$sssiiiOdOpOOOOippzpp:spectrum_pol", kwl, &map_o[0], &mask_o[0],
             &map_o[1], &mask_o[1], &k.unit, &k.coordsys, &k.mask_coordsys, &k.lmax,
             &k.bin_width, &k.log_bins, &k.bins, &k.fwhm, &k.beam, &k.pixel_window, &k.transfer,
             &k.noise_cl, &pnoise_o, &k.theory_cl, &k.iterations, &k.keep_multipoles, &k.cache,
-            &k.cache_dir, &k.allow_coord_mismatch))
+            &k.cache_dir, &k.allow_coord_mismatch, &pure_b))
         return NULL;
     clef_spectrum_opts so;
     clef_spectrum_opts_default(&so);
     PyArrayObject *tabs[4], *pnoise = NULL;
     if (pyclef_spectrum_kw_apply(&k, 0.0, &so, tabs) < 0)
         return NULL;
+    so.pure_b = pure_b;
     so.find_peak = 0; /* the library leaves the peak to clef spectrum's temperature run */
     so.names[0] = "map1";
     so.names[1] = "map2";
@@ -177,7 +183,7 @@ PyMethodDef pyclef_spectrum_pol_methods[] = {
      "             beam_fwhm=0.0, beam=None, pixel_window=True, transfer=None,\n"
      "             noise_cl=None, pol_noise_cl=None, theory_cl=None, iterations=1,\n"
      "             keep_multipoles=False, cache=True, cache_dir=None,\n"
-     "             allow_coord_mismatch=False)\n--\n\n"
+     "             allow_coord_mismatch=False, pure_b=False)\n--\n\n"
      "The six band powers TT, TE, TB, EE, EB, BB as `clef spectrum --polarization`\n"
      "computes them (pseudo-C_l with the spin-2 coupling, E and B decoupled jointly;\n"
      "docs/method.md), with the same defaults.  map1, map2: T, Q, U as a (3, npix)\n"
@@ -190,11 +196,14 @@ PyMethodDef pyclef_spectrum_pol_methods[] = {
      "spectra use TT's bins and the same beam, pixel window (the temperature one) and\n"
      "transfer function.  pol_noise_cl: N_l [uK^2] of the Q/U noise (N^EE = N^BB, from\n"
      "l = 0 to at least the coupled lmax), subtracted from the auto EE and BB (ignored\n"
-     "with a warning for a pair).\n\n"
+     "with a warning for a pair).  pure_b: BB from pure-B multipoles (B-mode\n"
+     "purification, `clef spectrum --polarization --pure-b`; the Q/U weight must be\n"
+     "tapered, else clef.Error).\n\n"
      "Returns a dict: TT, TE, TB, EE, EB, BB (band-power dicts as clef.spectrum gives:\n"
      "l_lo, l_hi, l_eff, cl, dl, dl_err [uK^2], cov [uK^4], windows on D_l of the same\n"
      "spectrum, meta with SPECTRUM), leakage (EE_to_BB: the BB bands' windows on D^EE_l,\n"
      "BB_to_EE: the EE bands' windows on D^BB_l, nbins x (lmax_coupled + 1)) and summary\n"
      "(that of clef.spectrum for TT, plus rcond_ee_bb, rcond_eb_be of the joint E/B\n"
-     "operators and pol_cache_hit; warnings: the library's warnings).  Releases the GIL."},
+     "operators, pol_cache_hit, pure_b and with it pure_b_window_tail per field;\n"
+     "warnings: the library's warnings).  Releases the GIL."},
     {NULL, NULL, 0, NULL}};

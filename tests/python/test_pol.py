@@ -443,7 +443,7 @@ def compare(r, j, tabs):
     assert r["leakage"]["EE_to_BB"].shape == (s["nbins"], s["lmax_coupled"] + 1)
 
 
-@pytest.mark.parametrize("case", ["default", "options", "pair"])
+@pytest.mark.parametrize("case", ["default", "options", "pair", "pure"])
 def test_spectrum_pol_same_as_cli(polsky, tmp_path, case):
     sky1, sky2, mask = polsky / "sky1.fits", polsky / "sky2.fits", polsky / "mask.fits"
     if case == "default":
@@ -452,6 +452,9 @@ def test_spectrum_pol_same_as_cli(polsky, tmp_path, case):
         args = [sky1, "--mask", mask, "--pol-mask", polsky / "pmask.fits", "--bin-width", "10",
                 "--beam-fwhm", "60", "--no-pixel-window", "--iterations", "2"]
         kw, files = dict(bin_width=10, beam_fwhm=60.0, pixel_window=False, iterations=2), [sky1]
+    elif case == "pure":
+        args = [sky1, "--mask", mask, "--bin-width", "10", "--pure-b"]
+        kw, files = dict(bin_width=10, pure_b=True), [sky1]
     else:
         args = [sky1, sky2, "--mask", mask, "--lmax", "50", "--bin-width", "8"]
         kw, files = dict(lmax=50, bin_width=8), [sky1, sky2]
@@ -464,10 +467,14 @@ def test_spectrum_pol_same_as_cli(polsky, tmp_path, case):
                           coordsys="G", mask_coordsys="G", cache=False, **kw)
     compare(r, j, tabs)
     assert r["summary"]["warnings"] == j["warnings"]
+    assert r["summary"]["pure_b"] is j["pure_b"] is (case == "pure")
+    if case == "pure":
+        close(r["summary"]["pure_b_window_tail"][0], j["pure_b_window_tail"][0])
+        assert r["BB"]["meta"]["PURE_B"] == 1
     # TT is clef.spectrum of T, unchanged (spectrum.h)
     tt = clef.spectrum(maps[0][0], w, maps[1][0] if len(maps) > 1 else None, unit="uK",
                        coordsys="G", mask_coordsys="G", cache=False, peak=False,
-                       **{k: v for k, v in kw.items() if k != "pol_mask"})
+                       **{k: v for k, v in kw.items() if k not in ("pol_mask", "pure_b")})
     assert np.array_equal(tt["dl"], r["TT"]["dl"]) and np.array_equal(tt["cov"], r["TT"]["cov"])
 
 
