@@ -377,6 +377,9 @@ static int do_ana(int nf, char **files)
         printf("  x = a0.(D - mean): sd %.3f (mean %+.3f); y = l_peak - l_peak(mean): sd %.3f (mean %+.3f); "
                "corr %.3f, slope y/x %.3f, rms(y - x) %.3f\n", sqrt(vx), sx / m, sqrt(vy), sy / m,
                cxy / sqrt(vx * vy), cxy / vx, sqrt((sy2 - 2 * sxy + sx2) / m));
+        printf("  row: | %s | %d | %.2f | %.2f | %.2f | %.2f | %.3f | %.3f | %.3f | %.3f +- %.3f | %.1f%% |\n",
+               w ? "1.5 x auto" : "auto", m, sd, serr / m, sqrt(sva / m), sqrt(svs / m), sqrt(svs / sva),
+               sqrt(svd / sva), sd / sqrt(svs / m), sz2 / m, sqrt(2.0 / m), 100.0 * cov1 / m);
         printf("  z = x / sqrt(a0 C_ana a0): mean z^2 %.3f (under C_ana: 1 +- %.3f), kurtosis %.2f, |z| > 3: %d; "
                "fd replaced by lin on %d skies\n", sz2 / m, sqrt(2.0 / m), sz4 / m / (sz2 / m * sz2 / m), nz3, nfdbad);
     }
