@@ -158,7 +158,7 @@ check: deps
 	@s=0; sh tests/run.sh $(BUILD) || s=1; sh tests/kernels.sh $(BUILD) || s=1; exit $$s
 
 # Diagnostic behind docs/peak.md's first-peak error figures (asserts nothing).
-diag-peak: $(BUILD)/tests/diag/peak_cov
+diag-peak: $(BUILD)/tests/diag/peak_cov $(BUILD)/tests/diag/peak_resp
 
 check-long: deps
 	@$(MAKE) --no-print-directory tests
