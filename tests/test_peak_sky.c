@@ -257,16 +257,21 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
             }
         }
     }
-    /* Tolerances: the issue's bars (mean pull within +-0.2, coverage 68 +-
-     * 7%, "flat" >= 93%), held as they are from 100 skies on (make
-     * check-long; at 100 skies the sampling errors are 0.10, 4.7% and
-     * 2.2%); the 30-sky version of make check widens them to 3 sampling
-     * errors where that is larger (0.55, 26%, 83%). */
+    /* Tolerances.  The issue's bars (mean pull within +-0.2, coverage 68 +-
+     * 7%, "flat" >= 93%) are tested where the sample resolves them: on each
+     * setting (bin width x window) pooled over the inputs, whose skies are
+     * independent (4 x 100 skies in make check-long: sampling errors 0.05
+     * and 2.3%), and on the flat rate pooled over the Omega_k = 0 rows.  A
+     * single row of 100 skies has sampling errors 0.10 and 4.7%, so even a
+     * calibrated estimator would miss the 7% bar in about 14% of rows
+     * (docs/peak.md, "Calibration"): rows are held to the bars widened to 3
+     * sampling errors where that is larger, as the 30-sky make check is. */
     const int nsky = cf->nsky, strict = nsky >= 100;
-    const double pull_tol = strict ? 0.2 : fmax(0.2, 3 / sqrt(nsky));
-    const double cov_tol = strict ? 0.07 : fmax(0.07, 3 * sqrt(0.6827 * 0.3173 / nsky));
-    const double flat_min = strict ? 0.93 : fmin(0.93, 1 - 3 * sqrt(0.05 * 0.95 / nsky) - 0.05);
+    const double pull_tol = fmax(0.2, 3 / sqrt(nsky));
+    const double cov_tol = fmax(0.07, 3 * sqrt(0.6827 * 0.3173 / nsky));
+    const double flat_min = fmin(0.93, 1 - 3 * sqrt(0.05 * 0.95 / nsky) - 0.05);
     int bad = bad_nf;
+    double pf_found = 0, pf_flat = 0;
     print_message("[%s] %d skies, w2 = %.3f, noise %g uK-arcmin; mean pull, 1-sigma coverage, "
                   "mean quoted sigma / scatter, flat rate (Omega_k = 0 input)\n", cf->name, nsky,
                   mom.w2, cf->depth);
@@ -280,6 +285,10 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                 const double ml = t->sum_l / nf;
                 const double sd = sqrt(fmax(t->sum_l2 / nf - ml * ml, 0) * nf / fmax(nf - 1, 1));
                 const double flat = t->flat / nf;
+                if (i == 0) {
+                    pf_found += t->found;
+                    pf_flat += t->flat;
+                }
                 const int ok = t->found >= 0.95 * t->n && fabs(mp) <= pull_tol &&
                                fabs(cover - 0.6827) <= cov_tol &&
                                (i || flat >= flat_min);
@@ -292,10 +301,38 @@ static int run_config(const config *cf, double *const cl[NINPUT], const double l
                     print_message("- |\n");
                 if (!ok) {
                     bad++;
-                    print_message("  ^ outside the bars (pull %.2f, coverage %.3f +- %.3f, flat "
-                                  ">= %.3f)\n", pull_tol, 0.6827, cov_tol, flat_min);
+                    print_message("  ^ outside the row bars (pull %.2f, coverage %.3f +- %.3f, "
+                                  "flat >= %.3f)\n", pull_tol, 0.6827, cov_tol, flat_min);
                 }
             }
+    /* Pooled over the inputs, per setting: the issue's bars as they are
+     * once the pooled sample is at least 100 x 4 skies. */
+    const int pooled_strict = strict && cf->ninput >= 4;
+    for (int k = 0; k < cf->nwidth; k++)
+        for (int w = 0; w < NWIN; w++) {
+            double f = 0, pu = 0, co = 0;
+            for (int ii = 0; ii < cf->ninput; ii++) {
+                f += a[ii][k][w].found;
+                pu += a[ii][k][w].pull;
+                co += a[ii][k][w].cover;
+            }
+            const double nf = f > 0 ? f : 1, n = nsky * cf->ninput;
+            const double ptol = pooled_strict ? 0.2 : fmax(0.2, 3 / sqrt(n));
+            const double ctol = pooled_strict ? 0.07 : fmax(0.07, 3 * sqrt(0.6827 * 0.3173 / n));
+            const int ok = fabs(pu / nf) <= ptol && fabs(co / nf - 0.6827) <= ctol;
+            print_message("  pooled over %d inputs, bins %d, half width %.0f: mean pull %+.3f, "
+                          "coverage %.1f%% (bars +-%.2f, 68.3 +- %.1f%%)%s\n", cf->ninput,
+                          cf->width[k], hw[k][w], pu / nf, 100 * co / nf, ptol, 100 * ctol,
+                          ok ? "" : "  <- outside");
+            bad += !ok;
+        }
+    if (pf_found > 0) {
+        const double fl = pf_flat / pf_found;
+        const int ok = fl >= (strict ? 0.93 : flat_min);
+        print_message("  \"flat\" pooled over the Omega_k = 0 rows: %.1f%% (bar %.1f%%)%s\n",
+                      100 * fl, 100 * (strict ? 0.93 : flat_min), ok ? "" : "  <- outside");
+        bad += !ok;
+    }
     for (int k = 0; k < cf->nwidth; k++) {
         for (int w = 0; w < NWIN; w++)
             clef_geometry_plan_destroy(plan[k][w]);
