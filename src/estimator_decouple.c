@@ -182,6 +182,10 @@ int clef_est_couplings(clef_estimator *e)
                                                  o->cache_dir, &mk->cache_hit));
         else
             CLEF_TRY(clef_coupling_create(&mk->m, e->lmax_ext, mk->wl, e->lmax_t));
+        if (mk->cache_hit)
+            e->n_coupling_read++;
+        else
+            e->n_coupling_made++;
         if (mk->dep.dmean) {
             /* The monopole/dipole removal (spectrum_deproj.c): M - D where
              * the templates carry power, and no coupling at all from l = 0
@@ -383,9 +387,19 @@ int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_co
     est_kernel *d = &nk[e->nkernels];
     memcpy(d->p, k, sizeof k);
     d->m = taken;
-    int status = taken ? CLEF_OK : clef_spectrum_coupling(&d->m, e->lmax_ext, wl, lt, &e->o);
+    int status = CLEF_OK, hit = 0;
+    if (!taken && e->o.use_cache)
+        status = clef_coupling_create_cached(&d->m, e->lmax_ext, wl, lt, e->o.cache_dir, &hit);
+    else if (!taken)
+        status = clef_coupling_create(&d->m, e->lmax_ext, wl, lt);
     free(own);
     CLEF_TRY(status);
+    if (!taken) {
+        if (hit)
+            e->n_coupling_read++;
+        else
+            e->n_coupling_made++;
+    }
     e->nkernels++;
     *m = d->m;
     return CLEF_OK;

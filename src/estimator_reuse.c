@@ -19,6 +19,7 @@
 #include <stdlib.h>
 #include <string.h>
 
+#include "clef/hash.h"
 #include "clef/sht.h"
 #include "core_impl.h"
 #include "estimator_impl.h"
@@ -90,10 +91,29 @@ static int map_weights(clef_estimator *e)
         e->prev_wid[k] = -1;
         if (!same_setting(e, p))
             continue;
-        for (int j = 0; j < p->nweights && e->prev_wid[k] < 0; j++)
-            if (p->weights[j].nf == e->weights[k].nf && !memcmp(p->weights[j].w, e->weights[k].w,
-                                                                bytes))
-                e->prev_wid[k] = j;
+        est_weights *w = &e->weights[k];
+        for (int j = 0; j < p->nweights && e->prev_wid[k] < 0; j++) {
+            const est_weights *q = &p->weights[j];
+            if (q->nf != w->nf)
+                continue;
+            if (q->w) {
+                if (!memcmp(q->w, w->w, bytes))
+                    e->prev_wid[k] = j;
+            } else if (q->has_sha) {
+                /* An imported estimator (estimator_share.c) carries the
+                 * SHA-256 of its weights, not the npix doubles: equal
+                 * digests stand for equal weights (as for the cache keys). */
+                if (!w->has_sha) {
+                    clef_sha256 h;
+                    clef_sha256_init(&h);
+                    clef_sha256_update(&h, w->w, bytes);
+                    clef_sha256_final(&h, w->sha);
+                    w->has_sha = 1;
+                }
+                if (!memcmp(q->sha, w->sha, sizeof w->sha))
+                    e->prev_wid[k] = j;
+            }
+        }
     }
     /* The map is all that was needed of prev's weights (npix doubles each). */
     for (int j = 0; j < p->nweights; j++) {
