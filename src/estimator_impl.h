@@ -156,7 +156,11 @@ int clef_est_windows(clef_estimator *e, est_pair *p);
 int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_coupling **m);
 void clef_est_kernel_key(int x, int y, int z, int u, int k[4]); /* normalised kernel ids */
 
-/* estimator_reuse.c: NULL / 0 when nothing matches */
+/* estimator_reuse.c: NULL / 0 when nothing matches.  reuse_weights maps
+ * this estimator's weights to prev's and frees prev's (npix doubles each):
+ * called as soon as the weights are made, so that the two sets are not
+ * held together through the map transforms. */
+int clef_est_reuse_weights(clef_estimator *e);
 struct clef_sht *clef_est_reuse_sht(clef_estimator *e);
 int clef_est_reuse_masks(clef_estimator *e, est_masks *mk, int *taken);
 clef_coupling *clef_est_reuse_kernel(clef_estimator *e, const int key[4]);

@@ -79,7 +79,7 @@ clef_sht *clef_est_reuse_sht(clef_estimator *e)
 }
 
 /* prev_wid[k]: the weights of prev equal to e's weights k, or -1. */
-static int map_weights(clef_estimator *e)
+int clef_est_reuse_weights(clef_estimator *e)
 {
     clef_estimator *p = e->prev;
     if (e->prev_wid || !p)
@@ -130,7 +130,7 @@ int clef_est_reuse_masks(clef_estimator *e, est_masks *mk, int *taken)
     clef_estimator *p = e->prev;
     if (!p)
         return CLEF_OK;
-    CLEF_TRY(map_weights(e));
+    CLEF_TRY(clef_est_reuse_weights(e));
     const int pa = e->prev_wid[mk->wa], pb = e->prev_wid[mk->wb];
     if (pa < 0 || pb < 0)
         return CLEF_OK;
@@ -162,7 +162,7 @@ int clef_est_reuse_masks(clef_estimator *e, est_masks *mk, int *taken)
 clef_coupling *clef_est_reuse_kernel(clef_estimator *e, const int key[4])
 {
     clef_estimator *p = e->prev;
-    if (!p || map_weights(e) != CLEF_OK)
+    if (!p || clef_est_reuse_weights(e) != CLEF_OK)
         return NULL;
     int want[4];
     for (int i = 0; i < 4; i++)
