@@ -154,6 +154,7 @@ int clef_est_couplings(clef_estimator *e);
 int clef_est_decouple(clef_estimator *e, est_pair *p);
 int clef_est_windows(clef_estimator *e, est_pair *p);
 int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_coupling **m);
+int clef_est_make_coupling(clef_estimator *e, clef_coupling **m, const double *wl, int *hit);
 void clef_est_kernel_key(int x, int y, int z, int u, int k[4]); /* normalised kernel ids */
 
 /* estimator_reuse.c: NULL / 0 when nothing matches.  reuse_weights maps

@@ -24,6 +24,7 @@
 
 #include "clef/bins.h"
 #include "clef/clef.h"
+#include "clef/coupling.h"
 #include "clef/map.h"
 #include "clef/peak.h"
 #include "clef/table.h"
@@ -74,6 +75,11 @@ typedef struct clef_spectrum_opts {
     int keep_alm;              /* 1: res->alm receives the a_lm of the weighted map(s), multipoles
                                   removed, in uK, l, m <= lmax_ext (the polarized spectra reuse
                                   them) */
+    clef_coupling_create_fn *coupling_create; /* makes the coupling matrices (M, covariance
+                                  kernels) of the temperature estimator in place of
+                                  clef_coupling_create, e.g. shared among processes (clef
+                                  sims); NULL: clef_coupling_create */
+    void *coupling_arg;        /* its first argument */
 } clef_spectrum_opts;
 
 void clef_spectrum_opts_default(clef_spectrum_opts *o);
