@@ -34,5 +34,12 @@ int par_bcast_int(int v);
  * (the count is an int).  One process: nothing happens.  Returns 0 (a rank
  * out of memory takes the job down, CLI_EXIT_NOMEM). */
 int par_bcast_bytes(void **buf, size_t *n);
+/* n ints of rank 0 on every rank. */
+void par_bcast_ints(int *v, int n);
+/* Rows of a row-major matrix m (row_len doubles per row): rank r holds rows
+ * first[r] <= l < first[r + 1] in place; afterwards rank 0's m has every
+ * rank's rows (MPI_Gatherv).  Returns 0, or -1 when the matrix is too large
+ * for int counts (2^31 doubles up to the last rank's rows). */
+int par_gather_rows(double *m, size_t row_len, const int *first);
 
 #endif

@@ -28,7 +28,7 @@ typedef struct sims_args {
  * and seconds spent on them (on the others: waiting for rank 0's first
  * realisation too); bytes and seconds of the maps (masks, hit map) rank 0
  * read and sent (0 with one rank). */
-#define SIMS_RSTAT 9
+#define SIMS_RSTAT 11 /* ... and the coupling matrices and rows this rank made for rank 0 */
 
 typedef struct sims_run {
     sims_args *a;

@@ -532,6 +532,8 @@ static cJSON *summary(const sims_run *r, const products *p, const char *const *o
             cJSON_AddNumberToObject(rk, "pieces_broadcast_s", v[6]);
             cJSON_AddNumberToObject(rk, "maps_broadcast_bytes", v[7]);
             cJSON_AddNumberToObject(rk, "maps_broadcast_s", v[8]);
+            cJSON_AddNumberToObject(rk, "shared_couplings", v[9]);
+            cJSON_AddNumberToObject(rk, "shared_coupling_rows", v[10]);
         }
         cJSON_AddItemToArray(per_rank, rk);
     }

@@ -10,6 +10,7 @@
 #include <errno.h>
 #include <getopt.h>
 #include <glob.h>
+#include <limits.h>
 #include <malloc.h>
 #include <math.h>
 #include <omp.h>
@@ -548,7 +549,56 @@ typedef struct sims_share {
     clef_ensemble_spectrum_ctx *ctx;
     int done, adopted;
     double bytes, seconds;
+    int jobs;  /* coupling matrices of rank 0's first realisation this rank made rows of */
+    long rows; /* ... and how many rows */
 } sims_share;
+
+/* What rank 0 announces while the others wait (a header of 3 ints): rows
+ * of a coupling matrix to make (W_l follows), or its mask pieces. */
+enum { SHARE_PIECES = 0, SHARE_COUPLING = 1 };
+
+/* This rank's rows of M (clef_coupling_row_split), gathered into rank 0's
+ * matrix; rank 0 then fills the lower triangle.  The rows are the same
+ * bits wherever they are made (coupling.h), so M is too. */
+static void coupling_part(sims_share *s, clef_coupling **c, int lmax, const double *wl,
+                          int wl_lmax)
+{
+    const int rank = par_rank(), size = par_size();
+    int *first = malloc(sizeof *first * (size_t)(size + 1));
+    if (!first) {
+        fprintf(stderr, "clef: error: rank %d: out of memory\n", rank);
+        par_abort(CLI_EXIT_NOMEM);
+        return;
+    }
+    clef_coupling_row_split(lmax, size, first);
+    const int st = clef_coupling_create_rows(c, lmax, wl, wl_lmax, first[rank], first[rank + 1]);
+    if (st != CLEF_OK)
+        par_abort(cli_fail(st)); /* the others wait in the gather */
+    par_gather_rows(clef_coupling_rows_data(*c), (size_t)lmax + 1, first);
+    s->jobs++;
+    s->rows += first[rank + 1] - first[rank];
+    free(first);
+}
+
+/* Rank 0's coupling maker in its first realisation (clef_spectrum_opts
+ * coupling_create): the other ranks, waiting for its mask pieces, make
+ * their share of the rows (M and the covariance kernel of a cold cache or
+ * --no-cache: lmax_ext^3 work, minutes at nside 2048). */
+static int shared_coupling(void *arg, clef_coupling **out, int lmax, const double *wl,
+                           int wl_lmax)
+{
+    const size_t n = (size_t)lmax + 1;
+    if (n * n > (size_t)INT_MAX) /* beyond the int counts of the gather: alone */
+        return clef_coupling_create(out, lmax, wl, wl_lmax);
+    int h[3] = {SHARE_COUPLING, lmax, wl_lmax};
+    par_bcast_ints(h, 3);
+    void *b = (void *)wl;
+    size_t nb = ((size_t)wl_lmax + 1) * sizeof *wl;
+    par_bcast_bytes(&b, &nb);
+    coupling_part(arg, out, lmax, wl, wl_lmax);
+    clef_coupling_fill_lower(*out);
+    return CLEF_OK;
+}
 
 /* Rank 0, after its first realisation (or at the end, with nothing to send
  * when it made none). */
@@ -557,6 +607,8 @@ static void share_send(sims_share *s)
     const double t0 = clef_wtime();
     void *buf = NULL;
     size_t n = 0;
+    int h[3] = {SHARE_PIECES, 0, 0};
+    par_bcast_ints(h, 3);
     if (s->ctx->state && clef_ensemble_spectrum_export(s->ctx, &buf, &n) != CLEF_OK) {
         cli_warn("the mask pieces could not be packed for the other ranks (%s): each rank "
                  "makes or reads them itself", clef_last_error());
@@ -579,6 +631,23 @@ static void share_receive(void *arg)
     const double t0 = clef_wtime();
     void *buf = NULL;
     size_t n = 0;
+    for (;;) { /* rows of rank 0's couplings until its pieces come */
+        int h[3] = {SHARE_PIECES, 0, 0};
+        par_bcast_ints(h, 3);
+        if (h[0] != SHARE_COUPLING)
+            break;
+        par_bcast_bytes(&buf, &n);
+        clef_coupling *c = NULL;
+        if (h[1] < 0 || h[2] < 0 || n != ((size_t)h[2] + 1) * sizeof(double)) {
+            fprintf(stderr, "clef: error: rank %d: a coupling job from rank 0 that does not "
+                    "add up (lmax %d, W_l to %d, %zu bytes)\n", par_rank(), h[1], h[2], n);
+            par_abort(CLI_EXIT_NUMERIC);
+        }
+        coupling_part(s, &c, h[1], buf, h[2]);
+        clef_coupling_destroy(c);
+        free(buf);
+        buf = NULL;
+    }
     par_bcast_bytes(&buf, &n);
     if (n) {
         if (clef_ensemble_spectrum_adopt(s->ctx, buf, n) == CLEF_OK)
@@ -799,7 +868,13 @@ int cmd_sims(int argc, char **argv)
             sctx.after_maps = share_receive;
             sctx.after_maps_arg = &share;
         }
+        if (!share.done && rank == 0) { /* the others make rows of its couplings meanwhile */
+            r.so.coupling_create = shared_coupling;
+            r.so.coupling_arg = &share;
+        }
         rc = sims_do_one(&r, plan, kind, i, &ts, &ta);
+        r.so.coupling_create = NULL;
+        r.so.coupling_arg = NULL;
         if (rc != CLI_EXIT_OK) {
             free(todo);
             par_abort(rc);
@@ -833,7 +908,8 @@ int cmd_sims(int argc, char **argv)
     const double rstat[SIMS_RSTAT] = {
         (double)sctx.couplings_computed, (double)sctx.couplings_read,
         (double)sctx.mask_transforms, (double)sctx.pieces_reused, (double)sctx.pieces_adopted,
-        share.bytes, share.seconds, r.map_bytes, r.map_seconds};
+        share.bytes, share.seconds, r.map_bytes, r.map_seconds, (double)share.jobs,
+        (double)share.rows};
     if (par_gather(rstat, SIMS_RSTAT, &r.rstat_all, &counts)) {
         status = CLEF_ENOMEM;
         goto out;
