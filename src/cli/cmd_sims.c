@@ -582,8 +582,10 @@ static void coupling_part(sims_share *s, clef_coupling **c, int lmax, const doub
 
 /* Rank 0's coupling maker in its first realisation (clef_spectrum_opts
  * coupling_create): the other ranks, waiting for its mask pieces, make
- * their share of the rows (M and the covariance kernel of a cold cache or
- * --no-cache: lmax_ext^3 work, minutes at nside 2048). */
+ * their share of the rows of M and the covariance kernel (a cold cache or
+ * --no-cache; lmax_ext^3 work, a few CPU-seconds each at nside 2048: the
+ * mask spectra and the deprojection correction, the larger part of a cold
+ * first realisation, stay rank 0's; docs/performance.md). */
 static int shared_coupling(void *arg, clef_coupling **out, int lmax, const double *wl,
                            int wl_lmax)
 {
