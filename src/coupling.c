@@ -64,21 +64,19 @@ fail:
     return status;
 }
 
-int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl_lmax)
+/* Rows l_first <= l1 < l_end of the upper triangle (l2 >= l1) of M into an
+ * allocated c, with the row kernel of this machine. */
+static int coupling_rows(clef_coupling *c, int l_first, int l_end)
 {
-    int status;
-    clef_coupling *c = NULL;
+    int status = CLEF_OK;
     double *a = NULL, *b = NULL, *wt = NULL;
-    if (!out)
-        CLEF_FAIL(CLEF_EINVAL, "coupling: output pointer is NULL");
-    *out = NULL;
     clef_kernel kid;
     CLEF_TRY(clef_kernel_resolve(CLEF_KERNEL_AUTO, &kid));
     clef_coupling_row_fn *coupling_row = kid == CLEF_KERNEL_AVX512 ? clef_coupling_row_avx512
                                          : kid == CLEF_KERNEL_AVX2 ? clef_coupling_row_avx2
                                                                    : clef_coupling_row_base;
-    CLEF_TRY(clef_coupling_alloc_empty(&c, lmax, wl, wl_lmax));
-    const int L = lmax;
+    const int L = c->lmax, wl_lmax = c->wl_lmax;
+    const double *wl = c->wl;
     const size_t n = (size_t)L + 1;
     /* Index ranges (coupling_row): a up to L + block, b and wt up to 2L + block. */
     const size_t ntab = 2 * (size_t)L + CLEF_COUPLING_PAD + 2;
@@ -86,8 +84,8 @@ int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl
     b = malloc(ntab * sizeof *b);
     wt = calloc(ntab, sizeof *wt);
     if (!a || !b || !wt) {
-        status = clef_fail(CLEF_ENOMEM, "coupling: out of memory for tables (lmax %d)", lmax);
-        goto fail;
+        status = clef_fail(CLEF_ENOMEM, "coupling: out of memory for tables (lmax %d)", L);
+        goto done;
     }
     clef_wigner_a_table((int)ntab - 1, a);
     for (size_t i = 0; i < ntab; i++)
@@ -98,7 +96,9 @@ int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl
 
     double *m = c->m;
     const double inv4pi = 1.0 / (4.0 * M_PI);
-    const double total = (double)(L + 1) * (L + 2) * (L + 3) / 6.0; /* kernel terms */
+    double total = 0.0; /* kernel terms of these rows */
+    for (int l1 = l_first; l1 < l_end; l1++)
+        total += (double)(l1 + 1) * (L - l1 + 1);
     double done = 0.0;
     double reported = 0.0; /* touched by thread 0 only */
     int alloc_failed = 0;
@@ -111,7 +111,7 @@ int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl
             alloc_failed = 1;
         }
 #pragma omp for schedule(dynamic, 1)
-        for (int l1 = 0; l1 <= L; l1++) {
+        for (int l1 = l_first; l1 < l_end; l1++) {
             if (!s || !t)
                 continue;
             coupling_row(l1, L, wtop, a, b, wt, ntab, t, s);
@@ -135,14 +135,24 @@ int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl
         free(s);
         free(t);
     }
-    if (alloc_failed) {
+    if (alloc_failed)
         status = clef_fail(CLEF_ENOMEM, "coupling: out of memory for row scratch");
-        goto fail;
-    }
+done:
+    free(a);
+    free(b);
+    free(wt);
+    return status;
+}
+
+void clef_coupling_fill_lower(clef_coupling *c)
+{
     /* Lower triangle from the symmetry of M_ll' / (2l' + 1), in square
      * tiles: a column-order walk over a large matrix misses the cache and
      * the TLB on every element. */
     enum { TILE = 64 };
+    const int L = c->lmax;
+    const size_t n = (size_t)L + 1;
+    double *m = c->m;
 #pragma omp parallel for schedule(dynamic, 1)
     for (int i0 = 0; i0 <= L; i0 += TILE) {
         const int i1 = i0 + TILE - 1 < L ? i0 + TILE - 1 : L;
@@ -155,18 +165,63 @@ int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl
             }
         }
     }
-    clef_progress("coupling", 1.0);
-    free(a);
-    free(b);
-    free(wt);
+}
+
+void clef_coupling_row_split(int lmax, int nparts, int *first)
+{
+    /* Row l1 costs (l1 + 1)(lmax - l1 + 1) kernel terms (coupling_row);
+     * part k takes the rows from the k-th fraction of the total on. */
+    const double total = (double)(lmax + 1) * (lmax + 2) * (lmax + 3) / 6.0;
+    double acc = 0.0;
+    int k = 1;
+    first[0] = 0;
+    for (int l1 = 0; l1 <= lmax && k < nparts; l1++) {
+        acc += (double)(l1 + 1) * (lmax - l1 + 1);
+        while (k < nparts && acc >= total * k / nparts)
+            first[k++] = l1 + 1;
+    }
+    while (k <= nparts)
+        first[k++] = lmax + 1;
+}
+
+int clef_coupling_create_rows(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
+                              int l_first, int l_end)
+{
+    if (!out)
+        CLEF_FAIL(CLEF_EINVAL, "coupling: output pointer is NULL");
+    *out = NULL;
+    if (l_first < 0 || l_end < l_first || l_end > lmax + 1)
+        CLEF_FAIL(CLEF_EINVAL, "coupling: rows %d..%d outside 0..%d", l_first, l_end - 1, lmax);
+    clef_coupling *c = NULL;
+    CLEF_TRY(clef_coupling_alloc_empty(&c, lmax, wl, wl_lmax));
+    memset(c->m, 0, ((size_t)lmax + 1) * ((size_t)lmax + 1) * sizeof *c->m);
+    const int status = coupling_rows(c, l_first, l_end);
+    if (status != CLEF_OK) {
+        clef_coupling_destroy(c);
+        return status;
+    }
     *out = c;
     return CLEF_OK;
-fail:
-    free(a);
-    free(b);
-    free(wt);
-    clef_coupling_destroy(c);
-    return status;
+}
+
+double *clef_coupling_rows_data(clef_coupling *c) { return c->m; }
+
+int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl_lmax)
+{
+    if (!out)
+        CLEF_FAIL(CLEF_EINVAL, "coupling: output pointer is NULL");
+    *out = NULL;
+    clef_coupling *c = NULL;
+    CLEF_TRY(clef_coupling_alloc_empty(&c, lmax, wl, wl_lmax));
+    const int status = coupling_rows(c, 0, lmax + 1);
+    if (status != CLEF_OK) {
+        clef_coupling_destroy(c);
+        return status;
+    }
+    clef_coupling_fill_lower(c);
+    clef_progress("coupling", 1.0);
+    *out = c;
+    return CLEF_OK;
 }
 
 void clef_coupling_destroy(clef_coupling *c)

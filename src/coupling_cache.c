@@ -426,6 +426,13 @@ void clef_cache_store(const char *dir, const char *path, int kind, const char *k
 int clef_coupling_create_cached(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
                                 const char *cache_dir, int *hit)
 {
+    return clef_coupling_create_cached_with(out, lmax, wl, wl_lmax, cache_dir, hit, NULL, NULL);
+}
+
+int clef_coupling_create_cached_with(clef_coupling **out, int lmax, const double *wl,
+                                     int wl_lmax, const char *cache_dir, int *hit,
+                                     clef_coupling_create_fn *make, void *arg)
+{
     char dir[4096], path[4096 + 160], key[65];
     clef_coupling *c = NULL;
     if (hit)
@@ -448,7 +455,10 @@ int clef_coupling_create_cached(clef_coupling **out, int lmax, const double *wl,
         return CLEF_OK;
     }
     clef_coupling_destroy(c);
-    CLEF_TRY(clef_coupling_create(out, lmax, wl, wl_lmax));
+    if (make)
+        CLEF_TRY(make(arg, out, lmax, wl, wl_lmax));
+    else
+        CLEF_TRY(clef_coupling_create(out, lmax, wl, wl_lmax));
     if (have_path)
         clef_cache_store(dir, path, KIND_M, key, n, n, (*out)->m);
     return CLEF_OK;

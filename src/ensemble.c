@@ -42,6 +42,25 @@ void clef_ensemble_result_free(clef_ensemble_result *r)
     r->pcl = r->filter = r->coupling = NULL;
 }
 
+/* The estimator's after_maps: the caller's callback, then the pieces it
+ * adopted (if any) for the analysis in progress. */
+typedef struct after_call {
+    clef_ensemble_spectrum_ctx *c;
+    void (*fn)(void *arg);
+    void *arg;
+    int adopted;
+} after_call;
+
+static clef_estimator *after_maps_call(void *arg)
+{
+    after_call *a = arg;
+    a->fn(a->arg);
+    clef_estimator *p = a->c->pending;
+    a->c->pending = NULL;
+    a->adopted = p != NULL;
+    return p;
+}
+
 static int spectrum_analyse(void *ctx, const clef_map *const *maps, int nmaps,
                             clef_ensemble_result *out)
 {
@@ -50,9 +69,17 @@ static int spectrum_analyse(void *ctx, const clef_map *const *maps, int nmaps,
     memset(&res, 0, sizeof res);
     memset(out, 0, sizeof *out);
     /* The last realisation's estimator lends this one what depends on the
-     * masks alone (clef_estimator_reuse); this one is kept for the next. */
-    clef_spectrum_keep k = {.prev = c->state, .after_maps = c->after_maps,
-                            .arg = c->after_maps_arg};
+     * masks alone (clef_estimator_reuse), or pieces adopted from another
+     * process; this one is kept for the next. */
+    after_call ac = {.c = c, .fn = c->after_maps, .arg = c->after_maps_arg};
+    clef_spectrum_keep k = {.prev = c->state, .after_maps = c->after_maps ? after_maps_call : NULL,
+                            .arg = &ac};
+    if (c->pending) {
+        clef_estimator_destroy(c->state);
+        k.prev = c->pending;
+        c->pending = NULL;
+        ac.adopted = 1;
+    }
     c->state = NULL;
     c->after_maps = NULL;
     const int status = clef_spectrum_compute_keep(maps[0], nmaps > 1 ? maps[1] : NULL, c->mask1,
@@ -63,6 +90,16 @@ static int spectrum_analyse(void *ctx, const clef_map *const *maps, int nmaps,
     }
     clef_estimator *e = k.e;
     c->state = e;
+    int made = 0, read = 0, msht = 0;
+    clef_estimator_couplings(e, &made, &read);
+    clef_estimator_transforms(e, NULL, &msht);
+    c->couplings_computed += made;
+    c->couplings_read += read;
+    c->mask_transforms += msht;
+    if (ac.adopted)
+        c->pieces_adopted += clef_estimator_reused(e);
+    else
+        c->pieces_reused += clef_estimator_reused(e);
     /* The pair's pseudo-spectrum, filter and coupling (Hivon et al.'s
      * transfer function needs them; the band powers do not carry them). */
     const est_pair *pr = &e->pairs[0];
@@ -96,7 +133,31 @@ static void spectrum_release(void *ctx)
 {
     clef_ensemble_spectrum_ctx *c = ctx;
     clef_estimator_destroy(c->state);
-    c->state = NULL;
+    clef_estimator_destroy(c->pending);
+    c->state = c->pending = NULL;
+}
+
+int clef_ensemble_spectrum_export(const clef_ensemble_spectrum_ctx *ctx, void **buf, size_t *n)
+{
+    if (!ctx || !ctx->state) {
+        if (buf)
+            *buf = NULL;
+        if (n)
+            *n = 0;
+        CLEF_FAIL(CLEF_EINVAL, "ensemble: no analysis yet, so no mask pieces to export");
+    }
+    return clef_estimator_export(ctx->state, buf, n);
+}
+
+int clef_ensemble_spectrum_adopt(clef_ensemble_spectrum_ctx *ctx, const void *buf, size_t n)
+{
+    if (!ctx)
+        CLEF_FAIL(CLEF_EINVAL, "ensemble: no analyser to adopt pieces");
+    clef_estimator *e = NULL;
+    CLEF_TRY(clef_estimator_import(&e, buf, n));
+    clef_estimator_destroy(ctx->pending);
+    ctx->pending = e;
+    return CLEF_OK;
 }
 
 void clef_ensemble_spectrum_analyser(clef_ensemble_spectrum_ctx *ctx, const clef_map *mask1,

@@ -115,6 +115,7 @@ void clef_estimator_destroy(clef_estimator *e)
         free(e->ops[k].rep);
         clef_coupling_binned_destroy(e->ops[k].kb);
         free(e->ops[k].win);
+        free(e->ops[k].tl_own);
     }
     free(e->ops);
     if (e->walm) {
@@ -127,6 +128,7 @@ void clef_estimator_destroy(clef_estimator *e)
     clef_estimator_destroy(e->prev);
     free(e->prev_wid);
     clef_sht_destroy(e->sht);
+    free(e->own_cache_dir);
     free(e->fields);
     free(e->pairs);
     free(e->weights);
@@ -309,8 +311,15 @@ int clef_estimator_compute(clef_estimator *e)
     e->t0 = clef_wtime();
     CLEF_TRY(stage_lmax(e));
     CLEF_TRY(clef_est_prepare(e));
-    if (e->after_maps) /* nothing below the map transforms has been read or made yet */
-        e->after_maps(e->after_maps_arg);
+    if (e->after_maps) { /* nothing below the map transforms has been read or made yet */
+        clef_estimator *late = e->after_maps(e->after_maps_arg);
+        if (late) { /* pieces handed over now (another process's, clef sims) */
+            clef_estimator_destroy(e->prev);
+            free(e->prev_wid);
+            e->prev_wid = NULL;
+            e->prev = late;
+        }
+    }
     CLEF_TRY(clef_est_mask_pairs(e));
     CLEF_TRY(clef_est_bins(e));
     CLEF_TRY(clef_est_couplings(e));
@@ -374,6 +383,14 @@ void clef_estimator_shared(const clef_estimator *e, int *mask_pairs, int *operat
         *mask_pairs = e && e->computed ? e->nmasks : 0;
     if (operators)
         *operators = e && e->computed ? e->nops : 0;
+}
+
+void clef_estimator_couplings(const clef_estimator *e, int *computed, int *read)
+{
+    if (computed)
+        *computed = e ? e->n_coupling_made : 0;
+    if (read)
+        *read = e ? e->n_coupling_read : 0;
 }
 
 void clef_estimator_transforms(const clef_estimator *e, int *maps, int *masks)

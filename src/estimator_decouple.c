@@ -162,6 +162,21 @@ static int deproject(clef_estimator *r, est_masks *mk)
     return CLEF_OK;
 }
 
+/* A coupling matrix to lmax_ext from mask spectra to lmax_t: through the
+ * cache folder when the run uses it, made by the options' coupling_create
+ * when set (clef sims shares the rows among its ranks). */
+int clef_est_make_coupling(clef_estimator *e, clef_coupling **m, const double *wl, int *hit)
+{
+    const clef_spectrum_opts *o = &e->o;
+    *hit = 0;
+    if (o->use_cache)
+        return clef_coupling_create_cached_with(m, e->lmax_ext, wl, e->lmax_t, o->cache_dir, hit,
+                                                o->coupling_create, o->coupling_arg);
+    if (o->coupling_create)
+        return o->coupling_create(o->coupling_arg, m, e->lmax_ext, wl, e->lmax_t);
+    return clef_coupling_create(m, e->lmax_ext, wl, e->lmax_t);
+}
+
 /* The coupling matrix M to lmax_ext of each pair of weights (cached),
  * corrected for the monopole/dipole removal.  M itself is kept: the noise
  * bias and the window functions need it, and K is cheap to build from it. */
@@ -174,14 +189,13 @@ int clef_est_couplings(clef_estimator *e)
     clef_progress("coupling", 0.0);
     for (int k = 0; k < e->nmasks; k++) {
         est_masks *mk = &e->masks[k];
-        const clef_spectrum_opts *o = &e->o;
         if (mk->m) /* taken from an earlier estimator, corrected */
             continue;
-        if (o->use_cache)
-            CLEF_TRY(clef_coupling_create_cached(&mk->m, e->lmax_ext, mk->wl, e->lmax_t,
-                                                 o->cache_dir, &mk->cache_hit));
+        CLEF_TRY(clef_est_make_coupling(e, &mk->m, mk->wl, &mk->cache_hit));
+        if (mk->cache_hit)
+            e->n_coupling_read++;
         else
-            CLEF_TRY(clef_coupling_create(&mk->m, e->lmax_ext, mk->wl, e->lmax_t));
+            e->n_coupling_made++;
         if (mk->dep.dmean) {
             /* The monopole/dipole removal (spectrum_deproj.c): M - D where
              * the templates carry power, and no coupling at all from l = 0
@@ -383,9 +397,17 @@ int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_co
     est_kernel *d = &nk[e->nkernels];
     memcpy(d->p, k, sizeof k);
     d->m = taken;
-    int status = taken ? CLEF_OK : clef_spectrum_coupling(&d->m, e->lmax_ext, wl, lt, &e->o);
+    int status = CLEF_OK, hit = 0;
+    if (!taken)
+        status = clef_est_make_coupling(e, &d->m, wl, &hit);
     free(own);
     CLEF_TRY(status);
+    if (!taken) {
+        if (hit)
+            e->n_coupling_read++;
+        else
+            e->n_coupling_made++;
+    }
     e->nkernels++;
     *m = d->m;
     return CLEF_OK;

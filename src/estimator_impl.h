@@ -19,6 +19,11 @@ typedef struct est_weights {
     int nf;                    /* templates removed from the maps with these weights (0, 1, 4) */
     double fsky, w1, w2, w4;   /* moments */
     int field;                 /* first field with these weights (messages) */
+    /* SHA-256 of w's npix doubles: an imported estimator (clef_estimator_import)
+     * carries it instead of w; made for this estimator's weights only when
+     * compared with one (estimator_reuse.c). */
+    unsigned char sha[32];
+    int has_sha;
 } est_weights;
 
 typedef struct est_field {
@@ -53,6 +58,7 @@ typedef struct est_masks {
 typedef struct est_op {
     int mp;                    /* its est_masks */
     const double *tl;          /* the filter (the first pair's, borrowed) */
+    double *tl_own;            /* an imported estimator's filter (tl points to it), owned */
     clef_bins *all_bins;       /* reported and hidden bins */
     int *rep, nb_all;
     clef_coupling_binned *kb;  /* K over all_bins */
@@ -111,8 +117,15 @@ struct clef_estimator {
     int keep;                  /* keep the plan, kernels and windows for a later estimator */
     int nreused;               /* pieces taken from prev */
     struct clef_sht *sht;      /* the maps' analysis plan, kept with keep */
-    void (*after_maps)(void *arg); /* called once after the map transforms (may be NULL) */
+    /* Called once after the map transforms (may be NULL); a non-NULL return
+     * is an estimator to take the mask pieces from (an imported one,
+     * estimator_share.c), adopted as prev from then on. */
+    struct clef_estimator *(*after_maps)(void *arg);
     void *after_maps_arg;
+    int imported;              /* made by clef_estimator_import: mask pieces only */
+    char *own_cache_dir;       /* an imported estimator's o.cache_dir, owned */
+    int n_coupling_made;       /* coupling matrices (M, kernels) computed by this estimator */
+    int n_coupling_read;       /* ... read from the cache folder */
 };
 
 /* spectrum.c: the limits the options of one field put on lmax, and its
@@ -141,9 +154,14 @@ int clef_est_couplings(clef_estimator *e);
 int clef_est_decouple(clef_estimator *e, est_pair *p);
 int clef_est_windows(clef_estimator *e, est_pair *p);
 int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_coupling **m);
+int clef_est_make_coupling(clef_estimator *e, clef_coupling **m, const double *wl, int *hit);
 void clef_est_kernel_key(int x, int y, int z, int u, int k[4]); /* normalised kernel ids */
 
-/* estimator_reuse.c: NULL / 0 when nothing matches */
+/* estimator_reuse.c: NULL / 0 when nothing matches.  reuse_weights maps
+ * this estimator's weights to prev's and frees prev's (npix doubles each):
+ * called as soon as the weights are made, so that the two sets are not
+ * held together through the map transforms. */
+int clef_est_reuse_weights(clef_estimator *e);
 struct clef_sht *clef_est_reuse_sht(clef_estimator *e);
 int clef_est_reuse_masks(clef_estimator *e, est_masks *mk, int *taken);
 clef_coupling *clef_est_reuse_kernel(clef_estimator *e, const int key[4]);

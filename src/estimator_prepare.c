@@ -125,6 +125,10 @@ int clef_est_prepare(clef_estimator *e)
         field_weights(&e->fields[i], npix, w);
         CLEF_TRY(add_weights(e, i, w));
     }
+    /* The earlier estimator's weights are compared now and freed, before
+     * the weighted map and the transforms need memory (400 MB per set at
+     * nside 2048). */
+    CLEF_TRY(clef_est_reuse_weights(e));
     clef_est_stage_done(e, "prepare");
     double *tmap = clef_alloc_large((size_t)npix * sizeof *tmap);
     if (!tmap)

@@ -19,6 +19,7 @@
 #include <stdlib.h>
 #include <string.h>
 
+#include "clef/hash.h"
 #include "clef/sht.h"
 #include "core_impl.h"
 #include "estimator_impl.h"
@@ -78,7 +79,7 @@ clef_sht *clef_est_reuse_sht(clef_estimator *e)
 }
 
 /* prev_wid[k]: the weights of prev equal to e's weights k, or -1. */
-static int map_weights(clef_estimator *e)
+int clef_est_reuse_weights(clef_estimator *e)
 {
     clef_estimator *p = e->prev;
     if (e->prev_wid || !p)
@@ -90,10 +91,29 @@ static int map_weights(clef_estimator *e)
         e->prev_wid[k] = -1;
         if (!same_setting(e, p))
             continue;
-        for (int j = 0; j < p->nweights && e->prev_wid[k] < 0; j++)
-            if (p->weights[j].nf == e->weights[k].nf && !memcmp(p->weights[j].w, e->weights[k].w,
-                                                                bytes))
-                e->prev_wid[k] = j;
+        est_weights *w = &e->weights[k];
+        for (int j = 0; j < p->nweights && e->prev_wid[k] < 0; j++) {
+            const est_weights *q = &p->weights[j];
+            if (q->nf != w->nf)
+                continue;
+            if (q->w) {
+                if (!memcmp(q->w, w->w, bytes))
+                    e->prev_wid[k] = j;
+            } else if (q->has_sha) {
+                /* An imported estimator (estimator_share.c) carries the
+                 * SHA-256 of its weights, not the npix doubles: equal
+                 * digests stand for equal weights (as for the cache keys). */
+                if (!w->has_sha) {
+                    clef_sha256 h;
+                    clef_sha256_init(&h);
+                    clef_sha256_update(&h, w->w, bytes);
+                    clef_sha256_final(&h, w->sha);
+                    w->has_sha = 1;
+                }
+                if (!memcmp(q->sha, w->sha, sizeof w->sha))
+                    e->prev_wid[k] = j;
+            }
+        }
     }
     /* The map is all that was needed of prev's weights (npix doubles each). */
     for (int j = 0; j < p->nweights; j++) {
@@ -110,7 +130,7 @@ int clef_est_reuse_masks(clef_estimator *e, est_masks *mk, int *taken)
     clef_estimator *p = e->prev;
     if (!p)
         return CLEF_OK;
-    CLEF_TRY(map_weights(e));
+    CLEF_TRY(clef_est_reuse_weights(e));
     const int pa = e->prev_wid[mk->wa], pb = e->prev_wid[mk->wb];
     if (pa < 0 || pb < 0)
         return CLEF_OK;
@@ -142,7 +162,7 @@ int clef_est_reuse_masks(clef_estimator *e, est_masks *mk, int *taken)
 clef_coupling *clef_est_reuse_kernel(clef_estimator *e, const int key[4])
 {
     clef_estimator *p = e->prev;
-    if (!p || map_weights(e) != CLEF_OK)
+    if (!p || clef_est_reuse_weights(e) != CLEF_OK)
         return NULL;
     int want[4];
     for (int i = 0; i < 4; i++)

@@ -13,14 +13,16 @@
  * takes k->prev (an estimator of an earlier call, or NULL) for
  * clef_estimator_reuse and always consumes it (k->prev is NULL on return);
  * calls k->after_maps(k->arg), when set, once the maps are transformed and
- * before anything that depends on the masks is read or made; on success
+ * before anything that depends on the masks is read or made (what it
+ * returns, when not NULL, replaces k->prev as the estimator to reuse); on success
  * k->e is this call's estimator, for what the result does not carry (the
  * pseudo-spectrum, the coupling M and the filter of the pair) and as the
  * next call's k->prev (the caller destroys the last one). */
 struct clef_estimator;
 typedef struct clef_spectrum_keep {
     struct clef_estimator *prev, *e;
-    void (*after_maps)(void *arg);
+    struct clef_estimator *(*after_maps)(void *arg); /* returns an estimator to take the
+                                                        mask pieces from, or NULL */
     void *arg;
 } clef_spectrum_keep;
 int clef_spectrum_compute_keep(const clef_map *map1, const clef_map *map2, const clef_map *mask1,

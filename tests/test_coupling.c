@@ -46,6 +46,74 @@ static double *make_coupling(clef_coupling **c, int lmax, const double *wl, int 
     return (double *)clef_coupling_matrix(*c);
 }
 
+/* M made in parts (clef_coupling_row_split / _create_rows / _fill_lower,
+ * as clef sims' ranks share it) is the same bits as clef_coupling_create's:
+ * the rows are independent.  The parts cover every row once, and a maker
+ * passed to clef_coupling_create_cached_with is called on a miss only. */
+static int make_calls;
+static int counting_make(void *arg, clef_coupling **out, int lmax, const double *wl, int wl_lmax)
+{
+    (void)arg;
+    make_calls++;
+    return clef_coupling_create(out, lmax, wl, wl_lmax);
+}
+
+static void test_rows_in_parts(void **state)
+{
+    (void)state;
+    enum { L = 200 };
+    static double wl[2 * L + 1];
+    cap_wl(0.3, 2 * L, wl);
+    clef_coupling *full = NULL;
+    const double *m = make_coupling(&full, L, wl, 2 * L);
+    const size_t n = L + 1;
+    for (int parts = 1; parts <= 5; parts += 2) {
+        int first[6];
+        clef_coupling_row_split(L, parts, first);
+        assert_int_equal(first[0], 0);
+        assert_int_equal(first[parts], L + 1);
+        clef_coupling *sum = NULL;
+        assert_int_equal(clef_coupling_create_rows(&sum, L, wl, 2 * L, 0, 0), CLEF_OK);
+        for (int k = 0; k < parts; k++) {
+            assert_true(first[k] < first[k + 1]); /* each part has rows */
+            clef_coupling *c = NULL;
+            assert_int_equal(clef_coupling_create_rows(&c, L, wl, 2 * L, first[k], first[k + 1]),
+                             CLEF_OK);
+            const size_t off = (size_t)first[k] * n, cnt = (size_t)(first[k + 1] - first[k]) * n;
+            memcpy(clef_coupling_rows_data(sum) + off, clef_coupling_rows_data(c) + off,
+                   cnt * sizeof(double));
+            clef_coupling_destroy(c);
+        }
+        clef_coupling_fill_lower(sum);
+        assert_memory_equal(clef_coupling_matrix(sum), m, n * n * sizeof(double));
+        clef_coupling_destroy(sum);
+    }
+    clef_coupling *bad = NULL;
+    assert_int_equal(clef_coupling_create_rows(&bad, L, wl, 2 * L, 5, L + 2), CLEF_EINVAL);
+    assert_null(bad);
+    /* the maker on a miss, not on a hit */
+    char dir[] = "/tmp/clef-test-rows-XXXXXX";
+    assert_non_null(mkdtemp(dir));
+    clef_coupling *c1 = NULL, *c2 = NULL;
+    int hit = -1;
+    make_calls = 0;
+    assert_int_equal(clef_coupling_create_cached_with(&c1, L, wl, 2 * L, dir, &hit,
+                                                      counting_make, NULL), CLEF_OK);
+    assert_int_equal(hit, 0);
+    assert_int_equal(make_calls, 1);
+    assert_int_equal(clef_coupling_create_cached_with(&c2, L, wl, 2 * L, dir, &hit,
+                                                      counting_make, NULL), CLEF_OK);
+    assert_int_equal(hit, 1);
+    assert_int_equal(make_calls, 1);
+    assert_memory_equal(clef_coupling_matrix(c2), m, n * n * sizeof(double));
+    clef_coupling_destroy(c1);
+    clef_coupling_destroy(c2);
+    char cmd[128];
+    snprintf(cmd, sizeof cmd, "rm -rf %s", dir);
+    assert_int_equal(system(cmd), 0);
+    clef_coupling_destroy(full);
+}
+
 static void test_full_sky_identity(void **state)
 {
     (void)state;
@@ -1098,6 +1166,7 @@ int main(void)
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_cache_concurrent_writers),
         cmocka_unit_test(test_full_sky_identity),
+        cmocka_unit_test(test_rows_in_parts),
         cmocka_unit_test(test_hemisphere),
         cmocka_unit_test(test_row_sums_and_symmetry),
         cmocka_unit_test(test_vs_direct_sum),

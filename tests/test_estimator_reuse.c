@@ -174,6 +174,104 @@ static void test_series(void **state)
     clef_map_free(masks[1]);
 }
 
+/* Pieces that travel as bytes (clef_estimator_export / _import, as clef
+ * sims sends them from rank 0 to the other ranks): an estimator that takes
+ * them from the imported one gives the same bits as a fresh estimator, and
+ * neither transforms the masks nor computes a coupling matrix. */
+static void test_export_import(void **state)
+{
+    (void)state;
+    const int64_t ns = 32;
+    clef_map *masks[2] = {band_mask(ns, 0.2), band_mask(ns, 0.35)};
+    clef_spectrum_opts o;
+    clef_spectrum_opts_default(&o);
+    o.use_cache = 0;
+    o.find_peak = 0;
+    clef_map *m0[2] = {white_map(ns, 40), white_map(ns, 41)};
+    clef_estimator *first = NULL;
+    run_out r0;
+    run(m0, masks, &o, NULL, 1, &first, &r0);
+    void *buf = NULL;
+    size_t n = 0;
+    assert_int_equal(clef_estimator_export(first, &buf, &n), CLEF_OK);
+    assert_non_null(buf);
+    /* at least the three couplings M of the mask pairs, (lmax_ext + 1)^2
+     * doubles each, travel */
+    const int le = r0.bp[0]->win_lmax;
+    assert_true(n > 3 * sizeof(double) * (size_t)(le + 1) * (le + 1));
+    for (int pass = 0; pass < 2; pass++) {
+        clef_map *maps[2] = {white_map(ns, 50 + pass), white_map(ns, 60 + pass)};
+        if (pass == 1) { /* field a's weights change: its pieces must not be taken */
+            maps[0]->valid[700] = 0;
+            maps[0]->nmissing = 1;
+        }
+        clef_estimator *shell = NULL;
+        assert_int_equal(clef_estimator_import(&shell, buf, n), CLEF_OK);
+        run_out fresh, got;
+        run(maps, masks, &o, NULL, 0, NULL, &fresh);
+        clef_estimator *e = NULL;
+        run(maps, masks, &o, shell, 1, &e, &got);
+        assert_same(&fresh, &got);
+        int made = -1, read = -1;
+        clef_estimator_couplings(e, &made, &read);
+        assert_int_equal(read, 0);
+        if (pass == 0) {
+            /* 3 mask pairs, their kernels, 3 binned operators; no plan */
+            assert_true(got.nreused >= 6);
+            assert_int_equal(got.mask_sht, 0);
+            assert_int_equal(made, 0);
+        } else {
+            assert_true(got.nreused >= 2); /* b x b */
+            assert_true(got.nreused < 6);
+            assert_true(got.mask_sht > 0);
+            assert_true(made > 0);
+        }
+        clef_estimator_destroy(e);
+        run_free(&fresh);
+        run_free(&got);
+        clef_map_free(maps[0]);
+        clef_map_free(maps[1]);
+    }
+    /* Bytes that are not an export: truncated, altered, foreign. */
+    clef_estimator *bad = NULL;
+    assert_int_equal(clef_estimator_import(&bad, buf, n - 1), CLEF_EFORMAT);
+    assert_null(bad);
+    unsigned char *alt = malloc(n + 8);
+    memcpy(alt, buf, n);
+    memset(alt + n, 0, 8);
+    assert_int_equal(clef_estimator_import(&bad, alt, n + 8), CLEF_EFORMAT); /* trailing bytes */
+    alt[3] ^= 0x20; /* the magic */
+    assert_int_equal(clef_estimator_import(&bad, alt, n), CLEF_EFORMAT);
+    alt[3] ^= 0x20;
+    /* the number of reported bins (after the magic, the order word, 2 int64,
+     * 5 int32, a double and the cache folder's length, -1 for none): no
+     * longer that of the bins that follow */
+    const size_t at_nb = 8 + 4 + 16 + 20 + 8 + 4;
+    const int32_t huge = 1 << 30;
+    memcpy(alt + at_nb, &huge, 4);
+    assert_int_equal(clef_estimator_import(&bad, alt, n), CLEF_EFORMAT);
+    assert_null(bad);
+    free(alt);
+    /* Export needs a computed estimator that still has its pieces. */
+    clef_estimator *fresh_e = NULL;
+    void *b2 = NULL;
+    size_t n2 = 0;
+    assert_int_equal(clef_estimator_create(&fresh_e, &o, 0), CLEF_OK);
+    assert_int_equal(clef_estimator_export(fresh_e, &b2, &n2), CLEF_EINVAL);
+    assert_null(b2);
+    clef_estimator_destroy(fresh_e);
+    assert_int_equal(clef_estimator_import(&bad, buf, n), CLEF_OK);
+    assert_int_equal(clef_estimator_export(bad, &b2, &n2), CLEF_EINVAL); /* imported */
+    clef_estimator_destroy(bad);
+    free(buf);
+    clef_estimator_destroy(first);
+    run_free(&r0);
+    clef_map_free(m0[0]);
+    clef_map_free(m0[1]);
+    clef_map_free(masks[0]);
+    clef_map_free(masks[1]);
+}
+
 static void test_errors(void **state)
 {
     (void)state;
@@ -192,6 +290,7 @@ int main(void)
 {
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_series),
+        cmocka_unit_test(test_export_import),
         cmocka_unit_test(test_errors),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);

@@ -67,6 +67,31 @@ void clef_coupling_opts_default(clef_coupling_opts *o);
 int clef_coupling_create(clef_coupling **out, int lmax, const double *wl, int wl_lmax);
 void clef_coupling_destroy(clef_coupling *c); /* NULL is a no-op */
 
+/* M in parts, for processes that share its computation (clef sims under
+ * MPI: rank 0 would otherwise build it alone while the others wait).  Rows
+ * are independent, so rows made apart and put together are the same bits
+ * as clef_coupling_create's:
+ *   clef_coupling_row_split(lmax, n, first)   first[0..n]: part k is rows
+ *                                             first[k] <= l < first[k+1],
+ *                                             about equal in work;
+ *   clef_coupling_create_rows(...)            those rows of the upper
+ *                                             triangle (l' >= l), 0 elsewhere;
+ *   clef_coupling_rows_data(c)                the (lmax + 1)^2 row-major
+ *                                             matrix, to copy rows into;
+ *   clef_coupling_fill_lower(c)               the lower triangle from the
+ *                                             upper one, once all rows are in.
+ * Errors: those of clef_coupling_create, CLEF_EINVAL for rows outside
+ * 0..lmax. */
+void clef_coupling_row_split(int lmax, int nparts, int *first);
+int clef_coupling_create_rows(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
+                              int l_first, int l_end);
+double *clef_coupling_rows_data(clef_coupling *c);
+void clef_coupling_fill_lower(clef_coupling *c);
+/* A maker of M in place of clef_coupling_create (clef_spectrum_opts
+ * coupling_create): same contract and same bits. */
+typedef int clef_coupling_create_fn(void *arg, clef_coupling **out, int lmax, const double *wl,
+                                    int wl_lmax);
+
 int clef_coupling_lmax(const clef_coupling *c);
 /* M, row-major, (lmax+1) x (lmax+1); valid until destroy. */
 const double *clef_coupling_matrix(const clef_coupling *c);
@@ -236,6 +261,10 @@ int clef_cache_prune(const char *dir, long long limit, const char *keep);
  * logged as warnings and never fail the call: M is then recomputed. */
 int clef_coupling_create_cached(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
                                 const char *cache_dir, int *hit);
+/* The same, making M on a miss with make(arg, ...) (NULL: clef_coupling_create). */
+int clef_coupling_create_cached_with(clef_coupling **out, int lmax, const double *wl,
+                                     int wl_lmax, const char *cache_dir, int *hit,
+                                     clef_coupling_create_fn *make, void *arg);
 
 /* Like clef_coupling_binned_create from W_l, with K cached under a key
  * that adds the bins (edges and weighting) and the transfer array; a hit

@@ -88,15 +88,33 @@ typedef struct clef_ensemble_spectrum_ctx {
     int keep_coupling; /* 1: results carry the coupling M (0 after the init below) */
     /* Called once in the next analysis, after the maps are transformed and
      * before anything that depends on the masks is read or made, then
-     * cleared (NULL: none).  clef sims' ranks wait there for rank 0 to fill
-     * the coupling cache, their own transforms done meanwhile. */
+     * cleared (NULL: none).  clef sims' ranks other than 0 receive rank 0's
+     * mask pieces there (clef_ensemble_spectrum_adopt), their own
+     * transforms done meanwhile. */
     void (*after_maps)(void *arg);
     void *after_maps_arg;
-    void *state; /* private: the estimator kept for the next analysis */
+    /* What the analyses of this context did, summed over them: coupling
+     * matrices (M, covariance kernels) computed and read from the cache
+     * folder, mask-weight transforms, pieces taken from the analysis before
+     * and from adopted bytes (clef_estimator_reused). */
+    long couplings_computed, couplings_read, mask_transforms, pieces_reused, pieces_adopted;
+    void *state;   /* private: the estimator kept for the next analysis */
+    void *pending; /* private: adopted pieces for the next analysis */
 } clef_ensemble_spectrum_ctx;
 void clef_ensemble_spectrum_analyser(clef_ensemble_spectrum_ctx *ctx, const clef_map *mask1,
                                      const clef_map *mask2, const clef_spectrum_opts *opts,
                                      clef_ensemble_analyser *out);
+/* The mask pieces of the last analysis (clef_estimator_export) as *n
+ * malloc'ed bytes, for another process running the same ensemble.
+ * CLEF_EINVAL before the first analysis. */
+int clef_ensemble_spectrum_export(const clef_ensemble_spectrum_ctx *ctx, void **buf,
+                                  size_t *n);
+/* Hand another process's exported pieces to this context's next analysis
+ * (clef_estimator_import): it takes what matches its masks and settings
+ * instead of reading the cache or computing it, the same bits.  Called
+ * from the after_maps callback, the analysis in progress takes them.
+ * Errors: those of clef_estimator_import (nothing adopted). */
+int clef_ensemble_spectrum_adopt(clef_ensemble_spectrum_ctx *ctx, const void *buf, size_t n);
 
 /* Simulation settings of a plan (simulate-and-analyse mode). */
 typedef struct clef_ensemble_sim {

@@ -91,6 +91,26 @@ const double *clef_estimator_covariance(const clef_estimator *e, int *n);
 int clef_estimator_reuse(clef_estimator *e, clef_estimator *prev);
 /* Pieces e took from its earlier estimator. */
 int clef_estimator_reused(const clef_estimator *e);
+/* The mask pieces of a computed estimator (those clef_estimator_reuse
+ * takes, with what it compares before taking them: the settings, the bins,
+ * the SHA-256 of each set of weights) as one malloc'ed block of *n bytes in
+ * native byte order, for another process of the same machine family
+ * (clef sims sends it over MPI; src/estimator_share.c has the layout).
+ * Call it before the estimator is handed to clef_estimator_reuse (which
+ * moves the pieces).  Errors: CLEF_EINVAL (not computed, pieces already
+ * moved, an imported estimator), CLEF_ENOMEM. */
+int clef_estimator_export(const clef_estimator *e, void **buf, size_t *n);
+/* An estimator holding the pieces of such bytes and nothing else: it is
+ * "computed" for clef_estimator_reuse, which takes from it what matches
+ * (weights compared by their SHA-256), the same bits as on the process
+ * that made them; any other use returns no results.  Errors: CLEF_EFORMAT
+ * (bytes not written by clef_estimator_export of this build, truncated or
+ * altered), CLEF_ENOMEM. */
+int clef_estimator_import(clef_estimator **out, const void *buf, size_t n);
+/* Coupling matrices (M of each mask pair, covariance kernels) this
+ * estimator computed, and read from the cache folder; those taken from an
+ * earlier estimator count in neither.  Either pointer may be NULL. */
+void clef_estimator_couplings(const clef_estimator *e, int *computed, int *read);
 /* Spherical-harmonic analyses of maps (each split map once) and of
  * weights and weight products (0 when the mask spectra came from the cache). */
 void clef_estimator_transforms(const clef_estimator *e, int *maps, int *masks);

@@ -80,6 +80,14 @@ int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *op
 int clef_map_alloc(clef_map **out, int64_t nside);
 int clef_map_copy(clef_map **out, const clef_map *m);
 void clef_map_free(clef_map *m); /* NULL is a no-op */
+/* A map as one malloc'ed block of *n bytes (values, validity and header
+ * fields; native byte order), and back: another process of the same
+ * machine family gets the same map without reading its file (clef sims
+ * sends the masks over MPI).  Errors: CLEF_EINVAL (no map), CLEF_ENOMEM;
+ * import: CLEF_EFORMAT (bytes not written by clef_map_export on this
+ * machine family, or truncated). */
+int clef_map_export(const clef_map *m, void **buf, size_t *n);
+int clef_map_import(clef_map **out, const void *buf, size_t n);
 
 /* How to write.  All fields may be 0/NULL for defaults. */
 typedef struct clef_map_write_opts {

@@ -24,6 +24,7 @@
 
 #include "clef/bins.h"
 #include "clef/clef.h"
+#include "clef/coupling.h"
 #include "clef/map.h"
 #include "clef/peak.h"
 #include "clef/table.h"
@@ -76,6 +77,11 @@ typedef struct clef_spectrum_opts {
                                   them) */
     int pure_b;                /* polarized spectra only (clef_spectrum_pol_compute): 1 = BB
                                   from pure-B multipoles (B-mode purification, purify.h) */
+    clef_coupling_create_fn *coupling_create; /* makes the coupling matrices (M, covariance
+                                  kernels) of the temperature estimator in place of
+                                  clef_coupling_create, e.g. shared among processes (clef
+                                  sims); NULL: clef_coupling_create */
+    void *coupling_arg;        /* its first argument */
 } clef_spectrum_opts;
 
 void clef_spectrum_opts_default(clef_spectrum_opts *o);

@@ -2,6 +2,8 @@
  * (CLEF_HAVE_MPI, set by the Makefile when pkg-config finds ompi-c), else
  * one process.  The only file of clef that includes mpi.h. */
 #define _POSIX_C_SOURCE 200809L
+#include <limits.h>
+#include <stdint.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
@@ -184,4 +186,101 @@ int par_bcast_int(int v)
         MPI_Bcast(&v, 1, MPI_INT, 0, MPI_COMM_WORLD);
 #endif
     return v;
+}
+
+#ifdef CLEF_HAVE_MPI
+/* Bytes per MPI_Bcast: its count is an int, so a block above 2 GiB goes in
+ * pieces; 1 GiB each.  CLEF_PAR_CHUNK (bytes, for the tests) makes them
+ * smaller, so that a small run crosses piece boundaries too. */
+static size_t chunk_bytes(void)
+{
+    const char *s = getenv("CLEF_PAR_CHUNK");
+    const long long v = s && *s ? atoll(s) : 0;
+    return v > 0 && v < (1LL << 30) ? (size_t)v : (size_t)1 << 30;
+}
+#endif
+
+int par_bcast_bytes(void **buf, size_t *n)
+{
+#ifdef CLEF_HAVE_MPI
+    if (!g_mpi || g_size == 1)
+        return 0;
+    uint64_t len = g_rank == 0 && *buf ? (uint64_t)*n : 0;
+    MPI_Bcast(&len, 1, MPI_UINT64_T, 0, MPI_COMM_WORLD);
+    if (g_rank != 0) {
+        *buf = NULL;
+        *n = 0;
+        if (!len)
+            return 0;
+        if (!(*buf = malloc((size_t)len))) {
+            fprintf(stderr, "clef: error: rank %d: out of memory for %llu bytes from rank 0\n",
+                    g_rank, (unsigned long long)len);
+            par_abort(CLI_EXIT_NOMEM);
+            return -1;
+        }
+        *n = (size_t)len;
+    }
+    const size_t step = chunk_bytes();
+    for (size_t off = 0; off < (size_t)len; off += step) {
+        const size_t k = (size_t)len - off < step ? (size_t)len - off : step;
+        MPI_Bcast((char *)*buf + off, (int)k, MPI_BYTE, 0, MPI_COMM_WORLD);
+    }
+    return 0;
+#else
+    (void)buf;
+    (void)n;
+    return 0;
+#endif
+}
+
+void par_bcast_ints(int *v, int n)
+{
+#ifdef CLEF_HAVE_MPI
+    if (g_mpi && g_size > 1)
+        MPI_Bcast(v, n, MPI_INT, 0, MPI_COMM_WORLD);
+#else
+    (void)v;
+    (void)n;
+#endif
+}
+
+int par_gather_rows(double *m, size_t row_len, const int *first)
+{
+#ifdef CLEF_HAVE_MPI
+    if (!g_mpi || g_size == 1)
+        return 0;
+    int *cnt = malloc(sizeof *cnt * (size_t)g_size), *disp = malloc(sizeof *disp * (size_t)g_size);
+    if (!cnt || !disp) {
+        free(cnt);
+        free(disp);
+        par_abort(CLI_EXIT_NOMEM);
+        return -1;
+    }
+    for (int r = 0; r < g_size; r++) {
+        const size_t c = (size_t)(first[r + 1] - first[r]) * row_len;
+        const size_t d = (size_t)first[r] * row_len;
+        if (d + c > (size_t)INT_MAX) { /* Gatherv counts and offsets are ints */
+            free(cnt);
+            free(disp);
+            return -1;
+        }
+        cnt[r] = (int)c;
+        disp[r] = (int)d;
+    }
+    double *mine = m + (size_t)first[g_rank] * row_len;
+    if (g_rank == 0)
+        MPI_Gatherv(MPI_IN_PLACE, cnt[0], MPI_DOUBLE, m, cnt, disp, MPI_DOUBLE, 0,
+                    MPI_COMM_WORLD);
+    else
+        MPI_Gatherv(mine, cnt[g_rank], MPI_DOUBLE, NULL, NULL, NULL, MPI_DOUBLE, 0,
+                    MPI_COMM_WORLD);
+    free(cnt);
+    free(disp);
+    return 0;
+#else
+    (void)m;
+    (void)row_len;
+    (void)first;
+    return 0;
+#endif
 }

@@ -4,6 +4,8 @@
 #ifndef CLEF_CLI_PAR_H
 #define CLEF_CLI_PAR_H
 
+#include <stddef.h>
+
 /* Start: MPI_Init when the process was started by mpirun/srun (their
  * environment variables say so) or want_mpi is set.  Returns an exit code:
  * CLI_EXIT_UNSUP (message printed) when MPI is wanted or the launcher
@@ -26,5 +28,18 @@ int par_gather(const double *mine, int n, double **all, int **counts);
 int par_max_int(int v);
 /* The value of rank 0 on every rank. */
 int par_bcast_int(int v);
+/* Rank 0's block of *n bytes at *buf (*buf NULL: none) on every rank: rank
+ * 0 keeps its own; the others get a malloc'ed copy in *buf and its size in
+ * *n (NULL and 0 when rank 0 sent none).  MPI_Bcast in pieces below 2 GiB
+ * (the count is an int).  One process: nothing happens.  Returns 0 (a rank
+ * out of memory takes the job down, CLI_EXIT_NOMEM). */
+int par_bcast_bytes(void **buf, size_t *n);
+/* n ints of rank 0 on every rank. */
+void par_bcast_ints(int *v, int n);
+/* Rows of a row-major matrix m (row_len doubles per row): rank r holds rows
+ * first[r] <= l < first[r + 1] in place; afterwards rank 0's m has every
+ * rank's rows (MPI_Gatherv).  Returns 0, or -1 when the matrix is too large
+ * for int counts (2^31 doubles up to the last rank's rows). */
+int par_gather_rows(double *m, size_t row_len, const int *first);
 
 #endif

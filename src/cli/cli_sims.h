@@ -22,6 +22,13 @@ typedef struct sims_args {
 /* Accounting values per realisation done: global index, simulate seconds,
  * analyse seconds, rank. */
 #define SIMS_ACCT 4
+/* Per rank: coupling matrices computed, read from the cache; mask-weight
+ * transforms; mask pieces taken from the rank's previous realisation, from
+ * rank 0's bytes; bytes of those (sent by rank 0, received by the others)
+ * and seconds spent on them (on the others: waiting for rank 0's first
+ * realisation too); bytes and seconds of the maps (masks, hit map) rank 0
+ * read and sent (0 with one rank). */
+#define SIMS_RSTAT 11 /* ... and the coupling matrices and rows this rank made for rank 0 */
 
 typedef struct sims_run {
     sims_args *a;
@@ -36,6 +43,8 @@ typedef struct sims_run {
     double t_loop, t_begin;
     double *acct_all; /* rank 0: every rank's accounting, rank order */
     int *acct_counts;
+    double *rstat_all; /* rank 0: SIMS_RSTAT values per rank, rank order */
+    double map_bytes, map_seconds; /* this rank: maps sent by / received from rank 0 */
     int nranks, nthreads;
     int argc;
     char **argv;

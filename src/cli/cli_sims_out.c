@@ -519,6 +519,22 @@ static cJSON *summary(const sims_run *r, const products *p, const char *const *o
             ndone++;
         }
         off += r->acct_counts[k];
+        if (r->rstat_all) {
+            /* The mask pieces: made or read once by rank 0, received by
+             * the others (docs/ensemble.md, "MPI"). */
+            const double *v = r->rstat_all + (size_t)k * SIMS_RSTAT;
+            cJSON_AddNumberToObject(rk, "couplings_computed", v[0]);
+            cJSON_AddNumberToObject(rk, "couplings_from_cache", v[1]);
+            cJSON_AddNumberToObject(rk, "mask_transforms", v[2]);
+            cJSON_AddNumberToObject(rk, "pieces_from_previous_realisation", v[3]);
+            cJSON_AddNumberToObject(rk, "pieces_from_rank0", v[4]);
+            cJSON_AddNumberToObject(rk, "pieces_broadcast_bytes", v[5]);
+            cJSON_AddNumberToObject(rk, "pieces_broadcast_s", v[6]);
+            cJSON_AddNumberToObject(rk, "maps_broadcast_bytes", v[7]);
+            cJSON_AddNumberToObject(rk, "maps_broadcast_s", v[8]);
+            cJSON_AddNumberToObject(rk, "shared_couplings", v[9]);
+            cJSON_AddNumberToObject(rk, "shared_coupling_rows", v[10]);
+        }
         cJSON_AddItemToArray(per_rank, rk);
     }
     cJSON_AddNumberToObject(ac, "realisations_done_now", (double)ndone);

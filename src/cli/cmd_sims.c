@@ -10,6 +10,8 @@
 #include <errno.h>
 #include <getopt.h>
 #include <glob.h>
+#include <limits.h>
+#include <malloc.h>
 #include <math.h>
 #include <omp.h>
 #include <stdarg.h>
@@ -499,12 +501,170 @@ static int load_input_cl(const sims_args *a, int lmax, double *cl)
     return clef_theory_read_cl(a->cl_file, lmax, cl, NULL);
 }
 
-/* The analyser's after_maps on ranks other than 0 (their first
- * realisation): wait for rank 0 to have filled the coupling cache. */
-static void sims_wait_rank0(void *arg)
+/* ---- one reading and one computation of what depends on the masks ---- */
+
+/* A map every rank needs (mask, hit map): rank 0 reads the file; with
+ * several ranks it sends the map to the others (clef_map_export,
+ * par_bcast_bytes), which do not open the file.  Returns an exit code (0:
+ * ok); *agreed 1 when every rank returns the same code (rank 0 could not
+ * read the file: it printed why), 0 when this rank alone failed. */
+static int shared_map(sims_run *r, const char *path, int is_mask, clef_map **out, int *agreed)
 {
-    par_barrier();
-    *(int *)arg = 1;
+    *out = NULL;
+    *agreed = 1;
+    const int rank = par_rank();
+    const double t0 = clef_wtime();
+    int code = 0;
+    if (rank == 0) {
+        const int st = cli_analysis_read_map(&r->a->an, path, is_mask, out);
+        code = st < 0 ? -st : st ? cli_fail(st) : 0;
+    }
+    if (par_size() == 1 || (code = par_bcast_int(code)) != 0)
+        return code;
+    void *buf = NULL;
+    size_t n = 0;
+    int st = CLEF_OK;
+    if (rank == 0 && (st = clef_map_export(*out, &buf, &n)) != CLEF_OK) {
+        *agreed = 0;
+        return cli_fail(st);
+    }
+    par_bcast_bytes(&buf, &n);
+    if (rank != 0)
+        st = clef_map_import(out, buf, n);
+    free(buf);
+    if (st != CLEF_OK) {
+        *agreed = 0;
+        return cli_fail(st);
+    }
+    r->map_bytes += (double)n;
+    r->map_seconds += clef_wtime() - t0;
+    return 0;
+}
+
+/* The mask pieces (mask spectra, deprojection correction, M, covariance
+ * kernels, K, windows) are made or read from the cache once, by rank 0's
+ * first realisation, and sent to the other ranks as bytes
+ * (clef_ensemble_spectrum_export / _adopt).  Each rank meets this once. */
+typedef struct sims_share {
+    clef_ensemble_spectrum_ctx *ctx;
+    int done, adopted;
+    double bytes, seconds;
+    int jobs;  /* coupling matrices of rank 0's first realisation this rank made rows of */
+    long rows; /* ... and how many rows */
+} sims_share;
+
+/* What rank 0 announces while the others wait (a header of 3 ints): rows
+ * of a coupling matrix to make (W_l follows), or its mask pieces. */
+enum { SHARE_PIECES = 0, SHARE_COUPLING = 1 };
+
+/* This rank's rows of M (clef_coupling_row_split), gathered into rank 0's
+ * matrix; rank 0 then fills the lower triangle.  The rows are the same
+ * bits wherever they are made (coupling.h), so M is too. */
+static void coupling_part(sims_share *s, clef_coupling **c, int lmax, const double *wl,
+                          int wl_lmax)
+{
+    const int rank = par_rank(), size = par_size();
+    int *first = malloc(sizeof *first * (size_t)(size + 1));
+    if (!first) {
+        fprintf(stderr, "clef: error: rank %d: out of memory\n", rank);
+        par_abort(CLI_EXIT_NOMEM);
+        return;
+    }
+    clef_coupling_row_split(lmax, size, first);
+    const int st = clef_coupling_create_rows(c, lmax, wl, wl_lmax, first[rank], first[rank + 1]);
+    if (st != CLEF_OK)
+        par_abort(cli_fail(st)); /* the others wait in the gather */
+    par_gather_rows(clef_coupling_rows_data(*c), (size_t)lmax + 1, first);
+    s->jobs++;
+    s->rows += first[rank + 1] - first[rank];
+    free(first);
+}
+
+/* Rank 0's coupling maker in its first realisation (clef_spectrum_opts
+ * coupling_create): the other ranks, waiting for its mask pieces, make
+ * their share of the rows of M and the covariance kernel (a cold cache or
+ * --no-cache; lmax_ext^3 work, a few CPU-seconds each at nside 2048: the
+ * mask spectra and the deprojection correction, the larger part of a cold
+ * first realisation, stay rank 0's; docs/performance.md). */
+static int shared_coupling(void *arg, clef_coupling **out, int lmax, const double *wl,
+                           int wl_lmax)
+{
+    const size_t n = (size_t)lmax + 1;
+    if (n * n > (size_t)INT_MAX) /* beyond the int counts of the gather: alone */
+        return clef_coupling_create(out, lmax, wl, wl_lmax);
+    int h[3] = {SHARE_COUPLING, lmax, wl_lmax};
+    par_bcast_ints(h, 3);
+    void *b = (void *)wl;
+    size_t nb = ((size_t)wl_lmax + 1) * sizeof *wl;
+    par_bcast_bytes(&b, &nb);
+    coupling_part(arg, out, lmax, wl, wl_lmax);
+    clef_coupling_fill_lower(*out);
+    return CLEF_OK;
+}
+
+/* Rank 0, after its first realisation (or at the end, with nothing to send
+ * when it made none). */
+static void share_send(sims_share *s)
+{
+    const double t0 = clef_wtime();
+    void *buf = NULL;
+    size_t n = 0;
+    int h[3] = {SHARE_PIECES, 0, 0};
+    par_bcast_ints(h, 3);
+    if (s->ctx->state && clef_ensemble_spectrum_export(s->ctx, &buf, &n) != CLEF_OK) {
+        cli_warn("the mask pieces could not be packed for the other ranks (%s): each rank "
+                 "makes or reads them itself", clef_last_error());
+        buf = NULL;
+        n = 0;
+    }
+    par_bcast_bytes(&buf, &n);
+    free(buf);
+    s->bytes = (double)n;
+    s->seconds = clef_wtime() - t0;
+    s->done = 1;
+}
+
+/* Ranks other than 0: the analyser's after_maps in their first realisation
+ * (their own maps are transformed meanwhile), or at the end for a rank
+ * that had none.  The wait includes rank 0's first realisation. */
+static void share_receive(void *arg)
+{
+    sims_share *s = arg;
+    const double t0 = clef_wtime();
+    void *buf = NULL;
+    size_t n = 0;
+    for (;;) { /* rows of rank 0's couplings until its pieces come */
+        int h[3] = {SHARE_PIECES, 0, 0};
+        par_bcast_ints(h, 3);
+        if (h[0] != SHARE_COUPLING)
+            break;
+        par_bcast_bytes(&buf, &n);
+        clef_coupling *c = NULL;
+        if (h[1] < 0 || h[2] < 0 || n != ((size_t)h[2] + 1) * sizeof(double)) {
+            fprintf(stderr, "clef: error: rank %d: a coupling job from rank 0 that does not "
+                    "add up (lmax %d, W_l to %d, %zu bytes)\n", par_rank(), h[1], h[2], n);
+            par_abort(CLI_EXIT_NUMERIC);
+        }
+        coupling_part(s, &c, h[1], buf, h[2]);
+        clef_coupling_destroy(c);
+        free(buf);
+        buf = NULL;
+    }
+    par_bcast_bytes(&buf, &n);
+    if (n) {
+        if (clef_ensemble_spectrum_adopt(s->ctx, buf, n) == CLEF_OK)
+            s->adopted = 1;
+        else
+            cli_warn("rank %d: rank 0's mask pieces were not taken (%s): this rank makes or "
+                     "reads them itself", par_rank(), clef_last_error());
+    }
+    free(buf);
+    s->bytes = (double)n;
+    s->seconds = clef_wtime() - t0;
+    s->done = 1;
+    if (cli_verbosity >= 2)
+        fprintf(stderr, "clef sims: rank %d: %.1f MB of mask pieces from rank 0 after %.2f s\n",
+                par_rank(), 1e-6 * (double)n, s->seconds);
 }
 
 static void progress(const sims_run *r, long done_here, double t0, int last)
@@ -548,6 +708,14 @@ int cmd_sims(int argc, char **argv)
      * thread (clef's own OpenMP loops keep theirs) makes every realisation
      * bit-identical whatever OMP_NUM_THREADS is (docs/ensemble.md). */
     openblas_set_num_threads(1);
+    /* A fixed mmap threshold: glibc raises it (up to 32 MiB) each time a
+     * large block is freed, after which map-sized blocks (25 MB at nside
+     * 512) come from the heap and stay with the process when freed.  Over
+     * an ensemble's realisations that kept 25 MB at nside 512 above the
+     * heap's own peak (heaptrack against /usr/bin/time; docs/
+     * performance.md).  Above 32 MiB (nside >= 1024) glibc maps the blocks
+     * anyway. */
+    mallopt(M_MMAP_THRESHOLD, 4 << 20);
     const int rank = par_rank(), size = par_size();
     if (rank != 0 && cli_verbosity == 1)
         cli_verbosity = 0; /* warnings and progress once, from rank 0 */
@@ -587,23 +755,25 @@ int cmd_sims(int argc, char **argv)
         goto out;
     }
 
-    /* Masks and tables, once per rank. */
+    /* Masks: read by rank 0, sent to the others; tables once per rank. */
     for (int k = 0; k < 2; k++)
-        if (a.an.mask[k] && (status = cli_analysis_read_map(&a.an, a.an.mask[k], 1, &masks[k])))
+        if (a.an.mask[k] && (rc = shared_map(&r, a.an.mask[k], 1, &masks[k], &agreed)))
             goto out;
     r.nside = a.maps ? 0 : a.nside;
-    if (a.maps) {
-        clef_map *m0 = NULL;
-        status = cli_analysis_read_map(&a.an, a.list[0][0], 0, &m0);
-        if (status < 0) {
-            rc = -status;
-            status = CLEF_OK;
+    if (a.maps) { /* the nside of the given maps: rank 0 reads the first */
+        int code = 0, ns = 0;
+        if (rank == 0) {
+            clef_map *m0 = NULL;
+            const int st = cli_analysis_read_map(&a.an, a.list[0][0], 0, &m0);
+            code = st < 0 ? -st : st ? cli_fail(st) : 0;
+            ns = m0 ? (int)m0->nside : 0;
+            clef_map_free(m0);
+        }
+        if ((rc = par_bcast_int(code)) != CLI_EXIT_OK) {
+            agreed = 1;
             goto out;
         }
-        if (status)
-            goto out;
-        r.nside = m0->nside;
-        clef_map_free(m0);
+        r.nside = par_bcast_int(ns);
     }
     if ((status = cli_analysis_setup(&a.an, r.nside, &r.so, &tables)) != CLEF_OK)
         goto out;
@@ -637,7 +807,7 @@ int cmd_sims(int argc, char **argv)
         sim.sim.noise_depth = a.depth;
         sim.sim.nsplits = a.splits;
         if (a.hits) {
-            if ((status = cli_analysis_read_map(&a.an, a.hits, 1, &hits)) != CLEF_OK)
+            if ((rc = shared_map(&r, a.hits, 1, &hits, &agreed)) != CLI_EXIT_OK)
                 goto out;
             if (hits->nside != r.nside) {
                 status = CLEF_EINVAL;
@@ -675,12 +845,13 @@ int cmd_sims(int argc, char **argv)
                 r.nskipped, total, a.run, ntodo);
 
     /* Ranks take realisations in turn (position k of the to-do list goes
-     * to rank k mod size).  Rank 0's first realisation fills the coupling
-     * cache (and writes the windows) that the other ranks then read instead
-     * of computing the coupling again: they make and transform their first
-     * realisation meanwhile, and wait (one barrier, in the analyser's
-     * after_maps) only before what depends on the masks.  From then on
-     * each rank keeps the mask pieces in memory (clef_estimator_reuse). */
+     * to rank k mod size).  Rank 0's first realisation makes the mask
+     * pieces (or reads them from the cache) and writes the windows; it
+     * sends the pieces to the other ranks, which make and transform their
+     * first realisation meanwhile and receive them (in the analyser's
+     * after_maps) just before what depends on the masks: neither the
+     * coupling nor the cache is touched there.  From then on each rank
+     * keeps the pieces in memory (clef_estimator_reuse). */
     acct = malloc(sizeof *acct * (size_t)(SIMS_ACCT * (ntodo / size + 2)));
     if (!acct) {
         free(todo);
@@ -689,28 +860,30 @@ int cmd_sims(int argc, char **argv)
     }
     const double t_loop = clef_wtime();
     long done_here = 0;
-    /* synced: this rank passed the barrier after rank 0's first realisation
-     * (none without the cache: there is nothing to wait for). */
-    int synced = !r.so.use_cache;
+    sims_share share = {.ctx = &sctx, .done = size == 1};
     for (long k = rank; k < ntodo; k += size) {
         const long g = todo[k];
         const int kind = g >= a.nreal;
         const long i = kind ? g - a.nreal : g;
         double ts = 0, ta = 0;
-        if (!synced && rank != 0) {
-            sctx.after_maps = sims_wait_rank0;
-            sctx.after_maps_arg = &synced;
+        if (!share.done && rank != 0) {
+            sctx.after_maps = share_receive;
+            sctx.after_maps_arg = &share;
+        }
+        if (!share.done && rank == 0) { /* the others make rows of its couplings meanwhile */
+            r.so.coupling_create = shared_coupling;
+            r.so.coupling_arg = &share;
         }
         rc = sims_do_one(&r, plan, kind, i, &ts, &ta);
+        r.so.coupling_create = NULL;
+        r.so.coupling_arg = NULL;
         if (rc != CLI_EXIT_OK) {
             free(todo);
             par_abort(rc);
             goto out;
         }
-        if (!synced) { /* rank 0 after its first realisation (the others passed it) */
-            par_barrier();
-            synced = 1;
-        }
+        if (!share.done) /* rank 0 after its first realisation (the others received) */
+            share_send(&share);
         double *ac = acct + SIMS_ACCT * nacct++;
         ac[0] = (double)g;
         ac[1] = ts;
@@ -723,12 +896,28 @@ int cmd_sims(int argc, char **argv)
                     ta);
         progress(&r, done_here, t_loop, k + size >= ntodo);
     }
-    if (!synced) /* a rank without realisations */
-        par_barrier();
+    if (!share.done) { /* a rank without realisations */
+        if (rank == 0)
+            share_send(&share);
+        else
+            share_receive(&share);
+    }
     free(todo);
     r.t_loop = clef_wtime() - t_loop;
     double *all = NULL;
     int *counts = NULL;
+    /* What each rank made, read and received of the mask pieces. */
+    const double rstat[SIMS_RSTAT] = {
+        (double)sctx.couplings_computed, (double)sctx.couplings_read,
+        (double)sctx.mask_transforms, (double)sctx.pieces_reused, (double)sctx.pieces_adopted,
+        share.bytes, share.seconds, r.map_bytes, r.map_seconds, (double)share.jobs,
+        (double)share.rows};
+    if (par_gather(rstat, SIMS_RSTAT, &r.rstat_all, &counts)) {
+        status = CLEF_ENOMEM;
+        goto out;
+    }
+    free(counts);
+    counts = NULL;
     if (par_gather(acct, (int)(SIMS_ACCT * nacct), &all, &counts)) {
         status = CLEF_ENOMEM;
         goto out;
@@ -770,6 +959,7 @@ out:
     free(acct);
     free(r.acct_all);
     free(r.acct_counts);
+    free(r.rstat_all);
     if (a.list) {
         for (long i = 0; i < a.nreal; i++) {
             free(a.list[i][0]);

@@ -90,12 +90,39 @@ assert j["ranks"] == 2, j["ranks"]
 done = [r for d in j["ranks_detail"] for r in d["realisations"]]
 assert all(len(d["realisations"]) > 0 for d in j["ranks_detail"]), j["ranks_detail"]
 assert len(done) == len(set(done)) == j["realisations_done_now"]
+# rank 0 read the mask pieces (the cache is warm from the runs above) and
+# sent them; rank 1 took them from its bytes and read nothing from the cache
+r0, r1 = j["ranks_detail"]
+assert r0["couplings_from_cache"] >= 1 and r0["couplings_computed"] == 0, r0
+assert r1["couplings_from_cache"] == 0 and r1["couplings_computed"] == 0, r1
+assert r1["pieces_from_rank0"] >= 3 and r1["pieces_broadcast_bytes"] > 0, r1
+assert r1["maps_broadcast_bytes"] > 12 * 64 * 64 * 8, r1  # the mask, sent by rank 0
 PY
-    # without the cache: no barrier, each rank makes the coupling once; the
-    # windows still from rank 0 alone
-    OMP_NUM_THREADS=1 mpirun -np 2 --oversubscribe "$C" sims --run "$T/m2n" $SIMS --no-cache \
-        2> "$T/errn" || fail "mpirun -np 2 --no-cache: $(cat "$T/errn")"
+    # without the cache: rank 0 computes the coupling and the covariance
+    # kernel, its rows shared with rank 1 (which waits for them anyway);
+    # rank 1 computes neither itself (nor transforms the mask): it receives them,
+    # in pieces of 64 KiB (CLEF_PAR_CHUNK) so that the chunked broadcast is
+    # crossed too; the windows still from rank 0 alone
+    OMP_NUM_THREADS=1 mpirun -np 2 --oversubscribe -x CLEF_PAR_CHUNK=65536 "$C" sims \
+        --run "$T/m2n" $SIMS --no-cache 2> "$T/errn" \
+        || fail "mpirun -np 2 --no-cache: $(cat "$T/errn")"
     same "$T/r1" "$T/m2n" || fail "2 ranks without the cache differ from 1 rank"
+    "$P" - "$T/m2n/ensemble.json" <<'PY' || fail "accounting of 2 ranks without the cache"
+import json, sys
+r0, r1 = json.load(open(sys.argv[1]))["accounting"]["ranks_detail"]
+# one mask: its M and the kernel M[w^2, w^2] (docs/method.md section 10)
+assert r0["couplings_computed"] == 2 and r0["mask_transforms"] > 0, r0
+assert r1["couplings_computed"] == 0 and r1["couplings_from_cache"] == 0, r1
+assert r1["mask_transforms"] == 0 and r1["pieces_from_rank0"] >= 3, r1
+assert r1["pieces_broadcast_bytes"] > 65536, r1  # more than one piece
+# ... but it made its share of the rows of rank 0's two couplings
+assert r0["shared_couplings"] == 2 and r1["shared_couplings"] == 2, (r0, r1)
+assert r1["shared_coupling_rows"] > 0 and r0["shared_coupling_rows"] > 0, (r0, r1)
+PY
+    # three ranks, coupling rows in three uneven parts: the same bits
+    OMP_NUM_THREADS=1 mpirun -np 3 --oversubscribe "$C" sims --run "$T/m3n" $SIMS --no-cache \
+        2> "$T/err3" || fail "mpirun -np 3 --no-cache: $(cat "$T/err3")"
+    same "$T/r1" "$T/m3n" || fail "3 ranks without the cache differ from 1 rank"
     # SIGKILL to mpirun after a few realisations, then the same command again
     OMP_NUM_THREADS=1 mpirun -np 2 --oversubscribe "$C" sims --run "$T/k" $SIMS 2>/dev/null &
     pid=$!
