@@ -157,10 +157,11 @@ spec stale || fail "run in a folder with stale temporaries"
 echo "ok: stale temporaries"
 
 # 3. SIGTERM / SIGINT while a temporary exists (the gzip scratch of a large
-# map).  env --default-signal undoes the SIGINT-ignore of background jobs.
+# map: nside 1024, so the temporary lives long enough to be seen by 10-ms
+# polling on a fast, idle machine; at nside 512 it could come and go unseen).  env --default-signal undoes the SIGINT-ignore of background jobs.
 for sig in TERM INT; do
     d="sig-$sig"; mkdir "$d"
-    env --default-signal=INT,TERM "$CLEF_BIN" simulate --nside 512 --cl cl.txt --lmax 400 --no-pixel-window \
+    env --default-signal=INT,TERM "$CLEF_BIN" simulate --nside 1024 --cl cl.txt --lmax 400 --no-pixel-window \
         --output "$d/big.fits.gz" --quiet 2>"$d.err" & pid=$!
     n=0
     while [ "$(temps "$d")" -eq 0 ] && [ "$n" -lt 6000 ] && kill -0 "$pid" 2>/dev/null; do
