@@ -48,14 +48,18 @@ void KNAME(pixwin_pairs)(const double *restrict x, size_t np, int lmax,
         vd *a = (vd *)acc;
         for (int l = 2; l <= lmax; l++) {
             const double al = ca[l], bl = cb[l];
-            vd s = (vd){0};
+            vd q[NV];
             for (int v = 0; v < NV; v++) {
-                const vd p = al * xv[v] * p1[v] - bl * p0[v];
+                q[v] = al * xv[v] * p1[v] - bl * p0[v];
                 p0[v] = p1[v];
-                p1[v] = p;
-                s += p;
+                p1[v] = q[v];
             }
-            a[l] += s;
+            /* A tree sum: a chain of NV dependent adds per l would be the
+             * critical path (NV x the add latency). */
+            for (int w = NV / 2; w >= 1; w /= 2)
+                for (int v = 0; v < w; v++)
+                    q[v] += q[v + w];
+            a[l] += q[0];
         }
     }
     for (int l = 2; l <= lmax; l++) {
