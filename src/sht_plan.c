@@ -264,6 +264,8 @@ void clef_sht_destroy(clef_sht *p)
     free(p->pair_sth);
     free(p->phase);
     free(p->delta);
+    if (p->state)
+        clef_sht_mcache_free(p->state->mc, p->mmax);
     free(p->state);
     free(p);
 }
