@@ -6,6 +6,8 @@
  * empty cache folder and then on a second run (ring weights from the
  * cache file).  Writes bench/results-spectrum.json.
  * Usage: bench_spectrum [max_nside]   (default 2048; 1024 skips 2048)
+ *        bench_spectrum --only NSIDE   (that nside alone, no plan timing:
+ *                                       a shorter run on a loaded machine)
  *        bench_spectrum --plan-time NSIDE   (one plan, prints seconds) */
 #define _GNU_SOURCE
 #include <complex.h>
@@ -213,7 +215,25 @@ int main(int argc, char **argv)
         return 1;
     }
     setenv("CLEF_CACHE_DIR", dir, 1);
-    const int big = argc > 1 ? atoi(argv[1]) : 2048;
+    const int only = argc > 2 && !strcmp(argv[1], "--only");
+    const int big = only ? atoi(argv[2]) : argc > 1 ? atoi(argv[1]) : 2048;
+    if (only) {
+        cJSON *root = cJSON_CreateObject();
+        cJSON_AddItemToObject(root, "machine", bench_machine_json());
+        cJSON_AddNumberToObject(root, "threads", omp_get_max_threads());
+        cJSON *b = run_nside(big, 1);
+        const double rss = bench_peak_rss_mib();
+        printf("nside %d end to end: peak memory %.0f MiB\n", big, rss);
+        cJSON_AddNumberToObject(b, "peak_rss_mib", rss);
+        cJSON_AddItemToObject(root, "nside_only", b);
+        const int rc = bench_json_write("spectrum-only", root);
+        cJSON_Delete(root);
+        char cmd[256];
+        snprintf(cmd, sizeof cmd, "rm -rf %s", dir);
+        if (system(cmd) != 0)
+            fprintf(stderr, "bench_spectrum: could not remove %s\n", dir);
+        return rc;
+    }
     /* Plan creation at nside 2048 (issue 17: <= 0.5 s on a second run). */
     const double pt1 = plan_time_fresh(argv[0], 2048), pt2 = plan_time_fresh(argv[0], 2048);
     printf("plan creation at nside 2048, fresh process: %.3f s with an empty cache, %.3f s on a "

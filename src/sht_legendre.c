@@ -73,8 +73,6 @@ void clef_sht_mtab_fill(clef_sht_mtab *t, int m, int lmax)
     long double s2 = 1.0L;
     t->sigma[m] = 1.0;
     t->nrescale = 0;
-    if (m + 1 <= lmax)
-        t->c[m + 1] = 0.0;
     for (int l = m + 1; l <= lmax; l++) {
         const long double ll = l;
         s2 *= (4.0L * ll * ll - 1.0L) / ((ll - m) * (ll + m));
@@ -83,11 +81,22 @@ void clef_sht_mtab_fill(clef_sht_mtab *t, int m, int lmax)
             t->rescale[t->nrescale++] = l;
         }
         t->sigma[l] = sqrt((double)s2);
-        if (l >= m + 2) {
-            /* Exact integers below 2^53 for l <= 3 * 8192: one rounding. */
-            const double lm1 = l - 1;
-            t->c[l] = (lm1 * lm1 - (double)m * m) / (4.0 * lm1 * lm1 - 1.0);
-        }
+    }
+    clef_sht_mtab_fill_c(t, m, lmax);
+}
+
+/* c[l] alone, a loop without dependences (vectorised); the same values as
+ * before sigma and c were split. */
+void clef_sht_mtab_fill_c(clef_sht_mtab *t, int m, int lmax)
+{
+    if (m + 1 <= lmax)
+        t->c[m + 1] = 0.0;
+    double *restrict c = t->c;
+    const double m2 = (double)m * m;
+    for (int l = m + 2; l <= lmax; l++) {
+        /* Exact integers below 2^53 for l <= 3 * 8192: one rounding. */
+        const double lm1 = l - 1;
+        c[l] = (lm1 * lm1 - m2) / (4.0 * lm1 * lm1 - 1.0);
     }
 }
 

@@ -14,8 +14,14 @@
 /* Budget for the Fourier-coefficient array of one chunk of ring pairs:
  * large enough that each m sees many blocks (parallel and cache
  * efficiency), small enough to keep the plan's memory a fraction of the
- * maps' (PERFORMANCE.md section 2 item 8). */
-#define PHASE_BYTES_MAX ((size_t)96 << 20)
+ * maps' (PERFORMANCE.md section 2 item 8): 96 MiB, or a quarter of the
+ * a_lm of all maps when that is more.  Every (m, chunk) pays a fixed cost
+ * of order lmax - m (the recurrence table clef_sht_mtab_fill in long
+ * double, zeroing and summing the accumulators), against the kernel's
+ * blocks x (lmax - m); with the fixed 96 MiB a chunk held 7 blocks of 32
+ * ring pairs at nside 4096, lmax 12287 (3 blocks for two maps: 86 chunks)
+ * and that cost was about a third of the transform. */
+#define PHASE_BYTES_MIN ((size_t)96 << 20)
 
 static int nside_ok(int64_t nside)
 {
@@ -194,7 +200,10 @@ int clef_sht_create_impl(clef_sht **out, int64_t nside, int lmax, const clef_sht
 
     /* Chunk of ring-pair blocks whose phase array fits the budget. */
     const size_t per_block = (size_t)(mmax + 1) * CLEF_SHT_BLOCKDBL * sizeof(double) * (size_t)nmaps;
-    size_t cb = PHASE_BYTES_MAX / per_block;
+    size_t budget = clef_alm_size(lmax, mmax) * sizeof(double complex) * (size_t)nmaps / 4;
+    if (budget < PHASE_BYTES_MIN)
+        budget = PHASE_BYTES_MIN;
+    size_t cb = budget / per_block;
     if (cb < 1)
         cb = 1;
     if (cb > (size_t)p->nblocks)
@@ -255,6 +264,8 @@ void clef_sht_destroy(clef_sht *p)
     free(p->pair_sth);
     free(p->phase);
     free(p->delta);
+    if (p->state)
+        clef_sht_mcache_free(p->state->mc, p->mmax);
     free(p->state);
     free(p);
 }
