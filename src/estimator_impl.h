@@ -123,6 +123,8 @@ int clef_est_limits(const clef_spectrum_opts *o, int64_t nside, int *l_tab, int 
 int clef_est_signal_filter(const clef_spectrum_opts *o, int64_t nside, int lmax, double *tl);
 
 void clef_est_stage_done(clef_estimator *e, const char *name);
+/* A stage of the given length (one measured in pieces); the next starts now. */
+void clef_est_stage_add(clef_estimator *e, const char *name, double seconds);
 const char *clef_est_map_name(const est_field *f, int split);
 
 /* estimator_prepare.c */
