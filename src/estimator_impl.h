@@ -72,7 +72,7 @@ typedef struct est_pair {
     int nb_all;
     const clef_coupling_binned *kb;  /* K over all_bins */
     double *band;              /* decoupled band powers of all_bins */
-    double *cov_all;           /* the pair's own covariance block over all_bins */
+    double *cov_all;           /* the pair's own covariance block over the reported bins (nb x nb) */
     clef_spectrum_result res;
 } est_pair;
 
