@@ -6,6 +6,7 @@
  * BENCH_FIELDS_NSIDE overrides the nside (a quick check).  Writes
  * bench/results-fields.json. */
 #define _GNU_SOURCE
+#include <time.h>
 #include <complex.h>
 #include <math.h>
 #include <omp.h>
@@ -20,6 +21,18 @@
 #include "clef/sim.h"
 #include "clef/theory.h"
 #include "common.h"
+
+/* CPU seconds of the process (all threads): on a shared machine the wall
+ * time carries the other jobs' load, the CPU time of a 1-thread run does
+ * not. */
+static double cpu_s(void)
+{
+    struct timespec t;
+    clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &t);
+    return (double)t.tv_sec + 1e-9 * (double)t.tv_nsec;
+}
+
+static double last_cpu; /* CPU seconds of the last run() */
 
 static void die(const char *what)
 {
@@ -107,7 +120,7 @@ static double run(int n, clef_map **maps, const sky *k, clef_map *const masks[2]
     o.find_peak = 0;
     loader ld[12];
     clef_estimator *e = NULL;
-    const double t0 = bench_wtime();
+    const double t0 = bench_wtime(), c0 = cpu_s();
     if (clef_estimator_create(&e, &o, joint) != CLEF_OK)
         die("create");
     for (int i = 0; i < n; i++) {
@@ -129,6 +142,7 @@ static double run(int n, clef_map **maps, const sky *k, clef_map *const masks[2]
     if (clef_estimator_compute(e) != CLEF_OK)
         die("compute");
     const double t = bench_wtime() - t0;
+    last_cpu = cpu_s() - c0;
     *npairs = clef_estimator_npairs(e);
     clef_estimator_transforms(e, nsht, NULL);
     const clef_spectrum_result *r = clef_estimator_result(e, 0);
@@ -161,14 +175,15 @@ int main(void)
     if (clef_sht_create(&sht, nside, lmax, NULL) != CLEF_OK)
         die("plan");
     double complex *alm = malloc(clef_alm_size(lmax, lmax) * sizeof *alm);
-    double best = 1e30;
+    double best = 1e30, best_cpu = 1e30;
     for (int r = 0; r < 3; r++) {
         const double *in[1] = {maps[0]->pix};
         double complex *out[1] = {alm};
-        const double t0 = bench_wtime();
+        const double t0 = bench_wtime(), c0 = cpu_s();
         if (clef_sht_analysis(sht, 1, in, out, CLEF_SPECTRUM_ITERATIONS) != CLEF_OK)
             die("analysis");
         best = fmin(best, bench_wtime() - t0);
+        best_cpu = fmin(best_cpu, cpu_s() - c0);
     }
     clef_sht_destroy(sht);
     free(alm);
@@ -185,10 +200,16 @@ int main(void)
     base[0] = bench_rss_mib();
     bench_rss_reset();
     const double t_cached = run(6, maps, &k, masks, 0, &np, &ns, st, dl_mem);
+    const double c_cached = last_cpu;
     peak[0] = bench_hwm_mib();
     /* With the joint covariance (231 blocks instead of 21). */
     cJSON *st_j = cJSON_CreateObject();
     const double t_joint = run(6, maps, &k, masks, 1, &np, &ns, st_j, NULL);
+    const double c_joint = last_cpu;
+    /* BENCH_FIELDS_SPEED_ONLY=1: the speed rows alone (no on-demand and
+     * 12-map runs). */
+    const char *so = getenv("BENCH_FIELDS_SPEED_ONLY");
+    const int speed_only = so && *so == '1';
     /* The same run with each map made when the estimator asks for it, the
      * caller's 6 maps freed first. */
     for (int i = 0; i < 6; i++) {
@@ -197,14 +218,15 @@ int main(void)
     }
     base[1] = bench_rss_mib();
     bench_rss_reset();
-    const double t_od = run(6, NULL, &k, masks, 0, &np, &ns, st_od, dl_od);
+    const double t_od =
+        speed_only ? 0 : run(6, NULL, &k, masks, 0, &np, &ns, st_od, dl_od);
     peak[1] = bench_hwm_mib();
-    const int same = !memcmp(dl_mem, dl_od, 4096 * 21 * sizeof *dl_mem);
+    const int same = speed_only || !memcmp(dl_mem, dl_od, 4096 * 21 * sizeof *dl_mem);
     free(dl_mem);
     free(dl_od);
     base[2] = bench_rss_mib();
     bench_rss_reset();
-    const double t12 = run(12, NULL, &k, masks, 0, &np12, &ns12, NULL, NULL);
+    const double t12 = speed_only ? 0 : run(12, NULL, &k, masks, 0, &np12, &ns12, NULL, NULL);
     peak[2] = bench_hwm_mib();
 
     const double map_mib = 12.0 * nside * nside * 9 / 1048576.0;
@@ -216,6 +238,11 @@ int main(void)
     cJSON_AddNumberToObject(j, "six_maps_first_run_s", t_first);
     cJSON_AddNumberToObject(j, "six_maps_cached_s", t_cached);
     cJSON_AddItemToObject(j, "six_maps_cached_stages_s", st);
+    cJSON_AddNumberToObject(j, "analysis_best_cpu_s", best_cpu);
+    cJSON_AddNumberToObject(j, "six_maps_cached_cpu_s", c_cached);
+    cJSON_AddNumberToObject(j, "six_maps_joint_cpu_s", c_joint);
+    cJSON_AddNumberToObject(j, "ratio_cached_to_analysis_cpu", c_cached / best_cpu);
+    cJSON_AddNumberToObject(j, "ratio_joint_to_analysis_cpu", c_joint / best_cpu);
     cJSON_AddNumberToObject(j, "six_maps_joint_s", t_joint);
     cJSON_AddItemToObject(j, "six_maps_joint_stages_s", st_j);
     cJSON_AddNumberToObject(j, "ratio_joint_to_analysis", t_joint / best);
@@ -246,6 +273,9 @@ int main(void)
            "demand %.3f s\n",
            (long long)nside, best, np, t_cached, t_cached / best, t_first, t_od, t_od / best,
            same ? "same" : "DIFFERENT", t_joint, t_joint / best, t12);
+    printf("CPU seconds: one analysis %.3f; 6 maps cached %.3f = %.2f analyses; with the joint "
+           "covariance %.3f = %.2f analyses\n",
+           best_cpu, c_cached, c_cached / best_cpu, c_joint, c_joint / best_cpu);
     printf("peak RSS of a run (process before it): 6 maps held by the caller %.0f MiB (%.0f), "
            "6 on demand %.0f (%.0f), 12 on demand %.0f (%.0f); one map %.0f MiB (pixels + "
            "flags), one a_lm %.0f MiB\n",
