@@ -155,6 +155,42 @@ double bench_peak_rss_mib(void)
     return (double)ru.ru_maxrss / 1024.0; /* Linux: KiB */
 }
 
+static double status_mib(const char *key)
+{
+    FILE *f = fopen("/proc/self/status", "r");
+    if (!f)
+        return -1;
+    char line[256];
+    double v = -1;
+    const size_t n = strlen(key);
+    while (fgets(line, sizeof line, f))
+        if (!strncmp(line, key, n)) {
+            v = atof(line + n) / 1024.0; /* kB */
+            break;
+        }
+    fclose(f);
+    return v;
+}
+
+double bench_rss_mib(void)
+{
+    return status_mib("VmRSS:");
+}
+
+double bench_hwm_mib(void)
+{
+    return status_mib("VmHWM:");
+}
+
+void bench_rss_reset(void)
+{
+    FILE *f = fopen("/proc/self/clear_refs", "w");
+    if (f) {
+        fputs("5", f);
+        fclose(f);
+    }
+}
+
 static int cmp_double(const void *a, const void *b)
 {
     const double x = *(const double *)a, y = *(const double *)b;

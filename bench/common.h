@@ -45,6 +45,12 @@ const char *bench_blas_core(void);
 
 /* Peak resident set size of this process so far, MiB (getrusage). */
 double bench_peak_rss_mib(void);
+/* Linux: the resident set now (VmRSS) and its high-water mark since the
+ * last bench_rss_reset (VmHWM; reset by writing 5 to /proc/self/clear_refs),
+ * MiB; -1 where /proc does not tell. */
+double bench_rss_mib(void);
+double bench_hwm_mib(void);
+void bench_rss_reset(void);
 
 /* Best (minimum) and median of n values (n >= 1); the array is sorted. */
 void bench_stats(double *v, int n, double *best, double *median);

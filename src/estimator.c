@@ -30,16 +30,20 @@ void clef_field_init(clef_field *f)
     f->nsplits = 1;
 }
 
-void clef_est_stage_done(clef_estimator *e, const char *name)
+void clef_est_stage_add(clef_estimator *e, const char *name, double seconds)
 {
-    double t = clef_wtime();
     if (e->nstages < CLEF_SPECTRUM_MAX_STAGES) {
         snprintf(e->stage[e->nstages].name, sizeof e->stage[0].name, "%s", name);
-        e->stage[e->nstages].seconds = t - e->t0;
+        e->stage[e->nstages].seconds = seconds;
         e->nstages++;
     }
-    clef_log(CLEF_LOG_INFO, "stage %-10s %8.3f s", name, t - e->t0);
-    e->t0 = t;
+    clef_log(CLEF_LOG_INFO, "stage %-10s %8.3f s", name, seconds);
+    e->t0 = clef_wtime();
+}
+
+void clef_est_stage_done(clef_estimator *e, const char *name)
+{
+    clef_est_stage_add(e, name, clef_wtime() - e->t0);
 }
 
 const char *clef_est_map_name(const est_field *f, int split)
@@ -165,9 +169,13 @@ int clef_estimator_add_field(clef_estimator *e, const clef_field *f)
     if (f->nsplits < 1 || f->nsplits > CLEF_FIELD_MAX_SPLITS)
         CLEF_FAIL(CLEF_EINVAL, "field '%s': %d maps, expected 1 to %d", f->name, f->nsplits,
                   CLEF_FIELD_MAX_SPLITS);
-    for (int s = 0; s < f->nsplits; s++)
-        if (!f->maps[s])
+    for (int s = 0; s < f->nsplits; s++) {
+        if (!f->maps[s] && !f->load_map)
             CLEF_FAIL(CLEF_EINVAL, "field '%s': map %d is missing", f->name, s + 1);
+        if (f->maps[s] && f->load_map)
+            CLEF_FAIL(CLEF_EINVAL, "field '%s': map %d is given and read on demand (maps[] "
+                      "must be NULL with load_map)", f->name, s + 1);
+    }
     if (!f->mask)
         CLEF_FAIL(CLEF_EINVAL, "field '%s' has no mask", f->name);
     if (f->spin != 0)
@@ -213,12 +221,48 @@ int clef_estimator_add_pair(clef_estimator *e, const char *a, const char *b)
     return push_pair(e, ia, ib);
 }
 
-/* All maps and masks on one grid, each map with its mask. */
+/* The values of a field's mask in [0, 1], before any map of it is read
+ * (clef_map_check_mask on a header of the mask's grid with no frame
+ * checks the values alone; the map itself is checked when it is read). */
+static int check_mask_values(const est_field *f, int allow_coord_mismatch)
+{
+    clef_map grid;
+    memset(&grid, 0, sizeof grid);
+    grid.nside = f->f.mask->nside;
+    grid.npix = f->f.mask->npix;
+    return clef_map_check_mask(&grid, clef_est_map_name(f, 0), f->f.mask,
+                               f->f.mask_name ? f->f.mask_name : "mask", allow_coord_mismatch);
+}
+
+/* The grid of the run: the first field's first map, or its mask when its
+ * maps are read on demand. */
+static const clef_map *grid_of(const clef_estimator *e)
+{
+    const est_field *f0 = &e->fields[0];
+    return f0->f.load_map ? f0->f.mask : f0->f.maps[0];
+}
+
+/* All maps and masks on one grid, each map with its mask (a map read on
+ * demand is checked against its mask when it is read, estimator_prepare.c). */
 static int check_fields(const clef_estimator *e)
 {
-    const clef_map *m0 = e->fields[0].f.maps[0];
+    const clef_map *m0 = grid_of(e);
     for (int i = 0; i < e->nfields; i++) {
         const est_field *f = &e->fields[i];
+        if (f->f.load_map) {
+            const clef_map *k = f->f.mask;
+            if (k->nside != m0->nside)
+                CLEF_FAIL(CLEF_EINVAL,
+                          "field '%s': mask '%s' has nside %lld, field '%s' %s '%s' nside %lld",
+                          f->name, f->f.mask_name ? f->f.mask_name : "mask", (long long)k->nside,
+                          e->fields[0].name, m0 == e->fields[0].f.mask ? "mask" : "map",
+                          m0 == e->fields[0].f.mask
+                              ? (e->fields[0].f.mask_name ? e->fields[0].f.mask_name : "mask")
+                              : clef_est_map_name(&e->fields[0], 0),
+                          (long long)m0->nside);
+            CLEF_TRY(check_mask_values(f, e->o.allow_coord_mismatch));
+            continue;
+        }
         for (int s = 0; s < f->f.nsplits; s++) {
             const clef_map *m = f->f.maps[s];
             if (m->nside != m0->nside)
@@ -306,8 +350,8 @@ int clef_estimator_compute(clef_estimator *e)
             for (int b = a; b < e->nfields; b++)
                 CLEF_TRY(push_pair(e, a, b));
     CLEF_TRY(check_fields(e));
-    e->nside = e->fields[0].f.maps[0]->nside;
-    e->npix = e->fields[0].f.maps[0]->npix;
+    e->nside = grid_of(e)->nside;
+    e->npix = grid_of(e)->npix;
     e->t0 = clef_wtime();
     CLEF_TRY(stage_lmax(e));
     CLEF_TRY(clef_est_prepare(e));

@@ -78,7 +78,7 @@ typedef struct est_pair {
     int nb_all;
     const clef_coupling_binned *kb;  /* K over all_bins */
     double *band;              /* decoupled band powers of all_bins */
-    double *cov_all;           /* the pair's own covariance block over all_bins */
+    double *cov_all;           /* the pair's own covariance block over the reported bins (nb x nb) */
     clef_spectrum_result res;
 } est_pair;
 
@@ -136,6 +136,8 @@ int clef_est_limits(const clef_spectrum_opts *o, int64_t nside, int *l_tab, int 
 int clef_est_signal_filter(const clef_spectrum_opts *o, int64_t nside, int lmax, double *tl);
 
 void clef_est_stage_done(clef_estimator *e, const char *name);
+/* A stage of the given length (one measured in pieces); the next starts now. */
+void clef_est_stage_add(clef_estimator *e, const char *name, double seconds);
 const char *clef_est_map_name(const est_field *f, int split);
 
 /* estimator_prepare.c */

@@ -1,10 +1,12 @@
 /* Stage "prepare" of the estimator: effective weights of each field (mask
  * x validity of every split map), their moments, the monopole and dipole
  * of each map fitted on the observed sky and removed, and one analysis
- * per split map to lmax_ext.  One weighted-map buffer serves every map in
- * turn, so the run holds the a_lm of all maps but only one map at a time
- * besides the caller's.  Weights equal to an earlier field's are shared
- * (a mask pair is then computed once). */
+ * per split map to lmax_ext.  Field by field: its weights, then each of
+ * its maps weighted into one buffer and analysed.  Maps read on demand
+ * (clef_field.load_map) are held one at a time and handed back before the
+ * transform, so the run holds the a_lm of all maps, the weights, one
+ * weighted-map buffer and at most one map read.  Weights equal to an
+ * earlier field's are shared (a mask pair is then computed once). */
 #define _DEFAULT_SOURCE
 #include <complex.h>
 #include <stdlib.h>
@@ -19,17 +21,72 @@ static const char *mask_name(const est_field *f)
     return f->f.mask_name ? f->f.mask_name : "mask";
 }
 
+/* Split s of field f: its own map (*held NULL), or one read through its
+ * loader and checked against its mask (*held = the map, to hand back with
+ * put_map). */
+static int get_map(const clef_estimator *e, const est_field *f, int s, const clef_map **out,
+                   clef_map **held)
+{
+    *held = NULL;
+    *out = f->f.maps[s];
+    if (!f->f.load_map)
+        return CLEF_OK;
+    clef_map *m = NULL;
+    const int status = f->f.load_map(f->f.load_arg, s, &m);
+    if (status != CLEF_OK) /* the loader's message stands */
+        return status;
+    if (!m)
+        CLEF_FAIL(CLEF_EINVAL, "field '%s': the loader gave no map for '%s'", f->name,
+                  clef_est_map_name(f, s));
+    *held = m;
+    *out = m;
+    if (m->nside != e->nside)
+        CLEF_FAIL(CLEF_EINVAL, "field '%s': map '%s' has nside %lld, the run's maps nside %lld",
+                  f->name, clef_est_map_name(f, s), (long long)m->nside, (long long)e->nside);
+    return clef_map_check_mask(m, clef_est_map_name(f, s), f->f.mask,
+                               f->f.mask_name ? f->f.mask_name : "mask",
+                               e->o.allow_coord_mismatch);
+}
+
+static void put_map(const est_field *f, int s, clef_map *held)
+{
+    if (!held)
+        return;
+    if (f->f.release_map)
+        f->f.release_map(f->f.load_arg, s, held);
+    else
+        clef_map_free(held);
+}
+
 /* Effective weights of field f into w: the mask where every split map is
- * valid, 0 elsewhere. */
-static void field_weights(const est_field *f, int64_t npix, double *w)
+ * valid, 0 elsewhere.  Splits are visited last to first, so that split 0
+ * of a field read on demand is the one left in *held0 for its transform
+ * (a one-map field is then read once). */
+static int field_weights(const clef_estimator *e, const est_field *f, double *w,
+                         clef_map **held0)
 {
     const clef_map *mask = f->f.mask;
-    for (int64_t p = 0; p < npix; p++) {
-        int ok = mask->valid[p];
-        for (int s = 0; s < f->f.nsplits; s++)
-            ok &= f->f.maps[s]->valid[p] != 0;
-        w[p] = ok ? mask->pix[p] : 0.0;
+    const int64_t npix = e->npix;
+    *held0 = NULL;
+    for (int64_t p = 0; p < npix; p++)
+        w[p] = mask->valid[p] ? mask->pix[p] : 0.0;
+    for (int s = f->f.nsplits - 1; s >= 0; s--) {
+        const clef_map *m;
+        clef_map *held;
+        const int status = get_map(e, f, s, &m, &held);
+        if (status != CLEF_OK) {
+            put_map(f, s, held);
+            return status;
+        }
+        for (int64_t p = 0; p < npix; p++)
+            if (!m->valid[p])
+                w[p] = 0.0;
+        if (s == 0)
+            *held0 = held;
+        else
+            put_map(f, s, held);
     }
+    return CLEF_OK;
 }
 
 static int add_weights(clef_estimator *e, int fi, double *w)
@@ -74,9 +131,8 @@ static int add_weights(clef_estimator *e, int fi, double *w)
 }
 
 /* Map split s of field f in uK, multipoles removed, times the weights. */
-static int weighted_map(clef_estimator *e, est_field *f, int s, double *tmap)
+static int weighted_map(clef_estimator *e, est_field *f, int s, const clef_map *map, double *tmap)
 {
-    const clef_map *map = f->f.maps[s];
     est_weights *wt = &e->weights[f->wid];
     const int64_t npix = e->npix;
     /* Band powers are in uK^2: maps in K or mK (their TUNIT) are scaled. */
@@ -118,22 +174,13 @@ static int weighted_map(clef_estimator *e, est_field *f, int s, double *tmap)
 int clef_est_prepare(clef_estimator *e)
 {
     const int64_t npix = e->npix;
-    for (int i = 0; i < e->nfields; i++) {
-        double *w = clef_alloc_large((size_t)npix * sizeof *w);
-        if (!w)
-            CLEF_FAIL(CLEF_ENOMEM, "out of memory for %lld mask weights", (long long)npix);
-        field_weights(&e->fields[i], npix, w);
-        CLEF_TRY(add_weights(e, i, w));
-    }
-    /* The earlier estimator's weights are compared now and freed, before
-     * the weighted map and the transforms need memory (400 MB per set at
-     * nside 2048). */
-    CLEF_TRY(clef_est_reuse_weights(e));
-    clef_est_stage_done(e, "prepare");
+    double t = clef_wtime(), t_prep = t - e->t0, t_sht = 0;
     double *tmap = clef_alloc_large((size_t)npix * sizeof *tmap);
     if (!tmap)
         CLEF_FAIL(CLEF_ENOMEM, "out of memory for a weighted map");
-    int status = CLEF_OK, nmaps = 0, done = 0;
+    int status = CLEF_OK, nmaps = 0, done = 0, hs = 0;
+    const est_field *hf = NULL;
+    clef_map *held = NULL; /* a map read on demand, between its reading and its weighting */
     for (int i = 0; i < e->nfields; i++)
         nmaps += e->fields[i].f.nsplits;
     clef_sht *sht = NULL;
@@ -146,8 +193,37 @@ int clef_est_prepare(clef_estimator *e)
         CLEF_CHECK(clef_sht_create(&sht, e->nside, e->lmax_ext, &so));
     for (int i = 0; i < e->nfields; i++) {
         est_field *f = &e->fields[i];
+        const double t1 = clef_wtime();
+        t_sht += t1 - t;
+        double *w = clef_alloc_large((size_t)npix * sizeof *w);
+        if (!w) {
+            status = clef_fail(CLEF_ENOMEM, "out of memory for %lld mask weights",
+                               (long long)npix);
+            goto fail;
+        }
+        hf = f;
+        hs = 0;
+        if ((status = field_weights(e, f, w, &held)) != CLEF_OK) {
+            free(w);
+            goto fail;
+        }
+        CLEF_CHECK(add_weights(e, i, w)); /* owns w from here */
+        t = clef_wtime();
+        t_prep += t - t1;
         for (int s = 0; s < f->f.nsplits; s++) {
-            CLEF_CHECK(weighted_map(e, f, s, tmap));
+            const clef_map *m = held;
+            if (!held) {
+                const double t2 = clef_wtime();
+                hs = s;
+                CLEF_CHECK(get_map(e, f, s, &m, &held));
+                t = clef_wtime();
+                t_prep += t - t2;
+            }
+            status = weighted_map(e, f, s, m, tmap);
+            put_map(f, s, held); /* before the transform: one map read at a time */
+            held = NULL;
+            if (status != CLEF_OK)
+                goto fail;
             if (!(f->alm[s] = malloc(na * sizeof(double complex)))) {
                 status = clef_fail(CLEF_ENOMEM, "out of memory for a_lm (lmax %d)", e->lmax_ext);
                 goto fail;
@@ -159,8 +235,17 @@ int clef_est_prepare(clef_estimator *e)
             clef_progress("analysis", (double)++done / nmaps);
         }
     }
-    clef_est_stage_done(e, "transform");
+    t_sht += clef_wtime() - t;
+    /* The weights and reads, then the weighting and transforms, as two
+     * stages (they alternate field by field). */
+    clef_est_stage_add(e, "prepare", t_prep);
+    clef_est_stage_add(e, "transform", t_sht);
+    /* An earlier estimator's weights are compared now, once every field's
+     * weights and their multipole fits (nf) are settled, and freed. */
+    status = clef_est_reuse_weights(e);
 fail:
+    if (hf)
+        put_map(hf, hs, held);
     if (e->keep && status == CLEF_OK)
         e->sht = sht; /* for the next estimator of a series (clef_estimator_reuse) */
     else

@@ -99,7 +99,6 @@ int clef_est_tables(clef_estimator *e)
     const int nb = e->nb;
     for (int k = 0; k < e->npairs; k++) {
         est_pair *p = &e->pairs[k];
-        const int na = p->nb_all;
         CLEF_TRY(clef_bandpowers_alloc(&p->res.bp, nb, 1));
         double *crep = malloc((size_t)nb * nb * sizeof *crep);
         double *band = malloc((size_t)nb * sizeof *band);
@@ -111,7 +110,7 @@ int clef_est_tables(clef_estimator *e)
         for (int i = 0; i < nb; i++) {
             band[i] = p->band[p->rep[i]];
             for (int j = 0; j < nb; j++)
-                crep[(size_t)i * nb + j] = p->cov_all[(size_t)p->rep[i] * na + p->rep[j]];
+                crep[(size_t)i * nb + j] = p->cov_all[(size_t)i * nb + j];
         }
         clef_spectrum_fill_table(p->res.bp, e->bins, band, crep);
         free(crep);

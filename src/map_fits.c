@@ -593,7 +593,8 @@ static void column_meta(reader *r, clef_map *m)
 /* Everything after opening: HDU and column selection, header checks, the
  * size checks that come before any large allocation, and the values.  The
  * caller opens and closes r->f. */
-static int read_opened(reader *r, const clef_map_read_opts *opts, clef_map **out)
+static int read_opened(reader *r, const clef_map_read_opts *opts, int header_only,
+                       clef_map **out)
 {
     clef_map *m = NULL;
     double *buf = NULL;
@@ -628,6 +629,13 @@ static int read_opened(reader *r, const clef_map_read_opts *opts, clef_map **out
      * file holds, or an NSIDE its table cannot fill, is refused before the
      * full-sky arrays (9 bytes per pixel, 7.2 GB at NSIDE 8192) exist. */
     CLEF_CHECK(check_sizes(r));
+    if (header_only) {
+        m->nside = r->nside;
+        m->npix = r->npix;
+        column_meta(r, m);
+        *out = m;
+        return CLEF_OK;
+    }
 
     /* The pixel arrays come from clef_map_alloc so clef_map_free owns them. */
     clef_map *px = NULL;
@@ -665,7 +673,8 @@ fail:
     return status;
 }
 
-int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *opts)
+static int read_file(clef_map **out, const char *path, const clef_map_read_opts *opts,
+                     int header_only)
 {
     if (!out)
         CLEF_FAIL(CLEF_EINVAL, "clef_map_read: out is NULL");
@@ -692,12 +701,16 @@ int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *op
         status = clef_fail(read_status_code(st), "cannot read '%s' as FITS: %s", path, text);
         goto fail;
     }
-    CLEF_CHECK(read_opened(&r, opts, &m));
+    CLEF_CHECK(read_opened(&r, opts, header_only, &m));
     fits_close_file(r.f, &st);
     r.f = NULL;
     if (st) {
         status = reader_fits_fail(&r, st, "cannot close the file");
         goto fail;
+    }
+    if (header_only) {
+        *out = m;
+        return CLEF_OK;
     }
     clef_log(CLEF_LOG_INFO, "read %s: nside %lld, %s, %lld of %lld pixels missing", r.where,
              (long long)m->nside, m->file_ordering == CLEF_NESTED ? "NESTED" : "RING",
@@ -713,6 +726,16 @@ fail:
     }
     clef_map_free(m);
     return status;
+}
+
+int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *opts)
+{
+    return read_file(out, path, opts, 0);
+}
+
+int clef_map_read_header(clef_map **out, const char *path, const clef_map_read_opts *opts)
+{
+    return read_file(out, path, opts, 1);
 }
 
 int clef_map_read_memory(clef_map **out, const void *data, size_t size, const char *name,
@@ -762,7 +785,7 @@ int clef_map_read_memory(clef_map **out, const void *data, size_t size, const ch
         CLEF_FAIL(CLEF_EFORMAT, "'%s' is truncated: its headers describe %lld bytes, but it "
                   "holds %zu", name, claimed, size);
     }
-    const int status = read_opened(&r, opts, out);
+    const int status = read_opened(&r, opts, 0, out);
     st = 0;
     fits_close_file(r.f, &st);
     fits_clear_errmsg();

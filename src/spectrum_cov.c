@@ -210,7 +210,7 @@ static int collect_terms(const clef_estimator *e, const est_pair *p, const est_p
  * the block of a single map's auto-spectrum with itself, where a theory
  * spectrum gives the total (signal plus the noise table). */
 static int estimate(clef_estimator *e, const est_pair *p, spec_id id, int theory_total,
-                    double *const *raw, double *c)
+                    double *const *raw, const double *w2tab, double *c)
 {
     const int lmax = e->lmax_ext, n = lmax + 1;
     const clef_spectrum_opts *o = &e->o;
@@ -234,16 +234,8 @@ static int estimate(clef_estimator *e, const est_pair *p, spec_id id, int theory
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for the covariance");
         CLEF_TRY(clef_est_pseudo(e, id.x, id.y, id.total, r[slot]));
     }
-    const double *wx = e->weights[fx->wid].w, *wy = e->weights[fy->wid].w;
-    double w2 = 0;
-    if (fx->wid == fy->wid) {
-        w2 = e->weights[fx->wid].w2;
-    } else {
-        for (int64_t q = 0; q < e->npix; q++)
-            w2 += wx[q] * wy[q];
-        w2 /= (double)e->npix;
-    }
-    smooth_estimate(p->all_bins, raw[slot], w2, lmax, id.x == id.y, c);
+    smooth_estimate(p->all_bins, raw[slot], w2tab[fx->wid * e->nweights + fy->wid], lmax,
+                    id.x == id.y, c);
     return CLEF_OK;
 }
 
@@ -266,17 +258,21 @@ static void term_vector(const term *t, const double *u, const double *v, int n, 
 
 /* G_ll' = sum_k s_kl s_kl' M^k_ll' / (2l'+1), M^k = k1 for terms of kind 1
  * (or when k2 is k1), else k2, for nt vectors s (nt x n); then the band
- * powers' block out = A_p G A_q^T (np x nq, A = K^-1 P of kp and kq),
- * symmetrised when kp is kq. */
+ * powers' block out = A_p G A_q^T (np x nq; A_p, A_q the rows of K^-1 P
+ * wanted, np x n and nq x n), symmetrised when sym (A_p is A_q).  g: an
+ * n x n workspace (reused between blocks: fresh pages cost as much as the
+ * sums), or NULL. */
 static int propagate(int n, int nt, const double *s, const int *kind, const clef_coupling *k1,
-                     const clef_coupling *k2, const clef_coupling_binned *kp, int np,
-                     const clef_coupling_binned *kq, int nq, double *out)
+                     const clef_coupling *k2, const double *ap, int np, const double *aq,
+                     int nq, int sym, double *g, double *out)
 {
     const int one = k1 == k2;
     int status = CLEF_OK;
+    double *own = NULL;
     double *inv = malloc((size_t)n * sizeof *inv);
-    double *g = clef_alloc_large((size_t)n * n * sizeof *g);
     double *x = malloc((size_t)np * n * sizeof *x);
+    if (!g)
+        g = own = clef_alloc_large((size_t)n * n * sizeof *g);
     if (!inv || !g || !x) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", n - 1);
         goto fail;
@@ -284,29 +280,47 @@ static int propagate(int n, int nt, const double *s, const int *kind, const clef
     for (int l = 0; l < n; l++)
         inv[l] = 1.0 / (2.0 * l + 1.0);
     const double *m1 = clef_coupling_matrix(k1), *m2 = clef_coupling_matrix(k2);
-#pragma omp parallel for schedule(static)
-    for (int l = 0; l < n; l++) {
-        const double *m1l = m1 + (size_t)l * n, *m2l = m2 + (size_t)l * n;
-        double *gl = g + (size_t)l * n;
-        for (int lp = 0; lp < n; lp++) {
-            double a1 = 0, a2 = 0;
+    int fail_mem = 0;
+#pragma omp parallel reduction(| : fail_mem)
+    {
+        /* Row l: the sums over the terms as vectors over l' (the same
+         * additions in the same order as term by term per element). */
+        double *a1 = malloc((size_t)2 * n * sizeof *a1), *a2 = a1 ? a1 + n : NULL;
+        if (!a1)
+            fail_mem = 1;
+#pragma omp for schedule(static)
+        for (int l = 0; l < n; l++) {
+            if (!a1)
+                continue;
+            const double *m1l = m1 + (size_t)l * n, *m2l = m2 + (size_t)l * n;
+            double *gl = g + (size_t)l * n;
+            for (int lp = 0; lp < n; lp++)
+                a1[lp] = a2[lp] = 0;
             for (int k = 0; k < nt; k++) {
                 const double *sk = s + (size_t)k * n;
-                const double z = sk[l] * sk[lp];
-                if (kind[k] == 1 || one)
-                    a1 += z;
-                else
-                    a2 += z;
+                const double skl = sk[l];
+                double *a = (kind[k] == 1 || one) ? a1 : a2;
+                for (int lp = 0; lp < n; lp++)
+                    a[lp] += skl * sk[lp];
             }
-            gl[lp] = one ? a1 * m1l[lp] * inv[lp] : (a1 * m1l[lp] + a2 * m2l[lp]) * inv[lp];
+            if (one)
+                for (int lp = 0; lp < n; lp++)
+                    gl[lp] = a1[lp] * m1l[lp] * inv[lp];
+            else
+                for (int lp = 0; lp < n; lp++)
+                    gl[lp] = (a1[lp] * m1l[lp] + a2[lp] * m2l[lp]) * inv[lp];
         }
+        free(a1);
     }
-    const double *ap = clef_coupling_binned_kinv_p(kp), *aq = clef_coupling_binned_kinv_p(kq);
+    if (fail_mem) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", n - 1);
+        goto fail;
+    }
     /* x = A_p G, out = x A_q^T. */
     cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, np, n, n, 1.0, ap, n, g, n, 0.0, x, n);
     cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasTrans, np, nq, n, 1.0, x, n, aq, n, 0.0, out,
                 nq);
-    if (kp == kq)
+    if (sym)
         for (int i = 0; i < np; i++)
             for (int j = i + 1; j < np; j++) {
                 double z = 0.5 * (out[(size_t)i * np + j] + out[(size_t)j * np + i]);
@@ -314,14 +328,27 @@ static int propagate(int n, int nt, const double *s, const int *kind, const clef
             }
 fail:
     free(inv);
-    free(g);
+    free(own);
     free(x);
     return status;
 }
 
-/* Covariance block of pairs p and q over their bins (nb_all_p x nb_all_q). */
+/* The rows of K^-1 P of pair p for its reported bins (nb x n): the only
+ * ones the tables and the joint covariance read. */
+static double *reported_rows(const clef_estimator *e, const est_pair *p)
+{
+    const int n = e->lmax_ext + 1;
+    const double *a = clef_coupling_binned_kinv_p(p->kb);
+    double *r = malloc((size_t)e->nb * n * sizeof *r);
+    if (r)
+        for (int i = 0; i < e->nb; i++)
+            memcpy(r + (size_t)i * n, a + (size_t)p->rep[i] * n, (size_t)n * sizeof *r);
+    return r;
+}
+
+/* Covariance block of pairs p and q over their reported bins (nb x nb). */
 static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double *const *raw,
-                 double *out)
+                 const double *w2, double *g, double *out)
 {
     const int lmax = e->lmax_ext, n = lmax + 1;
     term t[MAX_TERMS];
@@ -336,21 +363,25 @@ static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double
     int kind[MAX_TERMS];
     double *s = malloc((size_t)nt * n * sizeof *s), *u = malloc((size_t)n * sizeof *u);
     double *v = malloc((size_t)n * sizeof *v);
-    if (!s || !u || !v) {
+    double *ap = reported_rows(e, p), *aq = q == p ? ap : reported_rows(e, q);
+    if (!s || !u || !v || !ap || !aq) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", lmax);
         goto fail;
     }
     for (int k = 0; k < nt; k++) {
-        CLEF_CHECK(estimate(e, p, t[k].u, theory_total, raw, u));
-        CLEF_CHECK(estimate(e, p, t[k].v, theory_total, raw, v));
+        CLEF_CHECK(estimate(e, p, t[k].u, theory_total, raw, w2, u));
+        CLEF_CHECK(estimate(e, p, t[k].v, theory_total, raw, w2, v));
         term_vector(&t[k], u, v, n, s + (size_t)k * n);
         kind[k] = t[k].kind;
     }
-    status = propagate(n, nt, s, kind, k1, k2, p->kb, p->nb_all, q->kb, q->nb_all, out);
+    status = propagate(n, nt, s, kind, k1, k2, ap, e->nb, aq, e->nb, p->kb == q->kb, g, out);
 fail:
     free(s);
     free(u);
     free(v);
+    if (aq != ap)
+        free(aq);
+    free(ap);
     return status;
 }
 
@@ -384,7 +415,8 @@ int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
         s[n + l] = c[0][l];
     }
     static const int kind[2] = {1, 1};
-    status = propagate(n, 2, s, kind, in->m2, in->m2, in->kb, nb, in->kb, nb, cov);
+    const double *a = clef_coupling_binned_kinv_p(in->kb);
+    status = propagate(n, 2, s, kind, in->m2, in->m2, a, nb, a, nb, 1, NULL, cov);
 fail:
     free(s);
     for (int k = 0; k < 3; k++)
@@ -400,6 +432,28 @@ int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int 
     return clef_coupling_create(out, lmax, wl, wl_lmax);
 }
 
+/* mean(w_x w_y) of every pair of weights, nw x nw: the moment of each
+ * cross-spectrum's estimate (w2 of the weights themselves on the
+ * diagonal), once per run rather than once per term of every block. */
+static double *weight_moments(const clef_estimator *e)
+{
+    const int nw = e->nweights;
+    double *m = malloc((size_t)nw * nw * sizeof *m);
+    if (!m)
+        return NULL;
+    for (int x = 0; x < nw; x++) {
+        m[x * nw + x] = e->weights[x].w2;
+        for (int y = x + 1; y < nw; y++) {
+            const double *wx = e->weights[x].w, *wy = e->weights[y].w;
+            double w2 = 0;
+            for (int64_t q = 0; q < e->npix; q++)
+                w2 += wx[q] * wy[q];
+            m[x * nw + y] = m[y * nw + x] = w2 / (double)e->npix;
+        }
+    }
+    return m;
+}
+
 int clef_est_covariance(clef_estimator *e)
 {
     const clef_spectrum_opts *o = &e->o;
@@ -408,12 +462,13 @@ int clef_est_covariance(clef_estimator *e)
                   "the theory spectrum for the covariance stops at l = %d, below lmax = %d",
                   o->theory_lmax, e->lmax_ext);
     const int nb = e->nb, np = e->npairs, nraw = e->nfields * e->nfields * 2;
+    const size_t n = (size_t)e->lmax_ext + 1;
     int status = CLEF_OK;
     double **raw = calloc((size_t)nraw, sizeof *raw);
-    double *tmp = NULL;
+    double *tmp = NULL, *w2 = weight_moments(e), *g = clef_alloc_large(n * n * sizeof *g);
     e->ncov = np * nb;
     e->cov = calloc((size_t)e->ncov * e->ncov, sizeof *e->cov);
-    if (!raw || !e->cov) {
+    if (!raw || !e->cov || !w2 || !g) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
         goto fail;
     }
@@ -423,21 +478,21 @@ int clef_est_covariance(clef_estimator *e)
             est_pair *q = &e->pairs[b];
             double *out = NULL;
             if (b == a) {
-                if (!(out = p->cov_all = malloc((size_t)p->nb_all * p->nb_all * sizeof *out))) {
+                if (!(out = p->cov_all = malloc((size_t)nb * nb * sizeof *out))) {
                     status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
                     goto fail;
                 }
             } else {
-                free(tmp);
-                if (!(out = tmp = malloc((size_t)p->nb_all * q->nb_all * sizeof *out))) {
+                if (!tmp && !(tmp = malloc((size_t)nb * nb * sizeof *tmp))) {
                     status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
                     goto fail;
                 }
+                out = tmp;
             }
-            CLEF_CHECK(block(e, p, q, raw, out));
+            CLEF_CHECK(block(e, p, q, raw, w2, g, out));
             for (int i = 0; i < nb; i++)
                 for (int j = 0; j < nb; j++) {
-                    const double z = out[(size_t)p->rep[i] * q->nb_all + q->rep[j]];
+                    const double z = out[(size_t)i * nb + j];
                     e->cov[(size_t)(a * nb + i) * e->ncov + b * nb + j] = z;
                     e->cov[(size_t)(b * nb + j) * e->ncov + a * nb + i] = z;
                 }
@@ -449,6 +504,8 @@ fail:
             free(raw[k]);
     free(raw);
     free(tmp);
+    free(w2);
+    free(g);
     /* The kernels are done with: the memory of a few n x n matrices
      * (kept for the next estimator of a series, clef_estimator_reuse). */
     if (!e->keep) {

@@ -276,6 +276,143 @@ static void test_shared_mask_pairs(void **state)
     sky_free(&k);
 }
 
+/* Maps read on demand (clef_field.load_map): the loader hands out copies
+ * of the test's maps and counts how many it has out at once. */
+typedef struct loader_state {
+    const clef_map *const *src; /* src[field * NS + split] */
+    int live, max_live, loads, fail_at;
+} loader_state;
+
+typedef struct loader_arg {
+    loader_state *st;
+    int field;
+} loader_arg;
+
+static int test_load(void *arg, int split, clef_map **out)
+{
+    loader_arg *a = arg;
+    loader_state *st = a->st;
+    if (st->loads++ == st->fail_at) {
+        /* A failing reader: its own status and message (clef_map_read's). */
+        return clef_map_read(out, "/nonexistent/split.fits", NULL);
+    }
+    const int status = clef_map_copy(out, st->src[a->field * NS + split]);
+    if (status == CLEF_OK && ++st->live > st->max_live)
+        st->max_live = st->live;
+    return status;
+}
+
+static void test_release(void *arg, int split, clef_map *m)
+{
+    (void)split;
+    loader_arg *a = arg;
+    a->st->live--;
+    clef_map_free(m);
+}
+
+/* The same run with maps[] in memory and with every map read on demand
+ * gives the same bits (the same arithmetic in the same order); the
+ * estimator holds one map read at a time and reads a one-map field once,
+ * a field of k splits 2k - 1 times; each map is still transformed once. */
+static void test_maps_on_demand(void **state)
+{
+    (void)state;
+    sky k;
+    sky_init(&k, 32);
+    sky_draw(&k, 11, 20.0);
+    clef_spectrum_opts o;
+    base_opts(&o);
+    const clef_map *src[NF * NS];
+    for (int f = 0; f < NF; f++)
+        for (int sp = 0; sp < NS; sp++)
+            src[f * NS + sp] = k.maps[f][sp];
+    for (int nsplits = 1; nsplits <= NS; nsplits++) {
+        clef_field f[NF], g[NF];
+        one_map_fields(&k, f, nsplits);
+        loader_state st = {.src = src, .fail_at = -1};
+        loader_arg la[NF];
+        clef_estimator *e1 = NULL, *e2 = NULL;
+        assert_int_equal(clef_estimator_create(&e1, &o, 1), CLEF_OK);
+        assert_int_equal(clef_estimator_create(&e2, &o, 1), CLEF_OK);
+        for (int i = 0; i < NF; i++) {
+            g[i] = f[i];
+            for (int sp = 0; sp < NS; sp++)
+                g[i].maps[sp] = NULL;
+            la[i].st = &st;
+            la[i].field = i;
+            g[i].load_map = test_load;
+            g[i].release_map = test_release;
+            g[i].load_arg = &la[i];
+            assert_int_equal(clef_estimator_add_field(e1, &f[i]), CLEF_OK);
+            assert_int_equal(clef_estimator_add_field(e2, &g[i]), CLEF_OK);
+        }
+        compute_ok(e1);
+        compute_ok(e2);
+        assert_int_equal(st.max_live, 1);
+        assert_int_equal(st.live, 0);
+        assert_int_equal(st.loads, NF * (2 * nsplits - 1));
+        int nmap = 0;
+        clef_estimator_transforms(e2, &nmap, NULL);
+        assert_int_equal(nmap, NF * nsplits);
+        for (int kp = 0; kp < clef_estimator_npairs(e1); kp++) {
+            const clef_spectrum_result *r1 = clef_estimator_result(e1, kp);
+            const clef_spectrum_result *r2 = clef_estimator_result(e2, kp);
+            const int nb = r1->nbins;
+            assert_int_equal(r2->nbins, nb);
+            assert_memory_equal(r1->bp->dl, r2->bp->dl, nb * sizeof(double));
+            assert_memory_equal(r1->bp->cov, r2->bp->cov, (size_t)nb * nb * sizeof(double));
+            assert_memory_equal(r1->bp->win, r2->bp->win,
+                                (size_t)nb * (r1->lmax_ext + 1) * sizeof(double));
+        }
+        int n1 = 0, n2 = 0;
+        const double *c1 = clef_estimator_covariance(e1, &n1);
+        const double *c2 = clef_estimator_covariance(e2, &n2);
+        assert_int_equal(n1, n2);
+        assert_memory_equal(c1, c2, (size_t)n1 * n1 * sizeof(double));
+        clef_estimator_destroy(e1);
+        clef_estimator_destroy(e2);
+
+        /* A reader failing on the second field's map: its status and
+         * message, nothing left out. */
+        st.live = st.max_live = st.loads = 0;
+        st.fail_at = 2 * nsplits - 1;
+        assert_int_equal(clef_estimator_create(&e2, &o, 0), CLEF_OK);
+        for (int i = 0; i < NF; i++)
+            assert_int_equal(clef_estimator_add_field(e2, &g[i]), CLEF_OK);
+        assert_int_equal(clef_estimator_compute(e2), CLEF_EIO);
+        assert_non_null(strstr(clef_last_error(), "/nonexistent/split.fits"));
+        assert_int_equal(st.live, 0);
+        clef_estimator_destroy(e2);
+    }
+    /* maps[] and a loader at once are refused; a map read on demand on
+     * another grid than its mask is refused when it is read. */
+    clef_field h;
+    clef_field_init(&h);
+    h.name = "both";
+    h.maps[0] = k.maps[0][0];
+    h.mask = k.mask[0];
+    h.load_map = test_load;
+    clef_estimator *e = NULL;
+    assert_int_equal(clef_estimator_create(&e, &o, 0), CLEF_OK);
+    assert_int_equal(clef_estimator_add_field(e, &h), CLEF_EINVAL);
+    clef_map *small = NULL;
+    assert_int_equal(clef_map_alloc(&small, 16), CLEF_OK);
+    const clef_map *ssrc[NF * NS] = {small, small};
+    loader_state st = {.src = ssrc, .fail_at = -1};
+    loader_arg la = {&st, 0};
+    h.maps[0] = NULL;
+    h.name = "small";
+    h.load_arg = &la;
+    h.release_map = test_release;
+    assert_int_equal(clef_estimator_add_field(e, &h), CLEF_OK);
+    assert_int_equal(clef_estimator_compute(e), CLEF_EINVAL);
+    assert_non_null(strstr(clef_last_error(), "nside 16"));
+    assert_int_equal(st.live, 0);
+    clef_estimator_destroy(e);
+    clef_map_free(small);
+    sky_free(&k);
+}
+
 static void test_split_cross(void **state)
 {
     (void)state;
@@ -494,6 +631,7 @@ int main(void)
         cmocka_unit_test(test_bad_fields),
         cmocka_unit_test(test_equals_one_pair_runs),
         cmocka_unit_test(test_shared_mask_pairs),
+        cmocka_unit_test(test_maps_on_demand),
         cmocka_unit_test(test_split_cross),
         cmocka_unit_test(test_ensemble),
     };

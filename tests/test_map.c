@@ -212,6 +212,17 @@ static void test_roundtrip_ring(void **state)
             assert_int_equal(r->nmissing, nmiss);
             assert_int_equal(r->nbad, nmiss);
             clef_map_free(r);
+            /* The header alone: what clef_map_read gives, without values. */
+            assert_int_equal(clef_map_read_header(&r, path, NULL), CLEF_OK);
+            assert_int_equal(r->nside, nside);
+            assert_int_equal(r->npix, 12 * nside * nside);
+            assert_string_equal(r->coordsys, "G");
+            assert_string_equal(r->unit, "uK");
+            assert_string_equal(r->column, "TEMP");
+            assert_int_equal(r->hdu, 1);
+            assert_null(r->pix);
+            assert_null(r->valid);
+            clef_map_free(r);
             assert_true(no_temporaries());
         }
     }
@@ -559,10 +570,23 @@ static void write_bytes(const char *path, const void *data, size_t n)
     fclose(f);
 }
 
+/* clef_map_read_header refuses what the header or the file's size already
+ * condemns, with clef_map_read's status and message. */
+static void expect_header_fail(const char *in, int code, const char *needle)
+{
+    clef_map *m = (clef_map *)1;
+    const int st = clef_map_read_header(&m, in, NULL);
+    assert_null(m);
+    if (st != code || !strstr(clef_last_error(), needle))
+        fail_msg("header of %s: status %d (expected %d), message '%s' (expected '%s')", in, st,
+                 code, clef_last_error(), needle);
+}
+
 static void test_bad_files(void **state)
 {
     (void)state;
     expect_read_fail(test_path("does-not-exist.fits"), NULL, CLEF_EIO, "cannot open");
+    expect_header_fail(test_path("does-not-exist.fits"), CLEF_EIO, "cannot open");
     expect_read_fail(test_path(""), NULL, CLEF_EIO, "folder");
 
     char empty[1024];
@@ -575,6 +599,7 @@ static void test_bad_files(void **state)
     const char *words = "this is a plain text file, not FITS\n";
     write_bytes(text, words, strlen(words));
     expect_read_fail(text, NULL, CLEF_EFORMAT, "not a FITS file");
+    expect_header_fail(text, CLEF_EFORMAT, "not a FITS file");
 
     /* A valid map cut short: in the header, and in the data. */
     clef_map *m;
@@ -599,6 +624,7 @@ static void test_bad_files(void **state)
     expect_read_fail(trunc, NULL, CLEF_EFORMAT, trunc);
     write_bytes(trunc, bytes, n - 2 * 2880);
     expect_read_fail(trunc, NULL, CLEF_EFORMAT, "the file is truncated");
+    expect_header_fail(trunc, CLEF_EFORMAT, "the file is truncated");
 
     /* A truncated gzip stream. */
     assert_int_equal(run_cmd("gzip -c '%s' | head -c 3000 > '%s.gz'", good, trunc), 0);

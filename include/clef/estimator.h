@@ -22,6 +22,11 @@
  * distinct pair of weights and pair filter, and the coupling and mask
  * spectra go through the cache folder as for one pair.
  *
+ * Memory: the estimator keeps the a_lm of every map, the distinct weights
+ * and one weighted-map buffer; maps the caller holds stay the caller's,
+ * and fields whose maps are read on demand (clef_field.load_map) have one
+ * map read at a time (field.h).
+ *
  * The pair (a, a) of a field with k >= 2 splits is the mean of its
  * k (k - 1) / 2 split crosses; a pair (a, b) of two fields the mean of all
  * k_a k_b cross-split spectra.  Neither carries a noise bias.
@@ -51,8 +56,8 @@ int clef_estimator_create(clef_estimator **out, const clef_spectrum_opts *opts, 
 void clef_estimator_destroy(clef_estimator *e); /* NULL is a no-op */
 
 /* Errors: CLEF_EINVAL (no name, a duplicated name, nsplits outside
- * 1..CLEF_FIELD_MAX_SPLITS, a missing map or mask, spin other than 0,
- * too many fields). */
+ * 1..CLEF_FIELD_MAX_SPLITS, a missing map or mask, maps given together
+ * with a loader, spin other than 0, too many fields). */
 int clef_estimator_add_field(clef_estimator *e, const clef_field *f);
 /* Request the pair of the fields named a and b (a may equal b).  Errors:
  * CLEF_EINVAL (a name no field has, a pair requested twice). */

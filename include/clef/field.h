@@ -7,6 +7,18 @@
  * and borrows every pointer in it until clef_estimator_destroy.  The
  * effective weights of a field are mask x validity of every split map, so
  * all splits of a field share one mask and one set of observed pixels.
+ *
+ * Maps in memory or read on demand: either maps[] holds the split maps
+ * (borrowed), or maps[] is all NULL and load_map gives split s when the
+ * estimator needs it.  The estimator then holds one such map at a time and
+ * hands it back through release_map (NULL: clef_map_free) before it asks
+ * for the next, so a run of N fields keeps the a_lm of N maps, not N maps.
+ * A one-map field is read once; a field of k >= 2 splits 2k - 1 times (the
+ * validity of every split enters the weights before any split is
+ * weighted: splits 1..k-1 are read once for that and once for their
+ * transform).  Each call for a split must give the same map.  A loader
+ * that fails returns its status with the message set (clef_last_error);
+ * the estimator stops with that status.
  */
 #ifndef CLEF_FIELD_H
 #define CLEF_FIELD_H
@@ -21,6 +33,11 @@ extern "C" {
 #define CLEF_FIELD_MAX_SPLITS 8
 /* Longest field name, bytes including the terminating 0. */
 #define CLEF_FIELD_NAME_MAX 64
+
+/* Reads split `split` (0-based) of the field into *out (the callee's map,
+ * handed back through release_map); returns a status. */
+typedef int (*clef_field_load_fn)(void *arg, int split, clef_map **out);
+typedef void (*clef_field_release_fn)(void *arg, int split, clef_map *map);
 
 typedef struct clef_field {
     const char *name;          /* unique among the estimator's fields (pair and HDU names) */
@@ -39,6 +56,9 @@ typedef struct clef_field {
                                   no noise bias) */
     int noise_lmax;
     int spin;                  /* 0 (the only spin supported for now) */
+    clef_field_load_fn load_map;       /* maps read on demand (maps[] NULL); NULL = maps[] */
+    clef_field_release_fn release_map; /* NULL = clef_map_free */
+    void *load_arg;
 } clef_field;
 
 /* A field with no maps, no mask, no beam: fill name, nsplits, maps, mask. */

@@ -75,6 +75,15 @@ typedef struct clef_map_read_opts {
  * gzip-compressed files are read transparently. */
 int clef_map_read(clef_map **out, const char *path, const clef_map_read_opts *opts);
 
+/* The header of the map clef_map_read would read, without its values:
+ * nside, npix, file_ordering, coordsys, unit, column, hdu and polcconv set,
+ * pix and valid NULL, nmissing and nbad 0 (free it with clef_map_free).
+ * The same checks as clef_map_read short of the values (HDU and column,
+ * NSIDE, ORDERING, table size against NSIDE and against the file's
+ * length) and the same errors; for checking many inputs before any is
+ * read in full.  A gzip-compressed file is still decompressed. */
+int clef_map_read_header(clef_map **out, const char *path, const clef_map_read_opts *opts);
+
 /* A new map of the given nside, all pixels valid and zero, RING, no
  * coordinate system. */
 int clef_map_alloc(clef_map **out, int64_t nside);

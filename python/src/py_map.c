@@ -1,4 +1,4 @@
-/* clef.read_map, clef.write_map, clef.read_map_pol, clef.write_map_pol,
+/* clef.read_map, clef.read_map_header, clef.write_map, clef.read_map_pol, clef.write_map_pol,
  * clef.map_stats, clef.unit_to_uk over include/clef/map.h. */
 #include "pyclef.h"
 
@@ -82,6 +82,51 @@ static PyObject *py_read_map(PyObject *self, PyObject *args, PyObject *kw)
     }
     Py_XDECREF(valid);
     Py_XDECREF(pix);
+    Py_XDECREF(meta);
+    clef_map_free(m);
+    return NULL;
+}
+
+/* clef_map_read_header: the meta dict of read_map without the values. */
+static PyObject *py_read_map_header(PyObject *self, PyObject *args, PyObject *kw)
+{
+    (void)self;
+    static char *kwl[] = {"path", "hdu", "column", "ordering", NULL};
+    PyObject *path_o, *hdu_o = NULL, *col_o = NULL;
+    const char *ordering = NULL;
+    if (!PyArg_ParseTupleAndKeywords(args, kw, "O&|$OOz:read_map_header", kwl,
+                                     PyUnicode_FSConverter, &path_o, &hdu_o, &col_o, &ordering))
+        return NULL;
+    char hb[64], cb[80];
+    clef_map_read_opts ro = {0};
+    ro.ordering = ordering;
+    if (selector(hdu_o, hb, sizeof hb, "hdu", &ro.hdu) < 0 ||
+        selector(col_o, cb, sizeof cb, "column", &ro.column) < 0) {
+        Py_DECREF(path_o);
+        return NULL;
+    }
+    pyclef_log_refresh();
+    clef_map *m = NULL;
+    int st;
+    const char *path = PyBytes_AS_STRING(path_o);
+    Py_BEGIN_ALLOW_THREADS
+    st = clef_map_read_header(&m, path, &ro);
+    Py_END_ALLOW_THREADS
+    Py_DECREF(path_o);
+    if (st != CLEF_OK)
+        return pyclef_raise(st);
+    PyObject *meta = PyDict_New();
+    if (meta && pyclef_set(meta, "nside", PyLong_FromLongLong(m->nside)) == 0 &&
+        pyclef_set(meta, "npix", PyLong_FromLongLong(m->npix)) == 0 &&
+        pyclef_set(meta, "ordering",
+                   PyUnicode_FromString(m->file_ordering == CLEF_NESTED ? "NESTED" : "RING")) == 0 &&
+        pyclef_set(meta, "coordsys", PyUnicode_FromString(m->coordsys)) == 0 &&
+        pyclef_set(meta, "unit", PyUnicode_FromString(m->unit)) == 0 &&
+        pyclef_set(meta, "column", PyUnicode_FromString(m->column)) == 0 &&
+        pyclef_set(meta, "hdu", PyLong_FromLong(m->hdu)) == 0) {
+        clef_map_free(m);
+        return meta;
+    }
     Py_XDECREF(meta);
     clef_map_free(m);
     return NULL;
@@ -346,6 +391,12 @@ PyMethodDef pyclef_map_methods[] = {
      "ordering: 'RING' or 'NESTED' for files without an ORDERING keyword (default: such a\n"
      "file is refused).  Errors: clef.FileError (cannot open), clef.FormatError (not a\n"
      "HEALPix table), clef.InvalidArgumentError (unknown HDU or column)."},
+    {"read_map_header", PYCLEF_KW(py_read_map_header), METH_VARARGS | METH_KEYWORDS,
+     "read_map_header(path, *, hdu=None, column=None, ordering=None)\n--\n\n"
+     "The header of the map read_map would read, without its values: a dict with nside,\n"
+     "npix, ordering, coordsys, unit, column and hdu, as in read_map's meta.  The same\n"
+     "checks as read_map short of the values (HDU, column, NSIDE, ORDERING, table size),\n"
+     "with the same errors."},
     {"write_map", PYCLEF_KW(py_write_map), METH_VARARGS | METH_KEYWORDS,
      "write_map(path, map, *, coordsys='', unit='', column=None, extname=None, row_length=0, "
      "float32=False, history=None)\n--\n\n"

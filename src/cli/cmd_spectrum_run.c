@@ -108,11 +108,22 @@ static int parse(int argc, char **argv, rargs *a)
 #define MAXF CLEF_ESTIMATOR_MAX_FIELDS
 #define MAXP (MAXF * (MAXF + 1) / 2)
 
+struct job;
+/* What the estimator's loader of field `field` needs (maps are read when
+ * the estimator transforms them, one at a time: field.h). */
+typedef struct map_loader {
+    struct job *j;
+    int field;
+} map_loader;
+
 /* Everything the run holds; freed in one place. */
 typedef struct job {
     clef_run *run;
-    clef_map *maps[MAXF][CLEF_FIELD_MAX_SPLITS];
-    clef_map *masks[MAXF];
+    map_loader loader[MAXF];
+    int load_failed;           /* 1 + the field whose map could not be read, or 0 */
+    int64_t nside;
+    clef_map *masks[MAXF];     /* masks[i] owned when mask_own[i]; else an earlier field's */
+    int mask_own[MAXF];
     double *beam[MAXF], *transfer[MAXF], *noise[MAXF];
     double *model;
     clef_estimator *e;
@@ -127,9 +138,8 @@ static void job_free(job *j)
 {
     if (j->run)
         for (int i = 0; i < j->run->nfields; i++) {
-            for (int s = 0; s < CLEF_FIELD_MAX_SPLITS; s++)
-                clef_map_free(j->maps[i][s]);
-            clef_map_free(j->masks[i]);
+            if (j->mask_own[i])
+                clef_map_free(j->masks[i]);
             free(j->beam[i]);
             free(j->transfer[i]);
             free(j->noise[i]);
@@ -253,8 +263,20 @@ static void default_prefix(const char *run, char *buf, size_t n)
     strncat(buf, "-spectra", n - strlen(buf) - 1);
 }
 
-/* Read the maps, masks and tables of every field; errors name the run
- * file's line and key. */
+/* Split `split` of a field, read when the estimator needs it. */
+static int load_map(void *arg, int split, clef_map **out)
+{
+    map_loader *l = arg;
+    const int status = clef_map_read(out, l->j->run->fields[l->field].maps[split], NULL);
+    if (status != CLEF_OK)
+        l->j->load_failed = l->field + 1;
+    return status;
+}
+
+/* Check the maps' headers and read the masks and tables of every field;
+ * errors name the run file's line and key.  The maps themselves are read
+ * by the estimator one at a time (load_map), so N fields never hold N maps;
+ * a mask named by several fields is read once. */
 static int read_inputs(job *j, clef_field *fields)
 {
     const clef_run *run = j->run;
@@ -263,14 +285,18 @@ static int read_inputs(job *j, clef_field *fields)
     for (int i = 0; i < run->nfields; i++) {
         const clef_run_field *f = &run->fields[i];
         clef_field *d = &fields[i];
+        char coordsys[CLEF_FIELD_MAX_SPLITS][16];
         clef_field_init(d);
         d->name = f->name;
         d->nsplits = f->nsplits;
         for (int s = 0; s < f->nsplits; s++) {
             cli_watch_input(f->maps[s]);
-            if ((status = clef_map_read(&j->maps[i][s], f->maps[s], NULL)) != CLEF_OK)
+            clef_map *hdr = NULL;
+            if ((status = clef_map_read_header(&hdr, f->maps[s], NULL)) != CLEF_OK)
                 return field_error(j, f, f->maps_line, "maps", status, NULL);
-            const int64_t ns = j->maps[i][s]->nside;
+            const int64_t ns = hdr->nside;
+            snprintf(coordsys[s], sizeof coordsys[s], "%s", hdr->coordsys);
+            clef_map_free(hdr);
             if (nside == 0) {
                 nside = ns;
             } else if (ns != nside) {
@@ -280,17 +306,38 @@ static int read_inputs(job *j, clef_field *fields)
                          (long long)ns, (long long)nside);
                 return field_error(j, f, f->maps_line, "maps", CLEF_EINVAL, msg);
             }
-            d->maps[s] = j->maps[i][s];
             d->map_names[s] = f->maps[s];
         }
+        j->loader[i].j = j;
+        j->loader[i].field = i;
+        d->load_map = load_map;
+        d->load_arg = &j->loader[i];
         cli_watch_input(f->mask);
-        if ((status = clef_map_read(&j->masks[i], f->mask, NULL)) != CLEF_OK)
-            return field_error(j, f, f->line, "mask", status, NULL);
+        for (int k = 0; k < i && !j->masks[i]; k++)
+            if (!strcmp(run->fields[k].mask, f->mask) || cli_same_file(run->fields[k].mask, f->mask))
+                j->masks[i] = j->masks[k];
+        if (!j->masks[i]) {
+            if ((status = clef_map_read(&j->masks[i], f->mask, NULL)) != CLEF_OK)
+                return field_error(j, f, f->line, "mask", status, NULL);
+            j->mask_own[i] = 1;
+        }
         if (j->masks[i]->nside != nside) {
             char msg[4400];
             snprintf(msg, sizeof msg, "mask '%s' has nside %lld, the maps nside %lld", f->mask,
                      (long long)j->masks[i]->nside, (long long)nside);
             return field_error(j, f, f->line, "mask", CLEF_EINVAL, msg);
+        }
+        /* Each map's frame against its mask's, from the headers (the estimator
+         * checks the maps again when it reads them). */
+        for (int s = 0; s < f->nsplits; s++) {
+            clef_map hdr;
+            memset(&hdr, 0, sizeof hdr);
+            hdr.nside = nside;
+            hdr.npix = j->masks[i]->npix;
+            snprintf(hdr.coordsys, sizeof hdr.coordsys, "%s", coordsys[s]);
+            if ((status = clef_map_check_mask(&hdr, f->maps[s], j->masks[i], f->mask, 0)) !=
+                CLEF_OK)
+                return field_error(j, f, f->line, "mask", status, NULL);
         }
         d->mask = j->masks[i];
         d->mask_name = f->mask;
@@ -315,6 +362,7 @@ static int read_inputs(job *j, clef_field *fields)
             d->noise_cl = j->noise[i];
         }
     }
+    j->nside = nside;
     return CLI_EXIT_OK;
 }
 
@@ -433,7 +481,7 @@ int cmd_spectrum_run(int argc, char **argv)
     so.cache_dir = a.cache_dir;
     so.find_peak = !a.no_peak;
     if (run->model) {
-        const int lread = (int)(3 * fields[0].maps[0]->nside - 1);
+        const int lread = (int)(3 * j.nside - 1);
         if (!(j.model = cli_read_spectrum_file(run->model, lread, &status))) {
             free(fields);
             job_free(&j);
@@ -452,6 +500,13 @@ int cmd_spectrum_run(int argc, char **argv)
     if (status == CLEF_OK)
         status = clef_estimator_compute(j.e);
     free(fields);
+    if (status != CLEF_OK && j.load_failed) {
+        /* A map that passed the header checks but could not be read in full. */
+        const clef_run_field *f = &run->fields[j.load_failed - 1];
+        rc = field_error(&j, f, f->maps_line, "maps", status, NULL);
+        job_free(&j);
+        return rc;
+    }
     if (status != CLEF_OK) {
         job_free(&j);
         return cli_fail(status);

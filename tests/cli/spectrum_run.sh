@@ -141,6 +141,43 @@ bad dup "line 5: field name 'a' is used twice (first at line 2)" 'fields:
   - name: a
     maps: b.fits
     mask: mask.fits'
+# Maps are read one at a time while the estimator runs (docs/run-files.md):
+# their headers are checked first, so a frame that differs from the mask's
+# is refused before any work, and a map whose values cannot be read (an
+# explicit-index table listing a pixel twice: its header is fine) still
+# names its line and key, with nothing written.
+"$C" simulate --quiet --nside 32 --model --seed 5 --coordsys E --output "$T/ecl.fits" \
+    || fail "simulate ecl"
+"$CLEF_PYTHON" - "$T/twice.fits" <<'PY' || fail "explicit-index file"
+import sys
+import numpy as np
+from astropy.io import fits
+npix = 12 * 32 ** 2
+pix = np.arange(npix, dtype=np.int64)
+pix[5] = 4  # pixel 4 listed twice
+cols = [fits.Column(name="PIXEL", format="K", array=pix),
+        fits.Column(name="T", format="D", array=np.zeros(npix), unit="uK")]
+t = fits.BinTableHDU.from_columns(cols)
+for k, v in (("PIXTYPE", "HEALPIX"), ("ORDERING", "RING"), ("NSIDE", 32),
+             ("INDXSCHM", "EXPLICIT"), ("OBJECT", "PARTIAL"), ("COORDSYS", "G")):
+    t.header[k] = v
+fits.HDUList([fits.PrimaryHDU(), t]).writeto(sys.argv[1], overwrite=True)
+PY
+"$C" inspect "$T/twice.fits" > /dev/null 2>&1 && fail "twice.fits should not read"
+bad frame "line 5: field 'b' key 'mask': coordinate systems differ" 'fields:
+  - name: a
+    maps: b.fits
+    mask: mask.fits
+  - name: b
+    maps: ecl.fits
+    mask: mask.fits'
+bad values "line 7: field 'b' key 'maps': .*twice.fits" 'fields:
+  - name: a
+    maps: b.fits
+    mask: mask.fits
+  - name: b
+    mask: mask.fits
+    maps: twice.fits'
 bad yaml "line 3: not valid YAML" 'fields:
   - name: a
    maps: [b.fits'

@@ -57,6 +57,19 @@ def test_nested_file_is_converted(tmp_path):
     assert sorted(pix) == list(vals)
 
 
+def test_header_matches_read_map(sky):
+    # The header alone: read_map's meta without the values; the same
+    # errors as read_map for a missing file and an unknown column.
+    _, meta = clef.read_map(sky / "sky_split1.fits")
+    head = clef.read_map_header(sky / "sky_split1.fits")
+    assert head == {k: meta[k] for k in ("nside", "npix", "ordering", "coordsys", "unit",
+                                         "column", "hdu")}
+    with pytest.raises(clef.FileError):
+        clef.read_map_header("/nonexistent/map.fits")
+    with pytest.raises(clef.InvalidArgumentError, match="NOPE"):
+        clef.read_map_header(sky / "sky_split1.fits", column="NOPE")
+
+
 def test_missing_file():
     with pytest.raises(clef.FileError) as e:
         clef.read_map("/nonexistent/map.fits")
