@@ -277,7 +277,13 @@ static int binned_rows(clef_coupling_pol_binned **out, const clef_coupling *cons
             status = clef_fail(CLEF_ENOMEM, "coupling (pol): out of memory for %d bins", nb);
             goto fail;
         }
-        if (m[i])
+        /* M+ and M- each fill two blocks: bin each distinct matrix once. */
+        int same = 0;
+        while (same < i && m[same] != m[i])
+            same++;
+        if (m[i] && same < i)
+            memcpy(kb[i], kb[same], (size_t)nb * nb * sizeof *kb[i]);
+        else if (m[i])
             CLEF_CHECK(clef_coupling_build_k(m[i], bins, transfer, kb[i]));
         k->m[i] = m[i];
         k->sg[i] = sg[i];
