@@ -202,6 +202,14 @@ static int prepare(prun *r, const clef_map_pol *const f[2], const clef_map *mask
             r->umap[i][p] = sp * f[i]->u->pix[p] * r->wp[i][p];
         }
     }
+    return CLEF_OK;
+}
+
+/* The product weights w_T1 w_P2, w_P1 w_P2 (their spectra enter the
+ * covariances): made only when the mask spectra are not cached. */
+static int make_products(prun *r)
+{
+    const int64_t np = r->npix;
     const int j = r->cross;
     for (int i = 0; i < 2; i++) {
         r->prod[i] = clef_alloc_large((size_t)np * sizeof(double));
@@ -213,6 +221,45 @@ static int prepare(prun *r, const clef_map_pol *const f[2], const clef_map *mask
         r->prod[1][p] = r->wp[0][p] * r->wp[j][p];
     }
     return CLEF_OK;
+}
+
+/* Cache keys of the two polarized mask-spectrum entries (TP: W^{T1P2} with
+ * W[w_T1 w_P2]; PP: W^{P1P2} with W[w_P1 w_P2]): SHA-256 of a tag, the
+ * version, nside, lmax_t, the iterations and the digests of the two
+ * weights.  Each distinct weight map is hashed once (the same mask for T
+ * and P, and the P weight of an auto-spectrum, are the common case). */
+static void pol_mask_keys(const prun *r, int iterations, char key[2][65])
+{
+    const double *w[3] = {r->wt[0], r->wp[0], r->wp[r->cross]};
+    const size_t bytes = (size_t)r->npix * sizeof(double);
+    unsigned char dg[3][CLEF_SHA256_BYTES];
+    for (int i = 0; i < 3; i++) {
+        int k = 0;
+        while (k < i && w[k] != w[i] && memcmp(w[k], w[i], bytes) != 0)
+            k++;
+        if (k < i) {
+            memcpy(dg[i], dg[k], sizeof dg[i]);
+            continue;
+        }
+        clef_sha256 h;
+        clef_sha256_init(&h);
+        clef_sha256_update(&h, w[i], bytes);
+        clef_sha256_final(&h, dg[i]);
+    }
+    for (int k = 0; k < 2; k++) {
+        static const char tag[] = "clef polarized mask spectra";
+        const int64_t v[4] = {r->nside, r->lmax_t, iterations, k};
+        clef_sha256 h;
+        unsigned char d[CLEF_SHA256_BYTES];
+        clef_sha256_init(&h);
+        clef_sha256_update(&h, tag, sizeof tag);
+        clef_sha256_update(&h, CLEF_VERSION, sizeof CLEF_VERSION);
+        clef_sha256_update(&h, v, sizeof v);
+        clef_sha256_update(&h, dg[k], sizeof dg[k]); /* w_T1 (TP) or w_P1 (PP) */
+        clef_sha256_update(&h, dg[2], sizeof dg[2]); /* w_P2 */
+        clef_sha256_final(&h, d);
+        clef_sha256_hex(d, key[k]);
+    }
 }
 
 static int transforms(prun *r, const clef_spectrum_opts *o)
@@ -227,17 +274,6 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
         if (!r->ae[i] || !r->ab[i])
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for a_lm (lmax %d)", L);
     }
-    /* Masks: w_T1, w_P1, w_T2, w_P2 (cross), w_T1 w_P2, w_P1 w_P2. */
-    const double *min[6];
-    int nm = 0;
-    min[nm++] = r->wt[0];
-    min[nm++] = r->wp[0];
-    if (r->cross) {
-        min[nm++] = r->wt[1];
-        min[nm++] = r->wp[1];
-    }
-    min[nm++] = r->prod[0];
-    min[nm++] = r->prod[1];
     clef_sht *s0 = NULL;
     clef_sht_spin *s2 = NULL;
     clef_sht_opts so = {.nmaps = nf};
@@ -260,12 +296,8 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
     if (o->use_cache) {
         if (!(pay = malloc(2 * ((size_t)LT + 1) * sizeof *pay)))
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for mask spectra");
+        pol_mask_keys(r, o->iterations, key);
         for (int k = 0; k < 2; k++) {
-            char base[65], tagged[80];
-            clef_spectrum_mask_key(r->nside, LT, o->iterations, r->wp[r->cross],
-                                   k ? r->wp[0] : r->wt[0], base);
-            snprintf(tagged, sizeof tagged, "pol-%s-%s", k ? "PP" : "TP", base);
-            clef_sha256_buffer(tagged, strlen(tagged), key[k]);
             hit[k] = clef_spectrum_mask_cache(o, key[k], LT, 2, pay, 0);
             if (hit[k]) {
                 memcpy(r->wl[k], pay, ((size_t)LT + 1) * sizeof *pay);
@@ -274,6 +306,22 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
         }
     }
     if (!hit[0] || !hit[1]) {
+        status = make_products(r);
+        if (status != CLEF_OK) {
+            free(pay);
+            return status;
+        }
+        /* Masks: w_T1, w_P1, w_T2, w_P2 (cross), w_T1 w_P2, w_P1 w_P2. */
+        const double *min[6];
+        int nm = 0;
+        min[nm++] = r->wt[0];
+        min[nm++] = r->wp[0];
+        if (r->cross) {
+            min[nm++] = r->wt[1];
+            min[nm++] = r->wp[1];
+        }
+        min[nm++] = r->prod[0];
+        min[nm++] = r->prod[1];
         for (int i = 0; i < nm; i++)
             if (!(r->am[i] = malloc(nt * sizeof(double complex)))) {
                 free(pay);
