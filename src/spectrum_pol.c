@@ -560,7 +560,7 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
      * polarization noise), <N~^EE> = <N~^BB> = (M+ + M-) N. */
     const int L = r.lmax_ext, na = r.nb_all;
     const size_t n = (size_t)L + 1;
-    double *dec[2] = {NULL, NULL};
+    double *dec[2] = {NULL, NULL}, *cov_work = NULL;
     double *band = malloc((size_t)6 * na * sizeof *band);
     double *win = malloc((size_t)2 * na * 2 * n * sizeof *win);
     if (!band || !win) {
@@ -623,6 +623,12 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     /* TE, TB: cross-type covariance with T1 and X2 autos. */
     clef_spectrum_cov_in ci = {.lmax = L, .cross = 1, .bins = r.all_bins, .kb = r.kte,
                                .pcl = p3, .w2 = {w_tp, w_tt1, w_pp2}};
+    /* One workspace for the five covariances (fresh pages cost as much as
+     * the sums that fill them). */
+    if (!(ci.work = cov_work = clef_alloc_large(n * n * sizeof *cov_work))) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", L);
+        goto fail_b;
+    }
     CHECK_B(clef_spectrum_coupling(&r.m2[0], L, r.wl[2], r.lmax_t, &o));
     CHECK_B(clef_spectrum_coupling(&r.m2[1], L, r.wl[3], r.lmax_t, &o));
     ci.m2 = r.m2[0];
@@ -680,6 +686,7 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     CHECK_B(make_table(&r, &res->bp[CLEF_POL_EB], beb, &ci, win, 2 * n, "EB", res->tt.bp));
     CHECK_B(clef_bandpowers_meta_text(res->tt.bp, "SPECTRUM", "TT", "which spectrum of T, E, B"));
 fail_b:
+    free(cov_work);
     free(band);
     free(win);
     free(dec[0]);
