@@ -117,8 +117,9 @@ static void prun_free(prun *r)
     for (int i = 0; i < P_N; i++)
         free(r->pcl[i]);
     clef_coupling_pol_free(&r->cp);
+    if (r->m2[1] != r->m2[0])
+        clef_coupling_destroy(r->m2[1]);
     clef_coupling_destroy(r->m2[0]);
-    clef_coupling_destroy(r->m2[1]);
     clef_coupling_binned_destroy(r->kte);
     clef_coupling_binned_destroy(r->kpp);
     clef_coupling_pol_binned_destroy(r->keb[0]);
@@ -630,7 +631,12 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
         goto fail_b;
     }
     CHECK_B(clef_spectrum_coupling(&r.m2[0], L, r.wl[2], r.lmax_t, &o));
-    CHECK_B(clef_spectrum_coupling(&r.m2[1], L, r.wl[3], r.lmax_t, &o));
+    /* The same T and P weights (the common case) give the same mask
+     * spectrum, hence the same kernel: made (or read) once. */
+    if (!memcmp(r.wl[2], r.wl[3], ((size_t)r.lmax_t + 1) * sizeof(double)))
+        r.m2[1] = r.m2[0];
+    else
+        CHECK_B(clef_spectrum_coupling(&r.m2[1], L, r.wl[3], r.lmax_t, &o));
     ci.m2 = r.m2[0];
     CHECK_B(clef_coupling_binned_windows(r.kte, r.cp.te, r.all_bins, r.tl, win));
     p3[0] = r.pcl[P_TE];
