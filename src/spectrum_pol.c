@@ -97,8 +97,9 @@ static void prun_free(prun *r)
     clef_bins_destroy(r->all_bins);
     free(r->rep);
     for (int i = 0; i < 2; i++) {
+        if (r->wp[i] != r->wt[i])
+            free(r->wp[i]);
         free(r->wt[i]);
-        free(r->wp[i]);
         free(r->qmap[i]);
         free(r->umap[i]);
         free(r->prod[i]);
@@ -181,13 +182,33 @@ static double unit_scale(const clef_map *m, const char *what)
     return s;
 }
 
+/* Whether the P weight (the P mask where Q and U are valid) equals the T
+ * weight w bit for bit: the same mask and the same missing pixels, the
+ * common case; checked without making the P weight. */
+static int same_weights(const clef_map_pol *f, const clef_map *mask_p, const double *w,
+                        int64_t np)
+{
+    for (int64_t p = 0; p < np; p++) {
+        int in = f->q->valid[p] && mask_p->valid[p];
+        if (f->u->valid && !f->u->valid[p])
+            in = 0;
+        const double v = in ? mask_p->pix[p] : 0.0;
+        if (memcmp(&v, &w[p], sizeof v) != 0)
+            return 0;
+    }
+    return 1;
+}
+
 static int prepare(prun *r, const clef_map_pol *const f[2], const clef_map *mask_t,
                    const clef_map *mask_p)
 {
     const int64_t np = r->npix;
     for (int i = 0; i <= r->cross; i++) {
         CLEF_TRY(clef_spectrum_make_weights(f[i]->t, mask_t, &r->wt[i]));
-        CLEF_TRY(clef_spectrum_make_weights(f[i]->q, mask_p, &r->wp[i]));
+        if (same_weights(f[i], mask_p, r->wt[i], np))
+            r->wp[i] = r->wt[i]; /* shared, not a copy (prun_free) */
+        else
+            CLEF_TRY(clef_spectrum_make_weights(f[i]->q, mask_p, &r->wp[i]));
         r->qmap[i] = clef_alloc_large((size_t)np * sizeof(double));
         r->umap[i] = clef_alloc_large((size_t)np * sizeof(double));
         if (!r->qmap[i] || !r->umap[i])
@@ -197,7 +218,7 @@ static int prepare(prun *r, const clef_map_pol *const f[2], const clef_map *mask
             /* Q and U are one spin-2 field: a pixel missing in either is
              * missing in both (clef_map_read_pol joins them already; a
              * caller's own maps may not). */
-            if (f[i]->u->valid && !f[i]->u->valid[p])
+            if (r->wp[i] != r->wt[i] && f[i]->u->valid && !f[i]->u->valid[p])
                 r->wp[i][p] = 0;
             r->qmap[i][p] = sp * f[i]->q->pix[p] * r->wp[i][p];
             r->umap[i][p] = sp * f[i]->u->pix[p] * r->wp[i][p];
@@ -625,8 +646,11 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     clef_spectrum_cov_in ci = {.lmax = L, .cross = 1, .bins = r.all_bins, .kb = r.kte,
                                .pcl = p3, .w2 = {w_tp, w_tt1, w_pp2}};
     /* One workspace for the five covariances (fresh pages cost as much as
-     * the sums that fill them). */
-    if (!(ci.work = cov_work = clef_alloc_large(n * n * sizeof *cov_work))) {
+     * the sums that fill them): the weighted Q map, done with since the
+     * transforms ((lmax_ext + 1)^2 <= 9 nside^2 < npix). */
+    if (n * n <= (size_t)r.npix && r.qmap[0])
+        ci.work = r.qmap[0];
+    else if (!(ci.work = cov_work = clef_alloc_large(n * n * sizeof *cov_work))) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", L);
         goto fail_b;
     }
