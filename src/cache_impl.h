@@ -24,6 +24,9 @@ int clef_cache_path(char *buf, size_t n, const char *dir, int kind, const char *
 /* 1 on a valid hit (out filled), 0 otherwise; problems are warnings. */
 int clef_cache_load(const char *path, int kind, const char *key, size_t rows, size_t cols,
                     double *out);
+/* The same, the payload's rows split evenly over nparts buffers. */
+int clef_cache_load_parts(const char *path, int kind, const char *key, size_t rows, size_t cols,
+                          int nparts, double *const *parts);
 /* Store atomically; failures are warnings. */
 void clef_cache_store(const char *dir, const char *path, int kind, const char *key, size_t rows,
                       size_t cols, const double *data);

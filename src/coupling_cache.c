@@ -165,6 +165,15 @@ static void payload_hex(const double *p, size_t count, char hex[65])
 int clef_cache_load(const char *path, int kind, const char *key, size_t rows, size_t cols,
                       double *out)
 {
+    return clef_cache_load_parts(path, kind, key, rows, cols, 1, &out);
+}
+
+/* The same with the payload's rows split evenly over `nparts` buffers (the
+ * polarized entry's three matrices, read in place).  The payload is read
+ * and hashed in slices, each while it is still in the processor's cache. */
+int clef_cache_load_parts(const char *path, int kind, const char *key, size_t rows, size_t cols,
+                          int nparts, double *const *parts)
+{
     FILE *f = fopen(path, "rb");
     if (!f) {
         if (errno != ENOENT)
@@ -205,13 +214,33 @@ int clef_cache_load(const char *path, int kind, const char *key, size_t rows, si
     }
     if (why)
         goto bad;
-    if (fread(out, sizeof *out, rows * cols, f) != rows * cols || fgetc(f) != EOF) {
-        why = "payload has the wrong length (truncated or padded)";
+    if (nparts < 1 || rows % (size_t)nparts != 0) {
+        why = "internal error: payload split unevenly";
         goto bad;
     }
+    /* The checksum is that of the whole payload (payload_hex), taken slice
+     * by slice. */
+    clef_sha256 hs;
+    clef_sha256_init(&hs);
+    const size_t per = rows / (size_t)nparts * cols, slice = (size_t)1 << 18; /* 2 MiB */
+    for (int i = 0; i < nparts && !why; i++)
+        for (size_t o = 0; o < per; o += slice) {
+            const size_t cnt = per - o < slice ? per - o : slice;
+            if (fread(parts[i] + o, sizeof(double), cnt, f) != cnt) {
+                why = "payload has the wrong length (truncated or padded)";
+                break;
+            }
+            clef_sha256_update(&hs, parts[i] + o, cnt * sizeof(double));
+        }
+    if (!why && fgetc(f) != EOF)
+        why = "payload has the wrong length (truncated or padded)";
+    if (why)
+        goto bad;
     fclose(f);
     char hex[65];
-    payload_hex(out, rows * cols, hex);
+    unsigned char dg[CLEF_SHA256_BYTES];
+    clef_sha256_final(&hs, dg);
+    clef_sha256_hex(dg, hex);
     if (memcmp(hex, h + 120, 64) != 0) {
         clef_log(CLEF_LOG_WARN,
                  "coupling cache: '%s' is corrupted (payload checksum mismatch); recomputing",

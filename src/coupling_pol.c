@@ -185,22 +185,23 @@ int clef_coupling_pol_create_cached(clef_coupling_pol *out, int lmax, const doub
         return clef_coupling_pol_create(out, lmax, w_tp, w_pp, wl_lmax);
     }
     const size_t n = (size_t)lmax + 1, nm = w_tp ? 3 : 2;
-    if (!(buf = clef_alloc_large(nm * n * n * sizeof *buf)))
-        CLEF_FAIL(CLEF_ENOMEM, "coupling (pol): out of memory for the cache entry");
-    if (clef_cache_load(path, CLEF_CACHE_POL, key, nm * n, n, buf)) {
+    {
+        /* A hit is read in place, M+ then M- then M^TE (no staging copy:
+         * the matrices' pages are touched once). */
         if (w_tp)
             CLEF_CHECK(clef_coupling_alloc_empty(&out->te, lmax, w_pp, wl_lmax));
         CLEF_CHECK(clef_coupling_alloc_empty(&out->pp, lmax, w_pp, wl_lmax));
         CLEF_CHECK(clef_coupling_alloc_empty(&out->mm, lmax, w_pp, wl_lmax));
-        memcpy(out->pp->m, buf, n * n * sizeof *buf);
-        memcpy(out->mm->m, buf + n * n, n * n * sizeof *buf);
-        if (w_tp)
-            memcpy(out->te->m, buf + 2 * n * n, n * n * sizeof *buf);
-        if (hit)
-            *hit = 1;
-        free(buf);
-        return CLEF_OK;
+        double *const parts[3] = {out->pp->m, out->mm->m, w_tp ? out->te->m : NULL};
+        if (clef_cache_load_parts(path, CLEF_CACHE_POL, key, nm * n, n, (int)nm, parts)) {
+            if (hit)
+                *hit = 1;
+            return CLEF_OK;
+        }
+        clef_coupling_pol_free(out);
     }
+    if (!(buf = clef_alloc_large(nm * n * n * sizeof *buf)))
+        CLEF_FAIL(CLEF_ENOMEM, "coupling (pol): out of memory for the cache entry");
     CLEF_CHECK(clef_coupling_pol_create(out, lmax, w_tp, w_pp, wl_lmax));
     memcpy(buf, out->pp->m, n * n * sizeof *buf);
     memcpy(buf + n * n, out->mm->m, n * n * sizeof *buf);
@@ -276,7 +277,13 @@ static int binned_rows(clef_coupling_pol_binned **out, const clef_coupling *cons
             status = clef_fail(CLEF_ENOMEM, "coupling (pol): out of memory for %d bins", nb);
             goto fail;
         }
-        if (m[i])
+        /* M+ and M- each fill two blocks: bin each distinct matrix once. */
+        int same = 0;
+        while (same < i && m[same] != m[i])
+            same++;
+        if (m[i] && same < i)
+            memcpy(kb[i], kb[same], (size_t)nb * nb * sizeof *kb[i]);
+        else if (m[i])
             CLEF_CHECK(clef_coupling_build_k(m[i], bins, transfer, kb[i]));
         k->m[i] = m[i];
         k->sg[i] = sg[i];

@@ -49,6 +49,7 @@ struct clef_sht_spin {
     size_t nalm, nalm_ext;
     double complex *ext;     /* 2 npairs x nalm_ext: inner a_lm (Q then U per pair) */
     double complex *ext2;    /* the inner plan's own delta array, reused (same size) */
+    double *lfac;            /* l = 0..lmax: 2 N_l (spin 2) or 1/sqrt(l(l+1)) (spin 1), 0 below spin */
 };
 
 /* Coefficients of s^S W_lm = sum_k w[k] lambda_{l-S+2k} (k = 0..S) and
@@ -122,6 +123,43 @@ static inline spin_coef coef_lm(int spin, int l, int m)
     return spin == 1 ? coef_lm1(l, m) : coef_lm2(l, m);
 }
 
+/* The same coefficients for every l of one m, as to_ext and from_ext use
+ * them: beta_{k m} (one square root per (l, m); alpha_{l m} = beta_{l+1, m},
+ * the same double) from a row filled per m, the l-only factors 2 N_l or
+ * 1/n_l from the plan's table.  Each expression is evaluated exactly as in
+ * coef_lm2 / coef_lm1 above, so the results are bit-identical to them
+ * (those remain the path when a thread cannot allocate its row). */
+static void beta_row(int m, int kmax, double *b)
+{
+    b[m] = 0.0;
+    for (int k = m + 1; k <= kmax; k++)
+        b[k] = beta_lm(k, m);
+}
+
+static inline spin_coef coef_row(const double *lfac, const double *b, int spin, int l, int m)
+{
+    spin_coef c = {{0, 0, 0}, {0, 0}};
+    const double dl = l, dm = m;
+    if (spin == 1) {
+        const double inv = lfac[l];
+        c.w[0] = (dl + 1.0) * b[l] * inv;
+        c.w[1] = -dl * b[l + 1] * inv;
+        c.x[0] = dm * inv;
+        return c;
+    }
+    const double n2 = lfac[l];
+    const double L = 0.5 * dl * (dl - 1.0);
+    const double al = b[l + 1], al1 = b[l + 2];
+    const double bl = b[l], bl1 = l - 1 > m ? b[l - 1] : 0.0;
+    const double el = (2.0 * dl + 1.0) * bl;
+    c.w[2] = n2 * L * al * al1;
+    c.w[1] = n2 * (-(dl - dm * dm) - L + L * (al * al + bl * bl) + el * bl);
+    c.w[0] = n2 * (L * bl * bl1 + el * bl1);
+    c.x[1] = n2 * dm * (-(dl - 1.0) * al);
+    c.x[0] = n2 * dm * (dl + 2.0) * bl;
+    return c;
+}
+
 int clef_sht_spin_create(clef_sht_spin **out, int64_t nside, int lmax, const clef_sht_opts *opts)
 {
     return clef_sht_spin_create_s(out, nside, lmax, 2, opts);
@@ -175,9 +213,15 @@ int clef_sht_spin_create_s(clef_sht_spin **out, int64_t nside, int lmax, int spi
     p->nalm_ext = clef_alm_size(lmax + spin, mmax);
     p->ext = malloc(p->nalm_ext * 2 * (size_t)npairs * sizeof(double complex));
     p->ext2 = in->delta;
-    if (!p->ext) {
+    p->lfac = calloc((size_t)lmax + 1, sizeof *p->lfac);
+    if (!p->ext || !p->lfac) {
         status = clef_fail(CLEF_ENOMEM, "sht spin-2: no memory for scratch (lmax %d)", lmax);
         goto fail;
+    }
+    for (int l = spin; l <= lmax; l++) {
+        const double dl = l; /* as in coef_lm2, coef_lm1 */
+        p->lfac[l] = spin == 2 ? 2.0 / sqrt((dl - 1.0) * dl * (dl + 1.0) * (dl + 2.0))
+                               : 1.0 / sqrt(dl * (dl + 1.0));
     }
     *out = p;
     return CLEF_OK;
@@ -192,6 +236,7 @@ void clef_sht_spin_destroy(clef_sht_spin *p)
         return;
     clef_sht_destroy(p->inner);
     free(p->ext);
+    free(p->lfac);
     free(p);
 }
 
@@ -204,15 +249,20 @@ static void to_ext(const clef_sht_spin *p, int npairs, const double complex *con
                    const double complex *const *ab, double complex *ext)
 {
     const int lmax = p->lmax, S = p->spin, lx = lmax + S;
-#pragma omp parallel for schedule(dynamic, 4)
-    for (int m = 0; m <= p->mmax; m++)
+#pragma omp parallel
+    {
+    double *brow = malloc(((size_t)lmax + 3) * sizeof *brow);
+#pragma omp for schedule(dynamic, 4)
+    for (int m = 0; m <= p->mmax; m++) {
+        if (brow)
+            beta_row(m, lmax + 2, brow);
         for (int j = 0; j < npairs; j++) {
             double complex *dq = ext + (size_t)(2 * j) * p->nalm_ext + clef_alm_index(lx, 0, m);
             double complex *du = dq + p->nalm_ext;
             for (int l = m; l <= lx; l++)
                 dq[l] = du[l] = 0.0;
             for (int l = m > S ? m : S; l <= lmax; l++) {
-                const spin_coef c = coef_lm(S, l, m);
+                const spin_coef c = brow ? coef_row(p->lfac, brow, S, l, m) : coef_lm(S, l, m);
                 const double complex e = ae[j][clef_alm_index(lmax, l, m)];
                 const double complex b = ab[j][clef_alm_index(lmax, l, m)];
                 for (int k = 0; k <= S; k++) {
@@ -231,6 +281,9 @@ static void to_ext(const clef_sht_spin *p, int npairs, const double complex *con
                 }
             }
         }
+    }
+    free(brow);
+    }
 }
 
 /* Inner a_lm of Q/s^2, U/s^2 -> a_E, a_B (added to the output when `add`). */
@@ -238,15 +291,20 @@ static void from_ext(const clef_sht_spin *p, int npairs, const double complex *e
                      double complex *const *ae, double complex *const *ab, int add)
 {
     const int lmax = p->lmax, S = p->spin, lx = lmax + S;
-#pragma omp parallel for schedule(dynamic, 4)
-    for (int m = 0; m <= p->mmax; m++)
+#pragma omp parallel
+    {
+    double *brow = malloc(((size_t)lmax + 3) * sizeof *brow);
+#pragma omp for schedule(dynamic, 4)
+    for (int m = 0; m <= p->mmax; m++) {
+        if (brow)
+            beta_row(m, lmax + 2, brow);
         for (int j = 0; j < npairs; j++) {
             const double complex *q = ext + (size_t)(2 * j) * p->nalm_ext + clef_alm_index(lx, 0, m);
             const double complex *u = q + p->nalm_ext;
             for (int l = m; l <= lmax; l++) {
                 double complex e = 0.0, b = 0.0;
                 if (l >= S) {
-                    const spin_coef c = coef_lm(S, l, m);
+                    const spin_coef c = brow ? coef_row(p->lfac, brow, S, l, m) : coef_lm(S, l, m);
                     for (int k = 0; k <= S; k++) {
                         const int lp = l - S + 2 * k;
                         if (lp < m)
@@ -272,6 +330,9 @@ static void from_ext(const clef_sht_spin *p, int npairs, const double complex *e
                 }
             }
         }
+    }
+    free(brow);
+    }
 }
 
 static void ext_ptrs(const clef_sht_spin *p, int npairs, double complex *ext,

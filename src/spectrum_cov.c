@@ -416,7 +416,7 @@ int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
     }
     static const int kind[2] = {1, 1};
     const double *a = clef_coupling_binned_kinv_p(in->kb);
-    status = propagate(n, 2, s, kind, in->m2, in->m2, a, nb, a, nb, 1, NULL, cov);
+    status = propagate(n, 2, s, kind, in->m2, in->m2, a, nb, a, nb, 1, in->work, cov);
 fail:
     free(s);
     for (int k = 0; k < 3; k++)

@@ -53,6 +53,7 @@ typedef struct clef_spectrum_cov_in {
                                    [0] map1 x map2 (or auto), [1] map1 auto, [2] map2 auto */
     double w2[3];               /* mean of w_a w_b for the pairs of pcl[0..2] */
     const clef_coupling *m2;    /* the kernel M[w_a w_b] to lmax */
+    double *work;               /* (lmax+1)^2 workspace reused between calls, or NULL */
 } clef_spectrum_cov_in;
 
 /* Covariance of the decoupled band powers (nbins x nbins, row-major):

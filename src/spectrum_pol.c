@@ -97,8 +97,9 @@ static void prun_free(prun *r)
     clef_bins_destroy(r->all_bins);
     free(r->rep);
     for (int i = 0; i < 2; i++) {
+        if (r->wp[i] != r->wt[i])
+            free(r->wp[i]);
         free(r->wt[i]);
-        free(r->wp[i]);
         free(r->qmap[i]);
         free(r->umap[i]);
         free(r->prod[i]);
@@ -117,8 +118,9 @@ static void prun_free(prun *r)
     for (int i = 0; i < P_N; i++)
         free(r->pcl[i]);
     clef_coupling_pol_free(&r->cp);
+    if (r->m2[1] != r->m2[0])
+        clef_coupling_destroy(r->m2[1]);
     clef_coupling_destroy(r->m2[0]);
-    clef_coupling_destroy(r->m2[1]);
     clef_coupling_binned_destroy(r->kte);
     clef_coupling_binned_destroy(r->kpp);
     clef_coupling_pol_binned_destroy(r->keb[0]);
@@ -180,13 +182,33 @@ static double unit_scale(const clef_map *m, const char *what)
     return s;
 }
 
+/* Whether the P weight (the P mask where Q and U are valid) equals the T
+ * weight w bit for bit: the same mask and the same missing pixels, the
+ * common case; checked without making the P weight. */
+static int same_weights(const clef_map_pol *f, const clef_map *mask_p, const double *w,
+                        int64_t np)
+{
+    for (int64_t p = 0; p < np; p++) {
+        int in = f->q->valid[p] && mask_p->valid[p];
+        if (f->u->valid && !f->u->valid[p])
+            in = 0;
+        const double v = in ? mask_p->pix[p] : 0.0;
+        if (memcmp(&v, &w[p], sizeof v) != 0)
+            return 0;
+    }
+    return 1;
+}
+
 static int prepare(prun *r, const clef_map_pol *const f[2], const clef_map *mask_t,
                    const clef_map *mask_p)
 {
     const int64_t np = r->npix;
     for (int i = 0; i <= r->cross; i++) {
         CLEF_TRY(clef_spectrum_make_weights(f[i]->t, mask_t, &r->wt[i]));
-        CLEF_TRY(clef_spectrum_make_weights(f[i]->q, mask_p, &r->wp[i]));
+        if (same_weights(f[i], mask_p, r->wt[i], np))
+            r->wp[i] = r->wt[i]; /* shared, not a copy (prun_free) */
+        else
+            CLEF_TRY(clef_spectrum_make_weights(f[i]->q, mask_p, &r->wp[i]));
         r->qmap[i] = clef_alloc_large((size_t)np * sizeof(double));
         r->umap[i] = clef_alloc_large((size_t)np * sizeof(double));
         if (!r->qmap[i] || !r->umap[i])
@@ -196,12 +218,20 @@ static int prepare(prun *r, const clef_map_pol *const f[2], const clef_map *mask
             /* Q and U are one spin-2 field: a pixel missing in either is
              * missing in both (clef_map_read_pol joins them already; a
              * caller's own maps may not). */
-            if (f[i]->u->valid && !f[i]->u->valid[p])
+            if (r->wp[i] != r->wt[i] && f[i]->u->valid && !f[i]->u->valid[p])
                 r->wp[i][p] = 0;
             r->qmap[i][p] = sp * f[i]->q->pix[p] * r->wp[i][p];
             r->umap[i][p] = sp * f[i]->u->pix[p] * r->wp[i][p];
         }
     }
+    return CLEF_OK;
+}
+
+/* The product weights w_T1 w_P2, w_P1 w_P2 (their spectra enter the
+ * covariances): made only when the mask spectra are not cached. */
+static int make_products(prun *r)
+{
+    const int64_t np = r->npix;
     const int j = r->cross;
     for (int i = 0; i < 2; i++) {
         r->prod[i] = clef_alloc_large((size_t)np * sizeof(double));
@@ -213,6 +243,45 @@ static int prepare(prun *r, const clef_map_pol *const f[2], const clef_map *mask
         r->prod[1][p] = r->wp[0][p] * r->wp[j][p];
     }
     return CLEF_OK;
+}
+
+/* Cache keys of the two polarized mask-spectrum entries (TP: W^{T1P2} with
+ * W[w_T1 w_P2]; PP: W^{P1P2} with W[w_P1 w_P2]): SHA-256 of a tag, the
+ * version, nside, lmax_t, the iterations and the digests of the two
+ * weights.  Each distinct weight map is hashed once (the same mask for T
+ * and P, and the P weight of an auto-spectrum, are the common case). */
+static void pol_mask_keys(const prun *r, int iterations, char key[2][65])
+{
+    const double *w[3] = {r->wt[0], r->wp[0], r->wp[r->cross]};
+    const size_t bytes = (size_t)r->npix * sizeof(double);
+    unsigned char dg[3][CLEF_SHA256_BYTES];
+    for (int i = 0; i < 3; i++) {
+        int k = 0;
+        while (k < i && w[k] != w[i] && memcmp(w[k], w[i], bytes) != 0)
+            k++;
+        if (k < i) {
+            memcpy(dg[i], dg[k], sizeof dg[i]);
+            continue;
+        }
+        clef_sha256 h;
+        clef_sha256_init(&h);
+        clef_sha256_update(&h, w[i], bytes);
+        clef_sha256_final(&h, dg[i]);
+    }
+    for (int k = 0; k < 2; k++) {
+        static const char tag[] = "clef polarized mask spectra";
+        const int64_t v[4] = {r->nside, r->lmax_t, iterations, k};
+        clef_sha256 h;
+        unsigned char d[CLEF_SHA256_BYTES];
+        clef_sha256_init(&h);
+        clef_sha256_update(&h, tag, sizeof tag);
+        clef_sha256_update(&h, CLEF_VERSION, sizeof CLEF_VERSION);
+        clef_sha256_update(&h, v, sizeof v);
+        clef_sha256_update(&h, dg[k], sizeof dg[k]); /* w_T1 (TP) or w_P1 (PP) */
+        clef_sha256_update(&h, dg[2], sizeof dg[2]); /* w_P2 */
+        clef_sha256_final(&h, d);
+        clef_sha256_hex(d, key[k]);
+    }
 }
 
 static int transforms(prun *r, const clef_spectrum_opts *o)
@@ -227,17 +296,6 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
         if (!r->ae[i] || !r->ab[i])
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for a_lm (lmax %d)", L);
     }
-    /* Masks: w_T1, w_P1, w_T2, w_P2 (cross), w_T1 w_P2, w_P1 w_P2. */
-    const double *min[6];
-    int nm = 0;
-    min[nm++] = r->wt[0];
-    min[nm++] = r->wp[0];
-    if (r->cross) {
-        min[nm++] = r->wt[1];
-        min[nm++] = r->wp[1];
-    }
-    min[nm++] = r->prod[0];
-    min[nm++] = r->prod[1];
     clef_sht *s0 = NULL;
     clef_sht_spin *s2 = NULL;
     clef_sht_opts so = {.nmaps = nf};
@@ -260,12 +318,8 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
     if (o->use_cache) {
         if (!(pay = malloc(2 * ((size_t)LT + 1) * sizeof *pay)))
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for mask spectra");
+        pol_mask_keys(r, o->iterations, key);
         for (int k = 0; k < 2; k++) {
-            char base[65], tagged[80];
-            clef_spectrum_mask_key(r->nside, LT, o->iterations, r->wp[r->cross],
-                                   k ? r->wp[0] : r->wt[0], base);
-            snprintf(tagged, sizeof tagged, "pol-%s-%s", k ? "PP" : "TP", base);
-            clef_sha256_buffer(tagged, strlen(tagged), key[k]);
             hit[k] = clef_spectrum_mask_cache(o, key[k], LT, 2, pay, 0);
             if (hit[k]) {
                 memcpy(r->wl[k], pay, ((size_t)LT + 1) * sizeof *pay);
@@ -274,6 +328,22 @@ static int transforms(prun *r, const clef_spectrum_opts *o)
         }
     }
     if (!hit[0] || !hit[1]) {
+        status = make_products(r);
+        if (status != CLEF_OK) {
+            free(pay);
+            return status;
+        }
+        /* Masks: w_T1, w_P1, w_T2, w_P2 (cross), w_T1 w_P2, w_P1 w_P2. */
+        const double *min[6];
+        int nm = 0;
+        min[nm++] = r->wt[0];
+        min[nm++] = r->wp[0];
+        if (r->cross) {
+            min[nm++] = r->wt[1];
+            min[nm++] = r->wp[1];
+        }
+        min[nm++] = r->prod[0];
+        min[nm++] = r->prod[1];
         for (int i = 0; i < nm; i++)
             if (!(r->am[i] = malloc(nt * sizeof(double complex)))) {
                 free(pay);
@@ -512,7 +582,7 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
      * polarization noise), <N~^EE> = <N~^BB> = (M+ + M-) N. */
     const int L = r.lmax_ext, na = r.nb_all;
     const size_t n = (size_t)L + 1;
-    double *dec[2] = {NULL, NULL};
+    double *dec[2] = {NULL, NULL}, *cov_work = NULL;
     double *band = malloc((size_t)6 * na * sizeof *band);
     double *win = malloc((size_t)2 * na * 2 * n * sizeof *win);
     if (!band || !win) {
@@ -575,8 +645,22 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     /* TE, TB: cross-type covariance with T1 and X2 autos. */
     clef_spectrum_cov_in ci = {.lmax = L, .cross = 1, .bins = r.all_bins, .kb = r.kte,
                                .pcl = p3, .w2 = {w_tp, w_tt1, w_pp2}};
+    /* One workspace for the five covariances (fresh pages cost as much as
+     * the sums that fill them): the weighted Q map, done with since the
+     * transforms ((lmax_ext + 1)^2 <= 9 nside^2 < npix). */
+    if (n * n <= (size_t)r.npix && r.qmap[0])
+        ci.work = r.qmap[0];
+    else if (!(ci.work = cov_work = clef_alloc_large(n * n * sizeof *cov_work))) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", L);
+        goto fail_b;
+    }
     CHECK_B(clef_spectrum_coupling(&r.m2[0], L, r.wl[2], r.lmax_t, &o));
-    CHECK_B(clef_spectrum_coupling(&r.m2[1], L, r.wl[3], r.lmax_t, &o));
+    /* The same T and P weights (the common case) give the same mask
+     * spectrum, hence the same kernel: made (or read) once. */
+    if (!memcmp(r.wl[2], r.wl[3], ((size_t)r.lmax_t + 1) * sizeof(double)))
+        r.m2[1] = r.m2[0];
+    else
+        CHECK_B(clef_spectrum_coupling(&r.m2[1], L, r.wl[3], r.lmax_t, &o));
     ci.m2 = r.m2[0];
     CHECK_B(clef_coupling_binned_windows(r.kte, r.cp.te, r.all_bins, r.tl, win));
     p3[0] = r.pcl[P_TE];
@@ -632,6 +716,7 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     CHECK_B(make_table(&r, &res->bp[CLEF_POL_EB], beb, &ci, win, 2 * n, "EB", res->tt.bp));
     CHECK_B(clef_bandpowers_meta_text(res->tt.bp, "SPECTRUM", "TT", "which spectrum of T, E, B"));
 fail_b:
+    free(cov_work);
     free(band);
     free(win);
     free(dec[0]);
