@@ -40,8 +40,11 @@
 #include <string.h>
 
 #include "core_impl.h"
+#include "coupling_impl.h"
 #include "estimator_impl.h"
 #include "spectrum_impl.h"
+
+int clef_spectrum_cov_dense = 0;
 
 /* Full-sky estimate of one measured pseudo-spectrum for the covariance
  * (docs/method.md section 7).  C_l = pcl_l / w2 (the "improved" narrow-
@@ -256,13 +259,13 @@ static void term_vector(const term *t, const double *u, const double *v, int n, 
     }
 }
 
-/* G_ll' = sum_k s_kl s_kl' M^k_ll' / (2l'+1), M^k = k1 for terms of kind 1
+/* The reference path (clef_spectrum_cov_dense): G_ll' = sum_k s_kl s_kl' M^k_ll' / (2l'+1), M^k = k1 for terms of kind 1
  * (or when k2 is k1), else k2, for nt vectors s (nt x n); then the band
  * powers' block out = A_p G A_q^T (np x nq; A_p, A_q the rows of K^-1 P
  * wanted, np x n and nq x n), symmetrised when sym (A_p is A_q).  g: an
  * n x n workspace (reused between blocks: fresh pages cost as much as the
  * sums), or NULL. */
-static int propagate(int n, int nt, const double *s, const int *kind, const clef_coupling *k1,
+static int propagate_dense(int n, int nt, const double *s, const int *kind, const clef_coupling *k1,
                      const clef_coupling *k2, const double *ap, int np, const double *aq,
                      int nq, int sym, double *g, double *out)
 {
@@ -333,6 +336,118 @@ fail:
     return status;
 }
 
+/* The pseudo-spectra covariance propagated to band powers without forming
+ * G_ll' = sum_k s_kl s_kl' M^k_ll' / (2l'+1) (M^k = k1 for terms of kind 1
+ * or when k2 is k1, else k2; nt vectors s, nt x n).  The rows of the
+ * decoupling operator are A = K^-1 P (src/coupling.c), P the binning
+ * operator of the pair's reported and hidden bins (P_bl nonzero only for
+ * l in bin b; beams, pixel window and transfer function are inside K, so
+ * A is K^-1 times P and nothing is applied per l after the binning).  Hence
+ *   A_p G A_q^T = (K_p^-1)_rep (P_p G P_q^T) (K_q^-1)_rep^T,
+ * where B = P_p G P_q^T (nbp x nbq) is a weighted sum of G over the bin
+ * pairs, built row by row of G without storing it (O(nt n^2) additions
+ * against the 2 nb n^2 of the product A_p G), and the rest is a product of
+ * nb x nbp, nbp x nbq and nbq x nb matrices.  Multipoles in no bin (l < the
+ * first bin) have zero columns in P and are skipped.  kp, kq: the rows of
+ * K_p^-1 and K_q^-1 for the reported bins (nb x nbp, nb x nbq); out: nb x
+ * nb, symmetrised when sym (p's operator is q's). */
+static int propagate(int n, int nt, const double *s, const int *kind, const clef_coupling *k1,
+                     const clef_coupling *k2, const clef_bins *bp, const double *kp,
+                     const clef_bins *bq, const double *kq, int nb, int sym, double *out)
+{
+    const int one = k1 == k2;
+    const int nbp = clef_bins_count(bp), nbq = clef_bins_count(bq);
+    int status = CLEF_OK, fail_mem = 0;
+    double *t = malloc((size_t)nt * n * sizeof *t), *pl = malloc((size_t)n * sizeof *pl);
+    double *bsum = calloc((size_t)nbp * nbq, sizeof *bsum);
+    double *x = malloc((size_t)nb * nbq * sizeof *x);
+    if (!t || !pl || !bsum || !x) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", n - 1);
+        goto fail;
+    }
+    /* The columns of P_q and 1 / (2l'+1) folded into the vectors of l':
+     * t_kl' = s_kl' P_q(b', l') / (2l'+1); pl_l = P_p(b, l). */
+    int q0 = n, q1 = -1;
+    for (int l = 0; l < n; l++)
+        pl[l] = 0;
+    for (int j = 0; j < nbq; j++) {
+        const int lo = clef_bins_l_lo(bq, j), hi = clef_bins_l_hi(bq, j);
+        q0 = lo < q0 ? lo : q0;
+        q1 = hi > q1 ? hi : q1;
+        for (int l = lo; l <= hi; l++)
+            pl[l] = clef_bins_p(bq, j, l) / (2.0 * l + 1.0);
+    }
+    for (int k = 0; k < nt; k++)
+        for (int l = 0; l < n; l++)
+            t[(size_t)k * n + l] = s[(size_t)k * n + l] * pl[l];
+    for (int i = 0; i < nbp; i++)
+        for (int l = clef_bins_l_lo(bp, i); l <= clef_bins_l_hi(bp, i); l++)
+            pl[l] = clef_bins_p(bp, i, l);
+    const double *m1 = clef_coupling_matrix(k1), *m2 = clef_coupling_matrix(k2);
+#pragma omp parallel reduction(| : fail_mem)
+    {
+        /* Row l of G over l' = q0..q1, as the sums over the terms (vectors
+         * over l', in the order of the terms), then binned in l'. */
+        double *a1 = malloc((size_t)2 * n * sizeof *a1), *a2 = a1 ? a1 + n : NULL;
+        if (!a1)
+            fail_mem = 1;
+#pragma omp for schedule(dynamic, 1)
+        for (int i = 0; i < nbp; i++) {
+            if (!a1)
+                continue;
+            double *bi = bsum + (size_t)i * nbq;
+            for (int l = clef_bins_l_lo(bp, i); l <= clef_bins_l_hi(bp, i); l++) {
+                const double *m1l = m1 + (size_t)l * n, *m2l = m2 + (size_t)l * n;
+                int used2 = 0;
+                for (int lp = q0; lp <= q1; lp++)
+                    a1[lp] = a2[lp] = 0;
+                for (int k = 0; k < nt; k++) {
+                    const double *tk = t + (size_t)k * n;
+                    const double skl = s[(size_t)k * n + l];
+                    const int second = !(kind[k] == 1 || one);
+                    double *a = second ? a2 : a1;
+                    used2 |= second;
+                    for (int lp = q0; lp <= q1; lp++)
+                        a[lp] += skl * tk[lp];
+                }
+                for (int j = 0; j < nbq; j++) {
+                    const int lo = clef_bins_l_lo(bq, j), hi = clef_bins_l_hi(bq, j);
+                    double z = 0;
+                    if (used2)
+                        for (int lp = lo; lp <= hi; lp++)
+                            z += a1[lp] * m1l[lp] + a2[lp] * m2l[lp];
+                    else
+                        for (int lp = lo; lp <= hi; lp++)
+                            z += a1[lp] * m1l[lp];
+                    bi[j] += pl[l] * z;
+                }
+            }
+        }
+        free(a1);
+    }
+    if (fail_mem) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", n - 1);
+        goto fail;
+    }
+    /* x = (K_p^-1)_rep B, out = x (K_q^-1)_rep^T. */
+    cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, nb, nbq, nbp, 1.0, kp, nbp, bsum, nbq,
+                0.0, x, nbq);
+    cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasTrans, nb, nb, nbq, 1.0, x, nbq, kq, nbq, 0.0,
+                out, nb);
+    if (sym)
+        for (int i = 0; i < nb; i++)
+            for (int j = i + 1; j < nb; j++) {
+                double z = 0.5 * (out[(size_t)i * nb + j] + out[(size_t)j * nb + i]);
+                out[(size_t)i * nb + j] = out[(size_t)j * nb + i] = z;
+            }
+fail:
+    free(t);
+    free(pl);
+    free(bsum);
+    free(x);
+    return status;
+}
+
 /* The rows of K^-1 P of pair p for its reported bins (nb x n): the only
  * ones the tables and the joint covariance read. */
 static double *reported_rows(const clef_estimator *e, const est_pair *p)
@@ -346,9 +461,33 @@ static double *reported_rows(const clef_estimator *e, const est_pair *p)
     return r;
 }
 
-/* Covariance block of pairs p and q over their reported bins (nb x nb). */
+/* The rows of K^-1 of pair p's operator for its reported bins (nb x
+ * nb_all), made once per operator and kept in kinv[p->op]. */
+static int reported_kinv(const clef_estimator *e, const est_pair *p, double **kinv)
+{
+    if (kinv[p->op])
+        return CLEF_OK;
+    const int na = p->nb_all;
+    double *full = malloc((size_t)na * na * sizeof *full);
+    double *r = malloc((size_t)e->nb * na * sizeof *r);
+    int status = full && r ? clef_coupling_binned_kinv(p->kb, full)
+                           : clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
+    if (status == CLEF_OK)
+        for (int i = 0; i < e->nb; i++)
+            memcpy(r + (size_t)i * na, full + (size_t)p->rep[i] * na, (size_t)na * sizeof *r);
+    free(full);
+    if (status != CLEF_OK)
+        free(r);
+    else
+        kinv[p->op] = r;
+    return status;
+}
+
+/* Covariance block of pairs p and q over their reported bins (nb x nb).
+ * kinv: the per-operator rows of K^-1 (reported_kinv); g: the n x n
+ * workspace of the reference path (NULL otherwise). */
 static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double *const *raw,
-                 const double *w2, double *g, double *out)
+                 const double *w2, double **kinv, double *g, double *out)
 {
     const int lmax = e->lmax_ext, n = lmax + 1;
     term t[MAX_TERMS];
@@ -363,8 +502,8 @@ static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double
     int kind[MAX_TERMS];
     double *s = malloc((size_t)nt * n * sizeof *s), *u = malloc((size_t)n * sizeof *u);
     double *v = malloc((size_t)n * sizeof *v);
-    double *ap = reported_rows(e, p), *aq = q == p ? ap : reported_rows(e, q);
-    if (!s || !u || !v || !ap || !aq) {
+    double *ap = NULL, *aq = NULL;
+    if (!s || !u || !v) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", lmax);
         goto fail;
     }
@@ -374,7 +513,21 @@ static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double
         term_vector(&t[k], u, v, n, s + (size_t)k * n);
         kind[k] = t[k].kind;
     }
-    status = propagate(n, nt, s, kind, k1, k2, ap, e->nb, aq, e->nb, p->kb == q->kb, g, out);
+    if (g) {
+        ap = reported_rows(e, p);
+        aq = q == p ? ap : reported_rows(e, q);
+        if (!ap || !aq) {
+            status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", lmax);
+            goto fail;
+        }
+        status = propagate_dense(n, nt, s, kind, k1, k2, ap, e->nb, aq, e->nb, p->kb == q->kb,
+                                 g, out);
+    } else {
+        CLEF_CHECK(reported_kinv(e, p, kinv));
+        CLEF_CHECK(reported_kinv(e, q, kinv));
+        status = propagate(n, nt, s, kind, k1, k2, p->all_bins, kinv[p->op], q->all_bins,
+                           kinv[q->op], e->nb, p->kb == q->kb, out);
+    }
 fail:
     free(s);
     free(u);
@@ -393,7 +546,7 @@ int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
     const int lmax = in->lmax, n = lmax + 1;
     const int nb = clef_bins_count(in->bins);
     int status = CLEF_OK;
-    double *c[3] = {NULL, NULL, NULL};
+    double *c[3] = {NULL, NULL, NULL}, *kinv = NULL;
     double *s = malloc((size_t)2 * n * sizeof *s);
     for (int k = 0; k < 3; k++)
         c[k] = malloc((size_t)n * sizeof(double));
@@ -415,10 +568,18 @@ int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov)
         s[n + l] = c[0][l];
     }
     static const int kind[2] = {1, 1};
-    const double *a = clef_coupling_binned_kinv_p(in->kb);
-    status = propagate(n, 2, s, kind, in->m2, in->m2, a, nb, a, nb, 1, NULL, cov);
+    if (clef_spectrum_cov_dense) {
+        const double *a = clef_coupling_binned_kinv_p(in->kb);
+        status = propagate_dense(n, 2, s, kind, in->m2, in->m2, a, nb, a, nb, 1, NULL, cov);
+    } else if (!(kinv = malloc((size_t)nb * nb * sizeof *kinv))) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
+    } else if ((status = clef_coupling_binned_kinv(in->kb, kinv)) == CLEF_OK) {
+        status = propagate(n, 2, s, kind, in->m2, in->m2, in->bins, kinv, in->bins, kinv, nb, 1,
+                           cov);
+    }
 fail:
     free(s);
+    free(kinv);
     for (int k = 0; k < 3; k++)
         free(c[k]);
     return status;
@@ -465,10 +626,13 @@ int clef_est_covariance(clef_estimator *e)
     const size_t n = (size_t)e->lmax_ext + 1;
     int status = CLEF_OK;
     double **raw = calloc((size_t)nraw, sizeof *raw);
-    double *tmp = NULL, *w2 = weight_moments(e), *g = clef_alloc_large(n * n * sizeof *g);
+    double **kinv = calloc((size_t)e->nops, sizeof *kinv);
+    double *tmp = NULL, *w2 = weight_moments(e);
+    /* G itself only for the reference path. */
+    double *g = clef_spectrum_cov_dense ? clef_alloc_large(n * n * sizeof *g) : NULL;
     e->ncov = np * nb;
     e->cov = calloc((size_t)e->ncov * e->ncov, sizeof *e->cov);
-    if (!raw || !e->cov || !w2 || !g) {
+    if (!raw || !kinv || !e->cov || !w2 || (clef_spectrum_cov_dense && !g)) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance");
         goto fail;
     }
@@ -489,7 +653,7 @@ int clef_est_covariance(clef_estimator *e)
                 }
                 out = tmp;
             }
-            CLEF_CHECK(block(e, p, q, raw, w2, g, out));
+            CLEF_CHECK(block(e, p, q, raw, w2, kinv, g, out));
             for (int i = 0; i < nb; i++)
                 for (int j = 0; j < nb; j++) {
                     const double z = out[(size_t)i * nb + j];
@@ -503,6 +667,10 @@ fail:
         for (int k = 0; k < nraw; k++)
             free(raw[k]);
     free(raw);
+    if (kinv)
+        for (int k = 0; k < e->nops; k++)
+            free(kinv[k]);
+    free(kinv);
     free(tmp);
     free(w2);
     free(g);

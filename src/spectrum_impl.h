@@ -59,6 +59,12 @@ typedef struct clef_spectrum_cov_in {
  * [C^aa C^bb + C^ab C^ab] M[w_a w_b] / (2l'+1), propagated through K. */
 int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov);
 
+/* Tests only: 1 makes the covariance (clef_spectrum_covariance and the
+ * estimator's joint covariance) take the reference path, the n x n matrix
+ * G and the products (K^-1 P) G (K^-1 P)^T, instead of the binned sums of
+ * G (src/spectrum_cov.c, propagate).  Not thread-safe; 0 by default. */
+extern int clef_spectrum_cov_dense;
+
 /* Unbinned coupling matrix of a mask spectrum, through the cache when the
  * options allow it (spectrum_cov.c). */
 int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
