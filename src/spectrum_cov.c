@@ -25,7 +25,7 @@
  * (signed as X_l Y_l unless both are auto-spectra), and X_l X_l' for the
  * product of one spectrum with itself: exact on the diagonal and 2 C_l^2 /
  * (2l+1) on the full sky.  Propagation: Cov(D^p, D^q) = (K_p^-1 P) Cov(C~)
- * (K_q^-1 P)^T.
+ * (K_q^-1 P)^T, computed as K_p^-1 (P_p Cov(C~) P_q^T) K_q^-T (propagate).
  *
  * C is estimated from the measured pseudo-spectrum divided by the mask
  * moment mean(w_x w_y), smoothed in D_l by a leave-one-out fit over the
@@ -345,7 +345,7 @@ fail:
  * A is K^-1 times P and nothing is applied per l after the binning).  Hence
  *   A_p G A_q^T = (K_p^-1)_rep (P_p G P_q^T) (K_q^-1)_rep^T,
  * where B = P_p G P_q^T (nbp x nbq) is a weighted sum of G over the bin
- * pairs, built row by row of G without storing it (O(nt n^2) additions
+ * pairs, summed row by row of G without storing it (nt n^2 multiply-adds
  * against the 2 nb n^2 of the product A_p G), and the rest is a product of
  * nb x nbp, nbp x nbq and nbq x nb matrices.  Multipoles in no bin (l < the
  * first bin) have zero columns in P and are skipped.  kp, kq: the rows of
@@ -357,23 +357,23 @@ static int propagate(int n, int nt, const double *s, const int *kind, const clef
 {
     const int one = k1 == k2;
     const int nbp = clef_bins_count(bp), nbq = clef_bins_count(bq);
-    int status = CLEF_OK, fail_mem = 0;
+    int status = CLEF_OK;
     double *t = malloc((size_t)nt * n * sizeof *t), *pl = malloc((size_t)n * sizeof *pl);
     double *bsum = calloc((size_t)nbp * nbq, sizeof *bsum);
     double *x = malloc((size_t)nb * nbq * sizeof *x);
-    if (!t || !pl || !bsum || !x) {
+    int *qlh = malloc((size_t)2 * nbq * sizeof *qlh); /* bins of q: l_lo, l_hi */
+    if (!t || !pl || !bsum || !x || !qlh) {
         status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", n - 1);
         goto fail;
     }
     /* The columns of P_q and 1 / (2l'+1) folded into the vectors of l':
      * t_kl' = s_kl' P_q(b', l') / (2l'+1); pl_l = P_p(b, l). */
-    int q0 = n, q1 = -1;
     for (int l = 0; l < n; l++)
         pl[l] = 0;
     for (int j = 0; j < nbq; j++) {
         const int lo = clef_bins_l_lo(bq, j), hi = clef_bins_l_hi(bq, j);
-        q0 = lo < q0 ? lo : q0;
-        q1 = hi > q1 ? hi : q1;
+        qlh[2 * j] = lo;
+        qlh[2 * j + 1] = hi;
         for (int l = lo; l <= hi; l++)
             pl[l] = clef_bins_p(bq, j, l) / (2.0 * l + 1.0);
     }
@@ -384,50 +384,26 @@ static int propagate(int n, int nt, const double *s, const int *kind, const clef
         for (int l = clef_bins_l_lo(bp, i); l <= clef_bins_l_hi(bp, i); l++)
             pl[l] = clef_bins_p(bp, i, l);
     const double *m1 = clef_coupling_matrix(k1), *m2 = clef_coupling_matrix(k2);
-#pragma omp parallel reduction(| : fail_mem)
-    {
-        /* Row l of G over l' = q0..q1, as the sums over the terms (vectors
-         * over l', in the order of the terms), then binned in l'. */
-        double *a1 = malloc((size_t)2 * n * sizeof *a1), *a2 = a1 ? a1 + n : NULL;
-        if (!a1)
-            fail_mem = 1;
-#pragma omp for schedule(dynamic, 1)
-        for (int i = 0; i < nbp; i++) {
-            if (!a1)
-                continue;
-            double *bi = bsum + (size_t)i * nbq;
-            for (int l = clef_bins_l_lo(bp, i); l <= clef_bins_l_hi(bp, i); l++) {
-                const double *m1l = m1 + (size_t)l * n, *m2l = m2 + (size_t)l * n;
-                int used2 = 0;
-                for (int lp = q0; lp <= q1; lp++)
-                    a1[lp] = a2[lp] = 0;
-                for (int k = 0; k < nt; k++) {
-                    const double *tk = t + (size_t)k * n;
-                    const double skl = s[(size_t)k * n + l];
-                    const int second = !(kind[k] == 1 || one);
-                    double *a = second ? a2 : a1;
-                    used2 |= second;
-                    for (int lp = q0; lp <= q1; lp++)
-                        a[lp] += skl * tk[lp];
-                }
+    /* B_bb' = sum_{l in b} P_p(b, l) sum_k s_kl sum_{l' in b'} M^k_ll' t_kl':
+     * row l of each kernel is read from memory once and then, for each
+     * term, a short dot product per bin of q (no G, no stored row). */
+#pragma omp parallel for schedule(dynamic, 1)
+    for (int i = 0; i < nbp; i++) {
+        double *bi = bsum + (size_t)i * nbq;
+        for (int l = clef_bins_l_lo(bp, i); l <= clef_bins_l_hi(bp, i); l++) {
+            const double *m1l = m1 + (size_t)l * n, *m2l = m2 + (size_t)l * n;
+            for (int k = 0; k < nt; k++) {
+                const double *tk = t + (size_t)k * n;
+                const double *ml = (kind[k] == 1 || one) ? m1l : m2l;
+                const double f = pl[l] * s[(size_t)k * n + l];
                 for (int j = 0; j < nbq; j++) {
-                    const int lo = clef_bins_l_lo(bq, j), hi = clef_bins_l_hi(bq, j);
                     double z = 0;
-                    if (used2)
-                        for (int lp = lo; lp <= hi; lp++)
-                            z += a1[lp] * m1l[lp] + a2[lp] * m2l[lp];
-                    else
-                        for (int lp = lo; lp <= hi; lp++)
-                            z += a1[lp] * m1l[lp];
-                    bi[j] += pl[l] * z;
+                    for (int lp = qlh[2 * j]; lp <= qlh[2 * j + 1]; lp++)
+                        z += tk[lp] * ml[lp];
+                    bi[j] += f * z;
                 }
             }
         }
-        free(a1);
-    }
-    if (fail_mem) {
-        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", n - 1);
-        goto fail;
     }
     /* x = (K_p^-1)_rep B, out = x (K_q^-1)_rep^T. */
     cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, nb, nbq, nbp, 1.0, kp, nbp, bsum, nbq,
@@ -445,6 +421,7 @@ fail:
     free(pl);
     free(bsum);
     free(x);
+    free(qlh);
     return status;
 }
 

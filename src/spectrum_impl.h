@@ -74,6 +74,13 @@ int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int 
 void clef_spectrum_mask_key(int64_t nside, int lmax_t, int iterations, const double *w2,
                             const double *w1, char hex[65]);
 
+/* Cache key of a covariance kernel's spectrum W[w_x w_y, w_z w_u] (the
+ * cross-spectrum of two product masks, src/estimator_decouple.c): nside,
+ * lmax_t, iterations and the SHA-256 digests of the four weights (32 bytes
+ * each).  Stored as mask spectra (one row of lmax_t + 1). */
+void clef_spectrum_kernel_key(int64_t nside, int lmax_t, int iterations,
+                              const unsigned char *const sha[4], char hex[65]);
+
 /* Cache key of the deprojection correction: the mask key, the templates
  * removed from each map, the correction's range and the iterations. */
 void clef_spectrum_deproj_key(const char *mask_key, const int nf[2], int lp, int iterations,
