@@ -368,12 +368,15 @@ static int propagate(int n, int nt, const double *s, const int *kind, const clef
     }
     /* The columns of P_q and 1 / (2l'+1) folded into the vectors of l':
      * t_kl' = s_kl' P_q(b', l') / (2l'+1); pl_l = P_p(b, l). */
+    int q0 = n, q1 = -1; /* the range of l' that q's bins cover */
     for (int l = 0; l < n; l++)
         pl[l] = 0;
     for (int j = 0; j < nbq; j++) {
         const int lo = clef_bins_l_lo(bq, j), hi = clef_bins_l_hi(bq, j);
         qlh[2 * j] = lo;
         qlh[2 * j + 1] = hi;
+        q0 = lo < q0 ? lo : q0;
+        q1 = hi > q1 ? hi : q1;
         for (int l = lo; l <= hi; l++)
             pl[l] = clef_bins_p(bq, j, l) / (2.0 * l + 1.0);
     }
@@ -384,26 +387,47 @@ static int propagate(int n, int nt, const double *s, const int *kind, const clef
         for (int l = clef_bins_l_lo(bp, i); l <= clef_bins_l_hi(bp, i); l++)
             pl[l] = clef_bins_p(bp, i, l);
     const double *m1 = clef_coupling_matrix(k1), *m2 = clef_coupling_matrix(k2);
-    /* B_bb' = sum_{l in b} P_p(b, l) sum_k s_kl sum_{l' in b'} M^k_ll' t_kl':
-     * row l of each kernel is read from memory once and then, for each
-     * term, a short dot product per bin of q (no G, no stored row). */
-#pragma omp parallel for schedule(dynamic, 1)
-    for (int i = 0; i < nbp; i++) {
-        double *bi = bsum + (size_t)i * nbq;
-        for (int l = clef_bins_l_lo(bp, i); l <= clef_bins_l_hi(bp, i); l++) {
-            const double *m1l = m1 + (size_t)l * n, *m2l = m2 + (size_t)l * n;
-            for (int k = 0; k < nt; k++) {
-                const double *tk = t + (size_t)k * n;
-                const double *ml = (kind[k] == 1 || one) ? m1l : m2l;
-                const double f = pl[l] * s[(size_t)k * n + l];
-                for (int j = 0; j < nbq; j++) {
-                    double z = 0;
-                    for (int lp = qlh[2 * j]; lp <= qlh[2 * j + 1]; lp++)
-                        z += tk[lp] * ml[lp];
-                    bi[j] += f * z;
+    /* B_bb' = sum_{l' in b'} h_bl', h_bl' = sum_{l in b} P_p(b, l) sum_k s_kl
+     * M^k_ll' t_kl': for each bin b of p, the rows l of G in b are summed
+     * into one vector h over l' (element-wise products, which vectorise:
+     * a dot product per row and bin would be a chain of dependent
+     * additions), then h is summed over each bin b' of q.  Each kernel row
+     * is read once per block; G is never stored. */
+    int fail_mem = 0;
+#pragma omp parallel reduction(| : fail_mem)
+    {
+        double *h = malloc((size_t)n * sizeof *h);
+        if (!h)
+            fail_mem = 1;
+#pragma omp for schedule(dynamic, 1)
+        for (int i = 0; i < nbp; i++) {
+            if (!h)
+                continue;
+            for (int lp = 0; lp < n; lp++)
+                h[lp] = 0;
+            for (int l = clef_bins_l_lo(bp, i); l <= clef_bins_l_hi(bp, i); l++) {
+                const double *m1l = m1 + (size_t)l * n, *m2l = m2 + (size_t)l * n;
+                for (int k = 0; k < nt; k++) {
+                    const double *restrict tk = t + (size_t)k * n;
+                    const double *restrict ml = (kind[k] == 1 || one) ? m1l : m2l;
+                    const double f = pl[l] * s[(size_t)k * n + l];
+                    for (int lp = q0; lp <= q1; lp++)
+                        h[lp] += f * (tk[lp] * ml[lp]);
                 }
             }
+            double *bi = bsum + (size_t)i * nbq;
+            for (int j = 0; j < nbq; j++) {
+                double z = 0;
+                for (int lp = qlh[2 * j]; lp <= qlh[2 * j + 1]; lp++)
+                    z += h[lp];
+                bi[j] = z;
+            }
         }
+        free(h);
+    }
+    if (fail_mem) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", n - 1);
+        goto fail;
     }
     /* x = (K_p^-1)_rep B, out = x (K_q^-1)_rep^T. */
     cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, nb, nbq, nbp, 1.0, kp, nbp, bsum, nbq,
