@@ -2,6 +2,8 @@
 #ifndef CLEF_SPECTRUM_IMPL_H
 #define CLEF_SPECTRUM_IMPL_H
 
+#include <stddef.h>
+
 #include "clef/bins.h"
 #include "clef/coupling.h"
 #include "clef/spectrum.h"
@@ -64,6 +66,9 @@ int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov);
  * G and the products (K^-1 P) G (K^-1 P)^T, instead of the binned sums of
  * G (src/spectrum_cov.c, propagate).  Not thread-safe; 0 by default. */
 extern int clef_spectrum_cov_dense;
+/* Tests only: > 0 caps the memory of one batch of the joint covariance's
+ * blocks (src/spectrum_cov.c, shared_blocks; 1: a block per batch). */
+extern size_t clef_spectrum_cov_batch_bytes;
 
 /* Unbinned coupling matrix of a mask spectrum, through the cache when the
  * options allow it (spectrum_cov.c). */
