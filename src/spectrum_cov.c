@@ -268,9 +268,9 @@ static void term_vector(const term *t, const double *u, const double *v, int n, 
  * wanted, np x n and nq x n), symmetrised when sym (A_p is A_q).  g: an
  * n x n workspace (reused between blocks: fresh pages cost as much as the
  * sums), or NULL. */
-static int propagate_dense(int n, int nt, const double *s, const int *kind, const clef_coupling *k1,
-                     const clef_coupling *k2, const double *ap, int np, const double *aq,
-                     int nq, int sym, double *g, double *out)
+static int propagate_dense(int n, int nt, const double *s, const int *kind,
+                           const clef_coupling *k1, const clef_coupling *k2, const double *ap,
+                           int np, const double *aq, int nq, int sym, double *g, double *out)
 {
     const int one = k1 == k2;
     int status = CLEF_OK;
@@ -353,7 +353,9 @@ fail:
  * nb x nbp, nbp x nbq and nbq x nb matrices.  Multipoles in no bin (l < the
  * first bin) have zero columns in P and are skipped.  kp, kq: the rows of
  * K_p^-1 and K_q^-1 for the reported bins (nb x nbp, nb x nbq); out: nb x
- * nb, symmetrised when sym (p's operator is q's). */
+ * nb, symmetrised when sym (p's operator is q's).  One block at a time (the
+ * polarized spectra); the estimator's blocks take the same sums with their
+ * kernels shared (shared_blocks). */
 static int propagate(int n, int nt, const double *s, const int *kind, const clef_coupling *k1,
                      const clef_coupling *k2, const clef_bins *bp, const double *kp,
                      const clef_bins *bq, const double *kq, int nb, int sym, double *out)
@@ -487,11 +489,11 @@ static int reported_kinv(const clef_estimator *e, const est_pair *p, double **ki
     return status;
 }
 
-/* Covariance block of pairs p and q over their reported bins (nb x nb).
- * kinv: the per-operator rows of K^-1 (reported_kinv); g: the n x n
- * workspace of the reference path (NULL otherwise). */
+/* Covariance block of pairs p and q over their reported bins (nb x nb) by
+ * the reference path (clef_spectrum_cov_dense; shared_blocks below is the
+ * estimator's own); g: an n x n workspace. */
 static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double *const *raw,
-                 const double *w2, double **kinv, double *g, double *out)
+                 const double *w2, double *g, double *out)
 {
     const int lmax = e->lmax_ext, n = lmax + 1;
     term t[MAX_TERMS];
@@ -517,21 +519,14 @@ static int block(clef_estimator *e, const est_pair *p, const est_pair *q, double
         term_vector(&t[k], u, v, n, s + (size_t)k * n);
         kind[k] = t[k].kind;
     }
-    if (g) {
-        ap = reported_rows(e, p);
-        aq = q == p ? ap : reported_rows(e, q);
-        if (!ap || !aq) {
-            status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", lmax);
-            goto fail;
-        }
-        status = propagate_dense(n, nt, s, kind, k1, k2, ap, e->nb, aq, e->nb, p->kb == q->kb,
-                                 g, out);
-    } else {
-        CLEF_CHECK(reported_kinv(e, p, kinv));
-        CLEF_CHECK(reported_kinv(e, q, kinv));
-        status = propagate(n, nt, s, kind, k1, k2, p->all_bins, kinv[p->op], q->all_bins,
-                           kinv[q->op], e->nb, p->kb == q->kb, out);
+    ap = reported_rows(e, p);
+    aq = q == p ? ap : reported_rows(e, q);
+    if (!ap || !aq) {
+        status = clef_fail(CLEF_ENOMEM, "out of memory for the covariance (lmax %d)", lmax);
+        goto fail;
     }
+    status = propagate_dense(n, nt, s, kind, k1, k2, ap, e->nb, aq, e->nb, p->kb == q->kb, g,
+                             out);
 fail:
     free(s);
     free(u);
@@ -929,7 +924,7 @@ int clef_est_covariance(clef_estimator *e)
                 }
                 out = tmp;
             }
-            CLEF_CHECK(block(e, p, q, raw, w2, kinv, g, out));
+            CLEF_CHECK(block(e, p, q, raw, w2, g, out));
             for (int i = 0; i < nb; i++)
                 for (int j = 0; j < nb; j++) {
                     const double z = out[(size_t)i * nb + j];
