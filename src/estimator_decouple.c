@@ -345,10 +345,6 @@ void clef_est_kernel_key(int x, int y, int z, int u, int k[4])
     k[3] = q1;
 }
 
-/* The covariance kernel M[w_x w_y, w_z w_u] to lmax_ext (spectrum_cov.c):
- * from the mask spectra of a mask pair when it is one of its own two
- * kernels (cached with them), else from the weight transforms; its
- * coupling matrix through the coupling cache. */
 /* The cache key of kernel k (normalised weight ids): 0 when a weight is
  * known by neither its values nor its digest. */
 static int kernel_cache_key(clef_estimator *e, const int k[4], char key[65])
@@ -371,6 +367,10 @@ static int kernel_cache_key(clef_estimator *e, const int k[4], char key[65])
     return 1;
 }
 
+/* The covariance kernel M[w_x w_y, w_z w_u] to lmax_ext (spectrum_cov.c):
+ * from the mask spectra of a mask pair when it is one of its own two
+ * kernels (cached with them), else from the cache folder or the weight
+ * transforms; its coupling matrix through the coupling cache. */
 int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_coupling **m)
 {
     int k[4];
