@@ -517,6 +517,19 @@ double clef_coupling_binned_rcond(const clef_coupling_binned *k) { return k->rco
 const double *clef_coupling_binned_matrix(const clef_coupling_binned *k) { return k->k; }
 const double *clef_coupling_binned_kinv_p(const clef_coupling_binned *k) { return k->kinv_p; }
 
+int clef_coupling_binned_kinv(const clef_coupling_binned *k, double *kinv)
+{
+    const int nb = k->nbins;
+    for (int i = 0; i < nb; i++)
+        for (int j = 0; j < nb; j++)
+            kinv[(size_t)i * nb + j] = i == j;
+    const lapack_int info = LAPACKE_dgetrs(LAPACK_ROW_MAJOR, 'N', nb, nb, k->lu, nb, k->ipiv,
+                                           kinv, nb);
+    if (info != 0)
+        CLEF_FAIL(CLEF_ENUMERIC, "coupling: LAPACK dgetrs failed (info %d)", (int)info);
+    return CLEF_OK;
+}
+
 void clef_coupling_binned_decouple(const clef_coupling_binned *k, const double *pcl,
                                    double *band)
 {

@@ -51,6 +51,12 @@ int clef_coupling_binned_from_k(clef_coupling_binned **out, const double *k,
                                 const clef_bins *bins, int lmax, const double *wl,
                                 int wl_lmax, const clef_coupling_opts *opts);
 
+/* K^-1 (nbins x nbins, row-major) from the LU factors of K (LAPACK dgetrs
+ * on the identity): K^-1 P = K^-1 . P lets a product A G A^T with A = K^-1 P
+ * be formed as K^-1 (P G P^T) K^-T, P G P^T being a binned sum of G
+ * (src/spectrum_cov.c). */
+int clef_coupling_binned_kinv(const clef_coupling_binned *k, double *kinv);
+
 /* Validate the transfer array (NULL allowed) for 0..lmax. */
 int clef_coupling_check_transfer(const double *transfer, int lmax);
 

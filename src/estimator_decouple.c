@@ -13,6 +13,7 @@
 #include <stdlib.h>
 #include <string.h>
 
+#include "clef/hash.h"
 #include "clef/sht.h"
 #include "core_impl.h"
 #include "estimator_impl.h"
@@ -344,10 +345,32 @@ void clef_est_kernel_key(int x, int y, int z, int u, int k[4])
     k[3] = q1;
 }
 
+/* The cache key of kernel k (normalised weight ids): 0 when a weight is
+ * known by neither its values nor its digest. */
+static int kernel_cache_key(clef_estimator *e, const int k[4], char key[65])
+{
+    const unsigned char *sha[4];
+    for (int i = 0; i < 4; i++) {
+        est_weights *w = &e->weights[k[i]];
+        if (!w->has_sha) {
+            if (!w->w)
+                return 0;
+            clef_sha256 h;
+            clef_sha256_init(&h);
+            clef_sha256_update(&h, w->w, (size_t)e->npix * sizeof *w->w);
+            clef_sha256_final(&h, w->sha);
+            w->has_sha = 1;
+        }
+        sha[i] = w->sha;
+    }
+    clef_spectrum_kernel_key(e->nside, e->lmax_t, e->o.iterations, sha, key);
+    return 1;
+}
+
 /* The covariance kernel M[w_x w_y, w_z w_u] to lmax_ext (spectrum_cov.c):
  * from the mask spectra of a mask pair when it is one of its own two
- * kernels (cached with them), else from the weight transforms; its
- * coupling matrix through the coupling cache. */
+ * kernels (cached with them), else from the cache folder or the weight
+ * transforms; its coupling matrix through the coupling cache. */
 int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_coupling **m)
 {
     int k[4];
@@ -371,13 +394,25 @@ int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_co
         else if (!memcmp(k, k1, sizeof k))
             wl = mk->wl + (size_t)(mk->nrows - 1) * (lt + 1);
     }
+    /* A kernel that is none of the mask pairs' (the cross-pair blocks of
+     * the joint covariance) needs the transforms of the product masks,
+     * nweights (nweights + 3) / 2 of them: a rerun with the same weights
+     * takes its spectrum from the cache folder instead, as the mask pairs'
+     * spectra (clef_est_mask_pairs). */
+    char key[65] = "";
     if (!wl && !taken) {
-        CLEF_TRY(clef_est_weight_alms(e));
         if (!(own = malloc(((size_t)lt + 1) * sizeof *own)))
             CLEF_FAIL(CLEF_ENOMEM, "out of memory for a covariance kernel");
+        if (e->o.use_cache && kernel_cache_key(e, k, key) &&
+            clef_spectrum_mask_cache(&e->o, key, lt, 1, own, 0))
+            wl = own;
+    }
+    if (!wl && !taken) {
+        int status = clef_est_weight_alms(e);
         const int i1 = clef_est_product_index(e, k[0], k[1]);
         const int i2 = clef_est_product_index(e, k[2], k[3]);
-        int status = clef_alm_cl(lt, lt, e->walm[i1], i1 == i2 ? NULL : e->walm[i2], own);
+        if (status == CLEF_OK)
+            status = clef_alm_cl(lt, lt, e->walm[i1], i1 == i2 ? NULL : e->walm[i2], own);
         if (status != CLEF_OK) {
             free(own);
             return status;
@@ -386,6 +421,8 @@ int clef_est_kernel(clef_estimator *e, int x, int y, int z, int u, const clef_co
             if (own[l] < 0)
                 own[l] = 0;
         wl = own;
+        if (key[0])
+            clef_spectrum_mask_cache(&e->o, key, lt, 1, own, 1);
     }
     est_kernel *nk = realloc(e->kernels, (size_t)(e->nkernels + 1) * sizeof *nk);
     if (!nk) {

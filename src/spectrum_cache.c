@@ -57,6 +57,40 @@ int clef_spectrum_mask_cache(const clef_spectrum_opts *o, const char *key, int l
                     (size_t)lmax_t + 1, wl, store);
 }
 
+void clef_spectrum_kernel_key(int64_t nside, int lmax_t, int iterations,
+                              const unsigned char *const sha[4], char hex[65])
+{
+    /* W[u, v] = W[v, u] and u = w_x w_y = w_y w_x: the weights' digests
+     * ordered within each product, then the products, so that the key does
+     * not depend on the order in which a run numbered its weights. */
+    const unsigned char *d4[4] = {sha[0], sha[1], sha[2], sha[3]};
+    for (int p = 0; p < 4; p += 2)
+        if (memcmp(d4[p], d4[p + 1], 32) > 0) {
+            const unsigned char *t = d4[p];
+            d4[p] = d4[p + 1];
+            d4[p + 1] = t;
+        }
+    const int c = memcmp(d4[0], d4[2], 32);
+    if (c > 0 || (c == 0 && memcmp(d4[1], d4[3], 32) > 0)) {
+        const unsigned char *t0 = d4[0], *t1 = d4[1];
+        d4[0] = d4[2];
+        d4[1] = d4[3];
+        d4[2] = t0;
+        d4[3] = t1;
+    }
+    clef_sha256 h;
+    unsigned char d[CLEF_SHA256_BYTES];
+    const int64_t v[3] = {nside, lmax_t, iterations};
+    clef_sha256_init(&h);
+    clef_sha256_update(&h, "clef kernel spectrum", 21);
+    clef_sha256_update(&h, CLEF_VERSION, sizeof CLEF_VERSION);
+    clef_sha256_update(&h, v, sizeof v);
+    for (int k = 0; k < 4; k++)
+        clef_sha256_update(&h, d4[k], 32);
+    clef_sha256_final(&h, d);
+    clef_sha256_hex(d, hex);
+}
+
 void clef_spectrum_deproj_key(const char *mask_key, const int nf[2], int lp, int iterations,
                               char hex[65])
 {

@@ -2,6 +2,8 @@
 #ifndef CLEF_SPECTRUM_IMPL_H
 #define CLEF_SPECTRUM_IMPL_H
 
+#include <stddef.h>
+
 #include "clef/bins.h"
 #include "clef/coupling.h"
 #include "clef/spectrum.h"
@@ -60,6 +62,15 @@ typedef struct clef_spectrum_cov_in {
  * [C^aa C^bb + C^ab C^ab] M[w_a w_b] / (2l'+1), propagated through K. */
 int clef_spectrum_covariance(const clef_spectrum_cov_in *in, double *cov);
 
+/* Tests only: 1 makes the covariance (clef_spectrum_covariance and the
+ * estimator's joint covariance) take the reference path, the n x n matrix
+ * G and the products (K^-1 P) G (K^-1 P)^T, instead of the binned sums of
+ * G (src/spectrum_cov.c, propagate).  Not thread-safe; 0 by default. */
+extern int clef_spectrum_cov_dense;
+/* Tests only: > 0 caps the memory of one batch of the joint covariance's
+ * blocks (src/spectrum_cov.c, shared_blocks; 1: a block per batch). */
+extern size_t clef_spectrum_cov_batch_bytes;
+
 /* Unbinned coupling matrix of a mask spectrum, through the cache when the
  * options allow it (spectrum_cov.c). */
 int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int wl_lmax,
@@ -68,6 +79,13 @@ int clef_spectrum_coupling(clef_coupling **out, int lmax, const double *wl, int 
 /* Cache key of the mask spectra: the weights, nside, lmax_t, iterations. */
 void clef_spectrum_mask_key(int64_t nside, int lmax_t, int iterations, const double *w2,
                             const double *w1, char hex[65]);
+
+/* Cache key of a covariance kernel's spectrum W[w_x w_y, w_z w_u] (the
+ * cross-spectrum of two product masks, src/estimator_decouple.c): nside,
+ * lmax_t, iterations and the SHA-256 digests of the four weights (32 bytes
+ * each).  Stored as mask spectra (one row of lmax_t + 1). */
+void clef_spectrum_kernel_key(int64_t nside, int lmax_t, int iterations,
+                              const unsigned char *const sha[4], char hex[65]);
 
 /* Cache key of the deprojection correction: the mask key, the templates
  * removed from each map, the correction's range and the iterations. */

@@ -458,6 +458,51 @@ static void test_split_cross(void **state)
     sky_free(&k);
 }
 
+/* The cross-pair kernels of the joint covariance (W[w_0^2, w_0 w_1] and
+ * W[w_0 w_1, w_1^2] here, none of the mask pairs' own spectra) in the cache
+ * folder: a rerun with the same weights makes no mask transform at all and
+ * gives the same joint covariance bit for bit; the first run made them
+ * (5 transforms: w_0, w_1 and the three products). */
+static void test_kernel_cache(void **state)
+{
+    (void)state;
+    sky k;
+    sky_init(&k, 32);
+    sky_draw(&k, 21, 20.0);
+    char dir[] = "/tmp/clef-test-kernels-XXXXXX";
+    assert_non_null(mkdtemp(dir));
+    clef_spectrum_opts o;
+    base_opts(&o);
+    o.use_cache = 1;
+    o.cache_dir = dir;
+    clef_field f[NF];
+    one_map_fields(&k, f, 1);
+    double *cov[2] = {NULL, NULL};
+    int n[2] = {0, 0}, nmask[2] = {-1, -1};
+    for (int run = 0; run < 2; run++) {
+        clef_estimator *e = NULL;
+        assert_int_equal(clef_estimator_create(&e, &o, 1), CLEF_OK);
+        for (int i = 0; i < NF; i++)
+            assert_int_equal(clef_estimator_add_field(e, &f[i]), CLEF_OK);
+        compute_ok(e);
+        clef_estimator_transforms(e, NULL, &nmask[run]);
+        const double *c = clef_estimator_covariance(e, &n[run]);
+        cov[run] = malloc((size_t)n[run] * n[run] * sizeof *cov[run]);
+        memcpy(cov[run], c, (size_t)n[run] * n[run] * sizeof *cov[run]);
+        clef_estimator_destroy(e);
+    }
+    assert_int_equal(nmask[0], 5);
+    assert_int_equal(nmask[1], 0);
+    assert_int_equal(n[0], n[1]);
+    assert_memory_equal(cov[0], cov[1], (size_t)n[0] * n[0] * sizeof *cov[0]);
+    free(cov[0]);
+    free(cov[1]);
+    char cmd[128];
+    snprintf(cmd, sizeof cmd, "rm -rf %s", dir);
+    assert_int_equal(system(cmd), 0);
+    sky_free(&k);
+}
+
 static void test_bad_fields(void **state)
 {
     (void)state;
@@ -633,6 +678,7 @@ int main(void)
         cmocka_unit_test(test_shared_mask_pairs),
         cmocka_unit_test(test_maps_on_demand),
         cmocka_unit_test(test_split_cross),
+        cmocka_unit_test(test_kernel_cache),
         cmocka_unit_test(test_ensemble),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);

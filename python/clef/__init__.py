@@ -155,29 +155,31 @@ def spectrum_run(path, *, cache: bool = True, cache_dir: _Optional[str] = None,
               pixel_window=run["pixel_window"] != 0)
     if run["iterations"] >= 0:
         kw["iterations"] = run["iterations"]
-    maps, masks, nside = [], [], None
+    # The maps' headers now (nside, errors naming the run file's line); the
+    # pixels are read by the estimator one map at a time, when it transforms
+    # each (as the command: N fields never hold N maps).
+    masks, nside, read_masks = [], None, {}
     for f in run["fields"]:
-        fm = []
         for p in f["maps"]:
             try:
-                fm.append(_clef.read_map(p))
+                ns = _clef.read_map_header(p)["nside"]
             except Error as e:
                 raise _run_error(run, f, f["maps_line"], "maps", e) from None
-            ns = fm[-1][1]["nside"]
             if nside is None:
                 nside = ns
             elif ns != nside:
                 raise _run_error(run, f, f["maps_line"], "maps", InvalidArgumentError(
                     f"map '{p}' has nside {ns}, the first field's maps nside {nside}: every "
                     "field must be on one grid"))
-        try:
-            mask = _clef.read_map(f["mask"])
-        except Error as e:
-            raise _run_error(run, f, f["line"], "mask", e) from None
+        mask = read_masks.get(f["mask"])  # a mask named by several fields is read once
+        if mask is None:
+            try:
+                mask = read_masks[f["mask"]] = _clef.read_map(f["mask"])
+            except Error as e:
+                raise _run_error(run, f, f["line"], "mask", e) from None
         if mask[1]["nside"] != nside:
             raise _run_error(run, f, f["line"], "mask", InvalidArgumentError(
                 f"mask '{f['mask']}' has nside {mask[1]['nside']}, the maps nside {nside}"))
-        maps.append(fm)
         masks.append(mask)
     lread = 3 * nside - 1
     if run["covariance_model"]:
@@ -198,18 +200,25 @@ def spectrum_run(path, *, cache: bool = True, cache_dir: _Optional[str] = None,
                                                  "noise_spectrum": "noise-spectrum"}.get(key, key),
                              e) from None
 
-    for f, fm, mask in zip(run["fields"], maps, masks):
+    for f, mask in zip(run["fields"], masks):
         pix = mask[0]
         if _np.isnan(pix).any():  # a pixel missing from the mask file is unobserved
             pix = _np.where(_np.isnan(pix), 0.0, pix)
-        est.add_field(f["name"], [m[0] for m in fm], pix, beam_fwhm=f["beam_fwhm"],
+        # The map files themselves: read by the estimator (every nside was
+        # checked above).
+        est.add_field(f["name"], list(f["maps"]), pix, beam_fwhm=f["beam_fwhm"],
                       beam=table(f, "beam_table", _clef.read_beam),
                       transfer=table(f, "transfer", _clef.read_beam),
                       noise_cl=table(f, "noise_spectrum", lambda p, l: _clef.read_cl(p, lmax=l)),
-                      unit=[m[1]["unit"] for m in fm], coordsys=[m[1]["coordsys"] for m in fm],
                       mask_coordsys=mask[1]["coordsys"])
     for a, b in run["pairs"] or ():
         est.add_pair(a, b)
-    out = est.compute()
+    try:
+        out = est.compute()
+    except Error as e:
+        if est.load_failed is None:
+            raise
+        f = next(f for f in run["fields"] if f["name"] == est.load_failed[0])
+        raise _run_error(run, f, f["maps_line"], "maps", e) from None
     out["run"] = run
     return out

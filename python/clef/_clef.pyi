@@ -126,6 +126,7 @@ class Estimator:
     nfields: int
     computed: bool
     field_names: Tuple[str, ...]
+    load_failed: Optional[Tuple[str, int]]
     def __init__(self, *, lmax: int = ..., bin_width: int = ...,
                  bins: Union[_Path, npt.ArrayLike, None] = ..., pixel_window: bool = ...,
                  theory_cl: Optional[npt.ArrayLike] = ..., iterations: int = ...,
@@ -134,7 +135,8 @@ class Estimator:
                  peak_l_max: float = ..., peak_half_width: float = ...,
                  peak_curv_sigma: Optional[float] = ..., allow_coord_mismatch: bool = ...,
                  peak_error_draws: int = ...) -> None: ...
-    def add_field(self, name: str, maps: Union[npt.ArrayLike, Sequence[npt.ArrayLike]],
+    def add_field(self, name: str,
+                  maps: Union[npt.ArrayLike, Sequence[npt.ArrayLike], _Path, Sequence[_Path]],
                   mask: npt.ArrayLike, *, beam_fwhm: float = ...,
                   beam: Optional[npt.ArrayLike] = ..., transfer: Optional[npt.ArrayLike] = ...,
                   noise_cl: Optional[npt.ArrayLike] = ..., unit: Union[str, Sequence[str]] = ...,

@@ -22,6 +22,11 @@ typedef struct est_field {
     char mask_name[CLEF_FIELD_NAME_MAX + 16];
     pyclef_map maps[CLEF_FIELD_MAX_SPLITS], mask;
     PyArrayObject *tabs[3]; /* beam, transfer, noise */
+    /* Maps given as files: read by the estimator when it needs each one
+     * (clef_field.load_map) and freed after its transform, as `clef
+     * spectrum --run` does, so N fields never hold N maps. */
+    char *paths[CLEF_FIELD_MAX_SPLITS];
+    int load_failed;           /* 1 + the split whose file could not be read */
 } est_field;
 
 typedef struct {
@@ -42,8 +47,10 @@ typedef struct {
 /* Releases one field's maps, mask and tables (used on add failure and dealloc). */
 static void field_free(est_field *f)
 {
-    for (int s = 0; s < CLEF_FIELD_MAX_SPLITS; s++)
+    for (int s = 0; s < CLEF_FIELD_MAX_SPLITS; s++) {
         pyclef_map_release(&f->maps[s]);
+        free(f->paths[s]);
+    }
     pyclef_map_release(&f->mask);
     for (int k = 0; k < 3; k++)
         Py_XDECREF(f->tabs[k]);
@@ -164,6 +171,23 @@ static const char *per_split(PyObject *o, int s, const char *what)
     return v;
 }
 
+/* Split `split` of a field given as files, read when the estimator needs
+ * it (called with the GIL released: C only). */
+static int load_file(void *arg, int split, clef_map **out)
+{
+    est_field *f = arg;
+    const int st = clef_map_read(out, f->paths[split], NULL);
+    if (st != CLEF_OK)
+        f->load_failed = split + 1;
+    return st;
+}
+
+/* 1 when o is a path (str, bytes or os.PathLike). */
+static int is_path(PyObject *o)
+{
+    return PyUnicode_Check(o) || PyBytes_Check(o) || PyObject_HasAttrString(o, "__fspath__");
+}
+
 static PyObject *est_add_field(EstimatorObject *self, PyObject *args, PyObject *kw)
 {
     if (!self->inited)
@@ -192,9 +216,10 @@ static PyObject *est_add_field(EstimatorObject *self, PyObject *args, PyObject *
         return PyErr_Format(PyExc_ValueError, "beam_fwhm must not be negative, got %g", fwhm);
     if (beam_o != Py_None && fwhm > 0)
         return PyErr_Format(PyExc_ValueError, "choose one of beam_fwhm and beam");
-    /* maps: one 1-d array, an (nsplits, npix) array or a sequence of 1-d arrays. */
+    /* maps: one 1-d array, an (nsplits, npix) array or a sequence of 1-d
+     * arrays; or one file or a sequence of files. */
     PyObject *seq;
-    if (PyArray_Check(maps_o) && PyArray_NDIM((PyArrayObject *)maps_o) == 1)
+    if ((PyArray_Check(maps_o) && PyArray_NDIM((PyArrayObject *)maps_o) == 1) || is_path(maps_o))
         seq = PyTuple_Pack(1, maps_o);
     else
         seq = PySequence_Check(maps_o) ? PySequence_Tuple(maps_o) : NULL;
@@ -218,7 +243,49 @@ static PyObject *est_add_field(EstimatorObject *self, PyObject *args, PyObject *
     snprintf(f->name, sizeof f->name, "%s", name);
     f->f.name = f->name;
     f->f.nsplits = (int)ns;
-    for (int s = 0; s < (int)ns; s++) {
+    int files = 0;
+    for (int s = 0; s < (int)ns; s++)
+        files += is_path(PyTuple_GET_ITEM(seq, s));
+    if (files && files != (int)ns) {
+        PyErr_Format(PyExc_TypeError, "field '%s': maps must be all arrays or all files", name);
+        goto fail;
+    }
+    int64_t file_nside = 0;
+    for (int s = 0; s < files; s++) {
+        /* The header now (nside, and a clear error naming the file before
+         * any work); the pixels when the estimator asks for them. */
+        PyObject *b = NULL;
+        if (!PyUnicode_FSConverter(PyTuple_GET_ITEM(seq, s), &b))
+            goto fail;
+        f->paths[s] = strdup(PyBytes_AS_STRING(b));
+        Py_DECREF(b);
+        if (!f->paths[s]) {
+            PyErr_NoMemory();
+            goto fail;
+        }
+        clef_map *hdr = NULL;
+        const int st = clef_map_read_header(&hdr, f->paths[s], NULL);
+        if (st != CLEF_OK) {
+            pyclef_raise(st);
+            goto fail;
+        }
+        const int64_t nsd = hdr->nside;
+        clef_map_free(hdr);
+        if (s == 0) {
+            file_nside = nsd;
+        } else if (nsd != file_nside) {
+            PyErr_Format(PyExc_ValueError, "field '%s': map '%s' has nside %lld, its first "
+                         "map nside %lld", name, f->paths[s], (long long)nsd,
+                         (long long)file_nside);
+            goto fail;
+        }
+        f->f.map_names[s] = f->paths[s]; /* as the command names them */
+    }
+    if (files) {
+        f->f.load_map = load_file;
+        f->f.load_arg = f;
+    }
+    for (int s = 0; s < (int)ns && !files; s++) {
         snprintf(f->map_names[s], sizeof f->map_names[s], "%s map %d", name, s + 1);
         const char *unit = unit_o ? per_split(unit_o, s, "unit") : "";
         const char *coord = unit && coord_o ? per_split(coord_o, s, "coordsys") : "";
@@ -239,7 +306,7 @@ static PyObject *est_add_field(EstimatorObject *self, PyObject *args, PyObject *
         pyclef_table(transfer_o, "transfer", &f->tabs[1], &f->f.transfer, &f->f.transfer_lmax) < 0 ||
         pyclef_table(noise_o, "noise_cl", &f->tabs[2], &f->f.noise_cl, &f->f.noise_lmax) < 0)
         goto fail;
-    if (!self->e && est_create(self, f->maps[0].m.nside) < 0)
+    if (!self->e && est_create(self, files ? file_nside : f->maps[0].m.nside) < 0)
         goto fail;
     const int st = clef_estimator_add_field(self->e, &f->f);
     if (st != CLEF_OK) {
@@ -376,6 +443,13 @@ static PyObject *est_get(EstimatorObject *self, void *what)
         return PyLong_FromLong(self->nf);
     if (w == 1)
         return PyBool_FromLong(self->computed);
+    if (w == 3) {
+        for (int i = 0; i < self->nf; i++)
+            if (self->fields[i]->load_failed)
+                return Py_BuildValue("(si)", self->fields[i]->name,
+                                     self->fields[i]->load_failed - 1);
+        Py_RETURN_NONE;
+    }
     PyObject *t = PyTuple_New(self->nf);
     for (int i = 0; t && i < self->nf; i++)
         PyTuple_SET_ITEM(t, i, PyUnicode_FromString(self->fields[i]->name));
@@ -386,6 +460,9 @@ static PyGetSetDef est_getset[] = {
     {"nfields", (getter)est_get, NULL, "Fields added.", (void *)0},
     {"computed", (getter)est_get, NULL, "True once compute() has run.", (void *)1},
     {"field_names", (getter)est_get, NULL, "Names of the fields, in order.", (void *)2},
+    {"load_failed", (getter)est_get, NULL,
+     "(field name, split) of the map file that compute() could not read, or None.",
+     (void *)3},
     {NULL, NULL, NULL, NULL, NULL}};
 
 static PyMethodDef est_methods[] = {
@@ -394,11 +471,13 @@ static PyMethodDef est_methods[] = {
      "          unit='', coordsys='', mask_coordsys='')\n--\n\n"
      "Add a field (include/clef/field.h): `name` (unique, names the pairs), `maps` one\n"
      "float64 RING map or 2..8 noise splits of one sky (an (nsplits, npix) array or a list\n"
-     "of maps; NaN = missing pixel), `mask` (weights in [0, 1], no NaN; every split shares\n"
-     "it), beam_fwhm [arcmin] or beam (B_l from l = 0), transfer (F_l in power), noise_cl\n"
-     "(N_l [uK^2] of the single map, subtracted from its auto-spectrum; refused with\n"
-     "splits), unit and coordsys of the maps (a str, or one per split) and of the mask.\n"
-     "The arrays are kept (not copied) until the estimator is freed."},
+     "of maps; NaN = missing pixel; or one map file or a list of them, each read when\n"
+     "compute() transforms it and freed after, unit and coordsys from the file), `mask`\n"
+     "(weights in [0, 1], no NaN; every split shares it), beam_fwhm [arcmin] or beam\n"
+     "(B_l from l = 0), transfer (F_l in power), noise_cl (N_l [uK^2] of the single map,\n"
+     "subtracted from its auto-spectrum; refused with splits), unit and coordsys of the\n"
+     "maps given as arrays (a str, or one per split) and of the mask.  The arrays are kept\n"
+     "(not copied) until the estimator is freed."},
     {"add_pair", (PyCFunction)est_add_pair, METH_VARARGS,
      "add_pair(a, b, /)\n--\n\n"
      "Request the spectrum of the fields named a and b (a may equal b).  Without any pair\n"

@@ -132,6 +132,56 @@ def test_estimator_arrays(runs):
         e.add_field("d", s1, mask)
 
 
+def test_maps_from_files(runs, tmp_path):
+    """Maps given as files are read when compute() transforms them (as
+    `clef spectrum --run`, which clef.spectrum_run now matches this way),
+    not when the field is added: the same numbers as the arrays, bit for
+    bit; a file rewritten after add_field gives the new map's spectra; one
+    removed after add_field fails in compute() naming the file, and
+    load_failed names the field and split."""
+    import shutil
+    mask, _ = clef.read_map(runs / "mask.fits")
+    s1, m1 = clef.read_map(runs / "sky_split1.fits")
+    s2, _ = clef.read_map(runs / "sky_split2.fits")
+    o, mo = clef.read_map(runs / "other.fits")
+
+    def arrays(x, y):
+        e = clef.Estimator(cache=False, peak=False)
+        e.add_field("a", np.stack([x, y]), mask, unit=m1["unit"], coordsys=m1["coordsys"])
+        return e.compute()
+
+    ref = arrays(s1, s2)
+    e = clef.Estimator(cache=False, peak=False)
+    e.add_field("a", [runs / "sky_split1.fits", str(runs / "sky_split2.fits")], mask,
+                mask_coordsys=m1["coordsys"])
+    r = e.compute()
+    assert e.load_failed is None
+    assert np.array_equal(r["cov"], ref["cov"])
+    assert np.array_equal(r["pairs"]["a x a"]["dl"], ref["pairs"]["a x a"]["dl"])
+    # Read at compute(): split 2 replaced by another sky after add_field.
+    shutil.copy(runs / "sky_split1.fits", tmp_path / "s1.fits")
+    shutil.copy(runs / "sky_split2.fits", tmp_path / "s2.fits")
+    e = clef.Estimator(cache=False, peak=False)
+    e.add_field("a", [tmp_path / "s1.fits", tmp_path / "s2.fits"], mask,
+                mask_coordsys=m1["coordsys"])
+    shutil.copy(runs / "other.fits", tmp_path / "s2.fits")
+    r = e.compute()
+    new = arrays(s1, o)
+    assert np.array_equal(r["pairs"]["a x a"]["dl"], new["pairs"]["a x a"]["dl"])
+    assert not np.array_equal(new["pairs"]["a x a"]["dl"], ref["pairs"]["a x a"]["dl"])
+    # Removed after add_field (its header was read then).
+    e = clef.Estimator(cache=False, peak=False)
+    e.add_field("a", [tmp_path / "s1.fits", tmp_path / "s2.fits"], mask)
+    (tmp_path / "s2.fits").unlink()
+    with pytest.raises(clef.FileError, match="s2.fits"):
+        e.compute()
+    assert e.load_failed == ("a", 1)
+    with pytest.raises(clef.FileError, match="gone.fits"):
+        clef.Estimator().add_field("a", tmp_path / "gone.fits", mask)
+    with pytest.raises(TypeError, match="all arrays or all files"):
+        clef.Estimator().add_field("a", [s1, tmp_path / "s1.fits"], mask)
+
+
 def test_bad_input(runs, tmp_path):
     s1, _ = clef.read_map(runs / "sky_split1.fits")
     mask, _ = clef.read_map(runs / "mask.fits")
