@@ -355,6 +355,8 @@ int clef_estimator_compute(clef_estimator *e)
     e->t0 = clef_wtime();
     CLEF_TRY(stage_lmax(e));
     CLEF_TRY(clef_est_prepare(e));
+    if (e->o.inputs_done) /* the weights and a_lm are all that is kept of the inputs */
+        e->o.inputs_done(e->o.inputs_done_arg);
     if (e->after_maps) { /* nothing below the map transforms has been read or made yet */
         clef_estimator *late = e->after_maps(e->after_maps_arg);
         if (late) { /* pieces handed over now (another process's, clef sims) */

@@ -59,6 +59,16 @@ int clef_map_copy(clef_map **out, const clef_map *m)
     return CLEF_OK;
 }
 
+void clef_map_release_pixels(clef_map *m)
+{
+    if (!m)
+        return;
+    free(m->pix);
+    free(m->valid);
+    m->pix = NULL;
+    m->valid = NULL;
+}
+
 void clef_map_free(clef_map *m)
 {
     if (!m)

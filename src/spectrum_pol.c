@@ -525,6 +525,7 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
     int status = CLEF_OK;
     /* TT: the temperature estimator (clef_spectrum_compute), unchanged. */
     o.keep_alm = 1;
+    o.inputs_done = NULL; /* Q, U and the P mask are weighted after TT */
     CLEF_CHECK(clef_spectrum_compute(f1->t, f2 ? f2->t : NULL, mask_t, NULL, &o, &res->tt));
     /* The T a_lm of the TT run (weighted, multipoles removed, uK, to
      * lmax_ext) serve the TE and TB pseudo-spectra: no second analysis. */

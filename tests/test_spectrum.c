@@ -1133,6 +1133,59 @@ static void test_threads(void **state)
     clef_map_free(mask);
 }
 
+/* inputs_done (spectrum.h): called once, after which no pixel of the maps
+ * or masks is read: releasing them there (as clef spectrum does) leaves a
+ * cross-spectrum with two masks, its errors and windows, the same bits. */
+typedef struct {
+    clef_map **m;
+    int calls;
+} release_ctx;
+
+static void release_inputs(void *arg)
+{
+    release_ctx *c = arg;
+    c->calls++;
+    for (int i = 0; i < 4; i++)
+        clef_map_release_pixels(c->m[i]);
+}
+
+static void test_inputs_done(void **state)
+{
+    (void)state;
+    const int64_t nside = 32;
+    clef_map *in[4] = {white_map(nside, 1.0), white_map(nside, 2.0), cut_mask(nside, 20, 10),
+                       cut_mask(nside, 25, 10)};
+    clef_map *cp[4];
+    for (int i = 0; i < 4; i++)
+        assert_int_equal(clef_map_copy(&cp[i], in[i]), CLEF_OK);
+    clef_spectrum_opts o;
+    clef_spectrum_opts_default(&o);
+    o.use_cache = 0;
+    o.find_peak = 0;
+    clef_spectrum_result r1, r2;
+    assert_int_equal(clef_spectrum_compute(in[0], in[1], in[2], in[3], &o, &r1), CLEF_OK);
+    release_ctx c = {cp, 0};
+    o.inputs_done = release_inputs;
+    o.inputs_done_arg = &c;
+    assert_int_equal(clef_spectrum_compute(cp[0], cp[1], cp[2], cp[3], &o, &r2), CLEF_OK);
+    assert_int_equal(c.calls, 1);
+    for (int i = 0; i < 4; i++) {
+        assert_null(cp[i]->pix);
+        assert_int_equal(cp[i]->nside, nside); /* the header stays */
+    }
+    assert_int_equal(r1.nbins, r2.nbins);
+    const size_t nb = (size_t)r1.nbins, nw = nb * (size_t)(r1.bp->win_lmax + 1);
+    assert_memory_equal(r1.bp->dl, r2.bp->dl, nb * sizeof(double));
+    assert_memory_equal(r1.bp->cov, r2.bp->cov, nb * nb * sizeof(double));
+    assert_memory_equal(r1.bp->win, r2.bp->win, nw * sizeof(double));
+    clef_spectrum_result_free(&r1);
+    clef_spectrum_result_free(&r2);
+    for (int i = 0; i < 4; i++) {
+        clef_map_free(in[i]);
+        clef_map_free(cp[i]);
+    }
+}
+
 /* Units: a map in K (TUNIT 'K_CMB') gives the same band powers in uK^2 as
  * the same sky in uK (1 K = 1e6 uK, SI prefixes). */
 static void test_units(void **state)
@@ -1180,6 +1233,7 @@ int main(void)
         cmocka_unit_test(test_full_sky_exact),
         cmocka_unit_test(test_errors),
         cmocka_unit_test(test_threads),
+        cmocka_unit_test(test_inputs_done),
         cmocka_unit_test(test_units),
         cmocka_unit_test(test_noise_subtraction),
         cmocka_unit_test(test_windows_ensemble),

@@ -89,6 +89,10 @@ int clef_map_read_header(clef_map **out, const char *path, const clef_map_read_o
 int clef_map_alloc(clef_map **out, int64_t nside);
 int clef_map_copy(clef_map **out, const clef_map *m);
 void clef_map_free(clef_map *m); /* NULL is a no-op */
+/* Frees the pixel values and validity flags (pix and valid NULL afterwards)
+ * and keeps the header fields (nside, npix, units, frame, column, counts):
+ * for a caller that needs a large map's description after its values. */
+void clef_map_release_pixels(clef_map *m);
 /* A map as one malloc'ed block of *n bytes (values, validity and header
  * fields; native byte order), and back: another process of the same
  * machine family gets the same map without reading its file (clef sims

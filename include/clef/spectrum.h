@@ -82,6 +82,12 @@ typedef struct clef_spectrum_opts {
                                   clef_coupling_create, e.g. shared among processes (clef
                                   sims); NULL: clef_coupling_create */
     void *coupling_arg;        /* its first argument */
+    void (*inputs_done)(void *arg); /* called once, when every map has been weighted and
+                                  transformed and every mask turned into weights: no pixel of
+                                  the maps or masks is read after it, so a caller holding
+                                  large maps can release their pixels there
+                                  (clef_map_release_pixels); NULL: none */
+    void *inputs_done_arg;     /* its argument */
 } clef_spectrum_opts;
 
 void clef_spectrum_opts_default(clef_spectrum_opts *o);

@@ -357,6 +357,14 @@ static void effective_moments(const clef_map *map, const clef_map *mask, mask_mo
     m->fsky_eff = s4 > 0 ? m->w2 * m->w2 / m->w4 : 0.0;
 }
 
+/* The estimator's inputs_done: the four maps' pixels (clef_spectrum_opts). */
+static void release_pixels(void *arg)
+{
+    clef_map **maps = arg;
+    for (int i = 0; i < 4; i++)
+        clef_map_release_pixels(maps[i]);
+}
+
 int cmd_spectrum(int argc, char **argv)
 {
     /* A run file describes many fields: its own mode (cmd_spectrum_run.c);
@@ -456,15 +464,22 @@ int cmd_spectrum(int argc, char **argv)
     so.names[0] = a.map[0];
     so.names[1] = a.map[1];
 
+    mask_moments mm2 = {0};
+    if (a.an.mask[1])
+        /* The second mask, reported beside the first (JSON and keywords);
+         * taken now, as the pixels go once the estimator has its weights. */
+        effective_moments(maps[1], maps[3], &mm2);
+    /* Past the transforms only the maps' headers are needed (the JSON
+     * summary): their pixels, 3 GiB for a map and a mask at nside 4096, are
+     * released for the mask stage, the run's peak of memory. */
+    so.inputs_done = release_pixels;
+    so.inputs_done_arg = maps;
     status = clef_spectrum_compute(maps[0], maps[1], maps[2], maps[3], &so, &res);
     if (status != CLEF_OK)
         goto fail;
 
     cli_analysis_warn_caps(&a.an, &so, &res, lread);
-    mask_moments mm2 = {0};
     if (a.an.mask[1]) {
-        /* The second mask, reported beside the first (JSON and keywords). */
-        effective_moments(maps[1], maps[3], &mm2);
         if ((status = clef_bandpowers_meta_number(res.bp, "FSKY2", mm2.fsky,
                                                   "observed sky fraction, mask 2")) ||
             (status = clef_bandpowers_meta_number(res.bp, "MASK2W2", mm2.w2,
