@@ -6,12 +6,12 @@
 
 /* Pair-sum kernels of the pixel window (src/beam_window_body.h), one per
  * vector width; NULL where the width was not built.  acc is scratch of
- * CLEF_PIXWIN_ACC_LANES x (lmax + 1) doubles, 64-byte aligned. */
-#define CLEF_PIXWIN_ACC_LANES 8
-typedef void clef_pixwin_pairs_fn(const double *restrict x, size_t np, int lmax,
+ * CLEF_PIXEL_WINDOW_LANES x (lmax + 1) doubles, 64-byte aligned. */
+#define CLEF_PIXEL_WINDOW_LANES 8
+typedef void clef_pixel_window_pairs_fn(const double *restrict x, size_t np, int lmax,
                                   const double *restrict ca, const double *restrict cb,
                                   double *restrict acc, double *restrict sum);
-extern clef_pixwin_pairs_fn *const clef_pixwin_pairs_avx512, *const clef_pixwin_pairs_avx2,
-    *const clef_pixwin_pairs_base;
+extern clef_pixel_window_pairs_fn *const clef_pixel_window_pairs_avx512,
+    *const clef_pixel_window_pairs_avx2, *const clef_pixel_window_pairs_base;
 
 #endif

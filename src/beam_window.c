@@ -62,8 +62,8 @@ typedef struct pair_scratch {
     double *vec; /* 3 n sub-sample unit vectors */
     double *x;   /* n (n-1)/2 pair cosines */
     double *sum; /* lmax + 1 */
-    double *acc; /* CLEF_PIXWIN_ACC_LANES (lmax + 1), the kernel's lane sums */
-    clef_pixwin_pairs_fn *pairs;
+    double *acc; /* CLEF_PIXEL_WINDOW_LANES (lmax + 1), the kernel's lane sums */
+    clef_pixel_window_pairs_fn *pairs;
 } pair_scratch;
 
 /* Legendre recurrence coefficients (Bonnet): P_l = a_l x P_{l-1} - b_l P_{l-2}. */
@@ -176,7 +176,7 @@ static void scratch_free(pair_scratch *s)
     free(s->acc);
 }
 
-static int scratch_alloc(pair_scratch *s, int k, int lmax, clef_pixwin_pairs_fn *pairs)
+static int scratch_alloc(pair_scratch *s, int k, int lmax, clef_pixel_window_pairs_fn *pairs)
 {
     s->pairs = pairs;
     const size_t n = (size_t)k * k;
@@ -184,7 +184,7 @@ static int scratch_alloc(pair_scratch *s, int k, int lmax, clef_pixwin_pairs_fn 
     s->x = malloc(sizeof(double) * (n * (n - 1) / 2 + 1));
     s->sum = malloc(sizeof(double) * ((size_t)lmax + 1));
     /* aligned_alloc wants a multiple of the alignment: 8 lanes x 8 bytes. */
-    s->acc = aligned_alloc(64, sizeof(double) * CLEF_PIXWIN_ACC_LANES * ((size_t)lmax + 1));
+    s->acc = aligned_alloc(64, sizeof(double) * CLEF_PIXEL_WINDOW_LANES * ((size_t)lmax + 1));
     if (!s->vec || !s->x || !s->sum || !s->acc) {
         scratch_free(s);
         return CLEF_ENOMEM;
@@ -212,9 +212,9 @@ static int run_tasks(int64_t nside, int lmax, int k, const pixel_window_task *ta
         free(cb);
         return ks;
     }
-    clef_pixwin_pairs_fn *pairs = kid == CLEF_KERNEL_AVX512 ? clef_pixwin_pairs_avx512
-                                  : kid == CLEF_KERNEL_AVX2 ? clef_pixwin_pairs_avx2
-                                                            : clef_pixwin_pairs_base;
+    clef_pixel_window_pairs_fn *pairs = kid == CLEF_KERNEL_AVX512 ? clef_pixel_window_pairs_avx512
+                                  : kid == CLEF_KERNEL_AVX2 ? clef_pixel_window_pairs_avx2
+                                                            : clef_pixel_window_pairs_base;
     int failed = 0, done = 0;
 #pragma omp parallel
     {

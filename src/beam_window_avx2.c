@@ -7,7 +7,7 @@
 #define KNV 4
 #define KNAME(f) clef_##f##_avx2_impl
 #include "beam_window_body.h"
-clef_pixwin_pairs_fn *const clef_pixwin_pairs_avx2 = clef_pixwin_pairs_avx2_impl;
+clef_pixel_window_pairs_fn *const clef_pixel_window_pairs_avx2 = clef_pixel_window_pairs_avx2_impl;
 #else
-clef_pixwin_pairs_fn *const clef_pixwin_pairs_avx2 = NULL;
+clef_pixel_window_pairs_fn *const clef_pixel_window_pairs_avx2 = NULL;
 #endif

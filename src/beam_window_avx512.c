@@ -7,7 +7,8 @@
 #define KNV 8
 #define KNAME(f) clef_##f##_avx512_impl
 #include "beam_window_body.h"
-clef_pixwin_pairs_fn *const clef_pixwin_pairs_avx512 = clef_pixwin_pairs_avx512_impl;
+clef_pixel_window_pairs_fn *const clef_pixel_window_pairs_avx512 =
+    clef_pixel_window_pairs_avx512_impl;
 #else
-clef_pixwin_pairs_fn *const clef_pixwin_pairs_avx512 = NULL;
+clef_pixel_window_pairs_fn *const clef_pixel_window_pairs_avx512 = NULL;
 #endif

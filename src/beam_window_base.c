@@ -6,4 +6,4 @@
 #define KNV 4
 #define KNAME(f) clef_##f##_base_impl
 #include "beam_window_body.h"
-clef_pixwin_pairs_fn *const clef_pixwin_pairs_base = clef_pixwin_pairs_base_impl;
+clef_pixel_window_pairs_fn *const clef_pixel_window_pairs_base = clef_pixel_window_pairs_base_impl;

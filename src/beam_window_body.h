@@ -27,7 +27,7 @@
 
 typedef double vd __attribute__((vector_size(VL * sizeof(double))));
 
-void KNAME(pixwin_pairs)(const double *restrict x, size_t np, int lmax,
+void KNAME(pixel_window_pairs)(const double *restrict x, size_t np, int lmax,
                          const double *restrict ca, const double *restrict cb,
                          double *restrict acc, double *restrict sum)
 {
