@@ -262,6 +262,16 @@ static void term_vector(const term *t, const double *u, const double *v, int n, 
     }
 }
 
+/* out = (out + out^T) / 2 (n x n): a block of one pair with itself. */
+static void symmetrise(double *out, int n)
+{
+    for (int i = 0; i < n; i++)
+        for (int j = i + 1; j < n; j++) {
+            double z = 0.5 * (out[(size_t)i * n + j] + out[(size_t)j * n + i]);
+            out[(size_t)i * n + j] = out[(size_t)j * n + i] = z;
+        }
+}
+
 /* The reference path (clef_spectrum_cov_dense): G_ll' = sum_k s_kl s_kl' M^k_ll' / (2l'+1), M^k = k1 for terms of kind 1
  * (or when k2 is k1), else k2, for nt vectors s (nt x n); then the band
  * powers' block out = A_p G A_q^T (np x nq; A_p, A_q the rows of K^-1 P
@@ -327,11 +337,7 @@ static int propagate_dense(int n, int nt, const double *s, const int *kind,
     cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasTrans, np, nq, n, 1.0, x, n, aq, n, 0.0, out,
                 nq);
     if (sym)
-        for (int i = 0; i < np; i++)
-            for (int j = i + 1; j < np; j++) {
-                double z = 0.5 * (out[(size_t)i * np + j] + out[(size_t)j * np + i]);
-                out[(size_t)i * np + j] = out[(size_t)j * np + i] = z;
-            }
+        symmetrise(out, np);
 fail:
     free(inv);
     free(own);
@@ -440,11 +446,7 @@ static int propagate(int n, int nt, const double *s, const int *kind, const clef
     cblas_dgemm(CblasRowMajor, CblasNoTrans, CblasTrans, nb, nb, nbq, 1.0, x, nbq, kq, nbq, 0.0,
                 out, nb);
     if (sym)
-        for (int i = 0; i < nb; i++)
-            for (int j = i + 1; j < nb; j++) {
-                double z = 0.5 * (out[(size_t)i * nb + j] + out[(size_t)j * nb + i]);
-                out[(size_t)i * nb + j] = out[(size_t)j * nb + i] = z;
-            }
+        symmetrise(out, nb);
 fail:
     free(t);
     free(pl);
