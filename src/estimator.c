@@ -62,6 +62,7 @@ int clef_est_field_opts(const clef_estimator *e, const est_field *f, clef_spectr
     o->transfer_lmax = f->f.transfer_lmax;
     o->noise_cl = f->f.noise_cl;
     o->noise_lmax = f->f.noise_lmax;
+    o->second_instrument = 0; /* a field has one instrument */
     return CLEF_OK;
 }
 

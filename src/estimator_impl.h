@@ -134,6 +134,10 @@ int clef_est_field_opts(const clef_estimator *e, const est_field *f, clef_spectr
 int clef_est_limits(const clef_spectrum_opts *o, int64_t nside, int *l_tab, int *l_beam,
                     char *why, size_t nwhy);
 int clef_est_signal_filter(const clef_spectrum_opts *o, int64_t nside, int lmax, double *tl);
+/* The options of the second map of a cross-spectrum: o with its beam and
+ * transfer entries replaced by the second instrument's (o itself when
+ * second_instrument is 0). */
+void clef_est_second_opts(const clef_spectrum_opts *o, clef_spectrum_opts *o2);
 
 void clef_est_stage_done(clef_estimator *e, const char *name);
 /* A stage of the given length (one measured in pieces); the next starts now. */

@@ -47,6 +47,14 @@ static int record_meta(clef_bandpowers *bp, const clef_spectrum_opts *o,
                                        "pixel window corrected"));
     CLEF_TRY(clef_bandpowers_meta_text(bp, "TRANSFER", o->transfer ? "yes" : "no",
                                        "transfer function applied"));
+    if (o->second_instrument) { /* the second map's own beam and transfer function */
+        CLEF_TRY(clef_bandpowers_meta_number(bp, "BEAMFWH2", o->beam2 ? 0.0 : o->beam2_fwhm,
+                                             "second map's Gaussian beam FWHM [arcmin]"));
+        CLEF_TRY(clef_bandpowers_meta_text(bp, "BEAMTAB2", o->beam2 ? "yes" : "no",
+                                           "second map's tabulated beam used"));
+        CLEF_TRY(clef_bandpowers_meta_text(bp, "TRANSFR2", o->transfer2 ? "yes" : "no",
+                                           "second map's transfer function applied"));
+    }
     CLEF_TRY(clef_bandpowers_meta_text(bp, "NOISESUB", (o->noise_cl && !r->cross) ? "yes" : "no",
                                        "noise spectrum subtracted"));
     CLEF_TRY(clef_bandpowers_meta_text(bp, "COVSPEC", o->theory_cl ? "theory" : "measured",
@@ -181,6 +189,17 @@ int clef_est_results(clef_estimator *e)
         /* Keywords: the options of field a, the names of both. */
         clef_spectrum_opts po;
         clef_est_field_opts(e, fa, &po);
+        const clef_field *gb = &fb->f, *ga = &fa->f;
+        po.second_instrument = 0;
+        if (r->cross && (gb->beam_fwhm != ga->beam_fwhm || gb->beam != ga->beam ||
+                         gb->transfer != ga->transfer)) {
+            po.second_instrument = 1;
+            po.beam2_fwhm = gb->beam_fwhm;
+            po.beam2 = gb->beam;
+            po.beam2_lmax = gb->beam_lmax;
+            po.transfer2 = gb->transfer;
+            po.transfer2_lmax = gb->transfer_lmax;
+        }
         if (!p->noise_sub)
             po.noise_cl = NULL;
         po.names[0] = fa->f.map_names[0];

@@ -105,6 +105,18 @@ fail:
     return status;
 }
 
+void clef_est_second_opts(const clef_spectrum_opts *o, clef_spectrum_opts *o2)
+{
+    *o2 = *o;
+    if (!o->second_instrument)
+        return;
+    o2->beam_fwhm = o->beam2_fwhm;
+    o2->beam = o->beam2;
+    o2->beam_lmax = o->beam2_lmax;
+    o2->transfer = o->transfer2;
+    o2->transfer_lmax = o->transfer2_lmax;
+}
+
 /* Limits the options put on the multipole range: l_tab, the end of the
  * tabulated beam, transfer function and noise spectrum (at most 3 nside - 1,
  * where the pixelised map stops carrying independent information), and
@@ -183,6 +195,8 @@ static int check_inputs(const clef_map *map1, const clef_map *map2, const clef_m
                                      name_or(o, mask2 ? 3 : 2, "mask"), ac));
     } else if (mask2) {
         CLEF_FAIL(CLEF_EINVAL, "a second mask was given for a single map");
+    } else if (o->second_instrument) {
+        CLEF_FAIL(CLEF_EINVAL, "a second beam or transfer function was given for a single map");
     }
     return CLEF_OK;
 }
@@ -218,7 +232,8 @@ int clef_spectrum_compute_keep(const clef_map *map1, const clef_map *map2, const
                                 "independent noise carries no noise bias");
     /* One field per map; both carry the run's beam, transfer and noise
      * tables (the noise table still bounds lmax of a cross-spectrum, and
-     * the estimator subtracts it from auto-spectra only). */
+     * the estimator subtracts it from auto-spectra only), the second map
+     * the second instrument's beam and transfer function if there is one. */
     clef_field f[2];
     static const char *const fname[2] = {"1", "2"};
     for (int i = 0; i <= cross; i++) {
@@ -230,11 +245,15 @@ int clef_spectrum_compute_keep(const clef_map *map1, const clef_map *map2, const
         const int two = i && mask2 && mask2 != mask1;
         f[i].mask = two ? mask2 : mask1;
         f[i].mask_name = two ? o.names[3] : o.names[2];
-        f[i].beam_fwhm = o.beam_fwhm;
-        f[i].beam = o.beam;
-        f[i].beam_lmax = o.beam_lmax;
-        f[i].transfer = o.transfer;
-        f[i].transfer_lmax = o.transfer_lmax;
+        clef_spectrum_opts fo;
+        clef_est_second_opts(&o, &fo);
+        if (!i)
+            fo = o;
+        f[i].beam_fwhm = fo.beam_fwhm;
+        f[i].beam = fo.beam;
+        f[i].beam_lmax = fo.beam_lmax;
+        f[i].transfer = fo.transfer;
+        f[i].transfer_lmax = fo.transfer_lmax;
         f[i].noise_cl = o.noise_cl;
         f[i].noise_lmax = o.noise_lmax;
     }

@@ -560,6 +560,23 @@ int clef_spectrum_pol_compute(const clef_map_pol *f1, const clef_map_pol *f2,
         goto fail;
     }
     CLEF_CHECK(clef_est_signal_filter(&o, r.nside, r.lmax_ext, r.tl));
+    if (r.cross && o.second_instrument) {
+        /* Two instruments: the pair's filter sqrt(F_1 F_2) B_1 B_2 p_l^2, as
+         * the temperature estimator's (estimator_bins.c). */
+        clef_spectrum_opts o2;
+        clef_est_second_opts(&o, &o2);
+        double *t2 = malloc(((size_t)r.lmax_ext + 1) * sizeof *t2);
+        if (!t2) {
+            status = clef_fail(CLEF_ENOMEM, "out of memory for the filter");
+            goto fail;
+        }
+        status = clef_est_signal_filter(&o2, r.nside, r.lmax_ext, t2);
+        for (int l = 0; status == CLEF_OK && l <= r.lmax_ext; l++)
+            r.tl[l] = sqrt(r.tl[l] * t2[l]);
+        free(t2);
+        if (status != CLEF_OK)
+            goto fail;
+    }
     clef_coupling_opts co = {.rcond_min = o.rcond_min, .width_level = 0};
     CLEF_CHECK(clef_coupling_binned_create(&r.kte, r.cp.te, r.all_bins, r.tl, &co));
     CLEF_CHECK(clef_coupling_binned_create(&r.kpp, r.cp.pp, r.all_bins, r.tl, &co));

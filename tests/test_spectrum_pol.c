@@ -32,6 +32,8 @@ typedef struct sky {
     double *mt, *mq, *mu;
 } sky;
 
+static void synth(sky *s, int lband);
+
 /* a_lm to lband with the spectra above (TE correlation rho, scaled). */
 static void draw(sky *s, int lband, unsigned long seed, double rho_scale, int with_b)
 {
@@ -54,6 +56,16 @@ static void draw(sky *s, int lband, unsigned long seed, double rho_scale, int wi
             s->b[i] = with_b ? sqrt(c_bb(l)) * g[2] : 0.0;
         }
     gsl_rng_free(r);
+    s->mt = s->mq = s->mu = NULL;
+    synth(s, lband);
+}
+
+/* The maps of the sky's a_lm (replacing any made before). */
+static void synth(sky *s, int lband)
+{
+    free(s->mt);
+    free(s->mq);
+    free(s->mu);
     const int64_t np = 12 * NS * NS;
     s->mt = malloc(np * sizeof(double));
     s->mq = malloc(np * sizeof(double));
@@ -172,6 +184,121 @@ static void test_full_sky_exact(void **state)
         clef_map_pol_free(&f);
         sky_free(&s);
     }
+    clef_map_free(mask);
+    clef_bins_destroy(bins);
+}
+
+/* Two instruments (clef_spectrum_opts.second_instrument): one full,
+ * band-limited sky seen through a tabulated beam B_1 (map 1) and a Gaussian
+ * B_2 with a transfer F_2 applied to the a_lm as sqrt(F_2) (map 2); the
+ * cross-spectra with each map's own beam and transfer are the binned
+ * spectra of the sky's a_lm through the band-power windows to 1e-6,
+ * and the same maps analysed with map 1's beam for both are off by the
+ * beam ratio (so the second instrument is applied).  Beam: Gaussian
+ * B_l = exp(-l(l+1) sigma^2 / 2), sigma = FWHM / sqrt(8 ln 2) (common
+ * practice). */
+static void scale_alm(double complex *a, int lband, const double *f)
+{
+    for (int m = 0; m <= lband; m++)
+        for (int l = m; l <= lband; l++)
+            a[clef_alm_index(lband, l, m)] *= f[l];
+}
+
+static void test_two_instruments(void **state)
+{
+    (void)state;
+    const int lmax = 41;
+    double ones[42], b1[42], b2[42], f2[42], a1[42], a2[42];
+    const double s1 = 150.0 / 60 * M_PI / 180 / sqrt(8 * log(2.0));
+    const double fwhm2 = 240.0;
+    const double s2 = fwhm2 / 60 * M_PI / 180 / sqrt(8 * log(2.0));
+    for (int l = 0; l <= lmax; l++) {
+        ones[l] = 1.0;
+        b1[l] = exp(-0.5 * l * (l + 1.0) * s1 * s1);
+        b2[l] = exp(-0.5 * l * (l + 1.0) * s2 * s2);
+        f2[l] = 1.0 / (1.0 + l / 30.0);
+        a1[l] = b1[l];
+        a2[l] = b2[l] * sqrt(f2[l]);
+    }
+    clef_bins *bins;
+    assert_int_equal(clef_bins_create_linear(&bins, 2, 8, lmax, CLEF_BINS_DL), CLEF_OK);
+    const int nb = clef_bins_count(bins);
+    clef_map *mask;
+    assert_int_equal(clef_mask_full(&mask, NS), CLEF_OK);
+    sky s, s1k, s2k;
+    draw(&s, lmax, 91, 1.0, 1);
+    /* The two observed skies: the a_lm times each instrument's response. */
+    draw(&s1k, lmax, 91, 1.0, 1);
+    draw(&s2k, lmax, 91, 1.0, 1);
+    double complex *const xa[3] = {s1k.t, s1k.e, s1k.b}, *const xb[3] = {s2k.t, s2k.e, s2k.b};
+    for (int k = 0; k < 3; k++) {
+        scale_alm(xa[k], lmax, a1);
+        scale_alm(xb[k], lmax, a2);
+    }
+    synth(&s1k, lmax);
+    synth(&s2k, lmax);
+    clef_map_pol fa, fb;
+    field_of(&s1k, &fa);
+    field_of(&s2k, &fb);
+    clef_spectrum_opts o;
+    opts_for(&o, bins, lmax, ones);
+    o.beam = b1;
+    o.beam_lmax = lmax;
+    o.pixel_window = 0;
+    o.second_instrument = 1;
+    o.beam2_fwhm = fwhm2;
+    o.transfer2 = f2;
+    o.transfer2_lmax = lmax;
+    clef_spectrum_pol_result res, one;
+    assert_int_equal(clef_spectrum_pol_compute(&fa, &fb, mask, NULL, &o, NULL, 0, &res), CLEF_OK);
+    o.second_instrument = 0;
+    assert_int_equal(clef_spectrum_pol_compute(&fa, &fb, mask, NULL, &o, NULL, 0, &one), CLEF_OK);
+    /* With a filter the decoupled band power is the window-weighted
+     * spectrum (the binned filter is not the filter binned): on the full
+     * sky D_b = sum_l W_bl D_l exactly for the sky's own D_l. */
+    double band[6][8];
+    const double complex *x[6][2] = {{s.t, s.t}, {s.t, s.e}, {s.t, s.b},
+                                     {s.e, s.e}, {s.e, s.b}, {s.b, s.b}};
+    for (int k = 0; k < 6; k++) {
+        double cl[42];
+        clef_alm_cl(lmax, lmax, x[k][0], x[k][1], cl);
+        const clef_bandpowers *bp = res.bp[k];
+        assert_true(bp->win_lmax >= lmax);
+        for (int b = 0; b < nb; b++) {
+            band[k][b] = 0;
+            for (int l = 2; l <= lmax; l++)
+                band[k][b] += bp->win[(size_t)b * (bp->win_lmax + 1) + l] * l * (l + 1.0) /
+                              (2 * M_PI) * cl[l];
+        }
+    }
+    double worst = 0, off = 0;
+    for (int k = 0; k < 6; k++)
+        for (int b = 0; b < nb; b++) {
+            const int ia = k == 1 || k == 2 ? 0 : k == 4 ? 3 : k;
+            const int ib = k == 1 ? 3 : k == 2 || k == 4 ? 5 : k;
+            const double scale = sqrt(band[ia][b] * band[ib][b]);
+            worst = fmax(worst, fabs(res.bp[k]->dl[b] - band[k][b]) / scale);
+            if (k == CLEF_POL_TT || k == CLEF_POL_EE || k == CLEF_POL_BB)
+                off = fmax(off, fabs(one.bp[k]->dl[b] / band[k][b] - 1));
+        }
+    printf("two instruments: max |band - exact| / scale %.3g; with map 1's beam for both: "
+           "off by up to %.3g\n", worst, off);
+    check_abs(worst, 0.0, 1e-6, "cross-spectra of two instruments = exact a_lm spectra");
+    assert_true(off > 0.2);
+    assert_string_equal(clef_bandpowers_meta_get(res.bp[CLEF_POL_TT], "TRANSFR2"), "yes");
+    assert_null(clef_bandpowers_meta_get(one.bp[CLEF_POL_TT], "TRANSFR2"));
+    /* A second instrument without a second map is refused. */
+    o.second_instrument = 1;
+    clef_spectrum_pol_result bad;
+    assert_int_equal(clef_spectrum_pol_compute(&fa, NULL, mask, NULL, &o, NULL, 0, &bad),
+                     CLEF_EINVAL);
+    clef_spectrum_pol_result_free(&res);
+    clef_spectrum_pol_result_free(&one);
+    clef_map_pol_free(&fa);
+    clef_map_pol_free(&fb);
+    sky_free(&s);
+    sky_free(&s1k);
+    sky_free(&s2k);
     clef_map_free(mask);
     clef_bins_destroy(bins);
 }
@@ -434,6 +561,7 @@ int main(void)
 {
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_full_sky_exact),
+        cmocka_unit_test(test_two_instruments),
         cmocka_unit_test(test_polcconv_files),
         cmocka_unit_test(test_qu_validity_joined),
         cmocka_unit_test(test_masked_ensemble),

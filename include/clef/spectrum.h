@@ -88,6 +88,16 @@ typedef struct clef_spectrum_opts {
                                   large maps can release their pixels there
                                   (clef_map_release_pixels); NULL: none */
     void *inputs_done_arg;     /* its argument */
+    /* Cross-spectra of maps from two instruments: with second_instrument = 1
+     * the second map's beam (Gaussian FWHM or table) and transfer function are
+     * these, and the pair's filter is sqrt(F_1 F_2) B_1 B_2 p_l^2; with 0 the
+     * beam and transfer entries above apply to both maps. */
+    int second_instrument;
+    double beam2_fwhm;         /* arcmin; 0 = none */
+    const double *beam2;       /* B_l, l = 0..beam2_lmax; NULL = beam2_fwhm */
+    int beam2_lmax;
+    const double *transfer2;   /* F_l, l = 0..transfer2_lmax; NULL = 1 */
+    int transfer2_lmax;
 } clef_spectrum_opts;
 
 void clef_spectrum_opts_default(clef_spectrum_opts *o);

@@ -170,12 +170,14 @@ void pyclef_spectrum_kw_init(pyclef_spectrum_kw *k)
     k->iterations = CLEF_SPECTRUM_ITERATIONS;
     k->cache = 1;
     k->bins = k->beam = k->transfer = k->noise_cl = k->theory_cl = Py_None;
+    k->beam2 = k->transfer2 = Py_None;
+    k->fwhm2 = -1;
 }
 
 int pyclef_spectrum_kw_apply(const pyclef_spectrum_kw *k, double peak_half_width,
-                             clef_spectrum_opts *so, PyArrayObject *tabs[4])
+                             clef_spectrum_opts *so, PyArrayObject *tabs[PYCLEF_NTABS])
 {
-    for (int i = 0; i < 4; i++)
+    for (int i = 0; i < PYCLEF_NTABS; i++)
         tabs[i] = NULL;
     /* The CLI's own argument checks (src/cli/cmd_spectrum.c), as ValueError. */
     if (pyclef_check_opts(k->lmax, k->bin_width, k->iterations, peak_half_width) < 0)
@@ -196,6 +198,15 @@ int pyclef_spectrum_kw_apply(const pyclef_spectrum_kw *k, double peak_half_width
         PyErr_SetString(PyExc_ValueError, "choose one of beam_fwhm and beam");
         return -1;
     }
+    if (k->fwhm2 < 0 && k->fwhm2 != -1) {
+        PyErr_Format(PyExc_ValueError, "second_beam_fwhm must not be negative, got %g",
+                     k->fwhm2);
+        return -1;
+    }
+    if (k->beam2 != Py_None && k->fwhm2 >= 0) {
+        PyErr_SetString(PyExc_ValueError, "choose one of second_beam_fwhm and second_beam");
+        return -1;
+    }
     so->lmax = k->lmax;
     so->bin_width = k->bin_width;
     so->beam_fwhm = k->fwhm;
@@ -208,12 +219,31 @@ int pyclef_spectrum_kw_apply(const pyclef_spectrum_kw *k, double peak_half_width
     if (pyclef_table(k->beam, "beam", &tabs[0], &so->beam, &so->beam_lmax) < 0 ||
         pyclef_table(k->transfer, "transfer", &tabs[1], &so->transfer, &so->transfer_lmax) < 0 ||
         pyclef_table(k->noise_cl, "noise_cl", &tabs[2], &so->noise_cl, &so->noise_lmax) < 0 ||
-        pyclef_table(k->theory_cl, "theory_cl", &tabs[3], &so->theory_cl, &so->theory_lmax) < 0) {
-        for (int i = 0; i < 4; i++)
-            Py_CLEAR(tabs[i]);
-        return -1;
+        pyclef_table(k->theory_cl, "theory_cl", &tabs[3], &so->theory_cl, &so->theory_lmax) < 0)
+        goto fail;
+    if (k->fwhm2 >= 0 || k->beam2 != Py_None || k->transfer2 != Py_None) {
+        /* The second map's instrument; what is not given is the first's. */
+        so->second_instrument = 1;
+        so->beam2_fwhm = k->fwhm2 >= 0 ? k->fwhm2 : so->beam_fwhm;
+        so->beam2 = k->fwhm2 >= 0 ? NULL : so->beam;
+        so->beam2_lmax = k->fwhm2 >= 0 ? 0 : so->beam_lmax;
+        so->transfer2 = so->transfer;
+        so->transfer2_lmax = so->transfer_lmax;
+        if (k->beam2 != Py_None) {
+            so->beam2_fwhm = 0;
+            if (pyclef_table(k->beam2, "second_beam", &tabs[4], &so->beam2, &so->beam2_lmax) < 0)
+                goto fail;
+        }
+        if (k->transfer2 != Py_None &&
+            pyclef_table(k->transfer2, "second_transfer", &tabs[5], &so->transfer2,
+                         &so->transfer2_lmax) < 0)
+            goto fail;
     }
     return 0;
+fail:
+    for (int i = 0; i < PYCLEF_NTABS; i++)
+        Py_CLEAR(tabs[i]);
+    return -1;
 }
 
 PyObject *pyclef_spectrum_result_dict(const clef_spectrum_result *r, double t_call,
@@ -242,7 +272,8 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
                           "pixel_window", "transfer", "noise_cl", "theory_cl", "iterations",
                           "keep_multipoles", "cache", "cache_dir", "peak", "peak_l_min",
                           "peak_l_max", "peak_half_width", "peak_curv_sigma",
-                          "allow_coord_mismatch", "peak_error_draws", NULL};
+                          "allow_coord_mismatch", "peak_error_draws", "second_beam_fwhm",
+                          "second_beam", "second_transfer", NULL};
     PyObject *map_o[2] = {NULL, Py_None}, *mask_o[2] = {NULL, Py_None};
     pyclef_spectrum_kw k;
     pyclef_spectrum_kw_init(&k);
@@ -253,19 +284,19 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
     double pcurv = so.peak.curv_nsigma;
     int pdraws = so.peak.draws;
     if (!PyArg_ParseTupleAndKeywords(
-            args, kw, "OO|OO$sssiiiOdOpOOOippzpdddO&pi:spectrum", kwl, &map_o[0], &mask_o[0],
+            args, kw, "OO|OO$sssiiiOdOpOOOippzpdddO&pidOO:spectrum", kwl, &map_o[0], &mask_o[0],
             &map_o[1], &mask_o[1], &k.unit, &k.coordsys, &k.mask_coordsys, &k.lmax,
             &k.bin_width, &k.log_bins, &k.bins, &k.fwhm, &k.beam, &k.pixel_window, &k.transfer,
             &k.noise_cl, &k.theory_cl, &k.iterations, &k.keep_multipoles, &k.cache, &k.cache_dir,
             &peak, &plmin, &plmax, &phw, pyclef_opt_double, &pcurv, &k.allow_coord_mismatch,
-            &pdraws))
+            &pdraws, &k.fwhm2, &k.beam2, &k.transfer2))
         return NULL;
     if (pdraws < 0 || pdraws > 100000)
         return PyErr_Format(PyExc_ValueError, "peak_error_draws must be 0 to 100000, got %d",
                             pdraws);
     if (mask_o[1] != Py_None && map_o[1] == Py_None)
         return PyErr_Format(PyExc_ValueError, "mask2 needs a second map (map2)");
-    PyArrayObject *tabs[4];
+    PyArrayObject *tabs[PYCLEF_NTABS];
     if (pyclef_spectrum_kw_apply(&k, phw, &so, tabs) < 0)
         return NULL;
 
@@ -314,10 +345,10 @@ static PyObject *py_spectrum(PyObject *self, PyObject *args, PyObject *kw)
 done:
     clef_spectrum_result_free(&res);
     clef_bins_destroy(bins);
-    for (int i = 0; i < 4; i++) {
+    for (int i = 0; i < 4; i++)
         pyclef_map_release(&mv[i]);
+    for (int i = 0; i < PYCLEF_NTABS; i++)
         Py_XDECREF(tabs[i]);
-    }
     return out;
 }
 
@@ -328,7 +359,8 @@ PyMethodDef pyclef_spectrum_methods[] = {
      "         pixel_window=True, transfer=None, noise_cl=None, theory_cl=None, iterations=1,\n"
      "         keep_multipoles=False, cache=True, cache_dir=None, peak=True, peak_l_min=100.0,\n"
      "         peak_l_max=400.0, peak_half_width=0.0, peak_curv_sigma=2.0,\n"
-     "         allow_coord_mismatch=False, peak_error_draws=0)\n--\n\n"
+     "         allow_coord_mismatch=False, peak_error_draws=0, second_beam_fwhm=-1.0,\n"
+     "         second_beam=None, second_transfer=None)\n--\n\n"
      "Decoupled band powers (pseudo-C_l, Hivon et al. 2002) as `clef spectrum` computes them,\n"
      "with the same defaults.  map1, map2: float64 RING arrays (NaN = missing pixel), in\n"
      "`unit` (K, mK or uK with or without _CMB; '' = uK); map2 given: the cross-spectrum.\n"
@@ -339,7 +371,9 @@ PyMethodDef pyclef_spectrum_methods[] = {
      "file path or an (n, 2) array of inclusive l ranges).  beam_fwhm [arcmin] or beam\n"
      "(B_l array from l = 0); pixel_window: correct for the HEALPix pixel window;\n"
      "transfer (F_l), noise_cl (N_l [uK^2], subtracted from auto-spectra), theory_cl (C_l\n"
-     "[uK^2] for the covariance): arrays from l = 0.  iterations: analysis Jacobi steps;\n"
+     "[uK^2] for the covariance): arrays from l = 0.  second_beam_fwhm [arcmin, -1: not\n"
+     "given] or second_beam, second_transfer: map2 from another instrument (what is not\n"
+     "given is map1's).  iterations: analysis Jacobi steps;\n"
      "keep_multipoles: do not remove the monopole and dipole; cache, cache_dir: the coupling\n"
      "cache.  peak: fit the first peak in [peak_l_min, peak_l_max] (peak_half_width 0 =\n"
      "automatic; docs/peak.md).\n\n"

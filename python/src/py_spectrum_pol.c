@@ -92,21 +92,22 @@ static PyObject *py_spectrum_pol(PyObject *self, PyObject *args, PyObject *kw)
                           "mask_coordsys", "lmax", "bin_width", "log_bins", "bins", "beam_fwhm",
                           "beam", "pixel_window", "transfer", "noise_cl", "pol_noise_cl",
                           "theory_cl", "iterations", "keep_multipoles", "cache", "cache_dir",
-                          "allow_coord_mismatch", "pure_b", NULL};
+                          "allow_coord_mismatch", "pure_b", "second_beam_fwhm", "second_beam",
+                          "second_transfer", NULL};
     PyObject *map_o[2] = {NULL, Py_None}, *mask_o[2] = {NULL, Py_None}, *pnoise_o = Py_None;
     pyclef_spectrum_kw k;
     pyclef_spectrum_kw_init(&k);
     int pure_b = 0;
     if (!PyArg_ParseTupleAndKeywords(
-            args, kw, "OO|OO$sssiiiOdOpOOOOippzpp:spectrum_pol", kwl, &map_o[0], &mask_o[0],
+            args, kw, "OO|OO$sssiiiOdOpOOOOippzppdOO:spectrum_pol", kwl, &map_o[0], &mask_o[0],
             &map_o[1], &mask_o[1], &k.unit, &k.coordsys, &k.mask_coordsys, &k.lmax,
             &k.bin_width, &k.log_bins, &k.bins, &k.fwhm, &k.beam, &k.pixel_window, &k.transfer,
             &k.noise_cl, &pnoise_o, &k.theory_cl, &k.iterations, &k.keep_multipoles, &k.cache,
-            &k.cache_dir, &k.allow_coord_mismatch, &pure_b))
+            &k.cache_dir, &k.allow_coord_mismatch, &pure_b, &k.fwhm2, &k.beam2, &k.transfer2))
         return NULL;
     clef_spectrum_opts so;
     clef_spectrum_opts_default(&so);
-    PyArrayObject *tabs[4], *pnoise = NULL;
+    PyArrayObject *tabs[PYCLEF_NTABS], *pnoise = NULL;
     if (pyclef_spectrum_kw_apply(&k, 0.0, &so, tabs) < 0)
         return NULL;
     so.pure_b = pure_b;
@@ -170,7 +171,7 @@ done:
             pyclef_map_release(&mv[i][c]);
         pyclef_map_release(&mk[i]);
     }
-    for (int i = 0; i < 4; i++)
+    for (int i = 0; i < PYCLEF_NTABS; i++)
         Py_XDECREF(tabs[i]);
     Py_XDECREF(pnoise);
     return out;
@@ -183,7 +184,8 @@ PyMethodDef pyclef_spectrum_pol_methods[] = {
      "             beam_fwhm=0.0, beam=None, pixel_window=True, transfer=None,\n"
      "             noise_cl=None, pol_noise_cl=None, theory_cl=None, iterations=1,\n"
      "             keep_multipoles=False, cache=True, cache_dir=None,\n"
-     "             allow_coord_mismatch=False, pure_b=False)\n--\n\n"
+     "             allow_coord_mismatch=False, pure_b=False, second_beam_fwhm=-1.0,\n"
+     "             second_beam=None, second_transfer=None)\n--\n\n"
      "The six band powers TT, TE, TB, EE, EB, BB as `clef spectrum --polarization`\n"
      "computes them (pseudo-C_l with the spin-2 coupling, E and B decoupled jointly;\n"
      "docs/method.md), with the same defaults.  map1, map2: T, Q, U as a (3, npix)\n"
@@ -194,7 +196,8 @@ PyMethodDef pyclef_spectrum_pol_methods[] = {
      "(lmax, bins, beam_fwhm [arcmin] or beam, pixel_window, transfer, noise_cl and\n"
      "theory_cl [uK^2] for TT, iterations, keep_multipoles, cache as there); the other\n"
      "spectra use TT's bins and the same beam, pixel window (the temperature one) and\n"
-     "transfer function.  pol_noise_cl: N_l [uK^2] of the Q/U noise (N^EE = N^BB, from\n"
+     "transfer function; second_beam_fwhm [arcmin, -1: not given] or second_beam and\n"
+     "second_transfer: map2's own (what is not given is map1's).  pol_noise_cl: N_l [uK^2] of the Q/U noise (N^EE = N^BB, from\n"
      "l = 0 to at least the coupled lmax), subtracted from the auto EE and BB (ignored\n"
      "with a warning for a pair).  pure_b: BB from pure-B multipoles (B-mode\n"
      "purification, `clef spectrum --polarization --pure-b`; the Q/U weight must be\n"

@@ -135,12 +135,15 @@ typedef struct pyclef_spectrum_kw {
     const char *unit, *coordsys, *mask_coordsys, *cache_dir;
     int lmax, bin_width, log_bins, pixel_window, iterations, keep_multipoles, cache;
     int allow_coord_mismatch;
-    double fwhm;
-    PyObject *bins, *beam, *transfer, *noise_cl, *theory_cl;
+    double fwhm, fwhm2;        /* fwhm2 < 0: not given */
+    PyObject *bins, *beam, *transfer, *noise_cl, *theory_cl, *beam2, *transfer2;
 } pyclef_spectrum_kw;
+/* Tables apply() keeps alive: beam, transfer, noise_cl, theory_cl and the
+ * second map's beam and transfer. */
+#define PYCLEF_NTABS 6
 void pyclef_spectrum_kw_init(pyclef_spectrum_kw *k);
 int pyclef_spectrum_kw_apply(const pyclef_spectrum_kw *k, double peak_half_width,
-                             struct clef_spectrum_opts *so, PyArrayObject *tabs[4]);
+                             struct clef_spectrum_opts *so, PyArrayObject *tabs[PYCLEF_NTABS]);
 /* The CLI's checks of lmax, bin_width, iterations and the peak half width
  * (ValueError, -1). */
 int pyclef_check_opts(int lmax, int bin_width, int iterations, double peak_half_width);

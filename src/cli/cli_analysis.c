@@ -39,6 +39,9 @@ const struct option cli_analysis_options[CLI_ANALYSIS_NOPTS] = {
     {"ordering", required_argument, 0, CLI_AOPT_ORDERING},
     {"unit", required_argument, 0, CLI_AOPT_UNIT},
     {"calibration", required_argument, 0, CLI_AOPT_CALIB},
+    {"second-beam-fwhm", required_argument, 0, CLI_AOPT_FWHM2},
+    {"second-beam-table", required_argument, 0, CLI_AOPT_BEAMF2},
+    {"second-transfer", required_argument, 0, CLI_AOPT_TRANSFER2},
 };
 
 void cli_analysis_init(cli_analysis *a)
@@ -139,6 +142,15 @@ int cli_analysis_option(const char *cmd, int c, const char *arg, cli_analysis *a
             return cli_usage_error(cmd, "--beam-fwhm must not be negative, got %g", a->beam_fwhm);
         return 1;
     case CLI_AOPT_BEAMF: a->beam_file = arg; return 1;
+    case CLI_AOPT_FWHM2:
+        if (cli_parse_double(cmd, "--second-beam-fwhm", arg, &a->beam2_fwhm))
+            return CLI_EXIT_USAGE;
+        if (!(a->beam2_fwhm >= 0))
+            return cli_usage_error(cmd, "--second-beam-fwhm must not be negative, got %s", arg);
+        a->beam2_set = 1;
+        return 1;
+    case CLI_AOPT_BEAMF2: a->beam2_file = arg; return 1;
+    case CLI_AOPT_TRANSFER2: a->transfer2_file = arg; return 1;
     case CLI_AOPT_NOPIX: a->no_pixel_window = 1; return 1;
     case CLI_AOPT_TRANSFER: a->transfer_file = arg; return 1;
     case CLI_AOPT_NOISE: a->noise_file = arg; return 1;
@@ -195,6 +207,20 @@ int cli_analysis_option(const char *cmd, int c, const char *arg, cli_analysis *a
     }
 }
 
+void cli_analysis_files(const cli_analysis *a, const char **kinds, const char **paths)
+{
+    static const char *const k[CLI_ANALYSIS_NFILES] = {"bins", "beam", "transfer", "noise",
+                                                       "theory", "beam2", "transfer2"};
+    const char *const p[CLI_ANALYSIS_NFILES] = {a->bins_file, a->beam_file, a->transfer_file,
+                                                a->noise_file, a->theory_file, a->beam2_file,
+                                                a->transfer2_file};
+    for (int i = 0; i < CLI_ANALYSIS_NFILES; i++) {
+        if (kinds)
+            kinds[i] = k[i];
+        paths[i] = p[i];
+    }
+}
+
 int cli_analysis_check(const char *cmd, const cli_analysis *a, int have_map2)
 {
     if (!a->mask[0])
@@ -205,6 +231,11 @@ int cli_analysis_check(const char *cmd, const cli_analysis *a, int have_map2)
         return cli_usage_error(cmd, "choose one of --bins, --log-bins and --bin-width");
     if (a->beam_file && a->beam_fwhm > 0)
         return cli_usage_error(cmd, "choose one of --beam-fwhm and --beam-table");
+    if ((a->beam2_set || a->beam2_file || a->transfer2_file) && !have_map2)
+        return cli_usage_error(cmd, "--second-beam-fwhm, --second-beam-table and "
+                               "--second-transfer describe a second map: give two maps");
+    if (a->beam2_file && a->beam2_set)
+        return cli_usage_error(cmd, "choose one of --second-beam-fwhm and --second-beam-table");
     if (a->unit && a->calibration > 0)
         return cli_usage_error(cmd, "choose one of --unit and --calibration");
     if (cli_check_ordering(cmd, a->ordering))
@@ -285,6 +316,8 @@ void cli_analysis_tables_free(cli_analysis_tables *t)
     free(t->transfer);
     free(t->noise);
     free(t->theory);
+    free(t->beam2);
+    free(t->transfer2);
     memset(t, 0, sizeof *t);
 }
 
@@ -332,6 +365,33 @@ int cli_analysis_setup(const cli_analysis *a, int64_t nside, clef_spectrum_opts 
         if (!(t->transfer = cli_read_profile_file(a->transfer_file, so->transfer_lmax, &status)))
             goto fail;
         so->transfer = t->transfer;
+    }
+    if (a->beam2_set || a->beam2_file || a->transfer2_file) {
+        /* The second map's instrument: what is not given is the first's. */
+        so->second_instrument = 1;
+        so->beam2_fwhm = so->beam_fwhm;
+        so->beam2 = so->beam;
+        so->beam2_lmax = so->beam_lmax;
+        so->transfer2 = so->transfer;
+        so->transfer2_lmax = so->transfer_lmax;
+        if (a->beam2_set) {
+            so->beam2_fwhm = a->beam2_fwhm;
+            so->beam2 = NULL;
+            so->beam2_lmax = 0;
+        } else if (a->beam2_file) {
+            so->beam2_fwhm = 0;
+            so->beam2_lmax = cli_table_lmax(a->beam2_file, lread);
+            if (!(t->beam2 = cli_read_profile_file(a->beam2_file, so->beam2_lmax, &status)))
+                goto fail;
+            so->beam2 = t->beam2;
+        }
+        if (a->transfer2_file) {
+            so->transfer2_lmax = cli_table_lmax(a->transfer2_file, lread);
+            if (!(t->transfer2 = cli_read_profile_file(a->transfer2_file, so->transfer2_lmax,
+                                                       &status)))
+                goto fail;
+            so->transfer2 = t->transfer2;
+        }
     }
     if (a->noise_file) {
         so->noise_lmax = cli_table_lmax(a->noise_file, lread);
@@ -432,8 +492,10 @@ void cli_analysis_warn_caps(const cli_analysis *a, const clef_spectrum_opts *so,
         {"beam table", a->beam_file, so->beam_lmax},
         {"transfer function", a->transfer_file, so->transfer_lmax},
         {"noise spectrum", a->noise_file, so->noise_lmax},
+        {"second beam table", a->beam2_file, so->beam2_lmax},
+        {"second transfer function", a->transfer2_file, so->transfer2_lmax},
     };
-    for (int i = 0; i < 3; i++)
+    for (int i = 0; i < 5; i++)
         if (t[i].path && t[i].last < lread && r->lmax_ext == t[i].last)
             cli_warn("lmax capped at %d: the %s '%s' ends at l = %d, below the map's l = %d; "
                      "band powers stop at %d and the coupling (hidden bins) at %d; give a "

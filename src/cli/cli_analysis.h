@@ -21,20 +21,21 @@ enum {
     CLI_AOPT_NOPIX, CLI_AOPT_TRANSFER, CLI_AOPT_NOISE, CLI_AOPT_THEORY, CLI_AOPT_ITER,
     CLI_AOPT_KEEP, CLI_AOPT_CACHE, CLI_AOPT_NOCACHE, CLI_AOPT_CACHELIMIT, CLI_AOPT_PLMIN,
     CLI_AOPT_PLMAX, CLI_AOPT_PHW, CLI_AOPT_NOPEAK, CLI_AOPT_ORDERING, CLI_AOPT_UNIT,
-    CLI_AOPT_CALIB, CLI_AOPT_PDRAWS,
+    CLI_AOPT_CALIB, CLI_AOPT_PDRAWS, CLI_AOPT_FWHM2, CLI_AOPT_BEAMF2, CLI_AOPT_TRANSFER2,
     CLI_ANALYSIS_OPT_END
 };
 
 /* Number of entries of cli_analysis_options (without a terminator). */
-#define CLI_ANALYSIS_NOPTS 28
+#define CLI_ANALYSIS_NOPTS 31
 extern const struct option cli_analysis_options[CLI_ANALYSIS_NOPTS];
 
 typedef struct cli_analysis {
     const char *mask[2], *hdu, *column, *bins_file, *beam_file, *transfer_file;
     const char *noise_file, *theory_file, *cache_dir, *ordering, *unit;
+    const char *beam2_file, *transfer2_file; /* the second map's instrument */
     long lmax, bin_width, log_bins, iterations, peak_draws;
-    double beam_fwhm, peak_lmin, peak_lmax, peak_hw, calibration;
-    int no_peak, no_pixel_window, keep, no_cache, coord;
+    double beam_fwhm, beam2_fwhm, peak_lmin, peak_lmax, peak_hw, calibration;
+    int no_peak, no_pixel_window, keep, no_cache, coord, beam2_set;
 } cli_analysis;
 
 void cli_analysis_init(cli_analysis *a);
@@ -56,7 +57,7 @@ void cli_analysis_help(FILE *f);
  * the caller until cli_analysis_tables_free. */
 typedef struct cli_analysis_tables {
     clef_bins *bins;
-    double *beam, *transfer, *noise, *theory;
+    double *beam, *transfer, *noise, *theory, *beam2, *transfer2;
     int lread; /* multipoles the tables were read to (3 nside - 1 or their end) */
 } cli_analysis_tables;
 
@@ -79,6 +80,12 @@ int cli_analysis_units(const cli_analysis *a, clef_map *map, const char *path);
  * stopped the coupled range at its last l: warn, naming the file. */
 void cli_analysis_warn_caps(const cli_analysis *a, const clef_spectrum_opts *so,
                             const clef_spectrum_result *r, int lread);
+
+/* The table files the options name (bins, beam, transfer, noise, covariance
+ * model, the second map's beam and transfer), NULL where not given: kinds
+ * (JSON names) and paths, CLI_ANALYSIS_NFILES of each. */
+#define CLI_ANALYSIS_NFILES 7
+void cli_analysis_files(const cli_analysis *a, const char **kinds, const char **paths);
 
 /* The largest multipole of a spectrum or 'l value' table, or -1. */
 int cli_table_last_l(const char *path);

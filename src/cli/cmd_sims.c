@@ -207,6 +207,10 @@ static int parse_args(int argc, char **argv, sims_args *a)
         return cli_usage_error(CMD, "--hits needs --noise-depth");
     if (a->nnoise && !(a->depth > 0))
         return cli_usage_error(CMD, "--noise-only needs --noise-depth");
+    if (a->an.beam2_set || a->an.beam2_file || a->an.transfer2_file)
+        return cli_usage_error(CMD, "--second-beam-fwhm, --second-beam-table and "
+                               "--second-transfer are for clef spectrum (the ensemble's maps "
+                               "share one instrument)");
     if (cli_analysis_check(CMD, &a->an, a->splits == 2 || a->maps))
         return CLI_EXIT_USAGE;
     if (a->threads && cli_set_threads(CMD, a->threads))

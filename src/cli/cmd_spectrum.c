@@ -39,6 +39,10 @@ static void help(void)
         );
     cli_analysis_help(stdout);
     printf(
+        "Second instrument (cross-spectra):\n"
+        "  --second-beam-fwhm ARCMIN, --second-beam-table FILE, --second-transfer FILE\n"
+        "                         MAP2 from another instrument: its own beam and transfer\n"
+        "                         function (what is not given is MAP's)\n\n"
         "Output:\n"
         "  -o, --output PREFIX    write PREFIX.fits, PREFIX.csv, PREFIX-cov.csv,\n"
         "                         PREFIX-windows.csv (band-power window functions), PREFIX.json\n"
@@ -219,12 +223,11 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     cJSON_AddItemToArray(in, input_json("mask1", a->an.mask[0], maps[2]));
     if (a->an.mask[1])
         cJSON_AddItemToArray(in, input_json("mask2", a->an.mask[1], maps[3]));
-    const char *files[][2] = {{"bins", a->an.bins_file}, {"beam", a->an.beam_file},
-                              {"transfer", a->an.transfer_file}, {"noise", a->an.noise_file},
-                              {"theory", a->an.theory_file}};
-    for (int i = 0; i < 5; i++)
-        if (files[i][1])
-            cJSON_AddItemToArray(in, input_json(files[i][0], files[i][1], NULL));
+    const char *kinds[CLI_ANALYSIS_NFILES], *files[CLI_ANALYSIS_NFILES];
+    cli_analysis_files(&a->an, kinds, files);
+    for (int i = 0; i < CLI_ANALYSIS_NFILES; i++)
+        if (files[i])
+            cJSON_AddItemToArray(in, input_json(kinds[i], files[i], NULL));
 
     cJSON *op = cJSON_AddObjectToObject(root, "options");
     cJSON_AddNumberToObject(op, "lmax", r->lmax);
@@ -235,6 +238,8 @@ static cJSON *summary_json(int argc, char **argv, const args *a, clef_map *const
     if (r->bin_width)
         cJSON_AddNumberToObject(op, "bin_width", r->bin_width);
     cJSON_AddNumberToObject(op, "beam_fwhm_arcmin", so->beam_fwhm);
+    if (so->second_instrument)
+        cJSON_AddNumberToObject(op, "second_beam_fwhm_arcmin", so->beam2 ? 0 : so->beam2_fwhm);
     cJSON_AddBoolToObject(op, "pixel_window", so->pixel_window);
     cJSON_AddNumberToObject(op, "iterations", so->iterations);
     cJSON_AddBoolToObject(op, "multipoles_removed", !so->keep_multipoles);
@@ -421,10 +426,10 @@ int cmd_spectrum(int argc, char **argv)
             snprintf(paths[4], sizeof paths[4], "%s.json", prefix);
         outs[4] = paths[4];
     }
-    const char *inputs[] = {a.map[0], a.map[1], a.an.mask[0], a.an.mask[1], a.an.bins_file,
-                            a.an.beam_file, a.an.transfer_file, a.an.noise_file,
-                            a.an.theory_file};
-    if ((rc = cli_check_outputs(inputs, 9, outs, 5)) != CLI_EXIT_OK)
+    const char *inputs[4 + CLI_ANALYSIS_NFILES] = {a.map[0], a.map[1], a.an.mask[0],
+                                                   a.an.mask[1]};
+    cli_analysis_files(&a.an, NULL, inputs + 4);
+    if ((rc = cli_check_outputs(inputs, 4 + CLI_ANALYSIS_NFILES, outs, 5)) != CLI_EXIT_OK)
         return rc;
     if (a.map[1] && cli_same_file(a.map[0], a.map[1]))
         cli_warn("the two maps '%s' and '%s' are the same file: their cross-spectrum is the "
@@ -432,12 +437,8 @@ int cmd_spectrum(int argc, char **argv)
                  "and --noise-spectrum)", a.map[0], a.map[1]);
 
     const char *files[4] = {a.map[0], a.map[1], a.an.mask[0], a.an.mask[1]};
-    const char *others[5] = {a.an.beam_file, a.an.transfer_file, a.an.noise_file,
-                             a.an.theory_file, a.an.bins_file};
-    for (int i = 0; i < 4; i++)
-        cli_watch_input(files[i]);
-    for (int i = 0; i < 5; i++)
-        cli_watch_input(others[i]);
+    for (int i = 0; i < 4 + CLI_ANALYSIS_NFILES; i++)
+        cli_watch_input(inputs[i]);
     for (int i = 0; i < 4; i++) {
         if (!files[i])
             continue;

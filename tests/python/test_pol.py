@@ -443,10 +443,34 @@ def compare(r, j, tabs):
     assert r["leakage"]["EE_to_BB"].shape == (s["nbins"], s["lmax_coupled"] + 1)
 
 
-@pytest.mark.parametrize("case", ["default", "options", "pair", "pure"])
+@pytest.mark.parametrize("case", ["default", "options", "pair", "pure", "two", "tables"])
 def test_spectrum_pol_same_as_cli(polsky, tmp_path, case):
     sky1, sky2, mask = polsky / "sky1.fits", polsky / "sky2.fits", polsky / "mask.fits"
-    if case == "default":
+    if case == "two":
+        # maps from two instruments: the second map's own beam
+        args = [sky1, sky2, "--mask", mask, "--bin-width", "8", "--beam-fwhm", "60",
+                "--second-beam-fwhm", "75"]
+        kw, files = dict(bin_width=8, beam_fwhm=60.0, second_beam_fwhm=75.0), [sky1, sky2]
+    elif case == "tables":
+        # a beam table and the T and P noise spectra to subtract, as files and arrays
+        l = np.arange(96)
+        sig = 60.0 / 60 * np.pi / 180 / np.sqrt(8 * np.log(2))
+        beam = np.exp(-0.5 * l * (l + 1) * sig ** 2)
+        area = 4 * np.pi / (12 * 32 * 32)
+        nt = np.full(96, 0.5 * area)
+        npol = np.full(96, 1.5 * area)
+        for name, v, head in (("beam.txt", beam, ""), ("nt.txt", nt, "# columns: l C_l\n"),
+                              ("np.txt", npol, "# columns: l C_l\n")):
+            with open(tmp_path / name, "w") as f:
+                f.write(head)
+                for i in l:
+                    f.write(f"{i} {v[i]!r}\n")
+        args = [sky1, "--mask", mask, "--bin-width", "10", "--beam-table", tmp_path / "beam.txt",
+                "--noise-spectrum", tmp_path / "nt.txt", "--pol-noise-spectrum",
+                tmp_path / "np.txt"]
+        kw = dict(bin_width=10, beam=beam, noise_cl=nt, pol_noise_cl=npol)
+        files = [sky1]
+    elif case == "default":
         args, kw, files = [sky1, "--mask", mask], {}, [sky1]
     elif case == "options":
         args = [sky1, "--mask", mask, "--pol-mask", polsky / "pmask.fits", "--bin-width", "10",
@@ -474,7 +498,8 @@ def test_spectrum_pol_same_as_cli(polsky, tmp_path, case):
     # TT is clef.spectrum of T, unchanged (spectrum.h)
     tt = clef.spectrum(maps[0][0], w, maps[1][0] if len(maps) > 1 else None, unit="uK",
                        coordsys="G", mask_coordsys="G", cache=False, peak=False,
-                       **{k: v for k, v in kw.items() if k not in ("pol_mask", "pure_b")})
+                       **{k: v for k, v in kw.items()
+                          if k not in ("pol_mask", "pure_b", "pol_noise_cl")})
     assert np.array_equal(tt["dl"], r["TT"]["dl"]) and np.array_equal(tt["cov"], r["TT"]["cov"])
 
 
@@ -552,3 +577,12 @@ def test_spectrum_pol_bad_arguments(polsky):
         clef.spectrum_pol(maps, w, peak=True)
     with pytest.raises(clef.InvalidArgumentError, match="lmax"):
         clef.spectrum_pol(maps, w, lmax=200)
+    # the second instrument: checked as the CLI checks it, and only for a pair
+    with pytest.raises(ValueError, match="second_beam_fwhm must not be negative"):
+        clef.spectrum_pol(maps, w, maps, second_beam_fwhm=-5.0)
+    with pytest.raises(ValueError, match="choose one of second_beam_fwhm and second_beam"):
+        clef.spectrum_pol(maps, w, maps, second_beam_fwhm=5.0, second_beam=np.ones(96))
+    with pytest.raises(clef.InvalidArgumentError, match="second beam or transfer"):
+        clef.spectrum_pol(maps, w, second_beam_fwhm=5.0, cache=False)
+    with pytest.raises(clef.InvalidArgumentError, match="second beam or transfer"):
+        clef.spectrum(maps[0], w, second_transfer=np.ones(96), cache=False, peak=False)
