@@ -107,7 +107,9 @@ def spectrum(map1: npt.ArrayLike, mask1: npt.ArrayLike, map2: Optional[npt.Array
              keep_multipoles: bool = ..., cache: bool = ..., cache_dir: Optional[str] = ...,
              peak: bool = ..., peak_l_min: float = ..., peak_l_max: float = ...,
              peak_half_width: float = ..., peak_curv_sigma: Optional[float] = ...,
-             allow_coord_mismatch: bool = ..., peak_error_draws: int = ...) -> dict: ...
+             allow_coord_mismatch: bool = ..., peak_error_draws: int = ...,
+             second_beam_fwhm: float = ..., second_beam: Optional[npt.ArrayLike] = ...,
+             second_transfer: Optional[npt.ArrayLike] = ...) -> dict: ...
 
 def spectrum_pol(map1: Union[npt.ArrayLike, Sequence[npt.ArrayLike]], mask: npt.ArrayLike,
                  map2: Union[npt.ArrayLike, Sequence[npt.ArrayLike], None] = ..., *,
@@ -119,7 +121,9 @@ def spectrum_pol(map1: Union[npt.ArrayLike, Sequence[npt.ArrayLike]], mask: npt.
                  noise_cl: Optional[npt.ArrayLike] = ..., pol_noise_cl: Optional[npt.ArrayLike] = ...,
                  theory_cl: Optional[npt.ArrayLike] = ..., iterations: int = ...,
                  keep_multipoles: bool = ..., cache: bool = ..., cache_dir: Optional[str] = ...,
-                 allow_coord_mismatch: bool = ..., pure_b: bool = ...) -> dict: ...
+                 allow_coord_mismatch: bool = ..., pure_b: bool = ...,
+                 second_beam_fwhm: float = ..., second_beam: Optional[npt.ArrayLike] = ...,
+                 second_transfer: Optional[npt.ArrayLike] = ...) -> dict: ...
 
 # many fields and run files (estimator.h, field.h, run.h)
 class Estimator:
